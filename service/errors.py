@@ -1,0 +1,97 @@
+"""The one exception tree of Tikhon.
+
+Every layer raises these and nothing else for expected failures. The HTTP layer translates them to
+RFC 9457 problem details in one place (``service.api.problems``); the CLI prints ``str(err)`` on one
+line. Messages follow one rule: name what is wrong (the field or parameter), the value received, and
+the fix.
+
+Each class carries a stable ``slug`` (used in the problem ``type`` URI) and a short ``title``. Nothing
+here knows HTTP status codes; the mapping lives with the API.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+
+class TikhonError(Exception):
+    """Base class. ``detail`` is one human sentence; ``errors`` optionally lists field-level problems."""
+
+    slug = "error"
+    title = "Request failed"
+
+    def __init__(self, detail: str, *, errors: list[dict[str, Any]] | None = None, **extra: Any):
+        super().__init__(detail)
+        self.detail = detail
+        self.errors = errors or []
+        self.extra = extra
+
+    def __str__(self) -> str:  # one line, always
+        return " ".join(self.detail.split())
+
+
+class InvalidSpec(TikhonError):
+    """The training spec is malformed or inconsistent with the data."""
+
+    slug = "invalid-spec"
+    title = "Invalid training spec"
+
+
+class InvalidData(TikhonError):
+    """The data cannot be used: unknown or missing columns, NaN/inf, wrong types, ragged CSV..."""
+
+    slug = "invalid-data"
+    title = "Invalid data"
+
+
+class BudgetExceeded(TikhonError):
+    """A configured limit (grid size, rows, body size, training time) would be exceeded."""
+
+    slug = "limit-exceeded"
+    title = "Limit exceeded"
+
+
+class InvalidName(TikhonError):
+    slug = "invalid-name"
+    title = "Invalid model name"
+
+
+class NotFound(TikhonError):
+    slug = "not-found"
+    title = "Not found"
+
+
+class Conflict(TikhonError):
+    """The request contradicts the current state (deleting a live version, cancelling a finished job)."""
+
+    slug = "conflict"
+    title = "Conflict"
+
+
+class IntegrityFailure(TikhonError):
+    """A stored artifact failed its checksum, format-version or no-pickle check."""
+
+    slug = "integrity-failure"
+    title = "Stored artifact failed verification"
+
+
+class StorageFailure(TikhonError):
+    """The store could not be written (disk full, permission), nothing was published."""
+
+    slug = "storage-failure"
+    title = "Storage failure"
+
+
+class Cancelled(TikhonError):
+    slug = "cancelled"
+    title = "Cancelled"
+
+
+class Unauthorized(TikhonError):
+    slug = "unauthorized"
+    title = "Missing or invalid API key"
+
+
+class Forbidden(TikhonError):
+    slug = "forbidden"
+    title = "API key lacks the required scope"
