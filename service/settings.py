@@ -41,12 +41,22 @@ class Settings(BaseSettings):
     worker_heartbeat_s: float = Field(5.0, gt=0)
     worker_stale_s: float = Field(30.0, gt=0, description="A running job whose heartbeat is older is re-queued.")
     max_attempts: int = Field(3, ge=1, description="Attempts before a job whose worker keeps dying is failed.")
+    worker_poll_s: float = Field(0.5, gt=0, description="Pause between catalog polls when no job is queued.")
+    cancel_grace_s: float = Field(5.0, gt=0, description="Time a cancelled training process gets before it is killed.")
 
     # HTTP
     host: str = "127.0.0.1"
     port: int = 8000
     cors_origins: list[str] = Field(default_factory=list)
     log_level: str = "info"
+    auth_cache_s: float = Field(
+        1.0, ge=0, description="Seconds a key check (and 'does any key exist') is cached per process; "
+        "a revoked key stops working after at most this long. 0 disables the cache."
+    )
+    live_cache_s: float = Field(
+        1.0, ge=0, description="Seconds a model's live version number is cached per process; a change made "
+        "through this process is seen at once, one made elsewhere after at most this long. 0 disables the cache."
+    )
 
     def catalog_url(self) -> str:
         if self.database_url:

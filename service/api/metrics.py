@@ -1,0 +1,76 @@
+"""Prometheus metrics of one app instance.
+
+Each app owns its own ``CollectorRegistry`` (not the process-global one), so tests and benchmarks can
+build several apps in one process. ``GET /metrics`` renders it in the Prometheus text format.
+"""
+
+from __future__ import annotations
+
+from collections import Counter as _Tally
+from typing import Callable, Iterable
+
+from prometheus_client import CollectorRegistry, Counter, Histogram, generate_latest
+from prometheus_client.core import GaugeMetricFamily
+
+# Latency buckets in seconds: dense below 50 ms where single-row predictions live.
+_BUCKETS = (0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0)
+
+JOB_STATES = ("queued", "running", "succeeded", "failed", "cancelled")
+
+
+class _JobStates:
+    """Collector that counts training jobs by state at scrape time (the catalog is the source of truth,
+    so the figure is right across server replicas and standalone workers)."""
+
+    def __init__(self, list_jobs: Callable[[], Iterable[dict]]):
+        self._list_jobs = list_jobs
+
+    def collect(self):
+        family = GaugeMetricFamily("tikhon_training_jobs", "Training jobs in the catalog by state.", labels=["state"])
+        try:
+            tally = _Tally(str(j.get("state")) for j in self._list_jobs())
+        except Exception:  # an unreachable catalog must not break the scrape; /readyz reports it
+            return
+        for state in JOB_STATES:
+            family.add_metric([state], tally.get(state, 0))
+        yield family
+
+
+class ApiMetrics:
+    def __init__(self) -> None:
+        self.registry = CollectorRegistry(auto_describe=True)
+        self.requests = Counter(
+            "tikhon_http_requests", "HTTP requests by route template, method and status.",
+            ["route", "method", "status"], registry=self.registry,
+        )
+        self.latency = Histogram(
+            "tikhon_http_request_seconds", "HTTP request latency by route template and method.",
+            ["route", "method"], buckets=_BUCKETS, registry=self.registry,
+        )
+        self.predictions = Counter(
+            "tikhon_predictions", "Rows predicted, by model name and version.", ["model", "version"],
+            registry=self.registry,
+        )
+        self.cache_hits = Counter(
+            "tikhon_model_cache_hits", "Prediction requests served from an already loaded version.", registry=self.registry
+        )
+        self.cache_misses = Counter(
+            "tikhon_model_cache_misses", "Prediction requests that had to load a version from the store.",
+            registry=self.registry,
+        )
+        self._seen: dict[tuple[str, str, int], tuple] = {}
+
+    def watch_jobs(self, list_jobs: Callable[[], Iterable[dict]]) -> None:
+        self.registry.register(_JobStates(list_jobs))
+
+    def observe_request(self, method: str, route: str, status: int, seconds: float) -> None:
+        key = (route, method, status)
+        children = self._seen.get(key)
+        if children is None:  # labels() costs a lock and a dict lookup; keep the children
+            children = (self.requests.labels(route, method, str(status)), self.latency.labels(route, method))
+            self._seen[key] = children
+        children[0].inc()
+        children[1].observe(seconds)
+
+    def render(self) -> bytes:
+        return generate_latest(self.registry)

@@ -1,0 +1,240 @@
+"""The one boundary where errors become HTTP: RFC 9457 ``application/problem+json``.
+
+Every layer below raises ``service.errors.TikhonError`` subclasses; this module picks the status per
+class and renders the problem object. FastAPI's request-validation errors, Starlette's HTTP errors
+(unknown route, wrong method) and any unexpected exception are rendered the same way. An unexpected
+exception is logged with its traceback on the server and answered with a 500 problem that carries the
+request id and nothing of the traceback.
+
+Problem ``type`` values are relative references ``/problems/<slug>``; the app serves a short
+explanation of each type at that address (RFC 9457 section 3.1.1 recommends that a dereferenceable
+type URI leads to human-readable documentation).
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+from typing import Any
+
+import orjson
+from fastapi import FastAPI, Request
+from fastapi.exceptions import RequestValidationError
+from starlette.exceptions import HTTPException as StarletteHTTPException
+from starlette.responses import Response
+
+from service import errors as E
+
+PROBLEM_MEDIA_TYPE = "application/problem+json"
+log = logging.getLogger("tikhon.api")
+
+# Status per class. Subclasses not listed inherit their nearest listed ancestor's status.
+_STATUS: dict[type[E.TikhonError], int] = {
+    E.InvalidSpec: 422,
+    E.InvalidData: 422,
+    E.BudgetExceeded: 422,
+    E.InvalidName: 422,
+    E.NotFound: 404,
+    E.Conflict: 409,
+    E.Cancelled: 409,
+    E.IntegrityFailure: 500,
+    E.StorageFailure: 507,
+    E.Unauthorized: 401,
+    E.Forbidden: 403,
+    E.TikhonError: 400,
+}
+
+# Limits whose excess is "the request itself is too large" (413); any other limit, such as the grid
+# budget of a training spec, is a semantic refusal (422).
+SIZE_LIMITS = frozenset({"max_body_bytes", "max_rows_per_request", "max_training_rows"})
+
+# Slugs of the problems the HTTP layer raises itself (not TikhonError classes).
+_HTTP_PROBLEMS: dict[str, tuple[str, str]] = {
+    "malformed-request": ("Malformed request body", "The body is not valid JSON, CSV or multipart, or is empty."),
+    "invalid-request": ("Invalid request", "A field of the request has the wrong type, is missing, or is not allowed."),
+    "route-not-found": ("No such route", "No route matches this path; see /openapi.json for the routes."),
+    "method-not-allowed": ("Method not allowed", "The route exists but not with this HTTP method."),
+    "unsupported-media-type": ("Unsupported media type", "The Content-Type is not one this route reads."),
+    "not-acceptable": ("Not acceptable", "The Accept header asks for a format this route cannot produce."),
+    "internal-error": ("Internal error", "An unexpected failure on the server; report the request id."),
+}
+
+
+def status_for(err: E.TikhonError) -> int:
+    if isinstance(err, E.BudgetExceeded):
+        return 413 if err.extra.get("limit") in SIZE_LIMITS else 422
+    for cls in type(err).__mro__:
+        if cls in _STATUS:
+            return _STATUS[cls]
+    return 400
+
+
+def catalogue() -> dict[str, dict[str, str]]:
+    """Every problem type this service can answer with: slug -> title and a one-line description."""
+    out: dict[str, dict[str, str]] = {}
+    classes = [E.TikhonError, *_all_subclasses(E.TikhonError)]
+    for cls in classes:
+        doc = " ".join((cls.__doc__ or cls.title).split())
+        out.setdefault(cls.slug, {"title": cls.title, "description": doc})
+    for slug, (title, desc) in _HTTP_PROBLEMS.items():
+        out[slug] = {"title": title, "description": desc}
+    return out
+
+
+def _all_subclasses(cls: type) -> list[type]:
+    found = []
+    for sub in cls.__subclasses__():
+        found.append(sub)
+        found.extend(_all_subclasses(sub))
+    return found
+
+
+def _jsonable(value: Any) -> Any:
+    """Make an echoed input value safe for JSON (NaN/inf become strings, unknown objects their repr)."""
+    if isinstance(value, float) and not math.isfinite(value):
+        return str(value)
+    if value is None or isinstance(value, (str, int, float, bool)):
+        return value
+    if isinstance(value, (list, tuple)):
+        return [_jsonable(v) for v in value[:20]]
+    if isinstance(value, dict):
+        return {str(k): _jsonable(v) for k, v in list(value.items())[:20]}
+    text = repr(value)
+    return text if len(text) <= 200 else text[:200] + "..."
+
+
+def problem_body(
+    *, slug: str, title: str, status: int, detail: str, instance: str | None = None,
+    request_id: str | None = None, errors: list[dict[str, Any]] | None = None, **extra: Any
+) -> dict[str, Any]:
+    body: dict[str, Any] = {"type": f"/problems/{slug}", "title": title, "status": status, "detail": detail}
+    if instance:
+        body["instance"] = instance
+    if request_id:
+        body["request_id"] = request_id
+    if errors:
+        body["errors"] = [_jsonable(e) for e in errors]
+    for key, value in extra.items():
+        if key not in body:
+            body[key] = _jsonable(value)
+    return body
+
+
+def problem_response(body: dict[str, Any], headers: dict[str, str] | None = None) -> Response:
+    return Response(
+        orjson.dumps(body, option=orjson.OPT_SERIALIZE_NUMPY), status_code=body["status"],
+        media_type=PROBLEM_MEDIA_TYPE, headers=headers,
+    )
+
+
+def problem_from_error(err: E.TikhonError, *, instance: str | None = None, request_id: str | None = None) -> dict[str, Any]:
+    """The problem object of a TikhonError (also used for failed jobs, with no instance)."""
+    status = status_for(err)
+    extra = {k: v for k, v in err.extra.items() if k in ("limit", "allowed", "received", "field", "value")}
+    return problem_body(
+        slug=err.slug, title=err.title, status=status, detail=str(err), instance=instance,
+        request_id=request_id, errors=err.errors, **extra,
+    )
+
+
+def _request_id(request: Request) -> str | None:
+    return request.scope.get("state", {}).get("request_id") if isinstance(request.scope.get("state"), dict) else None
+
+
+def _where(loc: tuple | list) -> str:
+    parts = [str(p) for p in loc]
+    if parts and parts[0] in ("body", "query", "path", "header"):
+        # "body" is noise for callers; keep query/path/header because they say where to look.
+        if parts[0] == "body":
+            parts = parts[1:]
+    return ".".join(parts) or "body"
+
+
+def validation_problem(exc: RequestValidationError, request: Request) -> dict[str, Any]:
+    errs = exc.errors()
+    if any(e.get("type") == "json_invalid" for e in errs):
+        e0 = next(e for e in errs if e.get("type") == "json_invalid")
+        ctx = e0.get("ctx", {}) or {}
+        return problem_body(
+            slug="malformed-request", title="Malformed request body", status=400,
+            detail=f"The request body is not valid JSON ({ctx.get('error', 'parse error')}); send a JSON object "
+            "as documented at /docs (NaN and Infinity are not JSON: send finite numbers).",
+            instance=request.url.path, request_id=_request_id(request),
+        )
+    items = []
+    for e in errs:
+        field = _where(e.get("loc", ()))
+        item = {"field": field, "message": e.get("msg", "invalid value")}
+        if "input" in e and e.get("type") != "missing":
+            item["value"] = e["input"]
+        items.append(item)
+    first = items[0]
+    detail = f"{first['field']}: {first['message']}"
+    if len(items) > 1:
+        detail += f" (and {len(items) - 1} more problem{'s' if len(items) > 2 else ''}, listed in 'errors')"
+    detail += "; fix the field(s) as described in the OpenAPI document at /openapi.json."
+    return problem_body(
+        slug="invalid-request", title="Invalid request", status=422, detail=detail,
+        instance=request.url.path, request_id=_request_id(request), errors=items,
+    )
+
+
+def install(app: FastAPI) -> None:
+    """Register the handlers on ``app``. Called once by the app factory."""
+
+    @app.exception_handler(E.TikhonError)
+    async def _tikhon(request: Request, exc: E.TikhonError) -> Response:
+        headers = {"WWW-Authenticate": 'Bearer realm="tikhon"'} if isinstance(exc, E.Unauthorized) else None
+        body = problem_from_error(exc, instance=request.url.path, request_id=_request_id(request))
+        if body["status"] >= 500:
+            log.error("request failed: %s", exc, extra={"request_id": _request_id(request)})
+        return problem_response(body, headers)
+
+    @app.exception_handler(RequestValidationError)
+    async def _validation(request: Request, exc: RequestValidationError) -> Response:
+        return problem_response(validation_problem(exc, request))
+
+    @app.exception_handler(StarletteHTTPException)
+    async def _http(request: Request, exc: StarletteHTTPException) -> Response:
+        rid = _request_id(request)
+        if exc.status_code == 404:
+            body = problem_body(
+                slug="route-not-found", title="No such route", status=404,
+                detail=f"No route matches {request.method} {request.url.path}; the routes are listed in /openapi.json.",
+                instance=request.url.path, request_id=rid,
+            )
+        elif exc.status_code == 405:
+            body = problem_body(
+                slug="method-not-allowed", title="Method not allowed", status=405,
+                detail=f"{request.url.path} does not accept {request.method}; "
+                f"use one of: {(exc.headers or {}).get('Allow', 'see /openapi.json')}.",
+                instance=request.url.path, request_id=rid,
+            )
+        elif exc.status_code == 400:
+            body = problem_body(
+                slug="malformed-request", title="Malformed request body", status=400,
+                detail=f"The request body could not be read ({exc.detail}); send JSON, CSV or multipart as documented at /docs.",
+                instance=request.url.path, request_id=rid,
+            )
+        else:
+            body = problem_body(
+                slug="malformed-request" if exc.status_code < 500 else "internal-error",
+                title=str(exc.detail) if exc.status_code < 500 else "Internal error",
+                status=exc.status_code, detail=str(exc.detail), instance=request.url.path, request_id=rid,
+            )
+        return problem_response(body, dict(exc.headers or {}))
+
+    @app.exception_handler(Exception)
+    async def _unexpected(request: Request, exc: Exception) -> Response:
+        rid = _request_id(request)
+        log.exception("unhandled error", extra={"request_id": rid})
+        return problem_response(internal_error_body(request.url.path, rid))
+
+
+def internal_error_body(path: str | None, request_id: str | None) -> dict[str, Any]:
+    return problem_body(
+        slug="internal-error", title="Internal error", status=500,
+        detail="The server failed unexpectedly while handling this request; nothing was changed by it unless "
+        "its response says so. Retry, and if it persists report the request id to the operator.",
+        instance=path, request_id=request_id,
+    )
