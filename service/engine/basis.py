@@ -1,0 +1,196 @@
+"""Basis expansions of standardized inputs.
+
+Definitions (the tests compare them with scikit-learn, so they are exact):
+
+- Inputs are standardized with the mean and population standard deviation of all training rows
+  (a constant input keeps scale 1). The basis is fixed from the features only, never the target.
+- ``linear``: the standardized inputs themselves.
+- ``polynomial`` of degree d: every monomial of the standardized inputs up to degree d, with
+  interactions, in the column order of ``sklearn.preprocessing.PolynomialFeatures(d, include_bias=False)``.
+- ``rbf`` of width w: ``exp(-||x - c||^2 / (2 w^2))`` for centres c chosen by k-means (seeded, on the
+  standardized inputs; on a seeded sample of 50,000 rows when there are more) or every row when
+  ``centers >= n``. Widths are therefore in units of standardized inputs.
+- Categorical columns are one-hot encoded (one column per level seen in training, levels sorted) and
+  appended after the basis expansion. A level unseen in training encodes as all zeros.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+KMEANS_SAMPLE = 50_000
+
+
+@dataclass(frozen=True)
+class InputScaler:
+    names: list[str]
+    mean: np.ndarray
+    scale: np.ndarray
+
+    @classmethod
+    def fit(cls, names: list[str], X: np.ndarray) -> "InputScaler":
+        mean = X.mean(axis=0) if X.shape[0] else np.zeros(X.shape[1])
+        std = X.std(axis=0) if X.shape[0] else np.ones(X.shape[1])
+        scale = np.where(std > 0, std, 1.0)
+        return cls(list(names), mean, scale)
+
+    def transform(self, X: np.ndarray) -> np.ndarray:
+        return (X - self.mean) / self.scale
+
+
+@dataclass(frozen=True)
+class BasisSetting:
+    """One point of the basis grid: a kind and its setting, with what it needs to expand rows."""
+
+    kind: str  # "linear" | "polynomial" | "rbf"
+    degree: int | None = None
+    width: float | None = None
+    powers: np.ndarray | None = None  # (p, d) int exponents, polynomial
+    centers: np.ndarray | None = None  # (m, d) rbf centres, standardized units
+
+    def describe(self) -> dict[str, Any]:
+        if self.kind == "polynomial":
+            return {"kind": "polynomial", "degree": int(self.degree)}
+        if self.kind == "rbf":
+            return {"kind": "rbf", "width": float(self.width), "centers": int(self.centers.shape[0])}
+        return {"kind": "linear"}
+
+    def label(self) -> str:
+        if self.kind == "polynomial":
+            return f"polynomial degree {self.degree}"
+        if self.kind == "rbf":
+            return f"rbf width {self.width:g}"
+        return "linear"
+
+    def complexity(self) -> tuple[int, float]:
+        """Order used by the one-standard-error rule: simpler first. linear = polynomial degree 1 <
+        higher degrees < any RBF; among RBFs, wider is simpler."""
+        if self.kind == "linear":
+            return (0, 1.0)
+        if self.kind == "polynomial":
+            return (0, float(self.degree))
+        return (1, -float(self.width))
+
+    def n_terms(self, d: int) -> int:
+        if self.kind == "linear":
+            return d
+        if self.kind == "polynomial":
+            return int(self.powers.shape[0])
+        return int(self.centers.shape[0])
+
+    def term_names(self, names: list[str]) -> list[str]:
+        if self.kind == "linear":
+            return list(names)
+        if self.kind == "polynomial":
+            out = []
+            for row in self.powers:
+                parts = [n if e == 1 else f"{n}^{e}" for n, e in zip(names, row) if e]
+                out.append(" ".join(parts))
+            return out
+        return [f"rbf[{i}]" for i in range(self.centers.shape[0])]
+
+    def expand(self, Xs: np.ndarray) -> np.ndarray:
+        """Basis columns of standardized inputs ``Xs`` (n, d) → (n, p), float64, C-contiguous."""
+        n, d = Xs.shape
+        if self.kind == "linear":
+            return np.ascontiguousarray(Xs, dtype=np.float64)
+        if self.kind == "polynomial":
+            return _monomials(Xs, self.powers)
+        return _rbf(Xs, self.centers, self.width)
+
+
+def polynomial_powers(d: int, degree: int) -> np.ndarray:
+    """Exponents in PolynomialFeatures(degree, include_bias=False) order: by total degree, then
+    combinations with replacement of the input indices in lexicographic order."""
+    from itertools import combinations_with_replacement
+
+    rows = []
+    for deg in range(1, degree + 1):
+        for combo in combinations_with_replacement(range(d), deg):
+            e = np.zeros(d, dtype=np.int64)
+            for j in combo:
+                e[j] += 1
+            rows.append(e)
+    return np.array(rows, dtype=np.int64).reshape(-1, d)
+
+
+def n_polynomial_terms(d: int, degree: int) -> int:
+    from math import comb
+
+    return comb(d + degree, degree) - 1
+
+
+def _monomials(Xs: np.ndarray, powers: np.ndarray) -> np.ndarray:
+    n, d = Xs.shape
+    p = powers.shape[0]
+    out = np.empty((n, p), dtype=np.float64)
+    index = {tuple(r): i for i, r in enumerate(powers)}
+    Xf = np.asfortranarray(Xs, dtype=np.float64)
+    outf = np.asfortranarray(out)
+    for i, r in enumerate(powers):
+        total = int(r.sum())
+        if total == 1:
+            outf[:, i] = Xf[:, int(np.argmax(r))]
+            continue
+        # parent: remove one unit of the last input with a nonzero exponent
+        j = int(np.flatnonzero(r)[-1])
+        parent = r.copy()
+        parent[j] -= 1
+        np.multiply(outf[:, index[tuple(parent)]], Xf[:, j], out=outf[:, i])
+    return np.ascontiguousarray(outf)
+
+
+def _rbf(Xs: np.ndarray, centers: np.ndarray, width: float) -> np.ndarray:
+    sq = (Xs * Xs).sum(axis=1)[:, None] + (centers * centers).sum(axis=1)[None, :] - 2.0 * (Xs @ centers.T)
+    np.maximum(sq, 0.0, out=sq)
+    sq *= -1.0 / (2.0 * width * width)
+    return np.exp(sq, out=sq)
+
+
+def rbf_centers(Xs: np.ndarray, count: int, seed: int) -> np.ndarray:
+    n = Xs.shape[0]
+    if count >= n:
+        return np.array(Xs, dtype=np.float64, copy=True)
+    from sklearn.cluster import KMeans
+
+    sample = Xs
+    if n > KMEANS_SAMPLE:
+        rng = np.random.default_rng(seed)
+        sample = Xs[np.sort(rng.choice(n, KMEANS_SAMPLE, replace=False))]
+    km = KMeans(n_clusters=count, n_init=3, random_state=seed).fit(sample)
+    return np.ascontiguousarray(km.cluster_centers_, dtype=np.float64)
+
+
+@dataclass(frozen=True)
+class Categories:
+    names: list[str]
+    levels: list[list[str]] = field(default_factory=list)
+
+    @classmethod
+    def fit(cls, names: list[str], cols: list[np.ndarray]) -> "Categories":
+        return cls(list(names), [sorted(set(c.tolist())) for c in cols])
+
+    @property
+    def width(self) -> int:
+        return sum(len(lv) for lv in self.levels)
+
+    def term_names(self) -> list[str]:
+        return [f"{n}={lv}" for n, lvs in zip(self.names, self.levels) for lv in lvs]
+
+    def encode(self, cols: list[np.ndarray]) -> tuple[np.ndarray, list[np.ndarray]]:
+        """One-hot block (n, width) and, per column, a boolean mask of rows with an unseen level."""
+        n = len(cols[0]) if cols else 0
+        out = np.zeros((n, self.width), dtype=np.float64)
+        unseen = []
+        off = 0
+        for lvs, c in zip(self.levels, cols):
+            pos = {lv: i for i, lv in enumerate(lvs)}
+            idx = np.array([pos.get(v, -1) for v in c], dtype=np.int64)
+            ok = idx >= 0
+            out[np.flatnonzero(ok), off + idx[ok]] = 1.0
+            unseen.append(~ok)
+            off += len(lvs)
+        return out, unseen

@@ -1,0 +1,92 @@
+"""Cross-validation plans, built with scikit-learn's splitters so fold assignment is exactly theirs.
+
+A plan cuts the rows into *atoms* (blocks that are never split) and lists each split as
+(training atoms, validation atoms). Summaries are computed once per atom and merged per split:
+- kfold: ``KFold(folds, shuffle=True, random_state=seed)``; atoms are the folds.
+- repeated_kfold: ``RepeatedKFold(n_splits=folds, n_repeats=repeats, random_state=seed)``; each repeat
+  is its own partition of atoms.
+- grouped: ``GroupKFold(n_splits=folds)`` on ``group_by``.
+- time_ordered: ``TimeSeriesSplit(n_splits=folds)`` on the rows sorted (stably) by ``order_by``;
+  atoms are the contiguous blocks, split k trains on blocks 0..k and validates on block k + 1.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from service.errors import InvalidData, InvalidSpec
+
+
+@dataclass
+class Plan:
+    atoms: list[np.ndarray]  # row indices of each atom
+    splits: list[tuple[list[int], list[int]]]  # (training atom ids, validation atom ids)
+    assignment: np.ndarray  # per row: validation split id (kfold/grouped/time), or (repeats, n) for repeated
+    refit_atoms: list[int]  # atoms whose union is every row once (used for the refit)
+    interval_splits: list[int]  # splits whose validation rows give out-of-fold residuals for intervals
+
+    @property
+    def n_splits(self) -> int:
+        return len(self.splits)
+
+
+def make_plan(cv, n: int, groups: np.ndarray | None = None, order: np.ndarray | None = None) -> Plan:
+    from sklearn.model_selection import GroupKFold, KFold, RepeatedKFold, TimeSeriesSplit
+
+    k = cv.folds
+    if cv.scheme in ("kfold", "repeated_kfold", "time_ordered") and k > n - (1 if cv.scheme == "time_ordered" else 0):
+        raise InvalidSpec(f"cv.folds is {k} but the data has only {n} rows; use at most {max(2, n - 1)} folds",
+                          errors=[{"field": "cv.folds", "value": k, "message": "more folds than rows"}])
+    dummy = np.zeros((n, 1))
+    if cv.scheme == "kfold":
+        tests = [t for _, t in KFold(k, shuffle=True, random_state=cv.seed).split(dummy)]
+        return _partition_plan(tests, n)
+    if cv.scheme == "repeated_kfold":
+        tests = [t for _, t in RepeatedKFold(n_splits=k, n_repeats=cv.repeats, random_state=cv.seed).split(dummy)]
+        atoms, splits = [], []
+        assignment = np.empty((cv.repeats, n), dtype=np.int64)
+        for r in range(cv.repeats):
+            block = tests[r * k:(r + 1) * k]
+            base = len(atoms)
+            atoms.extend(block)
+            for j, t in enumerate(block):
+                assignment[r, t] = j
+                splits.append(([base + i for i in range(k) if i != j], [base + j]))
+        return Plan(atoms, splits, assignment, list(range(k)), list(range(k)))
+    if cv.scheme == "grouped":
+        n_groups = len(np.unique(groups))
+        if n_groups < k:
+            raise InvalidSpec(
+                f"cv.folds is {k} but column {cv.group_by!r} has only {n_groups} distinct groups; "
+                f"use at most {n_groups} folds",
+                errors=[{"field": "cv.folds", "value": k, "message": "more folds than groups"}])
+        tests = [t for _, t in GroupKFold(n_splits=k).split(dummy, groups=groups)]
+        return _partition_plan(tests, n)
+    if cv.scheme == "time_ordered":
+        idx = np.argsort(order, kind="stable")
+        splits_ = list(TimeSeriesSplit(n_splits=k).split(dummy))
+        first_train = splits_[0][0]
+        atoms = [idx[first_train]] + [idx[t] for _, t in splits_]
+        splits = [(list(range(0, j + 1)), [j + 1]) for j in range(k)]
+        assignment = np.full(n, -1, dtype=np.int64)
+        for j in range(k):
+            assignment[atoms[j + 1]] = j
+        return Plan(atoms, splits, assignment, list(range(k + 1)), list(range(k)))
+    raise InvalidSpec(f"cv.scheme {cv.scheme!r} has no fold plan")
+
+
+def _partition_plan(tests: list[np.ndarray], n: int) -> Plan:
+    k = len(tests)
+    assignment = np.empty(n, dtype=np.int64)
+    for j, t in enumerate(tests):
+        assignment[t] = j
+    splits = [([i for i in range(k) if i != j], [j]) for j in range(k)]
+    return Plan([np.sort(t) for t in tests], splits, assignment, list(range(k)), list(range(k)))
+
+
+def check_groups(values: np.ndarray, name: str) -> np.ndarray:
+    if len(values) == 0:
+        raise InvalidData(f"group column {name!r} is empty")
+    return values

@@ -1,0 +1,88 @@
+"""Per-fold data summaries: the R factor of ``A = [1, Φ, y]``.
+
+For a block of rows, ``R = qr_r(A)`` is an (m × m) upper-triangular matrix, m = p + 2, with
+``AᵀA = RᵀR``. Summaries merge by stacking and re-factoring (``merge``), so a fold's summary can be
+built chunk by chunk, partition by partition, on one machine or many, and the result does not depend
+on how the rows were cut. Everything downstream (means, standard deviations, coefficients for every
+penalty strength, validation sums of squares) is small m × m algebra on these factors.
+
+Facts used (common practice, see Golub & Van Loan, *Matrix Computations*, §5.2 on QR):
+- the first row of R is ``[r11, r11 · mean(Φ, y)]`` with ``r11² = n``;
+- the trailing (m-1) × (m-1) block is an R factor of the column-centred ``[Φ, y]``, so its column
+  norms are ``sqrt(n) · std`` (population);
+- for any vector v, ``‖A v‖ = ‖R v‖``: a fold's residual sum of squares under any coefficients comes
+  from its summary alone.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.linalg import qr as _scipy_qr
+
+CHUNK_ROWS = 16_384
+
+
+def qr_r(A: np.ndarray) -> np.ndarray:
+    """Square (m × m) R factor of ``A`` (rows may be fewer than m; the rest is zero)."""
+    n, m = A.shape
+    if n == 0:
+        return np.zeros((m, m))
+    R = _scipy_qr(A, mode="r", overwrite_a=False, check_finite=False)[0]
+    if R.shape[0] < m:
+        R = np.vstack([R, np.zeros((m - R.shape[0], m))])
+    return np.triu(R[:m])
+
+
+def merge(factors: list[np.ndarray]) -> np.ndarray:
+    """R factor of the union of the row blocks whose R factors are given."""
+    factors = [f for f in factors if f is not None]
+    if len(factors) == 1:
+        return factors[0]
+    return qr_r(np.vstack(factors))
+
+
+@dataclass
+class Summary:
+    """The R factor of ``[1, Φ, y]`` over some rows, and how many rows."""
+
+    R: np.ndarray
+    n: int
+
+    @staticmethod
+    def of(Phi: np.ndarray, y: np.ndarray, chunk_rows: int = CHUNK_ROWS) -> "Summary":
+        n, p = Phi.shape
+        parts = []
+        for lo in range(0, n, chunk_rows):
+            hi = min(n, lo + chunk_rows)
+            A = np.empty((hi - lo, p + 2))
+            A[:, 0] = 1.0
+            A[:, 1:-1] = Phi[lo:hi]
+            A[:, -1] = y[lo:hi]
+            parts.append(qr_r(A))
+        if not parts:
+            return Summary(np.zeros((p + 2, p + 2)), 0)
+        return Summary(merge(parts), n)
+
+    @staticmethod
+    def combine(items: list["Summary"]) -> "Summary":
+        items = [s for s in items if s.n > 0]
+        if not items:
+            raise ValueError("no rows to combine")
+        return Summary(merge([s.R for s in items]), sum(s.n for s in items))
+
+    def centred(self) -> tuple[np.ndarray, np.ndarray]:
+        """(means of [Φ, y], R factor of the column-centred [Φ, y])."""
+        r11 = self.R[0, 0]
+        means = self.R[0, 1:] / r11
+        return means, self.R[1:, 1:]
+
+    def sse(self, V: np.ndarray) -> np.ndarray:
+        """Residual sums of squares ``‖A v‖²`` for each column v of V (m × L)."""
+        E = self.R @ V
+        return np.einsum("ij,ij->j", E, E)
+
+    def total_ss(self) -> float:
+        """Sum of squares of y about its own mean over these rows."""
+        return float(np.sum(self.R[1:, -1] ** 2))

@@ -1,0 +1,152 @@
+"""Tables of named columns: accept dicts, pandas DataFrames and pyarrow Tables; check them; hash them."""
+
+from __future__ import annotations
+
+import hashlib
+from typing import Any, Mapping
+
+import numpy as np
+
+from service.errors import InvalidData
+
+Columns = dict[str, np.ndarray]
+
+
+def as_columns(data: Any) -> Columns:
+    """Return ``{name: 1-D array}``; refuse duplicate names and ragged lengths."""
+    names: list[str]
+    if isinstance(data, Mapping):
+        names = [str(k) for k in data.keys()]
+        cols = [np.asarray(v) for v in data.values()]
+    elif hasattr(data, "column_names") and hasattr(data, "column"):  # pyarrow.Table
+        names = [str(n) for n in data.column_names]
+        cols = [np.asarray(data.column(i).to_numpy(zero_copy_only=False)) for i in range(len(names))]
+    elif hasattr(data, "columns") and hasattr(data, "iloc"):  # pandas.DataFrame
+        names = [str(c) for c in data.columns]
+        cols = [np.asarray(data.iloc[:, i].to_numpy()) for i in range(len(names))]
+    else:
+        raise InvalidData(
+            f"data must be a table of named columns (dict of arrays, pandas DataFrame or pyarrow Table), "
+            f"got {type(data).__name__}"
+        )
+    seen: set[str] = set()
+    for n in names:
+        if n in seen:
+            raise InvalidData(f"column name {n!r} appears more than once; give every column a unique name")
+        seen.add(n)
+    out: Columns = {}
+    length = None
+    for n, c in zip(names, cols):
+        if c.ndim == 0:
+            c = c.reshape(1)
+        if c.ndim != 1:
+            raise InvalidData(f"column {n!r} must be one-dimensional, got shape {c.shape}")
+        if length is None:
+            length = len(c)
+        elif len(c) != length:
+            raise InvalidData(f"column {n!r} has {len(c)} values but earlier columns have {length}; "
+                              "all columns must have the same number of rows")
+        out[n] = c
+    return out
+
+
+def numeric_column(cols: Columns, name: str, role: str) -> np.ndarray:
+    """The named column as float64, refusing non-numbers and NaN/inf with the first offending rows."""
+    if name not in cols:
+        known = ", ".join(sorted(cols)[:20])
+        raise InvalidData(f"{role} column {name!r} is not in the data; columns present: {known}",
+                          errors=[{"field": name, "message": "missing column"}])
+    raw = cols[name]
+    if raw.dtype.kind in "biuf":
+        x = raw.astype(np.float64, copy=False)
+    else:
+        try:
+            x = np.array([_to_float(v) for v in raw], dtype=np.float64)
+        except (TypeError, ValueError):
+            bad = [i for i, v in enumerate(raw) if not _is_number(v)][:5]
+            raise InvalidData(
+                f"{role} column {name!r} must be numeric; rows {bad} hold {[_short(raw[i]) for i in bad]}; "
+                "fix or drop those rows, or list the column under 'categorical'",
+                errors=[{"field": name, "rows": bad, "message": "not a number"}],
+            ) from None
+    finite = np.isfinite(x)
+    if not finite.all():
+        bad = np.flatnonzero(~finite)[:5].tolist()
+        raise InvalidData(
+            f"{role} column {name!r} holds NaN or infinite values, first at rows {bad}; "
+            "drop or impute those rows before training",
+            errors=[{"field": name, "rows": bad, "message": "NaN or infinite"}],
+        )
+    return x
+
+
+def categorical_column(cols: Columns, name: str) -> np.ndarray:
+    if name not in cols:
+        known = ", ".join(sorted(cols)[:20])
+        raise InvalidData(f"categorical column {name!r} is not in the data; columns present: {known}",
+                          errors=[{"field": name, "message": "missing column"}])
+    raw = cols[name]
+    if raw.dtype.kind == "f":
+        bad = np.flatnonzero(~np.isfinite(raw))[:5].tolist()
+        if bad:
+            raise InvalidData(f"categorical column {name!r} holds missing values at rows {bad}; fill them in",
+                              errors=[{"field": name, "rows": bad, "message": "missing"}])
+    out = np.array([_level(v) for v in raw], dtype=object)
+    missing = [i for i, v in enumerate(out) if v is None][:5]
+    if missing:
+        raise InvalidData(f"categorical column {name!r} holds missing values at rows {missing}; fill them in",
+                          errors=[{"field": name, "rows": missing, "message": "missing"}])
+    return out.astype(str)
+
+
+def numeric_names(cols: Columns) -> list[str]:
+    return [n for n, c in cols.items() if c.dtype.kind in "biuf"]
+
+
+def fingerprint(cols: Columns, names: list[str]) -> dict[str, Any]:
+    """SHA-256 over the used columns in a canonical order (names sorted; float64 little-endian values,
+    or UTF-8 strings each followed by a NUL byte), plus the row and column counts."""
+    h = hashlib.sha256()
+    n_rows = len(next(iter(cols.values()))) if cols else 0
+    for name in sorted(names):
+        c = cols[name]
+        h.update(name.encode("utf-8") + b"\x00")
+        if c.dtype.kind in "biuf":
+            h.update(np.ascontiguousarray(c, dtype="<f8").tobytes())
+        else:
+            for v in c:
+                h.update(str(v).encode("utf-8") + b"\x00")
+    return {"sha256": h.hexdigest(), "rows": int(n_rows), "columns": len(names)}
+
+
+def _to_float(v: Any) -> float:
+    if isinstance(v, (bool, np.bool_)):
+        return float(v)
+    if isinstance(v, (int, float, np.integer, np.floating)):
+        return float(v)
+    if isinstance(v, str):
+        return float(v.strip())
+    raise TypeError(type(v).__name__)
+
+
+def _is_number(v: Any) -> bool:
+    try:
+        _to_float(v)
+        return True
+    except (TypeError, ValueError):
+        return False
+
+
+def _short(v: Any) -> str:
+    s = repr(v)
+    return s if len(s) <= 40 else s[:37] + "..."
+
+
+def _level(v: Any) -> str | None:
+    if v is None:
+        return None
+    if isinstance(v, (float, np.floating)) and float(v).is_integer():
+        return str(int(v))
+    if isinstance(v, bytes):
+        return v.decode("utf-8", "replace")
+    return str(v)
