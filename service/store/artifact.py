@@ -1,0 +1,312 @@
+"""The on-disk format of one model version, and its verification.
+
+Layout (format version 1)::
+
+    <store>/<model name>/<version>/manifest.json
+    <store>/<model name>/<version>/arrays.npz
+
+``arrays.npz`` is an uncompressed ZIP of ``.npy`` members, one per array, written with
+``allow_pickle=False`` and with fixed member timestamps, so equal arrays give equal bytes (and an equal
+SHA-256). Only plain numeric dtypes are accepted (bool, signed and unsigned integers, floats, complex);
+object, structured, string and time dtypes are refused at publish and at load. Loading uses
+``numpy.load(..., allow_pickle=False)`` on bytes that were hashed first, so what is verified is what is
+read.
+
+``manifest.json`` is UTF-8 JSON (no NaN or Infinity tokens) of this shape::
+
+    {
+      "format": "tikhon-model",
+      "format_version": 1,
+      "name": "pump-7",
+      "version": 3,
+      "created_at": "2026-05-09T07:35:25.123456+00:00",
+      "job_id": "9f0c..." | null,
+      "libraries": {"python": "3.11.7", "numpy": "2.4.6", "scikit-learn": "1.9.1", "tikhon": "0.1.0"},
+      "arrays": {
+        "file": "arrays.npz",
+        "sha256": "<hex of arrays.npz>",
+        "bytes": 123456,
+        "members": {"coefficients": {"dtype": "<f8", "shape": [1000]}, ...}
+      },
+      "model": { ... the engine's manifest body: spec, chosen point, basis, coefficients' meaning,
+                 CV table and summary, path, training ranges, residual quantiles, data fingerprint ... }
+    }
+
+The catalog row of the version keeps the SHA-256 of the manifest file itself; since the manifest pins
+the SHA-256 of ``arrays.npz``, that one value fixes every byte of the version. Loading checks, in order:
+the manifest's SHA-256 against the catalog, its format and format version, that its name and version
+match the folder asked for, the declared dtypes, the SHA-256 and size of ``arrays.npz``, and that the
+members of the ZIP are exactly the declared arrays with the declared dtypes and shapes. Any mismatch is
+an ``IntegrityFailure`` that says which check failed and where.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import json
+import math
+import os
+import platform
+import re
+import zipfile
+from importlib import metadata as _metadata
+from pathlib import Path
+from typing import Any, Mapping
+
+import numpy as np
+
+from service.errors import IntegrityFailure
+
+FORMAT = "tikhon-model"
+FORMAT_VERSION = 1
+SUPPORTED_FORMAT_VERSIONS = (1,)
+MANIFEST_FILE = "manifest.json"
+ARRAYS_FILE = "arrays.npz"
+
+ALLOWED_KINDS = frozenset("biufc")  # bool, int, uint, float, complex
+ARRAY_NAME_RULE = r"^[A-Za-z0-9_][A-Za-z0-9_.:-]{0,127}$"
+_ARRAY_NAME_RE = re.compile(ARRAY_NAME_RULE)
+_ZIP_TIME = (1980, 1, 1, 0, 0, 0)  # earliest ZIP timestamp; fixed so the bytes are reproducible
+_CHUNK = 1 << 20
+
+
+# ----------------------------------------------------------------------------------------------------
+# small helpers
+
+
+def fsync_dir(path: Path) -> None:
+    """Make a directory's entries (renames, new files) durable."""
+    fd = os.open(path, os.O_RDONLY | os.O_DIRECTORY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def sha256_bytes(data: bytes) -> str:
+    return hashlib.sha256(data).hexdigest()
+
+
+def sha256_file(path: Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as f:
+        while chunk := f.read(_CHUNK):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def library_versions() -> dict[str, str]:
+    """Versions of the libraries that shape a model's numbers (read from package metadata, no imports)."""
+
+    def dist(name: str) -> str:
+        try:
+            return _metadata.version(name)
+        except _metadata.PackageNotFoundError:
+            return "not installed"
+
+    return {
+        "python": platform.python_version(),
+        "numpy": np.__version__,
+        "scipy": dist("scipy"),
+        "scikit-learn": dist("scikit-learn"),
+        "tikhon": dist("tikhon"),
+    }
+
+
+def _json_problem(obj: Any, path: str = "$") -> str | None:
+    """Find the first value that strict JSON cannot hold; return a description naming its path."""
+    if obj is None or isinstance(obj, (str, bool, int)):
+        return None
+    if isinstance(obj, float):
+        return None if math.isfinite(obj) else f"{path} is {obj!r} (JSON has no NaN or Infinity; use null)"
+    if isinstance(obj, Mapping):
+        for k, v in obj.items():
+            if not isinstance(k, str):
+                return f"{path} has a non-string key {k!r}"
+            if (p := _json_problem(v, f"{path}.{k}")) is not None:
+                return p
+        return None
+    if isinstance(obj, (list, tuple)):
+        for i, v in enumerate(obj):
+            if (p := _json_problem(v, f"{path}[{i}]")) is not None:
+                return p
+        return None
+    return f"{path} is a {type(obj).__module__}.{type(obj).__name__}, which is not plain JSON (convert it first)"
+
+
+def dump_json(obj: Any, *, what: str) -> bytes:
+    problem = _json_problem(obj)
+    if problem is not None:
+        raise IntegrityFailure(f"{what} cannot be stored as strict JSON: {problem}.")
+    return json.dumps(obj, sort_keys=True, indent=1, ensure_ascii=False, allow_nan=False).encode("utf-8") + b"\n"
+
+
+# ----------------------------------------------------------------------------------------------------
+# arrays
+
+
+def check_arrays(arrays: Mapping[str, Any]) -> dict[str, np.ndarray]:
+    """Validate the arrays handed to ``publish``; return them as a plain dict (no copies)."""
+    if not isinstance(arrays, Mapping):
+        raise IntegrityFailure(f"arrays must be a mapping of name to numpy array, received {type(arrays).__name__}.")
+    out: dict[str, np.ndarray] = {}
+    for name, arr in arrays.items():
+        if not isinstance(name, str) or not _ARRAY_NAME_RE.fullmatch(name):
+            raise IntegrityFailure(f"array name {name!r} is not allowed; use names matching {ARRAY_NAME_RULE}.")
+        if not isinstance(arr, np.ndarray):
+            raise IntegrityFailure(
+                f"array {name!r} is a {type(arr).__name__}, not a numpy array; pass numeric numpy arrays only."
+            )
+        _check_dtype(arr.dtype, f"array {name!r}", when="publish")
+        out[name] = arr
+    return out
+
+
+def _check_dtype(dtype: np.dtype, what: str, *, when: str) -> None:
+    if dtype.hasobject or dtype.kind not in ALLOWED_KINDS or dtype.fields is not None:
+        action = "cannot be stored" if when == "publish" else "is refused"
+        raise IntegrityFailure(
+            f"{what} has dtype {dtype.str!r} and {action}: stored models hold plain numeric arrays only "
+            f"(bool, int, uint, float, complex), never objects that would need pickle."
+        )
+
+
+def write_arrays(folder: Path, arrays: Mapping[str, np.ndarray]) -> dict[str, Any]:
+    """Write ``arrays.npz`` into ``folder``, fsync it, and return the manifest's ``arrays`` section."""
+    path = folder / ARRAYS_FILE
+    members: dict[str, Any] = {}
+    with open(path, "xb") as raw:
+        with zipfile.ZipFile(raw, "w", compression=zipfile.ZIP_STORED, allowZip64=True) as zf:
+            for name in sorted(arrays):
+                arr = np.asarray(arrays[name])
+                info = zipfile.ZipInfo(name + ".npy", date_time=_ZIP_TIME)
+                info.compress_type = zipfile.ZIP_STORED
+                info.external_attr = 0o644 << 16
+                with zf.open(info, "w", force_zip64=True) as member:
+                    np.lib.format.write_array(member, arr, allow_pickle=False)
+                members[name] = {"dtype": arr.dtype.str, "shape": list(arr.shape)}
+        raw.flush()
+        os.fsync(raw.fileno())
+    return {"file": ARRAYS_FILE, "sha256": sha256_file(path), "bytes": path.stat().st_size, "members": members}
+
+
+def build_manifest(
+    *, name: str, version: int, created_at: str, job_id: str | None, arrays_info: dict[str, Any], body: Any
+) -> dict[str, Any]:
+    return {
+        "format": FORMAT,
+        "format_version": FORMAT_VERSION,
+        "name": name,
+        "version": version,
+        "created_at": created_at,
+        "job_id": job_id,
+        "libraries": library_versions(),
+        "arrays": arrays_info,
+        "model": body,
+    }
+
+
+def write_manifest(folder: Path, manifest_bytes: bytes) -> None:
+    path = folder / MANIFEST_FILE
+    with open(path, "xb") as f:
+        f.write(manifest_bytes)
+        f.flush()
+        os.fsync(f.fileno())
+
+
+# ----------------------------------------------------------------------------------------------------
+# reading and verification
+
+
+def _fail(where: str, message: str) -> IntegrityFailure:
+    return IntegrityFailure(f"{where}: {message}")
+
+
+def read_manifest(folder: Path, *, expected_sha256: str, name: str, version: int) -> tuple[dict[str, Any], int]:
+    """Read and verify ``manifest.json`` of one version; return (manifest, size in bytes)."""
+    where = f"model {name!r} version {version} ({folder})"
+    try:
+        data = (folder / MANIFEST_FILE).read_bytes()
+    except FileNotFoundError:
+        raise _fail(where, f"{MANIFEST_FILE} is missing although the catalog lists this version; "
+                           "restore the folder from a backup or delete the version") from None
+    except OSError as exc:
+        raise _fail(where, f"{MANIFEST_FILE} cannot be read ({exc.strerror})") from None
+    actual = sha256_bytes(data)
+    if actual != expected_sha256:
+        raise _fail(where, f"{MANIFEST_FILE} was changed after publishing: its SHA-256 is {actual}, "
+                           f"the catalog recorded {expected_sha256}; the version is not loaded")
+    try:
+        manifest = json.loads(data.decode("utf-8"))
+    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise _fail(where, f"{MANIFEST_FILE} is not valid UTF-8 JSON ({exc})") from None
+    if not isinstance(manifest, dict):
+        raise _fail(where, f"{MANIFEST_FILE} must hold a JSON object, found {type(manifest).__name__}")
+    if manifest.get("format") != FORMAT:
+        raise _fail(where, f"{MANIFEST_FILE} has format {manifest.get('format')!r}, expected {FORMAT!r}")
+    fv = manifest.get("format_version")
+    if fv not in SUPPORTED_FORMAT_VERSIONS:
+        raise _fail(where, f"{MANIFEST_FILE} has format_version {fv!r}; this Tikhon reads "
+                           f"{', '.join(map(str, SUPPORTED_FORMAT_VERSIONS))} (upgrade Tikhon or re-publish the model)")
+    if manifest.get("name") != name or manifest.get("version") != version:
+        raise _fail(where, f"{MANIFEST_FILE} describes {manifest.get('name')!r} version "
+                           f"{manifest.get('version')!r}, not the folder it sits in")
+    arrays = manifest.get("arrays")
+    if (not isinstance(arrays, dict) or arrays.get("file") != ARRAYS_FILE
+            or not isinstance(arrays.get("members"), dict) or not isinstance(arrays.get("sha256"), str)):
+        raise _fail(where, f"{MANIFEST_FILE} has no valid 'arrays' section (file, sha256, bytes, members)")
+    for member, decl in arrays["members"].items():
+        try:
+            dtype = np.dtype(decl["dtype"])
+            shape = tuple(int(s) for s in decl["shape"])
+        except Exception:  # any malformed declaration is one clear failure
+            raise _fail(where, f"array {member!r} has a malformed declaration {decl!r}") from None
+        del shape
+        if dtype.hasobject or dtype.kind not in ALLOWED_KINDS or dtype.fields is not None:
+            raise _fail(where, f"array {member!r} is declared with dtype {decl['dtype']!r}, which would need "
+                               "pickle or is not plain numeric; stored models never use pickle")
+    return manifest, len(data)
+
+
+def read_arrays(folder: Path, manifest: dict[str, Any], *, name: str, version: int) -> tuple[dict[str, np.ndarray], int]:
+    """Read ``arrays.npz`` after checking it against the manifest; return (arrays, total array bytes)."""
+    where = f"model {name!r} version {version} ({folder})"
+    info = manifest["arrays"]
+    try:
+        data = (folder / ARRAYS_FILE).read_bytes()
+    except FileNotFoundError:
+        raise _fail(where, f"{ARRAYS_FILE} is missing; restore the folder from a backup or delete the version") from None
+    except OSError as exc:
+        raise _fail(where, f"{ARRAYS_FILE} cannot be read ({exc.strerror})") from None
+    actual = sha256_bytes(data)
+    if actual != info["sha256"]:
+        raise _fail(where, f"{ARRAYS_FILE} is damaged or was changed: its SHA-256 is {actual}, "
+                           f"the manifest recorded {info['sha256']}; the version is not loaded")
+    declared = info["members"]
+    out: dict[str, np.ndarray] = {}
+    try:
+        with np.load(io.BytesIO(data), allow_pickle=False) as npz:
+            files = set(npz.files)
+            if files != set(declared):
+                raise _fail(where, f"{ARRAYS_FILE} holds arrays {sorted(files)}, the manifest declares "
+                                   f"{sorted(declared)}")
+            for member in sorted(files):
+                try:
+                    arr = npz[member]
+                except ValueError as exc:
+                    if "pickle" in str(exc):
+                        raise _fail(where, f"array {member!r} in {ARRAYS_FILE} needs pickle to load "
+                                           "(object dtype); stored models never use pickle") from None
+                    raise _fail(where, f"array {member!r} in {ARRAYS_FILE} cannot be read ({exc})") from None
+                decl = declared[member]
+                if arr.dtype.str != decl["dtype"] or list(arr.shape) != list(decl["shape"]):
+                    raise _fail(where, f"array {member!r} has dtype {arr.dtype.str} and shape {list(arr.shape)}, "
+                                       f"the manifest declares {decl['dtype']} and {decl['shape']}")
+                _check_dtype(arr.dtype, f"{where}: array {member!r}", when="load")
+                out[member] = arr
+    except IntegrityFailure:
+        raise
+    except Exception as exc:  # a damaged ZIP raises several types (BadZipFile, OSError, ValueError...)
+        raise _fail(where, f"{ARRAYS_FILE} cannot be read as an uncompressed .npz ({type(exc).__name__}: {exc})") from None
+    return out, sum(a.nbytes for a in out.values())

@@ -1,0 +1,399 @@
+"""Training jobs in the catalog: submission with idempotency keys, claiming, heartbeats, re-queueing.
+
+States: ``queued`` → ``running`` → ``succeeded`` | ``failed`` | ``cancelled``; ``queued`` →
+``cancelled``; ``running`` → ``queued`` again when its worker stops sending heartbeats (up to
+``max_attempts`` claims, then ``failed``).
+
+* ``claim`` takes the oldest queued job: on PostgreSQL with ``SELECT ... FOR UPDATE SKIP LOCKED`` (many
+  workers, no blocking, no double claims), on SQLite inside a ``BEGIN IMMEDIATE`` transaction (one
+  writer at a time, so the select-then-update cannot interleave).
+* ``heartbeat`` returns the job's state: ``running``, or ``cancelled`` when someone cancelled it (the
+  worker should stop and call ``finish(..., "cancelled")``). It raises ``Conflict`` when the worker no
+  longer holds the job (it was re-queued after a missed heartbeat, maybe claimed by another worker):
+  the worker must drop its work.
+* ``cancel`` of a queued job ends it at once; of a running job it marks it ``cancelled`` at once, and the
+  worker learns it at its next heartbeat. A ``finish`` that arrives for a cancelled job keeps the state
+  ``cancelled`` but records what it carries (a version that was published meanwhile stays traceable).
+* An idempotency key is unique per model name. Submitting again with the same key and the same request
+  (and data) returns the first job with ``created=False``; the same key with a different request is a
+  ``Conflict``.
+
+A job's data file (if the caller has one) is moved into ``<store>/_jobs/<id>/`` at submission and removed
+when the job ends. ``incoming_dir`` is a folder on the same file system for callers to write uploads to
+first, so the move is a rename.
+
+Times come from the clock of the process that writes them; keep the hosts of a multi-host set-up on NTP.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import re
+import shutil
+import time
+import uuid
+from datetime import timedelta
+from pathlib import Path
+from typing import TYPE_CHECKING, Any, Mapping
+
+from sqlalchemy import and_, insert, select, update
+from sqlalchemy.exc import IntegrityError
+
+from service.errors import Conflict, InvalidData, InvalidSpec, NotFound
+from service.store import artifact
+from service.store.catalog import read_txn, write_txn
+from service.store.names import validate_name
+from service.store.schema import jobs as jobs_t
+from service.store.util import catalog_errors, iso, row_dict, utcnow
+
+if TYPE_CHECKING:
+    from service.store.store import Store
+
+STATES = ("queued", "running", "succeeded", "failed", "cancelled")
+FINAL_STATES = frozenset({"succeeded", "failed", "cancelled"})
+IDEMPOTENCY_KEY_RULE = r"^[\x21-\x7e]{1,255}$"  # printable ASCII without spaces, as HTTP header values go
+_KEY_RE = re.compile(IDEMPOTENCY_KEY_RULE)
+_ID_RE = re.compile(r"^[0-9a-f]{32}$")
+ORPHAN_FOLDER_AGE_S = 3600.0  # a job folder with no job row is left alone this long (a submit in flight)
+INCOMING_AGE_S = 24 * 3600.0
+
+
+class Jobs:
+    def __init__(self, store: "Store"):
+        self._store = store
+        self._engine = store.engine
+        self.folder = store.root / "_jobs"
+        self.incoming_dir = self.folder / ".incoming"
+        self.incoming_dir.mkdir(parents=True, exist_ok=True)
+
+    # ------------------------------------------------------------------------------------------------
+
+    def _errors(self, what: str):
+        return catalog_errors(what, self._store.catalog)
+
+    @staticmethod
+    def _out(r: Any) -> dict[str, Any]:
+        d = row_dict(r) if not isinstance(r, Mapping) else dict(r)
+        return {
+            "id": d["id"],
+            "name": d["model_name"],
+            "state": d["state"],
+            "request": d["request"],
+            "data_path": d["data_path"],
+            "idempotency_key": d["idempotency_key"],
+            "attempts": d["attempts"],
+            "worker_id": d["worker_id"],
+            "progress": {"done": d["progress_done"], "total": d["progress_total"]},
+            "created_at": iso(d["created_at"]),
+            "started_at": iso(d["started_at"]),
+            "heartbeat_at": iso(d["heartbeat_at"]),
+            "finished_at": iso(d["finished_at"]),
+            "version": d["version"],
+            "problem": d["problem"],
+            "decision": d["decision"],
+        }
+
+    def _row(self, conn, job_id: str, *, lock: bool = False) -> Any:
+        if not isinstance(job_id, str) or not _ID_RE.fullmatch(job_id):
+            raise NotFound(f"training job {job_id!r} does not exist (job ids are 32 hexadecimal characters).")
+        q = select(jobs_t).where(jobs_t.c.id == job_id)
+        if lock and conn.dialect.name == "postgresql":
+            q = q.with_for_update()
+        row = conn.execute(q).first()
+        if row is None:
+            raise NotFound(f"training job {job_id!r} does not exist.")
+        return row
+
+    def _drop_folder(self, job_id: str) -> None:
+        shutil.rmtree(self.folder / job_id, ignore_errors=True)
+
+    # ------------------------------------------------------------------------------------------------
+
+    def submit(
+        self,
+        name: str,
+        request: dict,
+        *,
+        data_path: str | Path | None = None,
+        idempotency_key: str | None = None,
+    ) -> tuple[dict[str, Any], bool]:
+        """Queue a training job; return ``(job, created)``. With an idempotency key already used for this
+        model name, the first job comes back and ``created`` is False (the data file is then dropped)."""
+        validate_name(name)
+        if not isinstance(request, Mapping):
+            raise InvalidSpec(f"the training request must be a JSON object, received {type(request).__name__}.")
+        problem = artifact._json_problem(request)
+        if problem is not None:
+            raise InvalidSpec(f"the training request cannot be stored as JSON: {problem}.")
+        if idempotency_key is not None and (not isinstance(idempotency_key, str)
+                                            or not _KEY_RE.fullmatch(idempotency_key)):
+            raise InvalidSpec(
+                f"Idempotency-Key {idempotency_key!r} is not allowed; use 1-255 printable ASCII characters "
+                "without spaces (a UUID is a good choice).",
+                errors=[{"field": "Idempotency-Key", "value": repr(idempotency_key),
+                         "message": "1-255 printable ASCII characters"}],
+            )
+        source: Path | None = None
+        h = hashlib.sha256(json.dumps(request, sort_keys=True, separators=(",", ":")).encode())
+        if data_path is not None:
+            source = Path(data_path)
+            if not source.is_file():
+                raise InvalidData(f"data file {str(source)!r} of the training job does not exist or is not a file.")
+            h.update(b"\0data\0")
+            h.update(artifact.sha256_file(source).encode())
+        request_sha = h.hexdigest()
+
+        if idempotency_key is not None:
+            existing = self._by_key(name, idempotency_key)
+            if existing is not None:
+                return self._replay(existing, request_sha, idempotency_key, source)
+
+        job_id = uuid.uuid4().hex
+        final_path: Path | None = None
+        if source is not None:
+            target_dir = self.folder / job_id
+            target_dir.mkdir(parents=True)
+            final_path = target_dir / source.name
+            shutil.move(str(source), str(final_path))
+        now = utcnow()
+        try:
+            with self._errors(f"submitting a training job for {name!r}"):
+                try:
+                    with write_txn(self._engine) as conn:
+                        if idempotency_key is not None:
+                            existing = conn.execute(select(jobs_t).where(and_(
+                                jobs_t.c.model_name == name, jobs_t.c.idempotency_key == idempotency_key))).first()
+                            if existing is not None:
+                                raise _Replay(existing)
+                        conn.execute(insert(jobs_t).values(
+                            id=job_id, model_name=name, state="queued", request=dict(request),
+                            request_sha256=request_sha, data_path=str(final_path) if final_path else None,
+                            idempotency_key=idempotency_key, attempts=0, worker_id=None, progress_done=0,
+                            progress_total=None, created_at=now,
+                        ))
+                except IntegrityError:
+                    # PostgreSQL: a concurrent submit with the same key committed first.
+                    existing = self._by_key(name, idempotency_key) if idempotency_key else None
+                    if existing is None:
+                        raise
+                    raise _Replay(existing) from None
+        except _Replay as replay:
+            self._drop_folder(job_id)
+            return self._replay(replay.row, request_sha, idempotency_key, None)
+        except BaseException:
+            self._drop_folder(job_id)
+            raise
+        return self.get(job_id), True
+
+    def _by_key(self, name: str, key: str) -> Any:
+        with self._errors("reading a training job"), read_txn(self._engine) as conn:
+            return conn.execute(select(jobs_t).where(and_(
+                jobs_t.c.model_name == name, jobs_t.c.idempotency_key == key))).first()
+
+    def _replay(self, row: Any, request_sha: str, key: str, source: Path | None) -> tuple[dict[str, Any], bool]:
+        if row.request_sha256 != request_sha:
+            raise Conflict(
+                f"Idempotency-Key {key!r} was already used for training job {row.id} of model "
+                f"{row.model_name!r} with a different request or data; send a new key for a new job."
+            )
+        if source is not None:
+            source.unlink(missing_ok=True)
+        return self._out(row), False
+
+    def get(self, job_id: str) -> dict[str, Any]:
+        with self._errors("reading a training job"), read_txn(self._engine) as conn:
+            return self._out(self._row(conn, job_id))
+
+    def list(self, name: str | None = None, *, state: str | None = None, limit: int = 100) -> list[dict[str, Any]]:
+        """Jobs, newest first (of one model name and/or one state when given)."""
+        q = select(jobs_t).order_by(jobs_t.c.created_at.desc(), jobs_t.c.id.desc()).limit(max(1, int(limit)))
+        if name is not None:
+            validate_name(name)
+            q = q.where(jobs_t.c.model_name == name)
+        if state is not None:
+            if state not in STATES:
+                raise InvalidSpec(f"job state {state!r} is unknown; use one of {', '.join(STATES)}.")
+            q = q.where(jobs_t.c.state == state)
+        with self._errors("listing training jobs"), read_txn(self._engine) as conn:
+            return [self._out(r) for r in conn.execute(q).all()]
+
+    # ------------------------------------------------------------------------------------------------
+    # worker side
+
+    def claim(self, worker_id: str) -> dict[str, Any] | None:
+        """Take the oldest queued job for ``worker_id`` (state → running, attempts + 1), or None."""
+        _check_worker(worker_id)
+        with self._errors("claiming a training job"), write_txn(self._engine) as conn:
+            q = (select(jobs_t.c.id).where(jobs_t.c.state == "queued")
+                 .order_by(jobs_t.c.created_at, jobs_t.c.id).limit(1))
+            if conn.dialect.name == "postgresql":
+                q = q.with_for_update(skip_locked=True)
+            job_id = conn.execute(q).scalar()
+            if job_id is None:
+                return None
+            now = utcnow()
+            conn.execute(update(jobs_t).where(and_(jobs_t.c.id == job_id, jobs_t.c.state == "queued")).values(
+                state="running", worker_id=worker_id, attempts=jobs_t.c.attempts + 1, started_at=now,
+                heartbeat_at=now, progress_done=0, progress_total=None))
+            return self._out(self._row(conn, job_id))
+
+    def heartbeat(self, job_id: str, worker_id: str, progress: Any = None) -> str:
+        """Record that ``worker_id`` still works on the job (and its progress); return the job's state."""
+        _check_worker(worker_id)
+        done, total = _progress(progress)
+        values: dict[str, Any] = {"heartbeat_at": utcnow()}
+        if done is not None:
+            values["progress_done"] = done
+        if total is not None:
+            values["progress_total"] = total
+        with self._errors("recording a heartbeat"), write_txn(self._engine) as conn:
+            res = conn.execute(update(jobs_t).where(and_(
+                jobs_t.c.id == job_id, jobs_t.c.state == "running", jobs_t.c.worker_id == worker_id)).values(**values))
+            if res.rowcount == 1:
+                return "running"
+            row = self._row(conn, job_id)
+            if row.state == "cancelled" and row.worker_id == worker_id:
+                return "cancelled"
+            raise Conflict(
+                f"training job {job_id} is no longer held by worker {worker_id!r} (state {row.state}, "
+                f"worker {row.worker_id!r}); its heartbeat came too late or it was re-queued; drop this work."
+            )
+
+    def finish(
+        self,
+        job_id: str,
+        worker_id: str,
+        state: str,
+        *,
+        version: int | None = None,
+        problem: dict | None = None,
+        decision: dict | None = None,
+    ) -> dict[str, Any]:
+        """End a running job held by ``worker_id`` with ``state`` (succeeded, failed or cancelled)."""
+        _check_worker(worker_id)
+        if state not in FINAL_STATES:
+            raise InvalidSpec(f"a job finishes as succeeded, failed or cancelled, not {state!r}.")
+        for label, value in (("problem", problem), ("decision", decision)):
+            if value is not None and (p := artifact._json_problem(value)) is not None:
+                raise InvalidSpec(f"the job's {label} cannot be stored as JSON: {p}.")
+        now = utcnow()
+        with self._errors("finishing a training job"), write_txn(self._engine) as conn:
+            row = self._row(conn, job_id, lock=True)
+            extra = {k: v for k, v in (("version", version), ("problem", problem), ("decision", decision))
+                     if v is not None}
+            if row.state == "cancelled" and row.worker_id == worker_id:
+                if extra:  # keep the state, record what the worker brings (e.g. a version it published)
+                    conn.execute(update(jobs_t).where(jobs_t.c.id == job_id).values(**extra))
+            elif row.state != "running" or row.worker_id != worker_id:
+                raise Conflict(
+                    f"training job {job_id} is not running under worker {worker_id!r} (state {row.state}, "
+                    f"worker {row.worker_id!r}); its result is not recorded."
+                )
+            else:
+                conn.execute(update(jobs_t).where(jobs_t.c.id == job_id).values(
+                    state=state, finished_at=now, heartbeat_at=now, **extra))
+            out = self._out(self._row(conn, job_id))
+        self._drop_folder(job_id)
+        return out
+
+    def cancel(self, job_id: str) -> dict[str, Any]:
+        """Cancel a queued or running job (a running one stops at its worker's next heartbeat)."""
+        with self._errors("cancelling a training job"), write_txn(self._engine) as conn:
+            row = self._row(conn, job_id, lock=True)
+            if row.state in ("succeeded", "failed"):
+                raise Conflict(f"training job {job_id} already {row.state} at {iso(row.finished_at)}; "
+                               "there is nothing to cancel.")
+            if row.state != "cancelled":
+                conn.execute(update(jobs_t).where(jobs_t.c.id == job_id).values(
+                    state="cancelled", finished_at=utcnow()))
+            out = self._out(self._row(conn, job_id))
+        if row.state == "queued":
+            self._drop_folder(job_id)
+        return out
+
+    def requeue_stale(self, stale_s: float, max_attempts: int) -> list[dict[str, Any]]:
+        """Re-queue running jobs whose last heartbeat is older than ``stale_s`` seconds; fail those that
+        already had ``max_attempts`` claims. Returns the jobs changed (in their new state)."""
+        cutoff = utcnow() - timedelta(seconds=float(stale_s))
+        changed: list[str] = []
+        failed: list[str] = []
+        with self._errors("re-queueing stale training jobs"), write_txn(self._engine) as conn:
+            q = select(jobs_t).where(and_(jobs_t.c.state == "running", jobs_t.c.heartbeat_at < cutoff))
+            if conn.dialect.name == "postgresql":
+                q = q.with_for_update(skip_locked=True)
+            now = utcnow()
+            for row in conn.execute(q).all():
+                if row.attempts >= max_attempts:
+                    detail = (
+                        f"training job {row.id} was claimed {row.attempts} times and each time its worker stopped "
+                        f"sending heartbeats (last worker {row.worker_id!r}, last heartbeat {iso(row.heartbeat_at)}); "
+                        f"it is not retried again. Check the worker logs (memory, time limits) and submit again."
+                    )
+                    conn.execute(update(jobs_t).where(jobs_t.c.id == row.id).values(
+                        state="failed", finished_at=now,
+                        problem={"type": "worker-lost", "title": "Training worker lost", "detail": detail,
+                                 "attempts": row.attempts}))
+                    failed.append(row.id)
+                else:
+                    conn.execute(update(jobs_t).where(jobs_t.c.id == row.id).values(
+                        state="queued", worker_id=None, heartbeat_at=None, started_at=None,
+                        progress_done=0, progress_total=None))
+                changed.append(row.id)
+            out = [self._out(self._row(conn, j)) for j in changed]
+        for j in failed:
+            self._drop_folder(j)
+        return out
+
+    # ------------------------------------------------------------------------------------------------
+
+    def sweep_folders(self) -> int:
+        """Remove data folders of finished jobs, old ones without a job, and stale uploads."""
+        removed = 0
+        now = time.time()
+        candidates = {p.name: p for p in self.folder.iterdir() if p.is_dir() and _ID_RE.fullmatch(p.name)}
+        if candidates:
+            with self._errors("sweeping job folders"), read_txn(self._engine) as conn:
+                states = dict(conn.execute(select(jobs_t.c.id, jobs_t.c.state)
+                                           .where(jobs_t.c.id.in_(list(candidates)))).all())
+            for job_id, path in candidates.items():
+                st = states.get(job_id)
+                if st in FINAL_STATES or (st is None and now - _mtime(path) > ORPHAN_FOLDER_AGE_S):
+                    shutil.rmtree(path, ignore_errors=True)
+                    removed += 1
+        for p in self.incoming_dir.iterdir():
+            if now - _mtime(p) > INCOMING_AGE_S:
+                shutil.rmtree(p, ignore_errors=True) if p.is_dir() else p.unlink(missing_ok=True)
+                removed += 1
+        return removed
+
+
+class _Replay(Exception):
+    def __init__(self, row: Any):
+        self.row = row
+
+
+def _mtime(p: Path) -> float:
+    try:
+        return p.stat().st_mtime
+    except FileNotFoundError:
+        return time.time()
+
+
+def _check_worker(worker_id: Any) -> None:
+    if not isinstance(worker_id, str) or not 0 < len(worker_id) <= 200:
+        raise InvalidSpec(f"worker_id must be a string of 1-200 characters, received {worker_id!r}.")
+
+
+def _progress(progress: Any) -> tuple[int | None, int | None]:
+    if progress is None:
+        return None, None
+    if isinstance(progress, Mapping):
+        done, total = progress.get("done"), progress.get("total")
+    else:
+        try:
+            done, total = progress
+        except (TypeError, ValueError):
+            raise InvalidSpec(f"progress must be (done, total) or {{'done': ..., 'total': ...}}, "
+                              f"received {progress!r}.") from None
+    return (None if done is None else int(done)), (None if total is None else int(total))

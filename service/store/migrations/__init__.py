@@ -1,0 +1,1 @@
+"""Alembic environment and versioned migrations of the catalog."""

@@ -1,0 +1,1 @@
+"""Catalog migrations, one file per revision (applied in order by Alembic)."""

@@ -1,0 +1,664 @@
+"""The model store: immutable, checksummed versions on disk plus a catalog in SQL.
+
+Publish protocol
+----------------
+A version becomes visible only through its catalog row, and the row is committed only after the
+folder is complete and durable in its final place. Step by step (``name`` already validated)::
+
+    1. stage   mkdir <store>/.staging/<token>/ (its lock file <token>.lock is held with flock for
+               the whole publish); write arrays.npz; fsync it.
+    2. lock    open a write transaction and take the per-name write lock
+               (SQLite: BEGIN IMMEDIATE, one writer at a time; PostgreSQL: pg_advisory_xact_lock).
+    3. number  version = models.last_version + 1 (the row is created on the first publish).
+               Under the lock, a folder <store>/<name>/<version>/ that already exists cannot be
+               anyone's work in progress: it is the orphan of a publish that crashed after its rename
+               and before its commit. It is moved to <store>/.trash/ and removed.
+    4. write   manifest.json (which records name, version and the SHA-256 of arrays.npz) into the
+               staging folder; fsync it and the folder.
+    5. rename  os.rename(<staging>/<token>, <store>/<name>/<version>); fsync <store>/<name>/.
+    6. record  UPDATE models.last_version; INSERT the versions row with the manifest's SHA-256.
+    7. commit  the transaction; the lock is released.
+
+What a SIGKILL leaves behind, by the step it interrupts:
+
+* 1-4: a staging folder and nothing else. The transaction, if open, is rolled back by the database
+  (SQLite's WAL, or PostgreSQL dropping the dead session), so ``last_version`` is unchanged.
+* 5-6 (after the rename, before the commit): a complete folder with no catalog row. Nothing lists or
+  loads it, because every read goes through the catalog. The next publish of that name takes the same
+  number (the counter was rolled back) and clears the orphan in step 3; ``sweep`` clears it too.
+* after 7: a whole version.
+
+So versions are gapless and never duplicated: numbers come from a counter that is bumped in the same
+transaction that records the version, under a lock held across the rename. A committed row implies a
+durable folder (its rename was fsynced before the commit). A deleted version keeps its row as a
+tombstone, so its number is never handed out again.
+
+Start-up sweep
+--------------
+``Store()`` calls ``sweep()``: staging folders whose lock file is no longer held (flock is released when
+its process dies), ``.trash`` leftovers, version folders without a live catalog row (checked under the
+per-name lock, so a publish in flight elsewhere is never touched), and job data folders of finished or
+unknown jobs. Staging locks rely on flock, which works on a local file system; several hosts sharing
+one store over NFS should share the catalog on PostgreSQL and keep the store on a file system with
+working flock.
+
+Reading
+-------
+``load(name, version)`` verifies a version fully on its first load in a process (see
+``service.store.artifact``) and keeps the result in an LRU cache bounded by count and bytes, keyed by
+(name, version, manifest SHA-256). Catalog lookups (the live version of a name, the row of a version)
+are cached for ``catalog_ttl_s`` seconds (default 1 s), so a live-version change made by any process is
+seen by every other process within that time, and at once by the process that made it.
+"""
+
+from __future__ import annotations
+
+import fcntl
+import operator
+import os
+import shutil
+import threading
+import time
+import uuid
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable, Iterator, Mapping
+
+import numpy as np
+from sqlalchemy import and_, func, insert, select, text, update
+
+from service.errors import Conflict, IntegrityFailure, InvalidSpec, NotFound, StorageFailure, TikhonError
+from service.settings import Settings
+from service.store import artifact
+from service.store.cache import LRUCache
+from service.store.catalog import (
+    create_catalog_engine,
+    lock_name,
+    migrate,
+    normalize_url,
+    read_txn,
+    safe_url,
+    write_txn,
+)
+from service.store.names import validate_name
+from service.store.schema import history as history_t
+from service.store.schema import models as models_t
+from service.store.schema import versions as versions_t
+from service.store.util import as_utc, catalog_errors, iso, row_dict, utcnow
+
+STAGING_DIR = ".staging"
+TRASH_DIR = ".trash"
+JOBS_DIR = "_jobs"
+
+
+def _fault_point(step: str) -> None:
+    """A named point of the publish protocol. Does nothing; the crash tests replace it to SIGKILL the
+    process exactly there (``tests/store/test_crash.py``)."""
+
+
+ModelLoader = Callable[[dict, dict], Any]
+
+
+def _engine_loader(manifest_body: dict, arrays: dict) -> Any:
+    from service.engine import load_model  # layer 1; imported on first load only
+
+    return load_model(manifest_body, arrays)
+
+
+@dataclass(frozen=True)
+class LoadedVersion:
+    """A verified, rebuilt version. ``checksum`` is the SHA-256 of its manifest.json, which pins the
+    SHA-256 of arrays.npz (``arrays_sha256``): together they fix every stored byte."""
+
+    name: str
+    version: int
+    checksum: str
+    arrays_sha256: str
+    created_at: str
+    manifest: dict = field(repr=False)
+    model: Any = field(repr=False)
+    nbytes: int = 0
+
+
+class Store:
+    """Filesystem + SQL model store. Thread-safe; one instance per process is the intended use."""
+
+    def __init__(self, settings: Settings, *, model_loader: ModelLoader | None = None, catalog_ttl_s: float = 1.0):
+        from service.store.jobs import Jobs  # local: jobs and keys import this module's helpers
+        from service.store.keys import Keys
+
+        self.settings = settings
+        self.root = Path(settings.store).resolve()
+        try:
+            for sub in (STAGING_DIR, TRASH_DIR, JOBS_DIR):
+                (self.root / sub).mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise StorageFailure(
+                f"the store folder {self.root} cannot be created or written ({exc.strerror}); "
+                "set TIKHON_STORE to a writable folder."
+            ) from None
+        self.engine = create_catalog_engine(normalize_url(settings.catalog_url()))
+        self.catalog = safe_url(self.engine)
+        self.schema_revision = migrate(self.engine)
+        self._loader: ModelLoader = model_loader or _engine_loader
+        self._cache = LRUCache(settings.cache_models, settings.cache_bytes)
+        self._ttl = float(catalog_ttl_s)
+        self._lock = threading.Lock()
+        self._rows: dict[tuple[str, int], tuple[dict, float]] = {}
+        self._live: dict[str, tuple[int | None, float]] = {}
+        self.jobs = Jobs(self)
+        self.keys = Keys(self)
+        self.last_sweep = self.sweep()
+
+    # ------------------------------------------------------------------------------------------------
+    # lifecycle
+
+    def close(self) -> None:
+        self.engine.dispose()
+
+    def __enter__(self) -> "Store":
+        return self
+
+    def __exit__(self, *exc: Any) -> None:
+        self.close()
+
+    def ping(self) -> dict[str, str]:
+        """Readiness: the catalog answers and the store folder takes a write. Raises StorageFailure."""
+        with catalog_errors("a readiness query", self.catalog), read_txn(self.engine) as conn:
+            conn.execute(text("SELECT 1"))
+        probe = self.root / STAGING_DIR / f"ping-{uuid.uuid4().hex}"
+        try:
+            probe.write_bytes(b"ok")
+            probe.unlink()
+        except OSError as exc:
+            raise StorageFailure(f"the store folder {self.root} is not writable ({exc.strerror}).") from None
+        return {"catalog": "ok", "store": "ok"}
+
+    def cache_stats(self) -> dict[str, int]:
+        return self._cache.stats()
+
+    # ------------------------------------------------------------------------------------------------
+    # paths
+
+    def _version_dir(self, name: str, version: int) -> Path:
+        return self.root / name / str(version)
+
+    def _discard(self, path: Path) -> Path | None:
+        """Move ``path`` out of sight into .trash atomically; return where it went (None if gone)."""
+        dest = self.root / TRASH_DIR / uuid.uuid4().hex
+        try:
+            os.rename(path, dest)
+        except FileNotFoundError:
+            return None
+        return dest
+
+    @staticmethod
+    def _erase(paths: list[Path | None]) -> None:
+        for p in paths:
+            if p is not None:
+                shutil.rmtree(p, ignore_errors=True)
+
+    @contextmanager
+    def _staging(self) -> Iterator[Path]:
+        staging_root = self.root / STAGING_DIR
+        while True:
+            token = uuid.uuid4().hex
+            lock_path = staging_root / f"{token}.lock"
+            fd = os.open(lock_path, os.O_CREAT | os.O_EXCL | os.O_RDWR, 0o644)
+            fcntl.flock(fd, fcntl.LOCK_EX)
+            try:
+                ours = os.fstat(fd).st_ino == os.stat(lock_path).st_ino
+            except FileNotFoundError:  # a sweeper took it for a dead one between create and flock
+                ours = False
+            if ours:
+                break
+            os.close(fd)
+        folder = staging_root / token
+        try:
+            folder.mkdir()
+            yield folder
+        finally:
+            shutil.rmtree(folder, ignore_errors=True)  # already gone when it was renamed into place
+            try:
+                lock_path.unlink()
+            except FileNotFoundError:
+                pass
+            os.close(fd)
+
+    # ------------------------------------------------------------------------------------------------
+    # publish
+
+    def publish(
+        self, name: str, manifest_body: dict, arrays: Mapping[str, np.ndarray], *, job_id: str | None = None
+    ) -> dict[str, Any]:
+        """Store a new version of ``name``; return its catalog row. See the module docstring."""
+        validate_name(name)
+        arrays = artifact.check_arrays(arrays)
+        artifact.dump_json(manifest_body, what="the manifest body")  # fail before touching the disk
+        if job_id is not None and (not isinstance(job_id, str) or not 0 < len(job_id) <= 64):
+            raise IntegrityFailure(f"job_id must be a string of 1-64 characters or None, received {job_id!r}.")
+        summary = _summary_of(manifest_body)
+        model_dir = self.root / name
+        if model_dir.exists() and not model_dir.is_dir():
+            raise StorageFailure(f"{model_dir} exists and is not a folder; move it away to publish {name!r}.")
+        trash: list[Path | None] = []
+        with self._staging() as staging:
+            try:
+                arrays_info = artifact.write_arrays(staging, arrays)
+                _fault_point("staged")
+                renamed = False
+                try:
+                    with catalog_errors(f"publishing a version of {name!r}", self.catalog), \
+                            write_txn(self.engine) as conn:
+                        lock_name(conn, name)
+                        _fault_point("locked")
+                        now = utcnow()
+                        m = conn.execute(select(models_t.c.last_version).where(models_t.c.name == name)).first()
+                        if m is None:
+                            conn.execute(insert(models_t).values(
+                                name=name, created_at=now, updated_at=now, last_version=0, live_version=None))
+                            last = 0
+                        else:
+                            last = m.last_version
+                        version = last + 1
+                        target = self._version_dir(name, version)
+                        if os.path.lexists(target):
+                            trash.append(self._discard(target))  # orphan of a crashed publish (see step 3)
+                        manifest = artifact.build_manifest(
+                            name=name, version=version, created_at=now.isoformat(), job_id=job_id,
+                            arrays_info=arrays_info, body=manifest_body)
+                        manifest_bytes = artifact.dump_json(manifest, what="the manifest")
+                        artifact.write_manifest(staging, manifest_bytes)
+                        artifact.fsync_dir(staging)
+                        if not model_dir.is_dir():
+                            model_dir.mkdir(exist_ok=True)
+                            artifact.fsync_dir(self.root)
+                        _fault_point("before_rename")
+                        os.rename(staging, target)
+                        renamed = True
+                        artifact.fsync_dir(model_dir)
+                        _fault_point("after_rename")
+                        conn.execute(update(models_t).where(models_t.c.name == name)
+                                     .values(last_version=version, updated_at=now))
+                        row = {
+                            "model_name": name, "version": version, "created_at": now, "job_id": job_id,
+                            "manifest_sha256": artifact.sha256_bytes(manifest_bytes),
+                            "arrays_sha256": arrays_info["sha256"],
+                            "bytes": arrays_info["bytes"] + len(manifest_bytes),
+                            "summary": summary, "deleted_at": None,
+                        }
+                        conn.execute(insert(versions_t).values(**row))
+                        _fault_point("before_commit")
+                    _fault_point("committed")
+                except BaseException:
+                    if renamed:  # the folder may sit in place without a row: clear it under the lock
+                        try:
+                            self._sweep_model(name)
+                        except TikhonError:
+                            pass  # the next publish or start-up sweep will
+                    raise
+            except OSError as exc:
+                raise StorageFailure(
+                    f"could not write a version of {name!r} under {self.root} ({exc.strerror or exc}); "
+                    "nothing was published."
+                ) from exc
+        self._erase(trash)
+        live = self.live_version(name)
+        return self._version_out(row, live)
+
+    @staticmethod
+    def _version_out(row: Mapping[str, Any], live: int | None) -> dict[str, Any]:
+        return {
+            "name": row["model_name"],
+            "version": row["version"],
+            "created_at": iso(row["created_at"]),
+            "job_id": row["job_id"],
+            "checksum": row["manifest_sha256"],
+            "arrays_sha256": row["arrays_sha256"],
+            "bytes": row["bytes"],
+            "summary": row["summary"],
+            "live": row["version"] == live,
+        }
+
+    # ------------------------------------------------------------------------------------------------
+    # reads
+
+    @staticmethod
+    def _check_version(name: str, version: Any) -> int:
+        try:
+            if isinstance(version, bool):
+                raise TypeError
+            v = operator.index(version)
+        except TypeError:
+            raise NotFound(
+                f"version {version!r} of model {name!r} does not exist; versions are whole numbers from 1.",
+                errors=[{"field": "version", "value": repr(version), "message": "must be a whole number >= 1"}],
+            ) from None
+        if v < 1:
+            raise NotFound(f"version {v} of model {name!r} does not exist; versions are numbered from 1.")
+        return v
+
+    def _fresh(self, stamp: float) -> bool:
+        return time.monotonic() - stamp < self._ttl
+
+    def _version_row(self, name: str, version: int) -> dict[str, Any]:
+        with self._lock:
+            hit = self._rows.get((name, version))
+        if hit is not None and self._fresh(hit[1]):
+            return hit[0]
+        with catalog_errors(f"reading version {version} of {name!r}", self.catalog), read_txn(self.engine) as conn:
+            row = conn.execute(select(versions_t).where(and_(
+                versions_t.c.model_name == name, versions_t.c.version == version))).first()
+            last = None
+            if row is None or row.deleted_at is not None:
+                last = conn.execute(select(models_t.c.last_version).where(models_t.c.name == name)).scalar()
+        if row is None or row.deleted_at is not None:
+            with self._lock:
+                self._rows.pop((name, version), None)
+            if last is None:
+                raise NotFound(f"model {name!r} does not exist; publish a version or train it first.")
+            if row is not None:
+                raise NotFound(f"version {version} of model {name!r} was deleted at {iso(row.deleted_at)}.")
+            raise NotFound(f"model {name!r} has no version {version} (its newest version number is {last}).")
+        d = row_dict(row)
+        with self._lock:
+            self._rows[(name, version)] = (d, time.monotonic())
+        return d
+
+    def load(self, name: str, version: int) -> LoadedVersion:
+        """Return the verified, rebuilt model of one version (from the cache when possible)."""
+        validate_name(name)
+        version = self._check_version(name, version)
+        row = self._version_row(name, version)
+        key = (name, version, row["manifest_sha256"])
+        hit = self._cache.get(key)
+        if hit is not None:
+            return hit
+        folder = self._version_dir(name, version)
+        manifest, manifest_size = artifact.read_manifest(
+            folder, expected_sha256=row["manifest_sha256"], name=name, version=version)
+        arrays, arrays_size = artifact.read_arrays(folder, manifest, name=name, version=version)
+        try:
+            model = self._loader(manifest["model"], arrays)
+        except Exception as exc:
+            raise IntegrityFailure(
+                f"model {name!r} version {version} passed its checksums but could not be rebuilt "
+                f"({type(exc).__name__}: {exc}); it was written by Tikhon {manifest['libraries'].get('tikhon')}."
+            ) from exc
+        loaded = LoadedVersion(
+            name=name, version=version, checksum=row["manifest_sha256"], arrays_sha256=row["arrays_sha256"],
+            created_at=manifest["created_at"], manifest=manifest, model=model,
+            nbytes=arrays_size + manifest_size,
+        )
+        self._cache.put(key, loaded, loaded.nbytes)
+        return loaded
+
+    def live_version(self, name: str) -> int | None:
+        """The live version of ``name``; None when it has none or the model does not exist."""
+        validate_name(name)
+        with self._lock:
+            hit = self._live.get(name)
+        if hit is not None and self._fresh(hit[1]):
+            return hit[0]
+        with catalog_errors(f"reading the live version of {name!r}", self.catalog), read_txn(self.engine) as conn:
+            live = conn.execute(select(models_t.c.live_version).where(models_t.c.name == name)).scalar()
+        with self._lock:
+            self._live[name] = (live, time.monotonic())
+        return live
+
+    def _model_row(self, conn, name: str) -> Any:
+        m = conn.execute(select(models_t).where(models_t.c.name == name)).first()
+        if m is None:
+            raise NotFound(f"model {name!r} does not exist; publish a version or train it first.")
+        return m
+
+    def _models(self, name: str | None) -> list[dict[str, Any]]:
+        alive = versions_t.select().where(versions_t.c.deleted_at.is_(None)).subquery()
+        q = (
+            select(models_t, func.count(alive.c.version).label("n"), func.max(alive.c.version).label("latest"))
+            .select_from(models_t.outerjoin(alive, alive.c.model_name == models_t.c.name))
+            .group_by(*models_t.c)
+            .order_by(models_t.c.name)
+        )
+        if name is not None:
+            q = q.where(models_t.c.name == name)
+        with catalog_errors("listing models", self.catalog), read_txn(self.engine) as conn:
+            rows = conn.execute(q).all()
+        return [
+            {
+                "name": r.name, "live_version": r.live_version, "latest_version": r.latest,
+                "versions": r.n, "created_at": iso(r.created_at), "updated_at": iso(r.updated_at),
+            }
+            for r in rows
+        ]
+
+    def list_models(self) -> list[dict[str, Any]]:
+        """Every model with its live version, newest version number and count of versions, by name."""
+        return self._models(None)
+
+    def get_model(self, name: str) -> dict[str, Any]:
+        validate_name(name)
+        found = self._models(name)
+        if not found:
+            raise NotFound(f"model {name!r} does not exist; publish a version or train it first.")
+        return found[0]
+
+    def list_versions(self, name: str) -> list[dict[str, Any]]:
+        """The versions of ``name`` that exist (deleted ones are left out), oldest first."""
+        validate_name(name)
+        with catalog_errors(f"listing versions of {name!r}", self.catalog), read_txn(self.engine) as conn:
+            m = self._model_row(conn, name)
+            rows = conn.execute(
+                select(versions_t)
+                .where(and_(versions_t.c.model_name == name, versions_t.c.deleted_at.is_(None)))
+                .order_by(versions_t.c.version)
+            ).all()
+        return [self._version_out(row_dict(r), m.live_version) for r in rows]
+
+    def get_version(self, name: str, version: int) -> dict[str, Any]:
+        """The catalog row of one version (cheap; no file is read)."""
+        validate_name(name)
+        version = self._check_version(name, version)
+        with self._lock:
+            self._rows.pop((name, version), None)
+        return self._version_out(self._version_row(name, version), self.live_version(name))
+
+    def get_manifest(self, name: str, version: int) -> dict[str, Any]:
+        """The verified manifest of one version, read from disk (a fresh dict the caller may keep)."""
+        validate_name(name)
+        version = self._check_version(name, version)
+        row = self._version_row(name, version)
+        manifest, _ = artifact.read_manifest(
+            self._version_dir(name, version), expected_sha256=row["manifest_sha256"], name=name, version=version)
+        return manifest
+
+    # ------------------------------------------------------------------------------------------------
+    # live version and history
+
+    def set_live(
+        self, name: str, version: int, *, actor: str, reason: str, details: dict | None = None
+    ) -> dict[str, Any]:
+        """Make ``version`` the live version of ``name`` and append the change to the history.
+
+        Returns the history entry (``changed`` is False, and nothing is written, when the version was
+        already live)."""
+        validate_name(name)
+        version = self._check_version(name, version)
+        if not isinstance(actor, str) or not actor.strip() or len(actor) > 200:
+            raise InvalidSpec(f"actor must name who makes the change (1-200 characters), received {actor!r}.",
+                              errors=[{"field": "actor", "value": repr(actor), "message": "1-200 characters"}])
+        if not isinstance(reason, str):
+            raise InvalidSpec(f"reason must be a string, received {type(reason).__name__}.",
+                              errors=[{"field": "reason", "value": repr(reason), "message": "must be a string"}])
+        if details is not None:
+            artifact.dump_json(details, what="the history details")
+        with catalog_errors(f"setting the live version of {name!r}", self.catalog), write_txn(self.engine) as conn:
+            lock_name(conn, name)
+            m = self._model_row(conn, name)
+            row = conn.execute(select(versions_t.c.deleted_at).where(and_(
+                versions_t.c.model_name == name, versions_t.c.version == version))).first()
+            if row is None:
+                raise NotFound(f"model {name!r} has no version {version} (its newest version number is "
+                               f"{m.last_version}); it cannot go live.")
+            if row.deleted_at is not None:
+                raise NotFound(f"version {version} of model {name!r} was deleted at {iso(row.deleted_at)}; "
+                               "it cannot go live.")
+            now = utcnow()
+            entry = {"name": name, "at": now, "actor": actor, "from_version": m.live_version,
+                     "to_version": version, "reason": reason, "details": details}
+            if m.live_version == version:
+                out = {**entry, "id": None, "at": iso(now), "changed": False}
+            else:
+                conn.execute(update(models_t).where(models_t.c.name == name)
+                             .values(live_version=version, updated_at=now))
+                res = conn.execute(insert(history_t).values(
+                    model_name=name, at=now, actor=actor, from_version=m.live_version, to_version=version,
+                    reason=reason, details=details))
+                out = {**entry, "id": res.inserted_primary_key[0], "at": iso(now), "changed": True}
+        with self._lock:
+            self._live[name] = (version, time.monotonic())
+        return out
+
+    def history(self, name: str) -> list[dict[str, Any]]:
+        """Every change of the live version of ``name``, oldest first."""
+        validate_name(name)
+        with catalog_errors(f"reading the history of {name!r}", self.catalog), read_txn(self.engine) as conn:
+            self._model_row(conn, name)
+            rows = conn.execute(select(history_t).where(history_t.c.model_name == name)
+                                .order_by(history_t.c.id)).all()
+        return [
+            {"id": r.id, "name": r.model_name, "at": iso(r.at), "actor": r.actor, "from_version": r.from_version,
+             "to_version": r.to_version, "reason": r.reason, "details": r.details}
+            for r in rows
+        ]
+
+    # ------------------------------------------------------------------------------------------------
+    # retention
+
+    def delete_version(self, name: str, version: int) -> dict[str, Any]:
+        """Delete one version (refused while it is live). Its number is never reused."""
+        validate_name(name)
+        version = self._check_version(name, version)
+        self._delete(name, lambda live, alive: [version], explicit=version)
+        return {"name": name, "version": version, "deleted": True}
+
+    def prune(self, name: str, keep: int) -> list[int]:
+        """Delete all versions of ``name`` except the live one and the newest ``keep``; return the
+        deleted version numbers."""
+        validate_name(name)
+        if isinstance(keep, bool) or not isinstance(keep, int) or keep < 0:
+            raise InvalidSpec(f"keep must be a whole number >= 0, received {keep!r}; it is how many of the newest "
+                              "versions to keep besides the live one.",
+                              errors=[{"field": "keep", "value": repr(keep), "message": "whole number >= 0"}])
+
+        def choose(live: int | None, alive: list[int]) -> list[int]:
+            kept = set(sorted(alive, reverse=True)[:keep]) | ({live} if live is not None else set())
+            return [v for v in alive if v not in kept]
+
+        return self._delete(name, choose, explicit=None)
+
+    def _delete(self, name: str, choose: Callable[[int | None, list[int]], list[int]], *, explicit: int | None) -> list[int]:
+        with catalog_errors(f"deleting versions of {name!r}", self.catalog), write_txn(self.engine) as conn:
+            lock_name(conn, name)
+            m = self._model_row(conn, name)
+            rows = conn.execute(select(versions_t.c.version, versions_t.c.deleted_at)
+                                .where(versions_t.c.model_name == name)).all()
+            alive = sorted(r.version for r in rows if r.deleted_at is None)
+            if explicit is not None:
+                known = {r.version: r.deleted_at for r in rows}
+                if explicit not in known:
+                    raise NotFound(f"model {name!r} has no version {explicit} (its newest version number is "
+                                   f"{m.last_version}).")
+                if known[explicit] is not None:
+                    raise NotFound(f"version {explicit} of model {name!r} was already deleted at "
+                                   f"{iso(known[explicit])}.")
+                if explicit == m.live_version:
+                    raise Conflict(f"version {explicit} of model {name!r} is live and cannot be deleted; "
+                                   "make another version live first.")
+            doomed = sorted(choose(m.live_version, alive))
+            if doomed:
+                conn.execute(update(versions_t).where(and_(
+                    versions_t.c.model_name == name, versions_t.c.version.in_(doomed))).values(deleted_at=utcnow()))
+        # Committed: the rows are tombstones, so no publish can ever want these folders again.
+        self._erase([self._discard(self._version_dir(name, v)) for v in doomed])
+        with self._lock:
+            for v in doomed:
+                self._rows.pop((name, v), None)
+        self._cache.discard_where(lambda k: k[0] == name and k[1] in doomed)
+        return doomed
+
+    # ------------------------------------------------------------------------------------------------
+    # sweeping
+
+    def sweep(self) -> dict[str, int]:
+        """Remove what crashed or interrupted work left behind (safe while other processes publish)."""
+        counts = {"staging": self._sweep_staging(), "orphan_versions": 0, "trash": 0, "job_folders": 0}
+        for entry in sorted(self.root.iterdir()):
+            if entry.is_dir() and not entry.is_symlink():
+                try:
+                    validate_name(entry.name)
+                except TikhonError:
+                    continue
+                counts["orphan_versions"] += self._sweep_model(entry.name)
+        for entry in (self.root / TRASH_DIR).iterdir():
+            shutil.rmtree(entry, ignore_errors=True) if entry.is_dir() else entry.unlink(missing_ok=True)
+            counts["trash"] += 1
+        counts["job_folders"] = self.jobs.sweep_folders()
+        return counts
+
+    def _sweep_staging(self) -> int:
+        staging_root = self.root / STAGING_DIR
+        removed = 0
+        for entry in staging_root.iterdir():
+            if entry.name.endswith(".lock"):
+                try:
+                    fd = os.open(entry, os.O_RDWR)
+                except FileNotFoundError:
+                    continue
+                try:
+                    fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+                except BlockingIOError:
+                    os.close(fd)
+                    continue  # a live publish holds it
+                try:
+                    shutil.rmtree(staging_root / entry.name[: -len(".lock")], ignore_errors=True)
+                    entry.unlink(missing_ok=True)
+                    removed += 1
+                finally:
+                    os.close(fd)
+            elif entry.is_dir() and not (staging_root / f"{entry.name}.lock").exists():
+                shutil.rmtree(entry, ignore_errors=True)
+                removed += 1
+        return removed
+
+    def _version_folders(self, name: str) -> dict[int, Path]:
+        model_dir = self.root / name
+        out: dict[int, Path] = {}
+        if model_dir.is_dir():
+            for entry in model_dir.iterdir():
+                if entry.name.isdigit() and str(int(entry.name)) == entry.name:
+                    out[int(entry.name)] = entry
+        return out
+
+    def _sweep_model(self, name: str) -> int:
+        """Remove version folders of ``name`` that have no live catalog row. Returns how many."""
+        if not self._version_folders(name):
+            return 0
+        with catalog_errors(f"sweeping {name!r}", self.catalog), write_txn(self.engine) as conn:
+            lock_name(conn, name)
+            rows = conn.execute(select(versions_t.c.version, versions_t.c.deleted_at)
+                                .where(versions_t.c.model_name == name)).all()
+            alive = {r.version for r in rows if r.deleted_at is None}
+            trash = [self._discard(p) for v, p in self._version_folders(name).items() if v not in alive]
+        self._erase(trash)
+        return len(trash)
+
+
+def _summary_of(body: Any) -> Any:
+    """A small part of the manifest body kept in the catalog row for listings (the engine's summary)."""
+    if isinstance(body, Mapping) and isinstance(body.get("summary"), Mapping):
+        summary = dict(body["summary"])
+        if len(artifact.dump_json(summary, what="the summary")) <= 16384:
+            return summary
+    return None

@@ -1,0 +1,45 @@
+"""Small shared helpers of the store: time, row conversion, error wrapping."""
+
+from __future__ import annotations
+
+from contextlib import contextmanager
+from datetime import datetime, timezone
+from typing import Any, Iterator
+
+from sqlalchemy.exc import SQLAlchemyError
+
+from service.errors import StorageFailure, TikhonError
+
+
+def utcnow() -> datetime:
+    return datetime.now(timezone.utc)
+
+
+def as_utc(value: datetime | None) -> datetime | None:
+    """SQLite hands back naive datetimes (stored as UTC); PostgreSQL aware ones in the session zone."""
+    if value is None:
+        return None
+    if value.tzinfo is None:
+        return value.replace(tzinfo=timezone.utc)
+    return value.astimezone(timezone.utc)
+
+
+def iso(value: datetime | None) -> str | None:
+    value = as_utc(value)
+    return None if value is None else value.isoformat()
+
+
+@contextmanager
+def catalog_errors(what: str, url: str) -> Iterator[None]:
+    """Turn database driver errors into ``StorageFailure`` naming the operation and the catalog."""
+    try:
+        yield
+    except TikhonError:
+        raise
+    except SQLAlchemyError as exc:
+        msg = " ".join(str(getattr(exc, "orig", None) or exc).split())[:300]
+        raise StorageFailure(f"{what} failed in the catalog at {url}: {msg}") from exc
+
+
+def row_dict(row: Any) -> dict[str, Any]:
+    return dict(row._mapping)
