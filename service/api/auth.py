@@ -73,7 +73,7 @@ class KeyGate:
         self._ttl = ttl_s
         self._lock = threading.Lock()
         self._any: tuple[float, bool] | None = None
-        self._verified: dict[str, tuple[float, frozenset[str] | None]] = {}
+        self._verified: dict[str, tuple[float, tuple[frozenset[str], str] | None]] = {}
 
     def forget(self) -> None:
         with self._lock:
@@ -89,13 +89,13 @@ class KeyGate:
         self._any = (now, value)
         return value
 
-    def _scopes_of(self, secret: str) -> frozenset[str] | None:
+    def _scopes_of(self, secret: str) -> tuple[frozenset[str], str] | None:
         now = time.monotonic()
         cached = self._verified.get(secret)
         if cached is not None and now - cached[0] < self._ttl:
             return cached[1]
         row = self._keys.verify(secret)
-        value = None if row is None else _scope_set(row.get("scopes"))
+        value = None if row is None else (_scope_set(row.get("scopes")), str(row.get("key_id", "")))
         with self._lock:
             if len(self._verified) > 10_000:
                 self._verified.clear()
@@ -114,28 +114,31 @@ class KeyGate:
         cached = self._verified.get(secret)
         return cached is None or now - cached[0] >= self._ttl
 
-    def check(self, header: str | None, accepted: Iterable[str]) -> None:
+    def check(self, header: str | None, accepted: Iterable[str]) -> str | None:
+        """Raise Unauthorized/Forbidden, or return the key id (None when no key is needed)."""
         accepted = frozenset(accepted)
         if not self._any_active():
-            return
+            return None
         secret = _bearer(header)
         if secret is None:
             raise Unauthorized(
                 "This route needs an API key: send 'Authorization: Bearer <key>' with a key holding one of the "
                 f"scopes {sorted(accepted)}; an operator makes one with 'tikhon keys create --scope ...'."
             )
-        held = self._scopes_of(secret)
-        if held is None:
+        found = self._scopes_of(secret)
+        if found is None:
             raise Unauthorized(
                 "The API key in the Authorization header is unknown or revoked; use an active key "
                 "('tikhon keys list' shows them, 'tikhon keys create' makes a new one)."
             )
+        held, key_id = found
         if not (held & accepted):
             raise Forbidden(
                 f"The API key holds the scope(s) {sorted(held)} but this route needs one of {sorted(accepted)}; "
                 "use a key with one of those scopes.",
                 allowed=sorted(accepted),
             )
+        return key_id
 
 
 def _bearer(header: str | None) -> str | None:
@@ -153,6 +156,8 @@ async def authorize(request: Request) -> None:
     header = request.headers.get("authorization")
     accepted = accepted_scopes(request.scope.get("route"))
     if gate.needs_lookup(header):
-        await to_thread.run_sync(gate.check, header, accepted)
+        key_id = await to_thread.run_sync(gate.check, header, accepted)
     else:
-        gate.check(header, accepted)
+        key_id = gate.check(header, accepted)
+    if key_id:
+        request.scope.setdefault("state", {})["key_id"] = key_id

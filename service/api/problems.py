@@ -28,8 +28,24 @@ from service import errors as E
 PROBLEM_MEDIA_TYPE = "application/problem+json"
 log = logging.getLogger("tikhon.api")
 
+class MalformedBody(E.InvalidData):
+    """The body cannot be parsed at all (not JSON, not CSV, broken multipart). Raised by the HTTP layer only."""
+
+    slug = "malformed-request"
+    title = "Malformed request body"
+
+
+class UnsupportedMediaType(E.InvalidData):
+    """The Content-Type is not one the route reads. Raised by the HTTP layer only."""
+
+    slug = "unsupported-media-type"
+    title = "Unsupported media type"
+
+
 # Status per class. Subclasses not listed inherit their nearest listed ancestor's status.
 _STATUS: dict[type[E.TikhonError], int] = {
+    MalformedBody: 400,
+    UnsupportedMediaType: 415,
     E.InvalidSpec: 422,
     E.InvalidData: 422,
     E.BudgetExceeded: 422,
@@ -57,6 +73,7 @@ _HTTP_PROBLEMS: dict[str, tuple[str, str]] = {
     "unsupported-media-type": ("Unsupported media type", "The Content-Type is not one this route reads."),
     "not-acceptable": ("Not acceptable", "The Accept header asks for a format this route cannot produce."),
     "internal-error": ("Internal error", "An unexpected failure on the server; report the request id."),
+    "not-ready": ("Not ready", "The catalog does not answer or the store folder is not writable."),
 }
 
 

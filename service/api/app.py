@@ -1,0 +1,104 @@
+"""The app factory: ``create_app(settings, store=None) -> FastAPI``.
+
+Nothing here reads the environment or opens anything at import time. ``create_app`` wires the
+problem mapping, the middleware (request context outermost, then the body limit, then CORS), the
+open routes (health, metrics, problem-type documentation) and the ``/v1`` routers, each of which is
+guarded by the key check in ``service.api.auth``.
+"""
+
+from __future__ import annotations
+
+from contextlib import asynccontextmanager
+from typing import Any
+
+from fastapi import Depends, FastAPI
+from fastapi.middleware.cors import CORSMiddleware
+
+from service.api import auth, problems
+from service.api.metrics import ApiMetrics
+from service.api.middleware import BodyLimit, RequestContext
+from service.api.schemas import component_schemas
+from service.settings import Settings
+
+API_VERSION = "1"
+
+
+def create_app(settings: Settings, store: Any = None, *, on_shutdown=None) -> FastAPI:
+    """Build the HTTP app. ``store`` defaults to ``service.store.Store(settings)``.
+
+    ``on_shutdown``: optional callables run when the app's lifespan ends (the server uses it to stop an
+    embedded worker)."""
+    if store is None:
+        from service.store import Store
+
+        store = Store(settings)
+
+    from service.api.models import ModelCache
+    from service.api.routes import health, models, predict, trainings
+
+    @asynccontextmanager
+    async def lifespan(app: FastAPI):
+        yield
+        for fn in on_shutdown or ():
+            fn()
+
+    app = FastAPI(
+        title="Tikhon",
+        version=API_VERSION,
+        summary="Tunes, versions and serves regularized regression models (ridge, lasso, elastic net).",
+        description=(
+            "Penalty strength and basis (linear, polynomial degree, RBF width) are chosen jointly by "
+            "cross-validation. Predictions carry the exact version that produced them, CV+ intervals and "
+            "extrapolation warnings. Errors are RFC 9457 problem details (application/problem+json)."
+        ),
+        openapi_url="/openapi.json",
+        docs_url="/docs",
+        redoc_url=None,
+        lifespan=lifespan,
+    )
+    metrics = ApiMetrics()
+    app.state.settings = settings
+    app.state.store = store
+    app.state.metrics = metrics
+    app.state.gate = auth.KeyGate(store.keys, settings.auth_cache_s)
+    app.state.models = ModelCache(store, settings, metrics)
+    metrics.watch_jobs(lambda: store.jobs.list())
+
+    problems.install(app)
+
+    # Every /v1 router is included with the key check; the routers carry the /v1 prefix themselves so
+    # each route's template (used as the metrics label) is the full path.
+    for router in (models.router, trainings.router, predict.router):
+        app.include_router(router, dependencies=[Depends(auth.authorize)])
+    app.include_router(health.router)
+
+    # Starlette wraps in reverse order of addition: the last added is the outermost.
+    if settings.cors_origins:
+        app.add_middleware(
+            CORSMiddleware, allow_origins=list(settings.cors_origins), allow_methods=["GET", "POST", "PUT", "DELETE"],
+            allow_headers=["Authorization", "Content-Type", "Idempotency-Key", "X-Request-Id"],
+            expose_headers=["Location", "X-Request-Id"],
+        )
+    app.add_middleware(BodyLimit, limit=settings.max_body_bytes)
+    app.add_middleware(RequestContext, metrics=metrics)
+
+    _document_security(app)
+    return app
+
+
+def _document_security(app: FastAPI) -> None:
+    """Add the bearer-key scheme to the OpenAPI components (routes already carry their requirements)."""
+    original = app.openapi
+
+    def openapi() -> dict:
+        if app.openapi_schema:
+            return app.openapi_schema
+        schema = original()
+        components = schema.setdefault("components", {})
+        components.setdefault("securitySchemes", {})[auth.SCHEME] = auth.SECURITY_SCHEME
+        for key, value in component_schemas().items():
+            components.setdefault("schemas", {}).setdefault(key, value)
+        app.openapi_schema = schema
+        return schema
+
+    app.openapi = openapi  # type: ignore[method-assign]

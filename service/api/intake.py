@@ -1,0 +1,120 @@
+"""Accepting a training job: parse the data, validate it against the spec, stage it, enter the job.
+
+All of it runs before the job exists, so bad input is refused with a 4xx problem and nothing is
+stored: the staged file is written only after every check passed, and removed again when the catalog
+refuses the job or answers with an earlier job of the same idempotency key.
+
+The checks are the engine's own (``service.engine.tune.prepare``, the same function ``tune`` starts
+with, and ``check_budget``), so a job that is accepted here does not fail later on its input.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import re
+import uuid
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from service.api import tables
+from service.errors import InvalidData, InvalidSpec, NotFound
+from service.settings import Settings
+from service.store.jobs import IDEMPOTENCY_KEY_RULE
+
+DATA_FILE = "data.parquet"
+IDEMPOTENCY_KEY_MAX = 255
+
+
+def table_sha256(cols: tables.Table) -> str:
+    """SHA-256 of a table in a canonical form (names, dtypes and little-endian values, in column order)."""
+    h = hashlib.sha256()
+    for name, arr in cols.items():
+        h.update(name.encode() + b"\x00" + arr.dtype.str.encode() + b"\x00")
+        if arr.dtype.kind == "U":
+            h.update("\x1f".join(arr.tolist()).encode())
+        else:
+            h.update(np.ascontiguousarray(arr, dtype="<f8").tobytes())
+        h.update(b"\x1e")
+    return h.hexdigest()
+
+
+def load_data(data: dict[str, Any] | None, settings: Settings, *, upload: tuple[bytes, str | None] | None = None
+              ) -> tuple[tables.Table, dict[str, Any]]:
+    """(columns, a description of where they came from) for one of rows / csv / source / an upload."""
+    if upload is not None:
+        payload, filename = upload
+        cols = tables.from_file_bytes(payload, filename, where="the uploaded file")
+        origin = {"kind": "upload", "filename": filename}
+    elif "rows" in data:
+        rows = data["rows"]
+        if isinstance(rows, list):
+            tables.check_row_limit(len(rows), settings.max_training_rows, "max_training_rows", "data.rows")
+        cols = tables.from_rows(rows, where="data.rows")
+        origin = {"kind": "rows"}
+    elif "csv" in data:
+        cols = tables.from_csv(data["csv"], where="data.csv")
+        origin = {"kind": "csv"}
+    else:
+        path = tables.resolve_source(Path(settings.data_dir), data["source"])
+        cols = tables.read_source(path, where=f"data.source={data['source']!r}")
+        origin = {"kind": "source", "source": data["source"]}
+    n = len(next(iter(cols.values())))
+    tables.check_row_limit(n, settings.max_training_rows, "max_training_rows", "the training data")
+    origin.update(rows=n, columns=list(cols), sha256=table_sha256(cols))
+    return cols, origin
+
+
+def live_spec(store, name: str) -> dict[str, Any]:
+    """The spec of the model's live version (a retrain without a spec reuses it)."""
+    try:
+        live = store.live_version(name)
+    except NotFound:
+        live = None
+    if live is None:
+        raise InvalidSpec(
+            f"the request has no 'spec' and model {name!r} has no live version whose spec could be reused; "
+            "send a spec, at least {\"target\": \"<column>\"}.",
+            errors=[{"field": "spec", "message": "missing"}],
+        )
+    manifest = store.get_manifest(name, live)
+    spec = (manifest.get("model") or {}).get("spec")
+    if not isinstance(spec, dict):
+        raise InvalidSpec(f"the live version {live} of {name!r} keeps no reusable spec; send a spec with the request.")
+    return spec
+
+
+def validate(cols: tables.Table, spec_raw: dict[str, Any], settings: Settings) -> tuple[dict[str, Any], dict[str, int]]:
+    """Validate spec and data together exactly as the engine will; return the normalized spec and grid counts."""
+    from service.engine import check_budget, parse_spec
+    from service.engine.tune import Budget, prepare
+
+    spec = parse_spec(spec_raw)
+    prep = prepare(cols, spec)
+    n, d = prep.X.shape
+    if spec.cv.scheme not in ("loo",) and spec.cv.folds > n:
+        raise InvalidSpec(
+            f"cv.folds={spec.cv.folds} is more than the {n} rows of the data; use at most {n} folds or send more rows.",
+            errors=[{"field": "cv.folds", "value": spec.cv.folds, "message": "more folds than rows"}],
+        )
+    counts = check_budget(spec, n, d, Budget(max_grid_fits=settings.max_grid_fits), prep.categories.width)
+    return spec.model_dump(mode="json"), counts
+
+
+def check_idempotency_key(key: str | None) -> str | None:
+    """Checked before any work (the catalog applies the same rule, IDEMPOTENCY_KEY_RULE, again)."""
+    if key is None:
+        return None
+    if not re.fullmatch(IDEMPOTENCY_KEY_RULE, key):
+        raise InvalidData(
+            f"the Idempotency-Key header must be 1-{IDEMPOTENCY_KEY_MAX} printable ASCII characters without spaces, "
+            f"got {len(key)} characters; use e.g. a UUID per logical submission.",
+            errors=[{"field": "header.Idempotency-Key", "message": "1-255 printable ASCII characters, no spaces"}],
+        )
+    return key
+
+
+def stage(store, cols: tables.Table) -> Path:
+    """Write the validated table under the store's job area; the job's folder takes it over on submit."""
+    return tables.stage(cols, Path(store.jobs.incoming_dir) / f"{uuid.uuid4().hex}-{DATA_FILE}")

@@ -1,0 +1,1 @@
+"""Thin routers: parse, call the store/engine, shape the answer. Errors go through service.api.problems."""

@@ -1,0 +1,65 @@
+"""Open routes (no key needed): liveness, readiness, metrics and the problem-type documentation."""
+
+from __future__ import annotations
+
+from fastapi import APIRouter, Request
+from fastapi.responses import HTMLResponse, JSONResponse, Response
+from prometheus_client import CONTENT_TYPE_LATEST
+
+from service.api import problems
+from service.errors import NotFound
+
+router = APIRouter(tags=["health"])
+
+
+@router.get("/healthz", summary="The process is up")
+async def healthz() -> dict:
+    return {"status": "ok"}
+
+
+@router.get(
+    "/readyz", summary="The catalog answers and the store folder is writable",
+    responses={503: {"description": "Not ready; the body says which check failed."}},
+)
+def readyz(request: Request):
+    store = request.app.state.store
+    checks: dict[str, str] = {"catalog": "not checked", "store": "not checked"}
+    try:
+        checks.update(store.ping())
+    except Exception as exc:  # report, do not raise: readiness is an answer, not an error
+        checks["catalog" if "catalog" in str(exc) or "quer" in str(exc) else "store"] = str(exc)[:300]
+    ready = all(v == "ok" for v in checks.values())
+    if ready:
+        return {"status": "ready", "checks": checks}
+    body = problems.problem_body(
+        slug="not-ready", title="Not ready", status=503,
+        detail="The service cannot take work: " + "; ".join(f"{k} {v}" for k, v in checks.items() if v != "ok")
+        + ". Check the catalog URL (TIKHON_DATABASE_URL) and the store folder (TIKHON_STORE) permissions.",
+        instance="/readyz", checks=checks,
+    )
+    return problems.problem_response(body)
+
+
+@router.get("/metrics", summary="Prometheus text format", response_class=Response)
+def metrics(request: Request) -> Response:
+    return Response(request.app.state.metrics.render(), media_type=CONTENT_TYPE_LATEST)
+
+
+@router.get("/problems", summary="Every problem type the API answers with")
+async def problem_types() -> JSONResponse:
+    return JSONResponse({slug: {"type": f"/problems/{slug}", **info} for slug, info in problems.catalogue().items()})
+
+
+@router.get("/problems/{slug}", summary="What one problem type means", response_class=HTMLResponse)
+async def problem_type(slug: str) -> HTMLResponse:
+    info = problems.catalogue().get(slug)
+    if info is None:
+        raise NotFound(f"there is no problem type {slug!r}; GET /problems lists them all.")
+    from html import escape
+
+    return HTMLResponse(
+        f"<!doctype html><title>{escape(info['title'])}</title><h1>{escape(info['title'])}</h1>"
+        f"<p>{escape(info['description'])}</p><p>Problem type <code>/problems/{escape(slug)}</code> of the Tikhon API "
+        "(RFC 9457 problem details). The <code>detail</code> member of each answer names the field, the value "
+        "received and the fix.</p>"
+    )

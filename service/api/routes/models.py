@@ -1,0 +1,209 @@
+"""Model and version metadata, the CV table and regularization path, the live version and its history."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from fastapi import APIRouter, Path, Request
+from fastapi.responses import Response
+
+from service.api import auth
+from service.api.render import json_response, read_json
+from service.api.schemas import LiveRequest, schema_ref
+from service.errors import InvalidData
+from service.store.names import validate_name
+
+router = APIRouter(prefix="/v1", tags=["models"])
+
+NamePath = Path(..., description="Model name: 1-63 of a-z 0-9 _ . - starting with a letter or digit.")
+VersionPath = Path(..., ge=1, description="Version number (1, 2, ...).")
+
+# Large parts of the manifest have their own routes; the metadata route links to them instead.
+_SEPARATE = {"cv_table": "cv", "path": "path"}
+
+
+def _store(request: Request):
+    return request.app.state.store
+
+
+def _engine_body(manifest: dict[str, Any]) -> dict[str, Any]:
+    body = manifest.get("model")
+    return body if isinstance(body, dict) else manifest
+
+
+def version_metadata(name: str, version: int, manifest: dict[str, Any], row: dict[str, Any] | None = None) -> dict[str, Any]:
+    body = _engine_body(manifest)
+    meta = {k: v for k, v in body.items() if k not in _SEPARATE}
+    out: dict[str, Any] = {
+        "name": name,
+        "version": version,
+        "created_at": manifest.get("created_at"),
+        "job_id": manifest.get("job_id"),
+        "libraries": manifest.get("libraries"),
+        "checksums": {"arrays_sha256": (manifest.get("arrays") or {}).get("sha256"),
+                      "manifest_sha256": (row or {}).get("checksum")},
+        **meta,
+        "links": {
+            "cv": f"/v1/models/{name}/versions/{version}/cv",
+            "path": f"/v1/models/{name}/versions/{version}/path",
+            "predict": f"/v1/models/{name}/versions/{version}/predict",
+        },
+    }
+    return out
+
+
+@router.get("/models", summary="List models with their live version", **auth.READ)
+def list_models(request: Request) -> Response:
+    return json_response({"models": _store(request).list_models()})
+
+
+@router.get("/models/{name}", summary="One model: live version, versions, latest jobs", **auth.READ)
+def get_model(request: Request, name: str = NamePath) -> Response:
+    validate_name(name)
+    store = _store(request)
+    out = dict(store.get_model(name))
+    versions = store.list_versions(name)
+    live = out.get("live_version")
+    out["versions"] = [v.get("version") for v in versions]
+    if live is not None:
+        out["live"] = version_metadata(name, live, store.get_manifest(name, live))
+    out["links"] = {
+        "versions": f"/v1/models/{name}/versions", "history": f"/v1/models/{name}/history",
+        "trainings": f"/v1/trainings?model={name}", "predict": f"/v1/models/{name}/predict",
+    }
+    return json_response(out)
+
+
+@router.get("/models/{name}/versions", summary="The versions of a model, newest first", **auth.READ)
+def list_versions(request: Request, name: str = NamePath) -> Response:
+    validate_name(name)
+    store = _store(request)
+    versions = store.list_versions(name)
+    return json_response({"name": name, "live_version": store.live_version(name), "versions": versions})
+
+
+@router.get("/models/{name}/versions/{version}", summary="Full metadata of one version", **auth.READ)
+def get_version(request: Request, name: str = NamePath, version: int = VersionPath) -> Response:
+    validate_name(name)
+    store = _store(request)
+    manifest = store.get_manifest(name, version)
+    row = store.get_version(name, version)
+    out = version_metadata(name, version, manifest, row)
+    out["live"] = bool(row.get("live"))
+    return json_response(out)
+
+
+@router.get("/models/{name}/versions/{version}/cv", summary="The whole CV table (basis setting x strength)", **auth.READ)
+def get_cv(request: Request, name: str = NamePath, version: int = VersionPath) -> Response:
+    validate_name(name)
+    body = _engine_body(_store(request).get_manifest(name, version))
+    return json_response({
+        "name": name, "version": version, "selection": (body.get("spec") or {}).get("selection"),
+        "chosen": body.get("chosen"), "summary": body.get("cv_summary"),
+        "table": body.get("cv_table", []),
+    })
+
+
+@router.get("/models/{name}/versions/{version}/path", summary="Regularization path of the chosen basis setting", **auth.READ)
+def get_path(request: Request, name: str = NamePath, version: int = VersionPath) -> Response:
+    validate_name(name)
+    store = _store(request)
+    manifest = store.get_manifest(name, version)
+    body = _engine_body(manifest)
+    return json_response({"name": name, "version": version, "chosen": body.get("chosen"),
+                          "path": resolve_arrays(store, name, version, manifest, body.get("path"))})
+
+
+@router.put(
+    "/models/{name}/live", summary="Set the live version (recorded in the history)",
+    openapi_extra={**auth.ADMIN["openapi_extra"], "requestBody": {
+        "required": True, "content": {"application/json": {"schema": schema_ref(LiveRequest)}}}},
+)
+async def set_live(request: Request, name: str = NamePath) -> Response:
+    validate_name(name)
+    raw = await read_json(request)
+    try:
+        body = LiveRequest.model_validate(raw)
+    except Exception as exc:
+        raise _invalid_body(exc, "LiveRequest") from None
+    from anyio import to_thread
+
+    store = _store(request)
+
+    def change() -> Any:
+        return store.set_live(name, body.version, actor=_actor(request), reason=body.reason)
+
+    result = await to_thread.run_sync(change)
+    request.app.state.models.forget_live(name)
+    return json_response({"name": name, "live_version": body.version, "change": result})
+
+
+@router.get("/models/{name}/history", summary="Every change of the live version", **auth.READ)
+def get_history(request: Request, name: str = NamePath) -> Response:
+    validate_name(name)
+    store = _store(request)
+    entries = store.history(name)
+    return json_response({"name": name, "history": entries})
+
+
+@router.delete("/models/{name}/versions/{version}", summary="Delete a version that is not live", **auth.ADMIN)
+def delete_version(request: Request, name: str = NamePath, version: int = VersionPath) -> Response:
+    validate_name(name)
+    _store(request).delete_version(name, version)
+    request.app.state.models.forget(name, version)
+    return Response(status_code=204)
+
+
+def resolve_arrays(store, name: str, version: int, manifest: dict[str, Any], part: Any) -> Any:
+    """Replace the manifest's ``"arrays:<member>"`` references in ``part`` by the arrays' values.
+
+    Adapter: the store's ``LoadedVersion`` keeps the rebuilt model but not the raw arrays, so this reads
+    them with the store's own verified reader (checksum and declared dtypes checked) from the version's
+    folder ``<store root>/<name>/<version>``."""
+    from service.store import artifact
+
+    def refs(x: Any) -> bool:
+        if isinstance(x, str):
+            return x.startswith("arrays:")
+        if isinstance(x, dict):
+            return any(refs(v) for v in x.values())
+        if isinstance(x, list):
+            return any(refs(v) for v in x)
+        return False
+
+    if not refs(part):
+        return part
+    arrays, _ = artifact.read_arrays(store.root / name / str(version), manifest, name=name, version=version)
+
+    def fill(x: Any) -> Any:
+        if isinstance(x, str) and x.startswith("arrays:"):
+            member = arrays.get(x.removeprefix("arrays:"))
+            return None if member is None else member.tolist()
+        if isinstance(x, dict):
+            return {k: fill(v) for k, v in x.items()}
+        if isinstance(x, list):
+            return [fill(v) for v in x]
+        return x
+
+    return fill(part)
+
+
+def _actor(request: Request) -> str:
+    """Who made a change: the key id when keys are in use (never the secret), else the client address."""
+    key = request.scope.get("state", {}).get("key_id")
+    if key:
+        return f"key:{key}"
+    client = request.client.host if request.client else "unknown"
+    return f"client:{client}"
+
+
+def _invalid_body(exc: Exception, schema: str) -> InvalidData:
+    from pydantic import ValidationError
+
+    if isinstance(exc, ValidationError):
+        items = [{"field": ".".join(str(p) for p in e["loc"]) or "body", "message": e["msg"],
+                  **({"value": e.get("input")} if e.get("type") != "missing" else {})} for e in exc.errors(include_url=False)]
+        first = items[0]
+        return InvalidData(f"field '{first['field']}': {first['message']}; see the {schema} schema in /openapi.json.",
+                           errors=items)
+    return InvalidData(f"the body does not match the {schema} schema in /openapi.json.")

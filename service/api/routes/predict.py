@@ -1,0 +1,181 @@
+"""Predictions from the live version or a pinned version; JSON or CSV in, JSON or CSV out.
+
+The version is resolved once per request and its loaded object answers everything: the numbers, the
+intervals, the warnings and the ``model`` block. Single rows are computed inline (microseconds of
+numpy on precomputed basis arrays); larger batches go to a worker thread so the event loop stays free.
+"""
+
+from __future__ import annotations
+
+import csv
+import functools
+import io
+import math
+from typing import Any
+
+import orjson
+from anyio import to_thread
+from fastapi import APIRouter, Path, Query, Request
+from fastapi.responses import Response
+
+from service.api import auth, tables
+from service.api.models import Served
+from service.api.render import media_type, parse_json
+from service.api.problems import UnsupportedMediaType
+from service.api.schemas import PredictRequest, PredictResponse, schema_ref
+from service.errors import InvalidData
+from service.store.names import validate_name
+
+router = APIRouter(prefix="/v1", tags=["predict"])
+
+INLINE_ROWS = 256  # up to this many rows are computed on the event loop (well under a millisecond)
+
+_DOC = {
+    **auth.PREDICT["openapi_extra"],
+    "requestBody": {
+        "required": True,
+        "content": {
+            "application/json": {"schema": schema_ref(PredictRequest)},
+            "text/csv": {"schema": {"type": "string", "description": "CSV with a header of the model's input columns; "
+                                    "the interval level goes in the 'interval' query parameter."}},
+        },
+    },
+    "responses": {
+        "200": {
+            "description": "One prediction per input row, in order, and the version that produced them.",
+            "content": {
+                "application/json": {"schema": schema_ref(PredictResponse)},
+                "text/csv": {"schema": {"type": "string", "description": "Columns value[,lower,upper],warnings; the "
+                             "version is in the Tikhon-Model and Tikhon-Model-Version headers."}},
+            },
+        }
+    },
+}
+
+NamePath = Path(..., description="Model name.")
+IntervalQuery = Query(None, gt=0, lt=1, description="Interval level for CSV bodies (JSON bodies use the 'interval' field).")
+
+
+@router.post("/models/{name}/predict", summary="Predict with the live version", openapi_extra=_DOC)
+async def predict_live(request: Request, name: str = NamePath, interval: float | None = IntervalQuery) -> Response:
+    validate_name(name)
+    cache = request.app.state.models
+    version = cache.cached_live(name)
+    if version is None:
+        version = await to_thread.run_sync(cache.live_version, name)
+    served = cache.cached(name, version) or await to_thread.run_sync(cache.load, name, version)
+    return await _predict(request, served, interval)
+
+
+@router.post("/models/{name}/versions/{version}/predict", summary="Predict with a pinned version", openapi_extra=_DOC)
+async def predict_version(
+    request: Request, name: str = NamePath, version: int = Path(..., ge=1), interval: float | None = IntervalQuery
+) -> Response:
+    validate_name(name)
+    cache = request.app.state.models
+    served = cache.cached(name, version) or await to_thread.run_sync(cache.load, name, version)
+    return await _predict(request, served, interval)
+
+
+def _check_interval(value: Any, field: str) -> float | None:
+    if value is None:
+        return None
+    if type(value) not in (int, float) or not math.isfinite(value) or not 0 < value < 1:
+        raise InvalidData(
+            f"{field} must be a number strictly between 0 and 1 (the interval level, e.g. 0.9), got {value!r}.",
+            errors=[{"field": field, "value": value, "message": "expected 0 < interval < 1"}],
+        )
+    return float(value)
+
+
+def _parse_json_body(raw: bytes, limit: int, interval_q: float | None) -> tuple[dict, float | None, int]:
+    body = parse_json(raw)
+    if not isinstance(body, dict):
+        raise InvalidData(
+            f"the body must be a JSON object {{\"rows\": [...], \"interval\": 0.9}}, got a {type(body).__name__}.",
+            errors=[{"field": "body", "message": "expected an object"}],
+        )
+    extra = sorted(set(body) - {"rows", "interval"})
+    if extra:
+        raise InvalidData(
+            f"unknown field(s) {extra} in the body; only 'rows' and 'interval' are read.",
+            errors=[{"field": k, "message": "unknown field"} for k in extra],
+        )
+    if "rows" not in body:
+        raise InvalidData("the body lacks 'rows', the list of input rows.", errors=[{"field": "rows", "message": "missing"}])
+    interval = _check_interval(body.get("interval"), "interval") if "interval" in body else interval_q
+    rows = body["rows"]
+    if isinstance(rows, list):
+        tables.check_row_limit(len(rows), limit, "max_rows_per_request", "rows")
+    cols = tables.from_rows(rows, where="rows")
+    return cols, interval, len(rows)
+
+
+def _compute(served: Served, cols: dict, interval: float | None) -> dict[str, Any]:
+    return served.model.predict_detail(cols, interval=interval)
+
+
+async def _predict(request: Request, served: Served, interval_q: float | None) -> Response:
+    settings = request.app.state.settings
+    limit = settings.max_rows_per_request
+    mt = media_type(request)
+    raw = await request.body()
+    if mt == "text/csv":
+        if len(raw) > 65536:
+            cols = await to_thread.run_sync(functools.partial(tables.from_csv, raw, where="body"))
+        else:
+            cols = tables.from_csv(raw, where="body")
+        n = len(next(iter(cols.values())))
+        tables.check_row_limit(n, limit, "max_rows_per_request", "the CSV body")
+        interval = interval_q
+    elif mt in ("", "application/json") or mt.endswith("+json"):
+        if len(raw) > 65536:
+            cols, interval, n = await to_thread.run_sync(_parse_json_body, raw, limit, interval_q)
+        else:
+            cols, interval, n = _parse_json_body(raw, limit, interval_q)
+    else:
+        raise UnsupportedMediaType(
+            f"Content-Type {mt!r} is not read here; send application/json ({{\"rows\": [...]}}) or text/csv."
+        )
+    if n <= INLINE_ROWS:
+        detail = _compute(served, cols, interval)
+    else:
+        detail = await to_thread.run_sync(_compute, served, cols, interval)
+    request.app.state.metrics.predictions.labels(served.name, str(served.version)).inc(n)
+    accept = request.headers.get("accept", "")
+    if "text/csv" in accept or (mt == "text/csv" and "application/json" not in accept):
+        text = _csv(detail, interval is not None) if n <= INLINE_ROWS else await to_thread.run_sync(_csv, detail, interval is not None)
+        return Response(text, media_type="text/csv", headers={
+            "Tikhon-Model": served.name, "Tikhon-Model-Version": str(served.version)})
+    payload = _json(served, detail, interval is not None) if n <= INLINE_ROWS else await to_thread.run_sync(
+        _json, served, detail, interval is not None)
+    return Response(payload, media_type="application/json")
+
+
+def _json(served: Served, detail: dict[str, Any], with_interval: bool) -> bytes:
+    values = detail["value"].tolist()
+    warnings = detail["warnings"]
+    if with_interval:
+        lower = [v if math.isfinite(v) else None for v in detail["lower"].tolist()]
+        upper = [v if math.isfinite(v) else None for v in detail["upper"].tolist()]
+        preds = [{"value": v, "interval": [lo, hi], "warnings": w} for v, lo, hi, w in zip(values, lower, upper, warnings)]
+    else:
+        preds = [{"value": v, "warnings": w} for v, w in zip(values, warnings)]
+    return b'{"model":' + served.block_json + b',"predictions":' + orjson.dumps(preds) + b"}"
+
+
+def _csv(detail: dict[str, Any], with_interval: bool) -> str:
+    """CSV answer; numbers are written with Python's shortest round-trip repr, so they parse back exactly."""
+    out = io.StringIO()
+    w = csv.writer(out, lineterminator="\n")
+    values = detail["value"].tolist()
+    warn = ["; ".join(ws) for ws in detail["warnings"]]
+    if with_interval:
+        w.writerow(["value", "lower", "upper", "warnings"])
+        lower = ["" if not math.isfinite(v) else repr(v) for v in detail["lower"].tolist()]
+        upper = ["" if not math.isfinite(v) else repr(v) for v in detail["upper"].tolist()]
+        w.writerows(zip(map(repr, values), lower, upper, warn))
+    else:
+        w.writerow(["value", "warnings"])
+        w.writerows(zip(map(repr, values), warn))
+    return out.getvalue()

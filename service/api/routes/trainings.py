@@ -1,0 +1,163 @@
+"""Training jobs: submit (JSON or multipart), read, list, cancel. Training itself runs in a worker."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import orjson
+from anyio import to_thread
+from fastapi import APIRouter, Path, Query, Request
+from fastapi.responses import Response
+
+from service.api import auth, intake
+from service.api.problems import MalformedBody, UnsupportedMediaType
+from service.api.render import json_response, media_type, parse_json
+from service.api.schemas import TrainingRequest, parse_training_request, schema_ref
+from service.errors import InvalidData
+from service.store.names import validate_name
+
+router = APIRouter(prefix="/v1", tags=["trainings"])
+
+_MULTIPART_SCHEMA = {
+    "type": "object",
+    "required": ["file"],
+    "properties": {
+        "file": {"type": "string", "format": "binary", "description": "CSV or Parquet training table."},
+        "spec": {"type": "string", "description": "The training spec as JSON text (omitted: reuse the live version's)."},
+        "promote": {"type": "string", "enum": ["always", "if_better", "never"]},
+        "min_improvement": {"type": "number", "minimum": 0},
+    },
+}
+
+_SUBMIT_DOC = {
+    **auth.TRAIN["openapi_extra"],
+    "parameters": [{
+        "name": "Idempotency-Key", "in": "header", "required": False, "schema": {"type": "string", "maxLength": 255},
+        "description": "A repeated submission with the same key returns the first job instead of starting another.",
+    }],
+    "requestBody": {"required": True, "content": {
+        "application/json": {"schema": schema_ref(TrainingRequest)},
+        "multipart/form-data": {"schema": _MULTIPART_SCHEMA},
+    }},
+    "responses": {"202": {"description": "The job (new, or the first one with this Idempotency-Key).",
+                          "headers": {"Location": {"schema": {"type": "string"}}}}},
+}
+
+
+def job_view(job: dict[str, Any]) -> dict[str, Any]:
+    """The public shape of a job row from the catalog."""
+    jid = job["id"]
+    request = job.get("request") or {}
+    out = {
+        "id": jid,
+        "model": job.get("name"),
+        "state": job.get("state"),
+        "progress": job.get("progress") or {"done": 0, "total": None},
+        "attempts": job.get("attempts"),
+        "created_at": job.get("created_at"),
+        "started_at": job.get("started_at"),
+        "heartbeat_at": job.get("heartbeat_at"),
+        "finished_at": job.get("finished_at"),
+        "version": job.get("version"),
+        "promote": request.get("promote"),
+        "min_improvement": request.get("min_improvement"),
+        "data": request.get("data"),
+        "grid": request.get("grid"),
+        "decision": job.get("decision"),
+        "problem": job.get("problem"),
+        "links": {"self": f"/v1/trainings/{jid}", "model": f"/v1/models/{job.get('name')}"},
+    }
+    if job.get("version") is not None:
+        out["links"]["version"] = f"/v1/models/{job.get('name')}/versions/{job['version']}"
+    return out
+
+
+async def _read_submission(request: Request) -> tuple[TrainingRequest | None, dict[str, Any], tuple[bytes, str | None] | None]:
+    mt = media_type(request)
+    if mt == "multipart/form-data":
+        try:
+            form = await request.form(max_files=1, max_fields=8)
+        except Exception as exc:  # python-multipart raises several types for broken bodies
+            raise MalformedBody(f"the multipart body could not be read ({exc}); send fields 'file' and optionally "
+                                "'spec', 'promote', 'min_improvement'.") from None
+        unknown = sorted(set(form.keys()) - {"file", "spec", "promote", "min_improvement"})
+        if unknown:
+            raise InvalidData(f"unknown multipart field(s) {unknown}; the fields are file, spec, promote, min_improvement.",
+                              errors=[{"field": k, "message": "unknown field"} for k in unknown])
+        upload = form.get("file")
+        if upload is None or isinstance(upload, str):
+            raise InvalidData("the multipart body needs a 'file' part holding a CSV or Parquet table.",
+                              errors=[{"field": "file", "message": "missing"}])
+        payload = await upload.read()
+        fields: dict[str, Any] = {"data": {"csv": ""}}
+        if form.get("spec") is not None:
+            fields["spec"] = parse_json(str(form["spec"]).encode(), "multipart field 'spec'")
+        if form.get("promote") is not None:
+            fields["promote"] = str(form["promote"])
+        if form.get("min_improvement") is not None:
+            try:
+                fields["min_improvement"] = float(str(form["min_improvement"]))
+            except ValueError:
+                raise InvalidData(f"min_improvement must be a number >= 0, got {form['min_improvement']!r}.",
+                                  errors=[{"field": "min_improvement", "value": str(form["min_improvement"])}]) from None
+        parsed = parse_training_request(fields)
+        return parsed, {}, (payload, getattr(upload, "filename", None))
+    if mt in ("", "application/json") or mt.endswith("+json"):
+        raw = parse_json(await request.body())
+        parsed = parse_training_request(raw)
+        return parsed, raw["data"], None
+    raise UnsupportedMediaType(
+        f"Content-Type {mt!r} is not read here; send application/json or multipart/form-data (file + spec)."
+    )
+
+
+@router.post("/models/{name}/trainings", summary="Submit a training job", status_code=202, openapi_extra=_SUBMIT_DOC)
+async def submit(request: Request, name: str = Path(..., description="Model name.")) -> Response:
+    validate_name(name)
+    key = intake.check_idempotency_key(request.headers.get("idempotency-key"))
+    parsed, data, upload = await _read_submission(request)
+    app = request.app
+    store, settings = app.state.store, app.state.settings
+
+    def accept() -> tuple[dict[str, Any], bool]:
+        cols, origin = intake.load_data(data, settings, upload=upload)
+        spec_raw = parsed.spec if parsed.spec is not None else intake.live_spec(store, name)
+        spec, counts = intake.validate(cols, spec_raw, settings)
+        job_request = {
+            "spec": spec, "promote": parsed.promote, "min_improvement": parsed.min_improvement,
+            "data": origin, "grid": counts, "spec_reused": parsed.spec is None,
+        }
+        path = intake.stage(store, cols)
+        try:
+            job, created = store.jobs.submit(name, job_request, data_path=str(path), idempotency_key=key)
+        except BaseException:
+            path.unlink(missing_ok=True)
+            raise
+        if not created:
+            path.unlink(missing_ok=True)
+        return job, created
+
+    job, created = await to_thread.run_sync(accept)
+    view = job_view(job)
+    headers = {"Location": view["links"]["self"]}
+    if not created:
+        headers["Idempotent-Replay"] = "true"
+    return json_response(view, status=202, headers=headers)
+
+
+@router.get("/trainings/{job_id}", summary="State, progress and outcome of a training job", **auth.READ)
+def get_job(request: Request, job_id: str = Path(..., max_length=64)) -> Response:
+    return json_response(job_view(request.app.state.store.jobs.get(job_id)))
+
+
+@router.get("/trainings", summary="Training jobs, newest first", **auth.READ)
+def list_jobs(request: Request, model: str | None = Query(None, description="Only jobs of this model.")) -> Response:
+    if model is not None:
+        validate_name(model)
+    jobs = request.app.state.store.jobs.list(name=model)
+    return json_response({"trainings": [job_view(j) for j in jobs]})
+
+
+@router.delete("/trainings/{job_id}", summary="Cancel a queued or running job", **auth.TRAIN)
+def cancel_job(request: Request, job_id: str = Path(..., max_length=64)) -> Response:
+    return json_response(job_view(request.app.state.store.jobs.cancel(job_id)))

@@ -1,0 +1,89 @@
+"""Serving: ``run(settings)`` is what ``tikhon serve`` calls.
+
+It builds the store, the app and (unless ``settings.embedded_worker`` is off) a training worker in a
+background thread, then runs uvicorn. Before binding it checks access control: when no active API
+key exists the routes are open, so the server refuses to bind anything but a loopback address and
+says how to fix it.
+"""
+
+from __future__ import annotations
+
+import ipaddress
+import logging
+import socket
+
+import uvicorn
+
+from service.errors import Forbidden
+from service.settings import Settings
+
+log = logging.getLogger("tikhon.api")
+
+
+def is_loopback(host: str) -> bool:
+    """True when every address ``host`` resolves to is a loopback address (127.0.0.0/8, ::1)."""
+    if host in ("localhost",):
+        host = "127.0.0.1"
+    try:
+        return ipaddress.ip_address(host.strip("[]")).is_loopback
+    except ValueError:
+        pass
+    try:
+        infos = socket.getaddrinfo(host, None)
+    except socket.gaierror:
+        return False
+    addrs = {info[4][0] for info in infos}
+    return bool(addrs) and all(ipaddress.ip_address(a.split("%")[0]).is_loopback for a in addrs)
+
+
+def check_bind(host: str, keys_exist: bool) -> None:
+    """Refuse to serve open routes beyond this machine."""
+    if not keys_exist and not is_loopback(host):
+        raise Forbidden(
+            f"refusing to listen on {host}: no API key exists, so every route would be open to the network. "
+            "Create a key first ('tikhon keys create --scope admin'), or listen on 127.0.0.1 (TIKHON_HOST)."
+        )
+
+
+def build(settings: Settings, *, embedded_worker: bool | None = None):
+    """(app, store, worker or None) wired together: the worker's promotions clear the app's live cache."""
+    from service.api.app import create_app
+    from service.store import Store
+    from service.worker import Worker
+
+    store = Store(settings)
+    use_worker = settings.embedded_worker if embedded_worker is None else embedded_worker
+    holder: dict = {}
+
+    def stop_worker() -> None:
+        if holder.get("worker") is not None:
+            holder["worker"].stop()
+
+    app = create_app(settings, store, on_shutdown=[stop_worker])
+    worker = None
+    if use_worker:
+        worker = Worker(settings, store, on_live_change=app.state.models.forget_live)
+        holder["worker"] = worker
+    return app, store, worker
+
+
+def run(settings: Settings) -> None:
+    """Start the HTTP server (and the embedded worker) until interrupted."""
+    from service.api.logs import configure
+
+    configure(settings.log_level)
+    app, store, worker = build(settings)
+    keys_exist = store.keys.any_active()
+    check_bind(settings.host, keys_exist)
+    if not keys_exist:
+        log.warning("no API key exists: routes are open, listening on loopback only",
+                    extra={"host": settings.host, "port": settings.port})
+    if worker is not None:
+        worker.start()
+    try:
+        uvicorn.run(app, host=settings.host, port=settings.port, log_config=None, access_log=False,
+                    log_level=settings.log_level.lower(), server_header=False)
+    finally:
+        if worker is not None:
+            worker.stop()
+        store.close()

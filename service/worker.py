@@ -1,0 +1,373 @@
+"""The training worker: claims jobs from the catalog, trains each in its own process, publishes the result.
+
+One job at a time per ``Worker``. Each job runs in a fresh process (``multiprocessing`` with the
+*spawn* start method), so:
+
+* the server's event loop and threads never carry the CPU work;
+* a cancelled or over-time job is stopped for sure: first cooperatively (the engine's ``should_stop``
+  is checked after every basis setting), then, after ``cancel_grace_s``, by killing the process;
+* a crash of the training (out of memory, a native fault) fails that job with a clear problem instead
+  of taking the worker down.
+
+While the process runs, the worker sends a heartbeat with the progress (done and total units, a unit
+being one basis setting × fold) every ``worker_heartbeat_s``. The heartbeat answer tells it when the job
+was cancelled; a ``Conflict`` tells it the job was taken away (its heartbeat came too late), and the
+work is dropped without recording anything. Jobs of a worker that died are put back in the queue by
+``requeue_stale`` (any worker calls it while idle), and failed after ``max_attempts`` claims.
+
+Promotion (``promote`` in the request):
+
+* ``always``: the new version goes live. ``never``: it is only published.
+* ``if_better``: the new version goes live only if its cross-validated error beats the live version's
+  error **on the new data** by at least ``min_improvement``. The live version's figure is computed by
+  predicting the new rows with the live model as stored (it never saw them, so this is an honest
+  out-of-sample figure) and scoring the predictions with the same metric, per fold of the new job's
+  fold assignment, averaged over folds: the same aggregation as the new version's CV mean. For
+  ``rmse`` and ``mae`` lower is better, for ``r2`` higher. The new version must improve strictly, by
+  at least ``min_improvement`` (in the metric's units). When the live model cannot score the new rows
+  (a column it needs is missing, say) the comparison is impossible and the new version does not go
+  live; the job records why. Both figures, the metric and the decision are stored in the job's
+  ``decision`` and, when the version goes live, in the history entry.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import multiprocessing as mp
+import os
+import signal
+import socket
+import threading
+import time
+import traceback
+import uuid
+from typing import Any
+
+import numpy as np
+
+from service.errors import BudgetExceeded, Cancelled, Conflict, TikhonError
+from service.settings import Settings
+
+log = logging.getLogger("tikhon.worker")
+
+_SPAWN = mp.get_context("spawn")
+
+
+# ----------------------------------------------------------------------------------------------------
+# the training process
+
+
+def _problem(err: BaseException) -> dict[str, Any]:
+    from service.api.problems import internal_error_body, problem_from_error
+
+    if isinstance(err, TikhonError):
+        return problem_from_error(err)
+    body = internal_error_body(None, None)
+    body["detail"] = (f"Training failed unexpectedly ({type(err).__name__}: {' '.join(str(err).split())[:300]}); "
+                      "the worker log holds the traceback. Report it with the job id.")
+    return body
+
+
+def _train(data_path: str, spec: dict, conn, progress, cancel, deadline: float) -> None:
+    """Body of the training process: read the staged table, tune, send the artifact back through ``conn``."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)  # the parent decides when this process stops
+    try:
+        from service.api.tables import read_staged
+        from service.engine import tune
+
+        cols = read_staged(data_path)
+
+        def on_progress(done: int, total: int) -> None:
+            progress[0], progress[1] = int(done), int(total)
+
+        def should_stop() -> bool:
+            return cancel.is_set() or time.time() > deadline
+
+        result = tune(cols, spec, progress=on_progress, should_stop=should_stop)
+        body, arrays = result.to_artifact()
+        folds = np.asarray(result.folds)
+        conn.send(("ok", body, arrays, {
+            "metric": result.summary.get("metric"), "cv_mean": float(result.summary.get("mean")),
+            "folds": folds if folds.ndim == 1 and folds.dtype.kind in "iu" else None,
+            "target": result.spec.target,
+        }))
+    except Cancelled as err:
+        conn.send(("cancelled", _problem(err)))
+    except BaseException as err:  # everything goes back to the parent as a problem object
+        if not isinstance(err, TikhonError):
+            traceback.print_exc()
+        conn.send(("error", _problem(err)))
+    finally:
+        conn.close()
+
+
+# ----------------------------------------------------------------------------------------------------
+# scoring the live version on the new data (if_better)
+
+
+def _metric(metric: str, y: np.ndarray, p: np.ndarray) -> float:
+    e = y - p
+    if metric == "mae":
+        return float(np.mean(np.abs(e)))
+    if metric == "r2":
+        sst = float(np.sum((y - y.mean()) ** 2))
+        return float(1.0 - np.sum(e**2) / sst) if sst > 0 else float("nan")
+    return float(np.sqrt(np.mean(e**2)))
+
+
+def score_on(model: Any, cols: dict[str, np.ndarray], target: str, metric: str, folds: np.ndarray | None) -> float:
+    """``model``'s error on the rows of ``cols``: the metric per fold of ``folds``, averaged over folds
+    (the aggregation of a CV mean); over all rows at once when no usable fold assignment is given."""
+    y = np.asarray(cols[target], dtype=np.float64)
+    inputs = {k: v for k, v in cols.items() if k != target}
+    pred = np.asarray(model.predict(inputs), dtype=np.float64)
+    if folds is not None and folds.shape == y.shape:
+        ids = np.unique(folds)
+        if 2 <= ids.size <= 100 and all((folds == k).sum() >= 2 for k in ids):
+            return float(np.mean([_metric(metric, y[folds == k], pred[folds == k]) for k in ids]))
+    return _metric(metric, y, pred)
+
+
+def decide(store, name: str, request: dict, outcome: dict, data_path: str | None) -> tuple[bool, dict[str, Any]]:
+    """Whether the new version goes live, and the record of why (see the module docstring)."""
+    promote = request.get("promote", "if_better")
+    metric = outcome["metric"]
+    new = outcome["cv_mean"]
+    decision: dict[str, Any] = {"promote": promote, "metric": metric, "new_cv_mean": new}
+    if promote == "never":
+        return False, {**decision, "went_live": False, "reason": "promote is 'never': the version was only published"}
+    live = store.live_version(name)
+    decision["live_version"] = live
+    if live is None:
+        return True, {**decision, "went_live": True, "reason": "the model had no live version"}
+    if promote == "always":
+        return True, {**decision, "went_live": True, "reason": "promote is 'always'"}
+    min_improvement = float(request.get("min_improvement") or 0.0)
+    decision["min_improvement"] = min_improvement
+    decision["comparison"] = ("live version's predictions on the new rows, scored per fold of the new job's folds "
+                              "and averaged; the new version's figure is its CV mean")
+    try:
+        from service.api.tables import read_staged
+
+        cols = read_staged(data_path)
+        live_model = store.load(name, live).model
+        live_score = score_on(live_model, cols, outcome["target"], metric, outcome.get("folds"))
+    except TikhonError as err:
+        return False, {**decision, "went_live": False, "live_on_new_data": None,
+                       "reason": f"the live version {live} cannot score the new data ({err}); the new version was "
+                                 "published but not made live; use promote 'always' or PUT /v1/models/{name}/live"}
+    decision["live_on_new_data"] = live_score
+    if not math.isfinite(live_score):
+        return False, {**decision, "went_live": False, "reason": "the live version's figure is not finite"}
+    improvement = (new - live_score) if metric == "r2" else (live_score - new)
+    decision["improvement"] = improvement
+    better = improvement > 0 and improvement >= min_improvement
+    verb = "beats" if better else "does not beat"
+    reason = (f"new {metric} {new:.6g} {verb} the live version {live}'s {live_score:.6g} on the new data by at least "
+              f"{min_improvement:g} (improvement {improvement:.6g})")
+    return better, {**decision, "went_live": better, "reason": reason}
+
+
+# ----------------------------------------------------------------------------------------------------
+# the worker
+
+
+class Worker:
+    """Claims and runs training jobs. ``run_forever(stop)`` loops until ``stop`` is set; ``start()`` does
+    that in a background thread (the embedded worker of ``tikhon serve``)."""
+
+    def __init__(self, settings: Settings, store, *, worker_id: str | None = None, on_live_change=None):
+        self.settings = settings
+        self.store = store
+        self.worker_id = worker_id or f"{socket.gethostname()}:{os.getpid()}:{uuid.uuid4().hex[:8]}"
+        self.on_live_change = on_live_change
+        self._stop = threading.Event()
+        self._thread: threading.Thread | None = None
+        self._proc = None
+        self._last_requeue = 0.0
+
+    # -- lifecycle ----------------------------------------------------------------------------------
+    def start(self) -> "Worker":
+        self._thread = threading.Thread(target=self.run_forever, name="tikhon-worker", daemon=True)
+        self._thread.start()
+        return self
+
+    def stop(self, timeout: float = 30.0) -> None:
+        """Stop claiming; a job in progress is stopped (its process killed) and left for re-queueing."""
+        self._stop.set()
+        proc = self._proc
+        if proc is not None and proc.is_alive():
+            proc.kill()
+        if self._thread is not None:
+            self._thread.join(timeout)
+
+    def run_forever(self, stop: threading.Event | None = None) -> None:
+        stop = stop or self._stop
+        log.info("worker started", extra={"worker_id": self.worker_id})
+        while not (stop.is_set() or self._stop.is_set()):
+            try:
+                ran = self.run_once()
+            except Exception:  # a catalog hiccup must not end the loop; it is logged and retried
+                log.exception("worker loop error", extra={"worker_id": self.worker_id})
+                ran = False
+            if not ran:
+                stop.wait(self.settings.worker_poll_s)
+        log.info("worker stopped", extra={"worker_id": self.worker_id})
+
+    def run_once(self) -> bool:
+        """Re-queue stale jobs (now and then), claim one job and run it. Returns whether a job ran."""
+        now = time.monotonic()
+        if now - self._last_requeue >= self.settings.worker_stale_s / 2:
+            self._last_requeue = now
+            for job in self.store.jobs.requeue_stale(self.settings.worker_stale_s, self.settings.max_attempts):
+                log.warning("stale job handled", extra={"job_id": job["id"], "state": job["state"]})
+        job = self.store.jobs.claim(self.worker_id)
+        if job is None:
+            return False
+        self.run_job(job)
+        return True
+
+    # -- one job ------------------------------------------------------------------------------------
+    def run_job(self, job: dict[str, Any]) -> None:
+        jid, name = job["id"], job["name"]
+        request = job["request"] or {}
+        s = self.settings
+        log.info("job started", extra={"job_id": jid, "model": name, "attempt": job.get("attempts")})
+        if not job.get("data_path"):
+            self._finish(jid, "failed", problem=_problem(TikhonError(
+                "the job has no staged data file; submit it again through POST /v1/models/{name}/trainings.")))
+            return
+        parent_conn, child_conn = _SPAWN.Pipe(duplex=False)
+        progress = _SPAWN.Array("q", 2, lock=False)
+        cancel = _SPAWN.Event()
+        started = time.time()
+        deadline = started + s.max_training_seconds
+        proc = _SPAWN.Process(
+            target=_train, args=(job["data_path"], request["spec"], child_conn, progress, cancel, deadline),
+            name=f"tikhon-train-{jid[:8]}", daemon=True,
+        )
+        proc.start()
+        child_conn.close()
+        self._proc = proc
+        message = None
+        stop_reason: str | None = None  # "cancelled" | "timeout" | "lost" | "shutdown"
+        stop_since = 0.0
+        last_beat = 0.0
+        try:
+            while True:
+                if parent_conn.poll(min(0.1, s.worker_heartbeat_s)):
+                    try:
+                        message = parent_conn.recv()
+                    except EOFError:
+                        message = None
+                    break
+                if not proc.is_alive():
+                    break
+                now = time.time()
+                if self._stop.is_set() and stop_reason is None:
+                    stop_reason, stop_since = "shutdown", now
+                    proc.kill()
+                    break
+                if now - last_beat >= s.worker_heartbeat_s:
+                    last_beat = now
+                    try:
+                        state = self.store.jobs.heartbeat(jid, self.worker_id, {"done": progress[0], "total": progress[1] or None})
+                    except Conflict:
+                        stop_reason = "lost"
+                        proc.kill()
+                        break
+                    except TikhonError:
+                        state = "running"  # a missed heartbeat is retried next round; the stale timeout is generous
+                        log.warning("heartbeat failed", extra={"job_id": jid})
+                    if state == "cancelled" and stop_reason is None:
+                        stop_reason, stop_since = "cancelled", now
+                        cancel.set()
+                if now > deadline and stop_reason is None:
+                    stop_reason, stop_since = "timeout", now
+                    cancel.set()
+                if stop_reason in ("cancelled", "timeout") and now - stop_since > s.cancel_grace_s:
+                    proc.kill()
+                    break
+        finally:
+            proc.join(10)
+            if proc.is_alive():
+                proc.kill()
+                proc.join(5)
+            parent_conn.close()
+            self._proc = None
+
+        if stop_reason in ("lost", "shutdown"):
+            log.warning("job dropped", extra={"job_id": jid, "reason": stop_reason})
+            return
+        if stop_reason == "timeout" or (message is None and time.time() > deadline):
+            self._finish(jid, "failed", problem=_problem(BudgetExceeded(
+                f"the training job ran longer than the limit max_training_seconds={s.max_training_seconds:g} and was "
+                "stopped; use a smaller grid (fewer strengths, degrees, widths or folds) or fewer rows, or raise "
+                "TIKHON_MAX_TRAINING_SECONDS.", limit="max_training_seconds", allowed=s.max_training_seconds)))
+            return
+        if stop_reason == "cancelled" or (message is not None and message[0] == "cancelled"):
+            self._finish(jid, "cancelled")
+            return
+        if message is None:
+            code = proc.exitcode
+            how = f"signal {-code}" if code is not None and code < 0 else f"exit code {code}"
+            self._finish(jid, "failed", problem=_problem(TikhonError(
+                f"the training process ended without a result ({how}); the most common cause is running out of memory: "
+                "train on fewer rows or a narrower basis.")))
+            return
+        if message[0] == "error":
+            self._finish(jid, "failed", problem=message[1])
+            return
+        _, body, arrays, outcome = message
+        self._publish(job, body, arrays, outcome)
+
+    def _publish(self, job: dict[str, Any], body: dict, arrays: dict, outcome: dict) -> None:
+        jid, name = job["id"], job["name"]
+        request = job["request"] or {}
+        try:
+            go_live, decision = decide(self.store, name, request, outcome, job.get("data_path"))
+            row = self.store.publish(name, body, arrays, job_id=jid)
+            version = int(row["version"])
+            decision["version"] = version
+            if go_live:
+                self.store.set_live(name, version, actor=f"worker:{self.worker_id}"[:200],
+                                    reason=f"training job {jid}: {decision['reason']}",
+                                    details={k: v for k, v in decision.items() if k != "comparison"} | {"job_id": jid})
+                if self.on_live_change is not None:
+                    self.on_live_change(name)
+        except TikhonError as err:
+            self._finish(jid, "failed", problem=_problem(err))
+            return
+        self._finish(jid, "succeeded", version=version, decision=decision)
+        log.info("job succeeded", extra={"job_id": jid, "model": name, "version": version, "went_live": go_live})
+
+    def _finish(self, jid: str, state: str, **kw: Any) -> None:
+        try:
+            self.store.jobs.finish(jid, self.worker_id, state, **kw)
+        except Conflict as err:
+            log.warning("job result not recorded", extra={"job_id": jid, "reason": str(err)})
+        if state != "succeeded":
+            log.info("job ended", extra={"job_id": jid, "state": state})
+
+
+def run_worker(settings: Settings) -> None:
+    """Entry point of ``tikhon worker``: a standalone worker until SIGTERM or SIGINT."""
+    from service.api.logs import configure
+    from service.store import Store
+
+    configure(settings.log_level)
+    store = Store(settings)
+    worker = Worker(settings, store)
+    stop = threading.Event()
+
+    def on_signal(signum, frame):  # noqa: ARG001
+        stop.set()
+        worker.stop(timeout=0)
+
+    signal.signal(signal.SIGTERM, on_signal)
+    signal.signal(signal.SIGINT, on_signal)
+    try:
+        worker.run_forever(stop)
+    finally:
+        store.close()
