@@ -56,7 +56,7 @@ class Summary:
         parts = []
         for lo in range(0, n, chunk_rows):
             hi = min(n, lo + chunk_rows)
-            A = np.empty((hi - lo, p + 2))
+            A = np.empty((hi - lo, p + 2), order="F")
             A[:, 0] = 1.0
             A[:, 1:-1] = Phi[lo:hi]
             A[:, -1] = y[lo:hi]
@@ -71,6 +71,19 @@ class Summary:
         if not items:
             raise ValueError("no rows to combine")
         return Summary(merge([s.R for s in items]), sum(s.n for s in items))
+
+    def leading(self, k: int) -> "Summary":
+        """Summary of ``[1, Φ[:, :k-1], y]`` from the summary of ``[1, Φ, y]``: exact, because an R
+        factor's leading columns depend only on the leading columns of A, and y's component outside
+        their span has norm ‖R[k:, -1]‖. Nested bases (polynomial degrees) share one pass this way."""
+        m = self.R.shape[0]
+        if k + 1 == m:
+            return self
+        R = np.zeros((k + 1, k + 1))
+        R[:k, :k] = self.R[:k, :k]
+        R[:k, k] = self.R[:k, -1]
+        R[k, k] = np.linalg.norm(self.R[k:, -1])
+        return Summary(R, self.n)
 
     def centred(self) -> tuple[np.ndarray, np.ndarray]:
         """(means of [Φ, y], R factor of the column-centred [Φ, y])."""

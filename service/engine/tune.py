@@ -425,25 +425,47 @@ def _path(full: Fit, strengths: np.ndarray, strength: float, names: list[str], k
 
 
 class _SharedSearch:
-    """Basis fixed from all rows; one summary per atom per basis setting."""
+    """Basis fixed from all rows; one summary per atom per basis setting.
+
+    Linear and polynomial settings are nested (PolynomialFeatures orders monomials by degree, and
+    the linear basis is its first block), so they share one pass: the atoms of the highest degree are
+    summarized once, with the one-hot columns placed first, and every lower degree's summaries are
+    leading blocks of those (``Summary.leading``). The refit recomputes the chosen setting's summaries
+    in the model's own column order.
+    """
 
     def __init__(self, spec, prep, Xs, settings, strengths, ratios, plan: Plan):
         self.spec, self.prep, self.Xs, self.settings = spec, prep, Xs, settings
         self.strengths, self.ratios, self.plan = strengths, ratios, plan
-        self.atom_summaries: dict[int, list[Summary]] = {}
         self.units_per_setting = plan.n_splits
         self.n_splits = plan.n_splits
         self.assignment = plan.assignment
+        nested = [s for s in settings if s.kind in ("linear", "polynomial")]
+        d = prep.X.shape[1]
+        self._nested_top = max(nested, key=lambda s: s.n_terms(d)) if nested else None
+        self._nested: tuple[np.ndarray, list[Summary]] | None = None
 
     def _fits(self, atoms: list[Summary], train_ids: list[int], strengths: np.ndarray) -> list[Fit]:
         train = Summary.combine([atoms[i] for i in train_ids])
         return [fit(train, self.spec.penalty.kind, strengths, r) for r in self.ratios]
 
-    def evaluate(self, s_idx: int, setting: BasisSetting):
-        Phi = _design(setting, self.Xs, self.prep.cat_block)
+    def _atoms(self, setting: BasisSetting) -> tuple[np.ndarray, list[Summary]]:
+        """(design in the summaries' column order, summaries of each atom) for one setting."""
         y = self.prep.y
-        atoms = [Summary.of(Phi[idx], y[idx]) for idx in self.plan.atoms]
-        self.atom_summaries[s_idx] = atoms
+        if setting.kind in ("linear", "polynomial"):
+            if self._nested is None:
+                top = self._nested_top
+                D = np.hstack([self.prep.cat_block, top.expand(self.Xs)])
+                self._nested = (D, [Summary.of(D[idx], y[idx]) for idx in self.plan.atoms])
+            D, atoms = self._nested
+            k = 1 + self.prep.categories.width + setting.n_terms(self.prep.X.shape[1])
+            return D[:, :k - 1], [a.leading(k) for a in atoms]
+        D = _design(setting, self.Xs, self.prep.cat_block)
+        return D, [Summary.of(D[idx], y[idx]) for idx in self.plan.atoms]
+
+    def evaluate(self, s_idx: int, setting: BasisSetting):
+        D, atoms = self._atoms(setting)
+        y = self.prep.y
         metric = self.spec.selection.metric
         L = self.strengths.size
         values = np.empty((len(self.ratios), L, self.plan.n_splits))
@@ -453,21 +475,24 @@ class _SharedSearch:
             for r_i, f in enumerate(fits):
                 if metric == "mae":
                     rows = np.concatenate([self.plan.atoms[i] for i in test_ids])
-                    resid = y[rows, None] - f.intercept[None, :] - Phi[rows] @ f.weights.T
+                    resid = y[rows, None] - f.intercept[None, :] - D[rows] @ f.weights.T
                     values[r_i, :, j] = np.abs(resid).mean(axis=0)
                 else:
                     sse = test.sse(f.residual_operator())
                     values[r_i, :, j] = _metric_from_sse(metric, sse, test.n, test.total_ss())
+        if s_idx == len(self.settings) - 1 or all(
+                s.kind == "rbf" for s in self.settings[s_idx + 1:]):
+            self._nested = None  # free the largest design once no nested setting is left
         yield values, None
 
     def refit(self, s_idx, setting, strength, ratio, strengths, scaler, chosen):
-        atoms = self.atom_summaries[s_idx]
         plan = self.plan
+        y = self.prep.y
+        Phi = _design(setting, self.Xs, self.prep.cat_block)
+        atoms = [Summary.of(Phi[idx], y[idx]) for idx in plan.atoms]
         full_summary = Summary.combine([atoms[i] for i in plan.refit_atoms])
         full = fit(full_summary, self.spec.penalty.kind, strengths, ratio)
         l_idx = int(np.flatnonzero(strengths == strength)[0])
-        Phi = _design(setting, self.Xs, self.prep.cat_block)
-        y = self.prep.y
         n = y.size
         oof_pred = np.full(n, np.nan)
         oof_fold = np.full(n, -1, dtype=np.int64)
