@@ -320,6 +320,13 @@ class Worker:
             self._finish(jid, "failed", problem=message[1])
             return
         _, body, arrays, outcome = message
+        try:  # record the final progress (the last heartbeat may predate the end of the search)
+            self.store.jobs.heartbeat(jid, self.worker_id, {"done": progress[0], "total": progress[1] or None})
+        except Conflict:
+            log.warning("job dropped", extra={"job_id": jid, "reason": "lost before publishing"})
+            return
+        except TikhonError:
+            pass
         self._publish(job, body, arrays, outcome)
 
     def _publish(self, job: dict[str, Any], body: dict, arrays: dict, outcome: dict) -> None:
