@@ -656,9 +656,11 @@ class Store:
 
 
 def _summary_of(body: Any) -> Any:
-    """A small part of the manifest body kept in the catalog row for listings (the engine's summary)."""
-    if isinstance(body, Mapping) and isinstance(body.get("summary"), Mapping):
-        summary = dict(body["summary"])
-        if len(artifact.dump_json(summary, what="the summary")) <= 16384:
-            return summary
+    """The small parts of the manifest body kept in the catalog row for listings: the engine's chosen
+    point and CV summary (``chosen``, ``cv_summary``) or a generic ``summary``."""
+    if not isinstance(body, Mapping):
+        return None
+    summary = {k: body[k] for k in ("chosen", "cv_summary", "summary") if isinstance(body.get(k), Mapping)}
+    if summary and len(artifact.dump_json(summary, what="the summary")) <= 16384:
+        return summary
     return None

@@ -7,6 +7,8 @@ The subprocess commands (``python tests/store/procs.py <command> ...``):
 * ``fault``: open a store and publish once, SIGKILLing itself at the named protocol step.
 * ``load``: load one version and print its predictions on fixed inputs as hex floats (bit-exact).
 * ``claim``: claim jobs until none is left; print the ids.
+* ``predict``: load one version with the engine's loader (the real one) and print, as hex floats, its
+  predictions on the columns stored in ``--inputs`` (an .npz read without pickle).
 """
 
 from __future__ import annotations
@@ -53,7 +55,7 @@ def _open(args):
 
 def main(argv: list[str]) -> int:
     p = argparse.ArgumentParser()
-    p.add_argument("command", choices=["publish", "fault", "load", "claim"])
+    p.add_argument("command", choices=["publish", "fault", "load", "claim", "predict"])
     p.add_argument("--store", required=True)
     p.add_argument("--url", default="")
     p.add_argument("--name", default="m")
@@ -66,7 +68,21 @@ def main(argv: list[str]) -> int:
     p.add_argument("--step", default="")
     p.add_argument("--version", type=int, default=1)
     p.add_argument("--worker", default="w")
+    p.add_argument("--inputs", default="")
     args = p.parse_args(argv)
+
+    if args.command == "predict":
+        from service.settings import Settings
+        from service.store import Store
+
+        store = Store(Settings(store=Path(args.store), database_url=args.url or None))
+        loaded = store.load(args.name, args.version)
+        with np.load(args.inputs, allow_pickle=False) as npz:
+            data = {k: npz[k] for k in npz.files}
+        print(json.dumps({"checksum": loaded.checksum,
+                          "predictions": [float(v).hex() for v in loaded.model.predict(data)]}))
+        store.close()
+        return 0
 
     store = _open(args)
     if args.ready:
