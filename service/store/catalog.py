@@ -141,6 +141,10 @@ def head_revision() -> str:
     return ScriptDirectory.from_config(alembic_config()).get_current_head()
 
 
+def known_revisions() -> set[str]:
+    return {script.revision for script in ScriptDirectory.from_config(alembic_config()).walk_revisions()}
+
+
 def current_revision(conn: Connection) -> str | None:
     return MigrationContext.configure(conn, opts={"version_table": VERSION_TABLE}).get_current_revision()
 
@@ -155,7 +159,13 @@ def migrate(engine: Engine) -> str:
         with write_txn(engine) as conn:
             if conn.dialect.name == "postgresql":
                 conn.execute(text("SELECT pg_advisory_xact_lock(:k)"), {"k": _MIGRATION_LOCK})
-            if current_revision(conn) != head:
+            current = current_revision(conn)
+            if current is not None and current not in known_revisions():
+                raise StorageFailure(
+                    f"the catalog at {safe_url(engine)} has schema revision {current!r}, which this Tikhon does not "
+                    f"know (its newest is {head!r}); it was written by a newer Tikhon: upgrade this one."
+                )
+            if current != head:
                 cfg = alembic_config()
                 cfg.attributes["connection"] = conn
                 command.upgrade(cfg, "head")

@@ -218,6 +218,14 @@ class Jobs:
         with self._errors("listing training jobs"), read_txn(self._engine) as conn:
             return [self._out(r) for r in conn.execute(q).all()]
 
+    def counts(self) -> dict[str, int]:
+        """How many jobs are in each state (all states present, zeros included), e.g. for metrics."""
+        from sqlalchemy import func
+
+        with self._errors("counting training jobs"), read_txn(self._engine) as conn:
+            found = dict(conn.execute(select(jobs_t.c.state, func.count()).group_by(jobs_t.c.state)).all())
+        return {state: int(found.get(state, 0)) for state in STATES}
+
     # ------------------------------------------------------------------------------------------------
     # worker side
 
