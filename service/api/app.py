@@ -34,7 +34,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None) -> Fa
         store = Store(settings)
 
     from service.api.models import ModelCache
-    from service.api.routes import health, models, predict, trainings
+    from service.api.routes import health, models, pages, plots, predict, trainings
 
     @asynccontextmanager
     async def lifespan(app: FastAPI):
@@ -68,9 +68,12 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None) -> Fa
 
     # Every /v1 router is included with the key check; the routers carry the /v1 prefix themselves so
     # each route's template (used as the metrics label) is the full path.
-    for router in (models.router, trainings.router, predict.router):
+    for router in (models.router, trainings.router, predict.router, plots.router):
         app.include_router(router, dependencies=[Depends(auth.authorize)])
+    from service.api.routes import admin  # API keys and pruning (admin scope)
+    app.include_router(admin.router, dependencies=[Depends(auth.authorize)])
     app.include_router(health.router)
+    app.include_router(pages.router)  # the HTML overview; checks keys itself (login form)
 
     # Starlette wraps in reverse order of addition: the last added is the outermost.
     if settings.cors_origins:

@@ -150,10 +150,26 @@ def _bearer(header: str | None) -> str | None:
     return value.strip()
 
 
+# The overview page's login form stores the key in this HttpOnly, SameSite=Strict cookie. It stands in
+# for the Authorization header on reads only (GET/HEAD), so a page can embed figures and poll jobs while
+# nothing that changes state is ever authorized by a cookie.
+COOKIE = "tikhon_key"
+
+
+def credentials(request: Request) -> str | None:
+    """The Authorization header, or for GET/HEAD without one, the login cookie as a bearer header."""
+    header = request.headers.get("authorization")
+    if header is None and request.method in ("GET", "HEAD"):
+        secret = request.cookies.get(COOKIE)
+        if secret:
+            return f"Bearer {secret}"
+    return header
+
+
 async def authorize(request: Request) -> None:
     """Router-level dependency of every ``/v1`` route."""
     gate: KeyGate = request.app.state.gate
-    header = request.headers.get("authorization")
+    header = credentials(request)
     accepted = accepted_scopes(request.scope.get("route"))
     if gate.needs_lookup(header):
         key_id = await to_thread.run_sync(gate.check, header, accepted)

@@ -1,0 +1,181 @@
+"""The HTML overview (``/``, ``/models/{name}``), its sign-in form and its two static files.
+
+Read-only. When API keys exist, a page needs a key holding a read scope (``predict``, ``train`` or
+``admin``, the same as the ``/v1`` routes it shows), either in the Authorization header or in the
+HttpOnly, SameSite=Strict cookie that ``POST /login`` sets after checking the key. Without a key the
+browser is sent to the sign-in form. The cookie authorizes GET/HEAD only (``service.api.auth``).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path as FilePath
+from urllib.parse import quote, urlsplit
+
+from fastapi import APIRouter, Path, Query, Request
+from fastapi.responses import HTMLResponse, RedirectResponse, Response
+
+from service.api import auth, pages
+from service.errors import Forbidden, NotFound, TikhonError, Unauthorized
+from service.store.names import validate_name
+
+router = APIRouter(include_in_schema=False)
+
+WEB = FilePath(__file__).resolve().parent.parent / "web"
+ASSETS = {"tikhon.css": "text/css; charset=utf-8", "tikhon.js": "text/javascript; charset=utf-8"}
+# The scopes of the /v1 read routes the pages show (predict, train, admin).
+READ_SCOPES = frozenset(s for req in auth.READ["openapi_extra"]["security"] for s in req[auth.SCHEME])
+
+_HEADERS = {
+    "Content-Security-Policy": "default-src 'self'; img-src 'self'; style-src 'self'; script-src 'self'; "
+    "connect-src 'self'; form-action 'self'; frame-ancestors 'none'; base-uri 'none'; object-src 'none'",
+    "X-Content-Type-Options": "nosniff",
+    "Referrer-Policy": "no-referrer",
+    "Cache-Control": "no-store",
+    "X-Frame-Options": "DENY",
+}
+
+
+def _html(text: str, status: int = 200) -> HTMLResponse:
+    return HTMLResponse(text, status_code=status, headers=_HEADERS)
+
+
+class _SignIn(Exception):
+    """The page needs a key: answer with a redirect to the sign-in form."""
+
+
+def _access(request: Request) -> bool:
+    """Check the caller may read; return whether a key (header or cookie) was used."""
+    gate: auth.KeyGate = request.app.state.gate
+    header = auth.credentials(request)
+    try:
+        key_id = gate.check(header, READ_SCOPES)
+    except Unauthorized:
+        raise _SignIn() from None
+    return key_id is not None and request.cookies.get(auth.COOKIE) is not None
+
+
+def _guarded(request: Request, render) -> Response:
+    try:
+        signed_in = _access(request)
+    except _SignIn:
+        target = request.url.path + (f"?{request.url.query}" if request.url.query else "")
+        return RedirectResponse(f"/login?next={quote(target, safe='')}", status_code=303, headers=_HEADERS)
+    except Forbidden as exc:
+        return _html(pages.error_page("This key cannot read the overview", str(exc), signed_in=True), 403)
+    try:
+        return _html(render(signed_in))
+    except TikhonError as exc:  # the same message and status as the JSON problem, as a page
+        from service.api.problems import status_for
+
+        return _html(pages.error_page(exc.title, str(exc), signed_in=signed_in), status_for(exc))
+
+
+@router.get("/", response_class=HTMLResponse)
+def overview(request: Request) -> Response:
+    store = request.app.state.store
+
+    def render(signed_in: bool) -> str:
+        models = store.list_models()
+        live_rows = {}
+        for m in models:
+            if m.get("live_version"):
+                try:
+                    live_rows[m["name"]] = store.get_version(m["name"], m["live_version"])
+                except NotFound:  # deleted between the two reads; show the model without it
+                    live_rows[m["name"]] = None
+        jobs = _jobs(store, None)
+        return pages.overview(models, live_rows, jobs, signed_in=signed_in)
+
+    return _guarded(request, render)
+
+
+def _jobs(store, name: str | None) -> list[dict]:
+    from service.api.routes.trainings import job_view
+
+    return [job_view(j) for j in store.jobs.list(name=name)]
+
+
+@router.get("/models/{name}", response_class=HTMLResponse)
+def model(request: Request, name: str = Path(...), version: str | None = Query(None)) -> Response:
+    store = request.app.state.store
+
+    def render(signed_in: bool) -> str:
+        validate_name(name)
+        info = store.get_model(name)
+        versions = store.list_versions(name)
+        history = store.history(name)
+        jobs = _jobs(store, name)
+        numbers = [v["version"] for v in versions]
+        if version is not None:
+            try:
+                selected = int(version)
+            except ValueError:
+                raise NotFound(f"version {version!r} of model {name!r} does not exist; versions are whole numbers "
+                               f"(this model has {', '.join(map(str, numbers)) or 'none'}).") from None
+            if selected not in numbers:
+                raise NotFound(f"model {name!r} has no version {selected}; it has "
+                               f"{', '.join(map(str, numbers)) or 'none'}.")
+        else:
+            selected = info.get("live_version") or (numbers[-1] if numbers else None)
+        manifest = store.get_manifest(name, selected) if selected is not None else None
+        return pages.model_page(name, info, versions, history, jobs, selected, manifest, signed_in=signed_in)
+
+    return _guarded(request, render)
+
+
+def _safe_next(value: str | None) -> str:
+    """Only a path on this site (no scheme, no host, no '//' or backslash tricks) may follow a sign-in."""
+    if not value or not value.startswith("/") or value.startswith("//") or "\\" in value:
+        return "/"
+    parts = urlsplit(value)
+    if parts.scheme or parts.netloc:
+        return "/"
+    return value
+
+
+@router.get("/login", response_class=HTMLResponse)
+def login_form(request: Request, next: str | None = Query(None)) -> Response:
+    return _html(pages.login_page(_safe_next(next)))
+
+
+@router.post("/login", response_class=HTMLResponse)
+async def login(request: Request) -> Response:
+    from anyio import to_thread
+
+    origin = request.headers.get("origin")
+    if origin and origin != "null" and urlsplit(origin).netloc != request.headers.get("host"):
+        return _html(pages.error_page("Sign-in refused", f"The sign-in form was posted from another site ({origin}); "
+                                      "open the sign-in page of this server and post it from there.",
+                                      signed_in=False), 403)
+    try:
+        form = await request.form(max_files=0, max_fields=4)
+    except Exception:
+        form = {}
+    key = str(form.get("key") or "").strip()
+    next_url = _safe_next(str(form.get("next") or "/"))
+    gate: auth.KeyGate = request.app.state.gate
+    if not key:
+        return _html(pages.login_page(next_url, message="Paste an API key into the field."), 400)
+    try:
+        await to_thread.run_sync(gate.check, f"Bearer {key}", READ_SCOPES)
+    except (Unauthorized, Forbidden) as exc:
+        return _html(pages.login_page(next_url, message=str(exc)), 401 if isinstance(exc, Unauthorized) else 403)
+    response = RedirectResponse(next_url, status_code=303, headers=_HEADERS)
+    response.set_cookie(auth.COOKIE, key, httponly=True, samesite="strict", path="/",
+                        secure=request.url.scheme == "https")
+    return response
+
+
+@router.post("/logout")
+def logout(request: Request) -> Response:
+    response = RedirectResponse("/login", status_code=303, headers=_HEADERS)
+    response.delete_cookie(auth.COOKIE, path="/", httponly=True, samesite="strict")
+    return response
+
+
+@router.get("/assets/{file}")
+def asset(file: str) -> Response:
+    if file not in ASSETS:
+        raise NotFound(f"there is no asset {file!r}; the page uses {', '.join(sorted(ASSETS))}.")
+    return Response((WEB / file).read_bytes(), media_type=ASSETS[file],
+                    headers={"Cache-Control": "public, max-age=300", "X-Content-Type-Options": "nosniff"})
