@@ -29,6 +29,13 @@ class TikhonError(Exception):
     def __str__(self) -> str:  # one line, always
         return " ".join(self.detail.split())
 
+    def __reduce__(self):  # keep the fields when an error crosses a process (worker pool, Dask)
+        return (_rebuild, (type(self), self.detail, self.errors, self.extra))
+
+
+def _rebuild(cls: type, detail: str, errors: list[dict[str, Any]], extra: dict[str, Any]) -> "TikhonError":
+    return cls(detail, errors=errors, **extra)
+
 
 class InvalidSpec(TikhonError):
     """The training spec is malformed or inconsistent with the data."""

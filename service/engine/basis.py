@@ -8,8 +8,8 @@ Definitions (the tests compare them with scikit-learn, so they are exact):
 - ``polynomial`` of degree d: every monomial of the standardized inputs up to degree d, with
   interactions, in the column order of ``sklearn.preprocessing.PolynomialFeatures(d, include_bias=False)``.
 - ``rbf`` of width w: ``exp(-||x - c||^2 / (2 w^2))`` for centres c chosen by k-means (seeded, on the
-  standardized inputs; on a seeded sample of 50,000 rows when there are more) or every row when
-  ``centers >= n``. Widths are therefore in units of standardized inputs.
+  standardized inputs; when there are more than 50,000 rows, on the 50,000 whose seeded key hashes are
+  smallest, so a streamed read picks the same sample) or every row when ``centers >= n``. Widths are therefore in units of standardized inputs.
 - Categorical columns are one-hot encoded (one column per level seen in training, levels sorted) and
   appended after the basis expansion. A level unseen in training encodes as all zeros.
 """
@@ -150,16 +150,28 @@ def _rbf(Xs: np.ndarray, centers: np.ndarray, width: float) -> np.ndarray:
     return np.exp(sq, out=sq)
 
 
-def rbf_centers(Xs: np.ndarray, count: int, seed: int) -> np.ndarray:
+def sample_rows(n: int, seed: int, keys: np.ndarray | None = None, size: int = KMEANS_SAMPLE) -> np.ndarray:
+    """Indices of the ``size`` rows with the smallest seeded key hashes, in row order: a sample that a
+    streamed or partitioned read of the same rows reproduces exactly (bottom-k sampling)."""
+    if n <= size:
+        return np.arange(n)
+    from .folds import key_hash
+
+    h = key_hash(np.arange(n) if keys is None else keys, seed ^ 0x5A17)
+    return np.sort(np.argpartition(h, size - 1)[:size])
+
+
+def rbf_centers(Xs: np.ndarray, count: int, seed: int, keys: np.ndarray | None = None) -> np.ndarray:
     n = Xs.shape[0]
     if count >= n:
         return np.array(Xs, dtype=np.float64, copy=True)
+    sample = Xs[sample_rows(n, seed, keys)] if n > KMEANS_SAMPLE else Xs
+    return kmeans_centers(sample, count, seed)
+
+
+def kmeans_centers(sample: np.ndarray, count: int, seed: int) -> np.ndarray:
     from sklearn.cluster import KMeans
 
-    sample = Xs
-    if n > KMEANS_SAMPLE:
-        rng = np.random.default_rng(seed)
-        sample = Xs[np.sort(rng.choice(n, KMEANS_SAMPLE, replace=False))]
     km = KMeans(n_clusters=count, n_init=3, random_state=seed).fit(sample)
     return np.ascontiguousarray(km.cluster_centers_, dtype=np.float64)
 

@@ -8,6 +8,10 @@ A plan cuts the rows into *atoms* (blocks that are never split) and lists each s
 - grouped: ``GroupKFold(n_splits=folds)`` on ``group_by``.
 - time_ordered: ``TimeSeriesSplit(n_splits=folds)`` on the rows sorted (stably) by ``order_by``;
   atoms are the contiguous blocks, split k trains on blocks 0..k and validates on block k + 1.
+- hash assignment (kfold, grouped): a row goes to fold ``h(key) mod folds``, where h is SplitMix64
+  (Steele, Lea & Flood, "Fast splittable pseudorandom number generators", OOPSLA 2014) of the row key
+  mixed with the seed. The key is the row's position, a ``row_key`` column, or for grouped the group.
+  Any re-read of the same rows, in any order or partitioning, gives the same folds.
 """
 
 from __future__ import annotations
@@ -32,7 +36,44 @@ class Plan:
         return len(self.splits)
 
 
-def make_plan(cv, n: int, groups: np.ndarray | None = None, order: np.ndarray | None = None) -> Plan:
+_M1 = np.uint64(0xBF58476D1CE4E5B9)
+_M2 = np.uint64(0x94D049BB133111EB)
+_GOLDEN = np.uint64(0x9E3779B97F4A7C15)
+
+
+def splitmix64(x: np.ndarray) -> np.ndarray:
+    with np.errstate(over="ignore"):
+        z = x.astype(np.uint64) + _GOLDEN
+        z = (z ^ (z >> np.uint64(30))) * _M1
+        z = (z ^ (z >> np.uint64(27))) * _M2
+        return z ^ (z >> np.uint64(31))
+
+
+def key_hash(keys: np.ndarray, seed: int) -> np.ndarray:
+    """Stable 64-bit hash of row keys (integers, floats or text) mixed with the seed."""
+    keys = np.asarray(keys)
+    if keys.dtype.kind in "iub":
+        u = keys.astype(np.int64).view(np.uint64)
+    elif keys.dtype.kind == "f":
+        u = (keys.astype(np.float64) + 0.0).view(np.uint64)  # + 0.0 folds -0.0 into 0.0
+    else:
+        import hashlib
+
+        u = np.fromiter((int.from_bytes(hashlib.blake2b(str(v).encode("utf-8"), digest_size=8).digest(), "little")
+                         for v in keys), dtype=np.uint64, count=len(keys))
+    return splitmix64(u ^ splitmix64(np.array([seed], dtype=np.uint64))[0])
+
+
+def hash_folds(keys: np.ndarray, seed: int, folds: int) -> np.ndarray:
+    return (key_hash(keys, seed) % np.uint64(folds)).astype(np.int64)
+
+
+def uses_hash(cv, streaming: bool = False) -> bool:
+    return cv.assignment == "hash" or (cv.assignment == "auto" and streaming)
+
+
+def make_plan(cv, n: int, groups: np.ndarray | None = None, order: np.ndarray | None = None,
+              keys: np.ndarray | None = None) -> Plan:
     from sklearn.model_selection import GroupKFold, KFold, RepeatedKFold, TimeSeriesSplit
 
     k = cv.folds
@@ -40,6 +81,9 @@ def make_plan(cv, n: int, groups: np.ndarray | None = None, order: np.ndarray | 
         raise InvalidSpec(f"cv.folds is {k} but the data has only {n} rows; use at most {max(2, n - 1)} folds",
                           errors=[{"field": "cv.folds", "value": k, "message": "more folds than rows"}])
     dummy = np.zeros((n, 1))
+    if uses_hash(cv) and cv.scheme in ("kfold", "grouped"):
+        source = groups if cv.scheme == "grouped" else (np.arange(n) if keys is None else keys)
+        return plan_from_assignment(hash_folds(source, cv.seed, k), k)
     if cv.scheme == "kfold":
         tests = [t for _, t in KFold(k, shuffle=True, random_state=cv.seed).split(dummy)]
         return _partition_plan(tests, n)
@@ -75,6 +119,15 @@ def make_plan(cv, n: int, groups: np.ndarray | None = None, order: np.ndarray | 
             assignment[atoms[j + 1]] = j
         return Plan(atoms, splits, assignment, list(range(k + 1)), list(range(k)))
     raise InvalidSpec(f"cv.scheme {cv.scheme!r} has no fold plan")
+
+
+def plan_from_assignment(assignment: np.ndarray, k: int) -> Plan:
+    tests = [np.flatnonzero(assignment == j) for j in range(k)]
+    empty = [j for j, t in enumerate(tests) if t.size == 0]
+    if empty:
+        raise InvalidSpec(f"hash assignment left fold {empty[0]} empty; use fewer folds or more rows/groups",
+                          errors=[{"field": "cv.folds", "value": k, "message": "empty fold"}])
+    return _partition_plan(tests, assignment.size)
 
 
 def _partition_plan(tests: list[np.ndarray], n: int) -> Plan:

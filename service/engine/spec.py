@@ -141,6 +141,12 @@ class CrossValidation(BaseModel):
     seed: int = Field(0, ge=0, le=2**32 - 1)
     group_by: str | None = None
     order_by: str | None = None
+    assignment: Literal["auto", "shuffle", "hash"] = Field(
+        "auto", description="How kfold assigns rows: 'shuffle' is KFold(shuffle=True, random_state=seed); 'hash' "
+        "puts a row in fold hash(row key, seed) mod folds, which a re-read of the same rows reproduces in any "
+        "order or partitioning (needed out of core); 'auto' is shuffle in memory and hash when streaming.")
+    row_key: str | None = Field(None, description="Column whose value identifies a row for hash assignment; "
+                                "default: the row's position in the source.")
 
     @model_validator(mode="after")
     def _consistent(self) -> "CrossValidation":
@@ -149,6 +155,14 @@ class CrossValidation(BaseModel):
         if self.scheme == "time_ordered" and not self.order_by:
             raise ValueError("the time_ordered scheme needs order_by, the column that orders rows in time")
         return self
+
+
+class Execution(BaseModel):
+    model_config = _STRICT
+    mode: Literal["auto", "memory", "streaming"] = Field(
+        "auto", description="'memory' loads the table; 'streaming' reads it in row batches (out of core); "
+        "'auto' streams sources larger than the service's streaming threshold.")
+    batch_rows: int = Field(65_536, ge=256, le=10_000_000, description="Rows per batch when streaming.")
 
 
 class Selection(BaseModel):
@@ -172,6 +186,7 @@ class TuneSpec(BaseModel):
     penalty: Penalty = Field(default_factory=Penalty)
     cv: CrossValidation = Field(default_factory=CrossValidation)
     selection: Selection = Field(default_factory=Selection)
+    execution: Execution = Field(default_factory=Execution)
 
     @model_validator(mode="after")
     def _consistent(self) -> "TuneSpec":

@@ -67,10 +67,14 @@ class Summary:
 
     @staticmethod
     def combine(items: list["Summary"]) -> "Summary":
-        items = [s for s in items if s.n > 0]
-        if not items:
-            raise ValueError("no rows to combine")
-        return Summary(merge([s.R for s in items]), sum(s.n for s in items))
+        kept = [s for s in items if s.n > 0]
+        if not kept:
+            return Summary(np.zeros_like(items[0].R), 0)
+        return Summary(merge([s.R for s in kept]), sum(s.n for s in kept))
+
+    def permuted(self, order: list[int]) -> "Summary":
+        """Summary of A[:, order]: ``A P = Q (R P)``, so an R factor of ``R P`` serves (no rows needed)."""
+        return Summary(qr_r(self.R[:, order]), self.n)
 
     def leading(self, k: int) -> "Summary":
         """Summary of ``[1, Φ[:, :k-1], y]`` from the summary of ``[1, Φ, y]``: exact, because an R

@@ -50,8 +50,9 @@ def as_columns(data: Any) -> Columns:
     return out
 
 
-def numeric_column(cols: Columns, name: str, role: str) -> np.ndarray:
-    """The named column as float64, refusing non-numbers and NaN/inf with the first offending rows."""
+def numeric_column(cols: Columns, name: str, role: str, offset: int = 0) -> np.ndarray:
+    """The named column as float64, refusing non-numbers and NaN/inf with the first offending rows
+    (row numbers count from ``offset``, the position of the first row in the whole source)."""
     if name not in cols:
         known = ", ".join(sorted(cols)[:20])
         raise InvalidData(f"{role} column {name!r} is not in the data; columns present: {known}",
@@ -64,14 +65,15 @@ def numeric_column(cols: Columns, name: str, role: str) -> np.ndarray:
             x = np.array([_to_float(v) for v in raw], dtype=np.float64)
         except (TypeError, ValueError):
             bad = [i for i, v in enumerate(raw) if not _is_number(v)][:5]
+            shown = [i + offset for i in bad]
             raise InvalidData(
-                f"{role} column {name!r} must be numeric; rows {bad} hold {[_short(raw[i]) for i in bad]}; "
+                f"{role} column {name!r} must be numeric; rows {shown} hold {[_short(raw[i]) for i in bad]}; "
                 "fix or drop those rows, or list the column under 'categorical'",
-                errors=[{"field": name, "rows": bad, "message": "not a number"}],
+                errors=[{"field": name, "rows": shown, "message": "not a number"}],
             ) from None
     finite = np.isfinite(x)
     if not finite.all():
-        bad = np.flatnonzero(~finite)[:5].tolist()
+        bad = (np.flatnonzero(~finite)[:5] + offset).tolist()
         raise InvalidData(
             f"{role} column {name!r} holds NaN or infinite values, first at rows {bad}; "
             "drop or impute those rows before training",

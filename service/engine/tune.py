@@ -54,6 +54,7 @@ class Prepared:
     groups: np.ndarray | None
     order: np.ndarray | None
     used: list[str]
+    keys: np.ndarray | None = None
 
 
 @dataclass
@@ -165,14 +166,22 @@ def prepare(data: Any, spec: TuneSpec) -> Prepared:
                               errors=[{"field": "cv.order_by", "value": spec.cv.order_by, "message": "unknown column"}])
         raw = cols[spec.cv.order_by]
         order = raw if raw.dtype.kind in "biufM" else np.asarray(raw).astype(str)
+    keys = None
+    if spec.cv.row_key:
+        if spec.cv.row_key not in cols:
+            raise InvalidSpec(f"cv.row_key column {spec.cv.row_key!r} is not in the data",
+                              errors=[{"field": "cv.row_key", "value": spec.cv.row_key, "message": "unknown column"}])
+        keys = cols[spec.cv.row_key]
     used = [spec.target, *features, *spec.categorical]
-    for extra in (spec.cv.group_by, spec.cv.order_by):
+    for extra in (spec.cv.group_by, spec.cv.order_by, spec.cv.row_key):
         if extra and extra not in used:
             used.append(extra)
-    return Prepared(cols, features, X, y, categories, cat_block, groups, order, used)
+    return Prepared(cols, features, X, y, categories, cat_block, groups, order, used, keys)
 
 
-def basis_settings(spec: TuneSpec, Xs: np.ndarray) -> list[BasisSetting]:
+def basis_settings(spec: TuneSpec, Xs: np.ndarray, keys: np.ndarray | None = None,
+                   centers_from=None) -> list[BasisSetting]:
+    """The grid of basis settings. ``centers_from(count)`` may supply RBF centres (streaming)."""
     d = Xs.shape[1]
     out: list[BasisSetting] = []
     for b in spec.bases:
@@ -182,7 +191,7 @@ def basis_settings(spec: TuneSpec, Xs: np.ndarray) -> list[BasisSetting]:
             for deg in b.degrees:
                 out.append(BasisSetting("polynomial", degree=deg, powers=polynomial_powers(d, deg)))
         else:
-            centers = rbf_centers(Xs, b.centers, spec.cv.seed)
+            centers = centers_from(b.centers) if centers_from else rbf_centers(Xs, b.centers, spec.cv.seed, keys)
             for w in b.widths:
                 out.append(BasisSetting("rbf", width=float(w), centers=centers))
     return out
@@ -247,7 +256,7 @@ def tune(data: Any, spec: Any, *, progress: Callable[[int, int], None] | None = 
     check_budget(spec, n, d, budget, prep.categories.width)
     scaler = InputScaler.fit(prep.features, prep.X)
     Xs = scaler.transform(prep.X)
-    settings = basis_settings(spec, Xs)
+    settings = basis_settings(spec, Xs, prep.keys)
     strengths = spec.penalty.strength_grid()
     ratios = spec.penalty.ratio_grid()
     metric = spec.selection.metric
@@ -255,10 +264,10 @@ def tune(data: Any, spec: Any, *, progress: Callable[[int, int], None] | None = 
     if spec.cv.scheme == "loo":
         search = _LooSearch(spec, prep, Xs, settings, strengths)
     elif spec.basis_fit == "per_fold":
-        plan = make_plan(spec.cv, n, prep.groups, prep.order)
+        plan = make_plan(spec.cv, n, prep.groups, prep.order, prep.keys)
         search = _PerFoldSearch(spec, prep, settings, strengths, ratios, plan)
     else:
-        plan = make_plan(spec.cv, n, prep.groups, prep.order)
+        plan = make_plan(spec.cv, n, prep.groups, prep.order, prep.keys)
         search = _SharedSearch(spec, prep, Xs, settings, strengths, ratios, plan)
 
     total = len(settings) * search.units_per_setting
@@ -424,6 +433,30 @@ def _path(full: Fit, strengths: np.ndarray, strength: float, names: list[str], k
             "chosen_strength": float(strength), "df": full.effective_df().tolist() if kind == "l2" else None}
 
 
+def score_splits(atoms: list[Summary], splits: list[tuple[list[int], list[int]]], spec: TuneSpec,
+                 strengths: np.ndarray, ratios: list[float | None], mae_rows=None
+                 ) -> tuple[np.ndarray, list[list[Fit]]]:
+    """Metric per (l1 ratio, strength, split) from atom summaries, and the fits of every split.
+
+    RMSE and R² come from the validation atoms' summaries alone; MAE needs the rows, through
+    ``mae_rows(test_ids, fit) -> (L,)`` (or NaN placeholders, filled later by a streaming pass)."""
+    metric = spec.selection.metric
+    values = np.empty((len(ratios), strengths.size, len(splits)))
+    all_fits = []
+    for j, (train_ids, test_ids) in enumerate(splits):
+        train = Summary.combine([atoms[i] for i in train_ids])
+        fits = [fit(train, spec.penalty.kind, strengths, r) for r in ratios]
+        all_fits.append(fits)
+        test = Summary.combine([atoms[i] for i in test_ids])
+        for r_i, f in enumerate(fits):
+            if metric == "mae":
+                values[r_i, :, j] = mae_rows(test_ids, f) if mae_rows else np.nan
+            else:
+                sse = test.sse(f.residual_operator())
+                values[r_i, :, j] = _metric_from_sse(metric, sse, test.n, test.total_ss())
+    return values, all_fits
+
+
 class _SharedSearch:
     """Basis fixed from all rows; one summary per atom per basis setting.
 
@@ -445,10 +478,6 @@ class _SharedSearch:
         self._nested_top = max(nested, key=lambda s: s.n_terms(d)) if nested else None
         self._nested: tuple[np.ndarray, list[Summary]] | None = None
 
-    def _fits(self, atoms: list[Summary], train_ids: list[int], strengths: np.ndarray) -> list[Fit]:
-        train = Summary.combine([atoms[i] for i in train_ids])
-        return [fit(train, self.spec.penalty.kind, strengths, r) for r in self.ratios]
-
     def _atoms(self, setting: BasisSetting) -> tuple[np.ndarray, list[Summary]]:
         """(design in the summaries' column order, summaries of each atom) for one setting."""
         y = self.prep.y
@@ -466,20 +495,12 @@ class _SharedSearch:
     def evaluate(self, s_idx: int, setting: BasisSetting):
         D, atoms = self._atoms(setting)
         y = self.prep.y
-        metric = self.spec.selection.metric
-        L = self.strengths.size
-        values = np.empty((len(self.ratios), L, self.plan.n_splits))
-        for j, (train_ids, test_ids) in enumerate(self.plan.splits):
-            fits = self._fits(atoms, train_ids, self.strengths)
-            test = Summary.combine([atoms[i] for i in test_ids])
-            for r_i, f in enumerate(fits):
-                if metric == "mae":
-                    rows = np.concatenate([self.plan.atoms[i] for i in test_ids])
-                    resid = y[rows, None] - f.intercept[None, :] - D[rows] @ f.weights.T
-                    values[r_i, :, j] = np.abs(resid).mean(axis=0)
-                else:
-                    sse = test.sse(f.residual_operator())
-                    values[r_i, :, j] = _metric_from_sse(metric, sse, test.n, test.total_ss())
+        mae_rows = None
+        if self.spec.selection.metric == "mae":
+            def mae_rows(test_ids: list[int], f: Fit) -> np.ndarray:
+                rows = np.concatenate([self.plan.atoms[i] for i in test_ids])
+                return np.abs(y[rows, None] - f.intercept[None, :] - D[rows] @ f.weights.T).mean(axis=0)
+        values, _ = score_splits(atoms, self.plan.splits, self.spec, self.strengths, self.ratios, mae_rows)
         if s_idx == len(self.settings) - 1 or all(
                 s.kind == "rbf" for s in self.settings[s_idx + 1:]):
             self._nested = None  # free the largest design once no nested setting is left
@@ -523,7 +544,8 @@ class _PerFoldSearch(_SharedSearch):
         sc = InputScaler.fit(self.prep.features, self.prep.X[train_rows])
         Xs = sc.transform(self.prep.X)
         if setting.kind == "rbf":
-            centers = rbf_centers(Xs[train_rows], setting.centers.shape[0], self.spec.cv.seed)
+            keys = None if self.prep.keys is None else self.prep.keys[train_rows]
+            centers = rbf_centers(Xs[train_rows], setting.centers.shape[0], self.spec.cv.seed, keys)
             setting = BasisSetting("rbf", width=setting.width, centers=centers)
         elif setting.kind == "polynomial":
             setting = BasisSetting("polynomial", degree=setting.degree, powers=setting.powers)

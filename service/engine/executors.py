@@ -1,0 +1,105 @@
+"""Where the map-reduce of a streamed training runs: in this process, or on a Dask cluster.
+
+Both executors offer one operation, ``map_reduce(fn, items, combine)``: apply ``fn`` to every item,
+then fold the results with ``combine`` as a balanced binary tree in item order. Because the tree's
+shape depends only on the number of items, the result does not depend on which task finished first.
+On Dask, the tasks and the combines run on the cluster (only the final, small summary travels back);
+progress is reported as tasks complete, and a stop request cancels every outstanding future.
+"""
+
+from __future__ import annotations
+
+from typing import Any, Callable, Sequence
+
+from service.errors import Cancelled
+
+
+def _tree(values: list[Any], combine: Callable[[Any, Any], Any]) -> Any:
+    while len(values) > 1:
+        nxt = [combine(values[i], values[i + 1]) for i in range(0, len(values) - 1, 2)]
+        if len(values) % 2:
+            nxt.append(values[-1])
+        values = nxt
+    return values[0]
+
+
+class SerialExecutor:
+    """Runs every task here, one after the other, keeping at most log2(tasks) partial results."""
+
+    name = "in-process"
+
+    def map_reduce(self, fn: Callable[[Any], Any], items: Sequence[Any], combine: Callable[[Any, Any], Any], *,
+                   on_done: Callable[[], None] | None = None, should_stop: Callable[[], bool] | None = None) -> Any:
+        # a binary counter of partial results: the same tree as _tree, built incrementally
+        stack: list[tuple[int, Any]] = []
+        for item in items:
+            if should_stop and should_stop():
+                raise Cancelled("the training job was cancelled")
+            node = (1, fn(item))
+            while stack and stack[-1][0] == node[0]:
+                size, left = stack.pop()
+                node = (size * 2, combine(left, node[1]))
+            stack.append(node)
+            if on_done:
+                on_done()
+        if not stack:
+            raise ValueError("map_reduce over no items")
+        values = [v for _, v in stack]
+        acc = values[-1]
+        for v in reversed(values[:-1]):
+            acc = combine(v, acc)
+        return acc
+
+    def close(self) -> None:
+        pass
+
+
+class DaskExecutor:
+    """Fans the tasks out on a Dask cluster (``address`` "tcp://host:8786", or "local" for a
+    ``distributed.LocalCluster`` with ``workers`` processes on this machine)."""
+
+    def __init__(self, address: str, workers: int = 2):
+        from distributed import Client, LocalCluster
+
+        self._cluster = None
+        if address == "local":
+            self._cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
+                                         dashboard_address=None, silence_logs=40)
+            self.client = Client(self._cluster)
+        else:
+            self.client = Client(address, timeout="10s")
+        self.name = f"dask {address}"
+
+    def map_reduce(self, fn: Callable[[Any], Any], items: Sequence[Any], combine: Callable[[Any, Any], Any], *,
+                   on_done: Callable[[], None] | None = None, should_stop: Callable[[], bool] | None = None) -> Any:
+        from distributed import as_completed
+
+        futures = self.client.map(fn, list(items), pure=False)
+        try:
+            for fut in as_completed(futures):
+                if fut.status == "error":
+                    fut.result()  # raises the task's own exception here
+                if on_done:
+                    on_done()
+                if should_stop and should_stop():
+                    raise Cancelled("the training job was cancelled")
+            level = list(futures)
+            while len(level) > 1:
+                nxt = [self.client.submit(combine, level[i], level[i + 1], pure=False)
+                       for i in range(0, len(level) - 1, 2)]
+                if len(level) % 2:
+                    nxt.append(level[-1])
+                level = nxt
+            return level[0].result()
+        except BaseException:
+            self.client.cancel(futures)
+            raise
+
+    def close(self) -> None:
+        self.client.close()
+        if self._cluster is not None:
+            self._cluster.close()
+
+
+def make_executor(scheduler: str | None) -> SerialExecutor | DaskExecutor:
+    return DaskExecutor(scheduler) if scheduler else SerialExecutor()

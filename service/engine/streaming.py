@@ -1,0 +1,527 @@
+"""Out-of-core tuning: the same joint search, fed by row batches from partitions.
+
+A *partition* is any object with an ``offset`` (the position of its first row in the whole source) and
+``read(columns, batch_rows)`` yielding ``{name: 1-D array}`` batches; the engine never opens a file
+itself (``service.sources`` makes partitions of Parquet and CSV files). Three passes, each a
+map-reduce over partitions that an executor runs here or on a Dask cluster:
+
+1. scan: row count, Chan et al.'s pairwise-merged means and variances of the inputs, ranges, NaN checks,
+   categorical levels, a bottom-k hash sample for RBF centres, and a fingerprint per partition;
+2. summaries: for every (partition, basis group) the per-fold R factors of ``[1, Φ, y]``, merged by
+   stacking and re-factoring; nested polynomial degrees share one group. Then the grid is scored from
+   the fold summaries exactly as in memory (MAE takes one more pass for per-row errors);
+3. the chosen setting only: out-of-fold residuals (CV+ intervals), training leverages, and a sample of
+   out-of-fold predictions for plots.
+
+Memory depends on the batch size and the basis width, not on the number of rows. Folds are assigned
+by hash (see ``folds``), so every pass, and an in-memory run with ``cv.assignment = "hash"``, puts each
+row in the same fold; the CV table then matches the in-memory one to rounding.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass, field
+from functools import partial
+from typing import Any, Callable, Iterator, Protocol, Sequence
+
+import numpy as np
+
+from service.errors import Cancelled, InvalidData, InvalidSpec
+
+from .basis import KMEANS_SAMPLE, BasisSetting, Categories, InputScaler, kmeans_centers
+from .executors import SerialExecutor
+from .folds import hash_folds, key_hash
+from .model import FittedModel, thin_residuals
+from .solvers import centred_scaled, fit, leverage_factor
+from .spec import TuneSpec, parse_spec
+from .summaries import Summary
+from .table import categorical_column, numeric_column
+from .tune import (PLOT_SAMPLE, Budget, TuneResult, _edge_warnings, _path, _select, _table_rows, basis_settings,
+                   check_budget, score_splits)
+
+SAMPLE_SALT = 0x5A17
+PLOT_SALT = 0x9107
+MERGE_EVERY = 16
+
+
+class Partition(Protocol):
+    offset: int
+
+    def read(self, columns: list[str], batch_rows: int) -> Iterator[dict[str, np.ndarray]]: ...
+
+
+# ---- pass 1: scan ------------------------------------------------------------------------------------
+@dataclass
+class Scan:
+    n: int
+    mean: np.ndarray
+    m2: np.ndarray
+    lo: np.ndarray
+    hi: np.ndarray
+    y_lo: float
+    y_hi: float
+    levels: list[set[str]]
+    groups: set[str]
+    sample_h: np.ndarray  # bottom-k key hashes
+    sample_pos: np.ndarray
+    sample_X: np.ndarray
+    digests: list[tuple[int, str, int]] = field(default_factory=list)  # (offset, sha256, rows)
+
+
+@dataclass(frozen=True)
+class _Ctx:
+    spec: TuneSpec
+    features: list[str]
+    columns: list[str]
+    batch_rows: int
+    sample_size: int = KMEANS_SAMPLE
+
+
+def _keys(ctx: _Ctx, batch: dict[str, np.ndarray], offset: int, rows: int) -> np.ndarray:
+    if ctx.spec.cv.row_key:
+        return batch[ctx.spec.cv.row_key]
+    return np.arange(offset, offset + rows)
+
+
+def _numeric_block(ctx: _Ctx, batch: dict[str, np.ndarray], offset: int) -> tuple[np.ndarray, np.ndarray]:
+    rows = len(batch[ctx.spec.target])
+    X = (np.column_stack([numeric_column(batch, f, "feature", offset) for f in ctx.features])
+         if ctx.features else np.zeros((rows, 0)))
+    y = numeric_column(batch, ctx.spec.target, "target", offset)
+    return X, y
+
+
+def _bottom_k(h: np.ndarray, k: int) -> np.ndarray:
+    if h.size <= k:
+        return np.arange(h.size)
+    return np.argpartition(h, k - 1)[:k]
+
+
+def _scan_partition(ctx: _Ctx, part: Partition) -> Scan:
+    d = len(ctx.features)
+    n, mean, m2 = 0, np.zeros(d), np.zeros(d)
+    lo, hi = np.full(d, np.inf), np.full(d, -np.inf)
+    y_lo, y_hi = np.inf, -np.inf
+    levels: list[set[str]] = [set() for _ in ctx.spec.categorical]
+    groups: set[str] = set()
+    sh, sp, sx = np.zeros(0, np.uint64), np.zeros(0, np.int64), np.zeros((0, d))
+    digest = hashlib.sha256()
+    pos = part.offset
+    for batch in part.read(ctx.columns, ctx.batch_rows):
+        X, y = _numeric_block(ctx, batch, pos)
+        b = y.size
+        if b == 0:
+            continue
+        for name in sorted(ctx.columns):
+            c = batch[name]
+            if c.dtype.kind in "biuf":
+                digest.update(np.ascontiguousarray(c, dtype="<f8").tobytes())
+            else:
+                digest.update("\x00".join(str(v) for v in c).encode("utf-8") + b"\x00")
+        bm = X.mean(axis=0)
+        bm2 = ((X - bm) ** 2).sum(axis=0)
+        delta = bm - mean
+        tot = n + b
+        mean = mean + delta * (b / tot)  # Chan, Golub & LeVeque (1979) pairwise update
+        m2 = m2 + bm2 + delta ** 2 * (n * b / tot)
+        n = tot
+        if d:
+            lo, hi = np.minimum(lo, X.min(axis=0)), np.maximum(hi, X.max(axis=0))
+        y_lo, y_hi = min(y_lo, float(y.min())), max(y_hi, float(y.max()))
+        for s, name in zip(levels, ctx.spec.categorical):
+            s.update(categorical_column(batch, name).tolist())
+        if ctx.spec.cv.group_by:
+            groups.update(categorical_column(batch, ctx.spec.cv.group_by).tolist())
+        h = key_hash(_keys(ctx, batch, pos, b), ctx.spec.cv.seed ^ SAMPLE_SALT)
+        sh = np.concatenate([sh, h])
+        sp = np.concatenate([sp, np.arange(pos, pos + b)])
+        sx = np.vstack([sx, X])
+        keep = _bottom_k(sh, ctx.sample_size)
+        sh, sp, sx = sh[keep], sp[keep], sx[keep]
+        pos += b
+    return Scan(n, mean, m2, lo, hi, y_lo, y_hi, levels, groups, sh, sp, sx,
+                [(part.offset, digest.hexdigest(), pos - part.offset)])
+
+
+def _merge_scan(a: Scan, b: Scan) -> Scan:
+    if a.n == 0:
+        return _with_digests(b, a.digests + b.digests)
+    if b.n == 0:
+        return _with_digests(a, a.digests + b.digests)
+    tot = a.n + b.n
+    delta = b.mean - a.mean
+    mean = a.mean + delta * (b.n / tot)
+    m2 = a.m2 + b.m2 + delta ** 2 * (a.n * b.n / tot)
+    sh = np.concatenate([a.sample_h, b.sample_h])
+    keep = _bottom_k(sh, KMEANS_SAMPLE)
+    return Scan(tot, mean, m2, np.minimum(a.lo, b.lo), np.maximum(a.hi, b.hi), min(a.y_lo, b.y_lo),
+                max(a.y_hi, b.y_hi), [x | y for x, y in zip(a.levels, b.levels)], a.groups | b.groups, sh[keep],
+                np.concatenate([a.sample_pos, b.sample_pos])[keep], np.vstack([a.sample_X, b.sample_X])[keep],
+                a.digests + b.digests)
+
+
+def _with_digests(s: Scan, digests: list[tuple[int, str, int]]) -> Scan:
+    s.digests = digests
+    return s
+
+
+# ---- pass 2: fold summaries --------------------------------------------------------------------------
+@dataclass(frozen=True)
+class _Model:
+    """What a pass over the rows needs to rebuild designs and fold ids."""
+
+    ctx: _Ctx
+    scaler: InputScaler
+    categories: Categories
+    folds: int
+
+
+def _batches(m: _Model, part: Partition):
+    ctx = m.ctx
+    pos = part.offset
+    for batch in part.read(ctx.columns, ctx.batch_rows):
+        X, y = _numeric_block(ctx, batch, pos)
+        b = y.size
+        if b == 0:
+            continue
+        cats = [categorical_column(batch, c) for c in m.categories.names]
+        block = m.categories.encode(cats)[0] if cats else np.zeros((b, 0))
+        if ctx.spec.cv.scheme == "grouped":
+            fold = hash_folds(categorical_column(batch, ctx.spec.cv.group_by), ctx.spec.cv.seed, m.folds)
+        else:
+            fold = hash_folds(_keys(ctx, batch, pos, b), ctx.spec.cv.seed, m.folds)
+        yield pos, m.scaler.transform(X), y, block, fold, batch
+        pos += b
+
+
+def _group_design(setting: BasisSetting, nested: bool, Xs: np.ndarray, block: np.ndarray) -> np.ndarray:
+    if nested:  # one-hot columns first, so every lower degree is a leading block
+        return np.hstack([block, setting.expand(Xs)])
+    Phi = setting.expand(Xs)
+    return np.hstack([Phi, block]) if block.shape[1] else Phi
+
+
+def _summarize(m: _Model, groups: list[tuple[BasisSetting, bool]], task: tuple[Partition, int]
+               ) -> dict[int, list[Summary]]:
+    part, g = task
+    setting, nested = groups[g]
+    acc: list[list[Summary]] = [[] for _ in range(m.folds)]
+    width = None
+    for _, Xs, y, block, fold, _ in _batches(m, part):
+        D = _group_design(setting, nested, Xs, block)
+        width = D.shape[1]
+        for f in range(m.folds):
+            rows = np.flatnonzero(fold == f)
+            if rows.size:
+                acc[f].append(Summary.of(D[rows], y[rows]))
+                if len(acc[f]) >= MERGE_EVERY:
+                    acc[f] = [Summary.combine(acc[f])]
+    if width is None:
+        width = _group_design(setting, nested, np.zeros((1, len(m.ctx.features))),
+                              np.zeros((1, m.categories.width))).shape[1]
+    empty = Summary(np.zeros((width + 2, width + 2)), 0)
+    return {g: [Summary.combine(a) if a else empty for a in acc]}
+
+
+def _merge_summaries(a: dict[int, list[Summary]], b: dict[int, list[Summary]]) -> dict[int, list[Summary]]:
+    out = dict(a)
+    for g, fs in b.items():
+        out[g] = [Summary.combine([x, y]) for x, y in zip(out[g], fs)] if g in out else fs
+    return out
+
+
+# ---- MAE pass ----------------------------------------------------------------------------------------
+def _mae_sums(m: _Model, groups, members, weights, task) -> dict[int, tuple[np.ndarray, np.ndarray]]:
+    """Per setting in the group: (sum |residual| over each split's validation rows, rows per split)."""
+    part, g = task
+    setting, nested = groups[g]
+    out = {}
+    for s_idx in members[g]:
+        W, b0, k = weights[s_idx]  # W: (splits, ratios, L, p), b0: (splits, ratios, L)
+        out[s_idx] = (np.zeros(W.shape[:3]), np.zeros(W.shape[0]))
+    for _, Xs, y, block, fold, _ in _batches(m, part):
+        D = _group_design(setting, nested, Xs, block)
+        for s_idx in members[g]:
+            W, b0, k = weights[s_idx]
+            sums, counts = out[s_idx]
+            for j in range(W.shape[0]):
+                rows = np.flatnonzero(fold == j)
+                if not rows.size:
+                    continue
+                Dj = D[rows, :k]
+                for r in range(W.shape[1]):
+                    res = y[rows, None] - b0[j, r][None, :] - Dj @ W[j, r].T
+                    sums[j, r] += np.abs(res).sum(axis=0)
+                counts[j] += rows.size
+    return out
+
+
+# ---- pass 3: the chosen setting --------------------------------------------------------------------
+@dataclass
+class _Final:
+    residuals: list[np.ndarray]  # per fold, absolute out-of-fold residuals
+    max_leverage: float
+    sample_h: np.ndarray
+    sample_pred: np.ndarray
+    sample_obs: np.ndarray
+
+
+def _final_pass(m: _Model, setting: BasisSetting, fw: np.ndarray, fi: np.ndarray, mean: np.ndarray,
+                scale: np.ndarray, F: np.ndarray, n: int, part: Partition) -> _Final:
+    res = [[] for _ in range(m.folds)]
+    max_lev = 0.0
+    sh, sp, so = np.zeros(0, np.uint64), np.zeros(0), np.zeros(0)
+    for pos, Xs, y, block, fold, batch in _batches(m, part):
+        D = _group_design(setting, False, Xs, block)
+        pred = fi[fold] + np.einsum("ij,ij->i", D, fw[fold])
+        r = np.abs(y - pred)
+        for f in range(m.folds):
+            res[f].append(r[fold == f])
+        FZ = ((D - mean) / scale) @ F.T
+        lev = 1.0 / n + np.einsum("ij,ij->i", FZ, FZ)
+        max_lev = max(max_lev, float(lev.max()))
+        h = key_hash(_keys(m.ctx, batch, pos, y.size), m.ctx.spec.cv.seed ^ PLOT_SALT)
+        sh, sp, so = np.concatenate([sh, h]), np.concatenate([sp, pred]), np.concatenate([so, y])
+        keep = _bottom_k(sh, PLOT_SAMPLE)
+        sh, sp, so = sh[keep], sp[keep], so[keep]
+    return _Final([np.concatenate(x) if x else np.zeros(0) for x in res], max_lev, sh, sp, so)
+
+
+def _merge_final(a: _Final, b: _Final) -> _Final:
+    sh = np.concatenate([a.sample_h, b.sample_h])
+    keep = _bottom_k(sh, PLOT_SAMPLE)
+    return _Final([np.concatenate([x, y]) for x, y in zip(a.residuals, b.residuals)],
+                  max(a.max_leverage, b.max_leverage), sh[keep],
+                  np.concatenate([a.sample_pred, b.sample_pred])[keep],
+                  np.concatenate([a.sample_obs, b.sample_obs])[keep])
+
+
+# ---- the driver ----------------------------------------------------------------------------------------
+def _resolve_columns(spec: TuneSpec, schema: dict[str, str]) -> tuple[list[str], list[str]]:
+    if spec.target not in schema:
+        raise InvalidSpec(f"target column {spec.target!r} is not in the data; columns present: {sorted(schema)[:20]}",
+                          errors=[{"field": "target", "value": spec.target, "message": "unknown column"}])
+    special = {spec.target, *spec.categorical, spec.cv.group_by, spec.cv.order_by, spec.cv.row_key}
+    if spec.features is None:
+        features = [c for c, kind in schema.items() if kind == "number" and c not in special]
+    else:
+        unknown = [f for f in spec.features if f not in schema]
+        if unknown:
+            raise InvalidSpec(f"features {unknown} are not in the data; columns present: {sorted(schema)[:20]}",
+                              errors=[{"field": "features", "value": unknown, "message": "unknown column"}])
+        features = list(spec.features)
+    for field_name, col in (("categorical", c) for c in spec.categorical):
+        if col not in schema:
+            raise InvalidSpec(f"categorical column {col!r} is not in the data",
+                              errors=[{"field": field_name, "value": col, "message": "unknown column"}])
+    for field_name in ("group_by", "row_key"):
+        col = getattr(spec.cv, field_name)
+        if col and col not in schema:
+            raise InvalidSpec(f"cv.{field_name} column {col!r} is not in the data",
+                              errors=[{"field": f"cv.{field_name}", "value": col, "message": "unknown column"}])
+    if not features and not spec.categorical:
+        raise InvalidSpec("no feature columns: the data has no numeric column besides the target; "
+                          "name features or categorical columns")
+    columns = [spec.target, *features, *spec.categorical]
+    for extra in (spec.cv.group_by, spec.cv.row_key):
+        if extra and extra not in columns:
+            columns.append(extra)
+    return features, columns
+
+
+def tune_partitions(partitions: Sequence[Partition], schema: dict[str, str], spec: Any, *,
+                    executor=None, progress: Callable[[int, int], None] | None = None,
+                    should_stop: Callable[[], bool] | None = None, budget: Budget | None = None) -> TuneResult:
+    """Tune from partitions read in batches. ``schema`` maps column name → "number" or "text"."""
+    spec = parse_spec(spec)
+    if spec.cv.scheme not in ("kfold", "grouped"):
+        raise InvalidSpec(f"cv.scheme {spec.cv.scheme!r} needs all rows in memory; out-of-core training supports "
+                          "kfold and grouped (set execution.mode to memory for the others)",
+                          errors=[{"field": "cv.scheme", "value": spec.cv.scheme, "message": "not available out of core"}])
+    if spec.cv.assignment == "shuffle":
+        raise InvalidSpec("cv.assignment 'shuffle' needs all rows in memory; use 'hash' (or 'auto') out of core",
+                          errors=[{"field": "cv.assignment", "value": "shuffle", "message": "not available out of core"}])
+    if spec.basis_fit == "per_fold":
+        raise InvalidSpec("basis_fit 'per_fold' needs all rows in memory; use 'all_rows' out of core",
+                          errors=[{"field": "basis_fit", "value": "per_fold", "message": "not available out of core"}])
+    if not partitions:
+        raise InvalidData("the source has no partitions (no files or no rows)")
+    executor = executor or SerialExecutor()
+    features, columns = _resolve_columns(spec, schema)
+    ctx = _Ctx(spec, features, columns, spec.execution.batch_rows)
+    K = spec.cv.folds
+    parts = list(partitions)
+
+    # pass 1 -----------------------------------------------------------------------------------------
+    n_groups_guess = sum(1 for b in spec.bases if b.kind == "rbf" for _ in b.widths) + \
+        (1 if any(b.kind != "rbf" for b in spec.bases) else 0)
+    total = len(parts) * (2 + n_groups_guess + (n_groups_guess if spec.selection.metric == "mae" else 0))
+    done = [0]
+
+    def tick():
+        done[0] += 1
+        if progress:
+            progress(done[0], total)
+
+    scan = executor.map_reduce(partial(_scan_partition, ctx), parts, _merge_scan, on_done=tick,
+                               should_stop=should_stop)
+    n = scan.n
+    if n == 0:
+        raise InvalidData("the data has no rows; send at least a few rows per fold")
+    if scan.y_lo == scan.y_hi:
+        raise InvalidData(f"target column {spec.target!r} is constant ({scan.y_lo:g}); there is nothing to learn — "
+                          "check that the right column is named as target")
+    if K > n:
+        raise InvalidSpec(f"cv.folds is {K} but the data has only {n} rows; use fewer folds",
+                          errors=[{"field": "cv.folds", "value": K, "message": "more folds than rows"}])
+    if spec.cv.scheme == "grouped" and len(scan.groups) < K:
+        raise InvalidSpec(f"cv.folds is {K} but column {spec.cv.group_by!r} has only {len(scan.groups)} distinct "
+                          f"groups; use at most {len(scan.groups)} folds",
+                          errors=[{"field": "cv.folds", "value": K, "message": "more folds than groups"}])
+    categories = Categories(list(spec.categorical), [sorted(s) for s in scan.levels])
+    d = len(features)
+    check_budget(spec, n, d, budget, categories.width)
+    std = np.sqrt(scan.m2 / n)
+    scaler = InputScaler(features, scan.mean, np.where(std > 0, std, 1.0))
+    order = np.argsort(scan.sample_pos)
+    sample_Xs = scaler.transform(scan.sample_X[order])
+
+    def centers_from(count: int) -> np.ndarray:
+        if count >= n:
+            return np.ascontiguousarray(sample_Xs)  # every row (n ≤ sample size here)
+        return kmeans_centers(sample_Xs, count, spec.cv.seed)
+
+    settings = basis_settings(spec, np.zeros((0, d)), centers_from=centers_from)
+    strengths = spec.penalty.strength_grid()
+    ratios = spec.penalty.ratio_grid()
+    model_ctx = _Model(ctx, scaler, categories, K)
+
+    nested = [i for i, s in enumerate(settings) if s.kind in ("linear", "polynomial")]
+    groups: list[tuple[BasisSetting, bool]] = []
+    members: list[list[int]] = []
+    group_of: dict[int, int] = {}
+    if nested:
+        top = max(nested, key=lambda i: settings[i].n_terms(d))
+        groups.append((settings[top], True))
+        members.append(nested)
+        for i in nested:
+            group_of[i] = 0
+    for i, s in enumerate(settings):
+        if s.kind == "rbf":
+            group_of[i] = len(groups)
+            groups.append((s, False))
+            members.append([i])
+    total = len(parts) * (2 + len(groups) + (len(groups) if spec.selection.metric == "mae" else 0))
+
+    # pass 2 -----------------------------------------------------------------------------------------
+    tasks = [(p, g) for g in range(len(groups)) for p in parts]
+    fold_summaries = executor.map_reduce(partial(_summarize, model_ctx, groups), tasks, _merge_summaries,
+                                         on_done=tick, should_stop=should_stop)
+    if any(s.n == 0 for s in fold_summaries[0]):
+        empty = [f for f, s in enumerate(fold_summaries[0]) if s.n == 0]
+        raise InvalidSpec(f"hash assignment left fold {empty[0]} empty; use fewer folds or more rows/groups",
+                          errors=[{"field": "cv.folds", "value": K, "message": "empty fold"}])
+    q = categories.width
+    splits = [([i for i in range(K) if i != j], [j]) for j in range(K)]
+
+    def atoms_of(i: int) -> tuple[list[Summary], int]:
+        s = settings[i]
+        g = group_of[i]
+        if groups[g][1]:
+            k = 1 + q + s.n_terms(d)
+            return [a.leading(k) for a in fold_summaries[g]], k - 1
+        return fold_summaries[g], s.n_terms(d) + q
+
+    rows: list[dict[str, Any]] = []
+    split_fits: dict[int, list] = {}
+    for i, s in enumerate(settings):
+        atoms, _ = atoms_of(i)
+        values, fits = score_splits(atoms, splits, spec, strengths, ratios)
+        split_fits[i] = fits
+        rows.append((i, s, values))
+    if spec.selection.metric == "mae":
+        weights = {}
+        for i in range(len(settings)):
+            _, k = atoms_of(i)
+            fits = split_fits[i]
+            W = np.array([[f.weights for f in per_split] for per_split in fits])
+            b0 = np.array([[f.intercept for f in per_split] for per_split in fits])
+            weights[i] = (W, b0, k)
+        mtasks = [(p, g) for g in range(len(groups)) for p in parts]
+        sums = executor.map_reduce(partial(_mae_sums, model_ctx, groups, members, weights), mtasks,
+                                   _merge_all_mae, on_done=tick, should_stop=should_stop)
+        rows = [(i, s, np.transpose(sums[i][0] / sums[i][1][:, None, None], (1, 2, 0))) for i, s, _ in rows]
+    table_rows: list[dict[str, Any]] = []
+    for i, s, values in rows:
+        table_rows.extend(_table_rows(i, s, strengths, ratios, values, None))
+    chosen_idx, best_idx, onese_idx = _select(table_rows, settings, spec, K)
+    chosen = table_rows[chosen_idx]
+    s_idx = chosen["_setting"]
+    setting = settings[s_idx]
+    strength, ratio = chosen["strength"], chosen["l1_ratio"]
+
+    # refit from the fold summaries, in the model's column order [Φ, one-hot] --------------------------
+    atoms, k = atoms_of(s_idx)
+    if groups[group_of[s_idx]][1] and q:
+        p = k - q
+        order_cols = [0, *range(1 + q, 1 + q + p), *range(1, 1 + q), k + 1]
+        atoms = [a.permuted(order_cols) for a in atoms]
+    full_summary = Summary.combine(atoms)
+    full = fit(full_summary, spec.penalty.kind, strengths, ratio)
+    l_idx = int(np.flatnonzero(strengths == strength)[0])
+    fold_fits = [fit(Summary.combine([atoms[i] for i in tr]), spec.penalty.kind, np.array([strength]), ratio)
+                 for tr, _ in splits]
+    fw = np.vstack([f.weights[0] for f in fold_fits])
+    fi = np.array([f.intercept[0] for f in fold_fits])
+    Zblock = centred_scaled(full_summary)[0]
+    F = leverage_factor(Zblock, strength, spec.penalty.kind, ratio, n, full.beta[l_idx])
+
+    # pass 3 -----------------------------------------------------------------------------------------
+    fin = executor.map_reduce(partial(_final_pass, model_ctx, setting, fw, fi, full.mean, full.scale, F, n), parts,
+                              _merge_final, on_done=tick, should_stop=should_stop)
+    abs_res = np.concatenate(fin.residuals)
+    res_fold = np.concatenate([np.full(r.size, f, dtype=np.int64) for f, r in enumerate(fin.residuals)])
+    kept, kept_fold, g = thin_residuals(abs_res, res_fold)
+    names = setting.term_names(features) + categories.term_names()
+    model = FittedModel(
+        target=spec.target, features=features, scaler=scaler, basis=setting, categories=categories,
+        column_mean=full.mean, column_scale=full.scale, beta=full.beta[l_idx], intercept=float(full.intercept[l_idx]),
+        penalty={"kind": spec.penalty.kind, "strength": float(strength), "l1_ratio": ratio}, n_train=n,
+        ranges={f: [float(scan.lo[j]), float(scan.hi[j])] for j, f in enumerate(features)},
+        leverage_factor=F, max_leverage=fin.max_leverage, fold_weights=fw, fold_intercepts=fi,
+        residuals=kept, residual_fold=kept_fold, residual_weight=g, term_names=names,
+    )
+    model.cv = {"metric": spec.selection.metric, "mean": chosen["mean"], "std": chosen["std"], "folds": K,
+                "scheme": spec.cv.scheme, "rule": spec.selection.rule}
+    warnings = _edge_warnings(spec, settings, table_rows, chosen, strengths)
+    table = [{kk: v for kk, v in r.items() if not kk.startswith("_")} for r in table_rows]
+
+    def public(r):
+        return {"basis": r["basis"], "penalty": {"kind": spec.penalty.kind, "strength": r["strength"],
+                "l1_ratio": r["l1_ratio"]}, "metric": spec.selection.metric, "mean": r["mean"], "std": r["std"],
+                "index": table_rows.index(r)}
+
+    digests = sorted(scan.digests)
+    fp = hashlib.sha256("".join(f"{o}:{r}:{h};" for o, h, r in digests).encode()).hexdigest()
+    summary = {"metric": spec.selection.metric, "rule": spec.selection.rule, "scheme": spec.cv.scheme, "splits": K,
+               "mean": chosen["mean"], "std": chosen["std"], "rows": int(n), "basis_settings": len(settings),
+               "strengths": int(strengths.size), "l1_ratios": len(ratios), "candidates": len(table_rows),
+               "execution": "streaming", "executor": getattr(executor, "name", "in-process"),
+               "partitions": len(parts)}
+    return TuneResult(
+        spec=spec, best=public(chosen) | {"rule": spec.selection.rule}, one_standard_error=public(table_rows[onese_idx]),
+        best_mean=public(table_rows[best_idx]), cv_table=table, model=model, folds=np.zeros(0, dtype=np.int64),
+        path=_path(full, strengths, strength, names, spec.penalty.kind), warnings=warnings,
+        oof_predictions=fin.sample_pred, oof_observed=fin.sample_obs, oof_residuals=fin.sample_obs - fin.sample_pred,
+        fingerprint={"sha256": fp, "rows": int(n), "columns": len(columns),
+                     "method": "sha256 over partition digests (offset:rows:sha256 of each partition's batches)"},
+        summary=summary,
+    )
+
+
+def _merge_all_mae(a, b):
+    out = dict(a)
+    for i, (s, c) in b.items():
+        out[i] = (out[i][0] + s, out[i][1] + c) if i in out else (s, c)
+    return out

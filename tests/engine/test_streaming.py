@@ -1,0 +1,132 @@
+"""Out-of-core and distributed training give the in-memory answer.
+
+Reference: the in-memory engine (itself checked against scikit-learn in test_reference.py) with hash
+fold assignment; the data are the diabetes set that ships with scikit-learn (Efron et al., 2004),
+written to Parquet/CSV here. Tolerance 1e-12 relative on every fold value of the CV table: summaries
+merged in a different order differ only by rounding.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+from sklearn.datasets import load_diabetes
+
+from service.engine import tune
+from service.engine.streaming import tune_partitions
+from service.errors import InvalidData, InvalidSpec
+from service.sources import open_source
+
+
+def data(n=None):
+    X, y = load_diabetes(return_X_y=True)
+    d = {f"x{j}": X[:, j] for j in range(6)}
+    d["sex"] = np.where(X[:, 1] > 0, "f", "m")  # a categorical column derived from the shipped data
+    d["y"] = y
+    return d
+
+
+def write_folder(tmp_path, d, files=3, row_group=50):
+    folder = tmp_path / "parts"
+    folder.mkdir()
+    n = len(d["y"])
+    cuts = np.linspace(0, n, files + 1).astype(int)
+    for i in range(files):
+        part = {k: v[cuts[i]:cuts[i + 1]] for k, v in d.items()}
+        pq.write_table(pa.table(part), folder / f"part-{i:03d}.parquet", row_group_size=row_group)
+    return folder
+
+
+def assert_same(a, b, tol=1e-12):
+    assert len(a.cv_table) == len(b.cv_table)
+    for r1, r2 in zip(a.cv_table, b.cv_table):
+        assert r1["basis"] == r2["basis"] and r1["strength"] == r2["strength"] and r1["l1_ratio"] == r2["l1_ratio"]
+        np.testing.assert_allclose(r2["folds"], r1["folds"], rtol=tol)
+    assert a.best["basis"] == b.best["basis"]
+    assert a.best["penalty"] == b.best["penalty"]
+
+
+SPEC = {"target": "y", "features": ["x0", "x2", "x3", "x4"], "categorical": ["sex"],
+        "bases": [{"kind": "linear"}, {"kind": "polynomial", "degrees": [2, 3]},
+                  {"kind": "rbf", "widths": [1.0, 2.0], "centers": 25}],
+        "penalty": {"strengths": {"min": 1e-2, "max": 1e3, "count": 12}},
+        "cv": {"folds": 5, "seed": 9, "assignment": "hash"}, "execution": {"batch_rows": 256}}
+
+
+def test_in_memory_parquet_batches_and_dask_agree(tmp_path):
+    d = data()
+    mem = tune(d, SPEC)
+    schema, parts = open_source(write_folder(tmp_path, d))
+    assert len(parts) == 3 and [p.offset for p in parts] == [0, 147, 294]
+    ooc = tune_partitions(parts, schema, SPEC)
+    assert_same(mem, ooc)
+    q = {k: d[k][:20] for k in ["x0", "x2", "x3", "x4", "sex"]}
+    np.testing.assert_allclose(ooc.model.predict(q), mem.model.predict(q), rtol=1e-12)
+    a = mem.model.predict_detail(q, interval=0.9)
+    b = ooc.model.predict_detail(q, interval=0.9)
+    np.testing.assert_allclose(b["lower"], a["lower"], rtol=1e-12)
+    np.testing.assert_allclose(b["upper"], a["upper"], rtol=1e-12)
+    assert ooc.model.max_leverage == pytest.approx(mem.model.max_leverage, rel=1e-10)
+
+    distributed = pytest.importorskip("distributed")
+    from service.engine.executors import DaskExecutor
+
+    ex = DaskExecutor("local", workers=2)
+    try:
+        assert len(ex.client.scheduler_info()["workers"]) == 2
+        seen = []
+        dist = tune_partitions(parts, schema, SPEC, executor=ex, progress=lambda a, b: seen.append((a, b)))
+    finally:
+        ex.close()
+    assert_same(mem, dist)
+    assert seen[-1][0] == seen[-1][1]
+    assert dist.summary["executor"].startswith("dask")
+    del distributed
+
+
+def test_mae_and_grouped_out_of_core(tmp_path):
+    d = data()
+    d["site"] = (np.arange(len(d["y"])) % 40).astype(str)
+    spec = {**SPEC, "bases": [{"kind": "polynomial", "degrees": [1, 2]}],
+            "cv": {"scheme": "grouped", "group_by": "site", "folds": 4, "seed": 2, "assignment": "hash"},
+            "selection": {"metric": "mae"}}
+    mem = tune(d, spec)
+    schema, parts = open_source(write_folder(tmp_path, d, files=2))
+    ooc = tune_partitions(parts, schema, spec)
+    assert_same(mem, ooc)
+
+
+def test_csv_source_and_refusals(tmp_path):
+    d = data(120)
+    path = tmp_path / "d.csv"
+    import pyarrow.csv as pcsv
+
+    pcsv.write_csv(pa.table(d), path)
+    schema, parts = open_source(path)
+    assert schema["sex"] == "text" and schema["x0"] == "number"
+    res = tune_partitions(parts, schema, {**SPEC, "bases": [{"kind": "linear"}]})
+    assert_same(tune(d, {**SPEC, "bases": [{"kind": "linear"}]}), res)
+    with pytest.raises(InvalidSpec, match="time_ordered"):
+        tune_partitions(parts, schema, {"target": "y", "cv": {"scheme": "time_ordered", "order_by": "x0"}})
+    with pytest.raises(InvalidSpec, match="shuffle"):
+        tune_partitions(parts, schema, {"target": "y", "cv": {"assignment": "shuffle"}})
+    bad = tmp_path / "ragged.csv"
+    bad.write_text("a,b,y\n1,2,3\n4,5\n")
+    with pytest.raises(InvalidData, match="ragged.csv"):
+        s2, p2 = open_source(bad)
+        tune_partitions(p2, s2, {"target": "y"})
+    fake = tmp_path / "fake.parquet"
+    fake.write_bytes(b"this is not parquet")
+    with pytest.raises(InvalidData, match="not a readable Parquet file"):
+        open_source(fake)
+
+
+def test_nan_is_reported_with_its_row_in_the_whole_source(tmp_path):
+    d = data()
+    d["x2"] = d["x2"].copy()
+    d["x2"][300] = np.nan
+    schema, parts = open_source(write_folder(tmp_path, d))
+    with pytest.raises(InvalidData, match=r"'x2'.*rows \[300\]"):
+        tune_partitions(parts, schema, SPEC)
