@@ -70,6 +70,8 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None) -> Fa
     # each route's template (used as the metrics label) is the full path.
     for router in (models.router, trainings.router, predict.router, plots.router):
         app.include_router(router, dependencies=[Depends(auth.authorize)])
+    from service.api.routes import admin  # API keys and pruning (admin scope)
+    app.include_router(admin.router, dependencies=[Depends(auth.authorize)])
     app.include_router(health.router)
     app.include_router(pages.router)  # the HTML overview; checks keys itself (login form)
 

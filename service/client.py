@@ -1,0 +1,474 @@
+"""Python client of the Tikhon HTTP API (httpx).
+
+    from service.client import Client, ServiceError
+
+    with Client("http://127.0.0.1:8000", key=None) as tk:
+        job = tk.train("pump-energy", file="pumps.csv", spec={"target": "energy_kwh"})
+        job = tk.wait(job, on_progress=lambda job: print(job["progress"]))
+        answer = tk.predict("pump-energy", rows=[{"station": "mill-lane", "flow_lps": 70, "head_m": 35}],
+                            interval=0.9)
+
+Every method maps to one route of the OpenAPI document (``Client.routes()`` lists the mapping; a test
+checks it against a live server's ``/openapi.json``). Answers are the decoded JSON bodies (plain dicts
+and lists), bytes for figures, text for the metrics and CSV answers.
+
+Every failure is raised as one exception type, ``ServiceError``: an answer with an error status carries
+the RFC 9457 problem fields (``type``, ``title``, ``status``, ``detail``, ``errors``, ``instance``,
+``request_id``); a server that cannot be reached, or does not answer in time, gives a ``ServiceError``
+with ``status`` 0 and a ``detail`` that names the address and the fix.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import time
+from pathlib import Path
+from typing import Any, Callable, Iterable, Mapping, Sequence
+
+import httpx
+
+__all__ = ["Client", "ServiceError", "FINAL_STATES", "DEFAULT_URL"]
+
+DEFAULT_URL = "http://127.0.0.1:8000"
+FINAL_STATES = ("succeeded", "failed", "cancelled")
+
+
+class ServiceError(Exception):
+    """One failed call. ``status`` is the HTTP status (0 when no answer came); the other attributes are
+    the RFC 9457 problem members of the answer (``errors`` lists field-level problems)."""
+
+    def __init__(self, status: int, title: str, detail: str, *, type: str = "about:blank",
+                 errors: list[dict[str, Any]] | None = None, instance: str | None = None,
+                 request_id: str | None = None, body: dict[str, Any] | None = None):
+        self.status = status
+        self.title = title
+        self.detail = " ".join(str(detail).split())
+        self.type = type
+        self.errors = list(errors or [])
+        self.instance = instance
+        self.request_id = request_id
+        self.body = dict(body or {})
+        super().__init__(self.detail)
+
+    def __str__(self) -> str:  # always one line
+        where = f"{self.status} {self.title}" if self.status else self.title
+        return f"{self.detail} ({where})"
+
+    @property
+    def is_client_error(self) -> bool:
+        """True for 4xx answers: the request itself was wrong (bad usage), retrying will not help."""
+        return 400 <= self.status < 500
+
+    @classmethod
+    def from_response(cls, response: httpx.Response) -> "ServiceError":
+        body: Any = None
+        try:
+            body = response.json()
+        except ValueError:
+            body = None
+        if isinstance(body, dict) and ("detail" in body or "title" in body):
+            return cls(
+                int(body.get("status") or response.status_code), str(body.get("title") or response.reason_phrase),
+                str(body.get("detail") or body.get("title")), type=str(body.get("type") or "about:blank"),
+                errors=body.get("errors") if isinstance(body.get("errors"), list) else None,
+                instance=body.get("instance"), request_id=body.get("request_id"), body=body,
+            )
+        text = " ".join(response.text.split())[:300]
+        return cls(response.status_code, response.reason_phrase or "Error",
+                   f"{response.request.method} {response.request.url.path} answered {response.status_code} without a "
+                   f"problem body: {text or '(empty)'}; check that the URL points at a Tikhon server.")
+
+
+def _route(method: str, template: str) -> Callable[[Callable], Callable]:
+    """Mark a client method as the caller of one route (``Client.routes()`` collects the marks)."""
+
+    def mark(fn: Callable) -> Callable:
+        fn.__tikhon_route__ = (method, template)
+        return fn
+
+    return mark
+
+
+def _rows_from_columns(columns: Mapping[str, Sequence[Any]]) -> list[dict[str, Any]]:
+    names = list(columns)
+    lengths = {len(columns[n]) for n in names}
+    if len(lengths) > 1:
+        raise ServiceError(0, "Invalid argument", f"columns have different lengths {sorted(lengths)}; give every "
+                           "column the same number of values.")
+    values = [list(_plain(columns[n])) for n in names]
+    return [dict(zip(names, row)) for row in zip(*values)]
+
+
+def _plain(seq: Sequence[Any]) -> Iterable[Any]:
+    tolist = getattr(seq, "tolist", None)
+    return tolist() if callable(tolist) else seq
+
+
+def _one_of(what: str, **given: Any) -> tuple[str, Any]:
+    present = [(k, v) for k, v in given.items() if v is not None]
+    if len(present) != 1:
+        names = ", ".join(given)
+        got = ", ".join(k for k, _ in present) or "none"
+        raise ServiceError(0, "Invalid argument", f"{what} needs exactly one of {names}; got {got}.")
+    return present[0]
+
+
+class Client:
+    """A connection to one Tikhon server. ``key`` is an API key (``Authorization: Bearer``); leave it out
+    when the server has no keys (it then listens on loopback only). ``timeout`` is per request, in
+    seconds. Extra keyword arguments go to ``httpx.Client`` (``transport=``, ``verify=``, ...)."""
+
+    def __init__(self, url: str = DEFAULT_URL, key: str | None = None, timeout: float = 60.0, **httpx_options: Any):
+        self.url = str(url).rstrip("/")
+        headers = {"User-Agent": "tikhon-client/1", "Accept": "application/json"}
+        if key:
+            headers["Authorization"] = f"Bearer {key}"
+        self._http = httpx.Client(base_url=self.url, headers=headers, timeout=timeout, **httpx_options)
+
+    # -- plumbing -----------------------------------------------------------------------------------
+    def close(self) -> None:
+        self._http.close()
+
+    def __enter__(self) -> "Client":
+        return self
+
+    def __exit__(self, *exc: Any) -> None:
+        self.close()
+
+    @classmethod
+    def routes(cls) -> dict[tuple[str, str], str]:
+        """(HTTP method, path template) -> the method of this class that calls it."""
+        found: dict[tuple[str, str], str] = {}
+        for name in dir(cls):
+            mark = getattr(getattr(cls, name), "__tikhon_route__", None)
+            if mark is not None:
+                found[mark] = name
+        return found
+
+    def _send(self, method: str, path: str, *, expect: str = "json", **kw: Any) -> Any:
+        try:
+            response = self._http.request(method, path, **kw)
+        except httpx.TimeoutException:
+            raise ServiceError(0, "Timeout", f"{method} {self.url}{path} got no answer within the client timeout; "
+                               "raise the timeout (Client(timeout=...)) or check the server's load.") from None
+        except httpx.TransportError as exc:
+            reason = " ".join(str(exc).split()) or type(exc).__name__
+            raise ServiceError(0, "Unreachable", f"cannot reach the Tikhon server at {self.url} ({reason}); start it "
+                               "with 'tikhon serve' or point the client at the right address (--url / TIKHON_URL).") from None
+        if response.status_code >= 400:
+            raise ServiceError.from_response(response)
+        if expect == "json":
+            if response.status_code == 204 or not response.content:
+                return None
+            try:
+                return response.json()
+            except ValueError:
+                raise ServiceError(response.status_code, "Unexpected answer",
+                                   f"{method} {path} answered with a body that is not JSON; check that {self.url} is a "
+                                   "Tikhon server.") from None
+        if expect == "text":
+            return response.text
+        if expect == "response":
+            return response
+        return response.content
+
+    # -- health (open routes) -------------------------------------------------------------------------
+    @_route("GET", "/healthz")
+    def health(self) -> dict[str, Any]:
+        """Liveness: ``{"status": "ok"}`` while the process runs."""
+        return self._send("GET", "/healthz")
+
+    @_route("GET", "/readyz")
+    def ready(self) -> dict[str, Any]:
+        """Readiness: the catalog answers and the store is writable. A 503 is raised as ``ServiceError``."""
+        return self._send("GET", "/readyz")
+
+    @_route("GET", "/metrics")
+    def metrics(self) -> str:
+        """The Prometheus text exposition of the server's counters and histograms."""
+        return self._send("GET", "/metrics", expect="text")
+
+    @_route("GET", "/problems")
+    def problem_types(self) -> dict[str, Any]:
+        """Every problem type the API answers with: slug -> title and description."""
+        return self._send("GET", "/problems")
+
+    @_route("GET", "/problems/{slug}")
+    def problem_type(self, slug: str) -> str:
+        """The HTML page explaining one problem type (the ``type`` member of a problem points at it)."""
+        return self._send("GET", f"/problems/{_seg(slug)}", expect="text")
+
+    # -- models and versions --------------------------------------------------------------------------
+    @_route("GET", "/v1/models")
+    def models(self) -> list[dict[str, Any]]:
+        """Every model with its live version, newest version number and count of versions."""
+        return self._send("GET", "/v1/models")["models"]
+
+    @_route("GET", "/v1/models/{name}")
+    def model(self, name: str) -> dict[str, Any]:
+        """One model: the live version's metadata, the version numbers and links."""
+        return self._send("GET", f"/v1/models/{_seg(name)}")
+
+    @_route("GET", "/v1/models/{name}/versions")
+    def versions(self, name: str) -> list[dict[str, Any]]:
+        """The existing versions of a model (catalog rows: number, checksum, live flag, CV summary)."""
+        return self._send("GET", f"/v1/models/{_seg(name)}/versions")["versions"]
+
+    @_route("GET", "/v1/models/{name}/versions/{version}")
+    def version(self, name: str, version: int) -> dict[str, Any]:
+        """Full metadata of one version: spec, chosen point, feature schema and ranges, checksums, libraries."""
+        return self._send("GET", f"/v1/models/{_seg(name)}/versions/{_num(version)}")
+
+    @_route("GET", "/v1/models/{name}/versions/{version}/cv")
+    def cv(self, name: str, version: int) -> dict[str, Any]:
+        """The CV surface: one row per (basis setting, strength[, l1 ratio]) with fold errors, mean and std."""
+        return self._send("GET", f"/v1/models/{_seg(name)}/versions/{_num(version)}/cv")
+
+    @_route("GET", "/v1/models/{name}/versions/{version}/path")
+    def path(self, name: str, version: int) -> dict[str, Any]:
+        """The regularization path (coefficients against strength) of the chosen basis setting."""
+        return self._send("GET", f"/v1/models/{_seg(name)}/versions/{_num(version)}/path")
+
+    @_route("PUT", "/v1/models/{name}/live")
+    def set_live(self, name: str, version: int, reason: str) -> dict[str, Any]:
+        """Make ``version`` the live version (admin scope); the change and ``reason`` go into the history."""
+        return self._send("PUT", f"/v1/models/{_seg(name)}/live", json={"version": _num(version), "reason": reason})
+
+    promote = set_live
+
+    @_route("GET", "/v1/models/{name}/history")
+    def history(self, name: str) -> list[dict[str, Any]]:
+        """Every change of the live version, oldest first: who, when, from, to, why."""
+        return self._send("GET", f"/v1/models/{_seg(name)}/history")["history"]
+
+    @_route("DELETE", "/v1/models/{name}/versions/{version}")
+    def delete_version(self, name: str, version: int) -> None:
+        """Delete a version that is not live (admin scope). Its number is never reused."""
+        self._send("DELETE", f"/v1/models/{_seg(name)}/versions/{_num(version)}")
+
+    @_route("POST", "/v1/models/{name}/prune")
+    def prune(self, name: str, keep: int) -> dict[str, Any]:
+        """Delete every version except the live one and the newest ``keep`` (admin scope)."""
+        return self._send("POST", f"/v1/models/{_seg(name)}/prune", json={"keep": keep})
+
+    # -- figures --------------------------------------------------------------------------------------
+    def plot(self, name: str, version: int, kind: str, format: str = "svg") -> bytes:
+        """A figure of one version: ``kind`` is ``cv``, ``path`` or ``residuals``; ``format`` svg or png."""
+        methods = {"cv": self.plot_cv, "path": self.plot_path, "residuals": self.plot_residuals}
+        if kind not in methods:
+            raise ServiceError(0, "Invalid argument", f"plot kind {kind!r} is not offered; use one of {sorted(methods)}.")
+        return methods[kind](name, version, format=format)
+
+    @_route("GET", "/v1/models/{name}/versions/{version}/plots/cv")
+    def plot_cv(self, name: str, version: int, format: str = "svg") -> bytes:
+        """Figure: CV error against penalty strength, one line per basis setting, the chosen point marked."""
+        return self._send("GET", f"/v1/models/{_seg(name)}/versions/{_num(version)}/plots/cv",
+                          params={"format": format}, expect="bytes")
+
+    @_route("GET", "/v1/models/{name}/versions/{version}/plots/path")
+    def plot_path(self, name: str, version: int, format: str = "svg") -> bytes:
+        """Figure: the regularization path of the chosen basis setting."""
+        return self._send("GET", f"/v1/models/{_seg(name)}/versions/{_num(version)}/plots/path",
+                          params={"format": format}, expect="bytes")
+
+    @_route("GET", "/v1/models/{name}/versions/{version}/plots/residuals")
+    def plot_residuals(self, name: str, version: int, format: str = "svg") -> bytes:
+        """Figure: out-of-fold residuals of one version."""
+        return self._send("GET", f"/v1/models/{_seg(name)}/versions/{_num(version)}/plots/residuals",
+                          params={"format": format}, expect="bytes")
+
+    @_route("GET", "/v1/models/{name}/plots/history")
+    def plot_history(self, name: str, format: str = "svg") -> bytes:
+        """Figure: CV error and chosen settings of every version of a model."""
+        return self._send("GET", f"/v1/models/{_seg(name)}/plots/history", params={"format": format}, expect="bytes")
+
+    # -- training -------------------------------------------------------------------------------------
+    @_route("POST", "/v1/models/{name}/trainings")
+    def train(
+        self, name: str, *, file: str | os.PathLike | None = None, rows: Sequence[Mapping[str, Any]] | None = None,
+        columns: Mapping[str, Sequence[Any]] | None = None, csv: str | None = None, source: str | None = None,
+        spec: Mapping[str, Any] | None = None, promote: str = "if_better", min_improvement: float = 0.0,
+        idempotency_key: str | None = None,
+    ) -> dict[str, Any]:
+        """Submit a training job and return it (state ``queued``). Give the data as exactly one of:
+
+        * ``file``: a local CSV or Parquet file, uploaded;
+        * ``rows`` (list of dicts) or ``columns`` (dict of equal-length sequences);
+        * ``csv``: CSV text;
+        * ``source``: a path relative to the server's data folder (TIKHON_DATA_DIR).
+
+        ``spec`` omitted: the live version's spec is reused (a scheduled retrain). ``promote`` is
+        ``if_better`` (default), ``always`` or ``never``. A repeated call with the same
+        ``idempotency_key`` returns the first job instead of starting another."""
+        kind, value = _one_of("train()", file=file, rows=rows, columns=columns, csv=csv, source=source)
+        headers = {"Idempotency-Key": idempotency_key} if idempotency_key else {}
+        url = f"/v1/models/{_seg(name)}/trainings"
+        if kind == "file":
+            path = Path(value)
+            if not path.is_file():
+                raise ServiceError(0, "Invalid argument", f"training data file {str(path)!r} does not exist; give the "
+                                   "path of a CSV or Parquet file.")
+            fields: dict[str, str] = {"promote": promote, "min_improvement": repr(float(min_improvement))}
+            if spec is not None:
+                fields["spec"] = json.dumps(spec)
+            with open(path, "rb") as fh:
+                return self._send("POST", url, data=fields, files={"file": (path.name, fh)}, headers=headers)
+        data: dict[str, Any]
+        if kind == "rows":
+            data = {"rows": [dict(r) for r in value]}
+        elif kind == "columns":
+            data = {"rows": _rows_from_columns(value)}
+        else:
+            data = {kind: value}
+        body: dict[str, Any] = {"data": data, "promote": promote, "min_improvement": float(min_improvement)}
+        if spec is not None:
+            body["spec"] = dict(spec)
+        return self._send("POST", url, json=body, headers=headers)
+
+    submit = train
+
+    @_route("GET", "/v1/trainings/{job_id}")
+    def training(self, job_id: str | Mapping[str, Any]) -> dict[str, Any]:
+        """One training job: state, progress (done/total units), version, decision, problem."""
+        return self._send("GET", f"/v1/trainings/{_seg(_job_id(job_id))}")
+
+    @_route("GET", "/v1/trainings")
+    def trainings(self, model: str | None = None) -> list[dict[str, Any]]:
+        """Training jobs, newest first; ``model`` keeps only one model's jobs."""
+        params = {"model": model} if model is not None else None
+        return self._send("GET", "/v1/trainings", params=params)["trainings"]
+
+    @_route("DELETE", "/v1/trainings/{job_id}")
+    def cancel(self, job_id: str | Mapping[str, Any]) -> dict[str, Any]:
+        """Cancel a queued or running job (a finished job gives a 409 ``ServiceError``)."""
+        return self._send("DELETE", f"/v1/trainings/{_seg(_job_id(job_id))}")
+
+    def wait(self, job: str | Mapping[str, Any], on_progress: Callable[[dict[str, Any]], None] | None = None, *,
+             poll: float = 0.5, timeout: float | None = None) -> dict[str, Any]:
+        """Poll a job until it is ``succeeded``, ``failed`` or ``cancelled`` and return its final state.
+
+        ``on_progress(job)`` is called with every polled state (including the last). A failed job is
+        returned, not raised: look at ``job["state"]`` and ``job["problem"]``. ``timeout`` (seconds,
+        default none) bounds the wait; when it passes, a ``ServiceError`` with status 0 says so and the
+        job keeps running on the server."""
+        jid = _job_id(job)
+        end = None if timeout is None else time.monotonic() + timeout
+        delay = min(0.1, poll)
+        while True:
+            state = self.training(jid)
+            if on_progress is not None:
+                on_progress(state)
+            if state.get("state") in FINAL_STATES:
+                return state
+            if end is not None and time.monotonic() > end:
+                raise ServiceError(0, "Timeout", f"training job {jid} did not end within {timeout:g} s (state "
+                                   f"{state.get('state')}); wait again later, or cancel it with cancel({jid!r}).")
+            time.sleep(delay)
+            delay = min(poll, delay * 1.5)
+
+    # -- predictions ----------------------------------------------------------------------------------
+    @_route("POST", "/v1/models/{name}/predict")
+    def predict(
+        self, name: str, *, rows: Sequence[Mapping[str, Any]] | None = None,
+        columns: Mapping[str, Sequence[Any]] | None = None, csv: str | None = None,
+        file: str | os.PathLike | None = None, interval: float | None = None, version: int | None = None,
+        as_csv: bool = False,
+    ) -> dict[str, Any] | str:
+        """Predict with the live version (or with ``version`` pinned). Inputs: exactly one of ``rows``,
+        ``columns``, ``csv`` text or a CSV/JSON ``file``. ``interval`` (e.g. 0.9) adds CV+ intervals.
+
+        Returns the JSON answer ``{"model": {name, version, ...}, "predictions": [{value, interval,
+        warnings}, ...]}``, or, with ``as_csv=True``, the CSV text ``value[,lower,upper],warnings``."""
+        if version is not None:
+            return self.predict_version(name, version, rows=rows, columns=columns, csv=csv, file=file,
+                                        interval=interval, as_csv=as_csv)
+        return self._predict(f"/v1/models/{_seg(name)}/predict", rows, columns, csv, file, interval, as_csv)
+
+    @_route("POST", "/v1/models/{name}/versions/{version}/predict")
+    def predict_version(
+        self, name: str, version: int, *, rows: Sequence[Mapping[str, Any]] | None = None,
+        columns: Mapping[str, Sequence[Any]] | None = None, csv: str | None = None,
+        file: str | os.PathLike | None = None, interval: float | None = None, as_csv: bool = False,
+    ) -> dict[str, Any] | str:
+        """Predict with one pinned version (see ``predict``)."""
+        return self._predict(f"/v1/models/{_seg(name)}/versions/{_num(version)}/predict",
+                             rows, columns, csv, file, interval, as_csv)
+
+    def _predict(self, url: str, rows, columns, csv, file, interval, as_csv) -> dict[str, Any] | str:
+        kind, value = _one_of("predict()", rows=rows, columns=columns, csv=csv, file=file)
+        if kind == "file":
+            kind, value = _read_input_file(Path(value))
+        accept = "text/csv" if as_csv else "application/json"
+        if kind == "csv":
+            params = {"interval": interval} if interval is not None else None
+            response = self._send("POST", url, content=value.encode("utf-8"), params=params, expect="response",
+                                  headers={"Content-Type": "text/csv", "Accept": accept})
+        else:
+            data = [dict(r) for r in value] if kind == "rows" else _rows_from_columns(value)
+            body: dict[str, Any] = {"rows": data}
+            if interval is not None:
+                body["interval"] = interval
+            response = self._send("POST", url, json=body, expect="response", headers={"Accept": accept})
+        return response.text if as_csv else response.json()
+
+    # -- API keys -------------------------------------------------------------------------------------
+    @_route("GET", "/v1/keys")
+    def keys(self) -> list[dict[str, Any]]:
+        """Every API key (id, scopes, label, created, revoked); secrets are never listed."""
+        return self._send("GET", "/v1/keys")["keys"]
+
+    @_route("POST", "/v1/keys")
+    def create_key(self, scopes: str | Iterable[str], label: str = "") -> dict[str, Any]:
+        """Make an API key (admin scope). The answer's ``secret`` is shown only this once."""
+        scopes = [scopes] if isinstance(scopes, str) else list(scopes)
+        return self._send("POST", "/v1/keys", json={"scopes": scopes, "label": label})
+
+    @_route("DELETE", "/v1/keys/{key_id}")
+    def revoke_key(self, key_id: str) -> dict[str, Any]:
+        """Revoke an API key (idempotent); it stops working at once on this server, within
+        TIKHON_AUTH_CACHE_S on the others."""
+        return self._send("DELETE", f"/v1/keys/{_seg(key_id)}")
+
+
+def _seg(value: Any) -> str:
+    """One path segment, percent-encoded so a stray '/' or '?' cannot change the route."""
+    from urllib.parse import quote
+
+    return quote(str(value), safe="")
+
+
+def _num(version: Any) -> int:
+    """A version number: a whole number >= 1 (an int, or a string of digits such as "3")."""
+    text = str(version).strip()
+    if isinstance(version, bool) or not text.isdigit() or int(text) < 1:
+        raise ServiceError(0, "Invalid argument", f"version must be a whole number >= 1, got {version!r}.")
+    return int(text)
+
+
+def _job_id(job: str | Mapping[str, Any]) -> str:
+    if isinstance(job, Mapping):
+        if "id" not in job:
+            raise ServiceError(0, "Invalid argument", "the job mapping has no 'id'; pass the dict that train() "
+                               "returned or the job id string.")
+        return str(job["id"])
+    return str(job)
+
+
+def _read_input_file(path: Path) -> tuple[str, Any]:
+    """A local input file for predict: CSV text, or JSON (a list of rows or {"rows": [...]})."""
+    if not path.is_file():
+        raise ServiceError(0, "Invalid argument", f"input file {str(path)!r} does not exist; give a CSV or JSON file.")
+    text = path.read_text(encoding="utf-8")
+    if path.suffix.lower() == ".json" or text.lstrip()[:1] in ("[", "{"):
+        try:
+            doc = json.loads(text)
+        except ValueError as exc:
+            raise ServiceError(0, "Invalid argument", f"input file {str(path)!r} is not valid JSON ({exc}); give a list "
+                               "of rows or {\"rows\": [...]}.") from None
+        rows = doc.get("rows") if isinstance(doc, dict) else doc
+        if not isinstance(rows, list):
+            raise ServiceError(0, "Invalid argument", f"input file {str(path)!r} holds no list of rows; give a list of "
+                               "objects or {\"rows\": [...]}.")
+        return "rows", rows
+    return "csv", text
