@@ -36,6 +36,15 @@ class Settings(BaseSettings):
     max_training_rows: int = Field(5_000_000, ge=1, description="Most rows in one in-memory training job.")
     max_training_seconds: float = Field(3600.0, gt=0, description="Wall-time limit of one training job.")
 
+    # scale: out-of-core and distributed training
+    streaming_threshold_bytes: int = Field(
+        512 * 2**20, ge=0, description="A 'source' file (or folder) larger than this is trained out of core, in row "
+        "batches, unless the spec's execution.mode says otherwise.")
+    dask_scheduler: str | None = Field(
+        None, description="Run streamed training on a Dask cluster: a scheduler address (tcp://host:8786) or "
+        "'local' for a LocalCluster on this machine. Unset: in the worker's own process.")
+    dask_local_workers: int = Field(2, ge=1, description="Worker processes of a 'local' Dask cluster.")
+
     # worker
     embedded_worker: bool = Field(True, description="Whether `tikhon serve` also runs a worker in-process.")
     worker_heartbeat_s: float = Field(5.0, gt=0)
