@@ -243,8 +243,8 @@ class Store:
         if model_dir.exists() and not model_dir.is_dir():
             raise StorageFailure(f"{model_dir} exists and is not a folder; move it away to publish {name!r}.")
         trash: list[Path | None] = []
-        with self._staging() as staging:
-            try:
+        try:
+            with self._staging() as staging:
                 arrays_info = artifact.write_arrays(staging, arrays)
                 _fault_point("staged")
                 renamed = False
@@ -298,11 +298,11 @@ class Store:
                         except TikhonError:
                             pass  # the next publish or start-up sweep will
                     raise
-            except OSError as exc:
-                raise StorageFailure(
-                    f"could not write a version of {name!r} under {self.root} ({exc.strerror or exc}); "
-                    "nothing was published."
-                ) from exc
+        except OSError as exc:
+            raise StorageFailure(
+                f"could not write a version of {name!r} under {self.root} ({exc.strerror or exc}); "
+                "nothing was published."
+            ) from exc
         self._erase(trash)
         live = self.live_version(name)
         return self._version_out(row, live)
@@ -643,8 +643,14 @@ class Store:
 
     def _sweep_model(self, name: str) -> int:
         """Remove version folders of ``name`` that have no live catalog row. Returns how many."""
-        if not self._version_folders(name):
+        folders = self._version_folders(name)
+        if not folders:
             return 0
+        with catalog_errors(f"sweeping {name!r}", self.catalog), read_txn(self.engine) as conn:
+            alive = set(conn.execute(select(versions_t.c.version).where(and_(
+                versions_t.c.model_name == name, versions_t.c.deleted_at.is_(None)))).scalars())
+        if set(folders) <= alive:
+            return 0  # nothing to remove; only suspects are re-checked under the lock below
         with catalog_errors(f"sweeping {name!r}", self.catalog), write_txn(self.engine) as conn:
             lock_name(conn, name)
             rows = conn.execute(select(versions_t.c.version, versions_t.c.deleted_at)

@@ -215,3 +215,32 @@ def test_sweep_leaves_nothing_behind_after_clean_use(store, kit):
 
 def test_ping(store):
     assert store.ping() == {"catalog": "ok", "store": "ok"}
+
+
+def test_disk_full_while_publishing_leaves_nothing(store, kit, monkeypatch):
+    import errno
+
+    from service.errors import StorageFailure
+    from service.store import artifact
+
+    store.publish("m", *kit.linear_artifact(seed=1))
+
+    def full(folder, data):  # the manifest write hits a full disk (ENOSPC), after the number was taken
+        raise OSError(errno.ENOSPC, "No space left on device")
+
+    monkeypatch.setattr(artifact, "write_manifest", full)
+    with pytest.raises(StorageFailure, match="No space left on device.*nothing was published"):
+        store.publish("m", *kit.linear_artifact(seed=2))
+    monkeypatch.undo()
+    assert [v["version"] for v in store.list_versions("m")] == [1]
+    assert list((store.root / ".staging").iterdir()) == []
+    assert store.publish("m", *kit.linear_artifact(seed=3))["version"] == 2
+
+
+def test_a_file_in_the_way_of_a_model_folder(store, kit):
+    from service.errors import StorageFailure
+
+    (store.root / "m").write_text("not a folder")
+    with pytest.raises(StorageFailure, match="is not a folder"):
+        store.publish("m", *kit.linear_artifact())
+    assert store.list_models() == []
