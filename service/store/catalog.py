@@ -23,11 +23,7 @@ from contextlib import contextmanager
 from pathlib import Path
 from typing import Iterator
 
-from alembic import command
-from alembic.config import Config
-from alembic.runtime.migration import MigrationContext
-from alembic.script import ScriptDirectory
-from sqlalchemy import create_engine, event, text
+from sqlalchemy import create_engine, event, inspect, text
 from sqlalchemy.engine import Connection, Engine, make_url
 from sqlalchemy.exc import ArgumentError, SQLAlchemyError
 
@@ -35,6 +31,9 @@ from service.errors import StorageFailure
 
 MIGRATIONS_DIR = Path(__file__).resolve().parent / "migrations"
 VERSION_TABLE = "tikhon_schema_version"
+# The newest revision in migrations/versions (tests/store/test_migrations.py checks they agree). Knowing
+# it without Alembic lets an up-to-date catalog open without importing Alembic at all.
+SCHEMA_HEAD = "0001"
 SQLITE_BUSY_TIMEOUT_S = 30.0
 _MIGRATION_LOCK = 0x54494B484F4E  # advisory-lock key used while migrating ("TIKHON" in hex)
 
@@ -130,7 +129,9 @@ def lock_name(conn: Connection, name: str) -> None:
         conn.execute(text("SELECT pg_advisory_xact_lock(:k)"), {"k": advisory_key(name)})
 
 
-def alembic_config() -> Config:
+def alembic_config():
+    from alembic.config import Config
+
     cfg = Config()
     cfg.set_main_option("script_location", str(MIGRATIONS_DIR))
     cfg.set_main_option("version_table", VERSION_TABLE)
@@ -138,20 +139,26 @@ def alembic_config() -> Config:
 
 
 def head_revision() -> str:
+    from alembic.script import ScriptDirectory
+
     return ScriptDirectory.from_config(alembic_config()).get_current_head()
 
 
 def known_revisions() -> set[str]:
+    from alembic.script import ScriptDirectory
+
     return {script.revision for script in ScriptDirectory.from_config(alembic_config()).walk_revisions()}
 
 
 def current_revision(conn: Connection) -> str | None:
-    return MigrationContext.configure(conn, opts={"version_table": VERSION_TABLE}).get_current_revision()
+    if not inspect(conn).has_table(VERSION_TABLE):
+        return None
+    return conn.execute(text(f"SELECT version_num FROM {VERSION_TABLE}")).scalar()
 
 
 def migrate(engine: Engine) -> str:
     """Bring the catalog to the newest revision; return it. Safe to call from many processes at once."""
-    head = head_revision()
+    head = SCHEMA_HEAD
     try:
         with read_txn(engine) as conn:
             if current_revision(conn) == head:
@@ -166,6 +173,8 @@ def migrate(engine: Engine) -> str:
                     f"know (its newest is {head!r}); it was written by a newer Tikhon: upgrade this one."
                 )
             if current != head:
+                from alembic import command
+
                 cfg = alembic_config()
                 cfg.attributes["connection"] = conn
                 command.upgrade(cfg, "head")

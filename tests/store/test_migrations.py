@@ -10,8 +10,12 @@ from alembic.runtime.migration import MigrationContext
 
 from service.errors import StorageFailure
 from service.store import Store
-from service.store.catalog import VERSION_TABLE, alembic_config, head_revision, write_txn
+from service.store.catalog import SCHEMA_HEAD, VERSION_TABLE, alembic_config, head_revision, write_txn
 from service.store.schema import metadata
+
+
+def test_schema_head_constant_is_alembics_head():
+    assert SCHEMA_HEAD == head_revision()
 
 
 def test_migrated_schema_matches_the_code(store):
