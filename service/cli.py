@@ -1,0 +1,863 @@
+"""The ``tikhon`` command line (typer + rich).
+
+Every command except ``serve`` and ``worker`` talks to a server through ``service.client.Client``
+(``--url`` / ``TIKHON_URL``, ``--key`` / ``TIKHON_KEY``). ``serve`` and ``worker`` start the service
+itself; ``keys create --local`` writes the first key straight into the catalog when no server can be
+reached yet (the bootstrap of a server that must listen beyond loopback).
+
+Exit codes: 0 ok; 1 the operation failed (a training job failed or was cancelled, the server could not
+be reached or answered 5xx); 2 bad usage (a wrong option or argument, or a 4xx answer: the request
+must change). Every error is one line on stderr; ``--json`` prints machine-readable results on stdout.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import sys
+import threading
+import time
+from pathlib import Path
+from typing import Annotated, Any, Optional
+
+import typer
+from rich.console import Console
+from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+from rich.table import Table
+
+from service.client import DEFAULT_URL, FINAL_STATES, Client, ServiceError
+
+DEMO_MODEL = "pump-energy"
+DEMO_DIR = "demo"  # under TIKHON_DATA_DIR
+DEMO_FILES = {0: "pump-stations.csv", 1: "pump-stations-next-month.csv"}
+DEMO_ROWS = 3000
+DEMO_SEED = 0
+
+app = typer.Typer(name="tikhon", add_completion=False, no_args_is_help=True, pretty_exceptions_enable=False,
+                  rich_markup_mode=None, help="Tune, version and serve regularized regression models.")
+keys_app = typer.Typer(no_args_is_help=True, help="API keys: create, list, revoke (admin scope).")
+app.add_typer(keys_app, name="keys")
+
+
+class UsageProblem(Exception):
+    """A command-line mistake found before anything was sent; exit code 2."""
+
+
+class JobFailed(Exception):
+    """A training job ended failed or cancelled; exit code 1."""
+
+
+class _Options:
+    url: str = DEFAULT_URL
+    key: str | None = None
+    json: bool = False
+    timeout: float = 60.0
+
+
+def _opts(ctx: typer.Context) -> _Options:
+    obj = ctx.find_root().obj
+    return obj if isinstance(obj, _Options) else _Options()
+
+
+def _client(ctx: typer.Context) -> Client:
+    o = _opts(ctx)
+    return Client(o.url, key=o.key, timeout=o.timeout)
+
+
+_out = Console(highlight=False, soft_wrap=True)
+_err = Console(stderr=True, highlight=False, soft_wrap=True)
+
+
+def _print_json(value: Any) -> None:
+    sys.stdout.write(json.dumps(value, indent=2, ensure_ascii=False) + "\n")
+
+
+@app.callback()
+def _root(
+    ctx: typer.Context,
+    url: Annotated[Optional[str], typer.Option("--url", envvar="TIKHON_URL", show_default=False,
+                   help="Server address [default: http://127.0.0.1:$TIKHON_PORT, port 8000].")] = None,
+    key: Annotated[Optional[str], typer.Option("--key", envvar="TIKHON_KEY", show_default=False,
+                   help="API key (needed once the server has keys).")] = None,
+    json_output: Annotated[bool, typer.Option("--json", help="Print machine-readable JSON on stdout.")] = False,
+    timeout: Annotated[float, typer.Option("--timeout", min=0.1, help="Seconds to wait for each answer.")] = 60.0,
+) -> None:
+    o = _Options()
+    port = os.environ.get("TIKHON_PORT", "").strip()
+    o.url = url or (f"http://127.0.0.1:{port}" if port.isdigit() else DEFAULT_URL)
+    o.key = key or None
+    o.json = json_output
+    o.timeout = timeout
+    ctx.obj = o
+
+
+# ----------------------------------------------------------------------------------------------------
+# serve, worker (start the service itself)
+
+
+def _settings(**overrides: Any):
+    from pydantic import ValidationError
+
+    from service.settings import Settings
+
+    try:
+        return Settings(**{k: v for k, v in overrides.items() if v is not None})
+    except ValidationError as exc:
+        e = exc.errors(include_url=False)[0]
+        field = ".".join(str(p) for p in e["loc"])
+        raise UsageProblem(f"setting {field} (TIKHON_{field.upper()}) is invalid: {e['msg']}; fix the option or "
+                           "the environment variable.") from None
+
+
+@app.command()
+def serve(
+    ctx: typer.Context,
+    demo: Annotated[bool, typer.Option("--demo", help=f"On first start (no model in the store), train the demo model "
+                                       f"'{DEMO_MODEL}' on invented pump-station data and write next month's data "
+                                       f"to $TIKHON_DATA_DIR/{DEMO_DIR}/.")] = False,
+    host: Annotated[Optional[str], typer.Option(help="Address to listen on [default: $TIKHON_HOST or 127.0.0.1].")] = None,
+    port: Annotated[Optional[int], typer.Option(help="Port [default: $TIKHON_PORT or 8000].", min=1, max=65535)] = None,
+    no_worker: Annotated[bool, typer.Option("--no-worker", help="Do not run a training worker in this process "
+                                            "(run 'tikhon worker' separately).")] = False,
+) -> None:
+    """Start the HTTP API (and, unless --no-worker, a training worker in the same process)."""
+    settings = _settings(host=host, port=port, embedded_worker=False if no_worker else None)
+    if demo:
+        _seed_demo(settings, _opts(ctx).key)
+    from service.api.server import run
+
+    _err.print(f"tikhon: serving on http://{settings.host}:{settings.port} (store {settings.store}); Ctrl-C stops.")
+    run(settings)
+
+
+@app.command()
+def worker() -> None:
+    """Run a training worker (claims queued jobs from the catalog) until SIGTERM or Ctrl-C."""
+    settings = _settings()
+    from service.worker import run_worker
+
+    run_worker(settings)
+
+
+def demo_paths(data_dir: Path) -> dict[int, Path]:
+    """Where ``serve --demo`` writes the demo data: month 0 (training) and month 1 (next month)."""
+    return {month: Path(data_dir) / DEMO_DIR / name for month, name in DEMO_FILES.items()}
+
+
+def _write_demo_csv(path: Path, month: int) -> None:
+    """The pump-station scenario as CSV; written to a temporary name and renamed, so never half-written."""
+    import csv as _csv
+
+    from service.demo import pump_stations
+
+    cols = pump_stations(DEMO_ROWS, seed=DEMO_SEED, month=month)
+    names = list(cols)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(path.name + ".part")
+    with open(tmp, "w", newline="", encoding="utf-8") as fh:
+        w = _csv.writer(fh, lineterminator="\n")
+        w.writerow(names)
+        values = [cols[n].tolist() for n in names]
+        w.writerows(zip(*values))
+    os.replace(tmp, path)
+
+
+def _seed_demo(settings, key: str | None) -> None:
+    """First start with --demo: write the demo data and train the demo model through the normal job path
+    (the training route accepts the job, a worker runs it), before the server starts listening."""
+    from service.demo import DEMO_SPEC
+
+    paths = demo_paths(settings.data_dir)
+    for month, path in paths.items():
+        if not path.is_file():
+            _write_demo_csv(path, month)
+    from service.api.server import build
+    from service.worker import Worker
+
+    app_, store, _ = build(settings, embedded_worker=False)
+    try:
+        if store.list_models():
+            _err.print(f"tikhon: demo: the store already holds models; '{DEMO_MODEL}' is not trained again.")
+            return
+        pending = [j for j in store.jobs.list(name=DEMO_MODEL) if j["state"] in ("queued", "running")]
+        if pending:
+            job_id = pending[0]["id"]
+        else:
+            job_id = _submit_in_process(app_, key, {
+                "data": {"source": f"{DEMO_DIR}/{DEMO_FILES[0]}"}, "spec": DEMO_SPEC, "promote": "always"})
+        _err.print(f"tikhon: demo: training '{DEMO_MODEL}' on {DEMO_ROWS} invented hourly pump-station readings "
+                   "(first start only)...")
+        w = Worker(settings, store)
+        runner = threading.Thread(target=_run_until, args=(w, store, job_id), daemon=True)
+        runner.start()
+        job = _follow(lambda: _job_view(store.jobs.get(job_id)), f"demo {DEMO_MODEL}", poll=0.2)
+        runner.join()
+        if job["state"] != "succeeded":
+            raise JobFailed(f"demo training job {job_id} {job['state']}: {_problem_text(job)}")
+        decision = job.get("decision") or {}
+        _err.print(f"tikhon: demo: '{DEMO_MODEL}' version {job['version']} is live "
+                   f"(CV {decision.get('metric', 'rmse')} {decision.get('new_cv_mean', float('nan')):.4g}); "
+                   f"next month's data for a scheduled retrain: {paths[1]}")
+    finally:
+        store.close()
+
+
+def _submit_in_process(app_, key: str | None, body: dict) -> str:
+    """POST the training request to the app's own route, in-process (the same checks as over HTTP)."""
+    import anyio
+    import httpx
+
+    async def post() -> httpx.Response:
+        headers = {"Authorization": f"Bearer {key}"} if key else {}
+        transport = httpx.ASGITransport(app=app_, client=("127.0.0.1", 0))
+        async with httpx.AsyncClient(transport=transport, base_url="http://127.0.0.1") as c:
+            return await c.post(f"/v1/models/{DEMO_MODEL}/trainings", json=body, headers=headers, timeout=120)
+
+    response = anyio.run(post)
+    if response.status_code != 202:
+        err = ServiceError.from_response(response)
+        raise JobFailed(f"the demo training was refused: {err}" + (
+            "; the store has API keys, so pass one with the train scope (--key / TIKHON_KEY)" if err.status == 401 else ""))
+    return response.json()["id"]
+
+
+def _run_until(w, store, job_id: str) -> None:
+    while store.jobs.get(job_id)["state"] not in FINAL_STATES:
+        if not w.run_once():
+            time.sleep(0.2)
+
+
+def _job_view(job: dict) -> dict:
+    from service.api.routes.trainings import job_view
+
+    return job_view(job)
+
+
+# ----------------------------------------------------------------------------------------------------
+# training
+
+
+def parse_basis(text: str) -> dict[str, Any]:
+    """``linear``, ``poly:1-6``, ``poly:2,3,5``, ``rbf:0.5,1,2`` or ``rbf:0.5,1,2:60`` (60 centres)."""
+    raw = text.strip()
+    kind, _, rest = raw.partition(":")
+    kind = kind.strip().lower()
+    hint = "use linear, poly:1-6, poly:2,3 or rbf:0.5,1,2 (widths) with an optional :CENTERS, e.g. rbf:0.5,1,2:60"
+    if kind == "linear" and not rest:
+        return {"kind": "linear"}
+    if kind in ("poly", "polynomial") and rest:
+        try:
+            if "-" in rest:
+                lo, hi = (int(p) for p in rest.split("-", 1))
+                degrees = list(range(lo, hi + 1))
+            else:
+                degrees = [int(p) for p in rest.split(",") if p.strip()]
+        except ValueError:
+            raise UsageProblem(f"--basis {raw!r}: degrees must be whole numbers; {hint}.") from None
+        if not degrees:
+            raise UsageProblem(f"--basis {raw!r} names no degree; {hint}.")
+        return {"kind": "polynomial", "degrees": degrees}
+    if kind == "rbf" and rest:
+        widths_text, _, centers = rest.partition(":")
+        try:
+            widths = [float(p) for p in widths_text.split(",") if p.strip()]
+            out: dict[str, Any] = {"kind": "rbf", "widths": widths}
+            if centers:
+                out["centers"] = int(centers)
+        except ValueError:
+            raise UsageProblem(f"--basis {raw!r}: widths must be numbers and centres a whole number; {hint}.") from None
+        return out
+    raise UsageProblem(f"--basis {raw!r} is not understood; {hint}.")
+
+
+def _load_spec(path: Path) -> dict[str, Any]:
+    try:
+        spec = json.loads(path.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise UsageProblem(f"--spec {str(path)!r} does not exist; give the path of a JSON training spec.") from None
+    except (ValueError, UnicodeDecodeError) as exc:
+        raise UsageProblem(f"--spec {str(path)!r} is not valid JSON ({' '.join(str(exc).split())}); fix the file.") from None
+    if not isinstance(spec, dict):
+        raise UsageProblem(f"--spec {str(path)!r} holds a {type(spec).__name__}; a spec is a JSON object such as "
+                           "{\"target\": \"energy_kwh\"}.")
+    return spec
+
+
+@app.command()
+def train(
+    ctx: typer.Context,
+    name: Annotated[str, typer.Argument(help="Model name.")],
+    data: Annotated[Path, typer.Option("--data", help="CSV or Parquet file to train on (uploaded).")],
+    target: Annotated[Optional[str], typer.Option(help="Target column (overrides the spec's).")] = None,
+    spec: Annotated[Optional[Path], typer.Option(help="JSON training spec. With neither --spec nor --target the live "
+                                                 "version's spec is reused (a scheduled retrain).")] = None,
+    basis: Annotated[Optional[list[str]], typer.Option(help="Basis to try, repeatable: linear, poly:1-6, rbf:0.5,1,2 "
+                                                       "(replaces the spec's bases).")] = None,
+    feature: Annotated[Optional[list[str]], typer.Option(help="Numeric input column, repeatable (default: all).")] = None,
+    categorical: Annotated[Optional[list[str]], typer.Option(help="Categorical input column, repeatable.")] = None,
+    promote: Annotated[str, typer.Option(help="always | if_better | never.")] = "if_better",
+    min_improvement: Annotated[float, typer.Option(min=0.0, help="For if_better: least improvement of the CV "
+                                                   "metric needed.")] = 0.0,
+    wait: Annotated[bool, typer.Option("--wait", help="Show progress until the job ends, then a summary.")] = False,
+    idempotency_key: Annotated[Optional[str], typer.Option(help="Repeat-safe submission key (e.g. a date for a "
+                                                           "nightly job).")] = None,
+) -> None:
+    """Submit a training job; with --wait, follow it and summarize the chosen point and the CV curve."""
+    if promote not in ("always", "if_better", "never"):
+        raise UsageProblem(f"--promote {promote!r} is not offered; use always, if_better or never.")
+    if not data.is_file():
+        raise UsageProblem(f"--data {str(data)!r} is not a file; give the path of a CSV or Parquet table.")
+    body: dict[str, Any] | None = _load_spec(spec) if spec is not None else None
+    if body is None and (target or basis or feature or categorical):
+        if not target:
+            raise UsageProblem("--basis/--feature/--categorical need --target or --spec (without them the live "
+                               "version's spec is reused unchanged).")
+        body = {}
+    if body is not None:
+        if target:
+            body["target"] = target
+        if basis:
+            body["bases"] = [parse_basis(b) for b in basis]
+        if feature:
+            body["features"] = list(feature)
+        if categorical:
+            body["categorical"] = list(categorical)
+    o = _opts(ctx)
+    with _client(ctx) as tk:
+        job = tk.train(name, file=data, spec=body, promote=promote, min_improvement=min_improvement,
+                       idempotency_key=idempotency_key)
+        if not wait:
+            if o.json:
+                _print_json(job)
+            else:
+                _out.print(f"job {job['id']} {job['state']} ({name}); follow it with: tikhon job {job['id']} --wait")
+            return
+        final = _follow(lambda: tk.training(job["id"]), f"training {name}", poll=0.25)
+        _finish_job(tk, final, o)
+
+
+@app.command("job")
+def job_cmd(
+    ctx: typer.Context,
+    job_id: Annotated[str, typer.Argument(help="Training job id.")],
+    wait: Annotated[bool, typer.Option("--wait", help="Follow the job until it ends.")] = False,
+) -> None:
+    """Show a training job (with --wait: follow it, then summarize like 'train --wait')."""
+    o = _opts(ctx)
+    with _client(ctx) as tk:
+        job = tk.training(job_id)
+        if wait and job["state"] not in FINAL_STATES:
+            job = _follow(lambda: tk.training(job_id), f"training {job['model']}", poll=0.25)
+        if job["state"] in FINAL_STATES:
+            _finish_job(tk, job, o)
+            return
+        if o.json:
+            _print_json(job)
+        else:
+            p = job.get("progress") or {}
+            _out.print(f"job {job['id']} {job['state']} ({job['model']}): {p.get('done', 0)}/{p.get('total') or '?'} units")
+
+
+@app.command()
+def jobs(
+    ctx: typer.Context,
+    name: Annotated[Optional[str], typer.Argument(help="Only this model's jobs.")] = None,
+) -> None:
+    """List training jobs, newest first."""
+    with _client(ctx) as tk:
+        items = tk.trainings(model=name)
+    if _opts(ctx).json:
+        _print_json(items)
+        return
+    t = Table("job", "model", "state", "progress", "version", "created")
+    for j in items:
+        p = j.get("progress") or {}
+        t.add_row(j["id"], j["model"], j["state"], f"{p.get('done', 0)}/{p.get('total') or '?'}",
+                  str(j.get("version") or ""), str(j.get("created_at") or "")[:19])
+    _out.print(t)
+
+
+@app.command()
+def cancel(ctx: typer.Context, job_id: Annotated[str, typer.Argument(help="Training job id.")]) -> None:
+    """Cancel a queued or running training job."""
+    with _client(ctx) as tk:
+        job = tk.cancel(job_id)
+    if _opts(ctx).json:
+        _print_json(job)
+    else:
+        _out.print(f"job {job['id']} {job['state']}")
+
+
+def _follow(fetch, label: str, *, poll: float) -> dict[str, Any]:
+    """Poll a job until it ends, with a live progress bar on a terminal (plain lines otherwise)."""
+    interactive = _err.is_terminal
+    last_line = 0.0
+    delay = 0.05
+    with Progress(TextColumn("{task.description}"), BarColumn(bar_width=40), MofNCompleteColumn(),
+                  TextColumn("units"), TimeElapsedColumn(), console=_err, transient=False,
+                  disable=not interactive) as bar:
+        task = bar.add_task(label, total=None)
+        while True:
+            job = fetch()
+            p = job.get("progress") or {}
+            done, total = int(p.get("done") or 0), p.get("total")
+            bar.update(task, completed=done, total=total, description=f"{label} [{job['state']}]")
+            now = time.monotonic()
+            if not interactive and now - last_line >= 5.0:
+                last_line = now
+                _err.print(f"tikhon: {label}: {job['state']} {done}/{total or '?'} units")
+            if job["state"] in FINAL_STATES:
+                if total:
+                    bar.update(task, completed=done)
+                return job
+            time.sleep(delay)
+            delay = min(poll, delay * 1.5)
+
+
+def _problem_text(job: dict) -> str:
+    problem = job.get("problem") or {}
+    text = problem.get("detail") or problem.get("title") or f"the job ended {job.get('state')}"
+    return " ".join(str(text).split())
+
+
+def _finish_job(tk: Client, job: dict, o: _Options) -> None:
+    if job["state"] != "succeeded":
+        if o.json:
+            _print_json(job)
+        raise JobFailed(f"training job {job['id']} of {job['model']} {job['state']}: {_problem_text(job)}")
+    name, version = job["model"], job["version"]
+    meta = tk.version(name, version)
+    cv = tk.cv(name, version)
+    if o.json:
+        _print_json({"job": job, "chosen": meta.get("chosen"), "cv_summary": meta.get("cv_summary")})
+        return
+    _out.print(summary_table(job, meta))
+    _out.print(cv_text_plot(cv.get("table") or [], meta.get("chosen") or {}))
+
+
+def _basis_text(basis: dict | None) -> str:
+    basis = basis or {}
+    kind = basis.get("kind", "?")
+    if kind == "polynomial":
+        return f"polynomial, degree {basis.get('degree')}"
+    if kind == "rbf":
+        extra = f", {basis['centers']} centres" if basis.get("centers") else ""
+        return f"rbf, width {basis.get('width'):g}{extra}" if basis.get("width") is not None else "rbf"
+    return str(kind)
+
+
+def _penalty_text(penalty: dict | None) -> str:
+    penalty = penalty or {}
+    s = penalty.get("strength")
+    text = f"{penalty.get('kind', '?')}, λ = {s:.4g}" if isinstance(s, (int, float)) else str(penalty.get("kind"))
+    if penalty.get("l1_ratio") is not None:
+        text += f", l1_ratio {penalty['l1_ratio']:g}"
+    return text
+
+
+def summary_table(job: dict, meta: dict) -> Table:
+    chosen = meta.get("chosen") or {}
+    summary = meta.get("cv_summary") or {}
+    decision = job.get("decision") or {}
+    t = Table(title=f"{job['model']} version {job['version']}", show_header=False)
+    t.add_column("what", style="bold")
+    t.add_column("value")
+    t.add_row("chosen basis", _basis_text(chosen.get("basis")))
+    t.add_row("chosen penalty", _penalty_text(chosen.get("penalty")))
+    metric = chosen.get("metric") or summary.get("metric") or "rmse"
+    folds = summary.get("splits")
+    t.add_row(f"CV {metric}", f"{chosen.get('mean', float('nan')):.6g} ± {chosen.get('std', float('nan')):.3g} (std over "
+              f"{folds} folds)" if folds else f"{chosen.get('mean', float('nan')):.6g} ± {chosen.get('std', float('nan')):.3g}")
+    t.add_row("selection rule", str(chosen.get("rule") or summary.get("rule")))
+    t.add_row("candidates", f"{summary.get('candidates')} ({summary.get('basis_settings')} basis settings × "
+              f"{summary.get('strengths')} strengths), {summary.get('rows')} rows")
+    went = decision.get("went_live")
+    t.add_row("live", ("yes" if went else "no") + (f": {decision.get('reason')}" if decision.get("reason") else ""))
+    t.add_row("job", job["id"])
+    return t
+
+
+def cv_text_plot(table: list[dict], chosen: dict, *, width: int = 56, height: int = 10) -> str:
+    """CV error against penalty strength (log scale) for the chosen basis setting, as text.
+
+    ``*`` marks a candidate, ``O`` the chosen one; the y axis is linear from the lowest to the highest
+    mean error shown."""
+    basis = chosen.get("basis")
+    ratio = (chosen.get("penalty") or {}).get("l1_ratio")
+    pts = sorted((r["strength"], r["mean"]) for r in table
+                 if r.get("basis") == basis and r.get("l1_ratio") == ratio
+                 and isinstance(r.get("mean"), (int, float)) and math.isfinite(r["mean"]))
+    if not pts:
+        return "(no CV rows for the chosen basis setting)"
+    chosen_s = (chosen.get("penalty") or {}).get("strength")
+    xs = [math.log10(s) if s > 0 else None for s, _ in pts]
+    finite_x = [x for x in xs if x is not None]
+    xmin, xmax = (min(finite_x), max(finite_x)) if finite_x else (0.0, 0.0)
+    ys = [m for _, m in pts]
+    ymin, ymax = min(ys), max(ys)
+    grid = [[" "] * width for _ in range(height)]
+
+    def col(x: float | None) -> int:
+        if x is None or xmax == xmin:
+            return 0
+        return round((x - xmin) / (xmax - xmin) * (width - 1))
+
+    def row(y: float) -> int:
+        if ymax == ymin:
+            return height // 2
+        return round((ymax - y) / (ymax - ymin) * (height - 1))
+
+    for (s, m), x in zip(pts, xs):
+        mark = "O" if chosen_s is not None and s == chosen_s else "*"
+        r, c = row(m), col(x)
+        if grid[r][c] != "O":
+            grid[r][c] = mark
+    metric = chosen.get("metric", "error")
+    label_w = max(len(f"{ymax:.4g}"), len(f"{ymin:.4g}"))
+    lines = [f"CV {metric} against penalty strength λ for {_basis_text(basis)} (O = chosen)"]
+    for i, cells in enumerate(grid):
+        label = f"{ymax:.4g}" if i == 0 else f"{ymin:.4g}" if i == height - 1 else ""
+        lines.append(f"{label:>{label_w}} |" + "".join(cells))
+    lines.append(" " * label_w + " +" + "-" * width)
+    left = f"{pts[0][0]:.3g}"
+    right = f"{pts[-1][0]:.3g}"
+    lines.append(" " * (label_w + 2) + left + " " * max(1, width - len(left) - len(right) - 5) + right + " (λ, log)")
+    return "\n".join(lines)
+
+
+# ----------------------------------------------------------------------------------------------------
+# predictions and models
+
+
+def parse_ref(ref: str) -> tuple[str, int | None]:
+    """``NAME`` or ``NAME@VERSION``."""
+    name, at, version = ref.partition("@")
+    if not name:
+        raise UsageProblem(f"{ref!r} names no model; write NAME or NAME@VERSION, e.g. pump-energy@3.")
+    if not at:
+        return name, None
+    if not version.isdigit() or int(version) < 1:
+        raise UsageProblem(f"{ref!r}: the version after '@' must be a whole number >= 1, e.g. pump-energy@3.")
+    return name, int(version)
+
+
+@app.command()
+def predict(
+    ctx: typer.Context,
+    ref: Annotated[str, typer.Argument(metavar="NAME[@VERSION]", help="Model, optionally pinned to a version.")],
+    data: Annotated[Path, typer.Option("--data", help="Input rows: a CSV file, or JSON (a list of rows or {\"rows\": [...]}).")],
+    interval: Annotated[Optional[float], typer.Option(help="Prediction interval level, e.g. 0.9.")] = None,
+    out: Annotated[Optional[Path], typer.Option(help="Write the predictions to this file (.csv or .json).")] = None,
+) -> None:
+    """Predict with the live version (or a pinned one): values, intervals, extrapolation warnings."""
+    name, version = parse_ref(ref)
+    if interval is not None and not (0 < interval < 1):
+        raise UsageProblem(f"--interval {interval:g} is outside (0, 1); give a level such as 0.9.")
+    if not data.is_file():
+        raise UsageProblem(f"--data {str(data)!r} is not a file; give a CSV or JSON file of input rows.")
+    if out is not None and out.suffix.lower() not in (".csv", ".json"):
+        raise UsageProblem(f"--out {str(out)!r} must end in .csv or .json (the format follows the suffix).")
+    with _client(ctx) as tk:
+        answer = tk.predict(name, version=version, file=data, interval=interval)
+    model = answer["model"]
+    preds = answer["predictions"]
+    if out is not None:
+        _write_predictions(out, answer, interval is not None)
+        _err.print(f"tikhon: wrote {len(preds)} predictions of {model['name']} version {model['version']} to {out}")
+        return
+    if _opts(ctx).json:
+        _print_json(answer)
+        return
+    t = Table(title=f"{model['name']} version {model['version']}: {_basis_text(model.get('basis'))}; "
+              f"{_penalty_text(model.get('penalty'))}")
+    t.add_column("row", justify="right")
+    t.add_column("value", justify="right")
+    if interval is not None:
+        t.add_column(f"{interval:g} interval", justify="right")
+    t.add_column("warnings")
+    for i, p in enumerate(preds):
+        cells = [str(i), f"{p['value']:.6g}"]
+        if interval is not None:
+            lo, hi = p.get("interval") or (None, None)
+            cells.append(f"[{_num(lo)}, {_num(hi)}]")
+        cells.append("; ".join(p.get("warnings") or []))
+        t.add_row(*cells)
+    _out.print(t)
+
+
+def _num(v: Any) -> str:
+    return "-" if v is None else f"{v:.6g}"
+
+
+def _write_predictions(out: Path, answer: dict, with_interval: bool) -> None:
+    """Write atomically (temporary name, then rename). CSV numbers are shortest round-trip decimals."""
+    import csv as _csv
+
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = out.with_name(out.name + ".part")
+    with open(tmp, "w", newline="", encoding="utf-8") as fh:
+        if out.suffix.lower() == ".json":
+            json.dump(answer, fh, indent=2)
+            fh.write("\n")
+        else:
+            w = _csv.writer(fh, lineterminator="\n")
+            model = answer["model"]
+            w.writerow(["model", "version", "value", *(["lower", "upper"] if with_interval else []), "warnings"])
+            for p in answer["predictions"]:
+                bounds = []
+                if with_interval:
+                    lo, hi = p.get("interval") or (None, None)
+                    bounds = ["" if lo is None else repr(lo), "" if hi is None else repr(hi)]
+                w.writerow([model["name"], model["version"], repr(p["value"]), *bounds, "; ".join(p.get("warnings") or [])])
+    os.replace(tmp, out)
+
+
+@app.command()
+def models(ctx: typer.Context) -> None:
+    """List models with their live and newest versions."""
+    with _client(ctx) as tk:
+        items = tk.models()
+    if _opts(ctx).json:
+        _print_json(items)
+        return
+    t = Table("model", "live", "newest", "versions", "updated")
+    for m in items:
+        t.add_row(m["name"], str(m.get("live_version") or "-"), str(m.get("latest_version") or "-"),
+                  str(m.get("versions")), str(m.get("updated_at") or "")[:19])
+    _out.print(t)
+
+
+@app.command()
+def show(
+    ctx: typer.Context,
+    ref: Annotated[str, typer.Argument(metavar="NAME[@VERSION]", help="Model (its live version) or one version.")],
+) -> None:
+    """Show a version: chosen point, CV error, inputs and their training ranges, checksums."""
+    name, version = parse_ref(ref)
+    with _client(ctx) as tk:
+        if version is None:
+            model = tk.model(name)
+            version = model.get("live_version")
+            if version is None:
+                raise UsageProblem(f"model {name!r} has no live version; name one: {name}@VERSION "
+                                   f"(versions: {model.get('versions')}).")
+        meta = tk.version(name, version)
+    if _opts(ctx).json:
+        _print_json(meta)
+        return
+    chosen = meta.get("chosen") or {}
+    summary = meta.get("cv_summary") or {}
+    t = Table(title=f"{name} version {meta['version']}", show_header=False)
+    t.add_column("what", style="bold")
+    t.add_column("value")
+    t.add_row("target", str((meta.get("spec") or {}).get("target")))
+    t.add_row("chosen basis", _basis_text(chosen.get("basis")))
+    t.add_row("chosen penalty", _penalty_text(chosen.get("penalty")))
+    t.add_row(f"CV {chosen.get('metric', '')}", f"{chosen.get('mean', float('nan')):.6g} ± {chosen.get('std', float('nan')):.3g}"
+              f" ({summary.get('scheme')}, {summary.get('splits')} splits, rule {chosen.get('rule')})")
+    for f in meta.get("feature_schema") or []:
+        rng = f.get("range")
+        levels = f.get("levels")
+        desc = f"{f.get('type')}" + (f", trained on [{rng[0]:.6g}, {rng[1]:.6g}]" if rng else "") + (
+            f", levels {', '.join(map(str, levels))}" if levels else "")
+        t.add_row(f"input {f.get('name')}", desc)
+    fp = meta.get("data_fingerprint") or {}
+    t.add_row("training data", f"{fp.get('rows')} rows, sha256 {str(fp.get('sha256'))[:16]}…")
+    t.add_row("created", str(meta.get("created_at")))
+    t.add_row("job", str(meta.get("job_id")))
+    sums = meta.get("checksums") or {}
+    t.add_row("manifest sha256", str(sums.get("manifest_sha256")))
+    t.add_row("arrays sha256", str(sums.get("arrays_sha256")))
+    t.add_row("live", "yes" if meta.get("live") else "no")
+    _out.print(t)
+
+
+@app.command()
+def promote(
+    ctx: typer.Context,
+    name: Annotated[str, typer.Argument(help="Model name.")],
+    version: Annotated[int, typer.Argument(help="Version to make live.", min=1)],
+    reason: Annotated[str, typer.Option("--reason", help="Why (kept in the history).")],
+) -> None:
+    """Make a version live (admin scope); the change and the reason go into the history."""
+    with _client(ctx) as tk:
+        result = tk.set_live(name, version, reason)
+    if _opts(ctx).json:
+        _print_json(result)
+        return
+    change = result.get("change") or {}
+    _out.print(f"{name}: live version {change.get('from_version') or '-'} -> {result['live_version']}")
+
+
+@app.command()
+def history(ctx: typer.Context, name: Annotated[str, typer.Argument(help="Model name.")]) -> None:
+    """Every change of a model's live version: when, who, from, to, why."""
+    with _client(ctx) as tk:
+        entries = tk.history(name)
+    if _opts(ctx).json:
+        _print_json(entries)
+        return
+    t = Table("when", "from", "to", "by", "reason")
+    for h in entries:
+        t.add_row(str(h.get("at"))[:19], str(h.get("from_version") or "-"), str(h.get("to_version")),
+                  str(h.get("actor")), str(h.get("reason")))
+    _out.print(t)
+
+
+@app.command()
+def prune(
+    ctx: typer.Context,
+    keep: Annotated[int, typer.Option("--keep", min=0, help="Newest versions to keep besides the live one.")],
+    names: Annotated[Optional[list[str]], typer.Argument(help="Models to prune (default: every model).")] = None,
+) -> None:
+    """Delete old versions: all but the live one and the newest --keep (admin scope)."""
+    with _client(ctx) as tk:
+        targets = list(names or [m["name"] for m in tk.models()])
+        results = [tk.prune(n, keep) for n in targets]
+    if _opts(ctx).json:
+        _print_json(results)
+        return
+    for r in results:
+        deleted = ", ".join(map(str, r["deleted"])) or "nothing"
+        _out.print(f"{r['name']}: deleted {deleted}; kept {', '.join(map(str, r['remaining'])) or 'nothing'} "
+                   f"(live {r.get('live_version') or '-'})")
+
+
+# ----------------------------------------------------------------------------------------------------
+# API keys
+
+
+@keys_app.command("create")
+def keys_create(
+    ctx: typer.Context,
+    scope: Annotated[list[str], typer.Option("--scope", help="predict, train or admin; repeatable.")],
+    label: Annotated[str, typer.Option(help="Who or what uses the key.")] = "",
+    local: Annotated[bool, typer.Option("--local", help="Write the key into the catalog of this machine's settings "
+                                        "(TIKHON_STORE / TIKHON_DATABASE_URL) without a server: the bootstrap of a "
+                                        "server that must listen beyond loopback.")] = False,
+) -> None:
+    """Create an API key. Its secret is printed once; store it now."""
+    if local:
+        from service.store import Store
+
+        with Store(_settings()) as store:
+            key_id, secret = store.keys.create(scope, label)
+            made = {**next(k for k in store.keys.list() if k["key_id"] == key_id), "secret": secret}
+    else:
+        with _client(ctx) as tk:
+            made = tk.create_key(scope, label)
+    if _opts(ctx).json:
+        _print_json(made)
+        return
+    _err.print(f"tikhon: key {made['key_id']} with scope(s) {', '.join(made['scopes'])}; the secret below is shown "
+               "only now:")
+    sys.stdout.write(made["secret"] + "\n")
+
+
+@keys_app.command("list")
+def keys_list(ctx: typer.Context) -> None:
+    """List API keys (never their secrets)."""
+    with _client(ctx) as tk:
+        items = tk.keys()
+    if _opts(ctx).json:
+        _print_json(items)
+        return
+    t = Table("key id", "scopes", "label", "created", "revoked")
+    for k in items:
+        t.add_row(k["key_id"], ", ".join(k["scopes"]), k.get("label") or "", str(k.get("created_at"))[:19],
+                  str(k.get("revoked_at") or "")[:19])
+    _out.print(t)
+
+
+@keys_app.command("revoke")
+def keys_revoke(ctx: typer.Context, key_id: Annotated[str, typer.Argument(help="The key id ('tikhon keys list').")]) -> None:
+    """Revoke an API key."""
+    with _client(ctx) as tk:
+        entry = tk.revoke_key(key_id)
+    if _opts(ctx).json:
+        _print_json(entry)
+    else:
+        _out.print(f"key {entry['key_id']} revoked at {entry.get('revoked_at')}")
+
+
+# ----------------------------------------------------------------------------------------------------
+# entry point
+
+
+def _fail(message: str, code: int) -> int:
+    sys.stderr.write("tikhon: error: " + " ".join(str(message).split()) + "\n")
+    return code
+
+
+def _parser_errors() -> tuple[tuple[type, ...], tuple[type, ...], tuple[type, ...], tuple[type, ...]]:
+    """(no-args-help, usage error, exit, abort) exception classes of the command-line parser.
+
+    Recent typer releases carry their own copy of click (``typer._click``); older ones use click itself.
+    Both are looked up so the command line behaves the same with either."""
+    import importlib
+
+    help_, usage, exit_, abort = [], [], [typer.Exit], [typer.Abort]
+    for module in ("typer._click.exceptions", "click.exceptions"):
+        try:
+            m = importlib.import_module(module)
+        except ImportError:
+            continue
+        for attr, into in (("NoArgsIsHelpError", help_), ("NoArgsIsHelp", help_), ("UsageError", usage),
+                           ("Exit", exit_), ("Abort", abort)):
+            cls = getattr(m, attr, None)
+            if isinstance(cls, type):
+                into.append(cls)
+    return tuple(help_), tuple(usage), tuple(exit_), tuple(abort)
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Run the command line; return (and, as a console script, exit with) the exit code."""
+    from service.errors import TikhonError
+
+    no_args_help, usage_error, exit_, abort = _parser_errors()
+    command = typer.main.get_command(app)
+    try:
+        result = command.main(args=argv, prog_name="tikhon", standalone_mode=False)
+        code = result if isinstance(result, int) else 0
+    except no_args_help as exc:
+        ctx = getattr(exc, "ctx", None)
+        sys.stdout.write((ctx.get_help() if ctx is not None else "Usage: tikhon COMMAND [ARGS]...") + "\n")
+        code = 2
+    except usage_error as exc:
+        ctx = getattr(exc, "ctx", None)
+        path = ctx.command_path if ctx is not None else "tikhon"
+        code = _fail(f"{exc.format_message()} (see '{path} --help')", 2)
+    except exit_ as exc:
+        code = int(getattr(exc, "exit_code", 0) or 0)
+    except abort:
+        code = _fail("interrupted", 130)
+    except KeyboardInterrupt:
+        code = _fail("interrupted", 130)
+    except UsageProblem as exc:
+        code = _fail(str(exc), 2)
+    except JobFailed as exc:
+        code = _fail(str(exc), 1)
+    except ServiceError as exc:
+        usage = exc.is_client_error or exc.title == "Invalid argument"
+        code = _fail(str(exc), 2 if usage else 1)
+    except TikhonError as exc:  # serve / worker / keys --local: the service's own refusals
+        from service.errors import Forbidden, InvalidData, InvalidName, InvalidSpec
+
+        code = _fail(str(exc), 2 if isinstance(exc, (Forbidden, InvalidData, InvalidSpec, InvalidName)) else 1)
+    except OSError as exc:
+        code = _fail(f"{exc.strerror or exc} ({exc.filename})" if getattr(exc, "filename", None) else str(exc), 1)
+    except Exception as exc:  # one line, never a traceback; TIKHON_DEBUG=1 re-raises for a traceback
+        if os.environ.get("TIKHON_DEBUG") == "1":
+            raise
+        code = _fail(f"unexpected {type(exc).__name__}: {exc}; run again with TIKHON_DEBUG=1 for the traceback and "
+                     "report it", 1)
+    return code
+
+
+def _console_script() -> None:  # pragma: no cover - thin wrapper
+    sys.exit(main())
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,245 @@
+"""The ``tikhon`` command line against a real server (uvicorn on a loopback port, embedded worker).
+
+The CLI runs as a separate process (``python -m service.cli``), as a user runs it. ``train --wait``
+runs under a pseudo-terminal so rich draws its live progress bar as it would for a person.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+import select
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+
+from service.cli import cv_text_plot, parse_basis, parse_ref
+from service.client import Client
+
+ANSI = re.compile(r"\x1b\[[0-9;?]*[A-Za-z]|\x1b\][^\x07]*\x07")
+
+
+def write_table(path, n: int, seed: int) -> dict[str, np.ndarray]:
+    """energy = 3 + 0.5 flow + 0.02 flow*head - 0.004 flow^2 + N(0, 1) (invented, known structure)."""
+    rng = np.random.default_rng(seed)
+    flow = rng.uniform(5.0, 120.0, n)
+    head = rng.uniform(10.0, 60.0, n)
+    energy = 3 + 0.5 * flow + 0.02 * flow * head - 0.004 * flow**2 + rng.normal(0, 1, n)
+    cols = {"flow_lps": flow, "head_m": head, "energy_kwh": energy}
+    path.write_text("flow_lps,head_m,energy_kwh\n" + "\n".join(
+        f"{a!r},{b!r},{c!r}" for a, b, c in zip(flow.tolist(), head.tolist(), energy.tolist())) + "\n")
+    return cols
+
+
+def cli(url: str, *args: str, key: str | None = None, env: dict | None = None) -> subprocess.CompletedProcess:
+    full = dict(os.environ, TIKHON_URL=url, COLUMNS="120", **(env or {}))
+    full.pop("TIKHON_KEY", None)
+    if key:
+        full["TIKHON_KEY"] = key
+    return subprocess.run([sys.executable, "-m", "service.cli", *args], capture_output=True, text=True, env=full,
+                          timeout=300)
+
+
+def cli_tty(url: str, *args: str) -> tuple[int, str]:
+    """Run the CLI with stdout and stderr on a pseudo-terminal; return (exit code, everything it wrote)."""
+    master, slave = os.openpty()
+    env = dict(os.environ, TIKHON_URL=url, COLUMNS="120", LINES="40", TERM="xterm-256color")
+    for var in ("NO_COLOR", "TIKHON_KEY", "TTY_COMPATIBLE", "TTY_INTERACTIVE"):
+        env.pop(var, None)
+    proc = subprocess.Popen([sys.executable, "-m", "service.cli", *args], stdin=slave, stdout=slave, stderr=slave,
+                            env=env, close_fds=True)
+    os.close(slave)
+    chunks = []
+    while True:
+        ready, _, _ = select.select([master], [], [], 300)
+        if not ready:
+            proc.kill()
+            break
+        try:
+            chunk = os.read(master, 65536)
+        except OSError:  # EIO: the child closed the terminal
+            break
+        if not chunk:
+            break
+        chunks.append(chunk)
+    os.close(master)
+    code = proc.wait(timeout=60)
+    return code, ANSI.sub("", b"".join(chunks).decode("utf-8", "replace"))
+
+
+@pytest.fixture(scope="module")
+def server(live_service, tmp_path_factory):
+    with live_service(tmp_path_factory.mktemp("cli"), worker=True) as s:
+        yield s
+
+
+# ----------------------------------------------------------------------------------------------------
+# pure helpers
+
+
+def test_parse_basis_forms():
+    assert parse_basis("linear") == {"kind": "linear"}
+    assert parse_basis("poly:1-6") == {"kind": "polynomial", "degrees": [1, 2, 3, 4, 5, 6]}
+    assert parse_basis("poly:2,3,5") == {"kind": "polynomial", "degrees": [2, 3, 5]}
+    assert parse_basis("rbf:0.5,1,2") == {"kind": "rbf", "widths": [0.5, 1.0, 2.0]}
+    assert parse_basis("rbf:0.5,1:60") == {"kind": "rbf", "widths": [0.5, 1.0], "centers": 60}
+    for bad in ("spline:3", "poly:", "poly:a-b", "rbf:x"):
+        with pytest.raises(Exception) as err:
+            parse_basis(bad)
+        assert bad in str(err.value) and "poly:1-6" in str(err.value)
+
+
+def test_parse_ref():
+    assert parse_ref("pump-energy") == ("pump-energy", None)
+    assert parse_ref("pump-energy@12") == ("pump-energy", 12)
+    for bad in ("pump@0", "pump@x", "@3"):
+        with pytest.raises(Exception):
+            parse_ref(bad)
+
+
+def test_cv_text_plot_places_points_by_value():
+    basis = {"kind": "polynomial", "degree": 2}
+    table = [{"basis": basis, "l1_ratio": None, "strength": s, "mean": m}
+             for s, m in ((0.01, 3.0), (0.1, 2.0), (1.0, 1.0), (10.0, 2.5))]
+    table.append({"basis": {"kind": "linear"}, "l1_ratio": None, "strength": 1.0, "mean": 9.0})  # other setting: left out
+    chosen = {"basis": basis, "penalty": {"kind": "l2", "strength": 1.0, "l1_ratio": None}, "metric": "rmse"}
+    lines = cv_text_plot(table, chosen, width=31, height=5).splitlines()
+    rows = [line.split("|", 1)[1] for line in lines[1:6]]
+    assert lines[1].startswith("3 |") and lines[5].startswith("1 |")  # y axis from the highest to the lowest mean
+    # log10 strengths -2, -1, 0, 1 map to columns 0, 10, 20, 30; means 3, 2, 1, 2.5 to rows 0, 2, 4, 1.
+    assert rows[0][0] == "*" and rows[2][10] == "*" and rows[4][20] == "O" and rows[1][30] == "*"
+    assert sum(r.count("*") + r.count("O") for r in rows) == 4
+
+
+# ----------------------------------------------------------------------------------------------------
+# against a live server
+
+
+def test_train_wait_shows_progress_then_the_chosen_point(server, tmp_path):
+    url, _, _ = server
+    data = tmp_path / "pumps.csv"
+    write_table(data, 300, seed=4)
+    code, out = cli_tty(url, "train", "pump-cli", "--data", str(data), "--target", "energy_kwh",
+                        "--feature", "flow_lps", "--feature", "head_m", "--basis", "linear", "--basis", "poly:2-3",
+                        "--promote", "always", "--wait")
+    assert code == 0, out
+    assert "training pump-cli" in out and "━" in out and re.search(r"\d+/\d+ units", out), out  # rich's bar
+    with Client(url) as tk:
+        meta = tk.version("pump-cli", 1)
+    chosen = meta["chosen"]
+    assert meta["live"] is True
+    summary = out[out.index("pump-cli version 1"):]
+    degree = chosen["basis"].get("degree")
+    assert (f"polynomial, degree {degree}" if degree else "linear") in summary
+    assert f"λ = {chosen['penalty']['strength']:.4g}" in summary
+    assert f"{chosen['mean']:.6g} ± {chosen['std']:.3g}" in summary
+    assert "O = chosen" in summary and "(λ, log)" in summary
+
+
+def test_retrain_reuses_the_live_spec_and_reports_the_if_better_decision(server, tmp_path):
+    url, _, _ = server
+    first, second = tmp_path / "a.csv", tmp_path / "b.csv"
+    write_table(first, 200, seed=5)
+    write_table(second, 200, seed=6)
+    spec = tmp_path / "spec.json"
+    spec.write_text(json.dumps({"target": "energy_kwh", "bases": [{"kind": "polynomial", "degrees": [2]}],
+                                "penalty": {"strengths": [0.001, 0.1, 10.0]}, "cv": {"folds": 4, "seed": 2}}))
+    r = cli(url, "--json", "train", "pump-re", "--data", str(first), "--spec", str(spec), "--wait")
+    assert r.returncode == 0, r.stderr
+    assert json.loads(r.stdout)["job"]["version"] == 1
+    r = cli(url, "--json", "train", "pump-re", "--data", str(second), "--promote", "if_better", "--wait")
+    assert r.returncode == 0, r.stderr
+    done = json.loads(r.stdout)
+    decision = done["job"]["decision"]
+    assert decision["promote"] == "if_better" and decision["live_version"] == 1
+    assert decision["went_live"] == (decision["new_cv_mean"] < decision["live_on_new_data"])
+    with Client(url) as tk:
+        assert tk.version("pump-re", 2)["spec"]["cv"]["seed"] == 2  # the live version's spec, reused
+
+
+def test_failing_job_exits_1_with_a_one_line_reason(live_service, tmp_path):
+    # A training time limit no job can meet: the worker stops the job and fails it.
+    with live_service(tmp_path / "svc", worker=True, max_training_seconds=0.001) as (url, _, _):
+        data = tmp_path / "pumps.csv"
+        write_table(data, 120, seed=7)
+        r = cli(url, "train", "pump-slow", "--data", str(data), "--target", "energy_kwh", "--wait")
+    assert r.returncode == 1, (r.stdout, r.stderr)
+    errors = [line for line in r.stderr.splitlines() if line.startswith("tikhon: error:")]
+    assert len(errors) == 1 and "Traceback" not in r.stderr
+    assert re.match(r"tikhon: error: training job [0-9a-f]+ of pump-slow failed: .*max_training_seconds", errors[0])
+
+
+def test_bad_usage_exits_2_with_one_line(server, tmp_path):
+    url, _, _ = server
+    data = tmp_path / "pumps.csv"
+    write_table(data, 60, seed=8)
+    cases = [
+        (["train", "pump-x", "--data", str(data), "--target", "energy"], "target column 'energy'"),  # 422 answer
+        (["train", "pump-x", "--data", str(data), "--target", "energy_kwh", "--basis", "cubic"], "--basis 'cubic'"),
+        (["train", "pump-x", "--data", str(tmp_path / "missing.csv")], "is not a file"),
+        (["predict", "pump-x@zero", "--data", str(data)], "pump-x@zero"),
+        (["predict", "no-such-model", "--data", str(data)], "no-such-model"),  # 404 answer
+        (["show", "pump-x", "--bogus"], "--bogus"),
+        (["frobnicate"], "frobnicate"),
+    ]
+    for args, needle in cases:
+        r = cli(url, *args)
+        assert r.returncode == 2, (args, r.stderr)
+        lines = r.stderr.strip().splitlines()
+        assert len(lines) == 1 and lines[0].startswith("tikhon: error:") and needle in lines[0], (args, r.stderr)
+
+
+def test_predict_show_promote_history_prune_and_keys(server, tmp_path):
+    url, _, _ = server
+    data = tmp_path / "pumps.csv"
+    write_table(data, 150, seed=9)
+    for promote in ("always", "never", "never"):
+        r = cli(url, "train", "pump-ops", "--data", str(data), "--target", "energy_kwh", "--basis", "poly:2",
+                "--promote", promote, "--wait")
+        assert r.returncode == 0, r.stderr
+
+    queries = tmp_path / "q.json"
+    queries.write_text(json.dumps([{"flow_lps": 40.0, "head_m": 22.0}, {"flow_lps": 200.0, "head_m": 22.0}]))
+    out_csv = tmp_path / "p.csv"
+    r = cli(url, "predict", "pump-ops@2", "--data", str(queries), "--interval", "0.9", "--out", str(out_csv))
+    assert r.returncode == 0, r.stderr
+    with Client(url) as tk:
+        ref = tk.predict("pump-ops", version=2, file=queries, interval=0.9)
+    lines = out_csv.read_text().splitlines()
+    assert lines[0] == "model,version,value,lower,upper,warnings"
+    for line, p in zip(lines[1:], ref["predictions"]):
+        cells = line.split(",", 5)
+        assert cells[:2] == ["pump-ops", "2"]
+        assert [float(c) for c in cells[2:5]] == [p["value"], *p["interval"]]  # shortest round-trip decimals
+    assert ref["predictions"][1]["warnings"] and "flow_lps" in lines[2]  # 200 L/s lies outside the training range
+
+    r = cli(url, "--json", "predict", "pump-ops", "--data", str(queries))
+    assert r.returncode == 0 and json.loads(r.stdout)["model"]["version"] == 1
+
+    r = cli(url, "show", "pump-ops@3")
+    assert r.returncode == 0 and "pump-ops version 3" in r.stdout and "trained on" in r.stdout
+    r = cli(url, "promote", "pump-ops", "3", "--reason", "operator check of version 3")
+    assert r.returncode == 0 and "1 -> 3" in r.stdout, r.stdout
+    r = cli(url, "--json", "history", "pump-ops")
+    assert [(h["from_version"], h["to_version"]) for h in json.loads(r.stdout)] == [(None, 1), (1, 3)]
+    r = cli(url, "--json", "prune", "pump-ops", "--keep", "0")
+    assert r.returncode == 0 and json.loads(r.stdout)[0]["deleted"] == [1, 2]
+    r = cli(url, "--json", "models")
+    assert {m["name"]: m["versions"] for m in json.loads(r.stdout)}["pump-ops"] == 1
+
+    r = cli(url, "keys", "create", "--scope", "admin", "--label", "cli test")
+    assert r.returncode == 0, r.stderr
+    secret = r.stdout.strip()
+    assert secret.startswith("tikhon_") and "shown only now" in r.stderr
+    r = cli(url, "models")
+    assert r.returncode == 2 and "API key" in r.stderr  # 401 now that a key exists
+    r = cli(url, "--json", "keys", "list", key=secret)
+    (entry,) = json.loads(r.stdout)
+    assert entry["active"] and entry["label"] == "cli test" and "secret" not in entry
+    r = cli(url, "keys", "revoke", entry["key_id"], key=secret)
+    assert r.returncode == 0 and "revoked" in r.stdout
+    r = cli(url, "--json", "models")
+    assert r.returncode == 0  # no active key left: the routes are open again (loopback only)
