@@ -300,12 +300,12 @@ def model_page(name: str, model: dict[str, Any], versions: list[dict[str, Any]],
         + (_figure(f"/v1/models/{qn}/plots/history", f"CV error and chosen settings of every version of {name}",
                    "<strong>What changed between versions?</strong> Ring: the live version; filled: versions that "
                    "were live at some time.", "figure-history") if versions else "")
-        + '<div class="two"><div><h3>Versions</h3><table class="grid"><thead><tr><th>version</th><th>published</th>'
-        f"<th>chosen point</th><th>CV error</th><th>checksum</th></tr></thead><tbody>{vrows}</tbody></table></div>"
-        '<div><h3>Promotions</h3>'
+        + '<h3>Versions</h3><table class="grid versions"><thead><tr><th>version</th><th>published</th>'
+        f"<th>chosen point</th><th>CV error</th><th>checksum</th></tr></thead><tbody>{vrows}</tbody></table>"
+        '<h3>Promotions (changes of the live version)</h3>'
         + (f"<table class=\"grid promotions\"><thead><tr><th>when</th><th>live</th><th>by</th><th>reason</th></tr></thead>"
            f"<tbody>{hrows}</tbody></table>" if history else '<p class="muted">No version has gone live yet.</p>')
-        + "</div></div></section>"
+        + "</section>"
     )
     return layout(name, head + picker + main + jobs_table(jobs, model=name) + hist, signed_in=signed_in,
                   page="model")

@@ -346,7 +346,7 @@ def residuals_figure(body: dict[str, Any], predicted: np.ndarray, observed: np.n
     _style(left, title=heading or "Out-of-fold predicted against observed")
     _style(right, title="Residual against predicted")
     many = predicted.size > 2000
-    dots = dict(s=7, color=PALETTE[4], alpha=0.45 if many else 0.6, linewidths=0, rasterized=many)
+    dots = dict(s=7, color=PALETTE[0], alpha=0.45 if many else 0.6, linewidths=0, rasterized=many)
     sc = left.scatter(observed, predicted, **dots)
     sc.set_gid("residuals-scatter-observed")
     if predicted.size:
@@ -366,7 +366,7 @@ def residuals_figure(body: dict[str, Any], predicted: np.ndarray, observed: np.n
         idx = np.clip(np.searchsorted(edges, predicted, side="right") - 1, 0, 9)
         centres = np.array([predicted[idx == b].mean() for b in range(10) if np.any(idx == b)])
         means = np.array([resid[idx == b].mean() for b in range(10) if np.any(idx == b)])
-        trend = right.plot(centres, means, color=PALETTE[5], marker="s", markersize=4, linewidth=1.6,
+        trend = right.plot(centres, means, color=PALETTE[3], marker="s", markersize=4, linewidth=1.6,
                            label="mean residual per tenth of predictions")[0]
         trend.set_gid("residual-trend")
         right.legend(fontsize=7.8, frameon=False, loc="upper left")
@@ -443,6 +443,10 @@ def history_figure(name: str, versions: Sequence[dict[str, Any]], live: int | No
         ann = top.annotate(f"live: v{live}", (live_pt["when"], live_pt["mean"]), xytext=(8, -18),
                            textcoords="offset points", fontsize=8.5, fontweight="bold", color=INK)
         ann.set_gid("live-label")
+    if len({p["when"] for p in points}) == 1:  # one moment: give the axis an hour either side, not years
+        centre = mdates.date2num(points[0]["when"])
+        for ax in (top, bottom):
+            ax.set_xlim(centre - 1 / 24, centre + 1 / 24)
     metrics = sorted({p["metric"] for p in points})
     top.set_ylabel(f"CV {'/'.join(m.upper() for m in metrics) or 'error'} of the chosen point (±1 SE)")
     bottom.set_yscale("log")
@@ -452,7 +456,10 @@ def history_figure(name: str, versions: Sequence[dict[str, Any]], live: int | No
         locator = mdates.AutoDateLocator(minticks=3, maxticks=6)
         ax.xaxis.set_major_locator(locator)
         ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))
-        ax.margins(x=0.15, y=0.18)
+        if len({p["when"] for p in points}) > 1:
+            ax.margins(x=0.15, y=0.18)
+        else:
+            ax.margins(y=0.18)
     if kinds:
         bottom.legend(fontsize=7.5, frameon=False, loc="best")
     if not points:

@@ -1,0 +1,148 @@
+"""The overview page in a real headless Chromium (Debian's ``chromium``, driven by Playwright's Python
+package through ``executable_path``; Playwright's own browser download is never used).
+
+A real uvicorn server with the embedded worker, API keys in use, and the invented pump-station demo
+model trained through the normal job path. The browser signs in with a ``predict`` key, opens the model,
+checks that the CV and path figures load as images with a nonzero natural size, then follows a second
+training job on the page (no reload) until it ends. Screenshots go to the test's ``tmp_path``.
+
+Locally the test skips, with the reason, when chromium or playwright is missing; under ``.ci/run``
+(``TIKHON_CI_FULL=1``) a missing browser is a failure.
+"""
+
+from __future__ import annotations
+
+import copy
+import os
+import shutil
+
+import httpx
+import pytest
+
+from service.demo import DEMO_SPEC, pump_stations
+
+CHROMIUM = shutil.which("chromium") or "/usr/bin/chromium"
+ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+        "--disable-background-networking", "--disable-component-update", "--disable-sync"]
+WAIT_MS = 180_000  # readiness waits (they fail only if the page never gets there), not timed assertions
+
+
+def _browser_or_skip():
+    missing = None
+    if not os.path.exists(CHROMIUM):
+        missing = f"chromium is not installed at {CHROMIUM} (apt-get install -y chromium)"
+    try:
+        from playwright.sync_api import sync_playwright  # noqa: F401
+    except ImportError:
+        missing = missing or "the playwright Python package is not installed (pip install -e '.[test]')"
+    if missing:
+        if os.environ.get("TIKHON_CI_FULL"):
+            pytest.fail(f"the browser test must run under .ci/run but {missing}")
+        pytest.skip(missing)
+
+
+def _demo_request(n: int, seed: int, strengths: int) -> dict:
+    cols = pump_stations(n, seed=seed)
+    rows = [dict(zip(cols, vals)) for vals in zip(*(cols[k].tolist() for k in cols))]
+    spec = copy.deepcopy(DEMO_SPEC)
+    spec["bases"] = [{"kind": "linear"}, {"kind": "polynomial", "degrees": [2, 3]},
+                     {"kind": "rbf", "widths": [1.0], "centers": 30}]
+    spec["penalty"] = {"kind": "l2", "strengths": {"min": 1e-4, "max": 1e3, "count": strengths}}
+    return {"data": {"rows": rows}, "spec": spec, "promote": "always"}
+
+
+def test_overview_in_headless_chromium(tmp_path, kit):
+    _browser_or_skip()
+    from playwright.sync_api import sync_playwright
+
+    shots = tmp_path / "screenshots"
+    shots.mkdir()
+    with kit.service(tmp_path / "svc", worker=True) as (base, store, _):
+        _, admin = store.keys.create(["admin"], "operator")
+        _, viewer = store.keys.create(["predict"], "dashboard")
+        ops = {"Authorization": f"Bearer {admin}"}
+        first = httpx.post(f"{base}/v1/models/pump-energy/trainings", json=_demo_request(800, 0, 20),
+                           headers=ops, timeout=60)
+        assert first.status_code == 202, first.text
+        done = kit.wait_job(base, first.json()["id"], headers=ops)
+        assert done["state"] == "succeeded", done
+        cv = httpx.get(f"{base}/v1/models/pump-energy/versions/1/cv", headers=ops).json()
+        chosen_strength = cv["chosen"]["penalty"]["strength"]
+
+        with sync_playwright() as pw:
+            browser = pw.chromium.launch(executable_path=CHROMIUM, args=ARGS)
+            try:
+                page = browser.new_page(viewport={"width": 1280, "height": 900})
+                page.set_default_timeout(WAIT_MS)
+
+                # Keys exist, so the overview first asks for one.
+                page.goto(f"{base}/")
+                assert page.url.startswith(f"{base}/login"), page.url
+                page.screenshot(path=str(shots / "01-sign-in.png"))
+                page.fill("#key", "not-a-key")
+                page.click("button[type=submit]")
+                assert "unknown or revoked" in page.inner_text("[role=alert]")
+                page.fill("#key", viewer)
+                page.click("button[type=submit]")
+                page.wait_for_url(f"{base}/")
+                assert page.inner_text("h1") == "Models"
+                assert "pump-energy" in page.inner_text("table.models")
+                page.screenshot(path=str(shots / "02-overview.png"), full_page=True)
+                cookies = {c["name"]: c for c in page.context.cookies()}
+                assert cookies["tikhon_key"]["httpOnly"] is True
+                assert cookies["tikhon_key"]["sameSite"] == "Strict"
+
+                # The model page: figures load as images with a nonzero natural size.
+                page.click("a.model-link")
+                page.wait_for_url(f"{base}/models/pump-energy")
+                assert "live: v1" in page.inner_text("h1")
+                for fig in ("figure-cv", "figure-path", "figure-residuals", "figure-history"):
+                    img = page.locator(f"#{fig} img")
+                    img.scroll_into_view_if_needed()
+                    page.wait_for_function(
+                        "sel => { const i = document.querySelector(sel); return i && i.complete && i.naturalWidth > 0; }",
+                        arg=f"#{fig} img")
+                    w, h = img.evaluate("i => [i.naturalWidth, i.naturalHeight]")
+                    assert w > 100 and h > 100, (fig, w, h)
+                headline = page.inner_text("#chosen .headline")
+                assert f"λ = {chosen_strength:.3g}" in headline, headline
+                page.screenshot(path=str(shots / "03-model.png"), full_page=True)
+
+                # A second job, submitted through the API, followed on the open page without a reload.
+                page.evaluate("window.__sameDocument = true")
+                second = httpx.post(f"{base}/v1/models/pump-energy/trainings", json=_demo_request(1500, 1, 40),
+                                    headers=ops, timeout=60)
+                assert second.status_code == 202, second.text
+                jid = second.json()["id"]
+                row = f"#jobs tr[data-job='{jid}']"
+                page.wait_for_selector(row)
+                seen = [page.get_attribute(row, "data-state")]
+                page.locator("#jobs").scroll_into_view_if_needed()
+                page.screenshot(path=str(shots / "04-job-submitted.png"))
+                while seen[-1] not in ("succeeded", "failed", "cancelled"):
+                    page.wait_for_function(
+                        "([sel, s]) => { const r = document.querySelector(sel); return r && r.dataset.state !== s; }",
+                        arg=[row, seen[-1]])
+                    seen.append(page.get_attribute(row, "data-state"))
+                    if seen[-1] == "running":
+                        page.screenshot(path=str(shots / "05-job-running.png"))
+                assert seen[-1] == "succeeded", (seen, httpx.get(f"{base}/v1/trainings/{jid}", headers=ops).json())
+                progress = page.inner_text(f"{row} td:nth-child(3)")
+                total = httpx.get(f"{base}/v1/trainings/{jid}", headers=ops).json()["progress"]["total"]
+                assert f"{total}/{total} (100%)" in progress, progress
+                page.wait_for_selector("#jobs [data-notice]:not([hidden])")
+                assert "published version 2" in page.inner_text("#jobs [data-notice]")
+                assert page.evaluate("window.__sameDocument === true"), "the page reloaded"
+                page.screenshot(path=str(shots / "06-job-done.png"), full_page=True)
+
+                # The notice leads to the new version; the history now shows both.
+                page.click("#jobs [data-notice] a")
+                page.wait_for_url(f"{base}/models/pump-energy?version=2")
+                assert "live: v2" in page.inner_text("h1")
+                assert page.locator("#history table.promotions tbody tr").count() == 2
+                page.screenshot(path=str(shots / "07-version-2.png"), full_page=True)
+            finally:
+                browser.close()
+    names = sorted(p.name for p in shots.iterdir())
+    assert {"02-overview.png", "03-model.png", "06-job-done.png"} <= set(names), names
+    print(f"\nscreenshots: {shots}")
