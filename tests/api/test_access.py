@@ -22,6 +22,10 @@ EXPECTED = {
     ("DELETE", "/v1/trainings/{job_id}"): {"train", "admin"},
     ("PUT", "/v1/models/{name}/live"): {"admin"},
     ("DELETE", "/v1/models/{name}/versions/{version}"): {"admin"},
+    ("GET", "/v1/keys"): {"admin"},
+    ("POST", "/v1/keys"): {"admin"},
+    ("DELETE", "/v1/keys/{key_id}"): {"admin"},
+    ("POST", "/v1/models/{name}/prune"): {"admin"},
 }
 READ = {"predict", "train", "admin"}
 
