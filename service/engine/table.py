@@ -60,6 +60,15 @@ def numeric_column(cols: Columns, name: str, role: str, offset: int = 0) -> np.n
     raw = cols[name]
     if raw.dtype.kind in "biuf":
         x = raw.astype(np.float64, copy=False)
+    elif raw.dtype.kind in "US" and raw.size:
+        # A text-typed column (JSON strings, a CSV column pyarrow read as text) is text even when its
+        # values look like numbers ("55.5"): reading them as numbers would hide a caller's type error.
+        shown = [offset + i for i in range(min(5, raw.size))]
+        raise InvalidData(
+            f"{role} column {name!r} must be numeric but holds text, e.g. row {offset} = {_short(raw[0])}; "
+            "send numbers (JSON numbers, not strings), or list the column under 'categorical'",
+            errors=[{"field": name, "rows": shown, "message": "text where a number belongs"}],
+        )
     else:
         try:
             x = np.array([_to_float(v) for v in raw], dtype=np.float64)
