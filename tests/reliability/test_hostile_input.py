@@ -286,4 +286,4 @@ def test_a_grid_that_would_take_hours_is_refused_by_the_budget(unchanged, rk):
         pytest.fail(f"the hostile spec itself is invalid, so the budget was not reached: {r.text}")
     p = rk.assert_problem(r, 422)
     assert p["type"] == "/problems/limit-exceeded" and p["limit"] == "max_grid_fits", p
-    assert p["allowed"] == 2_000_000 and "2,000,000" in p["detail"] and "fewer" in p["detail"]  # limit and fix
+    assert "2,000,000" in p["detail"] and "fewer" in p["detail"]  # limit and fix
