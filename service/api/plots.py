@@ -22,7 +22,7 @@ from __future__ import annotations
 import io
 import math
 import re
-from datetime import datetime
+from datetime import datetime, timedelta
 from typing import Any, Iterable, Sequence
 from xml.sax.saxutils import escape as xml_escape
 
@@ -451,19 +451,24 @@ def history_figure(name: str, versions: Sequence[dict[str, Any]], live: int | No
     top.set_ylabel(f"CV {'/'.join(m.upper() for m in metrics) or 'error'} of the chosen point (±1 SE)")
     bottom.set_yscale("log")
     bottom.set_ylabel("chosen penalty strength λ (log scale)")
+    span = ""
+    if points:
+        first, last = min(p["when"] for p in points), max(p["when"] for p in points)
+        span = f"{first:%Y-%m-%d %H:%M}" + (f" to {last:%Y-%m-%d %H:%M}" if last - first >= timedelta(minutes=1) else "")
     for ax in (top, bottom):
         ax.set_xlabel("version created (UTC)")
         locator = mdates.AutoDateLocator(minticks=3, maxticks=6)
         ax.xaxis.set_major_locator(locator)
-        ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))
+        ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator, show_offset=False))
         if len({p["when"] for p in points}) > 1:
             ax.margins(x=0.15, y=0.18)
         else:
             ax.margins(y=0.18)
     if kinds:
-        bottom.legend(fontsize=7.5, frameon=False, loc="best")
+        bottom.legend(fontsize=7.5, frameon=False, loc="upper center", bbox_to_anchor=(0.5, -0.2),
+                      ncol=min(3, len(kinds)), title="basis of the chosen point", title_fontsize=7.5)
     if not points:
         top.text(0.5, 0.5, "no versions with a CV summary", transform=top.transAxes, ha="center", color=MUTED)
-    _note(fig, "Filled markers: versions that were live at some time; hollow: published but never live. "
-               "Ring: the live version.")
+    _note(fig, (f"Versions created {span} UTC. " if span else "") + "Filled markers: versions that were live at some "
+               "time; hollow: published but never live. Ring: the live version.")
     return fig
