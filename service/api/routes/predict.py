@@ -15,7 +15,7 @@ from typing import Any
 
 import orjson
 from anyio import to_thread
-from fastapi import APIRouter, Path, Query, Request
+from fastapi import APIRouter, Request
 from fastapi.responses import Response
 
 from service.api import auth, tables
@@ -52,13 +52,44 @@ _DOC = {
     },
 }
 
-NamePath = Path(..., description="Model name.")
-IntervalQuery = Query(None, gt=0, lt=1, description="Interval level for CSV bodies (JSON bodies use the 'interval' field).")
+# The path and query parameters are read from the request directly (no per-request dependency
+# solving on the hottest route); they are documented here instead.
+_PARAMS = {
+    "name": {"name": "name", "in": "path", "required": True, "schema": {"type": "string"}, "description": "Model name."},
+    "version": {"name": "version", "in": "path", "required": True, "schema": {"type": "integer", "minimum": 1},
+                "description": "Version number."},
+    "interval": {"name": "interval", "in": "query", "required": False,
+                 "schema": {"type": "number", "exclusiveMinimum": 0, "exclusiveMaximum": 1},
+                 "description": "Interval level for CSV bodies (JSON bodies use the 'interval' field)."},
+}
+_LIVE_DOC = {**_DOC, "parameters": [_PARAMS["name"], _PARAMS["interval"]]}
+_PINNED_DOC = {**_DOC, "parameters": [_PARAMS["name"], _PARAMS["version"], _PARAMS["interval"]]}
 
 
-@router.post("/models/{name}/predict", summary="Predict with the live version", openapi_extra=_DOC)
-async def predict_live(request: Request, name: str = NamePath, interval: float | None = IntervalQuery) -> Response:
-    validate_name(name)
+def _query_interval(request: Request) -> float | None:
+    raw = request.query_params.get("interval")
+    if raw is None:
+        return None
+    try:
+        value = float(raw)
+    except ValueError:
+        value = raw
+    return _check_interval(value, "query.interval")
+
+
+def _version(raw: str) -> int:
+    if not raw.isdigit() or int(raw) < 1:
+        raise InvalidData(
+            f"path.version must be a whole number from 1, got {raw!r}.",
+            errors=[{"field": "path.version", "value": raw, "message": "expected an integer >= 1"}],
+        )
+    return int(raw)
+
+
+@router.post("/models/{name}/predict", summary="Predict with the live version", openapi_extra=_LIVE_DOC)
+async def predict_live(request: Request) -> Response:
+    name = validate_name(request.path_params["name"])
+    interval = _query_interval(request)
     cache = request.app.state.models
     version = cache.cached_live(name)
     if version is None:
@@ -67,11 +98,11 @@ async def predict_live(request: Request, name: str = NamePath, interval: float |
     return await _predict(request, served, interval)
 
 
-@router.post("/models/{name}/versions/{version}/predict", summary="Predict with a pinned version", openapi_extra=_DOC)
-async def predict_version(
-    request: Request, name: str = NamePath, version: int = Path(..., ge=1), interval: float | None = IntervalQuery
-) -> Response:
-    validate_name(name)
+@router.post("/models/{name}/versions/{version}/predict", summary="Predict with a pinned version", openapi_extra=_PINNED_DOC)
+async def predict_version(request: Request) -> Response:
+    name = validate_name(request.path_params["name"])
+    version = _version(request.path_params["version"])
+    interval = _query_interval(request)
     cache = request.app.state.models
     served = cache.cached(name, version) or await to_thread.run_sync(cache.load, name, version)
     return await _predict(request, served, interval)
