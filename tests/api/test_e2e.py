@@ -233,3 +233,23 @@ def test_live_switch_never_mixes_versions(worker_service, kit):
     for v, values in seen:
         assert values == expected[v]
     assert len(httpx.get(f"{base}/v1/models/pump-flip/history").json()["history"]) == 31
+
+
+def test_metrics_and_request_ids(worker_service, kit):
+    base, store, _ = worker_service
+    rows = kit.as_rows(kit.pump_table(120, seed=41))
+    job = kit.wait_job(base, submit(base, "pump-metrics", {"data": {"rows": rows}, "spec": kit.SPEC, "promote": "always"}).json()["id"])
+    probe = {"rows": [{"flow_lps": 50.0, "head_m": 30.0}] * 3}
+    for _ in range(4):
+        r = httpx.post(f"{base}/v1/models/pump-metrics/predict", json=probe, headers={"X-Request-Id": "probe-1"})
+        assert r.headers["x-request-id"] == "probe-1"
+    assert len(httpx.get(f"{base}/healthz").headers["x-request-id"]) == 32  # generated when none is sent
+    text = httpx.get(f"{base}/metrics").text
+    # Prometheus text exposition format (prometheus.io "Exposition formats"): name{labels} value.
+    lines = dict(line.rsplit(" ", 1) for line in text.splitlines() if line and not line.startswith("#"))
+    key = 'tikhon_http_requests_total{method="POST",route="/v1/models/{name}/predict",status="200"}'
+    assert float(lines[key]) >= 4
+    assert float(lines[f'tikhon_predictions_total{{model="pump-metrics",version="{job["version"]}"}}']) == 12
+    assert float(lines['tikhon_training_jobs{state="succeeded"}']) >= 1
+    assert float(lines["tikhon_model_cache_hits_total"]) >= 3
+    assert 'tikhon_http_request_seconds_bucket{le="0.005",method="POST",route="/v1/models/{name}/predict"}' in lines
