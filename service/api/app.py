@@ -101,7 +101,48 @@ def _document_security(app: FastAPI) -> None:
         components.setdefault("securitySchemes", {})[auth.SCHEME] = auth.SECURITY_SCHEME
         for key, value in component_schemas().items():
             components.setdefault("schemas", {}).setdefault(key, value)
+        _document_problems(schema)
         app.openapi_schema = schema
         return schema
 
     app.openapi = openapi  # type: ignore[method-assign]
+
+
+# RFC 9457 section 3.1 members, plus the extensions this service adds (request_id, errors, limit...).
+PROBLEM_SCHEMA = {
+    "type": "object",
+    "description": "RFC 9457 problem details. Extension members (request_id, errors, limit, allowed, received, "
+    "checks) appear where they apply.",
+    "required": ["type", "title", "status", "detail"],
+    "properties": {
+        "type": {"type": "string", "format": "uri-reference", "description": "Problem type; GET it for a description."},
+        "title": {"type": "string"},
+        "status": {"type": "integer", "minimum": 400, "maximum": 599},
+        "detail": {"type": "string", "description": "What is wrong and how to fix it."},
+        "instance": {"type": "string", "format": "uri-reference"},
+        "request_id": {"type": "string"},
+        "errors": {"type": "array", "items": {"type": "object"}, "description": "Field-level problems."},
+    },
+    "additionalProperties": True,
+}
+
+
+def _document_problems(schema: dict) -> None:
+    """Document the error answers every operation can give: 4XX and 5XX problem details (OpenAPI 3.1 allows
+    the range keys), and the 422 of request validation as the problem it is rather than FastAPI's default
+    validation-error shape, which this service never sends (problems.install renders it as a problem)."""
+    schemas = schema.setdefault("components", {}).setdefault("schemas", {})
+    schemas["Problem"] = PROBLEM_SCHEMA
+    ref = {"$ref": "#/components/schemas/Problem"}
+    content = {problems.PROBLEM_MEDIA_TYPE: {"schema": ref}}
+    for item in schema.get("paths", {}).values():
+        for method, op in item.items():
+            if method not in ("get", "put", "post", "delete", "patch", "head", "options"):
+                continue
+            responses = op.setdefault("responses", {})
+            if "422" in responses:
+                responses["422"] = {"description": "A field of the request is invalid (problem details).", "content": content}
+            responses.setdefault("4XX", {"description": "The request was refused (problem details).", "content": content})
+            responses.setdefault("5XX", {"description": "The server failed (problem details).", "content": content})
+    for unused in ("HTTPValidationError", "ValidationError"):
+        schemas.pop(unused, None)
