@@ -16,6 +16,7 @@ from __future__ import annotations
 import logging
 import math
 from typing import Any
+from urllib.parse import quote
 
 import orjson
 from fastapi import FastAPI, Request
@@ -120,13 +121,24 @@ def _jsonable(value: Any) -> Any:
     return text if len(text) <= 200 else text[:200] + "..."
 
 
+# RFC 3986 section 3.3: the characters a path may carry unencoded (pchar without pct-encoded, plus "/").
+_PATH_SAFE = "/-._~!$&'()*+,;=:@"
+
+
+def as_uri_reference(path: str) -> str:
+    """``instance`` must be a URI reference (RFC 9457 section 3.1.5); the request path arrives decoded, so
+    anything outside RFC 3986's path characters (spaces, non-ASCII, control characters, a literal '%') is
+    percent-encoded again as UTF-8."""
+    return quote(path, safe=_PATH_SAFE, errors="surrogatepass")
+
+
 def problem_body(
     *, slug: str, title: str, status: int, detail: str, instance: str | None = None,
     request_id: str | None = None, errors: list[dict[str, Any]] | None = None, **extra: Any
 ) -> dict[str, Any]:
     body: dict[str, Any] = {"type": f"/problems/{slug}", "title": title, "status": status, "detail": detail}
     if instance:
-        body["instance"] = instance
+        body["instance"] = as_uri_reference(instance)
     if request_id:
         body["request_id"] = request_id
     if errors:
