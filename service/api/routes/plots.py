@@ -63,6 +63,18 @@ class PlotCache:
 
 
 _cache_lock = threading.Lock()
+# One figure is built and rendered at a time per process. Each request has its own Figure (no pyplot
+# state), but text layout shares font caches; under the GIL a second concurrent render would not finish
+# any sooner, so serializing costs nothing and removes any doubt.
+_render_lock = threading.Lock()
+
+
+def _serialized(make: Callable[[], bytes]) -> Callable[[], bytes]:
+    def run() -> bytes:
+        with _render_lock:
+            return make()
+
+    return run
 
 
 def plot_cache(app: Any) -> PlotCache:
@@ -137,7 +149,7 @@ def _version_plot(request: Request, name: str, version: int, kind: str, fmt: str
             title = f"{name} version {version}: out-of-fold residuals"
         return plots.render(fig, fmt, title=title, description=f"Chosen: {chosen}.")
 
-    data = plot_cache(request.app).get_or_render((name, version, checksum, kind, fmt), make)
+    data = plot_cache(request.app).get_or_render((name, version, checksum, kind, fmt), _serialized(make))
     etag = f'"{checksum[:24]}-{kind}-{fmt}"'
     return _image(request, data, fmt, etag, "private, max-age=86400")
 
@@ -187,5 +199,5 @@ def plot_history(request: Request, name: str = NamePath, format: str = FormatQue
         return plots.render(fig, fmt, title=f"{name}: history of versions (live: {live or 'none'})",
                             description="; ".join(lines) or "no versions")
 
-    data = plot_cache(request.app).get_or_render((name, "history", digest, fmt), make)
+    data = plot_cache(request.app).get_or_render((name, "history", digest, fmt), _serialized(make))
     return _image(request, data, fmt, f'"{digest}-history-{fmt}"', "private, no-cache")
