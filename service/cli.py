@@ -73,6 +73,19 @@ def _print_json(value: Any) -> None:
     sys.stdout.write(json.dumps(value, indent=2, ensure_ascii=False) + "\n")
 
 
+def _print_version(wanted: bool) -> None:
+    if not wanted:
+        return
+    from importlib.metadata import PackageNotFoundError
+    from importlib.metadata import version as dist_version
+
+    try:
+        sys.stdout.write(f"tikhon {dist_version('tikhon')}\n")
+    except PackageNotFoundError:
+        sys.stdout.write("tikhon (not installed as a package)\n")
+    raise typer.Exit(0)
+
+
 @app.callback()
 def _root(
     ctx: typer.Context,
@@ -82,6 +95,8 @@ def _root(
                    help="API key (needed once the server has keys).")] = None,
     json_output: Annotated[bool, typer.Option("--json", help="Print machine-readable JSON on stdout.")] = False,
     timeout: Annotated[float, typer.Option("--timeout", min=0.1, help="Seconds to wait for each answer.")] = 60.0,
+    version: Annotated[bool, typer.Option("--version", is_eager=True, callback=lambda v: _print_version(v),
+                                          help="Print the version and exit.")] = False,
 ) -> None:
     o = _Options()
     port = os.environ.get("TIKHON_PORT", "").strip()
@@ -549,6 +564,8 @@ def predict(
     data: Annotated[Path, typer.Option("--data", help="Input rows: a CSV file, or JSON (a list of rows or {\"rows\": [...]}).")],
     interval: Annotated[Optional[float], typer.Option(help="Prediction interval level, e.g. 0.9.")] = None,
     out: Annotated[Optional[Path], typer.Option(help="Write the predictions to this file (.csv or .json).")] = None,
+    only_inputs: Annotated[bool, typer.Option("--only-inputs", help="Send only the model's input columns (drop the "
+                                              "target and any other column of the file).")] = False,
 ) -> None:
     """Predict with the live version (or a pinned one): values, intervals, extrapolation warnings."""
     name, version = parse_ref(ref)
@@ -559,7 +576,15 @@ def predict(
     if out is not None and out.suffix.lower() not in (".csv", ".json"):
         raise UsageProblem(f"--out {str(out)!r} must end in .csv or .json (the format follows the suffix).")
     with _client(ctx) as tk:
-        answer = tk.predict(name, version=version, file=data, interval=interval)
+        if only_inputs:
+            pinned = version if version is not None else tk.model(name).get("live_version")
+            if pinned is None:
+                raise UsageProblem(f"model {name!r} has no live version; name one: {name}@VERSION.")
+            inputs = [f["name"] for f in tk.version(name, pinned).get("feature_schema") or []]
+            kind, payload = _only_columns(data, inputs)
+            answer = tk.predict(name, version=pinned, interval=interval, **{kind: payload})
+        else:
+            answer = tk.predict(name, version=version, file=data, interval=interval)
     model = answer["model"]
     preds = answer["predictions"]
     if out is not None:
@@ -584,6 +609,32 @@ def predict(
         cells.append("; ".join(p.get("warnings") or []))
         t.add_row(*cells)
     _out.print(t)
+
+
+def _only_columns(path: Path, keep: list[str]) -> tuple[str, Any]:
+    """The file's rows restricted to the columns in ``keep`` (CSV cells are passed on as written)."""
+    import csv as _csv
+    import io
+
+    text = path.read_text(encoding="utf-8")
+    if path.suffix.lower() == ".json" or text.lstrip()[:1] in ("[", "{"):
+        try:
+            doc = json.loads(text)
+        except ValueError as exc:
+            raise UsageProblem(f"--data {str(path)!r} is not valid JSON ({exc}); give a list of rows.") from None
+        rows = doc.get("rows") if isinstance(doc, dict) else doc
+        if not isinstance(rows, list) or not all(isinstance(r, dict) for r in rows):
+            raise UsageProblem(f"--data {str(path)!r} holds no list of row objects; give [{{...}}, ...] or {{\"rows\": [...]}}.")
+        return "rows", [{k: v for k, v in r.items() if k in keep} for r in rows]
+    table = list(_csv.reader(io.StringIO(text)))
+    if not table:
+        raise UsageProblem(f"--data {str(path)!r} is empty; give a header line and rows.")
+    header = table[0]
+    idx = [i for i, name in enumerate(header) if name in keep]
+    buf = io.StringIO()
+    w = _csv.writer(buf, lineterminator="\n")
+    w.writerows([[row[i] for i in idx] for row in table if row])
+    return "csv", buf.getvalue()
 
 
 def _num(v: Any) -> str:
@@ -811,14 +862,41 @@ def _parser_errors() -> tuple[tuple[type, ...], tuple[type, ...], tuple[type, ..
     return tuple(help_), tuple(usage), tuple(exit_), tuple(abort)
 
 
+_GLOBAL_FLAGS = ("--json",)
+_GLOBAL_VALUED = ("--url", "--key", "--timeout")
+
+
+def _globals_first(args: list[str]) -> list[str]:
+    """Move the global options to the front, so ``tikhon models --json`` works like ``tikhon --json models``.
+    No command has options of these names; everything after ``--`` is left alone."""
+    front: list[str] = []
+    rest: list[str] = []
+    i = 0
+    while i < len(args):
+        word = args[i]
+        if word == "--":
+            rest.extend(args[i:])
+            break
+        if word in _GLOBAL_FLAGS or word.split("=", 1)[0] in _GLOBAL_VALUED and "=" in word:
+            front.append(word)
+        elif word in _GLOBAL_VALUED and i + 1 < len(args):
+            front.extend(args[i:i + 2])
+            i += 1
+        else:
+            rest.append(word)
+        i += 1
+    return front + rest
+
+
 def main(argv: list[str] | None = None) -> int:
     """Run the command line; return (and, as a console script, exit with) the exit code."""
     from service.errors import TikhonError
 
     no_args_help, usage_error, exit_, abort = _parser_errors()
     command = typer.main.get_command(app)
+    args = _globals_first(list(sys.argv[1:] if argv is None else argv))
     try:
-        result = command.main(args=argv, prog_name="tikhon", standalone_mode=False)
+        result = command.main(args=args, prog_name="tikhon", standalone_mode=False)
         code = result if isinstance(result, int) else 0
     except no_args_help as exc:
         ctx = getattr(exc, "ctx", None)

@@ -16,7 +16,7 @@ import sys
 import numpy as np
 import pytest
 
-from service.cli import cv_text_plot, parse_basis, parse_ref
+from service.cli import _globals_first, cv_text_plot, parse_basis, parse_ref
 from service.client import Client
 
 ANSI = re.compile(r"\x1b\[[0-9;?]*[A-Za-z]|\x1b\][^\x07]*\x07")
@@ -98,6 +98,20 @@ def test_parse_ref():
     for bad in ("pump@0", "pump@x", "@3"):
         with pytest.raises(Exception):
             parse_ref(bad)
+
+
+def test_global_options_may_follow_the_command():
+    assert _globals_first(["models", "--json"]) == ["--json", "models"]
+    assert _globals_first(["show", "m@2", "--url", "http://h:1", "--key=k"]) == ["--url", "http://h:1", "--key=k",
+                                                                               "show", "m@2"]
+    assert _globals_first(["promote", "m", "2", "--reason", "r"]) == ["promote", "m", "2", "--reason", "r"]
+
+
+def test_version_and_help_exit_0():
+    for args in (["--version"], ["--help"], ["train", "--help"]):
+        r = subprocess.run([sys.executable, "-m", "service.cli", *args], capture_output=True, text=True, timeout=120)
+        assert r.returncode == 0 and r.stdout and not r.stderr, (args, r.stderr)
+    assert r.stdout.count("--basis") >= 1 and "--promote" in r.stdout
 
 
 def test_cv_text_plot_places_points_by_value():
@@ -218,6 +232,15 @@ def test_predict_show_promote_history_prune_and_keys(server, tmp_path):
 
     r = cli(url, "--json", "predict", "pump-ops", "--data", str(queries))
     assert r.returncode == 0 and json.loads(r.stdout)["model"]["version"] == 1
+
+    # A file with a column the model does not use: refused as it is, accepted with --only-inputs.
+    extra = tmp_path / "extra.csv"
+    extra.write_text("site,flow_lps,head_m\nA7,40.0,22.0\nB2,200.0,22.0\n")
+    r = cli(url, "predict", "pump-ops@2", "--data", str(extra))
+    assert r.returncode == 2 and "site" in r.stderr and len(r.stderr.strip().splitlines()) == 1
+    r = cli(url, "--json", "predict", "pump-ops@2", "--data", str(extra), "--only-inputs", "--interval", "0.9")
+    assert r.returncode == 0, r.stderr
+    assert json.loads(r.stdout)["predictions"] == ref["predictions"]
 
     r = cli(url, "show", "pump-ops@3")
     assert r.returncode == 0 and "pump-ops version 3" in r.stdout and "trained on" in r.stdout
