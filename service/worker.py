@@ -15,6 +15,11 @@ was cancelled; a ``Conflict`` tells it the job was taken away (its heartbeat cam
 work is dropped without recording anything. Jobs of a worker that died are put back in the queue by
 ``requeue_stale`` (any worker calls it while idle), and failed after ``max_attempts`` claims.
 
+Out-of-core jobs (the request carries ``stream``, the resolved path of a large ``source`` file or a
+folder of Parquet files) are read by the training process itself, in row batches
+(``service.engine.streaming``), in that process or, with ``TIKHON_DASK_SCHEDULER``, on a Dask cluster;
+``if_better`` then scores the live version on the streamed rows per hash fold.
+
 Promotion (``promote`` in the request):
 
 * ``always``: the new version goes live. ``never``: it is only published.
@@ -69,22 +74,36 @@ def _problem(err: BaseException) -> dict[str, Any]:
     return body
 
 
-def _train(data_path: str, spec: dict, conn, progress, cancel, deadline: float) -> None:
-    """Body of the training process: read the staged table, tune, send the artifact back through ``conn``."""
+def _train(data_path: str | None, spec: dict, conn, progress, cancel, deadline: float,
+           stream: str | None = None, dask_scheduler: str | None = None, dask_workers: int = 2) -> None:
+    """Body of the training process: read the staged table (or stream the source), tune, send the
+    artifact back through ``conn``."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)  # the parent decides when this process stops
     try:
-        from service.api.tables import read_staged
-        from service.engine import tune
-
-        cols = read_staged(data_path)
-
         def on_progress(done: int, total: int) -> None:
             progress[0], progress[1] = int(done), int(total)
 
         def should_stop() -> bool:
             return cancel.is_set() or time.time() > deadline
 
-        result = tune(cols, spec, progress=on_progress, should_stop=should_stop)
+        if stream is not None:
+            from service.engine.executors import DaskExecutor, SerialExecutor
+            from service.engine.streaming import tune_partitions
+            from service.sources import open_source
+
+            schema, parts = open_source(stream)
+            executor = DaskExecutor(dask_scheduler, dask_workers) if dask_scheduler else SerialExecutor()
+            try:
+                result = tune_partitions(parts, schema, spec, executor=executor, progress=on_progress,
+                                         should_stop=should_stop)
+            finally:
+                executor.close()
+        else:
+            from service.api.tables import read_staged
+            from service.engine import tune
+
+            cols = read_staged(data_path)
+            result = tune(cols, spec, progress=on_progress, should_stop=should_stop)
         body, arrays = result.to_artifact()
         folds = np.asarray(result.folds)
         conn.send(("ok", body, arrays, {
@@ -148,11 +167,19 @@ def decide(store, name: str, request: dict, outcome: dict, data_path: str | None
     decision["comparison"] = ("live version's predictions on the new rows, scored per fold of the new job's folds "
                               "and averaged; the new version's figure is its CV mean")
     try:
-        from service.api.tables import read_staged
-
-        cols = read_staged(data_path)
         live_model = store.load(name, live).model
-        live_score = score_on(live_model, cols, outcome["target"], metric, outcome.get("folds"))
+        if request.get("stream"):  # out of core: score the live model on the streamed rows, per hash fold
+            from service.engine.streaming import score_partitions
+            from service.sources import open_source
+
+            live_score = score_partitions(live_model, open_source(request["stream"])[1], request["spec"], metric)
+            decision["comparison"] = ("live version's predictions on the new rows, scored per hash fold of the new "
+                                      "job's spec and averaged; the new version's figure is its CV mean")
+        else:
+            from service.api.tables import read_staged
+
+            cols = read_staged(data_path)
+            live_score = score_on(live_model, cols, outcome["target"], metric, outcome.get("folds"))
     except TikhonError as err:
         return False, {**decision, "went_live": False, "live_on_new_data": None,
                        "reason": f"the live version {live} cannot score the new data ({err}); the new version was "
@@ -234,7 +261,8 @@ class Worker:
         request = job["request"] or {}
         s = self.settings
         log.info("job started", extra={"job_id": jid, "model": name, "attempt": job.get("attempts")})
-        if not job.get("data_path"):
+        stream = request.get("stream")
+        if not job.get("data_path") and not stream:
             self._finish(jid, "failed", problem=_problem(TikhonError(
                 "the job has no staged data file; submit it again through POST /v1/models/{name}/trainings.")))
             return
@@ -244,7 +272,8 @@ class Worker:
         started = time.time()
         deadline = started + s.max_training_seconds
         proc = _SPAWN.Process(
-            target=_train, args=(job["data_path"], request["spec"], child_conn, progress, cancel, deadline),
+            target=_train, args=(job.get("data_path"), request["spec"], child_conn, progress, cancel, deadline,
+                                 stream, s.dask_scheduler, s.dask_local_workers),
             name=f"tikhon-train-{jid[:8]}", daemon=True,
         )
         proc.start()

@@ -66,6 +66,52 @@ def load_data(data: dict[str, Any] | None, settings: Settings, *, upload: tuple[
     return cols, origin
 
 
+def stream_source(data: dict[str, Any] | None, spec_raw: dict[str, Any] | None, settings: Settings
+                  ) -> Path | None:
+    """The resolved path when a ``source`` job is to be trained out of core, else None.
+
+    Out of core when the spec says ``execution.mode: streaming``, or says ``auto`` (the default) and the
+    source is a folder of Parquet files or larger than ``streaming_threshold_bytes``."""
+    if not data or "source" not in data:
+        return None
+    path = tables.resolve_source(Path(settings.data_dir), data["source"], allow_dir=True)
+    mode = ((spec_raw or {}).get("execution") or {}).get("mode", "auto") if isinstance(spec_raw, dict) else "auto"
+    size = sum(p.stat().st_size for p in path.iterdir() if p.is_file()) if path.is_dir() else path.stat().st_size
+    if mode == "streaming" or (mode == "auto" and (path.is_dir() or size > settings.streaming_threshold_bytes)):
+        return path
+    if path.is_dir():
+        raise InvalidData(
+            f"data.source={data['source']!r} is a folder, which is read out of core; set spec.execution.mode to "
+            "'streaming' or 'auto', or name a single file.",
+            errors=[{"field": "spec.execution.mode", "value": mode, "message": "folder sources stream"}])
+    return None
+
+
+def validate_stream(path: Path, spec_raw: dict[str, Any], settings: Settings, source: str
+                    ) -> tuple[dict[str, Any], dict[str, int], dict[str, Any]]:
+    """Check an out-of-core job before it is queued: the source opens, the spec fits its columns, the
+    grid fits the budget (rows from Parquet metadata, or estimated from a CSV's size)."""
+    from service.engine import parse_spec
+    from service.engine.streaming import check_partitions
+    from service.engine.tune import Budget
+    from service.sources import open_source
+
+    spec = parse_spec(spec_raw)
+    schema, parts = open_source(path)
+    rows = sum(getattr(p, "rows", 0) or 0 for p in parts)
+    if not rows:  # CSV: estimate from the size and the first lines
+        with open(path, "rb") as fh:
+            head = fh.read(1 << 16)
+        lines = max(1, head.count(b"\n"))
+        rows = int(path.stat().st_size / (len(head) / lines)) if head else 0
+    counts = check_partitions(schema, spec, rows, Budget(max_grid_fits=settings.max_grid_fits))
+    files = sorted(path.iterdir()) if path.is_dir() else [path]
+    origin = {"kind": "source", "source": source, "execution": "streaming", "rows": rows,
+              "columns": list(schema), "bytes": sum(f.stat().st_size for f in files if f.is_file()),
+              "modified": max(f.stat().st_mtime for f in files if f.is_file())}
+    return spec.model_dump(mode="json"), counts, origin
+
+
 def live_spec(store, name: str) -> dict[str, Any]:
     """The spec of the model's live version (a retrain without a spec reuses it)."""
     try:

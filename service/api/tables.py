@@ -207,11 +207,12 @@ def from_file_bytes(payload: bytes, filename: str | None, *, where: str) -> Tabl
     return from_csv(payload, where=where)
 
 
-def resolve_source(data_dir: Path, source: Any, *, where: str = "data.source") -> Path:
+def resolve_source(data_dir: Path, source: Any, *, where: str = "data.source", allow_dir: bool = False) -> Path:
     """A path relative to ``data_dir`` that stays inside it after resolving symlinks.
 
     Refused: non-strings, empty strings, NUL bytes, absolute paths (POSIX or drive letters), any ``..``
-    component, anything whose resolved target leaves ``data_dir``, and anything that is not a regular file.
+    component, anything whose resolved target leaves ``data_dir``, and anything that is not a regular file
+    (or, with ``allow_dir``, a folder whose every file also resolves inside ``data_dir``).
     """
     hint = f"give a path relative to the data folder (TIKHON_DATA_DIR={data_dir}), such as 'pumps/2024-06.csv'"
     if not isinstance(source, str) or not source.strip():
@@ -230,6 +231,15 @@ def resolve_source(data_dir: Path, source: Any, *, where: str = "data.source") -
             f"{where}={source!r} resolves (through a symbolic link) outside the data folder; {hint}.",
             errors=[{"field": where, "value": source, "message": "escapes the data folder"}],
         )
+    if allow_dir and target.is_dir():
+        for child in target.iterdir():
+            real = child.resolve()
+            if root not in real.parents:
+                raise InvalidData(
+                    f"{where}={source!r} holds {child.name!r}, which resolves outside the data folder; {hint}.",
+                    errors=[{"field": where, "value": source, "message": "escapes the data folder"}],
+                )
+        return target
     if not target.is_file():
         raise InvalidData(
             f"{where}={source!r} is not a file in the data folder; {hint}.",

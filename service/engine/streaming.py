@@ -330,11 +330,8 @@ def _resolve_columns(spec: TuneSpec, schema: dict[str, str]) -> tuple[list[str],
     return features, columns
 
 
-def tune_partitions(partitions: Sequence[Partition], schema: dict[str, str], spec: Any, *,
-                    executor=None, progress: Callable[[int, int], None] | None = None,
-                    should_stop: Callable[[], bool] | None = None, budget: Budget | None = None) -> TuneResult:
-    """Tune from partitions read in batches. ``schema`` maps column name → "number" or "text"."""
-    spec = parse_spec(spec)
+def check_stream_spec(spec: TuneSpec) -> None:
+    """Refuse what out-of-core training cannot do, naming the field and the alternative."""
     if spec.cv.scheme not in ("kfold", "grouped"):
         raise InvalidSpec(f"cv.scheme {spec.cv.scheme!r} needs all rows in memory; out-of-core training supports "
                           "kfold and grouped (set execution.mode to memory for the others)",
@@ -345,6 +342,69 @@ def tune_partitions(partitions: Sequence[Partition], schema: dict[str, str], spe
     if spec.basis_fit == "per_fold":
         raise InvalidSpec("basis_fit 'per_fold' needs all rows in memory; use 'all_rows' out of core",
                           errors=[{"field": "basis_fit", "value": "per_fold", "message": "not available out of core"}])
+
+
+def check_partitions(schema: dict[str, str], spec: Any, n_rows: int, budget: Budget | None = None) -> dict[str, int]:
+    """Everything that can be checked before reading the rows: spec, columns, and the budget (with the
+    row count from the source's metadata or an estimate). Returns the grid counts."""
+    spec = parse_spec(spec)
+    check_stream_spec(spec)
+    features, _ = _resolve_columns(spec, schema)
+    return check_budget(spec, max(1, n_rows), len(features), budget)
+
+
+def score_partitions(model: FittedModel, partitions: Sequence[Partition], spec: Any, metric: str,
+                     executor=None) -> float:
+    """``model``'s error on streamed rows: the metric per hash fold of ``spec``'s cv, averaged over folds
+    (how a CV mean aggregates), so a live version and a new one are compared on the same footing."""
+    spec = parse_spec(spec)
+    executor = executor or SerialExecutor()
+    columns = [spec.target, *model.features, *model.categories.names]
+    for extra in (spec.cv.group_by, spec.cv.row_key):
+        if extra and extra not in columns:
+            columns.append(extra)
+    ctx = _Ctx(spec, list(model.features), columns, spec.execution.batch_rows)
+    acc = executor.map_reduce(partial(_score_partition, ctx, model), list(partitions), _sum_arrays)
+    n, sse, sae, sy, syy = acc
+    with np.errstate(divide="ignore", invalid="ignore"):
+        if metric == "rmse":
+            per = np.sqrt(sse / n)
+        elif metric == "mae":
+            per = sae / n
+        else:
+            per = 1.0 - sse / (syy - sy ** 2 / n)
+    per = per[n > 0]
+    return float(per.mean()) if per.size else float("nan")
+
+
+def _score_partition(ctx: _Ctx, model: FittedModel, part: Partition) -> np.ndarray:
+    K = ctx.spec.cv.folds
+    out = np.zeros((5, K))
+    pos = part.offset
+    for batch in part.read(ctx.columns, ctx.batch_rows):
+        y = numeric_column(batch, ctx.spec.target, "target", pos)
+        b = y.size
+        if ctx.spec.cv.scheme == "grouped":
+            fold = hash_folds(categorical_column(batch, ctx.spec.cv.group_by), ctx.spec.cv.seed, K)
+        else:
+            fold = hash_folds(_keys(ctx, batch, pos, b), ctx.spec.cv.seed, K)
+        e = y - model.predict({c: batch[c] for c in [*model.features, *model.categories.names]})
+        for row, vals in enumerate((np.ones(b), e ** 2, np.abs(e), y, y ** 2)):
+            out[row] += np.bincount(fold, weights=vals, minlength=K)
+        pos += b
+    return out
+
+
+def _sum_arrays(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    return a + b
+
+
+def tune_partitions(partitions: Sequence[Partition], schema: dict[str, str], spec: Any, *,
+                    executor=None, progress: Callable[[int, int], None] | None = None,
+                    should_stop: Callable[[], bool] | None = None, budget: Budget | None = None) -> TuneResult:
+    """Tune from partitions read in batches. ``schema`` maps column name → "number" or "text"."""
+    spec = parse_spec(spec)
+    check_stream_spec(spec)
     if not partitions:
         raise InvalidData("the source has no partitions (no files or no rows)")
     executor = executor or SerialExecutor()

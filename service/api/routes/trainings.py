@@ -120,8 +120,16 @@ async def submit(request: Request, name: str = Path(..., description="Model name
     store, settings = app.state.store, app.state.settings
 
     def accept() -> tuple[dict[str, Any], bool]:
-        cols, origin = intake.load_data(data, settings, upload=upload)
         spec_raw = parsed.spec if parsed.spec is not None else intake.live_spec(store, name)
+        stream = intake.stream_source(data, spec_raw, settings) if upload is None else None
+        if stream is not None:  # out of core: the worker reads the source itself, in batches
+            spec, counts, origin = intake.validate_stream(stream, spec_raw, settings, data["source"])
+            job_request = {
+                "spec": spec, "promote": parsed.promote, "min_improvement": parsed.min_improvement,
+                "data": origin, "grid": counts, "spec_reused": parsed.spec is None, "stream": str(stream),
+            }
+            return store.jobs.submit(name, job_request, idempotency_key=key)
+        cols, origin = intake.load_data(data, settings, upload=upload)
         spec, counts = intake.validate(cols, spec_raw, settings)
         job_request = {
             "spec": spec, "promote": parsed.promote, "min_improvement": parsed.min_improvement,
