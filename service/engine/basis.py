@@ -17,6 +17,7 @@ Definitions (the tests compare them with scikit-learn, so they are exact):
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from functools import cached_property
 from typing import Any
 
 import numpy as np
@@ -98,8 +99,12 @@ class BasisSetting:
         if self.kind == "linear":
             return np.ascontiguousarray(Xs, dtype=np.float64)
         if self.kind == "polynomial":
-            return _monomials(Xs, self.powers)
+            return _monomials(Xs, self.powers, self.plan)
         return _rbf(Xs, self.centers, self.width)
+
+    @cached_property
+    def plan(self):
+        return monomial_plan(self.powers) if self.powers is not None else None
 
 
 def polynomial_powers(d: int, degree: int) -> np.ndarray:
@@ -123,24 +128,32 @@ def n_polynomial_terms(d: int, degree: int) -> int:
     return comb(d + degree, degree) - 1
 
 
-def _monomials(Xs: np.ndarray, powers: np.ndarray) -> np.ndarray:
-    n, d = Xs.shape
-    p = powers.shape[0]
-    out = np.empty((n, p), dtype=np.float64)
+def monomial_plan(powers: np.ndarray) -> list[tuple[np.ndarray, np.ndarray, np.ndarray]]:
+    """Per total degree k ≥ 2: (columns of degree k, their parent columns, the input that multiplies the
+    parent). A monomial's parent removes one unit of its last input with a nonzero exponent."""
     index = {tuple(r): i for i, r in enumerate(powers)}
-    Xf = np.asfortranarray(Xs, dtype=np.float64)
-    outf = np.asfortranarray(out)
+    levels: dict[int, list[tuple[int, int, int]]] = {}
     for i, r in enumerate(powers):
         total = int(r.sum())
-        if total == 1:
-            outf[:, i] = Xf[:, int(np.argmax(r))]
+        if total < 2:
             continue
-        # parent: remove one unit of the last input with a nonzero exponent
         j = int(np.flatnonzero(r)[-1])
         parent = r.copy()
         parent[j] -= 1
-        np.multiply(outf[:, index[tuple(parent)]], Xf[:, j], out=outf[:, i])
-    return np.ascontiguousarray(outf)
+        levels.setdefault(total, []).append((i, index[tuple(parent)], j))
+    return [tuple(np.array(col) for col in zip(*levels[k])) for k in sorted(levels)]
+
+
+def _monomials(Xs: np.ndarray, powers: np.ndarray, plan=None) -> np.ndarray:
+    """Columns of degree 1 are the inputs; each higher column is its parent times one input, filled one
+    degree level at a time (the same products, in the same order, for one row or a million)."""
+    n, d = Xs.shape
+    out = np.empty((n, powers.shape[0]), dtype=np.float64)
+    first = np.flatnonzero(powers.sum(axis=1) == 1)
+    out[:, first] = Xs[:, np.argmax(powers[first], axis=1)]
+    for cols, parents, var in (plan if plan is not None else monomial_plan(powers)):
+        out[:, cols] = out[:, parents] * Xs[:, var]
+    return out
 
 
 def _rbf(Xs: np.ndarray, centers: np.ndarray, width: float) -> np.ndarray:
@@ -192,14 +205,17 @@ class Categories:
     def term_names(self) -> list[str]:
         return [f"{n}={lv}" for n, lvs in zip(self.names, self.levels) for lv in lvs]
 
+    @cached_property
+    def _positions(self) -> list[dict[str, int]]:
+        return [{lv: i for i, lv in enumerate(lvs)} for lvs in self.levels]
+
     def encode(self, cols: list[np.ndarray]) -> tuple[np.ndarray, list[np.ndarray]]:
         """One-hot block (n, width) and, per column, a boolean mask of rows with an unseen level."""
         n = len(cols[0]) if cols else 0
         out = np.zeros((n, self.width), dtype=np.float64)
         unseen = []
         off = 0
-        for lvs, c in zip(self.levels, cols):
-            pos = {lv: i for i, lv in enumerate(lvs)}
+        for lvs, pos, c in zip(self.levels, self._positions, cols):
             idx = np.array([pos.get(v, -1) for v in c], dtype=np.int64)
             ok = idx >= 0
             out[np.flatnonzero(ok), off + idx[ok]] = 1.0

@@ -18,13 +18,14 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from functools import cached_property
 from typing import Any
 
 import numpy as np
 
 from service.errors import InvalidData
 
-from .basis import BasisSetting, Categories, InputScaler, _monomials, _rbf
+from .basis import BasisSetting, Categories, InputScaler
 from .table import as_columns, categorical_column, numeric_column
 
 MAX_INTERVAL_RESIDUALS = 20_000  # residuals kept per model; more are thinned to evenly spaced order statistics
@@ -64,7 +65,7 @@ class FittedModel:
         X = np.column_stack([numeric_column(cols, f, "feature") for f in self.features]) if self.features else \
             np.zeros((_nrows(cols), 0))
         Xs = self.scaler.transform(X)
-        Phi = _expand_fast(self.basis, Xs)
+        Phi = self.basis.expand(Xs)
         unseen: list[np.ndarray] = []
         if self.categories.names:
             cats = [categorical_column(cols, c) for c in self.categories.names]
@@ -138,7 +139,9 @@ class FittedModel:
                   cols: dict[str, np.ndarray]) -> list[list[str]]:
         m = X.shape[0]
         out: list[list[str]] = [[] for _ in range(m)]
-        for j, f in enumerate(self.features):
+        outside = (X > self._hi) | (X < self._lo) if X.size else np.zeros(X.shape, bool)
+        for j in (np.flatnonzero(outside.any(axis=0)) if outside.size else []):
+            f = self.features[j]
             lo, hi = self.ranges[f]
             col = X[:, j]
             for i in np.flatnonzero(col > hi):
@@ -146,6 +149,8 @@ class FittedModel:
             for i in np.flatnonzero(col < lo):
                 out[i].append(f"{f}={_fmt(col[i])} is below the training range [{_fmt(lo)}, {_fmt(hi)}]")
         for name, mask in zip(self.categories.names, unseen):
+            if not mask.any():
+                continue
             raw = cols[name]
             for i in np.flatnonzero(mask):
                 out[i].append(f"{name}={raw[i]!s} was not seen in training; its effect is taken as zero")
@@ -155,6 +160,14 @@ class FittedModel:
             out[i].append(f"leverage {lev[i]:.3g} exceeds the largest training leverage {self.max_leverage:.3g}: "
                           "the input combination lies outside the data the model has seen")
         return out
+
+    @cached_property
+    def _lo(self) -> np.ndarray:
+        return np.array([self.ranges[f][0] for f in self.features])
+
+    @cached_property
+    def _hi(self) -> np.ndarray:
+        return np.array([self.ranges[f][1] for f in self.features])
 
     # ---- description ------------------------------------------------------------------------------
     def describe(self) -> dict[str, Any]:
@@ -249,14 +262,6 @@ def thin_residuals(abs_res: np.ndarray, fold: np.ndarray, limit: int = MAX_INTER
         out_r.append(r)
         out_f.append(np.full(r.size, k, dtype=np.int64))
     return np.concatenate(out_r), np.concatenate(out_f), float(g)
-
-
-def _expand_fast(basis: BasisSetting, Xs: np.ndarray) -> np.ndarray:
-    if basis.kind == "polynomial":
-        return _monomials(Xs, basis.powers)
-    if basis.kind == "rbf":
-        return _rbf(Xs, basis.centers, basis.width)
-    return np.ascontiguousarray(Xs, dtype=np.float64)
 
 
 def _nrows(cols: dict[str, np.ndarray]) -> int:
