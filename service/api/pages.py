@@ -53,6 +53,22 @@ def metric_text(chosen: dict[str, Any] | None, splits: Any = None, unit: str | N
     return text
 
 
+def grid_text(spec: dict[str, Any], summary: dict[str, Any]) -> str:
+    """``λ from 0.0001 to 1000 (30 values) × 7 basis settings`` (× l1 ratios for the elastic net)."""
+    pen = spec.get("penalty") or {}
+    raw = pen.get("strengths")
+    if isinstance(raw, dict):
+        lam = f"λ from {fmt_strength(raw.get('min'))} to {fmt_strength(raw.get('max'))} ({raw.get('count')} values)"
+    elif isinstance(raw, list) and raw:
+        lam = f"λ in {{{', '.join(fmt_strength(x) for x in sorted(raw))}}}"
+    else:
+        lam = f"{summary.get('strengths', '?')} strengths"
+    text = f"{lam} × {summary.get('basis_settings', '?')} basis settings"
+    if pen.get("kind") == "elastic_net" and summary.get("l1_ratios"):
+        text += f" × {summary.get('l1_ratios')} l1 ratios"
+    return text
+
+
 def layout(title: str, body: str, *, signed_in: bool = False, page: str = "") -> str:
     logout = (
         '<form method="post" action="/logout" class="logout"><button type="submit">Sign out</button></form>'
@@ -242,6 +258,7 @@ def model_page(name: str, model: dict[str, Any], versions: list[dict[str, Any]],
             ("selection rule", esc(chosen.get("rule") or (spec.get("selection") or {}).get("rule"))),
             ("cross-validation", esc(f"{summary.get('scheme', '?')}, {splits or '?'} splits, "
                                      f"{summary.get('rows', '?')} rows, {summary.get('candidates', '?')} candidates")),
+            ("grid searched", esc(grid_text(spec, summary))),
             ("target", esc(f"{target}" + (f" ({units[target]})" if target in units else ""))),
             ("inputs", esc(features or "—") + (esc(f"; categorical: {', '.join(spec.get('categorical') or [])}")
                                                if spec.get("categorical") else "")),

@@ -34,6 +34,7 @@ import numpy as np  # noqa: E402
 from matplotlib.backends.backend_agg import FigureCanvasAgg  # noqa: E402
 from matplotlib.backends.backend_svg import FigureCanvasSVG  # noqa: E402
 from matplotlib import dates as mdates  # noqa: E402
+from matplotlib import ticker  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 
 # Process-wide matplotlib settings that only change how files are written, set once: text stays text
@@ -235,6 +236,11 @@ def cv_figure(body: dict[str, Any], *, heading: str = "") -> Figure:
     ax.set_xscale("log")
     if use_log_y:
         ax.set_yscale("log")
+        plain = ticker.FuncFormatter(lambda v, _: f"{v:g}")
+        ax.yaxis.set_major_formatter(plain)
+        # Label a few minor ticks (2, 3, 5 times a power of ten) so a short range still has numbers.
+        ax.yaxis.set_minor_formatter(ticker.FuncFormatter(
+            lambda v, _: f"{v:g}" if round(v / 10 ** math.floor(math.log10(v)), 6) in (2.0, 3.0, 5.0) else ""))
     ax.set_xlabel("penalty strength λ (log scale)")
     ax.set_ylabel(metric_label(metric, spec.get("target"), units) + ("  (log scale)" if use_log_y else ""))
 
@@ -245,7 +251,7 @@ def cv_figure(body: dict[str, Any], *, heading: str = "") -> Figure:
         ring = ax.scatter([cx], [cy], s=170, facecolors="none", edgecolors=INK, linewidths=2.2, zorder=6,
                           label=f"chosen ({chosen.get('rule') or 'best'}):\n{chosen_text(chosen)}")
         ring.set_gid("chosen-point")
-        tag = ax.annotate("chosen", (cx, cy), xytext=(0, 11), textcoords="offset points", ha="center",
+        tag = ax.annotate("chosen", (cx, cy), xytext=(0, -17), textcoords="offset points", ha="center",
                           fontsize=8, color=INK, fontweight="bold")
         tag.set_gid("chosen-tag")
     if onese and not _same_point(onese, chosen):
@@ -253,7 +259,7 @@ def cv_figure(body: dict[str, Any], *, heading: str = "") -> Figure:
         dia = ax.scatter([ox], [oy], s=70, marker="D", facecolors=INK, edgecolors=PAPER, linewidths=0.8, zorder=6,
                          label=f"one-standard-error rule:\n{chosen_text(onese)}")
         dia.set_gid("one-se-point")
-        tag = ax.annotate("1-SE", (ox, oy), xytext=(0, -15), textcoords="offset points", ha="center",
+        tag = ax.annotate("1-SE", (ox, oy), xytext=(0, 9), textcoords="offset points", ha="center",
                           fontsize=8, color=INK)
         tag.set_gid("one-se-tag")
     if best and not _same_point(best, chosen):

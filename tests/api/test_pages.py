@@ -93,6 +93,8 @@ def test_model_page_shows_choice_warnings_figures_and_history(open_service):
     assert f"λ = {chosen['penalty']['strength']:.3g}" in r.text
     assert repr(chosen["penalty"]["strength"]) in r.text  # the exact value, too
     assert "energy_kwh (kWh)" in r.text and "flow_lps (L/s)" in r.text
+    # v2's grid: 5 strengths from 100 to 10^4, bases linear and polynomial 2 and 3 (the fixture's spec).
+    assert "λ from 100 to 1e+04 (5 values) × 3 basis settings" in r.text
     imgs = [a["src"] for t, a in parse(r.text).tags if t == "img"]
     assert imgs == [f"/v1/models/pump-page/versions/2/plots/{k}" for k in ("cv", "path", "residuals")] + [
         "/v1/models/pump-page/plots/history"]
