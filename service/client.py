@@ -121,9 +121,14 @@ class Client:
 
     def __init__(self, url: str = DEFAULT_URL, key: str | None = None, timeout: float = 60.0, **httpx_options: Any):
         self.url = str(url).rstrip("/")
+        if not self.url.startswith(("http://", "https://")):
+            raise ServiceError(0, "Invalid argument", f"server URL {url!r} lacks its scheme; write it as "
+                               "http://host:port or https://host:port.")
         headers = {"User-Agent": "tikhon-client/1", "Accept": "application/json"}
         if key:
             headers["Authorization"] = f"Bearer {key}"
+        # Failed connection attempts are retried twice: the request was never sent, so even a POST is safe.
+        httpx_options.setdefault("transport", httpx.HTTPTransport(retries=2))
         self._http = httpx.Client(base_url=self.url, headers=headers, timeout=timeout, **httpx_options)
 
     # -- plumbing -----------------------------------------------------------------------------------

@@ -231,3 +231,61 @@ def test_ordinary_least_squares_through_the_client_matches_scikit_learn(server):
     X = np.column_stack([cols["flow_lps"], cols["head_m"]])
     ref = LinearRegression().fit(X, cols["energy_kwh"]).predict(np.column_stack([fresh["flow_lps"], fresh["head_m"]]))
     np.testing.assert_allclose(got, ref, rtol=1e-9, atol=1e-9)
+
+
+@pytest.mark.postgres
+def test_two_api_replicas_and_a_separate_worker_share_a_postgresql_catalog(live_service, postgres_catalog_url, tmp_path):
+    """The README's layout: API replicas without embedded workers, a separate `tikhon worker` process,
+    one PostgreSQL catalog and one store folder. A job submitted through one replica is trained by the
+    worker and seen, served and guarded identically through the other."""
+    import os
+    import signal
+    import subprocess
+    import sys
+
+    shared = {"database_url": postgres_catalog_url, "store": tmp_path / "store", "data_dir": tmp_path / "data"}
+    with live_service(tmp_path / "a", worker=False, **shared) as (a, _, _), \
+            live_service(tmp_path / "b", worker=False, **shared) as (b, _, _):
+        env = {k: v for k, v in os.environ.items() if not k.startswith("TIKHON_")}
+        env.update(TIKHON_DATABASE_URL=postgres_catalog_url, TIKHON_STORE=str(tmp_path / "store"),
+                   TIKHON_DATA_DIR=str(tmp_path / "data"), TIKHON_WORKER_POLL_S="0.05",
+                   TIKHON_WORKER_HEARTBEAT_S="0.2", TIKHON_LOG_LEVEL="warning")
+        worker = subprocess.Popen([sys.executable, "-m", "service.cli", "worker"], env=env,
+                                  stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+        try:
+            cols = table(150, seed=31)
+            with Client(a) as ta, Client(b) as tb:
+                job = ta.train("pump-rep", columns=cols, spec=SPEC, promote="always")
+                done = tb.wait(job["id"], poll=0.1)
+                assert done["state"] == "succeeded" and done["version"] == 1, done
+                rows = [{"flow_lps": 33.0, "head_m": 41.0}]
+                assert ta.predict("pump-rep", rows=rows, interval=0.8) == tb.predict("pump-rep", rows=rows, interval=0.8)
+                made = ta.create_key("admin", label="replica test")
+                # The key made through replica a comes to guard replica b once b's catalog cache (1 s)
+                # expires: wait for that (a bounded wait for an event, not a timed assertion).
+                import time
+
+                deadline = time.monotonic() + 30
+                while True:
+                    try:
+                        tb.models()
+                    except ServiceError as err:
+                        assert err.status == 401
+                        break
+                    assert time.monotonic() < deadline, "replica b never started asking for the key"
+                    time.sleep(0.1)
+            with Client(b, key=made["secret"]) as tb, Client(a, key=made["secret"]) as ta:
+                again = tb.wait(tb.train("pump-rep", columns=cols, spec=SPEC, promote="never"), poll=0.1)
+                assert again["version"] == 2
+                tb.set_live("pump-rep", 2, reason="replica test")
+                assert ta.model("pump-rep")["live_version"] == 2
+                # Replica a answers with version 2 once its one-second catalog cache expires (a bounded wait).
+                deadline = time.monotonic() + 30
+                while ta.predict("pump-rep", rows=rows)["model"]["version"] != 2:
+                    assert time.monotonic() < deadline, "replica a kept answering with version 1"
+                    time.sleep(0.1)
+                assert [h["to_version"] for h in ta.history("pump-rep")] == [1, 2]
+        finally:
+            worker.send_signal(signal.SIGTERM)
+            _, err_text = worker.communicate(timeout=60)
+        assert worker.returncode == 0, err_text
