@@ -102,6 +102,8 @@ def _progress(job: dict[str, Any]) -> str:
                 f'<span class="num">{esc(done)}/{esc(total)} ({pct:.0f}%)</span>')
     if state == "queued":
         return '<span class="muted">waiting for a worker</span>'
+    if state == "running":
+        return '<span class="muted">preparing the data</span>'
     return '<span class="muted">—</span>'
 
 

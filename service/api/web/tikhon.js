@@ -30,7 +30,8 @@
       td.appendChild(document.createTextNode(" "));
       td.appendChild(el("span", { "class": "num" }, done + "/" + total + " (" + Math.round(100 * done / total) + "%)"));
     } else {
-      td.appendChild(el("span", { "class": "muted" }, job.state === "queued" ? "waiting for a worker" : "—"));
+      var idle = { queued: "waiting for a worker", running: "preparing the data" };
+      td.appendChild(el("span", { "class": "muted" }, idle[job.state] || "—"));
     }
     return td;
   }
@@ -119,8 +120,8 @@
           render(jobs);
           var active = jobs.some(function (j) { return !FINAL[j.state]; });
           section.setAttribute("data-active", active ? "yes" : "no");
-          if (status) status.textContent = active ? "Updating every second." : "No job is running; checking every 5 s.";
-          setTimeout(poll, active ? 1000 : 5000);
+          if (status) status.textContent = active ? "Updating every second." : "No job is running; checking every 3 s.";
+          setTimeout(poll, active ? 1000 : 3000);
         })
         .catch(function (err) {
           failures += 1;
