@@ -303,7 +303,10 @@ def _load_spec(path: Path) -> dict[str, Any]:
 def train(
     ctx: typer.Context,
     name: Annotated[str, typer.Argument(help="Model name.")],
-    data: Annotated[Path, typer.Option("--data", help="CSV or Parquet file to train on (uploaded).")],
+    data: Annotated[Optional[Path], typer.Option("--data", help="CSV or Parquet file to train on (uploaded).")] = None,
+    source: Annotated[Optional[str], typer.Option("--source", help="Instead of --data: a CSV or Parquet file (or "
+                                                  "folder) already on the server, relative to its TIKHON_DATA_DIR; "
+                                                  "for tables too large to upload.")] = None,
     target: Annotated[Optional[str], typer.Option(help="Target column (overrides the spec's).")] = None,
     spec: Annotated[Optional[Path], typer.Option(help="JSON training spec. With neither --spec nor --target the live "
                                                  "version's spec is reused (a scheduled retrain).")] = None,
@@ -321,7 +324,10 @@ def train(
     """Submit a training job; with --wait, follow it and summarize the chosen point and the CV curve."""
     if promote not in ("always", "if_better", "never"):
         raise UsageProblem(f"--promote {promote!r} is not offered; use always, if_better or never.")
-    if not data.is_file():
+    if (data is None) == (source is None):
+        raise UsageProblem("give the training table with exactly one of --data FILE (uploaded) or --source PATH "
+                           "(a file in the server's TIKHON_DATA_DIR).")
+    if data is not None and not data.is_file():
         raise UsageProblem(f"--data {str(data)!r} is not a file; give the path of a CSV or Parquet table.")
     body: dict[str, Any] | None = _load_spec(spec) if spec is not None else None
     if body is None and (target or basis or feature or categorical):
@@ -340,7 +346,7 @@ def train(
             body["categorical"] = list(categorical)
     o = _opts(ctx)
     with _client(ctx) as tk:
-        job = tk.train(name, file=data, spec=body, promote=promote, min_improvement=min_improvement,
+        job = tk.train(name, file=data, source=source, spec=body, promote=promote, min_improvement=min_improvement,
                        idempotency_key=idempotency_key)
         if not wait:
             if o.json:

@@ -154,8 +154,9 @@ def test_train_wait_shows_progress_then_the_chosen_point(server, tmp_path):
 
 
 def test_retrain_reuses_the_live_spec_and_reports_the_if_better_decision(server, tmp_path):
-    url, _, _ = server
-    first, second = tmp_path / "a.csv", tmp_path / "b.csv"
+    url, _, settings = server
+    first, second = tmp_path / "a.csv", settings.data_dir / "next" / "b.csv"  # the second one on the server
+    second.parent.mkdir(parents=True, exist_ok=True)
     write_table(first, 200, seed=5)
     write_table(second, 200, seed=6)
     spec = tmp_path / "spec.json"
@@ -164,12 +165,13 @@ def test_retrain_reuses_the_live_spec_and_reports_the_if_better_decision(server,
     r = cli(url, "--json", "train", "pump-re", "--data", str(first), "--spec", str(spec), "--wait")
     assert r.returncode == 0, r.stderr
     assert json.loads(r.stdout)["job"]["version"] == 1
-    r = cli(url, "--json", "train", "pump-re", "--data", str(second), "--promote", "if_better", "--wait")
+    r = cli(url, "--json", "train", "pump-re", "--source", "next/b.csv", "--promote", "if_better", "--wait")
     assert r.returncode == 0, r.stderr
     done = json.loads(r.stdout)
     decision = done["job"]["decision"]
     assert decision["promote"] == "if_better" and decision["live_version"] == 1
     assert decision["went_live"] == (decision["new_cv_mean"] < decision["live_on_new_data"])
+    assert done["job"]["data"]["source"] == "next/b.csv"
     with Client(url) as tk:
         assert tk.version("pump-re", 2)["spec"]["cv"]["seed"] == 2  # the live version's spec, reused
 
@@ -194,6 +196,8 @@ def test_bad_usage_exits_2_with_one_line(server, tmp_path):
         (["train", "pump-x", "--data", str(data), "--target", "energy"], "target column 'energy'"),  # 422 answer
         (["train", "pump-x", "--data", str(data), "--target", "energy_kwh", "--basis", "cubic"], "--basis 'cubic'"),
         (["train", "pump-x", "--data", str(tmp_path / "missing.csv")], "is not a file"),
+        (["train", "pump-x", "--data", str(data), "--source", "a.csv"], "exactly one of --data"),
+        (["train", "pump-x", "--source", "../etc/passwd", "--target", "energy_kwh"], "'..'"),  # 422 from the server
         (["predict", "pump-x@zero", "--data", str(data)], "pump-x@zero"),
         (["predict", "no-such-model", "--data", str(data)], "no-such-model"),  # 404 answer
         (["show", "pump-x", "--bogus"], "--bogus"),
