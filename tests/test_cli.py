@@ -10,6 +10,7 @@ import json
 import os
 import re
 import select
+import socket
 import subprocess
 import sys
 
@@ -270,3 +271,29 @@ def test_predict_show_promote_history_prune_and_keys(server, tmp_path):
     assert r.returncode == 0 and "revoked" in r.stdout
     r = cli(url, "--json", "models")
     assert r.returncode == 0  # no active key left: the routes are open again (loopback only)
+
+
+def test_serve_refuses_an_open_network_bind_and_local_key_bootstrap(tmp_path):
+    """No key: `serve` refuses a non-loopback address in one line (exit 2). `keys create --local` writes the
+    first key into the catalog without a server; the store then verifies it."""
+    env = {k: v for k, v in os.environ.items() if not k.startswith("TIKHON_")}
+    env.update(TIKHON_STORE=str(tmp_path / "store"), TIKHON_DATA_DIR=str(tmp_path / "data"), TIKHON_LOG_LEVEL="warning")
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = str(s.getsockname()[1])
+    r = subprocess.run([sys.executable, "-m", "service.cli", "serve", "--host", "0.0.0.0", "--port", port],
+                       capture_output=True, text=True, env=env, timeout=120)
+    errors = [line for line in r.stderr.splitlines() if line.startswith("tikhon: error:")]
+    assert r.returncode == 2 and len(errors) == 1 and "tikhon keys create" in errors[0], r.stderr
+    assert "Traceback" not in r.stderr
+
+    r = subprocess.run([sys.executable, "-m", "service.cli", "--json", "keys", "create", "--local", "--scope", "admin",
+                        "--label", "bootstrap"], capture_output=True, text=True, env=env, timeout=120)
+    assert r.returncode == 0, r.stderr
+    made = json.loads(r.stdout)
+    from service.settings import Settings
+    from service.store import Store
+
+    with Store(Settings(store=tmp_path / "store", data_dir=tmp_path / "data")) as store:
+        found = store.keys.verify(made["secret"])
+    assert found is not None and found["key_id"] == made["key_id"] and found["scopes"] == ["admin"]
