@@ -13,7 +13,9 @@ While the process runs, the worker sends a heartbeat with the progress (done and
 being one basis setting × fold) every ``worker_heartbeat_s``. The heartbeat answer tells it when the job
 was cancelled; a ``Conflict`` tells it the job was taken away (its heartbeat came too late), and the
 work is dropped without recording anything. Jobs of a worker that died are put back in the queue by
-``requeue_stale`` (any worker calls it while idle), and failed after ``max_attempts`` claims.
+``requeue_stale`` (any worker calls it while idle), and failed after ``max_attempts`` claims. A re-run
+whose earlier attempt had already published (its worker died between publishing and recording the
+result) completes with that version instead of training again, so no version is left that no job claims.
 
 Out-of-core jobs (the request carries ``stream``, the resolved path of a large ``source`` file or a
 folder of Parquet files) are read by the training process itself, in row batches
@@ -51,7 +53,7 @@ from typing import Any
 
 import numpy as np
 
-from service.errors import BudgetExceeded, Cancelled, Conflict, TikhonError
+from service.errors import BudgetExceeded, Cancelled, Conflict, NotFound, TikhonError
 from service.settings import Settings
 
 log = logging.getLogger("tikhon.worker")
@@ -261,6 +263,11 @@ class Worker:
         request = job["request"] or {}
         s = self.settings
         log.info("job started", extra={"job_id": jid, "model": name, "attempt": job.get("attempts")})
+        if (job.get("attempts") or 1) > 1:  # a re-run: an earlier attempt may have published before dying
+            published = self._published_by(name, jid)
+            if published is not None:
+                self._resume(job, published)
+                return
         stream = request.get("stream")
         if not job.get("data_path") and not stream:
             self._finish(jid, "failed", problem=_problem(TikhonError(
@@ -377,6 +384,48 @@ class Worker:
             return
         self._finish(jid, "succeeded", version=version, decision=decision)
         log.info("job succeeded", extra={"job_id": jid, "model": name, "version": version, "went_live": go_live})
+
+    def _published_by(self, name: str, jid: str) -> int | None:
+        """The version an earlier attempt of job ``jid`` published, if any (versions record their job)."""
+        try:
+            rows = self.store.list_versions(name)
+        except NotFound:
+            return None
+        return next((int(r["version"]) for r in rows if r.get("job_id") == jid), None)
+
+    def _resume(self, job: dict[str, Any], version: int) -> None:
+        """Finish a job whose earlier attempt published ``version`` and then lost its worker (between the
+        publish and the job's "succeeded"). Training again would leave ``version`` behind as an orphan that
+        no job claims, so the job completes with it: the promotion is decided now unless it already
+        happened (the version, or a newer one, is live)."""
+        jid, name = job["id"], job["name"]
+        request = job["request"] or {}
+        note = f"resumed: an earlier attempt published version {version} and its worker was lost before recording it"
+        try:
+            live = self.store.live_version(name)
+            if live is not None and live >= version:
+                went = live == version
+                decision = {"promote": request.get("promote"), "version": version, "went_live": went, "resumed": True,
+                            "reason": f"{note}; " + ("it had already gone live" if went else
+                                                     f"the newer version {live} is live and stays live")}
+            else:
+                body = self.store.get_manifest(name, version).get("model") or {}
+                summary = body.get("cv_summary") or {}
+                outcome = {"metric": summary.get("metric"), "cv_mean": float(summary.get("mean")), "folds": None,
+                           "target": (body.get("spec") or {}).get("target")}
+                go_live, decision = decide(self.store, name, request, outcome, job.get("data_path"))
+                decision.update(version=version, resumed=True, reason=f"{note}; {decision['reason']}")
+                if go_live:
+                    self.store.set_live(name, version, actor=f"worker:{self.worker_id}"[:200],
+                                        reason=f"training job {jid}: {decision['reason']}",
+                                        details={k: v for k, v in decision.items() if k != "comparison"} | {"job_id": jid})
+                    if self.on_live_change is not None:
+                        self.on_live_change(name)
+        except TikhonError as err:
+            self._finish(jid, "failed", problem=_problem(err))
+            return
+        self._finish(jid, "succeeded", version=version, decision=decision)
+        log.info("job resumed", extra={"job_id": jid, "model": name, "version": version})
 
     def _finish(self, jid: str, state: str, **kw: Any) -> None:
         try:
