@@ -38,7 +38,7 @@ from .spec import TuneSpec, parse_spec
 from .summaries import Summary
 from .table import categorical_column, numeric_column
 from .tune import (PLOT_SAMPLE, Budget, TuneResult, _edge_warnings, _path, _select, _table_rows, basis_settings,
-                   check_budget, score_splits)
+                   check_budget, resolve_columns, score_splits)
 
 SAMPLE_SALT = 0x5A17
 PLOT_SALT = 0x9107
@@ -298,38 +298,6 @@ def _merge_final(a: _Final, b: _Final) -> _Final:
 
 
 # ---- the driver ----------------------------------------------------------------------------------------
-def _resolve_columns(spec: TuneSpec, schema: dict[str, str]) -> tuple[list[str], list[str]]:
-    if spec.target not in schema:
-        raise InvalidSpec(f"target column {spec.target!r} is not in the data; columns present: {sorted(schema)[:20]}",
-                          errors=[{"field": "target", "value": spec.target, "message": "unknown column"}])
-    special = {spec.target, *spec.categorical, spec.cv.group_by, spec.cv.order_by, spec.cv.row_key}
-    if spec.features is None:
-        features = [c for c, kind in schema.items() if kind == "number" and c not in special]
-    else:
-        unknown = [f for f in spec.features if f not in schema]
-        if unknown:
-            raise InvalidSpec(f"features {unknown} are not in the data; columns present: {sorted(schema)[:20]}",
-                              errors=[{"field": "features", "value": unknown, "message": "unknown column"}])
-        features = list(spec.features)
-    for field_name, col in (("categorical", c) for c in spec.categorical):
-        if col not in schema:
-            raise InvalidSpec(f"categorical column {col!r} is not in the data",
-                              errors=[{"field": field_name, "value": col, "message": "unknown column"}])
-    for field_name in ("group_by", "row_key"):
-        col = getattr(spec.cv, field_name)
-        if col and col not in schema:
-            raise InvalidSpec(f"cv.{field_name} column {col!r} is not in the data",
-                              errors=[{"field": f"cv.{field_name}", "value": col, "message": "unknown column"}])
-    if not features and not spec.categorical:
-        raise InvalidSpec("no feature columns: the data has no numeric column besides the target; "
-                          "name features or categorical columns")
-    columns = [spec.target, *features, *spec.categorical]
-    for extra in (spec.cv.group_by, spec.cv.row_key):
-        if extra and extra not in columns:
-            columns.append(extra)
-    return features, columns
-
-
 def check_stream_spec(spec: TuneSpec) -> None:
     """Refuse what out-of-core training cannot do, naming the field and the alternative."""
     if spec.cv.scheme not in ("kfold", "grouped"):
@@ -349,7 +317,7 @@ def check_partitions(schema: dict[str, str], spec: Any, n_rows: int, budget: Bud
     row count from the source's metadata or an estimate). Returns the grid counts."""
     spec = parse_spec(spec)
     check_stream_spec(spec)
-    features, _ = _resolve_columns(spec, schema)
+    features, _ = resolve_columns(spec, schema)
     return check_budget(spec, max(1, n_rows), len(features), budget)
 
 
@@ -408,7 +376,7 @@ def tune_partitions(partitions: Sequence[Partition], schema: dict[str, str], spe
     if not partitions:
         raise InvalidData("the source has no partitions (no files or no rows)")
     executor = executor or SerialExecutor()
-    features, columns = _resolve_columns(spec, schema)
+    features, columns = resolve_columns(spec, schema)
     ctx = _Ctx(spec, features, columns, spec.execution.batch_rows)
     K = spec.cv.folds
     parts = list(partitions)

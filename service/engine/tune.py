@@ -121,31 +121,8 @@ def prepare(data: Any, spec: TuneSpec) -> Prepared:
     n = len(next(iter(cols.values()))) if cols else 0
     if n == 0:
         raise InvalidData("the data has no rows; send at least a few rows per fold")
-    if spec.target not in cols:
-        raise InvalidSpec(f"target column {spec.target!r} is not in the data; columns present: {sorted(cols)[:20]}",
-                          errors=[{"field": "target", "value": spec.target, "message": "unknown column"}])
-    special = {spec.target, *spec.categorical}
-    if spec.cv.group_by:
-        special.add(spec.cv.group_by)
-    if spec.cv.order_by:
-        special.add(spec.cv.order_by)
-    if spec.features is None:
-        features = [c for c in numeric_names(cols) if c not in special]
-    else:
-        unknown = [f for f in spec.features if f not in cols]
-        if unknown:
-            raise InvalidSpec(f"features {unknown} are not in the data; columns present: {sorted(cols)[:20]}",
-                              errors=[{"field": "features", "value": unknown, "message": "unknown column"}])
-        features = list(spec.features)
-    unknown_cat = [c for c in spec.categorical if c not in cols]
-    if unknown_cat:
-        raise InvalidSpec(f"categorical columns {unknown_cat} are not in the data",
-                          errors=[{"field": "categorical", "value": unknown_cat, "message": "unknown column"}])
-    if not features and not spec.categorical:
-        raise InvalidSpec("no feature columns: the data has no numeric column besides the target; "
-                          "name features or categorical columns")
-    if not features and any(b.kind != "linear" for b in spec.bases):
-        raise InvalidSpec("polynomial and rbf bases need at least one numeric feature")
+    schema = {c: "number" if v.dtype.kind in "biuf" else "text" for c, v in cols.items()}
+    features, used = resolve_columns(spec, schema)
     y = numeric_column(cols, spec.target, "target")
     if np.ptp(y) == 0:
         raise InvalidData(f"target column {spec.target!r} is constant ({y[0]:g}); there is nothing to learn — "
@@ -156,27 +133,49 @@ def prepare(data: Any, spec: TuneSpec) -> Prepared:
     cat_block, _ = categories.encode(cat_cols) if cat_cols else (np.zeros((n, 0)), [])
     groups = order = None
     if spec.cv.scheme == "grouped":
-        if spec.cv.group_by not in cols:
-            raise InvalidSpec(f"cv.group_by column {spec.cv.group_by!r} is not in the data",
-                              errors=[{"field": "cv.group_by", "value": spec.cv.group_by, "message": "unknown column"}])
         groups = categorical_column(cols, spec.cv.group_by)
     if spec.cv.scheme == "time_ordered":
-        if spec.cv.order_by not in cols:
-            raise InvalidSpec(f"cv.order_by column {spec.cv.order_by!r} is not in the data",
-                              errors=[{"field": "cv.order_by", "value": spec.cv.order_by, "message": "unknown column"}])
         raw = cols[spec.cv.order_by]
         order = raw if raw.dtype.kind in "biufM" else np.asarray(raw).astype(str)
-    keys = None
-    if spec.cv.row_key:
-        if spec.cv.row_key not in cols:
-            raise InvalidSpec(f"cv.row_key column {spec.cv.row_key!r} is not in the data",
-                              errors=[{"field": "cv.row_key", "value": spec.cv.row_key, "message": "unknown column"}])
-        keys = cols[spec.cv.row_key]
-    used = [spec.target, *features, *spec.categorical]
-    for extra in (spec.cv.group_by, spec.cv.order_by, spec.cv.row_key):
-        if extra and extra not in used:
-            used.append(extra)
+    keys = cols[spec.cv.row_key] if spec.cv.row_key else None
     return Prepared(cols, features, X, y, categories, cat_block, groups, order, used, keys)
+
+
+def resolve_columns(spec: TuneSpec, schema: dict[str, str]) -> tuple[list[str], list[str]]:
+    """(features, every column used) for a table whose columns are ``schema`` (name → "number" or
+    "text"). The default features are all numeric columns that have no other role."""
+    def unknown(field_name: str, value: Any, what: str) -> InvalidSpec:
+        return InvalidSpec(f"{what} {value!r} {'are' if isinstance(value, list) else 'is'} not in the data; "
+                           f"columns present: {sorted(schema)[:20]}",
+                           errors=[{"field": field_name, "value": value, "message": "unknown column"}])
+
+    if spec.target not in schema:
+        raise unknown("target", spec.target, "target column")
+    special = {spec.target, *spec.categorical, spec.cv.group_by, spec.cv.order_by, spec.cv.row_key}
+    if spec.features is None:
+        features = [c for c, kind in schema.items() if kind == "number" and c not in special]
+    else:
+        missing = [f for f in spec.features if f not in schema]
+        if missing:
+            raise unknown("features", missing, "features")
+        features = list(spec.features)
+    missing = [c for c in spec.categorical if c not in schema]
+    if missing:
+        raise unknown("categorical", missing, "categorical columns")
+    for field_name in ("group_by", "order_by", "row_key"):
+        col = getattr(spec.cv, field_name)
+        if col and col not in schema:
+            raise unknown(f"cv.{field_name}", col, f"cv.{field_name} column")
+    if not features and not spec.categorical:
+        raise InvalidSpec("no feature columns: the data has no numeric column besides the target; "
+                          "name features or categorical columns")
+    if not features and any(b.kind != "linear" for b in spec.bases):
+        raise InvalidSpec("polynomial and rbf bases need at least one numeric feature")
+    columns = [spec.target, *features, *spec.categorical]
+    for extra in (spec.cv.group_by, spec.cv.order_by, spec.cv.row_key):
+        if extra and extra not in columns:
+            columns.append(extra)
+    return features, columns
 
 
 def basis_settings(spec: TuneSpec, Xs: np.ndarray, keys: np.ndarray | None = None,
