@@ -247,6 +247,35 @@ def test_rendered_figures_are_reused_and_revalidated(trained):
     assert httpx.get(f"{base}/v1/models/pump-plot/versions/1/plots/cv").content != a.content
 
 
+def test_concurrent_requests_get_the_same_figure(trained):
+    base, _ = trained
+    from concurrent.futures import ThreadPoolExecutor
+
+    url = f"{base}/v1/models/pump-net/versions/1/plots/residuals"
+    with ThreadPoolExecutor(8) as pool:
+        answers = list(pool.map(lambda _: httpx.get(url, timeout=120), range(8)))
+    assert [a.status_code for a in answers] == [200] * 8
+    assert len({a.content for a in answers}) == 1
+
+
+def test_same_inputs_give_the_same_bytes(trained):
+    _, store = trained
+    body = plots.engine_body(store.get_manifest("pump-plot", 1))
+    a = plots.render(plots.cv_figure(body), "svg", title="t", description="d")
+    b = plots.render(plots.cv_figure(body), "svg", title="t", description="d")
+    assert a == b  # no date and no random ids in the SVG, so an ETag stays valid across processes
+    assert plots.render(plots.cv_figure(body), "png", title="t", description="d") == \
+        plots.render(plots.cv_figure(body), "png", title="t", description="d")
+
+
+def test_format_values_are_documented(trained):
+    base, _ = trained
+    doc = httpx.get(f"{base}/openapi.json").json()
+    params = doc["paths"]["/v1/models/{name}/versions/{version}/plots/cv"]["get"]["parameters"]
+    fmt = next(p for p in params if p["name"] == "format")
+    assert fmt["schema"]["enum"] == ["svg", "png"] and fmt["schema"]["default"] == "svg"
+
+
 def test_plot_cache_is_bounded():
     from service.api.routes.plots import PlotCache
 

@@ -24,7 +24,8 @@ router = APIRouter(prefix="/v1", tags=["plots"])
 
 NamePath = Path(..., description="Model name.")
 VersionPath = Path(..., ge=1, description="Version number (1, 2, ...).")
-FormatQuery = Query("svg", description="Image format: 'svg' (default, text kept as text) or 'png'.")
+FormatQuery = Query("svg", description="Image format: 'svg' (default, text kept as text) or 'png'.",
+                    json_schema_extra={"enum": list(plots.FORMATS)})
 
 _IMAGE_RESPONSES = {
     200: {"description": "The figure.", "content": {"image/svg+xml": {}, "image/png": {}}},
