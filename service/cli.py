@@ -65,8 +65,10 @@ def _client(ctx: typer.Context) -> Client:
     return Client(o.url, key=o.key, timeout=o.timeout)
 
 
-_out = Console(highlight=False, soft_wrap=True)
-_err = Console(stderr=True, highlight=False, soft_wrap=True)
+# On a terminal rich fits tables to its width; into a pipe or a log file they may be as wide as they need
+# (up to 200 columns) instead of being cut at rich's default of 80.
+_out = Console(highlight=False, soft_wrap=True, width=None if sys.stdout.isatty() else 200)
+_err = Console(stderr=True, highlight=False, soft_wrap=True, width=None if sys.stderr.isatty() else 200)
 
 
 def _print_json(value: Any) -> None:
@@ -391,11 +393,14 @@ def jobs(
     if _opts(ctx).json:
         _print_json(items)
         return
-    t = Table("job", "model", "state", "progress", "version", "created")
+    t = Table(box=None, pad_edge=False)
+    t.add_column("job", no_wrap=True, min_width=32)  # full ids: they are copied into 'tikhon job' and 'cancel'
+    for title in ("model", "state", "progress", "version", "created (UTC)"):
+        t.add_column(title, no_wrap=True)
     for j in items:
         p = j.get("progress") or {}
         t.add_row(j["id"], j["model"], j["state"], f"{p.get('done', 0)}/{p.get('total') or '?'}",
-                  str(j.get("version") or ""), str(j.get("created_at") or "")[:19])
+                  str(j.get("version") or ""), str(j.get("created_at") or "")[5:16].replace("T", " "))
     _out.print(t)
 
 
