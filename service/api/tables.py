@@ -20,7 +20,7 @@ import pyarrow as pa
 import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
-from service.errors import BudgetExceeded, InvalidData
+from service.errors import BudgetExceeded, InvalidData, StorageFailure
 
 Table = dict[str, np.ndarray]
 
@@ -264,12 +264,20 @@ def to_arrow(table: Table) -> pa.Table:
 
 def stage(table: Table, path: Path) -> Path:
     """Write ``table`` as Parquet at ``path`` atomically (temporary name, fsync, rename)."""
-    path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_name(path.name + ".part")
-    pq.write_table(to_arrow(table), tmp)
-    with open(tmp, "rb") as fh:
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        pq.write_table(to_arrow(table), tmp)
+        with open(tmp, "rb") as fh:
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except OSError as exc:  # disk full, permissions: nothing half-written stays behind
+        tmp.unlink(missing_ok=True)
+        reason = getattr(exc, "strerror", None) or " ".join(str(exc).split())[:200]
+        raise StorageFailure(
+            f"the training data could not be staged under {path.parent} ({reason}); nothing was stored and no job "
+            "was created. Free space in the store folder (TIKHON_STORE) and submit again."
+        ) from None
     return path
 
 
