@@ -123,11 +123,13 @@ class _Child:
 
     code = ""
 
-    def __init__(self, settings: dict[str, Any], log_path: Path):
+    def __init__(self, settings: dict[str, Any], log_path: Path, *, prelude: str = "", env: dict | None = None):
+        """``prelude``: Python run before the entry point (a test's fault hook); ``env``: extra variables."""
         self.settings = settings
         self.log_path = log_path
         self._log = open(log_path, "ab")
-        self.proc = subprocess.Popen([sys.executable, "-c", self.code], env=settings_env(settings), cwd=str(REPO),
+        self.proc = subprocess.Popen([sys.executable, "-c", prelude + "\n" + self.code],
+                                     env={**settings_env(settings), **(env or {})}, cwd=str(REPO),
                                      stdout=self._log, stderr=subprocess.STDOUT, start_new_session=True)
 
     @property
@@ -137,11 +139,13 @@ class _Child:
     def alive(self) -> bool:
         return self.proc.poll() is None
 
-    def kill(self) -> None:
-        """SIGKILL the process (and, being a session leader, its training children)."""
-        if self.alive():
-            with contextlib.suppress(ProcessLookupError):
+    def kill(self, group: bool = True) -> None:
+        """SIGKILL the process; with ``group``, also the processes it started (its training children)."""
+        with contextlib.suppress(ProcessLookupError):
+            if group:
                 os.killpg(self.proc.pid, signal.SIGKILL)
+            else:
+                os.kill(self.proc.pid, signal.SIGKILL)
         self.proc.wait(30)
 
     def stop(self) -> None:
@@ -172,9 +176,9 @@ class ServerProcess(_Child):
             "from service.api.server import run\n"
             "run(Settings())\n")
 
-    def __init__(self, settings: dict[str, Any], log_path: Path):
+    def __init__(self, settings: dict[str, Any], log_path: Path, **kw: Any):
         settings = {**settings, "port": settings.get("port") or free_port()}
-        super().__init__(settings, log_path)
+        super().__init__(settings, log_path, **kw)
         self.base = f"http://{LOOPBACK}:{settings['port']}"
 
     def wait_ready(self, deadline_s: float = 90.0) -> "ServerProcess":
