@@ -222,15 +222,22 @@ def cv_figure(body: dict[str, Any], *, heading: str = "") -> Figure:
     positives = [s["mean"][np.isfinite(s["mean"]) & (s["mean"] > 0)] for s in series]
     allv = np.concatenate(positives) if positives else np.array([])
     use_log_y = allv.size > 0 and allv.max() / allv.min() > 4
+    # Elastic net: colour and marker name the basis setting, the line style names the l1 ratio. Otherwise each
+    # series has its own colour, marker and line style.
+    bases = list(dict.fromkeys(_key(s["basis"]) for s in series))
+    ratios = list(dict.fromkeys(s["l1_ratio"] for s in series))
+    by_ratio = len(ratios) > 1
     for i, s in enumerate(series):
-        colour = PALETTE[i % len(PALETTE)]
+        b = bases.index(_key(s["basis"])) if by_ratio else i
+        style = LINESTYLES[(ratios.index(s["l1_ratio"]) if by_ratio else i) % len(LINESTYLES)]
+        colour = PALETTE[b % len(PALETTE)]
         x, m, se = s["strengths"], s["mean"], s["se"]
         ok = np.isfinite(m)
-        band = ax.fill_between(x[ok], (m - se)[ok], (m + se)[ok], color=colour, alpha=0.18, linewidth=0,
-                               label="_nolegend_")
+        band = ax.fill_between(x[ok], (m - se)[ok], (m + se)[ok], color=colour, alpha=0.18 if not by_ratio else 0.1,
+                               linewidth=0, label="_nolegend_")
         band.set_gid(f"cv-band-{i}")
-        (line,) = ax.plot(x[ok], m[ok], color=colour, linestyle=LINESTYLES[i % len(LINESTYLES)],
-                          marker=MARKERS[i % len(MARKERS)], markersize=3.6, markevery=max(1, int(ok.sum()) // 10),
+        (line,) = ax.plot(x[ok], m[ok], color=colour, linestyle=style,
+                          marker=MARKERS[b % len(MARKERS)], markersize=3.6, markevery=max(1, int(ok.sum()) // 10),
                           linewidth=1.5, label=s["label"])
         line.set_gid(f"cv-series-{i}")
     ax.set_xscale("log")
@@ -268,7 +275,8 @@ def cv_figure(body: dict[str, Any], *, heading: str = "") -> Figure:
                          label=f"lowest mean error:\n{chosen_text(best)}")
         tri.set_gid("best-mean-point")
     leg = ax.legend(fontsize=7.8, frameon=True, facecolor=PAPER, edgecolor=GRID, loc="upper left",
-                    bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0, title="basis setting", title_fontsize=8)
+                    bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0,
+                    title="basis setting" + (" (line style: l1 ratio)" if by_ratio else ""), title_fontsize=8)
     leg.set_gid("cv-legend")
     summary = body.get("cv_summary") or {}
     splits = summary.get("splits")
@@ -300,7 +308,9 @@ def path_figure(body: dict[str, Any], strengths: np.ndarray, coefficients: np.nd
     top = [int(j) for j in np.argsort(-size)[:label_top] if size[j] > 0]
 
     fig, ax = _new_figure(8.6, 4.9)
-    _style(ax, title=heading or f"Regularization path of {basis_label(chosen.get('basis'))}")
+    ratio = (chosen.get("penalty") or {}).get("l1_ratio")
+    where = basis_label(chosen.get("basis")) + (f", l1 ratio {float(ratio):g}" if ratio is not None else "")
+    _style(ax, title=heading or f"Regularization path of {where}")
     for j in range(coefficients.shape[1]):
         if j in top:
             k = top.index(j)
