@@ -136,13 +136,21 @@ def test_cv_series_and_bands_match_the_table(trained):
 
 
 def test_elastic_net_has_one_series_per_setting_and_l1_ratio(trained):
-    base, _ = trained
+    base, store = trained
     cv = httpx.get(f"{base}/v1/models/pump-net/versions/1/cv").json()
     combos = {(tuple(sorted(r["basis"].items())), r["l1_ratio"]) for r in cv["table"]}
     assert len(combos) == 2 * 2
     _, root, text = _svg(base, "/v1/models/pump-net/versions/1/plots/cv")
     assert len(_ids(root, "cv-series-")) == 4
     assert "l1 ratio 0.5" in text and "l1 ratio 1" in text
+    # Read in greyscale: within a basis setting the l1 ratios differ by line style; across settings by marker.
+    fig = plots.cv_figure(plots.engine_body(store.get_manifest("pump-net", 1)))
+    lines = [ln for ln in fig.axes[0].get_lines() if (ln.get_gid() or "").startswith("cv-series-")]
+    for basis in ("linear", "polynomial degree 2"):
+        mine = [ln for ln in lines if ln.get_label().startswith(basis + ",")]
+        assert len(mine) == 2 and len({ln.get_linestyle() for ln in mine}) == 2
+        assert len({ln.get_marker() for ln in mine}) == 1
+    assert len({ln.get_marker() for ln in lines}) == 2
 
 
 def test_path_figure_marks_the_chosen_strength_and_names_the_largest_terms(trained):
