@@ -280,8 +280,11 @@ def model_page(name: str, model: dict[str, Any], versions: list[dict[str, Any]],
             '<section class="panel ok" id="warnings"><h2>Warnings</h2><p>None: the chosen point lies inside the grid '
             "and the fit raised no concern.</p></section>"
         )
+        api = f"/v1/models/{qn}/versions/{selected}"
+        raw = (f'<p class="muted small">As JSON: <a href="{esc(api)}">metadata</a> · <a href="{esc(api)}/cv">CV table</a>'
+               f' · <a href="{esc(api)}/path">regularization path</a></p>')
         chosen_panel = (f'<section class="panel chosen" id="chosen"><h2>Chosen point of v{esc(selected)}</h2>'
-                        f'<p class="headline">{esc(chosen_text(chosen))}</p>{_definition(facts)}</section>')
+                        f'<p class="headline">{esc(chosen_text(chosen))}</p>{_definition(facts)}{raw}</section>')
         base = f"/v1/models/{qn}/versions/{selected}/plots"
         figures = (
             '<section class="figures">'

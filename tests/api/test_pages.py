@@ -95,6 +95,10 @@ def test_model_page_shows_choice_warnings_figures_and_history(open_service):
     assert "energy_kwh (kWh)" in r.text and "flow_lps (L/s)" in r.text
     # v2's grid: 5 strengths from 100 to 10^4, bases linear and polynomial 2 and 3 (the fixture's spec).
     assert "λ from 100 to 1e+04 (5 values) × 3 basis settings" in r.text
+    links = [a.get("href") for t, a in parse(r.text).tags if t == "a"]
+    for href in ("/v1/models/pump-page/versions/2", "/v1/models/pump-page/versions/2/cv",
+                 "/v1/models/pump-page/versions/2/path"):
+        assert href in links and httpx.get(f"{base}{href}").status_code == 200
     imgs = [a["src"] for t, a in parse(r.text).tags if t == "img"]
     assert imgs == [f"/v1/models/pump-page/versions/2/plots/{k}" for k in ("cv", "path", "residuals")] + [
         "/v1/models/pump-page/plots/history"]
