@@ -19,9 +19,9 @@ DEMO_SPEC = {
     "features": ["flow_lps", "head_m"],
     "categorical": ["station"],
     "units": {"energy_kwh": "kWh", "flow_lps": "L/s", "head_m": "m"},
-    "bases": [{"kind": "linear"}, {"kind": "polynomial", "degrees": [2, 3, 4]},
+    "bases": [{"kind": "linear"}, {"kind": "polynomial", "degrees": [2, 3, 4, 5, 6]},
               {"kind": "rbf", "widths": [0.5, 1.0, 2.0], "centers": 60}],
-    "penalty": {"kind": "l2", "strengths": {"min": 1e-4, "max": 1e3, "count": 30}},
+    "penalty": {"kind": "l2", "strengths": {"min": 1e-6, "max": 1e3, "count": 30}},
     "cv": {"scheme": "kfold", "folds": 5, "seed": 0},
     "selection": {"metric": "rmse", "rule": "best"},
 }
@@ -41,8 +41,8 @@ def pump_stations(n: int = 3000, seed: int = 0, month: int = 0, extra_features: 
     temp = 9.0 + 6.0 * rng.random(n) + 0.1 * month
     wear = 1.0 - 0.03 * month
     eta_max = np.linspace(0.78, 0.70, k)[st] * wear
-    eta = eta_max * (1.0 - 0.55 * ((flow - bep) / bep) ** 2) * (1.0 - 0.002 * (temp - 12.0))
-    eta = np.clip(eta, 0.25, 0.9)
+    eta = eta_max * (1.0 - 0.3 * ((flow - bep) / bep) ** 2) * (1.0 - 0.002 * (temp - 12.0))
+    eta = np.clip(eta, 0.45, 0.9)
     power_kw = RHO_G * (flow / 1000.0) * head / eta / 1000.0
     energy = power_kw * 1.0 + rng.normal(0.0, 0.6, n)  # one hour of running
     out = {

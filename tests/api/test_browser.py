@@ -43,7 +43,7 @@ def _browser_or_skip():
 
 def _demo_request(n: int, seed: int, *, full: bool) -> dict:
     """The demo scenario: a small grid for the first version, the demo's whole grid for the job followed on
-    the page (7 basis settings × 5 folds, so its progress moves in 35 steps)."""
+    the page (9 basis settings × 5 folds, so its progress moves in 45 steps)."""
     cols = pump_stations(n, seed=seed)
     rows = [dict(zip(cols, vals)) for vals in zip(*(cols[k].tolist() for k in cols))]
     spec = copy.deepcopy(DEMO_SPEC)
