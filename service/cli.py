@@ -736,6 +736,42 @@ def show(
 
 
 @app.command()
+def plot(
+    ctx: typer.Context,
+    ref: Annotated[str, typer.Argument(metavar="NAME[@VERSION]", help="Model (its live version) or one version.")],
+    kind: Annotated[str, typer.Option(help="cv (error against strength), path (coefficients against strength), "
+                                      "residuals (out of fold), or history (every version).")] = "cv",
+    out: Annotated[Optional[Path], typer.Option(help="File to write, .svg or .png [default: NAME-vVERSION-KIND.svg].")] = None,
+) -> None:
+    """Save a figure of a version (or the model's history) as SVG or PNG."""
+    name, version = parse_ref(ref)
+    if kind not in ("cv", "path", "residuals", "history"):
+        raise UsageProblem(f"--kind {kind!r} is not offered; use cv, path, residuals or history.")
+    fmt = (out.suffix.lower().lstrip(".") if out is not None else "svg") or "svg"
+    if fmt not in ("svg", "png"):
+        raise UsageProblem(f"--out {str(out)!r} must end in .svg or .png (the format follows the suffix).")
+    with _client(ctx) as tk:
+        if kind == "history":
+            data = tk.plot_history(name, format=fmt)
+            target = out or Path(f"{name}-history.{fmt}")
+        else:
+            if version is None:
+                version = tk.model(name).get("live_version")
+                if version is None:
+                    raise UsageProblem(f"model {name!r} has no live version; name one: {name}@VERSION.")
+            data = tk.plot(name, version, kind, format=fmt)
+            target = out or Path(f"{name}-v{version}-{kind}.{fmt}")
+    tmp = target.with_name(target.name + ".part")
+    target.parent.mkdir(parents=True, exist_ok=True)
+    tmp.write_bytes(data)
+    os.replace(tmp, target)
+    if _opts(ctx).json:
+        _print_json({"file": str(target), "bytes": len(data), "model": name, "version": version, "kind": kind})
+    else:
+        _out.print(f"wrote {target} ({len(data)} bytes)")
+
+
+@app.command()
 def promote(
     ctx: typer.Context,
     name: Annotated[str, typer.Argument(help="Model name.")],

@@ -247,6 +247,16 @@ def test_predict_show_promote_history_prune_and_keys(server, tmp_path):
     assert r.returncode == 0, r.stderr
     assert json.loads(r.stdout)["predictions"] == ref["predictions"]
 
+    r = cli(url, "--json", "plot", "pump-ops@2", "--kind", "path", "--out", str(tmp_path / "path.png"))
+    assert r.returncode == 0, r.stderr
+    assert (tmp_path / "path.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (ISO/IEC 15948)
+    with Client(url) as tk:
+        assert (tmp_path / "path.png").read_bytes() == tk.plot_path("pump-ops", 2, format="png")
+    r = cli(url, "plot", "pump-ops", "--kind", "history", "--out", str(tmp_path / "h.svg"))
+    assert r.returncode == 0 and b"<svg" in (tmp_path / "h.svg").read_bytes()[:400]
+    r = cli(url, "plot", "pump-ops", "--kind", "bars")
+    assert r.returncode == 2 and "--kind 'bars'" in r.stderr
+
     r = cli(url, "show", "pump-ops@3")
     assert r.returncode == 0 and "pump-ops version 3" in r.stdout and "trained on" in r.stdout
     r = cli(url, "promote", "pump-ops", "3", "--reason", "operator check of version 3")
