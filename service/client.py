@@ -24,11 +24,65 @@ import json
 import os
 import time
 from pathlib import Path
-from typing import Any, Callable, Iterable, Mapping, Sequence
+from typing import Any, Callable, Iterable, Mapping, Sequence, TypedDict
 
 import httpx
 
-__all__ = ["Client", "ServiceError", "FINAL_STATES", "DEFAULT_URL"]
+__all__ = ["Client", "ServiceError", "FINAL_STATES", "DEFAULT_URL", "Job", "Progress", "Prediction", "PredictAnswer",
+           "ModelBlock", "ApiKey"]
+
+
+# Shapes of the main answers, for editors and type checkers (the values are the decoded JSON; fields the
+# server adds later are kept, these name the ones a caller relies on).
+class Progress(TypedDict):
+    done: int
+    total: int | None
+
+
+class Job(TypedDict, total=False):
+    id: str
+    model: str
+    state: str  # queued | running | succeeded | failed | cancelled
+    progress: Progress
+    attempts: int
+    created_at: str
+    started_at: str | None
+    finished_at: str | None
+    version: int | None
+    promote: str
+    decision: dict[str, Any] | None  # went_live, reason, metric, new_cv_mean, live_on_new_data, ...
+    problem: dict[str, Any] | None  # RFC 9457 problem of a failed job
+    links: dict[str, str]
+
+
+class ModelBlock(TypedDict):
+    name: str
+    version: int
+    created_at: str
+    basis: dict[str, Any]
+    penalty: dict[str, Any]
+    cv: dict[str, Any]
+
+
+class Prediction(TypedDict, total=False):
+    value: float
+    interval: list[float | None]  # [lower, upper], present when an interval level was asked for
+    warnings: list[str]
+
+
+class PredictAnswer(TypedDict):
+    model: ModelBlock
+    predictions: list[Prediction]
+
+
+class ApiKey(TypedDict, total=False):
+    key_id: str
+    scopes: list[str]
+    label: str
+    created_at: str
+    revoked_at: str | None
+    active: bool
+    secret: str  # only in the answer that created the key
 
 DEFAULT_URL = "http://127.0.0.1:8000"
 FINAL_STATES = ("succeeded", "failed", "cancelled")
@@ -295,7 +349,7 @@ class Client:
         columns: Mapping[str, Sequence[Any]] | None = None, csv: str | None = None, source: str | None = None,
         spec: Mapping[str, Any] | None = None, promote: str = "if_better", min_improvement: float = 0.0,
         idempotency_key: str | None = None,
-    ) -> dict[str, Any]:
+    ) -> Job:
         """Submit a training job and return it (state ``queued``). Give the data as exactly one of:
 
         * ``file``: a local CSV or Parquet file, uploaded;
@@ -334,23 +388,23 @@ class Client:
     submit = train
 
     @_route("GET", "/v1/trainings/{job_id}")
-    def training(self, job_id: str | Mapping[str, Any]) -> dict[str, Any]:
+    def training(self, job_id: str | Mapping[str, Any]) -> Job:
         """One training job: state, progress (done/total units), version, decision, problem."""
         return self._send("GET", f"/v1/trainings/{_seg(_job_id(job_id))}")
 
     @_route("GET", "/v1/trainings")
-    def trainings(self, model: str | None = None) -> list[dict[str, Any]]:
+    def trainings(self, model: str | None = None) -> list[Job]:
         """Training jobs, newest first; ``model`` keeps only one model's jobs."""
         params = {"model": model} if model is not None else None
         return self._send("GET", "/v1/trainings", params=params)["trainings"]
 
     @_route("DELETE", "/v1/trainings/{job_id}")
-    def cancel(self, job_id: str | Mapping[str, Any]) -> dict[str, Any]:
+    def cancel(self, job_id: str | Mapping[str, Any]) -> Job:
         """Cancel a queued or running job (a finished job gives a 409 ``ServiceError``)."""
         return self._send("DELETE", f"/v1/trainings/{_seg(_job_id(job_id))}")
 
-    def wait(self, job: str | Mapping[str, Any], on_progress: Callable[[dict[str, Any]], None] | None = None, *,
-             poll: float = 0.5, timeout: float | None = None) -> dict[str, Any]:
+    def wait(self, job: str | Mapping[str, Any], on_progress: Callable[[Job], None] | None = None, *,
+             poll: float = 0.5, timeout: float | None = None) -> Job:
         """Poll a job until it is ``succeeded``, ``failed`` or ``cancelled`` and return its final state.
 
         ``on_progress(job)`` is called with every polled state (including the last). A failed job is
@@ -379,7 +433,7 @@ class Client:
         columns: Mapping[str, Sequence[Any]] | None = None, csv: str | None = None,
         file: str | os.PathLike | None = None, interval: float | None = None, version: int | None = None,
         as_csv: bool = False,
-    ) -> dict[str, Any] | str:
+    ) -> PredictAnswer | str:
         """Predict with the live version (or with ``version`` pinned). Inputs: exactly one of ``rows``,
         ``columns``, ``csv`` text or a CSV/JSON ``file``. ``interval`` (e.g. 0.9) adds CV+ intervals.
 
@@ -395,12 +449,12 @@ class Client:
         self, name: str, version: int, *, rows: Sequence[Mapping[str, Any]] | None = None,
         columns: Mapping[str, Sequence[Any]] | None = None, csv: str | None = None,
         file: str | os.PathLike | None = None, interval: float | None = None, as_csv: bool = False,
-    ) -> dict[str, Any] | str:
+    ) -> PredictAnswer | str:
         """Predict with one pinned version (see ``predict``)."""
         return self._predict(f"/v1/models/{_seg(name)}/versions/{_num(version)}/predict",
                              rows, columns, csv, file, interval, as_csv)
 
-    def _predict(self, url: str, rows, columns, csv, file, interval, as_csv) -> dict[str, Any] | str:
+    def _predict(self, url: str, rows, columns, csv, file, interval, as_csv) -> PredictAnswer | str:
         kind, value = _one_of("predict()", rows=rows, columns=columns, csv=csv, file=file)
         if kind == "file":
             kind, value = _read_input_file(Path(value))
@@ -419,18 +473,18 @@ class Client:
 
     # -- API keys -------------------------------------------------------------------------------------
     @_route("GET", "/v1/keys")
-    def keys(self) -> list[dict[str, Any]]:
+    def keys(self) -> list[ApiKey]:
         """Every API key (id, scopes, label, created, revoked); secrets are never listed."""
         return self._send("GET", "/v1/keys")["keys"]
 
     @_route("POST", "/v1/keys")
-    def create_key(self, scopes: str | Iterable[str], label: str = "") -> dict[str, Any]:
+    def create_key(self, scopes: str | Iterable[str], label: str = "") -> ApiKey:
         """Make an API key (admin scope). The answer's ``secret`` is shown only this once."""
         scopes = [scopes] if isinstance(scopes, str) else list(scopes)
         return self._send("POST", "/v1/keys", json={"scopes": scopes, "label": label})
 
     @_route("DELETE", "/v1/keys/{key_id}")
-    def revoke_key(self, key_id: str) -> dict[str, Any]:
+    def revoke_key(self, key_id: str) -> ApiKey:
         """Revoke an API key (idempotent); it stops working at once on this server, within
         TIKHON_AUTH_CACHE_S on the others."""
         return self._send("DELETE", f"/v1/keys/{_seg(key_id)}")
