@@ -157,8 +157,12 @@ def _stop(proc: subprocess.Popen) -> None:
             proc.wait(timeout=30)
 
 
-@pytest.mark.slow
-def test_first_command_serves_the_demo_model_from_a_fresh_environment(fresh):
+@pytest.fixture(scope="module")
+def demo(fresh):
+    """The README's first command, unchanged, running in the fresh environment on a free loopback port
+    (TIKHON_PORT); yields (url, source copy, environment) once /readyz answers 200."""
+    import httpx
+
     src, env = fresh
     port = _free_port()
     url = f"http://127.0.0.1:{port}"
@@ -168,8 +172,6 @@ def test_first_command_serves_the_demo_model_from_a_fresh_environment(fresh):
         proc = subprocess.Popen(["bash", "-c", setup_commands()[0]], cwd=src, env=env, stdout=out,
                                 stderr=subprocess.STDOUT, start_new_session=True)
     try:
-        import httpx
-
         # Wait for readiness: the install, the demo training and the start-up. A bound on waiting for
         # an event, not a timed assertion; it fails only if the server never becomes ready.
         deadline = time.monotonic() + 1800
@@ -184,46 +186,124 @@ def test_first_command_serves_the_demo_model_from_a_fresh_environment(fresh):
             if time.monotonic() > deadline:
                 pytest.fail(f"the server never became ready:\n{log.read_text()[-4000:]}")
             time.sleep(1)
-
-        from service.client import Client
-
-        with Client(url) as tk:
-            rows = [{"station": "mill-lane", "flow_lps": 70.0, "head_m": 35.0},
-                    {"station": "mill-lane", "flow_lps": 400.0, "head_m": 35.0}]
-            answer = tk.predict("pump-energy", rows=rows, interval=0.9)
-            meta = tk.version("pump-energy", 1)
-        model = answer["model"]
-        assert model["name"] == "pump-energy" and model["version"] == 1 and model["created_at"]
-        assert model["basis"] == meta["chosen"]["basis"] and model["penalty"] == meta["chosen"]["penalty"]
-        assert model["cv"]["metric"] == "rmse" and model["cv"]["folds"] == 5
-        inside, outside = answer["predictions"]
-        lo, hi = inside["interval"]
-        assert lo < inside["value"] < hi and inside["warnings"] == []
-        # The demo's noise is N(0, 0.6²) (service/demo.py); a 90 % interval of a good model is about
-        # 2 × 1.645 × (its CV rmse) wide (1.645: the standard normal 95th percentile, from standard
-        # normal tables), and no narrower than the noise alone allows.
-        width = hi - lo
-        assert 0.8 * 2 * 1.645 * 0.6 < width < 1.25 * 2 * 1.645 * model["cv"]["mean"], (width, model["cv"])
-        assert any("flow_lps" in w for w in outside["warnings"]), outside  # 400 L/s: outside the training range
-        next_month = src / "data" / "demo" / "pump-stations-next-month.csv"
-        assert next_month.read_text().startswith("station,hour,flow_lps,head_m,energy_kwh\n")
-
-        # The README's Python tour, as written, against this server.
-        tour = python_tour().replace(DEMO_URL, url)
-        run = subprocess.run(["python", "-c", tour], cwd=src, env=env, capture_output=True, text=True, timeout=900)
-        assert run.returncode == 0, run.stderr[-4000:]
-        assert "422" in run.stdout and "head_m" in run.stdout, run.stdout
-        with Client(url) as tk:
-            history = [(h["from_version"], h["to_version"]) for h in tk.history("pump-energy")]
-        assert history == [(None, 1), (1, 2)]
-
-        # The scheduled retrain of the README, through the installed console script.
-        retrain = subprocess.run(["tikhon", "train", "pump-energy", "--data", str(next_month), "--promote", "if_better",
-                                  "--wait"], cwd=src, env=env, capture_output=True, text=True, timeout=900)
-        assert retrain.returncode == 0, retrain.stderr
-        assert "pump-energy version 3" in retrain.stdout and "live" in retrain.stdout
+        yield url, src, env
     finally:
         _stop(proc)
+
+
+@pytest.mark.slow
+def test_first_command_serves_the_demo_model_from_a_fresh_environment(demo):
+    from service.client import Client
+
+    url, src, _ = demo
+    with Client(url) as tk:
+        rows = [{"station": "mill-lane", "flow_lps": 70.0, "head_m": 35.0},
+                {"station": "mill-lane", "flow_lps": 400.0, "head_m": 35.0}]
+        answer = tk.predict("pump-energy", version=1, rows=rows, interval=0.9)
+        meta = tk.version("pump-energy", 1)
+    model = answer["model"]
+    assert model["name"] == "pump-energy" and model["version"] == 1 and model["created_at"]
+    assert model["basis"] == meta["chosen"]["basis"] and model["penalty"] == meta["chosen"]["penalty"]
+    assert model["cv"]["metric"] == "rmse" and model["cv"]["folds"] == 5
+    assert meta["job_id"] and meta["spec"]["target"] == "energy_kwh"  # trained by a job, not written directly
+    inside, outside = answer["predictions"]
+    lo, hi = inside["interval"]
+    assert lo < inside["value"] < hi and inside["warnings"] == []
+    # The demo's noise is N(0, 0.6²) (service/demo.py); a 90 % interval of a good model is about
+    # 2 × 1.645 × (its CV rmse) wide (1.645: the standard normal 95th percentile, from standard
+    # normal tables), and no narrower than the noise alone allows.
+    width = hi - lo
+    assert 0.8 * 2 * 1.645 * 0.6 < width < 1.25 * 2 * 1.645 * model["cv"]["mean"], (width, model["cv"])
+    assert any("flow_lps" in w for w in outside["warnings"]), outside  # 400 L/s: outside the training range
+    next_month = src / "data" / "demo" / "pump-stations-next-month.csv"
+    assert next_month.read_text().startswith("station,hour,flow_lps,head_m,energy_kwh\n")
+
+
+def curl_tour() -> list[str]:
+    text = section("Five-minute tour")
+    part = text[text.index("### With curl"):text.index("### With the Python client")]
+    import shlex
+
+    commands = []
+    for block in re.findall(r"```sh\n(.*?)```", part, re.S):
+        buffer = ""
+        for line in block.splitlines():
+            buffer = f"{buffer}\n{line}" if buffer else line
+            if buffer.endswith("\\"):
+                continue
+            try:
+                shlex.split(buffer)
+            except ValueError:  # an open quotation: the command goes on on the next line
+                continue
+            if buffer.strip():
+                commands.append(buffer.strip())
+            buffer = ""
+        assert not buffer, f"unfinished command in the curl tour: {buffer!r}"
+    return commands
+
+
+@pytest.mark.slow
+def test_curl_tour_runs_as_written(demo):
+    """Every curl line of the tour against the demo server; the job id placeholder is filled in from the
+    submission's answer, and the job is waited for before the lines that read its version."""
+    import json
+
+    from service.client import Client
+
+    url, src, env = demo
+    if shutil.which("curl", path=env["PATH"]) is None:
+        pytest.skip("curl is not installed here; the curl tour needs it")
+    commands = curl_tour()
+    assert len(commands) == 7, commands
+    job_id = None
+    with Client(url) as tk:
+        before = tk.model("pump-energy")["versions"][-1]
+        for command in commands:
+            command = command.replace(DEMO_URL, url)
+            if "<job id from the answer>" in command:
+                command = command.replace("<job id from the answer>", job_id)
+            run = subprocess.run(["bash", "-c", command + " --fail"], cwd=src, env=env, capture_output=True,
+                                 text=True, timeout=300)
+            assert run.returncode == 0, (command, run.stdout[-2000:], run.stderr[-2000:])
+            if "/trainings" in command and "-F" in command:
+                job = json.loads(run.stdout)
+                job_id = job["id"]
+                done = tk.wait(job_id, poll=0.5)
+                assert done["state"] == "succeeded" and done["version"] == before + 1 == 2, done
+            if "/predict" in command:
+                body = json.loads(run.stdout)
+                assert len(body["predictions"]) == 2 and body["predictions"][1]["warnings"]
+            if command.rstrip().endswith("/cv") and "/plots/" not in command:
+                assert json.loads(run.stdout)["chosen"]["basis"]
+        assert (src / "cv.svg").read_bytes().lstrip()[:5] in (b"<?xml", b"<svg ")
+        assert tk.model("pump-energy")["live_version"] == 2
+        assert tk.history("pump-energy")[-1]["reason"] == "retrained on next month after pump wear"
+
+
+@pytest.mark.slow
+def test_python_tour_runs_as_written(demo):
+    from service.client import Client
+
+    url, src, env = demo
+    tour = python_tour().replace(DEMO_URL, url)
+    run = subprocess.run(["python", "-c", tour], cwd=src, env=env, capture_output=True, text=True, timeout=900)
+    assert run.returncode == 0, run.stderr[-4000:]
+    assert "422" in run.stdout and "head_m" in run.stdout, run.stdout
+    with Client(url) as tk:
+        newest = tk.model("pump-energy")["versions"][-1]
+        last = tk.history("pump-energy")[-1]
+    assert last["to_version"] == newest and last["reason"] == "retrained on next month after pump wear"
+
+
+@pytest.mark.slow
+def test_scheduled_retrain_line_runs_through_the_console_script(demo):
+    url, src, env = demo
+    next_month = src / "data" / "demo" / "pump-stations-next-month.csv"
+    retrain = subprocess.run(["tikhon", "train", "pump-energy", "--data", str(next_month), "--promote", "if_better",
+                              "--wait"], cwd=src, env=env, capture_output=True, text=True, timeout=900)
+    assert retrain.returncode == 0, retrain.stderr
+    assert re.search(r"pump-energy version \d+", retrain.stdout)
+    assert re.search(r"live\s+│ (yes|no): ", retrain.stdout), retrain.stdout
 
 
 @pytest.mark.slow
