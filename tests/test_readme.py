@@ -101,6 +101,16 @@ def test_spec_reference_lists_every_spec_field():
     assert not missing, f"README 'Training spec reference' lacks {missing}"
 
 
+def test_spec_example_is_the_demo_models_spec():
+    import json
+
+    from service.demo import DEMO_SPEC
+
+    (example,) = re.findall(r"Example \(the demo model's spec\):\n\n```json\n(.*?)```", section("Training spec reference"),
+                            re.S)
+    assert json.loads(example) == DEMO_SPEC
+
+
 # ----------------------------------------------------------------------------------------------------
 # the first command, for real
 
