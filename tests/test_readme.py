@@ -225,6 +225,8 @@ def test_first_command_serves_the_demo_model_from_a_fresh_environment(demo):
     width = hi - lo
     assert 0.8 * 2 * 1.645 * 0.6 < width < 1.25 * 2 * 1.645 * model["cv"]["mean"], (width, model["cv"])
     assert any("flow_lps" in w for w in outside["warnings"]), outside  # 400 L/s: outside the training range
+    # What the README's tour says of this row: a fitted polynomial, orders of magnitude off out there.
+    assert model["basis"]["kind"] == "polynomial" and outside["value"] > 100 * inside["value"], answer
     next_month = src / "data" / "demo" / "pump-stations-next-month.csv"
     assert next_month.read_text().startswith("station,hour,flow_lps,head_m,energy_kwh\n")
 
