@@ -252,7 +252,9 @@ def test_parquet_upload_that_is_not_one(unchanged, rk):
     ("/etc/passwd", "absolute"), ("//etc/passwd", "absolute"), ("C:\\Windows\\win.ini", "absolute"),
     ("~/x.csv", "absolute"), ("..\\outside.csv", ".."),
     ("drop/escape.csv", "outside the data folder"), ("etc-link/passwd", "outside the data folder"),
-    ("drop/june.csv\u0000.parquet", "NUL"), ("\u0000", "NUL"), ("", "non-empty"), ("drop", "not a file"),
+    ("drop/june.csv\u0000.parquet", "NUL"), ("\u0000", "NUL"), ("", "non-empty"),
+    # a folder is a source (out-of-core training) only if every file in it stays inside the data folder
+    ("drop", "holds 'escape.csv', which resolves outside the data folder"),
     ("drop/missing.csv", "not a file"),
 ])
 def test_source_paths_that_escape_or_do_not_exist(unchanged, rk, source, says):
