@@ -318,7 +318,7 @@ def check_partitions(schema: dict[str, str], spec: Any, n_rows: int, budget: Bud
     spec = parse_spec(spec)
     check_stream_spec(spec)
     features, _ = resolve_columns(spec, schema)
-    return check_budget(spec, max(1, n_rows), len(features), budget)
+    return check_budget(spec, max(1, n_rows), len(features), budget, rows_in_memory=spec.execution.batch_rows)
 
 
 def score_partitions(model: FittedModel, partitions: Sequence[Partition], spec: Any, metric: str,
@@ -409,7 +409,7 @@ def tune_partitions(partitions: Sequence[Partition], schema: dict[str, str], spe
                           errors=[{"field": "cv.folds", "value": K, "message": "more folds than groups"}])
     categories = Categories(list(spec.categorical), [sorted(s) for s in scan.levels])
     d = len(features)
-    check_budget(spec, n, d, budget, categories.width)
+    check_budget(spec, n, d, budget, categories.width, rows_in_memory=spec.execution.batch_rows)
     std = np.sqrt(scan.m2 / n)
     scaler = InputScaler(features, scan.mean, np.where(std > 0, std, 1.0))
     order = np.argsort(scan.sample_pos)

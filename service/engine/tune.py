@@ -209,8 +209,9 @@ def basis_width(spec: TuneSpec, d: int, n: int) -> list[tuple[str, int]]:
 
 
 def check_budget(spec: Any, n_rows: int, n_features: int, budget: Budget | None = None,
-                 n_category_columns: int = 0) -> dict[str, int]:
-    """Refuse, before any work, a grid or a basis that exceeds the budget. Returns the counts."""
+                 n_category_columns: int = 0, rows_in_memory: int | None = None) -> dict[str, int]:
+    """Refuse, before any work, a grid or a basis that exceeds the budget. Returns the counts.
+    ``rows_in_memory`` is how many rows are expanded at once (all of them, or one batch when streaming)."""
     spec = parse_spec(spec)
     budget = budget or Budget()
     widths = basis_width(spec, n_features, n_rows)
@@ -237,10 +238,13 @@ def check_budget(spec: Any, n_rows: int, n_features: int, budget: Budget | None 
             f"{label} has {widest:,} basis terms for {n_features} features, above the limit of "
             f"{budget.max_basis_terms:,}; use a lower degree, fewer features or fewer RBF centres",
             errors=[{"field": "bases", "value": label, "message": "basis too wide"}], limit="max_basis_terms")
-    if widest * n_rows > budget.max_design_cells:
+    held = n_rows if rows_in_memory is None else min(n_rows, rows_in_memory)
+    if widest * held > budget.max_design_cells:
+        fix = ("use smaller execution.batch_rows or a narrower basis" if rows_in_memory is not None else
+               "train on fewer rows (or out of core: execution.mode streaming) or a narrower basis")
         raise BudgetExceeded(
-            f"{label} on {n_rows:,} rows makes a {n_rows:,} × {widest:,} design, above the limit of "
-            f"{budget.max_design_cells:,} cells; train on fewer rows or a narrower basis",
+            f"{label} on {held:,} rows makes a {held:,} × {widest:,} design, above the limit of "
+            f"{budget.max_design_cells:,} cells; {fix}",
             errors=[{"field": "bases", "value": label, "message": "design too large"}], limit="max_design_cells")
     return {"fits": fits, "basis_settings": len(widths), "splits": n_splits, "widest_basis": widest}
 

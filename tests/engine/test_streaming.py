@@ -130,3 +130,17 @@ def test_nan_is_reported_with_its_row_in_the_whole_source(tmp_path):
     schema, parts = open_source(write_folder(tmp_path, d))
     with pytest.raises(InvalidData, match=r"'x2'.*rows \[300\]"):
         tune_partitions(parts, schema, SPEC)
+
+
+def test_streaming_budget_counts_one_batch_of_design_not_every_row():
+    from service.engine import Budget
+    from service.engine.streaming import check_partitions
+    from service.errors import BudgetExceeded
+
+    schema = {"a": "number", "b": "number", "y": "number"}
+    spec = {"target": "y", "bases": [{"kind": "polynomial", "degrees": [6]}], "execution": {"batch_rows": 10_000}}
+    budget = Budget(max_design_cells=1_000_000)
+    # 27 terms × 10,000-row batches fits; the same basis over 10 million rows in memory would not
+    assert check_partitions(schema, spec, 10_000_000, budget)["widest_basis"] == 27
+    with pytest.raises(BudgetExceeded, match="batch_rows"):
+        check_partitions(schema, dict(spec, execution={"batch_rows": 100_000}), 10_000_000, budget)
