@@ -42,7 +42,7 @@ def keyed(tmp_path_factory, rk):
 
 
 def operations(base: str):
-    doc = httpx.get(f"{base}/openapi.json").json()
+    doc = httpx.get(f"{base}/openapi.json", timeout=60).json()
     out = []
     for path, item in doc["paths"].items():
         for method, op in item.items():
@@ -113,7 +113,7 @@ def test_malformed_or_altered_keys_open_nothing(keyed, rk, header):
     server, keys, _ = keyed
     secret = keys["admin"]
     value = header.format(secret=secret, upper=secret.upper())
-    r = httpx.get(f"{server.base}/v1/models", headers={"authorization": value})
+    r = httpx.get(f"{server.base}/v1/models", headers={"authorization": value}, timeout=60)
     assert rk.assert_problem(r, 401)["type"] == "/problems/unauthorized"
 
 
@@ -124,7 +124,7 @@ def test_authorization_comes_before_validation(keyed, rk):
                               ("POST", "/v1/models/BAD NAME/trainings", b"[]"),
                               ("GET", "/v1/models/pumps/versions/not-a-number", None),
                               ("PUT", "/v1/models/pumps/live", b'{"version": "x"}')):
-        r = httpx.request(method, f"{server.base}{url}", content=body, headers={"content-type": "application/json"})
+        r = httpx.request(method, f"{server.base}{url}", content=body, headers={"content-type": "application/json"}, timeout=60)
         rk.assert_problem(r, 401)
 
 
@@ -142,7 +142,7 @@ def test_cookie_authorizes_reads_only(keyed, rk):
 
 def test_sign_in_cookie_is_httponly_and_samesite(keyed):
     server, keys, _ = keyed
-    r = httpx.post(f"{server.base}/login", data={"key": keys["predict"], "next": "/"})
+    r = httpx.post(f"{server.base}/login", data={"key": keys["predict"], "next": "/"}, timeout=60)
     assert r.status_code == 303
     cookies = [v for k, v in r.headers.multi_items() if k.lower() == "set-cookie"]
     assert len(cookies) == 1
@@ -152,7 +152,7 @@ def test_sign_in_cookie_is_httponly_and_samesite(keyed):
     assert "samesite=strict" in attrs
     assert "path=/" in attrs
     # a wrong key sets no cookie
-    bad = httpx.post(f"{server.base}/login", data={"key": "tikhon_000000000000_" + "B" * 43, "next": "/"})
+    bad = httpx.post(f"{server.base}/login", data={"key": "tikhon_000000000000_" + "B" * 43, "next": "/"}, timeout=60)
     assert bad.status_code == 401 and "set-cookie" not in bad.headers
 
 
@@ -216,18 +216,18 @@ def test_keys_never_appear_in_the_logs(tmp_path, rk):
         b = server.base
         for scope, secret in keys.items():
             h = {"authorization": f"Bearer {secret}"}
-            httpx.get(f"{b}/v1/models", headers=h)
-            httpx.post(f"{b}/v1/models/pumps/predict", headers=h, json={"rows": [{"flow_lps": 50.0, "head_m": 30.0}]})
-            httpx.put(f"{b}/v1/models/pumps/live", headers=h, json={"version": 1, "reason": "log test"})
-            httpx.get(f"{b}/v1/models", headers={"authorization": f"Bearer {secret}x"})
-            httpx.get(f"{b}/v1/models", cookies={"tikhon_key": secret})
-            httpx.get(f"{b}/", cookies={"tikhon_key": secret})
-            httpx.post(f"{b}/login", data={"key": secret, "next": "/"})
-            httpx.post(f"{b}/login", data={"key": secret + "x", "next": "/"})
-            httpx.post(f"{b}/v1/models/pumps/predict", headers=h, content=b"{broken")  # an error path
-        httpx.get(f"{b}/v1/models", headers={"authorization": f"Bearer {revoked}"})
+            httpx.get(f"{b}/v1/models", headers=h, timeout=60)
+            httpx.post(f"{b}/v1/models/pumps/predict", headers=h, json={"rows": [{"flow_lps": 50.0, "head_m": 30.0}]}, timeout=60)
+            httpx.put(f"{b}/v1/models/pumps/live", headers=h, json={"version": 1, "reason": "log test"}, timeout=60)
+            httpx.get(f"{b}/v1/models", headers={"authorization": f"Bearer {secret}x"}, timeout=60)
+            httpx.get(f"{b}/v1/models", cookies={"tikhon_key": secret}, timeout=60)
+            httpx.get(f"{b}/", cookies={"tikhon_key": secret}, timeout=60)
+            httpx.post(f"{b}/login", data={"key": secret, "next": "/"}, timeout=60)
+            httpx.post(f"{b}/login", data={"key": secret + "x", "next": "/"}, timeout=60)
+            httpx.post(f"{b}/v1/models/pumps/predict", headers=h, content=b"{broken", timeout=60)  # an error path
+        httpx.get(f"{b}/v1/models", headers={"authorization": f"Bearer {revoked}"}, timeout=60)
         created = httpx.post(f"{b}/v1/keys", headers={"authorization": f"Bearer {keys['admin']}"},
-                             json={"scopes": ["predict"], "label": "made over HTTP"})
+                             json={"scopes": ["predict"], "label": "made over HTTP"}, timeout=60)
         assert created.status_code == 201
         made.append(created.json()["secret"])
         log = server.log_text()

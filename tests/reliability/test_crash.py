@@ -208,7 +208,7 @@ def test_sigkill_worker_at_random_points_of_training(api, rk, full, tmp_path):
     state = check_store(settings, server.base, rk, expect_jobs=submitted)
     assert state["versions"] == list(range(1, i + 2))
     assert state["live"] == i + 1  # promote 'always': the last job's version is live
-    assert httpx.get(f"{server.base}/readyz").status_code == 200
+    assert httpx.get(f"{server.base}/readyz", timeout=60).status_code == 200
 
 
 def test_a_job_whose_workers_keep_dying_fails_after_max_attempts(tmp_path, rk):
@@ -251,7 +251,7 @@ def test_worker_killed_between_publishing_and_recording_leaves_no_orphan_version
     assert final["state"] == "succeeded" and final["version"] == 1, final
     state = check_store(settings, server.base, rk, expect_jobs={job_id})
     assert state["versions"] == [1] and state["live"] == 1
-    history = httpx.get(f"{server.base}/v1/models/{NAME}/history").json()
+    history = httpx.get(f"{server.base}/v1/models/{NAME}/history", timeout=60).json()
     entries = history["history"] if isinstance(history, dict) else history
     assert [e.get("to_version", e.get("version")) for e in entries].count(1) == 1, entries  # one live switch
 
@@ -272,7 +272,7 @@ def test_sigkill_api_process_during_a_publish(tmp_path, rk, step, full):
     port = rk.free_port()
     doomed = rk.ServerProcess({**settings, "port": port}, tmp_path / "doomed.log", prelude=PUBLISH_FAULT,
                               env={"RELIABILITY_FAULT_STEP": step}).wait_ready()
-    before = httpx.post(f"{doomed.base}/v1/models/{NAME}/predict", json=probe).json()
+    before = httpx.post(f"{doomed.base}/v1/models/{NAME}/predict", json=probe, timeout=60).json()
     job_id = submit(doomed.base, seed=12, rk=rk, spec=rk.QUICK_SPEC, rows=600)
     doomed.proc.wait(300)
     doomed.stop()
@@ -280,14 +280,14 @@ def test_sigkill_api_process_during_a_publish(tmp_path, rk, step, full):
     mid = check_store(settings, None, rk, settled=False)  # between the crash and the restart (after the sweep)
     assert mid["versions"] == ([1, 2] if step == "committed" else [1]) and mid["live"] == 1, (step, mid)
     with rk.server_process(tmp_path, **settings) as server:
-        served = httpx.post(f"{server.base}/v1/models/{NAME}/predict", json=probe).json()
+        served = httpx.post(f"{server.base}/v1/models/{NAME}/predict", json=probe, timeout=60).json()
         if served["model"]["version"] == 1:
             assert served == before
         final = wait_for(lambda: (j := job_of(server.base, job_id))["state"] in FINAL and j, "the job to end")
         assert final["state"] == "succeeded", final
         state = check_store(settings, server.base, rk, expect_jobs={job_id})
         assert state["versions"] == [1, 2] and final["version"] == 2
-        assert httpx.get(f"{server.base}/readyz").status_code == 200
+        assert httpx.get(f"{server.base}/readyz", timeout=60).status_code == 200
 
 
 # ---------------------------------------------------------------------------------------------------
@@ -337,7 +337,7 @@ def test_disk_full_fails_the_job_cleanly_and_the_live_model_keeps_serving(tmp_pa
         store.close()
         probe = {"rows": [{"flow_lps": 55.5, "head_m": 31.25}, {"flow_lps": 80.0, "head_m": 40.0}]}
         with rk.server_process(tmp_path, **settings) as server:
-            before = httpx.post(f"{server.base}/v1/models/{NAME}/predict", json=probe).json()
+            before = httpx.post(f"{server.base}/v1/models/{NAME}/predict", json=probe, timeout=60).json()
             # the submission itself on a full disk: refused with a storage problem, nothing staged
             filler = fill(disk, leave=4096)
             snap = rk.store_snapshot(settings["store"], rk.catalog_url_of(settings))
@@ -354,9 +354,9 @@ def test_disk_full_fails_the_job_cleanly_and_the_live_model_keeps_serving(tmp_pa
             assert final["state"] == "failed", final
             assert final["problem"]["type"] == "/problems/storage-failure", final["problem"]
             assert "nothing was published" in final["problem"]["detail"]
-            assert httpx.post(f"{server.base}/v1/models/{NAME}/predict", json=probe).json() == before
-            assert [v["version"] for v in httpx.get(f"{server.base}/v1/models/{NAME}/versions").json()["versions"]] == [1]
-            ready = httpx.get(f"{server.base}/readyz")
+            assert httpx.post(f"{server.base}/v1/models/{NAME}/predict", json=probe, timeout=60).json() == before
+            assert [v["version"] for v in httpx.get(f"{server.base}/v1/models/{NAME}/versions", timeout=60).json()["versions"]] == [1]
+            ready = httpx.get(f"{server.base}/readyz", timeout=60)
             assert ready.status_code in (200, 503)  # a probe write may or may not fit in the last 4 KiB
             # space again: the next job publishes version 2 (no gap, no leftover of the failed one)
             filler.unlink()

@@ -81,7 +81,7 @@ def test_training_runs_at_a_lower_cpu_priority_than_its_worker(tmp_path, rk):
             job_id = r.json()["id"]
             while not kids:  # wait until the training has begun its search (a readiness wait)
                 assert time.monotonic() < end, worker.log_text()[-2000:]
-                job = httpx.get(f"{server.base}/v1/trainings/{job_id}").json()
+                job = httpx.get(f"{server.base}/v1/trainings/{job_id}", timeout=60).json()
                 if job["state"] == "running" and (job["progress"] or {}).get("total"):
                     kids = [k for k in _children(worker.pid) if "spawn_main" in open(f"/proc/{k}/cmdline").read()]
                 time.sleep(0.02)
