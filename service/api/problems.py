@@ -75,7 +75,26 @@ _HTTP_PROBLEMS: dict[str, tuple[str, str]] = {
     "not-acceptable": ("Not acceptable", "The Accept header asks for a format this route cannot produce."),
     "internal-error": ("Internal error", "An unexpected failure on the server; report the request id."),
     "not-ready": ("Not ready", "The catalog does not answer or the store folder is not writable."),
+    "worker-lost": ("Training worker lost", "A training job's worker stopped sending heartbeats on every attempt "
+                    "(killed, out of memory, host lost); the job was failed after the configured attempts."),
 }
+
+# Status of the problems the store records on jobs by itself (it knows no HTTP): the job failed on the server.
+_STORED_STATUS = {"worker-lost": 500}
+
+
+def stored_problem(problem: dict[str, Any] | None) -> dict[str, Any] | None:
+    """A problem object recorded on a job, in the RFC 9457 shape every answer uses: the store writes some
+    with a bare slug as ``type`` (``"worker-lost"``) and no ``status``; they get the ``/problems/<slug>``
+    type (documented at that address) and their status here, at the one HTTP boundary."""
+    if not isinstance(problem, dict):
+        return problem
+    kind = problem.get("type")
+    if isinstance(kind, str) and kind and "/" not in kind:
+        problem = {**problem, "type": f"/problems/{kind}"}
+        if "status" not in problem and kind in _STORED_STATUS:
+            problem["status"] = _STORED_STATUS[kind]
+    return problem
 
 
 def status_for(err: E.TikhonError) -> int:

@@ -228,6 +228,9 @@ def test_a_job_whose_workers_keep_dying_fails_after_max_attempts(tmp_path, rk):
             janitor.stop()
         assert final["state"] == "failed" and final["attempts"] == 2
         assert "2 times" in final["problem"]["detail"] and job_id in final["problem"]["detail"]
+        # the same RFC 9457 shape as every other problem, with a type that documents itself
+        assert final["problem"]["type"] == "/problems/worker-lost" and final["problem"]["status"] == 500
+        assert httpx.get(f"{server.base}{final['problem']['type']}", timeout=60).status_code == 200
         assert final["version"] is None
         check_store(settings, server.base, rk, expect_jobs={job_id})
         assert not (Path(settings["store"]) / "_jobs" / job_id).exists()  # its staged data is gone

@@ -9,7 +9,7 @@ from anyio import to_thread
 from fastapi import APIRouter, Path, Query, Request
 from fastapi.responses import Response
 
-from service.api import auth, intake
+from service.api import auth, intake, problems
 from service.api.problems import MalformedBody, UnsupportedMediaType
 from service.api.render import json_response, media_type, parse_json
 from service.api.schemas import TrainingRequest, parse_training_request, schema_ref
@@ -64,7 +64,7 @@ def job_view(job: dict[str, Any]) -> dict[str, Any]:
         "data": request.get("data"),
         "grid": request.get("grid"),
         "decision": job.get("decision"),
-        "problem": job.get("problem"),
+        "problem": problems.stored_problem(job.get("problem")),
         "links": {"self": f"/v1/trainings/{jid}", "model": f"/v1/models/{job.get('name')}"},
     }
     if job.get("version") is not None:
