@@ -304,6 +304,10 @@ def run_soak(root: Path, *, duration: float, probe_s: float = 5.0, fraction: flo
     growth = float(np.median(tail) / np.median(at_warm) - 1.0)
     mismatches, served = _check_versions(Path(settings["store"]), out["plan"], results)
     ev = out["events"]
+    windows: list[list[float]] = [[] for _ in range(int(np.ceil(duration / 10.0)) + 1)]
+    for i, r in enumerate(results):
+        if r is not None and r[0] == 200:
+            windows[int(i / rate // 10)].append(r[1])
     busy = (ev.get("retrain_submitted_s", duration), ev.get("switch_s", ev.get("retrain_done_s", duration)) + 2.0)
     quiet = np.array([r[1] for i, r in enumerate(results)
                       if r is not None and r[0] == 200 and not busy[0] <= i / rate <= busy[1]]) * 1000
@@ -314,6 +318,8 @@ def run_soak(root: Path, *, duration: float, probe_s: float = 5.0, fraction: flo
         "p99_single_row_ms": float(np.percentile(single, 99)), "max_ms": float(np.max(lat)),
         "p99_outside_retraining_ms": float(np.percentile(quiet, 99)) if quiet.size else float("nan"),
         "retraining_window_s": [round(busy[0], 2), round(busy[1], 2)],
+        "p99_ms_per_10s": [round(float(np.percentile(w, 99)) * 1000, 1) for w in windows if w],
+        "share_within_100ms": float(np.mean(lat <= 100.0)),
         "rss_at_warmup_mb": float(np.median(at_warm) / 2**20), "rss_end_mb": float(np.median(tail) / 2**20),
         "rss_growth": growth, "version_mismatches": mismatches, "served_by_version": served,
         "events": out["events"], "server_alive": alive,
