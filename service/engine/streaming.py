@@ -21,6 +21,7 @@ row in the same fold; the CV table then matches the in-memory one to rounding.
 from __future__ import annotations
 
 import hashlib
+import math
 from dataclasses import dataclass, field
 from functools import partial
 from typing import Any, Callable, Iterator, Protocol, Sequence
@@ -32,7 +33,7 @@ from service.errors import Cancelled, InvalidData, InvalidSpec
 from .basis import KMEANS_SAMPLE, BasisSetting, Categories, InputScaler, kmeans_centers
 from .executors import SerialExecutor
 from .folds import hash_folds, key_hash
-from .model import FittedModel, thin_residuals
+from .model import MAX_INTERVAL_RESIDUALS, FittedModel, thin_residuals
 from .solvers import centred_scaled, fit, leverage_factor
 from .spec import TuneSpec, parse_spec
 from .summaries import Summary
@@ -268,7 +269,11 @@ class _Final:
 
 
 def _final_pass(m: _Model, setting: BasisSetting, fw: np.ndarray, fi: np.ndarray, mean: np.ndarray,
-                scale: np.ndarray, F: np.ndarray, n: int, part: Partition) -> _Final:
+                scale: np.ndarray, F: np.ndarray, n: int, stride: int, part: Partition) -> _Final:
+    """Out-of-fold residuals of one partition, sorted per fold and, when the whole source has more than
+    ``MAX_INTERVAL_RESIDUALS`` rows, thinned here to every ``stride``-th order statistic (each kept value
+    then stands for ``stride`` residuals, as ``thin_residuals`` does), so only about that many values
+    travel back however large the source is."""
     res = [[] for _ in range(m.folds)]
     max_lev = 0.0
     sh, sp, so = np.zeros(0, np.uint64), np.zeros(0), np.zeros(0)
@@ -285,7 +290,11 @@ def _final_pass(m: _Model, setting: BasisSetting, fw: np.ndarray, fi: np.ndarray
         sh, sp, so = np.concatenate([sh, h]), np.concatenate([sp, pred]), np.concatenate([so, y])
         keep = _bottom_k(sh, PLOT_SAMPLE)
         sh, sp, so = sh[keep], sp[keep], so[keep]
-    return _Final([np.concatenate(x) if x else np.zeros(0) for x in res], max_lev, sh, sp, so)
+    kept = []
+    for x in res:
+        r = np.sort(np.concatenate(x)) if x else np.zeros(0)
+        kept.append(r[stride // 2::stride] if stride > 1 else r)
+    return _Final(kept, max_lev, sh, sp, so)
 
 
 def _merge_final(a: _Final, b: _Final) -> _Final:
@@ -506,11 +515,13 @@ def tune_partitions(partitions: Sequence[Partition], schema: dict[str, str], spe
     F = leverage_factor(Zblock, strength, spec.penalty.kind, ratio, n, full.beta[l_idx])
 
     # pass 3 -----------------------------------------------------------------------------------------
-    fin = executor.map_reduce(partial(_final_pass, model_ctx, setting, fw, fi, full.mean, full.scale, F, n), parts,
-                              _merge_final, on_done=tick, should_stop=should_stop)
+    stride = max(1, math.ceil(n / MAX_INTERVAL_RESIDUALS))
+    fin = executor.map_reduce(partial(_final_pass, model_ctx, setting, fw, fi, full.mean, full.scale, F, n, stride),
+                              parts, _merge_final, on_done=tick, should_stop=should_stop)
     abs_res = np.concatenate(fin.residuals)
     res_fold = np.concatenate([np.full(r.size, f, dtype=np.int64) for f, r in enumerate(fin.residuals)])
-    kept, kept_fold, g = thin_residuals(abs_res, res_fold)
+    kept, kept_fold, _ = thin_residuals(abs_res, res_fold, limit=abs_res.size)  # sorts per fold, keeps all
+    g = float(stride)
     names = setting.term_names(features) + categories.term_names()
     model = FittedModel(
         target=spec.target, features=features, scaler=scaler, basis=setting, categories=categories,
