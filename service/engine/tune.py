@@ -466,8 +466,8 @@ class _SharedSearch:
     Linear and polynomial settings are nested (PolynomialFeatures orders monomials by degree, and
     the linear basis is its first block), so they share one pass: the atoms of the highest degree are
     summarized once, with the one-hot columns placed first, and every lower degree's summaries are
-    leading blocks of those (``Summary.leading``). The refit recomputes the chosen setting's summaries
-    in the model's own column order.
+    leading blocks of those (``Summary.leading``). The refit reorders the chosen setting's summaries
+    into the model's own column order (``Summary.permuted``) without reading the rows again.
     """
 
     def __init__(self, spec, prep, Xs, settings, strengths, ratios, plan: Plan):
@@ -490,6 +490,8 @@ class _SharedSearch:
                 D = np.hstack([self.prep.cat_block, top.expand(self.Xs)])
                 self._nested = (D, [Summary.of(D[idx], y[idx]) for idx in self.plan.atoms])
             D, atoms = self._nested
+            if D is None:  # asked again after the design was freed (the refit): summaries only
+                D = np.hstack([self.prep.cat_block, self._nested_top.expand(self.Xs)])
             k = 1 + self.prep.categories.width + setting.n_terms(self.prep.X.shape[1])
             return D[:, :k - 1], [a.leading(k) for a in atoms]
         D = _design(setting, self.Xs, self.prep.cat_block)
@@ -504,16 +506,24 @@ class _SharedSearch:
                 rows = np.concatenate([self.plan.atoms[i] for i in test_ids])
                 return np.abs(y[rows, None] - f.intercept[None, :] - D[rows] @ f.weights.T).mean(axis=0)
         values, _ = score_splits(atoms, self.plan.splits, self.spec, self.strengths, self.ratios, mae_rows)
-        if s_idx == len(self.settings) - 1 or all(
-                s.kind == "rbf" for s in self.settings[s_idx + 1:]):
-            self._nested = None  # free the largest design once no nested setting is left
+        if self._nested is not None and all(s.kind == "rbf" for s in self.settings[s_idx + 1:]):
+            self._nested = (None, self._nested[1])  # free the largest design once no nested setting is left
         yield values, None
 
     def refit(self, s_idx, setting, strength, ratio, strengths, scaler, chosen):
         plan = self.plan
         y = self.prep.y
         Phi = _design(setting, self.Xs, self.prep.cat_block)
-        atoms = [Summary.of(Phi[idx], y[idx]) for idx in plan.atoms]
+        if setting.kind in ("linear", "polynomial"):
+            # the nested summaries already hold this setting: reorder [1, one-hot, Φ, y] → [1, Φ, one-hot, y]
+            _, atoms = self._nested
+            q, p = self.prep.categories.width, setting.n_terms(self.prep.X.shape[1])
+            order = [0, *range(1 + q, 1 + q + p), *range(1, 1 + q), 1 + q + p]
+            atoms = [a.leading(1 + q + p) for a in atoms]
+            if q:
+                atoms = [a.permuted(order) for a in atoms]
+        else:
+            atoms = [Summary.of(Phi[idx], y[idx]) for idx in plan.atoms]
         full_summary = Summary.combine([atoms[i] for i in plan.refit_atoms])
         full = fit(full_summary, self.spec.penalty.kind, strengths, ratio)
         l_idx = int(np.flatnonzero(strengths == strength)[0])
