@@ -390,16 +390,20 @@ class Worker:
             version = int(row["version"])
             decision["version"] = version
             if go_live:
-                self.store.set_live(name, version, actor=f"worker:{self.worker_id}"[:200],
-                                    reason=f"training job {jid}: {decision['reason']}",
-                                    details={k: v for k, v in decision.items() if k != "comparison"} | {"job_id": jid})
-                if self.on_live_change is not None:
-                    self.on_live_change(name)
+                self._go_live(name, version, jid, decision)
         except TikhonError as err:
             self._finish(jid, "failed", problem=_problem(err))
             return
         self._finish(jid, "succeeded", version=version, decision=decision)
         log.info("job succeeded", extra={"job_id": jid, "model": name, "version": version, "went_live": go_live})
+
+    def _go_live(self, name: str, version: int, jid: str, decision: dict[str, Any]) -> None:
+        """Make ``version`` live with the job's decision as the history entry's reason and details."""
+        self.store.set_live(name, version, actor=f"worker:{self.worker_id}"[:200],
+                            reason=f"training job {jid}: {decision['reason']}",
+                            details={k: v for k, v in decision.items() if k != "comparison"} | {"job_id": jid})
+        if self.on_live_change is not None:
+            self.on_live_change(name)
 
     def _published_by(self, name: str, jid: str) -> int | None:
         """The version an earlier attempt of job ``jid`` published, if any (versions record their job)."""
@@ -432,11 +436,7 @@ class Worker:
                 go_live, decision = decide(self.store, name, request, outcome, job.get("data_path"))
                 decision.update(version=version, resumed=True, reason=f"{note}; {decision['reason']}")
                 if go_live:
-                    self.store.set_live(name, version, actor=f"worker:{self.worker_id}"[:200],
-                                        reason=f"training job {jid}: {decision['reason']}",
-                                        details={k: v for k, v in decision.items() if k != "comparison"} | {"job_id": jid})
-                    if self.on_live_change is not None:
-                        self.on_live_change(name)
+                    self._go_live(name, version, jid, decision)
         except TikhonError as err:
             self._finish(jid, "failed", problem=_problem(err))
             return
