@@ -1,39 +1,16 @@
-"""Run an ASGI app under a real uvicorn server on a loopback port, in a background thread."""
+"""Servers for the API tests: real uvicorn on a loopback port (``tests/livesvc.py``) over a real store."""
 
 from __future__ import annotations
 
-import contextlib
-import socket
-import threading
-import time
-
+import numpy as np
+import httpx
 import pytest
-import uvicorn
 
+import livesvc  # tests/livesvc.py (tests/ is on pytest's pythonpath)
 
-@contextlib.contextmanager
-def running(app, *, host: str = "127.0.0.1"):
-    """Yield the base URL of ``app`` served by uvicorn on a free loopback port; stop it afterwards."""
-    sock = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
-    sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
-    sock.bind((host, 0))
-    port = sock.getsockname()[1]
-    config = uvicorn.Config(app, log_level="warning", access_log=False, lifespan="on", timeout_graceful_shutdown=5)
-    server = uvicorn.Server(config)
-    thread = threading.Thread(target=server.run, kwargs={"sockets": [sock]}, daemon=True)
-    thread.start()
-    # Wait for start-up (a readiness wait, not a timed assertion: it fails only if the server never starts).
-    deadline = time.monotonic() + 30
-    while not server.started:
-        if not thread.is_alive() or time.monotonic() > deadline:
-            raise RuntimeError("uvicorn did not start")
-        time.sleep(0.01)
-    try:
-        yield f"http://{host}:{port}"
-    finally:
-        server.should_exit = True
-        thread.join(timeout=30)
-        sock.close()
+running = livesvc.running
+make_settings = livesvc.make_settings
+service = livesvc.live_service
 
 
 @pytest.fixture(scope="session")
@@ -42,26 +19,7 @@ def serve():
     return running
 
 
-# ----------------------------------------------------------------------------------------------------
-# Servers over a real store in a temporary folder. Timings are small so the suite is quick; no test
-# asserts on time.
-
-import numpy as np  # noqa: E402
-import httpx  # noqa: E402
-
-from service.settings import Settings  # noqa: E402
-
 FINAL = ("succeeded", "failed", "cancelled")
-
-
-def make_settings(root, **over) -> Settings:
-    base = dict(
-        store=root / "store", data_dir=root / "data", worker_heartbeat_s=0.2, worker_poll_s=0.05,
-        worker_stale_s=30.0, cancel_grace_s=5.0, auth_cache_s=0.0, live_cache_s=0.0, log_level="warning",
-    )
-    base.update(over)
-    (root / "data").mkdir(parents=True, exist_ok=True)
-    return Settings(**base)
 
 
 def pump_table(n: int, seed: int, noise: float = 2.0) -> dict[str, np.ndarray]:
@@ -99,23 +57,6 @@ def wait_job(base: str, job_id: str, headers=None, deadline_s: float = 180.0) ->
         if time.monotonic() > end:
             raise AssertionError(f"job {job_id} did not end: {job}")
         time.sleep(0.05)
-
-
-@contextlib.contextmanager
-def service(root, *, worker: bool, **over):
-    from service.api.server import build
-
-    settings = make_settings(root, **over)
-    app, store, w = build(settings, embedded_worker=worker)
-    if w is not None:
-        w.start()
-    try:
-        with running(app) as base:
-            yield base, store, settings
-    finally:
-        if w is not None:
-            w.stop()
-        store.close()
 
 
 @pytest.fixture(scope="module")
