@@ -85,6 +85,13 @@ def _keys(ctx: _Ctx, batch: dict[str, np.ndarray], offset: int, rows: int) -> np
     return np.arange(offset, offset + rows)
 
 
+def _fold_ids(ctx: _Ctx, batch: dict[str, np.ndarray], offset: int, rows: int, folds: int) -> np.ndarray:
+    """Hash fold of each row of a batch: of its group for ``grouped``, else of its row key."""
+    if ctx.spec.cv.scheme == "grouped":
+        return hash_folds(categorical_column(batch, ctx.spec.cv.group_by), ctx.spec.cv.seed, folds)
+    return hash_folds(_keys(ctx, batch, offset, rows), ctx.spec.cv.seed, folds)
+
+
 def _numeric_block(ctx: _Ctx, batch: dict[str, np.ndarray], offset: int) -> tuple[np.ndarray, np.ndarray]:
     rows = len(batch[ctx.spec.target])
     X = (np.column_stack([numeric_column(batch, f, "feature", offset) for f in ctx.features])
@@ -188,10 +195,7 @@ def _batches(m: _Model, part: Partition):
             continue
         cats = [categorical_column(batch, c) for c in m.categories.names]
         block = m.categories.encode(cats)[0] if cats else np.zeros((b, 0))
-        if ctx.spec.cv.scheme == "grouped":
-            fold = hash_folds(categorical_column(batch, ctx.spec.cv.group_by), ctx.spec.cv.seed, m.folds)
-        else:
-            fold = hash_folds(_keys(ctx, batch, pos, b), ctx.spec.cv.seed, m.folds)
+        fold = _fold_ids(ctx, batch, pos, b, m.folds)
         yield pos, m.scaler.transform(X), y, block, fold, batch
         pos += b
 
@@ -361,10 +365,7 @@ def _score_partition(ctx: _Ctx, model: FittedModel, part: Partition) -> np.ndarr
     for batch in part.read(ctx.columns, ctx.batch_rows):
         y = numeric_column(batch, ctx.spec.target, "target", pos)
         b = y.size
-        if ctx.spec.cv.scheme == "grouped":
-            fold = hash_folds(categorical_column(batch, ctx.spec.cv.group_by), ctx.spec.cv.seed, K)
-        else:
-            fold = hash_folds(_keys(ctx, batch, pos, b), ctx.spec.cv.seed, K)
+        fold = _fold_ids(ctx, batch, pos, b, K)
         e = y - model.predict({c: batch[c] for c in [*model.features, *model.categories.names]})
         for row, vals in enumerate((np.ones(b), e ** 2, np.abs(e), y, y ** 2)):
             out[row] += np.bincount(fold, weights=vals, minlength=K)
