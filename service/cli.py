@@ -38,6 +38,8 @@ app = typer.Typer(name="tikhon", add_completion=False, no_args_is_help=True, pre
                   rich_markup_mode=None, help="Tune, version and serve regularized regression models.")
 keys_app = typer.Typer(no_args_is_help=True, help="API keys: create, list, revoke (admin scope).")
 app.add_typer(keys_app, name="keys")
+store_app = typer.Typer(no_args_is_help=True, help="The local store folder: recover a lost catalog.")
+app.add_typer(store_app, name="store")
 
 
 class UsageProblem(Exception):
@@ -877,6 +879,39 @@ def keys_revoke(ctx: typer.Context, key_id: Annotated[str, typer.Argument(help="
         _print_json(entry)
     else:
         _out.print(f"key {entry['key_id']} revoked at {entry.get('revoked_at')}")
+
+
+# ----------------------------------------------------------------------------------------------------
+# the local store
+
+
+@store_app.command("recover")
+def store_recover(
+    ctx: typer.Context,
+    live: Annotated[str, typer.Option("--live", help="'newest': make the newest recovered version of each model "
+                                      "that has no live version live (recorded in its history); 'none': leave "
+                                      "every model without a live version.")] = "none",
+    dry_run: Annotated[bool, typer.Option("--dry-run", help="Verify and list what would be registered; write "
+                                          "nothing.")] = False,
+) -> None:
+    """Register the version folders of this machine's store (TIKHON_STORE) that its catalog
+    (TIKHON_DATABASE_URL) does not list, after verifying each one fully. Nothing is moved or deleted."""
+    from service.store import Store
+
+    with Store(_settings()) as store:
+        report = store.recover(dry_run=dry_run, live=live)
+    if _opts(ctx).json:
+        _print_json(report)
+    else:
+        verb = "would register" if dry_run else "registered"
+        done = ", ".join(f"{r['name']}/{r['version']}" for r in report["registered"]) or "nothing"
+        _out.print(f"{verb} {len(report['registered'])} version(s): {done}")
+        for r in report["live"]:
+            _out.print(f"{r['name']}: version {r['version']} is live")
+        for r in report["refused"]:
+            _err.print(f"refused {r['path']}: {r['reason']}")
+    if report["refused"]:
+        raise typer.Exit(1)
 
 
 # ----------------------------------------------------------------------------------------------------

@@ -89,6 +89,14 @@ class StorageFailure(TikhonError):
     title = "Storage failure"
 
 
+class CatalogUnavailable(StorageFailure):
+    """The catalog cannot be used right now: it does not answer, or its file was deleted, emptied or
+    replaced while the service ran. Nothing was written; retry after the operator has fixed it."""
+
+    slug = "catalog-unavailable"
+    title = "Catalog unavailable"
+
+
 class Cancelled(TikhonError):
     slug = "cancelled"
     title = "Cancelled"

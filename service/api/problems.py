@@ -55,11 +55,15 @@ _STATUS: dict[type[E.TikhonError], int] = {
     E.Conflict: 409,
     E.Cancelled: 409,
     E.IntegrityFailure: 500,
+    E.CatalogUnavailable: 503,
     E.StorageFailure: 507,
     E.Unauthorized: 401,
     E.Forbidden: 403,
     E.TikhonError: 400,
 }
+
+# Seconds a client is told to wait (Retry-After) when the catalog is unavailable (503).
+RETRY_AFTER_S = 5
 
 # Limits whose excess is "the request itself is too large" (413); any other limit, such as the grid
 # budget of a training spec, is a semantic refusal (422).
@@ -74,7 +78,8 @@ _HTTP_PROBLEMS: dict[str, tuple[str, str]] = {
     "unsupported-media-type": ("Unsupported media type", "The Content-Type is not one this route reads."),
     "not-acceptable": ("Not acceptable", "The Accept header asks for a format this route cannot produce."),
     "internal-error": ("Internal error", "An unexpected failure on the server; report the request id."),
-    "not-ready": ("Not ready", "The catalog does not answer or the store folder is not writable."),
+    "not-ready": ("Not ready", "The catalog does not answer or was replaced, the store folder is not writable, or "
+                  "version folders are not in the catalog (run `tikhon store recover`)."),
     "worker-lost": ("Training worker lost", "A training job's worker stopped sending heartbeats on every attempt "
                     "(killed, out of memory, host lost); the job was failed after the configured attempts."),
 }
@@ -233,6 +238,8 @@ def install(app: FastAPI) -> None:
     @app.exception_handler(E.TikhonError)
     async def _tikhon(request: Request, exc: E.TikhonError) -> Response:
         headers = {"WWW-Authenticate": 'Bearer realm="tikhon"'} if isinstance(exc, E.Unauthorized) else None
+        if isinstance(exc, E.CatalogUnavailable):
+            headers = {"Retry-After": str(RETRY_AFTER_S)}
         body = problem_from_error(exc, instance=request.url.path, request_id=_request_id(request))
         if body["status"] >= 500:
             log.error("request failed: %s", exc, extra={"request_id": _request_id(request)})

@@ -41,7 +41,7 @@ from sqlalchemy import and_, insert, select, update
 from sqlalchemy.exc import IntegrityError
 
 from service.errors import Conflict, InvalidData, InvalidSpec, NotFound
-from service.store import artifact
+from service.store import artifact, layout
 from service.store.catalog import read_txn, write_txn
 from service.store.names import validate_name
 from service.store.schema import jobs as jobs_t
@@ -154,6 +154,7 @@ class Jobs:
         if source is not None:
             target_dir = self.folder / job_id
             target_dir.mkdir(parents=True)
+            layout.write_publishing_marker(target_dir, self._store.catalog_id, job_id)  # until the row commits
             final_path = target_dir / source.name
             shutil.move(str(source), str(final_path))
         now = utcnow()
@@ -184,6 +185,8 @@ class Jobs:
         except BaseException:
             self._drop_folder(job_id)
             raise
+        if source is not None:
+            layout.clear_markers(self.folder / job_id)
         return self.get(job_id), True
 
     def _by_key(self, name: str, key: str) -> Any:
@@ -356,8 +359,11 @@ class Jobs:
     # ------------------------------------------------------------------------------------------------
 
     def sweep_folders(self) -> int:
-        """Remove data folders of finished jobs, old ones without a job, and stale uploads."""
+        """Remove data folders of jobs this catalog lists as finished, folders of submits into this catalog
+        that never committed (a ``.publishing`` marker naming it, older than an hour), and stale uploads.
+        A folder of a job the catalog does not know otherwise is kept and reported in ``kept_folders``."""
         removed = 0
+        self.kept_folders: list[str] = []
         now = time.time()
         candidates = {p.name: p for p in self.folder.iterdir() if p.is_dir() and _ID_RE.fullmatch(p.name)}
         if candidates:
@@ -366,9 +372,16 @@ class Jobs:
                                            .where(jobs_t.c.id.in_(list(candidates)))).all())
             for job_id, path in candidates.items():
                 st = states.get(job_id)
-                if st in FINAL_STATES or (st is None and now - _mtime(path) > ORPHAN_FOLDER_AGE_S):
-                    shutil.rmtree(path, ignore_errors=True)
-                    removed += 1
+                if st is None:
+                    if layout.marker_catalog(path, layout.PUBLISHING_MARKER) != self._store.catalog_id:
+                        self.kept_folders.append(f"_jobs/{job_id}")
+                        continue
+                    if now - _mtime(path) <= ORPHAN_FOLDER_AGE_S:
+                        continue  # a submit in flight
+                elif st not in FINAL_STATES:
+                    continue
+                shutil.rmtree(path, ignore_errors=True)
+                removed += 1
         for p in self.incoming_dir.iterdir():
             if now - _mtime(p) > INCOMING_AGE_S:
                 shutil.rmtree(p, ignore_errors=True) if p.is_dir() else p.unlink(missing_ok=True)

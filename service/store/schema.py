@@ -102,3 +102,12 @@ api_keys = Table(
     Column("created_at", TS, nullable=False),
     Column("revoked_at", TS, nullable=True),
 )
+
+# Key/value facts about the catalog itself; ``catalog_id`` (a random hex id written by migration 0002)
+# names this catalog, so the store can tell it from another one (see ``Store.catalog_id``).
+catalog_info = Table(
+    "catalog_info",
+    metadata,
+    Column("key", String(64), primary_key=True),
+    Column("value", String(200), nullable=False),
+)

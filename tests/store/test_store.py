@@ -200,7 +200,7 @@ def test_sweep_leaves_nothing_behind_after_clean_use(store, kit):
 
 
 def test_ping(store):
-    assert store.ping() == {"catalog": "ok", "store": "ok"}
+    assert store.ping() == {"catalog": "ok", "store": "ok", "versions": "ok"}
 
 
 def test_disk_full_while_publishing_leaves_nothing(store, kit, monkeypatch):

@@ -18,7 +18,7 @@ async def healthz() -> dict:
 
 
 @router.get(
-    "/readyz", summary="The catalog answers and the store folder is writable",
+    "/readyz", summary="The catalog answers, the store folder is writable and every version folder is listed",
     responses={503: {"description": "Not ready; the body says which check failed."}},
 )
 def readyz(request: Request):
@@ -30,13 +30,15 @@ def readyz(request: Request):
     ready = all(v == "ok" for v in checks.values())
     if ready:
         return {"status": "ready", "checks": checks}
+    failing = {k: v for k, v in checks.items() if v != "ok"}
+    advice = "" if set(failing) == {"versions"} else (
+        ". Check the catalog URL (TIKHON_DATABASE_URL) and the store folder (TIKHON_STORE) permissions")
     body = problems.problem_body(
         slug="not-ready", title="Not ready", status=503,
-        detail="The service cannot take work: " + "; ".join(v for v in checks.values() if v != "ok")
-        + ". Check the catalog URL (TIKHON_DATABASE_URL) and the store folder (TIKHON_STORE) permissions.",
+        detail="The service cannot take work: " + "; ".join(failing.values()) + advice + ".",
         instance="/readyz", checks=checks,
     )
-    return problems.problem_response(body)
+    return problems.problem_response(body, {"Retry-After": str(problems.RETRY_AFTER_S)})
 
 
 @router.get("/metrics", summary="Prometheus text format", response_class=Response)
