@@ -153,13 +153,13 @@ class Store:
                 "set TIKHON_STORE to a writable folder."
             ) from None
         self.engine = create_catalog_engine(normalize_url(settings.catalog_url()))
-        self.catalog = safe_url(self.engine)
+        self.catalog = _catalog_label(self.engine, self.root)
         self.schema_revision = migrate(self.engine)
         self.catalog_id = self._read_catalog_id()
         self._catalog_file = _sqlite_file(self.engine)
         self._catalog_identity = _file_identity(self._catalog_file) if self._catalog_file else None
         if self._catalog_file is not None:
-            event.listen(self.engine, "begin", self._guard_catalog_file)
+            event.listen(self.engine, "begin", self._guard_catalog_file, insert=True)  # before BEGIN runs
         self.unlisted: list[tuple[str, int]] = []  # version folders the catalog does not list (kept)
         self.kept: list[str] = []  # other entries the sweep could not prove its own (kept)
         self._loader: ModelLoader = model_loader or _engine_loader
@@ -232,10 +232,9 @@ class Store:
                 "restart the service with the right TIKHON_DATABASE_URL.")
 
     def _guard_catalog_file(self, _conn: Any) -> None:
-        """SQLite: refuse to write (and report not ready) once the catalog file was deleted, emptied or
-        replaced under the running process, so no write goes into an unlinked or foreign file."""
-        if _conn is not None and not _conn.get_execution_options().get("tikhon_write", False):
-            return
+        """SQLite: refuse every transaction (and report not ready) once the catalog file was deleted,
+        emptied or replaced under the running process, so no write goes into an unlinked or foreign file
+        and no read answers from one. One ``stat`` per transaction."""
         now = _file_identity(self._catalog_file)
         if now is None:
             what = "deleted"
@@ -926,3 +925,13 @@ def _file_identity(path: Path | None) -> tuple[int, int, int] | None:
     except (FileNotFoundError, TypeError):
         return None
     return st.st_dev, st.st_ino, st.st_size
+
+
+def _catalog_label(engine: Any, root: Path) -> str:
+    """How messages name the catalog: a SQLite file relative to the store (no host paths in answers),
+    a server URL without its password."""
+    db = _sqlite_file(engine)
+    if db is None:
+        return safe_url(engine)
+    inside = db.is_relative_to(root)
+    return f"{db.relative_to(root).as_posix()} (SQLite, in the store folder)" if inside else f"{db.name} (SQLite)"

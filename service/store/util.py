@@ -6,9 +6,17 @@ from contextlib import contextmanager
 from datetime import datetime, timezone
 from typing import Any, Iterator
 
-from sqlalchemy.exc import SQLAlchemyError
+from sqlalchemy.exc import (
+    DatabaseError,
+    DataError,
+    IntegrityError,
+    InterfaceError,
+    OperationalError,
+    ProgrammingError,
+    SQLAlchemyError,
+)
 
-from service.errors import StorageFailure, TikhonError
+from service.errors import CatalogUnavailable, StorageFailure, TikhonError
 
 
 def utcnow() -> datetime:
@@ -38,7 +46,18 @@ def catalog_errors(what: str, url: str) -> Iterator[None]:
         raise
     except SQLAlchemyError as exc:
         msg = " ".join(str(getattr(exc, "orig", None) or exc).split())[:300]
+        if _unavailable(exc):
+            raise CatalogUnavailable(f"{what} failed: the catalog at {url} is unavailable ({msg}); nothing was "
+                                     "written, retry when it is back.") from exc
         raise StorageFailure(f"{what} failed in the catalog at {url}: {msg}") from exc
+
+
+def _unavailable(exc: SQLAlchemyError) -> bool:
+    """A catalog that cannot be reached or read (connection refused, file gone, malformed or not a
+    database), as opposed to a statement the catalog refused (integrity, programming, data errors)."""
+    if isinstance(exc, (IntegrityError, ProgrammingError, DataError)):
+        return False
+    return isinstance(exc, (OperationalError, InterfaceError, DatabaseError))
 
 
 def row_dict(row: Any) -> dict[str, Any]:
