@@ -390,18 +390,29 @@ class Worker:
             version = int(row["version"])
             decision["version"] = version
             if go_live:
-                self._go_live(name, version, jid, decision)
+                self._go_live(name, version, job, decision)
         except TikhonError as err:
             self._finish(jid, "failed", problem=_problem(err))
             return
         self._finish(jid, "succeeded", version=version, decision=decision)
-        log.info("job succeeded", extra={"job_id": jid, "model": name, "version": version, "went_live": go_live})
+        log.info("job succeeded", extra={"job_id": jid, "model": name, "version": version,
+                                       "went_live": decision.get("went_live")})
 
-    def _go_live(self, name: str, version: int, jid: str, decision: dict[str, Any]) -> None:
-        """Make ``version`` live with the job's decision as the history entry's reason and details."""
-        self.store.set_live(name, version, actor=f"worker:{self.worker_id}"[:200],
-                            reason=f"training job {jid}: {decision['reason']}",
-                            details={k: v for k, v in decision.items() if k != "comparison"} | {"job_id": jid})
+    def _go_live(self, name: str, version: int, job: dict[str, Any], decision: dict[str, Any]) -> None:
+        """Make ``version`` live with the job's decision as the history entry's reason and details, unless
+        the live version changed after the job was submitted: an operator's later change stands, the
+        history says why, and ``decision`` is updated to say the version did not go live."""
+        jid = job["id"]
+        seen = job.get("live_at_submit")
+        condition = {"expect_live": seen.get("version")} if isinstance(seen, dict) else {}
+        entry = self.store.set_live(name, version, actor=f"worker:{self.worker_id}"[:200],
+                                    reason=f"training job {jid}: {decision['reason']}",
+                                    details={k: v for k, v in decision.items() if k != "comparison"} | {"job_id": jid},
+                                    **condition)
+        if entry.get("superseded"):
+            decision.update(went_live=False, reason=entry["because"],
+                            live_seen=entry["details"]["live_seen"], live_now=entry["details"]["live_now"])
+            return
         if self.on_live_change is not None:
             self.on_live_change(name)
 
@@ -436,7 +447,7 @@ class Worker:
                 go_live, decision = decide(self.store, name, request, outcome, job.get("data_path"))
                 decision.update(version=version, resumed=True, reason=f"{note}; {decision['reason']}")
                 if go_live:
-                    self._go_live(name, version, jid, decision)
+                    self._go_live(name, version, job, decision)
         except TikhonError as err:
             self._finish(jid, "failed", problem=_problem(err))
             return

@@ -45,6 +45,7 @@ from service.store import artifact, layout
 from service.store.catalog import read_txn, write_txn
 from service.store.names import validate_name
 from service.store.schema import jobs as jobs_t
+from service.store.schema import models as models_t
 from service.store.util import catalog_errors, iso, row_dict, utcnow
 
 if TYPE_CHECKING:
@@ -92,6 +93,7 @@ class Jobs:
             "version": d["version"],
             "problem": d["problem"],
             "decision": d["decision"],
+            "live_at_submit": d.get("live_at_submit"),
         }
 
     def _row(self, conn, job_id: str, *, lock: bool = False) -> Any:
@@ -167,7 +169,10 @@ class Jobs:
                                 jobs_t.c.model_name == name, jobs_t.c.idempotency_key == idempotency_key))).first()
                             if existing is not None:
                                 raise _Replay(existing)
+                        live = conn.execute(select(models_t.c.live_version)
+                                            .where(models_t.c.name == name)).scalar()
                         conn.execute(insert(jobs_t).values(
+                            live_at_submit={"version": live},
                             id=job_id, model_name=name, state="queued", request=dict(request),
                             request_sha256=request_sha, data_path=str(final_path) if final_path else None,
                             idempotency_key=idempotency_key, attempts=0, worker_id=None, progress_done=0,

@@ -87,6 +87,8 @@ jobs = Table(
     Column("version", Integer, nullable=True),
     Column("problem", JSONV, nullable=True),
     Column("decision", JSONV, nullable=True),
+    # {"version": <the model's live version when the job was submitted, or null>}; NULL on older jobs.
+    Column("live_at_submit", JSONV, nullable=True),
     UniqueConstraint("model_name", "idempotency_key", name="uq_jobs_idempotency"),
     Index("ix_jobs_state_created", "state", "created_at"),
     Index("ix_jobs_model_created", "model_name", "created_at"),

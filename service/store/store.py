@@ -111,6 +111,7 @@ def _fault_point(step: str) -> None:
 
 
 ModelLoader = Callable[[dict, dict], Any]
+_UNSET: Any = object()  # "no condition" for set_live's expect_live
 
 
 def _engine_loader(manifest_body: dict, arrays: dict) -> Any:
@@ -454,13 +455,14 @@ class Store:
             self._rows[(name, version)] = (d, time.monotonic())
         return d
 
-    def load(self, name: str, version: int) -> LoadedVersion:
-        """Return the verified, rebuilt model of one version (from the cache when possible)."""
+    def load(self, name: str, version: int, *, fresh: bool = False) -> LoadedVersion:
+        """Return the verified, rebuilt model of one version (from the cache when possible; ``fresh``
+        verifies the files on disk again and replaces the cached copy)."""
         validate_name(name)
         version = self._check_version(name, version)
         row = self._version_row(name, version)
         key = (name, version, row["manifest_sha256"])
-        hit = self._cache.get(key)
+        hit = None if fresh else self._cache.get(key)
         if hit is not None:
             return hit
         folder = self._version_dir(name, version)
@@ -481,6 +483,16 @@ class Store:
         )
         self._cache.put(key, loaded, loaded.nbytes)
         return loaded
+
+    def verify(self, name: str, version: int) -> LoadedVersion:
+        """Verify one version from its files as a first load does (checksums, format, members, rebuilt by
+        the loader), whatever the cache holds. Raises ``IntegrityFailure`` naming the failed check."""
+        try:
+            return self.load(name, version, fresh=True)
+        except FileNotFoundError as exc:
+            raise IntegrityFailure(f"{layout.relative(exc.filename or '', self.root)} is missing") from None
+        except OSError as exc:
+            raise IntegrityFailure(f"its files cannot be read ({exc.strerror or exc})") from None
 
     def live_version(self, name: str) -> int | None:
         """The live version of ``name``; None when it has none or the model does not exist."""
@@ -565,9 +577,16 @@ class Store:
     # live version and history
 
     def set_live(
-        self, name: str, version: int, *, actor: str, reason: str, details: dict | None = None
+        self, name: str, version: int, *, actor: str, reason: str, details: dict | None = None,
+        expect_live: Any = _UNSET,
     ) -> dict[str, Any]:
         """Make ``version`` the live version of ``name`` and append the change to the history.
+
+        ``expect_live`` (a version number or None) makes the change conditional: when the live version is
+        no longer the one the caller saw (someone changed it since), nothing changes, and a history entry
+        that keeps the live version and says why is appended instead (``superseded`` is True in the
+        answer). A training job passes the live version it saw at submission, so its promotion never
+        undoes an operator's later change.
 
         Returns the history entry (``changed`` is False, and nothing is written, when the version was
         already live)."""
@@ -595,6 +614,19 @@ class Store:
             now = utcnow()
             entry = {"name": name, "at": now, "actor": actor, "from_version": m.live_version,
                      "to_version": version, "reason": reason, "details": details}
+            if expect_live is not _UNSET and m.live_version != expect_live and m.live_version != version:
+                because = (f"version {version} was not made live because the live version changed from "
+                           f"{expect_live if expect_live is not None else 'none'} to {m.live_version} after the job "
+                           "was submitted (that later change stands)")
+                why = f"{reason}; {because}"
+                kept = {**(details or {}), "not_made_live": version, "live_seen": expect_live,
+                        "live_now": m.live_version}
+                res = conn.execute(insert(history_t).values(
+                    model_name=name, at=now, actor=actor, from_version=m.live_version,
+                    to_version=m.live_version, reason=why, details=kept))
+                return {**entry, "to_version": m.live_version, "reason": why, "details": kept,
+                        "id": res.inserted_primary_key[0], "at": iso(now), "changed": False, "superseded": True,
+                        "because": because}
             if m.live_version == version:
                 out = {**entry, "id": None, "at": iso(now), "changed": False}
             else:

@@ -10,7 +10,7 @@ from fastapi.responses import Response
 from service.api import auth
 from service.api.render import json_response, read_json
 from service.api.schemas import LiveRequest, schema_ref
-from service.errors import InvalidData
+from service.errors import Conflict, IntegrityFailure, InvalidData
 from service.store.names import validate_name
 
 router = APIRouter(prefix="/v1", tags=["models"])
@@ -131,6 +131,16 @@ async def set_live(request: Request, name: str = NamePath) -> Response:
     store = _store(request)
 
     def change() -> Any:
+        try:
+            store.verify(name, body.version)  # a version that would answer 500 on every prediction never goes live
+        except IntegrityFailure as err:
+            live = store.live_version(name)
+            stays = f"version {live} stays live" if live is not None else "the model stays without a live version"
+            raise Conflict(
+                f"version {body.version} of model {name!r} failed verification ({err}); {stays}. Make another "
+                "version live, or delete this one and train again.",
+                errors=[{"field": "version", "value": body.version, "message": "failed verification: " + str(err)}],
+            ) from None
         return store.set_live(name, body.version, actor=_actor(request), reason=body.reason)
 
     result = await to_thread.run_sync(change)

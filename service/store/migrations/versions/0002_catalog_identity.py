@@ -1,4 +1,5 @@
-"""Catalog identity: one row naming this catalog with a random id.
+"""Catalog identity (one row naming this catalog with a random id), and the live version a training
+job saw when it was submitted.
 
 The id lets the store prove that a version folder left half-published (a ``.publishing`` marker inside
 it, see ``service.store.store``) was begun against *this* catalog, and lets a running server notice that
@@ -29,7 +30,12 @@ def upgrade() -> None:
         sa.Column("value", sa.String(200), nullable=False),
     )
     op.bulk_insert(table, [{"key": "catalog_id", "value": uuid.uuid4().hex}])
+    # {"version": <live version or null>} at submission; NULL for jobs submitted before this revision.
+    with op.batch_alter_table("jobs") as batch:
+        batch.add_column(sa.Column("live_at_submit", sa.JSON(none_as_null=True), nullable=True))
 
 
 def downgrade() -> None:
+    with op.batch_alter_table("jobs") as batch:
+        batch.drop_column("live_at_submit")
     op.drop_table("catalog_info")
