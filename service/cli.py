@@ -655,8 +655,11 @@ def _num(v: Any) -> str:
 
 
 def _write_predictions(out: Path, answer: dict, with_interval: bool) -> None:
-    """Write atomically (temporary name, then rename). CSV numbers are shortest round-trip decimals."""
+    """Write atomically (temporary name, then rename). CSV numbers are shortest round-trip decimals (a
+    null value an empty cell); text cells are neutralized against formula injection."""
     import csv as _csv
+
+    from service.csvcells import number_cell, text_cell
 
     out.parent.mkdir(parents=True, exist_ok=True)
     tmp = out.with_name(out.name + ".part")
@@ -672,8 +675,9 @@ def _write_predictions(out: Path, answer: dict, with_interval: bool) -> None:
                 bounds = []
                 if with_interval:
                     lo, hi = p.get("interval") or (None, None)
-                    bounds = ["" if lo is None else repr(lo), "" if hi is None else repr(hi)]
-                w.writerow([model["name"], model["version"], repr(p["value"]), *bounds, "; ".join(p.get("warnings") or [])])
+                    bounds = [number_cell(lo), number_cell(hi)]
+                w.writerow([text_cell(model["name"]), model["version"], number_cell(p["value"]), *bounds,
+                            text_cell("; ".join(p.get("warnings") or []))])
     os.replace(tmp, out)
 
 

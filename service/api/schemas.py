@@ -107,7 +107,10 @@ class PredictRequest(BaseModel):
 
 
 class PredictedRow(BaseModel):
-    value: float
+    value: float | None = Field(
+        ..., description="The prediction; null when it is not a finite number (an input so far outside the "
+        "training data that the basis overflowed), and a warning then says so."
+    )
     interval: list[float | None] | None = Field(
         None, description="[lower, upper] at the requested level; a bound is null when the training set is too "
         "small for that level (CV+ needs about 1/(1-level) rows)."

@@ -18,6 +18,7 @@ from anyio import to_thread
 from fastapi import APIRouter, Request
 from fastapi.responses import Response
 
+from service.csvcells import number_cell, text_cell
 from service.api import auth, tables
 from service.api.models import Served
 from service.api.render import media_type, parse_json
@@ -196,17 +197,18 @@ def _json(served: Served, detail: dict[str, Any], with_interval: bool) -> bytes:
 
 
 def _csv(detail: dict[str, Any], with_interval: bool) -> str:
-    """CSV answer; numbers are written with Python's shortest round-trip repr, so they parse back exactly."""
+    """CSV answer; numbers are written with Python's shortest round-trip repr, so they parse back exactly
+    (a non-finite value as an empty cell); text cells are neutralized against formula injection."""
     out = io.StringIO()
     w = csv.writer(out, lineterminator="\n")
-    values = detail["value"].tolist()
-    warn = ["; ".join(ws) for ws in detail["warnings"]]
+    values = [number_cell(v) for v in detail["value"].tolist()]
+    warn = [text_cell("; ".join(ws)) for ws in detail["warnings"]]  # labels and names come from callers
     if with_interval:
         w.writerow(["value", "lower", "upper", "warnings"])
-        lower = ["" if not math.isfinite(v) else repr(v) for v in detail["lower"].tolist()]
-        upper = ["" if not math.isfinite(v) else repr(v) for v in detail["upper"].tolist()]
-        w.writerows(zip(map(repr, values), lower, upper, warn))
+        lower = [number_cell(v) for v in detail["lower"].tolist()]
+        upper = [number_cell(v) for v in detail["upper"].tolist()]
+        w.writerows(zip(values, lower, upper, warn))
     else:
         w.writerow(["value", "warnings"])
-        w.writerows(zip(map(repr, values), warn))
+        w.writerows(zip(values, warn))
     return out.getvalue()
