@@ -11,13 +11,16 @@ folder is complete and durable in its final place. Step by step (``name`` alread
                (SQLite: BEGIN IMMEDIATE, one writer at a time; PostgreSQL: pg_advisory_xact_lock).
     3. number  version = models.last_version + 1 (the row is created on the first publish).
                Under the lock, a folder <store>/<name>/<version>/ that already exists cannot be
-               anyone's work in progress: it is the orphan of a publish that crashed after its rename
-               and before its commit. It is moved to <store>/.trash/ and removed.
-    4. write   manifest.json (which records name, version and the SHA-256 of arrays.npz) into the
-               staging folder; fsync it and the folder.
+               anyone's work in progress. When its .publishing marker names this catalog it is the
+               orphan of a publish that crashed after its rename and before its commit: it is moved to
+               <store>/.trash/ and removed. Otherwise (a lost or replaced catalog) it is kept and the
+               publish is refused until ``tikhon store recover`` registers it.
+    4. write   manifest.json (which records name, version and the SHA-256 of arrays.npz) and the
+               .publishing marker (this catalog's id) into the staging folder; fsync it and the folder.
     5. rename  os.rename(<staging>/<token>, <store>/<name>/<version>); fsync <store>/<name>/.
     6. record  UPDATE models.last_version; INSERT the versions row with the manifest's SHA-256.
-    7. commit  the transaction; the lock is released.
+    7. commit  the transaction; the lock is released. Then the .publishing marker is removed (the
+               sweep clears one left by a crash here, since the row now vouches for the folder).
 
 What a SIGKILL leaves behind, by the step it interrupts:
 
@@ -35,12 +38,19 @@ tombstone, so its number is never handed out again.
 
 Start-up sweep
 --------------
-``Store()`` calls ``sweep()``: staging folders whose lock file is no longer held (flock is released when
-its process dies), ``.trash`` leftovers, version folders without a live catalog row (checked under the
-per-name lock, so a publish in flight elsewhere is never touched), and job data folders of finished or
-unknown jobs. Staging locks rely on flock, which works on a local file system; several hosts sharing
-one store over NFS should share the catalog on PostgreSQL and keep the store on a file system with
-working flock.
+``Store()`` first claims the folder (``service.store.layout``: a ``.tikhon-store`` marker; a folder of
+files Tikhon did not write is refused before anything is touched), then calls ``sweep()``, which removes
+only what this service wrote and can prove unfinished: staging folders whose marked lock file is no
+longer held (flock is released when its process dies), ``.trash`` entries of its own naming, version
+folders with a ``.publishing`` marker naming *this* catalog and no row (a publish that crashed between
+rename and commit; checked under the per-name lock, so a publish in flight elsewhere is never touched),
+version folders with a ``.deleting`` marker naming this catalog and a tombstone row, and job data folders
+of jobs this catalog lists as finished. Every other version folder without a catalog row is kept,
+logged and reported by ``ping()`` (readiness) until ``recover()`` registers it: an empty, lost or wrong
+catalog never costs a stored version. In step 3 above, a folder already at the target number is
+discarded only under the same proof; otherwise the publish is refused (``Conflict``) and the folder kept.
+Staging locks rely on flock, which works on a local file system; several hosts sharing one store over
+NFS should share the catalog on PostgreSQL and keep the store on a file system with working flock.
 
 Reading
 -------
