@@ -84,6 +84,7 @@ from service.store.catalog import (
 from service.store.names import validate_name
 from service.store.schema import history as history_t
 from service.store.schema import models as models_t
+from service.store.schema import VERSION_MAX
 from service.store.schema import versions as versions_t
 from service.store.util import as_utc, catalog_errors, iso, row_dict, utcnow
 
@@ -337,6 +338,9 @@ class Store:
             ) from None
         if v < 1:
             raise NotFound(f"version {v} of model {name!r} does not exist; versions are numbered from 1.")
+        if v > VERSION_MAX:  # beyond the catalog's integer column: no such version (never an OverflowError)
+            raise NotFound(f"version {v} of model {name!r} does not exist; version numbers go up to {VERSION_MAX}.",
+                           errors=[{"field": "version", "value": str(v), "message": f"at most {VERSION_MAX}"}])
         return v
 
     def _fresh(self, stamp: float) -> bool:
