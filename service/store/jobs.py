@@ -139,7 +139,7 @@ class Jobs:
         if data_path is not None:
             source = Path(data_path)
             if not source.is_file():
-                raise InvalidData(f"data file {str(source)!r} of the training job does not exist or is not a file.")
+                raise InvalidData(f"data file {source.name!r} of the training job does not exist or is not a file.")
             h.update(b"\0data\0")
             h.update(artifact.sha256_file(source).encode())
         request_sha = h.hexdigest()

@@ -77,3 +77,39 @@ def test_store_refuses_versions_beyond_the_catalog_range_as_not_found(tmp_path, 
         assert store.live_version("pumps") == 1
     finally:
         store.close()
+
+
+def _train(c: httpx.Client, source: str) -> httpx.Response:
+    return c.post("/v1/models/pumps/trainings", json={"data": {"source": source}, "spec": {"target": "energy_kwh"}})
+
+
+def test_source_names_too_long_or_looping_are_refused_with_relative_paths(server, rk):
+    srv, settings = server
+    data = os.path.realpath(settings["data_dir"])
+    for folder in ("loops", "pumps"):
+        os.makedirs(os.path.join(data, folder), exist_ok=True)
+    # a <-> b: a symbolic link loop inside the data folder, and a link pointing at itself
+    for name, target in (("a.csv", "b.csv"), ("b.csv", "a.csv"), ("self.csv", "self.csv")):
+        link = os.path.join(data, "loops", name)
+        if not os.path.lexists(link):
+            os.symlink(target, link)
+    os.makedirs(os.path.join(data, "deep"), exist_ok=True)
+    if not os.path.lexists(os.path.join(data, "deep", "up")):
+        os.symlink("up", os.path.join(data, "deep", "up"))  # a folder link that loops: deep/up/up/...
+    long_name = "x" * 300 + ".csv"  # over NAME_MAX (255 bytes, from memory)
+    cases = {
+        long_name: "name too long",
+        f"pumps/{'y' * 256}/june.csv": "name too long",
+        "loops/a.csv": "symbolic link loop",
+        "loops/self.csv": "symbolic link loop",
+        "deep/up/x.csv": "symbolic link loop",
+    }
+    with httpx.Client(base_url=srv.base, timeout=60) as c:
+        for source, short in cases.items():
+            for spec in ({"target": "energy_kwh"}, {"target": "energy_kwh", "execution": {"mode": "streaming"}}):
+                r = c.post("/v1/models/pumps/trainings", json={"data": {"source": source}, "spec": spec})
+                p = rk.assert_problem(r, 422)
+                assert p["errors"][0]["field"] == "data.source" and p["errors"][0]["message"] == short, (source, p)
+                assert source[:40] in p["detail"], p["detail"]
+                assert data not in r.text and settings["data_dir"] not in r.text, r.text
+        assert c.get("/v1/trainings").json()["trainings"] == []  # nothing was queued

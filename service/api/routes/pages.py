@@ -14,6 +14,7 @@ from urllib.parse import quote, urlsplit
 from fastapi import APIRouter, Path, Query, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 
+from service import paths
 from service.api import auth, pages
 from service.errors import Forbidden, NotFound, TikhonError, Unauthorized
 from service.store.names import validate_name
@@ -70,7 +71,7 @@ def _guarded(request: Request, render) -> Response:
     except TikhonError as exc:  # the same message and status as the JSON problem, as a page
         from service.api.problems import status_for
 
-        return _html(pages.error_page(exc.title, str(exc), signed_in=signed_in), status_for(exc))
+        return _html(pages.error_page(exc.title, paths.redact(str(exc)), signed_in=signed_in), status_for(exc))
 
 
 @router.get("/", response_class=HTMLResponse)
