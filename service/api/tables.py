@@ -312,8 +312,11 @@ def stage(table: Table, path: Path) -> Path:
         with open(tmp, "rb") as fh:
             os.fsync(fh.fileno())
         os.replace(tmp, path)
-    except OSError as exc:  # disk full, permissions: nothing half-written stays behind
-        tmp.unlink(missing_ok=True)
+    except OSError as exc:  # disk full, permissions, read-only: nothing half-written stays behind
+        try:
+            tmp.unlink(missing_ok=True)
+        except OSError:  # a read-only file system refuses even this (EROFS) when nothing was written
+            pass
         reason = getattr(exc, "strerror", None) or " ".join(str(exc).split())[:200]
         raise StorageFailure(
             f"the training data could not be staged in the store folder (TIKHON_STORE) ({paths.redact(reason)}); "

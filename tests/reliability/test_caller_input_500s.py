@@ -3,6 +3,8 @@
 * A version number beyond the catalog's integer range answers 404 or 422, never 500 (the catalog's
   version column is a 32-bit INTEGER on PostgreSQL, 64-bit on SQLite; Python's ``int()`` also refuses
   strings of more than 4300 digits: common practice to check digits and length before converting).
+* A training submission on a store folder that became read-only answers 507 like a full disk (the
+  clean-up of the staged file used to raise inside its own error handler: EROFS refuses even an unlink).
 * A ``source`` whose file name is too long (ENAMETOOLONG, a component over NAME_MAX = 255 bytes on Linux
   file systems, from memory) or a symbolic link loop inside the data folder (ELOOP) answers 422 naming the
   path relative to the data folder, never 500, and never the folder's absolute path.
@@ -10,7 +12,11 @@
 
 from __future__ import annotations
 
+import contextlib
+import json
 import os
+import subprocess
+from pathlib import Path
 
 import httpx
 import pytest
@@ -113,3 +119,59 @@ def test_source_names_too_long_or_looping_are_refused_with_relative_paths(server
                 assert source[:40] in p["detail"], p["detail"]
                 assert data not in r.text and settings["data_dir"] not in r.text, r.text
         assert c.get("/v1/trainings").json()["trainings"] == []  # nothing was queued
+
+
+@contextlib.contextmanager
+def read_only_disk(path: Path):
+    """A tmpfs at ``path``; yields a function ``ro(flag)`` that remounts it read-only (True) or writable.
+
+    A real read-only file system (EROFS from the kernel), not a permission bit: as root, chmod stops no
+    write, and a monkeypatched os call would not reach pyarrow's own file writer."""
+    path.mkdir(parents=True, exist_ok=True)
+    res = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=64m", "tmpfs", str(path)], capture_output=True, text=True)
+    if res.returncode != 0:
+        reason = f"cannot mount a tmpfs here ({res.stderr.strip() or res.returncode}); run as root"
+        if os.environ.get("TIKHON_CI_FULL"):
+            pytest.fail(reason)
+        pytest.skip(reason)
+
+    def ro(flag: bool) -> None:
+        subprocess.run(["mount", "-o", f"remount,{'ro' if flag else 'rw'}", str(path)], check=True)
+
+    try:
+        yield ro
+    finally:
+        subprocess.run(["mount", "-o", "remount,rw", str(path)], check=False)
+        subprocess.run(["umount", "-l", str(path)], check=False)
+
+
+def test_training_on_a_read_only_store_is_a_storage_failure(tmp_path, rk):
+    """The store folder on a file system remounted read-only (the catalog elsewhere, as with PostgreSQL):
+    a JSON and a multipart submission answer 507 storage-failure like a full disk, nothing is written, and
+    the same submission is accepted once the store is writable again."""
+    disk = tmp_path / "disk"
+    with read_only_disk(disk) as ro:
+        settings = rk.base_settings(tmp_path, embedded_worker=False, store=str(disk / "store"),
+                                    database_url=f"sqlite:///{tmp_path / 'catalog.db'}")
+        store = rk.open_store(settings)
+        rk.publish_demo(store, "pumps", n=200, seed=41)
+        store.close()
+        body = {"data": {"csv": rk.csv_text(rk.demo_rows(300, seed=42))}, "spec": rk.QUICK_SPEC}
+        with rk.server_process(tmp_path, **settings) as server:
+            ro(True)
+            snap = rk.store_snapshot(settings["store"], rk.catalog_url_of(settings))
+            r = httpx.post(f"{server.base}/v1/models/pumps/trainings", json=body, timeout=120)
+            p = rk.assert_problem(r, 507)
+            assert p["type"] == "/problems/storage-failure" and "Read-only file system" in p["detail"], p
+            assert str(disk) not in r.text  # the store's path stays relative (item 7)
+            r = httpx.post(f"{server.base}/v1/models/pumps/trainings", timeout=120,
+                           files={"file": ("june.csv", body["data"]["csv"].encode(), "text/csv")},
+                           data={"spec": json.dumps(rk.QUICK_SPEC)})
+            assert rk.assert_problem(r, 507)["type"] == "/problems/storage-failure"
+            assert httpx.get(f"{server.base}/readyz", timeout=60).status_code == 503
+            assert rk.store_snapshot(settings["store"], rk.catalog_url_of(settings)) == snap
+            assert httpx.get(f"{server.base}/v1/trainings", timeout=60).json()["trainings"] == []
+            assert server.alive()
+            ro(False)
+            r = httpx.post(f"{server.base}/v1/models/pumps/trainings", json=body, timeout=120)
+            assert r.status_code == 202 and r.json()["state"] == "queued", r.text
