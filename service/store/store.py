@@ -71,7 +71,7 @@ from sqlalchemy import and_, func, insert, select, text, update
 from service.errors import Conflict, IntegrityFailure, InvalidSpec, NotFound, StorageFailure, TikhonError
 from service.settings import Settings
 from service.store import artifact
-from service.store.cache import LRUCache
+from service.store.cache import LRUCache, footprint
 from service.store.catalog import (
     create_catalog_engine,
     lock_name,
@@ -393,7 +393,8 @@ class Store:
         loaded = LoadedVersion(
             name=name, version=version, checksum=row["manifest_sha256"], arrays_sha256=row["arrays_sha256"],
             created_at=manifest["created_at"], manifest=manifest, model=model,
-            nbytes=arrays_size + manifest_size,
+            # what it holds in memory (the rebuilt model may keep derived arrays), at least the file's arrays
+            nbytes=max(arrays_size + manifest_size, footprint((model, manifest))),
         )
         self._cache.put(key, loaded, loaded.nbytes)
         return loaded
