@@ -3,7 +3,8 @@
 Every command except ``serve`` and ``worker`` talks to a server through ``service.client.Client``
 (``--url`` / ``TIKHON_URL``, ``--key`` / ``TIKHON_KEY``). ``serve`` and ``worker`` start the service
 itself; ``keys create --local`` writes the first key straight into the catalog when no server can be
-reached yet (the bootstrap of a server that must listen beyond loopback).
+reached yet (the bootstrap of a server that must listen beyond loopback), and ``keys revoke --local``
+revokes a key there (the only way to revoke the last admin key).
 
 Exit codes: 0 ok; 1 the operation failed (a training job failed or was cancelled, the server could not
 be reached or answered 5xx); 2 bad usage (a wrong option or argument, or a 4xx answer: the request
@@ -835,7 +836,7 @@ def prune(
 @keys_app.command("create")
 def keys_create(
     ctx: typer.Context,
-    scope: Annotated[list[str], typer.Option("--scope", help="predict, train or admin; repeatable.")],
+    scope: Annotated[list[str], typer.Option("--scope", help="predict, train, admin or metrics; repeatable.")],
     label: Annotated[str, typer.Option(help="Who or what uses the key.")] = "",
     local: Annotated[bool, typer.Option("--local", help="Write the key into the catalog of this machine's settings "
                                         "(TIKHON_STORE / TIKHON_DATABASE_URL) without a server: the bootstrap of a "
@@ -875,10 +876,23 @@ def keys_list(ctx: typer.Context) -> None:
 
 
 @keys_app.command("revoke")
-def keys_revoke(ctx: typer.Context, key_id: Annotated[str, typer.Argument(help="The key id ('tikhon keys list').")]) -> None:
-    """Revoke an API key."""
-    with _client(ctx) as tk:
-        entry = tk.revoke_key(key_id)
+def keys_revoke(
+    ctx: typer.Context,
+    key_id: Annotated[str, typer.Argument(help="The key id ('tikhon keys list').")],
+    local: Annotated[bool, typer.Option("--local", help="Revoke in the catalog of this machine's settings "
+                                        "(TIKHON_STORE / TIKHON_DATABASE_URL) without a server; the only way to "
+                                        "revoke the last admin key. A running server stays closed: it then "
+                                        "answers 401 until a new key is made.")] = False,
+) -> None:
+    """Revoke an API key (the last admin key only with --local)."""
+    if local:
+        from service.store import Store
+
+        with Store(_settings()) as store:
+            entry = store.keys.revoke(key_id)
+    else:
+        with _client(ctx) as tk:
+            entry = tk.revoke_key(key_id)
     if _opts(ctx).json:
         _print_json(entry)
     else:

@@ -14,6 +14,7 @@ from typing import Any
 from fastapi import Depends, FastAPI
 from fastapi.middleware.cors import CORSMiddleware
 
+from service import paths
 from service.api import auth, problems
 from service.api.metrics import ApiMetrics
 from service.api.middleware import BodyLimit, RequestContext
@@ -58,6 +59,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None) -> Fa
     )
     metrics = ApiMetrics()
     app.state.settings = settings
+    paths.register(settings)  # problem details name these folders' paths relative to them, never absolute
     app.state.store = store
     app.state.metrics = metrics
     app.state.gate = auth.KeyGate(store.keys, settings.auth_cache_s)

@@ -1,4 +1,4 @@
-"""API keys: ``Authorization: Bearer <key>`` with scopes ``predict``, ``train`` and ``admin``.
+"""API keys: ``Authorization: Bearer <key>`` with scopes ``predict``, ``train``, ``admin`` and ``metrics``.
 
 Each ``/v1`` route declares which scopes may call it in its OpenAPI ``security`` requirement (one
 requirement object per accepted scope, so any one of them suffices, as OpenAPI 3.1 defines). The
@@ -9,6 +9,12 @@ document and the enforcement cannot drift apart. A route that declares nothing r
 When no active key exists at all, the routes are open: ``service.api.server.run`` then refuses to
 bind anything but a loopback address. Key checks and the "does any key exist" answer are cached per
 process for ``settings.auth_cache_s`` seconds.
+
+Closed stays closed: once the gate has seen an active key (or the server started with keys, see
+``KeyGate.close``), it never opens again in that process. If every key then disappears (revoked with
+``tikhon keys revoke --local``, or the catalog lost its rows), each guarded route answers 401 until a
+new key is made (``tikhon keys create --local``); the health routes stay open. The last active admin
+key cannot be revoked over HTTP at all (``service.api.routes.admin``).
 """
 
 from __future__ import annotations
@@ -23,13 +29,13 @@ from fastapi import Request
 from service.errors import Forbidden, Unauthorized
 
 SCHEME = "bearerKey"
-SCOPES = ("predict", "train", "admin")
+SCOPES = ("predict", "train", "admin", "metrics")
 
 SECURITY_SCHEME = {
     "type": "http",
     "scheme": "bearer",
-    "description": "An API key made with `tikhon keys create --scope predict|train|admin`. When no key exists the "
-    "server only listens on loopback and needs none.",
+    "description": "An API key made with `tikhon keys create --scope predict|train|admin|metrics`. When no key "
+    "exists the server only listens on loopback and needs none.",
 }
 
 
@@ -46,6 +52,7 @@ READ = scopes("predict", "train", "admin")  # metadata a dashboard or a caller m
 PREDICT = scopes("predict", "admin")
 TRAIN = scopes("train", "admin")
 ADMIN = scopes("admin")
+METRICS = scopes("metrics", "admin")  # the Prometheus scrape (/metrics): a scraper's key reads nothing else
 
 
 def accepted_scopes(route: Any) -> frozenset[str]:
@@ -74,6 +81,15 @@ class KeyGate:
         self._lock = threading.Lock()
         self._any: tuple[float, bool] | None = None
         self._verified: dict[str, tuple[float, tuple[frozenset[str], str] | None]] = {}
+        self._closed = False  # keys are required for good (see the module docstring)
+
+    def close(self) -> None:
+        """Require keys from now on, whatever the catalog says later (a server started with keys)."""
+        self._closed = True
+
+    @property
+    def closed(self) -> bool:
+        return self._closed
 
     def forget(self) -> None:
         with self._lock:
@@ -86,6 +102,8 @@ class KeyGate:
         if cached is not None and now - cached[0] < self._ttl:
             return cached[1]
         value = bool(self._keys.any_active())
+        if value:
+            self._closed = True
         self._any = (now, value)
         return value
 
@@ -106,7 +124,7 @@ class KeyGate:
         now = time.monotonic()
         if self._any is None or now - self._any[0] >= self._ttl:
             return True
-        if not self._any[1]:
+        if not self._any[1] and not self._closed:
             return False
         secret = _bearer(header)
         if secret is None:
@@ -118,7 +136,12 @@ class KeyGate:
         """Raise Unauthorized/Forbidden, or return the key id (None when no key is needed)."""
         accepted = frozenset(accepted)
         if not self._any_active():
-            return None
+            if not self._closed:
+                return None
+            raise Unauthorized(
+                "This server requires API keys but no active key exists any more (all were revoked or the catalog "
+                "lost them); make one on the server's machine with 'tikhon keys create --local --scope admin'."
+            )
         secret = _bearer(header)
         if secret is None:
             raise Unauthorized(

@@ -174,6 +174,15 @@ def check_idempotency_key(key: str | None) -> str | None:
     return key
 
 
+def discard(path: Path) -> None:
+    """Remove a staged file that no job took over; a store that refuses even that (read-only, gone) leaves it
+    to the start-up sweep rather than replacing the submission's own answer with a clean-up error."""
+    try:
+        Path(path).unlink(missing_ok=True)
+    except OSError:
+        pass
+
+
 def stage(store, cols: tables.Table) -> Path:
     """Write the validated table under the store's job area; the job's folder takes it over on submit."""
     return tables.stage(cols, Path(store.jobs.incoming_dir) / f"{uuid.uuid4().hex}-{DATA_FILE}")

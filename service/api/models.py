@@ -4,23 +4,24 @@ A prediction resolves its version once (``live`` or the pinned number), takes th
 it, and uses that one object for the numbers and for the ``model`` block of the response, so the block
 always describes the version that produced the numbers, even while the live version changes.
 
-Versions are immutable, so a ``Served`` object never goes stale; the LRU here is bounded by the same
-count as the store's cache. The live version number is cached for ``settings.live_cache_s`` seconds;
+Versions are immutable, so a ``Served`` object never goes stale; the LRU here is bounded like the
+store's cache, by ``settings.cache_models`` entries and ``settings.cache_bytes`` bytes (each entry sized
+by what its loaded version holds in memory). A version larger than the whole byte bound is served but
+not kept: the next request loads it again. The live version number is cached for ``settings.live_cache_s`` seconds;
 a change made through this process (``PUT /v1/models/{name}/live``, a worker promotion in the same
 process) clears it at once.
 """
 
 from __future__ import annotations
 
-import threading
 import time
-from collections import OrderedDict
 from dataclasses import dataclass, field
 from typing import Any
 
 import orjson
 
 from service.errors import NotFound
+from service.store.cache import LRUCache
 
 
 @dataclass
@@ -32,6 +33,7 @@ class Served:
     block: dict[str, Any]
     inputs: list[str] = field(default_factory=list)
     block_json: bytes = b""
+    nbytes: int = 0  # the loaded version's size in memory (service.store.cache.footprint)
 
     def __post_init__(self) -> None:
         self.block_json = orjson.dumps(self.block)
@@ -55,10 +57,8 @@ class ModelCache:
     def __init__(self, store, settings, metrics=None):
         self._store = store
         self._ttl = settings.live_cache_s
-        self._limit = settings.cache_models
         self._metrics = metrics
-        self._lock = threading.Lock()
-        self._served: OrderedDict[tuple[str, int], Served] = OrderedDict()
+        self._served = LRUCache(settings.cache_models, settings.cache_bytes)
         self._live: dict[str, tuple[float, int]] = {}
 
     # -- live version -------------------------------------------------------------------------------
@@ -88,12 +88,8 @@ class ModelCache:
     # -- loaded versions ----------------------------------------------------------------------------
     def cached(self, name: str, version: int) -> Served | None:
         served = self._served.get((name, version))
-        if served is not None:
-            if self._metrics is not None:
-                self._metrics.cache_hits.inc()
-            with self._lock:
-                if (name, version) in self._served:
-                    self._served.move_to_end((name, version))
+        if served is not None and self._metrics is not None:
+            self._metrics.cache_hits.inc()
         return served
 
     def load(self, name: str, version: int) -> Served:
@@ -109,15 +105,16 @@ class ModelCache:
             name=name, version=int(version), model=model, manifest=manifest,
             block=model_block(name, version, manifest, model),
             inputs=list(model.features) + list(getattr(model.categories, "names", [])),
+            nbytes=int(getattr(loaded, "nbytes", 0) or 0),
         )
-        with self._lock:
-            self._served[(name, int(version))] = served
-            while len(self._served) > self._limit:
-                self._served.popitem(last=False)
+        served.nbytes += len(served.block_json)
+        self._served.put((name, int(version)), served, served.nbytes)  # not kept when larger than the bound
         return served
 
+    def stats(self) -> dict[str, int]:
+        """Entries and bytes held, and the bounds (``LRUCache.stats``)."""
+        return self._served.stats()
+
     def forget(self, name: str, version: int | None = None) -> None:
-        with self._lock:
-            for key in [k for k in self._served if k[0] == name and (version is None or k[1] == version)]:
-                del self._served[key]
+        self._served.discard_where(lambda k: k[0] == name and (version is None or k[1] == version))
         self.forget_live(name)

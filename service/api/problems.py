@@ -25,6 +25,7 @@ from starlette.exceptions import HTTPException as StarletteHTTPException
 from starlette.responses import Response
 
 from service import errors as E
+from service import paths
 
 PROBLEM_MEDIA_TYPE = "application/problem+json"
 log = logging.getLogger("tikhon.api")
@@ -94,6 +95,7 @@ def stored_problem(problem: dict[str, Any] | None) -> dict[str, Any] | None:
     type (documented at that address) and their status here, at the one HTTP boundary."""
     if not isinstance(problem, dict):
         return problem
+    problem = paths.redact_all(problem)  # recorded by a worker, maybe before the paths were made relative
     kind = problem.get("type")
     if isinstance(kind, str) and kind and "/" not in kind:
         problem = {**problem, "type": f"/problems/{kind}"}
@@ -160,16 +162,18 @@ def problem_body(
     *, slug: str, title: str, status: int, detail: str, instance: str | None = None,
     request_id: str | None = None, errors: list[dict[str, Any]] | None = None, **extra: Any
 ) -> dict[str, Any]:
-    body: dict[str, Any] = {"type": f"/problems/{slug}", "title": title, "status": status, "detail": detail}
+    # No absolute path of the data folder or the store leaves the server (service.paths.redact).
+    body: dict[str, Any] = {"type": f"/problems/{slug}", "title": title, "status": status,
+                            "detail": paths.redact(detail)}
     if instance:
         body["instance"] = as_uri_reference(instance)
     if request_id:
         body["request_id"] = request_id
     if errors:
-        body["errors"] = [_jsonable(e) for e in errors]
+        body["errors"] = [paths.redact_all(_jsonable(e)) for e in errors]
     for key, value in extra.items():
         if key not in body:
-            body[key] = _jsonable(value)
+            body[key] = paths.redact_all(_jsonable(value))
     return body
 
 

@@ -12,6 +12,7 @@ from typing import Any, Literal
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
 from service.errors import InvalidData
+from service.store.schema import VERSION_MAX
 
 _FORBID = ConfigDict(extra="forbid")
 
@@ -134,7 +135,7 @@ class PredictResponse(BaseModel):
 
 class LiveRequest(BaseModel):
     model_config = _FORBID
-    version: int = Field(..., ge=1)
+    version: int = Field(..., ge=1, le=VERSION_MAX)
     reason: str = Field(..., min_length=1, max_length=1000, description="Why the live version changes (kept in the history).")
 
 

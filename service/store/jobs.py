@@ -40,7 +40,7 @@ from typing import TYPE_CHECKING, Any, Mapping
 from sqlalchemy import and_, insert, select, update
 from sqlalchemy.exc import IntegrityError
 
-from service.errors import Conflict, InvalidData, InvalidSpec, NotFound
+from service.errors import Conflict, InvalidData, InvalidSpec, NotFound, StorageFailure
 from service.store import artifact, layout
 from service.store.catalog import read_txn, write_txn
 from service.store.names import validate_name
@@ -141,7 +141,7 @@ class Jobs:
         if data_path is not None:
             source = Path(data_path)
             if not source.is_file():
-                raise InvalidData(f"data file {str(source)!r} of the training job does not exist or is not a file.")
+                raise InvalidData(f"data file {source.name!r} of the training job does not exist or is not a file.")
             h.update(b"\0data\0")
             h.update(artifact.sha256_file(source).encode())
         request_sha = h.hexdigest()
@@ -155,10 +155,18 @@ class Jobs:
         final_path: Path | None = None
         if source is not None:
             target_dir = self.folder / job_id
-            target_dir.mkdir(parents=True)
-            layout.write_publishing_marker(target_dir, self._store.catalog_id, job_id)  # until the row commits
             final_path = target_dir / source.name
-            shutil.move(str(source), str(final_path))
+            try:
+                target_dir.mkdir(parents=True)
+                layout.write_publishing_marker(target_dir, self._store.catalog_id, job_id)  # until the row commits
+                shutil.move(str(source), str(final_path))
+            except OSError as exc:  # full or read-only store: a storage problem (507), nothing half-moved
+                self._drop_folder(job_id)
+                raise StorageFailure(
+                    f"the training data could not be moved into the job area of the store folder (TIKHON_STORE) "
+                    f"({exc.strerror or type(exc).__name__}); nothing was stored and no job was created. Check "
+                    "that the store folder is writable and has free space, then submit again."
+                ) from None
         now = utcnow()
         try:
             with self._errors(f"submitting a training job for {name!r}"):

@@ -35,6 +35,10 @@ models = Table(
     Column("live_version", Integer, nullable=True),
 )
 
+# Version numbers are INTEGER columns: 32-bit signed on PostgreSQL (64-bit on SQLite). Every catalog
+# answers for this range only, so a caller's number beyond it is "no such version", never an overflow.
+VERSION_MAX = 2**31 - 1
+
 # One row per published version. A deleted version keeps its row (``deleted_at`` set) so its number
 # stays taken and the history that mentions it stays readable.
 versions = Table(

@@ -91,7 +91,7 @@ from service.errors import (
 )
 from service.settings import Settings
 from service.store import artifact, layout
-from service.store.cache import LRUCache
+from service.store.cache import LRUCache, footprint
 from service.store.catalog import (
     create_catalog_engine,
     lock_name,
@@ -105,6 +105,7 @@ from service.store.names import validate_name
 from service.store.schema import catalog_info as catalog_info_t
 from service.store.schema import history as history_t
 from service.store.schema import models as models_t
+from service.store.schema import VERSION_MAX
 from service.store.schema import versions as versions_t
 from service.store.util import as_utc, catalog_errors, iso, row_dict, utcnow
 
@@ -436,6 +437,9 @@ class Store:
             ) from None
         if v < 1:
             raise NotFound(f"version {v} of model {name!r} does not exist; versions are numbered from 1.")
+        if v > VERSION_MAX:  # beyond the catalog's integer column: no such version (never an OverflowError)
+            raise NotFound(f"version {v} of model {name!r} does not exist; version numbers go up to {VERSION_MAX}.",
+                           errors=[{"field": "version", "value": str(v), "message": f"at most {VERSION_MAX}"}])
         return v
 
     def _fresh(self, stamp: float) -> bool:
@@ -489,7 +493,8 @@ class Store:
         loaded = LoadedVersion(
             name=name, version=version, checksum=row["manifest_sha256"], arrays_sha256=row["arrays_sha256"],
             created_at=manifest["created_at"], manifest=manifest, model=model,
-            nbytes=arrays_size + manifest_size,
+            # what it holds in memory (the rebuilt model may keep derived arrays), at least the file's arrays
+            nbytes=max(arrays_size + manifest_size, footprint((model, manifest))),
         )
         self._cache.put(key, loaded, loaded.nbytes)
         return loaded

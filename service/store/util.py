@@ -16,6 +16,7 @@ from sqlalchemy.exc import (
     SQLAlchemyError,
 )
 
+from service import paths
 from service.errors import CatalogUnavailable, StorageFailure, TikhonError
 
 
@@ -45,11 +46,20 @@ def catalog_errors(what: str, url: str) -> Iterator[None]:
     except TikhonError:
         raise
     except SQLAlchemyError as exc:
-        msg = " ".join(str(getattr(exc, "orig", None) or exc).split())[:300]
+        msg = paths.redact(" ".join(str(getattr(exc, "orig", None) or exc).split())[:300])
         if _unavailable(exc):
-            raise CatalogUnavailable(f"{what} failed: the catalog at {url} is unavailable ({msg}); nothing was "
-                                     "written, retry when it is back.") from exc
-        raise StorageFailure(f"{what} failed in the catalog at {url}: {msg}") from exc
+            raise CatalogUnavailable(f"{what} failed: the catalog at {shown_url(url)} is unavailable ({msg}); "
+                                     "nothing was written, retry when it is back.") from exc
+        raise StorageFailure(f"{what} failed in the catalog at {shown_url(url)}: {msg}") from exc
+
+
+def shown_url(url: str) -> str:
+    """A catalog URL as messages show it: a SQLite file by its name only (its folder is the store or another
+    local folder, never shown), any other URL as given (the password is already hidden by the caller)."""
+    if url.startswith("sqlite") and ":///" in url:
+        name = url.split(":///", 1)[1].rstrip("/").rsplit("/", 1)[-1] or "memory"
+        return f"SQLite file {name!r}"
+    return url
 
 
 def _unavailable(exc: SQLAlchemyError) -> bool:

@@ -1,12 +1,17 @@
-"""Open routes (no key needed): liveness, readiness, metrics and the problem-type documentation."""
+"""Routes outside ``/v1``: liveness, readiness and the problem-type documentation (open), and metrics.
+
+``/metrics`` needs a key with the ``metrics`` (or ``admin``) scope once any key exists, like a ``/v1``
+route (its counters name models and versions); while no key exists it is open, as every route is, on
+a server that then listens on loopback only.
+"""
 
 from __future__ import annotations
 
-from fastapi import APIRouter, Request
+from fastapi import APIRouter, Depends, Request
 from fastapi.responses import HTMLResponse, JSONResponse, Response
 from prometheus_client import CONTENT_TYPE_LATEST
 
-from service.api import problems
+from service.api import auth, problems
 from service.errors import NotFound
 
 router = APIRouter(tags=["health"])
@@ -41,7 +46,8 @@ def readyz(request: Request):
     return problems.problem_response(body, {"Retry-After": str(problems.RETRY_AFTER_S)})
 
 
-@router.get("/metrics", summary="Prometheus text format", response_class=Response)
+@router.get("/metrics", summary="Prometheus text format (metrics or admin scope once keys exist)",
+            response_class=Response, dependencies=[Depends(auth.authorize)], **auth.METRICS)
 def metrics(request: Request) -> Response:
     return Response(request.app.state.metrics.render(), media_type=CONTENT_TYPE_LATEST)
 

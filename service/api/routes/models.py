@@ -12,11 +12,12 @@ from service.api.render import json_response, read_json
 from service.api.schemas import LiveRequest, schema_ref
 from service.errors import Conflict, IntegrityFailure, InvalidData
 from service.store.names import validate_name
+from service.store.schema import VERSION_MAX
 
 router = APIRouter(prefix="/v1", tags=["models"])
 
 NamePath = Path(..., description="Model name: 1-63 of a-z 0-9 _ . - starting with a letter or digit.")
-VersionPath = Path(..., ge=1, description="Version number (1, 2, ...).")
+VersionPath = Path(..., ge=1, le=VERSION_MAX, description="Version number (1, 2, ...).")
 
 # Large parts of the manifest have their own routes; the metadata route links to them instead.
 _SEPARATE = {"cv_table": "cv", "path": "path"}

@@ -26,6 +26,7 @@ from service.api.problems import UnsupportedMediaType
 from service.api.schemas import PredictRequest, PredictResponse, schema_ref
 from service.errors import InvalidData
 from service.store.names import validate_name
+from service.store.schema import VERSION_MAX
 
 router = APIRouter(prefix="/v1", tags=["predict"])
 
@@ -57,7 +58,7 @@ _DOC = {
 # solving on the hottest route); they are documented here instead.
 _PARAMS = {
     "name": {"name": "name", "in": "path", "required": True, "schema": {"type": "string"}, "description": "Model name."},
-    "version": {"name": "version", "in": "path", "required": True, "schema": {"type": "integer", "minimum": 1},
+    "version": {"name": "version", "in": "path", "required": True, "schema": {"type": "integer", "minimum": 1, "maximum": VERSION_MAX},
                 "description": "Version number."},
     "interval": {"name": "interval", "in": "query", "required": False,
                  "schema": {"type": "number", "exclusiveMinimum": 0, "exclusiveMaximum": 1},
@@ -79,10 +80,12 @@ def _query_interval(request: Request) -> float | None:
 
 
 def _version(raw: str) -> int:
-    if not raw.isdigit() or int(raw) < 1:
+    # digits checked before int(): a number beyond the catalog's range (or past Python's 4300-digit limit
+    # on int()) is refused here rather than raising an OverflowError or ValueError further down
+    if not (raw.isascii() and raw.isdigit() and len(raw) <= len(str(VERSION_MAX))) or not 1 <= int(raw) <= VERSION_MAX:
         raise InvalidData(
-            f"path.version must be a whole number from 1, got {raw!r}.",
-            errors=[{"field": "path.version", "value": raw, "message": "expected an integer >= 1"}],
+            f"path.version must be a whole number from 1 to {VERSION_MAX}, got {raw[:40]!r}.",
+            errors=[{"field": "path.version", "value": raw[:40], "message": f"expected an integer from 1 to {VERSION_MAX}"}],
         )
     return int(raw)
 
