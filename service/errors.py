@@ -89,6 +89,15 @@ class StorageFailure(TikhonError):
     title = "Storage failure"
 
 
+class CatalogUnavailable(StorageFailure):
+    """The catalog database does not answer (stopped, restarting, unreachable); nothing was changed.
+    Temporary: retry after the ``Retry-After`` seconds. Predictions of versions a replica already serves
+    keep answering meanwhile, on stale knowledge, for a bounded time (``TIKHON_STALE_OK_S``)."""
+
+    slug = "catalog-unavailable"
+    title = "Catalog unavailable"
+
+
 class Cancelled(TikhonError):
     slug = "cancelled"
     title = "Cancelled"

@@ -55,11 +55,16 @@ _STATUS: dict[type[E.TikhonError], int] = {
     E.Conflict: 409,
     E.Cancelled: 409,
     E.IntegrityFailure: 500,
+    E.CatalogUnavailable: 503,
     E.StorageFailure: 507,
     E.Unauthorized: 401,
     E.Forbidden: 403,
     E.TikhonError: 400,
 }
+
+# Seconds a caller is told to wait (Retry-After, RFC 9110 section 10.2.3) when the catalog does not answer:
+# a database restart takes seconds, and callers retrying sooner only add load to the one recovering.
+CATALOG_RETRY_AFTER_S = 5
 
 # Limits whose excess is "the request itself is too large" (413); any other limit, such as the grid
 # budget of a training spec, is a semantic refusal (422).
@@ -233,8 +238,12 @@ def install(app: FastAPI) -> None:
     @app.exception_handler(E.TikhonError)
     async def _tikhon(request: Request, exc: E.TikhonError) -> Response:
         headers = {"WWW-Authenticate": 'Bearer realm="tikhon"'} if isinstance(exc, E.Unauthorized) else None
+        if isinstance(exc, E.CatalogUnavailable):
+            headers = {"Retry-After": str(CATALOG_RETRY_AFTER_S)}
         body = problem_from_error(exc, instance=request.url.path, request_id=_request_id(request))
-        if body["status"] >= 500:
+        if isinstance(exc, E.CatalogUnavailable):  # an outage: one line per request, not an error each
+            log.warning("request refused, catalog unavailable: %s", exc, extra={"request_id": _request_id(request)})
+        elif body["status"] >= 500:
             log.error("request failed: %s", exc, extra={"request_id": _request_id(request)})
         return problem_response(body, headers)
 

@@ -36,7 +36,7 @@ def readyz(request: Request):
         + ". Check the catalog URL (TIKHON_DATABASE_URL) and the store folder (TIKHON_STORE) permissions.",
         instance="/readyz", checks=checks,
     )
-    return problems.problem_response(body)
+    return problems.problem_response(body, {"Retry-After": str(problems.CATALOG_RETRY_AFTER_S)})
 
 
 @router.get("/metrics", summary="Prometheus text format", response_class=Response)
