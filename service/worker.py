@@ -39,12 +39,14 @@ Promotion (``promote`` in the request):
 
 from __future__ import annotations
 
+import ctypes
 import logging
 import math
 import multiprocessing as mp
 import os
 import signal
 import socket
+import sys
 import threading
 import time
 import traceback
@@ -91,10 +93,47 @@ def _lower_priority() -> None:
         pass
 
 
+# A training process must not outlive the worker that started it: after a SIGKILL of the worker (or of
+# the server that runs it embedded) its job is re-queued and trained again elsewhere, and an orphan would
+# keep burning a core beside the re-run. Two lines of defence, both in the child:
+# * Linux: prctl(PR_SET_PDEATHSIG, SIGKILL) (prctl(2)), through the C library with ctypes: the kernel
+#   kills the child the moment its parent ends. It fires when the parent *thread* that started the child
+#   ends, which here is the worker's own thread, alive for the whole job.
+# * everywhere: a thread that checks every PARENT_CHECK_S whether the parent is still the process that
+#   started it (os.getppid() changes to the reaper's pid once the parent is gone), then exits.
+# A job's result goes back only through the pipe to the worker, and the worker publishes only while the
+# catalog says it still holds the job (``Store.publish(holder=...)``), so even a surviving orphan could
+# never publish: a job publishes at most one version.
+PARENT_CHECK_S = 1.0
+_PR_SET_PDEATHSIG = 1  # <linux/prctl.h>
+
+
+def _die_with_parent(parent_pid: int) -> None:
+    if sys.platform.startswith("linux"):
+        try:
+            libc = ctypes.CDLL(None, use_errno=True)
+            libc.prctl(_PR_SET_PDEATHSIG, int(signal.SIGKILL), 0, 0, 0)
+        except (OSError, AttributeError):  # no usable C library: the watcher thread below still covers it
+            pass
+    if os.getppid() != parent_pid:  # the parent ended before the kernel was told to watch it
+        os._exit(70)
+    threading.Thread(target=_watch_parent, args=(parent_pid,), name="tikhon-lifeline", daemon=True).start()
+
+
+def _watch_parent(parent_pid: int) -> None:
+    while True:
+        time.sleep(PARENT_CHECK_S)
+        if os.getppid() != parent_pid:
+            os._exit(70)
+
+
 def _train(data_path: str | None, spec: dict, conn, progress, cancel, deadline: float,
-           stream: str | None = None, dask_scheduler: str | None = None, dask_workers: int = 2) -> None:
+           stream: str | None = None, dask_scheduler: str | None = None, dask_workers: int = 2,
+           parent_pid: int | None = None) -> None:
     """Body of the training process: read the staged table (or stream the source), tune, send the
     artifact back through ``conn``."""
+    if parent_pid is not None:
+        _die_with_parent(parent_pid)
     signal.signal(signal.SIGINT, signal.SIG_IGN)  # the parent decides when this process stops
     _lower_priority()
     try:
@@ -296,7 +335,7 @@ class Worker:
         deadline = started + s.max_training_seconds
         proc = _SPAWN.Process(
             target=_train, args=(job.get("data_path"), request["spec"], child_conn, progress, cancel, deadline,
-                                 stream, s.dask_scheduler, s.dask_local_workers),
+                                 stream, s.dask_scheduler, s.dask_local_workers, os.getpid()),
             name=f"tikhon-train-{jid[:8]}", daemon=True,
         )
         proc.start()
@@ -386,11 +425,14 @@ class Worker:
         request = job["request"] or {}
         try:
             go_live, decision = decide(self.store, name, request, outcome, job.get("data_path"))
-            row = self.store.publish(name, body, arrays, job_id=jid)
+            row = self.store.publish(name, body, arrays, job_id=jid, holder=self.worker_id)
             version = int(row["version"])
             decision["version"] = version
             if go_live:
                 self._go_live(name, version, jid, decision)
+        except Conflict as err:  # the job was taken away (re-queued) before the publish: its new holder decides
+            log.warning("job dropped", extra={"job_id": jid, "reason": f"not published: {err}"})
+            return
         except TikhonError as err:
             self._finish(jid, "failed", problem=_problem(err))
             return

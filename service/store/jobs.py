@@ -305,6 +305,25 @@ class Jobs:
         self._drop_folder(job_id)
         return out
 
+    def check_holder(self, conn, job_id: str, worker_id: str, name: str) -> None:
+        """Inside a publish's transaction: raise ``Conflict`` unless ``worker_id`` still holds job ``job_id``
+        (running, or cancelled while it ran) and the job has no version of ``name`` yet. The job row is
+        locked (PostgreSQL: ``FOR UPDATE``, which ``requeue_stale`` skips; SQLite: the write transaction) until
+        the publish commits."""
+        from service.store.schema import versions as versions_t
+
+        row = self._row(conn, job_id, lock=True)
+        if row.state not in ("running", "cancelled") or row.worker_id != worker_id:
+            raise Conflict(
+                f"training job {job_id} is no longer held by worker {worker_id!r} (state {row.state}, worker "
+                f"{row.worker_id!r}); it was re-queued, so this worker does not publish its result."
+            )
+        done = conn.execute(select(versions_t.c.version).where(and_(
+            versions_t.c.model_name == name, versions_t.c.job_id == job_id,
+            versions_t.c.deleted_at.is_(None)))).scalar()
+        if done is not None:
+            raise Conflict(f"training job {job_id} already published version {done} of {name!r}; a job publishes once.")
+
     def cancel(self, job_id: str) -> dict[str, Any]:
         """Cancel a queued or running job (a running one stops at its worker's next heartbeat)."""
         with self._errors("cancelling a training job"), write_txn(self._engine) as conn:
