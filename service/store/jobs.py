@@ -345,8 +345,13 @@ class Jobs:
         cutoff = utcnow() - timedelta(seconds=float(stale_s))
         changed: list[str] = []
         failed: list[str] = []
+        stale = and_(jobs_t.c.state == "running", jobs_t.c.heartbeat_at < cutoff)
+        # Every worker calls this every few seconds: look before taking the write lock (SQLite has one).
+        with self._errors("looking for stale training jobs"), read_txn(self._engine) as conn:
+            if conn.execute(select(jobs_t.c.id).where(stale).limit(1)).first() is None:
+                return []
         with self._errors("re-queueing stale training jobs"), write_txn(self._engine) as conn:
-            q = select(jobs_t).where(and_(jobs_t.c.state == "running", jobs_t.c.heartbeat_at < cutoff))
+            q = select(jobs_t).where(stale)
             if conn.dialect.name == "postgresql":
                 q = q.with_for_update(skip_locked=True)
             now = utcnow()
