@@ -551,6 +551,9 @@ class Worker:
         except Conflict as err:  # the job was taken away (re-queued) before the publish: its new holder decides
             log.warning("job dropped", extra={"job_id": jid, "reason": f"not published: {err}"})
             return
+        except CatalogUnavailable:  # stopping while the catalog is down: the job is re-queued later
+            log.warning("job dropped", extra={"job_id": jid, "reason": "stopping while the catalog is unavailable"})
+            return
         except TikhonError as err:
             self._finish(jid, "failed", problem=_problem(err))
             return

@@ -172,3 +172,42 @@ def test_worker_loop_logs_an_outage_in_a_few_lines(tmp_path, lines):
     assert "connection refused" in errors[0].getMessage().lower()
     assert mine[-1].getMessage().startswith("catalog available again after")
     assert len(mine) <= 4, [r.getMessage() for r in mine]  # not one line per failed attempt
+
+
+def test_a_trained_result_waits_for_the_catalog_instead_of_failing(tmp_path, lines):
+    """The publish of a finished training meets a catalog outage: it is retried (with back-off) and the
+    job succeeds with one version once the catalog answers; before, the job was failed for it."""
+    from service.engine import tune
+
+    settings = Settings(store=tmp_path / "store", data_dir=tmp_path, worker_poll_s=0.01)
+    store = Store(settings)
+    try:
+        spec = {"target": "y", "features": ["x"], "bases": [{"kind": "linear"}],
+                "penalty": {"kind": "l2", "strengths": {"min": 0.01, "max": 1, "count": 3}},
+                "cv": {"scheme": "kfold", "folds": 3, "seed": 1}}
+        x = [float(i) for i in range(30)]
+        body, arrays = tune({"x": x, "y": [2.0 * v + 1.0 for v in x]}, spec).to_artifact()
+        job, _ = store.jobs.submit("m", {"spec": spec, "promote": "never"})
+        worker = Worker(settings, store, worker_id="w-wait")
+        claimed = store.jobs.claim("w-wait")
+        real = store.publish
+        refusals = [0]
+
+        def publish(*a, **k):
+            if refusals[0] < 3:
+                refusals[0] += 1
+                raise CatalogUnavailable("publishing failed: the catalog does not answer (connection refused)")
+            return real(*a, **k)
+
+        store.publish = publish
+        worker._publish(claimed, body, arrays, {"metric": "rmse", "cv_mean": 0.1, "folds": None, "target": "y"})
+        done = store.jobs.get(job["id"])
+        assert refusals[0] == 3
+        assert done["state"] == "succeeded" and done["version"] == 1
+        assert [(v["version"], v["job_id"]) for v in store.list_versions("m")] == [(1, job["id"])]
+        said = [r.getMessage() for r in lines if getattr(r, "worker_id", None) == "w-wait" and r.levelno >= logging.WARNING]
+        assert len(said) == 2 and said[0].startswith("catalog unavailable") and \
+            said[1] == "catalog available again after" + said[1].split("after", 1)[1], said
+        assert said[1].endswith("(3 failed attempts)")
+    finally:
+        store.close()
