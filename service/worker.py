@@ -410,7 +410,8 @@ class Worker:
             if now - self._last_requeue < requeue_period(self.settings.worker_stale_s):
                 return
             self._last_requeue = now
-            handled = self.store.jobs.requeue_stale(self.settings.worker_stale_s, self.settings.max_attempts)
+            handled = self.store.jobs.requeue_stale(self.settings.worker_stale_s, self.settings.max_attempts,
+                                                    caller=self.worker_id)
         self.outage.ok()
         for job in handled:
             log.warning("stale job handled", extra={"job_id": job["id"], "state": job["state"]})

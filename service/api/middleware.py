@@ -73,6 +73,8 @@ class RequestContext:
                 age = state.get("catalog_age")
                 if age is not None:  # the answer rests on stale catalog knowledge (service.api.stale)
                     message["headers"].append((b"tikhon-catalog", header_value(age).encode()))
+                    if self.metrics is not None:
+                        self.metrics.stale_answers.inc()
             await send(message)
 
         try:

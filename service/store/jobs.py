@@ -339,13 +339,16 @@ class Jobs:
             self._drop_folder(job_id)
         return out
 
-    def requeue_stale(self, stale_s: float, max_attempts: int) -> list[dict[str, Any]]:
+    def requeue_stale(self, stale_s: float, max_attempts: int, *, caller: str | None = None) -> list[dict[str, Any]]:
         """Re-queue running jobs whose last heartbeat is older than ``stale_s`` seconds; fail those that
-        already had ``max_attempts`` claims. Returns the jobs changed (in their new state)."""
+        already had ``max_attempts`` claims. Returns the jobs changed (in their new state). ``caller``: the
+        worker asking; its own jobs are left alone (it is alive, so they are not a dead worker's)."""
         cutoff = utcnow() - timedelta(seconds=float(stale_s))
         changed: list[str] = []
         failed: list[str] = []
         stale = and_(jobs_t.c.state == "running", jobs_t.c.heartbeat_at < cutoff)
+        if caller is not None:
+            stale = and_(stale, jobs_t.c.worker_id != caller)
         # Every worker calls this every few seconds: look before taking the write lock (SQLite has one).
         with self._errors("looking for stale training jobs"), read_txn(self._engine) as conn:
             if conn.execute(select(jobs_t.c.id).where(stale).limit(1)).first() is None:

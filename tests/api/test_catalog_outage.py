@@ -124,6 +124,12 @@ def test_predictions_survive_an_outage_and_changes_answer_503(tmp_path, kit):
                     assert "does not answer" in body["detail"]
                 ready = c.get("/readyz")
                 assert ready.status_code == 503 and int(ready.headers["retry-after"]) > 0
+                # Prometheus text format: the stale answers above (3 live, 1 pinned, the revoked key's 401), counted.
+                from prometheus_client.parser import text_string_to_metric_families
+
+                samples = {smp.name: smp.value for fam in text_string_to_metric_families(c.get("/metrics", headers=ha).text)
+                           for smp in fam.samples}
+                assert samples["tikhon_catalog_stale_answers_total"] == 5.0
 
             # The catalog is back: fresh answers, no stale marker, and changes work again. A replica tries the
             # catalog again at most once a second while it is down (CatalogWatch.retry_s), so wait that long.

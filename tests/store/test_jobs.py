@@ -198,3 +198,14 @@ def test_a_job_publishes_only_through_its_holder_and_only_once(store, kit):
     assert [v["version"] for v in store.list_versions("m")] == [1]
     # The next publish still gets the next number: the refused ones left no gap.
     assert store.publish("m", body, arrays)["version"] == 2
+
+
+def test_a_worker_does_not_requeue_its_own_job(store):
+    """A worker that is alive enough to look for stale jobs is not dead: a late heartbeat of its own job is
+    left for others to judge (they re-queue it if the worker really stopped)."""
+    job, _ = store.jobs.submit("m", {"spec": {}})
+    store.jobs.claim("w1")
+    _age_heartbeat(store, job["id"], 120)
+    assert store.jobs.requeue_stale(60, 3, caller="w1") == []
+    assert store.jobs.get(job["id"])["state"] == "running"
+    assert [j["id"] for j in store.jobs.requeue_stale(60, 3, caller="w2")] == [job["id"]]
