@@ -84,7 +84,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None) -> Fa
         app.add_middleware(
             CORSMiddleware, allow_origins=list(settings.cors_origins), allow_methods=["GET", "POST", "PUT", "DELETE"],
             allow_headers=["Authorization", "Content-Type", "Idempotency-Key", "X-Request-Id"],
-            expose_headers=["Location", "X-Request-Id"],
+            expose_headers=["Location", "X-Request-Id", "Retry-After", "Tikhon-Catalog"],
         )
     app.add_middleware(BodyLimit, limit=settings.max_body_bytes)
     app.add_middleware(RequestContext, metrics=metrics)

@@ -87,8 +87,16 @@ def postgres(rk):
     if bin_dir is None:
         pytest.skip("the PostgreSQL server binaries (/usr/lib/postgresql/*/bin/pg_ctl, Debian package 'postgresql') "
                     "are not installed; .ci/run installs them")
-    if os.geteuid() == 0 and shutil.which("su") is None:
-        pytest.skip("running as root needs 'su' to start PostgreSQL as the postgres user")
+    if os.geteuid() == 0:
+        import pwd
+
+        try:
+            pwd.getpwnam("postgres")
+        except KeyError:
+            pytest.skip("running as root, PostgreSQL must run as the 'postgres' user, which does not exist "
+                        "(.ci/run creates it)")
+        if shutil.which("su") is None:
+            pytest.skip("running as root needs 'su' to start PostgreSQL as the postgres user")
     pg = PrivatePostgres(bin_dir, rk.free_port())
     try:
         yield pg.init()
