@@ -19,6 +19,7 @@ key cannot be revoked over HTTP at all (``service.api.routes.admin``).
 
 from __future__ import annotations
 
+import functools
 import threading
 import time
 from typing import Any, Iterable
@@ -26,6 +27,7 @@ from typing import Any, Iterable
 from anyio import to_thread
 from fastapi import Request
 
+from service.api.stale import CatalogWatch, LastKnown, note_stale
 from service.errors import Forbidden, Unauthorized
 
 SCHEME = "bearerKey"
@@ -73,11 +75,16 @@ def _scope_set(raw: Any) -> frozenset[str]:
 
 
 class KeyGate:
-    """Answers "may this Authorization header call a route accepting these scopes?" using the store's keys."""
+    """Answers "may this Authorization header call a route accepting these scopes?" using the store's keys.
 
-    def __init__(self, keys, ttl_s: float):
+    While the catalog is unavailable, reads and predictions (``allow_stale``) are checked against the
+    catalog's last answers for up to ``stale_ok_s`` (see ``service.api.stale``); everything else gets the
+    503 ``catalog-unavailable`` problem."""
+
+    def __init__(self, keys, ttl_s: float, last: LastKnown | None = None):
         self._keys = keys
         self._ttl = ttl_s
+        self._last = last if last is not None else LastKnown(0.0, CatalogWatch())
         self._lock = threading.Lock()
         self._any: tuple[float, bool] | None = None
         self._verified: dict[str, tuple[float, tuple[frozenset[str], str] | None]] = {}
@@ -95,30 +102,38 @@ class KeyGate:
         with self._lock:
             self._any = None
             self._verified.clear()
+        self._last.forget_kind("any", "key")
 
-    def _any_active(self) -> bool:
+    def _any_active(self, allow_stale: bool = False) -> tuple[bool, float | None]:
         now = time.monotonic()
         cached = self._any
         if cached is not None and now - cached[0] < self._ttl:
-            return cached[1]
-        value = bool(self._keys.any_active())
+            return cached[1], None
+        value, age = self._last.lookup(("any",), lambda: bool(self._keys.any_active()), "whether any API key exists",
+                                       allow_stale=allow_stale)
         if value:
             self._closed = True
-        self._any = (now, value)
-        return value
+        if age is None:
+            self._any = (now, value)
+        return value, age
 
-    def _scopes_of(self, secret: str) -> tuple[frozenset[str], str] | None:
+    def _scopes_of(self, secret: str, allow_stale: bool = False) -> tuple[tuple[frozenset[str], str] | None, float | None]:
         now = time.monotonic()
         cached = self._verified.get(secret)
         if cached is not None and now - cached[0] < self._ttl:
-            return cached[1]
-        row = self._keys.verify(secret)
-        value = None if row is None else (_scope_set(row.get("scopes")), str(row.get("key_id", "")))
-        with self._lock:
-            if len(self._verified) > 10_000:
-                self._verified.clear()
-            self._verified[secret] = (now, value)
-        return value
+            return cached[1], None
+
+        def fetch() -> tuple[frozenset[str], str] | None:
+            row = self._keys.verify(secret)
+            return None if row is None else (_scope_set(row.get("scopes")), str(row.get("key_id", "")))
+
+        value, age = self._last.lookup(("key", secret), fetch, "this API key", allow_stale=allow_stale)
+        if age is None:
+            with self._lock:
+                if len(self._verified) > 10_000:
+                    self._verified.clear()
+                self._verified[secret] = (now, value)
+        return value, age
 
     def needs_lookup(self, header: str | None) -> bool:
         now = time.monotonic()
@@ -134,10 +149,17 @@ class KeyGate:
 
     def check(self, header: str | None, accepted: Iterable[str]) -> str | None:
         """Raise Unauthorized/Forbidden, or return the key id (None when no key is needed)."""
+        return self.check_stale(header, accepted, allow_stale=False)[0]
+
+    def check_stale(self, header: str | None, accepted: Iterable[str], *,
+                    allow_stale: bool = True) -> tuple[str | None, float | None]:
+        """As ``check``, returning ``(key id, age)``: ``age`` is None when the catalog answered (or a fresh
+        cache did), else the age in seconds of the stale answers the decision rests on."""
         accepted = frozenset(accepted)
-        if not self._any_active():
+        any_active, age = self._any_active(allow_stale)
+        if not any_active:
             if not self._closed:
-                return None
+                return None, age
             raise Unauthorized(
                 "This server requires API keys but no active key exists any more (all were revoked or the catalog "
                 "lost them); make one on the server's machine with 'tikhon keys create --local --scope admin'."
@@ -148,7 +170,9 @@ class KeyGate:
                 "This route needs an API key: send 'Authorization: Bearer <key>' with a key holding one of the "
                 f"scopes {sorted(accepted)}; an operator makes one with 'tikhon keys create --scope ...'."
             )
-        found = self._scopes_of(secret)
+        found, key_age = self._scopes_of(secret, allow_stale)
+        if key_age is not None:
+            age = max(age or 0.0, key_age)
         if found is None:
             raise Unauthorized(
                 "The API key in the Authorization header is unknown or revoked; use an active key "
@@ -161,7 +185,7 @@ class KeyGate:
                 "use a key with one of those scopes.",
                 allowed=sorted(accepted),
             )
-        return key_id
+        return key_id, age
 
 
 def _bearer(header: str | None) -> str | None:
@@ -193,10 +217,16 @@ async def authorize(request: Request) -> None:
     """Router-level dependency of every ``/v1`` route."""
     gate: KeyGate = request.app.state.gate
     header = credentials(request)
-    accepted = accepted_scopes(request.scope.get("route"))
+    route = request.scope.get("route")
+    accepted = accepted_scopes(route)
+    # Reads and predictions may rest on the catalog's last answers during an outage; changes never do.
+    allow_stale = request.method in ("GET", "HEAD") or str(getattr(route, "path", "")).endswith("/predict")
     if gate.needs_lookup(header):
-        key_id = await to_thread.run_sync(gate.check, header, accepted)
+        key_id, age = await to_thread.run_sync(functools.partial(gate.check_stale, header, accepted,
+                                                                 allow_stale=allow_stale))
     else:
-        key_id = gate.check(header, accepted)
+        key_id, age = gate.check_stale(header, accepted, allow_stale=allow_stale)
+    if age is not None:
+        note_stale(request, age)
     if key_id:
         request.scope.setdefault("state", {})["key_id"] = key_id

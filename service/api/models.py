@@ -9,7 +9,8 @@ store's cache, by ``settings.cache_models`` entries and ``settings.cache_bytes``
 by what its loaded version holds in memory). A version larger than the whole byte bound is served but
 not kept: the next request loads it again. The live version number is cached for ``settings.live_cache_s`` seconds;
 a change made through this process (``PUT /v1/models/{name}/live``, a worker promotion in the same
-process) clears it at once.
+process) clears it at once. While the catalog is unavailable, the last live version it named stands in
+for up to ``settings.stale_ok_s`` (``service.api.stale``).
 """
 
 from __future__ import annotations
@@ -20,6 +21,7 @@ from typing import Any
 
 import orjson
 
+from service.api.stale import CatalogWatch, LastKnown
 from service.errors import NotFound
 from service.store.cache import LRUCache
 
@@ -54,8 +56,9 @@ def model_block(name: str, version: int, manifest: dict[str, Any], model: Any) -
 
 
 class ModelCache:
-    def __init__(self, store, settings, metrics=None):
+    def __init__(self, store, settings, metrics=None, last: LastKnown | None = None):
         self._store = store
+        self._last = last if last is not None else LastKnown(0.0, CatalogWatch())
         self._ttl = settings.live_cache_s
         self._metrics = metrics
         self._served = LRUCache(settings.cache_models, settings.cache_bytes)
@@ -69,21 +72,28 @@ class ModelCache:
         return None
 
     def live_version(self, name: str) -> int:
+        return self.live_version_stale(name, allow_stale=False)[0]
+
+    def live_version_stale(self, name: str, *, allow_stale: bool = True) -> tuple[int, float | None]:
+        """The live version and, when the catalog did not answer and its last answer stood in, that
+        answer's age in seconds (None when fresh). See ``service.api.stale``."""
         cached = self.cached_live(name)
         if cached is not None:
-            return cached
-        version = self._store.live_version(name)
+            return cached, None
+        version, age = self._last.lookup(("live", name), lambda: self._store.live_version(name),
+                                         f"the live version of model {name!r}", allow_stale=allow_stale)
         if version is None:
             raise NotFound(
                 f"model {name!r} has no live version yet; wait for its first training job to succeed, pin a version "
                 f"with POST /v1/models/{name}/versions/<n>/predict, or set one with PUT /v1/models/{name}/live.",
                 errors=[{"field": "name", "value": name, "message": "no live version"}],
             )
-        self._live[name] = (time.monotonic(), int(version))
-        return int(version)
+        if age is None:
+            self._live[name] = (time.monotonic(), int(version))
+        return int(version), age
 
     def forget_live(self, name: str) -> None:
-        self._live.pop(name, None)
+        self._live.pop(name, None)  # the catalog's last answer stays as the outage fallback
 
     # -- loaded versions ----------------------------------------------------------------------------
     def cached(self, name: str, version: int) -> Served | None:

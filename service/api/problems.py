@@ -63,8 +63,9 @@ _STATUS: dict[type[E.TikhonError], int] = {
     E.TikhonError: 400,
 }
 
-# Seconds a client is told to wait (Retry-After) when the catalog is unavailable (503).
-RETRY_AFTER_S = 5
+# Seconds a caller is told to wait (Retry-After, RFC 9110 section 10.2.3) when the catalog does not answer:
+# a database restart takes seconds, and callers retrying sooner only add load to the one recovering.
+CATALOG_RETRY_AFTER_S = 5
 
 # Limits whose excess is "the request itself is too large" (413); any other limit, such as the grid
 # budget of a training spec, is a semantic refusal (422).
@@ -243,9 +244,11 @@ def install(app: FastAPI) -> None:
     async def _tikhon(request: Request, exc: E.TikhonError) -> Response:
         headers = {"WWW-Authenticate": 'Bearer realm="tikhon"'} if isinstance(exc, E.Unauthorized) else None
         if isinstance(exc, E.CatalogUnavailable):
-            headers = {"Retry-After": str(RETRY_AFTER_S)}
+            headers = {"Retry-After": str(CATALOG_RETRY_AFTER_S)}
         body = problem_from_error(exc, instance=request.url.path, request_id=_request_id(request))
-        if body["status"] >= 500:
+        if isinstance(exc, E.CatalogUnavailable):  # an outage: one line per request, not an error each
+            log.warning("request refused, catalog unavailable: %s", exc, extra={"request_id": _request_id(request)})
+        elif body["status"] >= 500:
             log.error("request failed: %s", exc, extra={"request_id": _request_id(request)})
         return problem_response(body, headers)
 

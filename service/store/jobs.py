@@ -40,7 +40,7 @@ from typing import TYPE_CHECKING, Any, Mapping
 from sqlalchemy import and_, insert, select, update
 from sqlalchemy.exc import IntegrityError
 
-from service.errors import Conflict, InvalidData, InvalidSpec, NotFound, StorageFailure
+from service.errors import Conflict, InvalidData, InvalidSpec, JobTaken, NotFound, StorageFailure
 from service.store import artifact, layout
 from service.store.catalog import read_txn, write_txn
 from service.store.names import validate_name
@@ -321,6 +321,25 @@ class Jobs:
         self._drop_folder(job_id)
         return out
 
+    def check_holder(self, conn, job_id: str, worker_id: str, name: str) -> None:
+        """Inside a publish's transaction: raise ``Conflict`` unless ``worker_id`` still holds job ``job_id``
+        (running, or cancelled while it ran) and the job has no version of ``name`` yet. The job row is
+        locked (PostgreSQL: ``FOR UPDATE``, which ``requeue_stale`` skips; SQLite: the write transaction) until
+        the publish commits."""
+        from service.store.schema import versions as versions_t
+
+        row = self._row(conn, job_id, lock=True)
+        if row.state not in ("running", "cancelled") or row.worker_id != worker_id:
+            raise JobTaken(
+                f"training job {job_id} is no longer held by worker {worker_id!r} (state {row.state}, worker "
+                f"{row.worker_id!r}); it was re-queued, so this worker does not publish its result."
+            )
+        done = conn.execute(select(versions_t.c.version).where(and_(
+            versions_t.c.model_name == name, versions_t.c.job_id == job_id,
+            versions_t.c.deleted_at.is_(None)))).scalar()
+        if done is not None:
+            raise JobTaken(f"training job {job_id} already published version {done} of {name!r}; a job publishes once.")
+
     def cancel(self, job_id: str) -> dict[str, Any]:
         """Cancel a queued or running job (a running one stops at its worker's next heartbeat)."""
         with self._errors("cancelling a training job"), write_txn(self._engine) as conn:
@@ -336,14 +355,22 @@ class Jobs:
             self._drop_folder(job_id)
         return out
 
-    def requeue_stale(self, stale_s: float, max_attempts: int) -> list[dict[str, Any]]:
+    def requeue_stale(self, stale_s: float, max_attempts: int, *, caller: str | None = None) -> list[dict[str, Any]]:
         """Re-queue running jobs whose last heartbeat is older than ``stale_s`` seconds; fail those that
-        already had ``max_attempts`` claims. Returns the jobs changed (in their new state)."""
+        already had ``max_attempts`` claims. Returns the jobs changed (in their new state). ``caller``: the
+        worker asking; its own jobs are left alone (it is alive, so they are not a dead worker's)."""
         cutoff = utcnow() - timedelta(seconds=float(stale_s))
         changed: list[str] = []
         failed: list[str] = []
+        stale = and_(jobs_t.c.state == "running", jobs_t.c.heartbeat_at < cutoff)
+        if caller is not None:
+            stale = and_(stale, jobs_t.c.worker_id != caller)
+        # Every worker calls this every few seconds: look before taking the write lock (SQLite has one).
+        with self._errors("looking for stale training jobs"), read_txn(self._engine) as conn:
+            if conn.execute(select(jobs_t.c.id).where(stale).limit(1)).first() is None:
+                return []
         with self._errors("re-queueing stale training jobs"), write_txn(self._engine) as conn:
-            q = select(jobs_t).where(and_(jobs_t.c.state == "running", jobs_t.c.heartbeat_at < cutoff))
+            q = select(jobs_t).where(stale)
             if conn.dialect.name == "postgresql":
                 q = q.with_for_update(skip_locked=True)
             now = utcnow()

@@ -317,9 +317,14 @@ class Store:
     # publish
 
     def publish(
-        self, name: str, manifest_body: dict, arrays: Mapping[str, np.ndarray], *, job_id: str | None = None
+        self, name: str, manifest_body: dict, arrays: Mapping[str, np.ndarray], *, job_id: str | None = None,
+        holder: str | None = None,
     ) -> dict[str, Any]:
-        """Store a new version of ``name``; return its catalog row. See the module docstring."""
+        """Store a new version of ``name``; return its catalog row. See the module docstring.
+
+        ``holder``: the worker publishing for job ``job_id``. The publish then commits only if, inside its
+        transaction, that worker still holds the job and no version of the job exists yet (``Conflict``
+        otherwise), so a job re-queued from a worker that was presumed dead publishes once."""
         validate_name(name)
         arrays = artifact.check_arrays(arrays)
         artifact.dump_json(manifest_body, what="the manifest body")  # fail before touching the disk
@@ -339,6 +344,8 @@ class Store:
                     with catalog_errors(f"publishing a version of {name!r}", self.catalog), \
                             write_txn(self.engine) as conn:
                         lock_name(conn, name)
+                        if job_id is not None and holder is not None:
+                            self.jobs.check_holder(conn, job_id, holder, name)
                         _fault_point("locked")
                         now = utcnow()
                         m = conn.execute(select(models_t.c.last_version).where(models_t.c.name == name)).first()

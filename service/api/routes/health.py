@@ -43,7 +43,7 @@ def readyz(request: Request):
         detail="The service cannot take work: " + "; ".join(failing.values()) + advice + ".",
         instance="/readyz", checks=checks,
     )
-    return problems.problem_response(body, {"Retry-After": str(problems.RETRY_AFTER_S)})
+    return problems.problem_response(body, {"Retry-After": str(problems.CATALOG_RETRY_AFTER_S)})
 
 
 @router.get("/metrics", summary="Prometheus text format (metrics or admin scope once keys exist)",

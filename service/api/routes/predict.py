@@ -23,6 +23,7 @@ from service.api import auth, tables
 from service.api.models import Served
 from service.api.render import media_type, parse_json
 from service.api.problems import UnsupportedMediaType
+from service.api.stale import note_stale
 from service.api.schemas import PredictRequest, PredictResponse, schema_ref
 from service.errors import InvalidData
 from service.store.names import validate_name
@@ -97,7 +98,9 @@ async def predict_live(request: Request) -> Response:
     cache = request.app.state.models
     version = cache.cached_live(name)
     if version is None:
-        version = await to_thread.run_sync(cache.live_version, name)
+        version, age = await to_thread.run_sync(cache.live_version_stale, name)
+        if age is not None:
+            note_stale(request, age)
     served = cache.cached(name, version) or await to_thread.run_sync(cache.load, name, version)
     return await _predict(request, served, interval)
 
