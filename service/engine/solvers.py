@@ -56,6 +56,15 @@ class Fit:
         V[-1] = 1.0
         return V
 
+    def df(self) -> np.ndarray:
+        """(L,) complexity of each fit, intercept excluded: the effective degrees of freedom for L2
+        (``effective_df``), the number of nonzero coefficients for L1 / elastic net (an unbiased estimate
+        of their degrees of freedom: Zou, Hastie & Tibshirani, "On the degrees of freedom of the lasso",
+        Annals of Statistics 35(5), 2007)."""
+        if self.singular is not None:
+            return self.effective_df()
+        return np.count_nonzero(self.beta, axis=1).astype(float)
+
     def effective_df(self) -> np.ndarray:
         """``df(λ) = Σ s_j² / (s_j² + λ)`` (Hastie, Tibshirani & Friedman, ESL eq. 3.50), intercept excluded."""
         if self.singular is None:

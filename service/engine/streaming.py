@@ -38,8 +38,9 @@ from .solvers import centred_scaled, fit, leverage_factor
 from .spec import TuneSpec, parse_spec
 from .summaries import Summary
 from .table import categorical_column, numeric_column
-from .tune import (PLOT_SAMPLE, Budget, TuneResult, _edge_warnings, _path, _select, _table_rows, basis_settings,
-                   check_budget, resolve_columns, score_splits)
+from .result import (check_spread, edge_warnings, finite_table, metric_value, score_splits, select, setting_df,
+                     table_rows)
+from .tune import PLOT_SAMPLE, Budget, TuneResult, _path, basis_settings, check_budget, resolve_columns
 
 SAMPLE_SALT = 0x5A17
 PLOT_SALT = 0x9107
@@ -88,7 +89,7 @@ def _keys(ctx: _Ctx, batch: dict[str, np.ndarray], offset: int, rows: int) -> np
 def _fold_ids(ctx: _Ctx, batch: dict[str, np.ndarray], offset: int, rows: int, folds: int) -> np.ndarray:
     """Hash fold of each row of a batch: of its group for ``grouped``, else of its row key."""
     if ctx.spec.cv.scheme == "grouped":
-        return hash_folds(categorical_column(batch, ctx.spec.cv.group_by), ctx.spec.cv.seed, folds)
+        return hash_folds(categorical_column(batch, ctx.spec.cv.group_by, offset), ctx.spec.cv.seed, folds)
     return hash_folds(_keys(ctx, batch, offset, rows), ctx.spec.cv.seed, folds)
 
 
@@ -138,9 +139,9 @@ def _scan_partition(ctx: _Ctx, part: Partition) -> Scan:
             lo, hi = np.minimum(lo, X.min(axis=0)), np.maximum(hi, X.max(axis=0))
         y_lo, y_hi = min(y_lo, float(y.min())), max(y_hi, float(y.max()))
         for s, name in zip(levels, ctx.spec.categorical):
-            s.update(categorical_column(batch, name).tolist())
+            s.update(categorical_column(batch, name, pos).tolist())
         if ctx.spec.cv.group_by:
-            groups.update(categorical_column(batch, ctx.spec.cv.group_by).tolist())
+            groups.update(categorical_column(batch, ctx.spec.cv.group_by, pos).tolist())
         h = key_hash(_keys(ctx, batch, pos, b), ctx.spec.cv.seed ^ SAMPLE_SALT)
         sh = np.concatenate([sh, h])
         sp = np.concatenate([sp, np.arange(pos, pos + b)])
@@ -417,6 +418,9 @@ def tune_partitions(partitions: Sequence[Partition], schema: dict[str, str], spe
         raise InvalidSpec(f"cv.folds is {K} but column {spec.cv.group_by!r} has only {len(scan.groups)} distinct "
                           f"groups; use at most {len(scan.groups)} folds",
                           errors=[{"field": "cv.folds", "value": K, "message": "more folds than groups"}])
+    check_spread(spec.target, "target", scan.y_lo, scan.y_hi, n)
+    for j, f in enumerate(features):
+        check_spread(f, "feature", scan.lo[j], scan.hi[j], n)
     categories = Categories(list(spec.categorical), [sorted(s) for s in scan.levels])
     d = len(features)
     check_budget(spec, n, d, budget, categories.width, rows_in_memory=spec.execution.batch_rows)
@@ -430,7 +434,7 @@ def tune_partitions(partitions: Sequence[Partition], schema: dict[str, str], spe
             return np.ascontiguousarray(sample_Xs)  # every row (n ≤ sample size here)
         return kmeans_centers(sample_Xs, count, spec.cv.seed)
 
-    settings = basis_settings(spec, np.zeros((0, d)), centers_from=centers_from)
+    settings = basis_settings(spec, np.zeros((0, d)), centers_from=centers_from, sample=sample_Xs)
     strengths = spec.penalty.strength_grid()
     ratios = spec.penalty.ratio_grid()
     model_ctx = _Model(ctx, scaler, categories, K)
@@ -490,11 +494,13 @@ def tune_partitions(partitions: Sequence[Partition], schema: dict[str, str], spe
         sums = executor.map_reduce(partial(_mae_sums, model_ctx, groups, members, weights), mtasks,
                                    _merge_all_mae, on_done=tick, should_stop=should_stop)
         rows = [(i, s, np.transpose(sums[i][0] / sums[i][1][:, None, None], (1, 2, 0))) for i, s, _ in rows]
-    table_rows: list[dict[str, Any]] = []
+    table: list[dict[str, Any]] = []
     for i, s, values in rows:
-        table_rows.extend(_table_rows(i, s, strengths, ratios, values, None))
-    chosen_idx, best_idx, onese_idx = _select(table_rows, settings, spec, K)
-    chosen = table_rows[chosen_idx]
+        df = setting_df(Summary.combine(atoms_of(i)[0]), spec, strengths, ratios)
+        table.extend(table_rows(i, s, strengths, ratios, values, df))
+    table_rows_ = table
+    chosen_idx, best_idx, onese_idx = select(table_rows_, settings, spec.selection.metric, spec.selection.rule)
+    chosen = table_rows_[chosen_idx]
     s_idx = chosen["_setting"]
     setting = settings[s_idx]
     strength, ratio = chosen["strength"], chosen["l1_ratio"]
@@ -534,24 +540,24 @@ def tune_partitions(partitions: Sequence[Partition], schema: dict[str, str], spe
     )
     model.cv = {"metric": spec.selection.metric, "mean": chosen["mean"], "std": chosen["std"], "folds": K,
                 "scheme": spec.cv.scheme, "rule": spec.selection.rule}
-    warnings = _edge_warnings(spec, settings, table_rows, chosen, strengths)
-    table = [{kk: v for kk, v in r.items() if not kk.startswith("_")} for r in table_rows]
+    table, warnings = finite_table(table_rows_)
+    warnings = edge_warnings(settings, chosen, strengths) + warnings
 
     def public(r):
         return {"basis": r["basis"], "penalty": {"kind": spec.penalty.kind, "strength": r["strength"],
                 "l1_ratio": r["l1_ratio"]}, "metric": spec.selection.metric, "mean": r["mean"], "std": r["std"],
-                "index": table_rows.index(r)}
+                "index": table_rows_.index(r)}
 
     digests = sorted(scan.digests)
     fp = hashlib.sha256("".join(f"{o}:{r}:{h};" for o, h, r in digests).encode()).hexdigest()
     summary = {"metric": spec.selection.metric, "rule": spec.selection.rule, "scheme": spec.cv.scheme, "splits": K,
                "mean": chosen["mean"], "std": chosen["std"], "rows": int(n), "basis_settings": len(settings),
-               "strengths": int(strengths.size), "l1_ratios": len(ratios), "candidates": len(table_rows),
+               "strengths": int(strengths.size), "l1_ratios": len(ratios), "candidates": len(table_rows_),
                "execution": "streaming", "executor": getattr(executor, "name", "in-process"),
                "partitions": len(parts)}
     return TuneResult(
-        spec=spec, best=public(chosen) | {"rule": spec.selection.rule}, one_standard_error=public(table_rows[onese_idx]),
-        best_mean=public(table_rows[best_idx]), cv_table=table, model=model, folds=np.zeros(0, dtype=np.int64),
+        spec=spec, best=public(chosen) | {"rule": spec.selection.rule}, one_standard_error=public(table_rows_[onese_idx]),
+        best_mean=public(table_rows_[best_idx]), cv_table=table, model=model, folds=np.zeros(0, dtype=np.int64),
         path=_path(full, strengths, strength, names, spec.penalty.kind), warnings=warnings,
         oof_predictions=fin.sample_pred, oof_observed=fin.sample_obs, oof_residuals=fin.sample_obs - fin.sample_pred,
         fingerprint={"sha256": fp, "rows": int(n), "columns": len(columns),

@@ -91,19 +91,21 @@ def numeric_column(cols: Columns, name: str, role: str, offset: int = 0) -> np.n
     return x
 
 
-def categorical_column(cols: Columns, name: str) -> np.ndarray:
+def categorical_column(cols: Columns, name: str, offset: int = 0) -> np.ndarray:
+    """The named column as level texts; refuses missing values naming the first rows (counted from
+    ``offset``, the position of the first row in the whole source)."""
     if name not in cols:
         known = ", ".join(sorted(cols)[:20])
         raise InvalidData(f"categorical column {name!r} is not in the data; columns present: {known}",
                           errors=[{"field": name, "message": "missing column"}])
     raw = cols[name]
     if raw.dtype.kind == "f":
-        bad = np.flatnonzero(~np.isfinite(raw))[:5].tolist()
+        bad = (np.flatnonzero(~np.isfinite(raw))[:5] + offset).tolist()
         if bad:
             raise InvalidData(f"categorical column {name!r} holds missing values at rows {bad}; fill them in",
                               errors=[{"field": name, "rows": bad, "message": "missing"}])
     out = np.array([_level(v) for v in raw], dtype=object)
-    missing = [i for i, v in enumerate(out) if v is None][:5]
+    missing = [i + offset for i, v in enumerate(out) if v is None][:5]
     if missing:
         raise InvalidData(f"categorical column {name!r} holds missing values at rows {missing}; fill them in",
                           errors=[{"field": name, "rows": missing, "message": "missing"}])
@@ -154,10 +156,17 @@ def _short(v: Any) -> str:
 
 
 def _level(v: Any) -> str | None:
-    if v is None:
+    """The level's text, or None for a missing value: None, NaN (float or in an object column), pandas'
+    NA and NaT, numpy's NaT. A missing value is never learned as a level named 'nan' or '<NA>'."""
+    if v is None or type(v).__name__ in ("NAType", "NaTType"):
         return None
-    if isinstance(v, (float, np.floating)) and float(v).is_integer():
-        return str(int(v))
+    if isinstance(v, (float, np.floating)):
+        if not np.isfinite(v):
+            return None
+        if float(v).is_integer():
+            return str(int(v))
+    if isinstance(v, (np.datetime64, np.timedelta64)) and np.isnat(v):
+        return None
     if isinstance(v, bytes):
         return v.decode("utf-8", "replace")
     return str(v)

@@ -1,0 +1,226 @@
+"""What both front ends share after the rows are read: scoring, selection, warnings and checks.
+
+The in-memory search (``tune``) and the out-of-core one (``streaming``) each reduce the rows to the same
+intermediate, per basis setting: a metric value per (l1 ratio, strength, split), and a training
+summary of every row for the complexity (``df``) of each candidate. From there, this module alone
+builds the CV table, applies the selection rule and the edge-of-grid warnings. It also holds the one
+metric function (every RMSE / MAE / R² in the service is computed by ``metric_value``) and the checks
+on column magnitudes that both front ends apply while reading.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numpy as np
+
+from service.errors import InvalidData
+
+from .basis import BasisSetting
+from .solvers import Fit, fit
+from .spec import TuneSpec
+from .summaries import Summary
+
+METRICS = ("rmse", "mae", "r2")
+
+
+# ---- the one metric function ------------------------------------------------------------------------
+def metric_value(metric: str, n: Any, sse: Any = None, sae: Any = None, sst: Any = None) -> np.ndarray:
+    """RMSE, MAE or R² from the sums they are made of (arrays broadcast):
+
+    - rmse = √(sse / n), mae = sae / n, r2 = 1 − sse / sst (NaN where sst = 0),
+
+    where ``sse`` is the sum of squared errors over ``n`` rows, ``sae`` the sum of absolute errors and
+    ``sst`` the sum of squares of y about its own mean over the same rows (the definitions of
+    ``sklearn.metrics.root_mean_squared_error``, ``mean_absolute_error`` and ``r2_score``).
+    An unknown metric name raises ``ValueError``: there is no fallback.
+    """
+    n = np.asarray(n, dtype=float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        if metric == "rmse":
+            return np.sqrt(np.asarray(sse, dtype=float) / n)
+        if metric == "mae":
+            return np.asarray(sae, dtype=float) / n
+        if metric == "r2":
+            sst = np.asarray(sst, dtype=float)
+            return np.where(sst > 0, 1.0 - np.asarray(sse, dtype=float) / np.where(sst > 0, sst, 1.0), np.nan)
+    raise ValueError(f"unknown metric {metric!r}; use one of {METRICS}")
+
+
+def metric_of_rows(metric: str, y: np.ndarray, pred: np.ndarray) -> float:
+    """The metric of predictions ``pred`` for observed ``y`` (1-D arrays of equal length)."""
+    y = np.asarray(y, dtype=float)
+    e = y - np.asarray(pred, dtype=float)
+    return float(metric_value(metric, y.size, sse=float(e @ e), sae=float(np.abs(e).sum()),
+                              sst=float(np.sum((y - y.mean()) ** 2)) if y.size else 0.0))
+
+
+def lower_is_better(metric: str) -> bool:
+    if metric not in METRICS:
+        raise ValueError(f"unknown metric {metric!r}; use one of {METRICS}")
+    return metric != "r2"
+
+
+# ---- column checks shared by both front ends ---------------------------------------------------------
+def check_spread(name: str, role: str, lo: float, hi: float, n: int) -> None:
+    """Refuse a column whose sums of squares would overflow float64 (n · (max − min)² > 1.8e308): the CV
+    errors, variances and R factors of such a column are infinite or NaN, and nothing downstream could
+    say why. The fix is to rescale the column (larger units)."""
+    with np.errstate(over="ignore", invalid="ignore"):
+        bound = np.float64(n) * (np.float64(hi) - np.float64(lo)) ** 2
+    if not np.isfinite(bound):
+        big = max(abs(float(lo)), abs(float(hi)))
+        raise InvalidData(
+            f"{role} column {name!r} reaches {big:.3g}: over {n:,} rows its sum of squares overflows float64 "
+            f"(largest value 1.8e308); rescale the column (e.g. divide it by 1e100, or use larger units) before training",
+            errors=[{"field": name, "value": big, "message": "sum of squares overflows float64"}])
+
+
+# ---- scoring from fold summaries ---------------------------------------------------------------------
+def setting_df(full: Summary, spec: TuneSpec, strengths: np.ndarray, ratios: list[float | None]) -> np.ndarray:
+    """(n_ratios, L) complexity of every candidate of one basis setting, fit on all rows (``Fit.df``)."""
+    return np.array([fit(full, spec.penalty.kind, strengths, r).df() for r in ratios])
+
+
+def score_splits(atoms: list[Summary], splits: list[tuple[list[int], list[int]]], spec: TuneSpec,
+                 strengths: np.ndarray, ratios: list[float | None], mae_rows=None
+                 ) -> tuple[np.ndarray, list[list[Fit]]]:
+    """Metric per (l1 ratio, strength, split) from atom summaries, and the fits of every split.
+
+    RMSE and R² come from the validation atoms' summaries alone; MAE needs the rows, through
+    ``mae_rows(test_ids, fit) -> (L,)`` (or NaN placeholders, filled later by a streaming pass)."""
+    metric = spec.selection.metric
+    values = np.empty((len(ratios), strengths.size, len(splits)))
+    all_fits = []
+    for j, (train_ids, test_ids) in enumerate(splits):
+        train = Summary.combine([atoms[i] for i in train_ids])
+        fits = [fit(train, spec.penalty.kind, strengths, r) for r in ratios]
+        all_fits.append(fits)
+        test = Summary.combine([atoms[i] for i in test_ids])
+        for r_i, f in enumerate(fits):
+            if metric == "mae":
+                values[r_i, :, j] = mae_rows(test_ids, f) if mae_rows else np.nan
+            else:
+                sse = test.sse(f.residual_operator())
+                values[r_i, :, j] = metric_value(metric, test.n, sse=sse, sst=test.total_ss())
+    return values, all_fits
+
+
+# ---- the CV table ------------------------------------------------------------------------------------
+def table_rows(s_idx: int, setting: BasisSetting, strengths: np.ndarray, ratios: list[float | None],
+               values: np.ndarray, df: np.ndarray, extra: dict[str, np.ndarray] | None = None
+               ) -> list[dict[str, Any]]:
+    """One CV-table row per (l1 ratio, strength) of one basis setting.
+
+    ``values`` (n_ratios, L, n_splits) holds the metric per split; ``df`` (n_ratios, L) the complexity of
+    each candidate fit on all rows. A row has ``mean``; ``std``, the population standard deviation over
+    splits (as ``GridSearchCV``'s ``std_test_score``); ``se``, the standard error of the mean used by the
+    one-standard-error rule, ``sd(ddof=1) / √splits`` (Hastie, Tibshirani & Friedman, ESL 2nd ed.,
+    §7.10); ``df``; and ``folds``, the per-split values. ``extra`` may carry per-candidate columns
+    (``gcv``) and, for the loo scheme, its own ``_std`` and ``_se`` (then ``folds`` is None).
+    """
+    rows = []
+    extra = extra or {}
+    n_splits = values.shape[2]
+    for r_i, ratio in enumerate(ratios):
+        for l_i, lam in enumerate(strengths):
+            v = values[r_i, l_i]
+            se = float(np.std(v, ddof=1) / math.sqrt(n_splits)) if n_splits > 1 else float("nan")
+            row = {"basis": setting.describe(), "strength": float(lam), "l1_ratio": ratio,
+                   "mean": float(np.mean(v)), "std": float(np.std(v)), "se": se,
+                   "df": float(df[r_i, l_i]), "folds": [float(x) for x in v]}
+            if "_std" in extra:
+                row["std"] = float(extra["_std"][r_i, l_i])
+                row["se"] = float(extra["_se"][r_i, l_i])
+                row["folds"] = None
+            for key, arr in extra.items():
+                if not key.startswith("_"):
+                    row[key] = float(arr[r_i, l_i])
+            row["_setting"] = s_idx
+            rows.append(row)
+    return rows
+
+
+def finite_table(rows: list[dict[str, Any]]) -> tuple[list[dict[str, Any]], list[str]]:
+    """The public CV table (no private keys) with every non-finite figure replaced by None, and a
+    warning naming the candidates that had one (a stored version never holds NaN or infinity)."""
+    out, bad = [], []
+    for r in rows:
+        clean = {}
+        for k, v in r.items():
+            if k.startswith("_"):
+                continue
+            if isinstance(v, float) and not math.isfinite(v):
+                if k == "mean":
+                    bad.append(f"{_label(r)} at strength {r['strength']:.4g}")
+                v = None
+            elif k == "folds" and v is not None:
+                v = [x if math.isfinite(x) else None for x in v]
+            clean[k] = v
+        out.append(clean)
+    warnings = []
+    if bad:
+        shown = "; ".join(bad[:5]) + (f" and {len(bad) - 5} more" if len(bad) > 5 else "")
+        warnings.append(f"{len(bad)} candidate(s) have no finite CV error and were not eligible: {shown}")
+    return out, warnings
+
+
+def _label(row: dict[str, Any]) -> str:
+    b = row["basis"]
+    s = {"linear": "linear", "polynomial": f"polynomial degree {b.get('degree')}",
+         "rbf": f"rbf width {b.get('width')}"}.get(b.get("kind"), str(b))
+    return s + (f" l1_ratio {row['l1_ratio']:g}" if row.get("l1_ratio") not in (None, 1.0) else "")
+
+
+# ---- selection ---------------------------------------------------------------------------------------
+def select(rows: list[dict[str, Any]], settings: list[BasisSetting], metric: str, rule: str
+           ) -> tuple[int, int, int]:
+    """(chosen, best mean, one-standard-error) indices into ``rows``.
+
+    One-standard-error rule (Hastie, Tibshirani & Friedman, *The Elements of Statistical Learning*,
+    2nd ed., §7.10): the standard error of the best candidate's mean CV error is the sample standard
+    deviation (ddof = 1) of its split errors over √(number of splits); among the candidates whose mean
+    is within one such standard error of the best, take the most parsimonious, measured by ``df``
+    (effective degrees of freedom, comparable across bases); ties go to the larger strength, then the
+    simpler basis (linear, lower polynomial degree, wider RBF), then the larger l1 ratio.
+    """
+    sign = 1.0 if lower_is_better(metric) else -1.0
+    score = np.array([sign * r["mean"] for r in rows], dtype=float)
+    if not np.isfinite(score).any():
+        raise InvalidData("no candidate has a finite CV error: every fit produced NaN or infinity; check the "
+                          "target and features for extreme values, and that every fold has several rows")
+    score = np.where(np.isfinite(score), score, np.inf)
+    best = int(np.argmin(score))
+    se = rows[best]["se"]
+    se = se if se is not None and math.isfinite(se) else 0.0
+    within = [i for i in range(len(rows)) if score[i] <= score[best] + se]
+
+    def key(i: int):
+        r = rows[i]
+        df = r["df"] if r.get("df") is not None and math.isfinite(r["df"]) else math.inf
+        return (df, -r["strength"], settings[r["_setting"]].complexity(), -(r["l1_ratio"] or 0.0))
+
+    onese = min(within, key=key)
+    chosen = onese if rule == "one_standard_error" else best
+    return chosen, best, onese
+
+
+def edge_warnings(settings: list[BasisSetting], chosen: dict[str, Any], strengths: np.ndarray) -> list[str]:
+    out = []
+    lam = chosen["strength"]
+    if strengths.size > 1 and lam == strengths[-1]:
+        out.append(f"the chosen strength {lam:.4g} is the largest in the grid; widen the grid upwards")
+    if strengths.size > 1 and lam == strengths[0] and lam > 0:
+        out.append(f"the chosen strength {lam:.4g} is the smallest in the grid; widen the grid downwards")
+    s = settings[chosen["_setting"]]
+    if s.kind == "polynomial":
+        degrees = sorted({x.degree for x in settings if x.kind == "polynomial"})
+        if len(degrees) > 1 and s.degree == degrees[-1]:
+            out.append(f"the chosen degree {s.degree} is the highest in the grid; widen the grid (try higher degrees)")
+    if s.kind == "rbf":
+        widths = sorted({x.width for x in settings if x.kind == "rbf"})
+        if len(widths) > 1 and s.width in (widths[0], widths[-1]):
+            side = "narrowest" if s.width == widths[0] else "widest"
+            out.append(f"the chosen RBF width {s.width:g} is the {side} in the grid; widen the grid")
+    return out
