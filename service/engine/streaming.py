@@ -34,7 +34,7 @@ from .basis import KMEANS_SAMPLE, BasisSetting, Categories, InputScaler, kmeans_
 from .executors import SerialExecutor
 from .folds import hash_folds, key_hash
 from .model import MAX_INTERVAL_RESIDUALS, FittedModel, thin_residuals
-from .solvers import centred_scaled, fit, leverage_factor
+from .solvers import centred_scaled, convergence_warnings, fit, leverage_factor, watch_convergence
 from .spec import TuneSpec, parse_spec
 from .summaries import Summary
 from .table import categorical_column, numeric_column
@@ -383,6 +383,13 @@ def tune_partitions(partitions: Sequence[Partition], schema: dict[str, str], spe
                     should_stop: Callable[[], bool] | None = None, budget: Budget | None = None) -> TuneResult:
     """Tune from partitions read in batches. ``schema`` maps column name → "number" or "text"."""
     spec = parse_spec(spec)
+    with watch_convergence() as unconverged:
+        result = _tune_partitions(partitions, schema, spec, executor, progress, should_stop, budget)
+    result.warnings.extend(convergence_warnings(unconverged))
+    return result
+
+
+def _tune_partitions(partitions, schema, spec: TuneSpec, executor, progress, should_stop, budget) -> TuneResult:
     check_stream_spec(spec)
     if not partitions:
         raise InvalidData("the source has no partitions (no files or no rows)")

@@ -22,7 +22,7 @@ from .basis import (BasisSetting, Categories, InputScaler, check_rbf_width, n_po
                     rbf_centers, sample_rows)
 from .folds import Plan, make_plan, order_key
 from .model import FittedModel, thin_residuals
-from .solvers import Fit, centred_scaled, fit, leverage_factor
+from .solvers import Fit, centred_scaled, convergence_warnings, fit, leverage_factor, watch_convergence
 from .spec import TuneSpec, parse_spec
 from .summaries import Summary
 from .result import (check_spread, edge_warnings, finite_table, metric_value, score_splits, select, setting_df,
@@ -265,6 +265,13 @@ def tune(data: Any, spec: Any, *, progress: Callable[[int, int], None] | None = 
          should_stop: Callable[[], bool] | None = None, budget: Budget | None = None) -> TuneResult:
     """Choose basis setting and penalty strength jointly by cross-validation, then refit on all rows."""
     spec = parse_spec(spec)
+    with watch_convergence() as unconverged:
+        result = _tune(data, spec, progress, should_stop, budget)
+    result.warnings.extend(convergence_warnings(unconverged))
+    return result
+
+
+def _tune(data, spec: TuneSpec, progress, should_stop, budget) -> TuneResult:
     prep = prepare(data, spec)
     n, d = prep.X.shape
     check_budget(spec, n, d, budget, prep.categories.width)
