@@ -62,6 +62,22 @@ def lower_is_better(metric: str) -> bool:
     return metric != "r2"
 
 
+# ---- the one rule for column types ---------------------------------------------------------------------
+def column_kind(values_or_dtype: Any) -> str:
+    """"number" (integers and floats), "boolean" or "text" (anything else) for a column or its numpy dtype.
+
+    The rule for every front end: numbers are features and targets; text is read only as categorical
+    levels (or group / order / key columns); booleans are neither numbers nor default features: a
+    boolean column must be encoded as 0/1 numbers or listed under ``categorical`` (levels "True" and
+    "False"), the same answer the HTTP tables give."""
+    kind = np.dtype(getattr(values_or_dtype, "dtype", values_or_dtype)).kind
+    if kind in "iuf":
+        return "number"
+    if kind == "b":
+        return "boolean"
+    return "text"
+
+
 # ---- column checks shared by both front ends ---------------------------------------------------------
 def check_spread(name: str, role: str, lo: float, hi: float, n: int) -> None:
     """Refuse a column whose sums of squares would overflow float64 (n · (max − min)² > 1.8e308): the CV
@@ -224,3 +240,52 @@ def edge_warnings(settings: list[BasisSetting], chosen: dict[str, Any], strength
             side = "narrowest" if s.width == widths[0] else "widest"
             out.append(f"the chosen RBF width {s.width:g} is the {side} in the grid; widen the grid")
     return out
+
+
+# ---- the one data fingerprint -------------------------------------------------------------------------
+FINGERPRINT_METHOD = ("per column: 4 lanes of Σ splitmix64(value ⊕ splitmix64(4·row + lane)) mod 2⁶⁴ over the rows "
+                      "(value: float64 bits of a number, BLAKE2b-64 of a text's UTF-8); sha256 over the sorted "
+                      "column names with their lanes and the row count")
+
+
+def column_lanes(values: np.ndarray, offset: int) -> np.ndarray:
+    """(4,) uint64 lanes of one column's rows, the first at position ``offset`` in the whole source. Lanes
+    of consecutive row blocks add (mod 2⁶⁴), so the fingerprint does not depend on how the rows were cut
+    into partitions or batches, while moving a value to another row changes it."""
+    from .folds import key_hash, splitmix64
+
+    values = np.asarray(values)
+    if values.dtype.kind in "biuf":
+        u = (values.astype(np.float64) + 0.0).view(np.uint64)  # + 0.0 folds -0.0 into 0.0
+    else:
+        u = key_hash(np.asarray([str(v) for v in values.tolist()], dtype=object), 0)
+    pos = np.arange(offset, offset + u.size, dtype=np.uint64) * np.uint64(4)
+    out = np.zeros(4, dtype=np.uint64)
+    with np.errstate(over="ignore"):
+        for k in range(4):
+            out[k] = np.sum(splitmix64(u ^ splitmix64(pos + np.uint64(k))), dtype=np.uint64)
+    return out
+
+
+def add_lanes(a: dict[str, np.ndarray], b: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
+    out = dict(a)
+    with np.errstate(over="ignore"):
+        for name, lanes in b.items():
+            out[name] = out[name] + lanes if name in out else lanes
+    return out
+
+
+def fingerprint_of(lanes: dict[str, np.ndarray], rows: int) -> dict[str, Any]:
+    """The data fingerprint of a version: the same rows in the same order give the same value in memory
+    and streamed, however they are partitioned or batched."""
+    import hashlib
+
+    h = hashlib.sha256()
+    h.update(f"rows={int(rows)};".encode())
+    for name in sorted(lanes):
+        h.update(name.encode("utf-8") + b"\x00" + np.asarray(lanes[name], dtype="<u8").tobytes())
+    return {"sha256": h.hexdigest(), "rows": int(rows), "columns": len(lanes), "method": FINGERPRINT_METHOD}
+
+
+def fingerprint_columns(cols: dict[str, np.ndarray], names: list[str], offset: int = 0) -> dict[str, np.ndarray]:
+    return {name: column_lanes(cols[name], offset) for name in names}

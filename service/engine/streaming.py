@@ -6,7 +6,7 @@ itself (``service.sources`` makes partitions of Parquet and CSV files). Three pa
 map-reduce over partitions that an executor runs here or on a Dask cluster:
 
 1. scan: row count, Chan et al.'s pairwise-merged means and variances of the inputs, ranges, NaN checks,
-   categorical levels, a bottom-k hash sample for RBF centres, and a fingerprint per partition;
+   categorical levels, a bottom-k hash sample for RBF centres, and the fingerprint lanes of each column;
 2. summaries: for every (partition, basis group) the per-fold R factors of ``[1, Φ, y]``, merged by
    stacking and re-factoring; nested polynomial degrees share one group. Then the grid is scored from
    the fold summaries exactly as in memory (MAE takes one more pass for per-row errors);
@@ -20,7 +20,6 @@ row in the same fold; the CV table then matches the in-memory one to rounding.
 
 from __future__ import annotations
 
-import hashlib
 import math
 from dataclasses import dataclass, field
 from functools import partial
@@ -38,8 +37,8 @@ from .solvers import centred_scaled, convergence_warnings, fit, leverage_factor,
 from .spec import TuneSpec, parse_spec
 from .summaries import Summary
 from .table import categorical_column, numeric_column
-from .result import (check_spread, edge_warnings, finite_table, metric_value, score_splits, select, setting_df,
-                     table_rows)
+from .result import (add_lanes, check_spread, edge_warnings, fingerprint_columns, fingerprint_of, finite_table,
+                     metric_value, score_splits, select, setting_df, table_rows)
 from .tune import PLOT_SAMPLE, Budget, TuneResult, _path, basis_settings, check_budget, resolve_columns
 
 SAMPLE_SALT = 0x5A17
@@ -68,7 +67,7 @@ class Scan:
     sample_h: np.ndarray  # bottom-k key hashes
     sample_pos: np.ndarray
     sample_X: np.ndarray
-    digests: list[tuple[int, str, int]] = field(default_factory=list)  # (offset, sha256, rows)
+    lanes: dict[str, np.ndarray] = field(default_factory=dict)  # fingerprint lanes per column (result.py)
 
 
 @dataclass(frozen=True)
@@ -115,19 +114,14 @@ def _scan_partition(ctx: _Ctx, part: Partition) -> Scan:
     levels: list[set[str]] = [set() for _ in ctx.spec.categorical]
     groups: set[str] = set()
     sh, sp, sx = np.zeros(0, np.uint64), np.zeros(0, np.int64), np.zeros((0, d))
-    digest = hashlib.sha256()
+    lanes: dict[str, np.ndarray] = {}
     pos = part.offset
     for batch in part.read(ctx.columns, ctx.batch_rows):
         X, y = _numeric_block(ctx, batch, pos)
         b = y.size
         if b == 0:
             continue
-        for name in sorted(ctx.columns):
-            c = batch[name]
-            if c.dtype.kind in "biuf":
-                digest.update(np.ascontiguousarray(c, dtype="<f8").tobytes())
-            else:
-                digest.update("\x00".join(str(v) for v in c).encode("utf-8") + b"\x00")
+        lanes = add_lanes(lanes, fingerprint_columns(batch, ctx.columns, pos))
         bm = X.mean(axis=0)
         bm2 = ((X - bm) ** 2).sum(axis=0)
         delta = bm - mean
@@ -149,15 +143,14 @@ def _scan_partition(ctx: _Ctx, part: Partition) -> Scan:
         keep = _bottom_k(sh, ctx.sample_size)
         sh, sp, sx = sh[keep], sp[keep], sx[keep]
         pos += b
-    return Scan(n, mean, m2, lo, hi, y_lo, y_hi, levels, groups, sh, sp, sx,
-                [(part.offset, digest.hexdigest(), pos - part.offset)])
+    return Scan(n, mean, m2, lo, hi, y_lo, y_hi, levels, groups, sh, sp, sx, lanes)
 
 
 def _merge_scan(a: Scan, b: Scan) -> Scan:
     if a.n == 0:
-        return _with_digests(b, a.digests + b.digests)
+        return _with_lanes(b, add_lanes(a.lanes, b.lanes))
     if b.n == 0:
-        return _with_digests(a, a.digests + b.digests)
+        return _with_lanes(a, add_lanes(a.lanes, b.lanes))
     tot = a.n + b.n
     delta = b.mean - a.mean
     mean = a.mean + delta * (b.n / tot)
@@ -167,11 +160,11 @@ def _merge_scan(a: Scan, b: Scan) -> Scan:
     return Scan(tot, mean, m2, np.minimum(a.lo, b.lo), np.maximum(a.hi, b.hi), min(a.y_lo, b.y_lo),
                 max(a.y_hi, b.y_hi), [x | y for x, y in zip(a.levels, b.levels)], a.groups | b.groups, sh[keep],
                 np.concatenate([a.sample_pos, b.sample_pos])[keep], np.vstack([a.sample_X, b.sample_X])[keep],
-                a.digests + b.digests)
+                add_lanes(a.lanes, b.lanes))
 
 
-def _with_digests(s: Scan, digests: list[tuple[int, str, int]]) -> Scan:
-    s.digests = digests
+def _with_lanes(s: Scan, lanes: dict[str, np.ndarray]) -> Scan:
+    s.lanes = lanes
     return s
 
 
@@ -349,12 +342,7 @@ def score_partitions(model: FittedModel, partitions: Sequence[Partition], spec: 
     acc = executor.map_reduce(partial(_score_partition, ctx, model), list(partitions), _sum_arrays)
     n, sse, sae, sy, syy = acc
     with np.errstate(divide="ignore", invalid="ignore"):
-        if metric == "rmse":
-            per = np.sqrt(sse / n)
-        elif metric == "mae":
-            per = sae / n
-        else:
-            per = 1.0 - sse / (syy - sy ** 2 / n)
+        per = metric_value(metric, n, sse=sse, sae=sae, sst=syy - sy ** 2 / n)
     per = per[n > 0]
     return float(per.mean()) if per.size else float("nan")
 
@@ -381,7 +369,7 @@ def _sum_arrays(a: np.ndarray, b: np.ndarray) -> np.ndarray:
 def tune_partitions(partitions: Sequence[Partition], schema: dict[str, str], spec: Any, *,
                     executor=None, progress: Callable[[int, int], None] | None = None,
                     should_stop: Callable[[], bool] | None = None, budget: Budget | None = None) -> TuneResult:
-    """Tune from partitions read in batches. ``schema`` maps column name → "number" or "text"."""
+    """Tune from partitions read in batches. ``schema`` maps column name → "number", "boolean" or "text"."""
     spec = parse_spec(spec)
     with watch_convergence() as unconverged:
         result = _tune_partitions(partitions, schema, spec, executor, progress, should_stop, budget)
@@ -500,7 +488,8 @@ def _tune_partitions(partitions, schema, spec: TuneSpec, executor, progress, sho
         mtasks = [(p, g) for g in range(len(groups)) for p in parts]
         sums = executor.map_reduce(partial(_mae_sums, model_ctx, groups, members, weights), mtasks,
                                    _merge_all_mae, on_done=tick, should_stop=should_stop)
-        rows = [(i, s, np.transpose(sums[i][0] / sums[i][1][:, None, None], (1, 2, 0))) for i, s, _ in rows]
+        rows = [(i, s, np.transpose(metric_value("mae", sums[i][1][:, None, None], sae=sums[i][0]), (1, 2, 0)))
+                for i, s, _ in rows]
     table: list[dict[str, Any]] = []
     for i, s, values in rows:
         df = setting_df(Summary.combine(atoms_of(i)[0]), spec, strengths, ratios)
@@ -555,8 +544,6 @@ def _tune_partitions(partitions, schema, spec: TuneSpec, executor, progress, sho
                 "l1_ratio": r["l1_ratio"]}, "metric": spec.selection.metric, "mean": r["mean"], "std": r["std"],
                 "index": table_rows_.index(r)}
 
-    digests = sorted(scan.digests)
-    fp = hashlib.sha256("".join(f"{o}:{r}:{h};" for o, h, r in digests).encode()).hexdigest()
     summary = {"metric": spec.selection.metric, "rule": spec.selection.rule, "scheme": spec.cv.scheme, "splits": K,
                "mean": chosen["mean"], "std": chosen["std"], "rows": int(n), "basis_settings": len(settings),
                "strengths": int(strengths.size), "l1_ratios": len(ratios), "candidates": len(table_rows_),
@@ -567,8 +554,7 @@ def _tune_partitions(partitions, schema, spec: TuneSpec, executor, progress, sho
         best_mean=public(table_rows_[best_idx]), cv_table=table, model=model, folds=np.zeros(0, dtype=np.int64),
         path=_path(full, strengths, strength, names, spec.penalty.kind), warnings=warnings,
         oof_predictions=fin.sample_pred, oof_observed=fin.sample_obs, oof_residuals=fin.sample_obs - fin.sample_pred,
-        fingerprint={"sha256": fp, "rows": int(n), "columns": len(columns),
-                     "method": "sha256 over partition digests (offset:rows:sha256 of each partition's batches)"},
+        fingerprint=fingerprint_of(scan.lanes, n),
         summary=summary,
     )
 

@@ -25,9 +25,9 @@ from .model import FittedModel, thin_residuals
 from .solvers import Fit, centred_scaled, convergence_warnings, fit, leverage_factor, watch_convergence
 from .spec import TuneSpec, parse_spec
 from .summaries import Summary
-from .result import (check_spread, edge_warnings, finite_table, metric_value, score_splits, select, setting_df,
-                     table_rows)
-from .table import as_columns, categorical_column, fingerprint, numeric_column, numeric_names
+from .result import (check_spread, column_kind, edge_warnings, fingerprint_columns, fingerprint_of, finite_table, metric_value,
+                     score_splits, select, setting_df, table_rows)
+from .table import as_columns, categorical_column, numeric_column
 
 PLOT_SAMPLE = 5_000
 LEVERAGE_ONE = 1e-10  # a row with hᵢᵢ ≥ 1 − this has leverage 1: its leave-one-out error needs a refit
@@ -126,7 +126,7 @@ def prepare(data: Any, spec: TuneSpec) -> Prepared:
     n = len(next(iter(cols.values()))) if cols else 0
     if n == 0:
         raise InvalidData("the data has no rows; send at least a few rows per fold")
-    schema = {c: "number" if v.dtype.kind in "biuf" else "text" for c, v in cols.items()}
+    schema = {c: column_kind(v) for c, v in cols.items()}
     features, used = resolve_columns(spec, schema)
     y = numeric_column(cols, spec.target, "target")
     if np.ptp(y) == 0:
@@ -149,8 +149,9 @@ def prepare(data: Any, spec: TuneSpec) -> Prepared:
 
 
 def resolve_columns(spec: TuneSpec, schema: dict[str, str]) -> tuple[list[str], list[str]]:
-    """(features, every column used) for a table whose columns are ``schema`` (name → "number" or
-    "text"). The default features are all numeric columns that have no other role."""
+    """(features, every column used) for a table whose columns are ``schema`` (name → "number", "boolean"
+    or "text", see ``result.column_kind``). The default features are all numeric columns that have no
+    other role."""
     def unknown(field_name: str, value: Any, what: str) -> InvalidSpec:
         return InvalidSpec(f"{what} {value!r} {'are' if isinstance(value, list) else 'is'} not in the data; "
                            f"columns present: {sorted(schema)[:20]}",
@@ -325,7 +326,7 @@ def _tune(data, spec: TuneSpec, progress, should_stop, budget) -> TuneResult:
                "python": platform.python_version()}
     model.cv = {"metric": metric, "mean": chosen["mean"], "std": chosen["std"], "folds": search.n_splits,
                 "scheme": spec.cv.scheme, "rule": spec.selection.rule}
-    fp = fingerprint(prep.cols, prep.used)
+    fp = fingerprint_of(fingerprint_columns(prep.cols, prep.used), n)
     return TuneResult(spec=spec, best=best, one_standard_error=public(rows[onese_idx]),
                       best_mean=public(rows[best_idx]), cv_table=table, model=model,
                       folds=search.assignment, path=path, warnings=warnings, oof_predictions=oof_pred,
@@ -424,7 +425,8 @@ class _SharedSearch:
         if self.spec.selection.metric == "mae":
             def mae_rows(test_ids: list[int], f: Fit) -> np.ndarray:
                 rows = np.concatenate([self.plan.atoms[i] for i in test_ids])
-                return np.abs(y[rows, None] - f.intercept[None, :] - D[rows] @ f.weights.T).mean(axis=0)
+                sae = np.abs(y[rows, None] - f.intercept[None, :] - D[rows] @ f.weights.T).sum(axis=0)
+                return metric_value("mae", rows.size, sae=sae)
         values, _ = score_splits(atoms, self.plan.splits, self.spec, self.strengths, self.ratios, mae_rows)
         df = setting_df(Summary.combine([atoms[i] for i in self.plan.refit_atoms]), self.spec, self.strengths,
                         self.ratios)
@@ -504,7 +506,7 @@ class _PerFoldSearch(_SharedSearch):
                 f = fit(train, self.spec.penalty.kind, self.strengths, ratio)
                 if metric == "mae":
                     resid = y[te, None] - f.intercept[None, :] - Phi[te] @ f.weights.T
-                    values[r_i, :, j] = np.abs(resid).mean(axis=0)
+                    values[r_i, :, j] = metric_value("mae", te.size, sae=np.abs(resid).sum(axis=0))
                 else:
                     values[r_i, :, j] = metric_value(metric, test.n, sse=test.sse(f.residual_operator()),
                                                      sst=test.total_ss())
