@@ -11,18 +11,22 @@ on column magnitudes that both front ends apply while reading.
 from __future__ import annotations
 
 import math
+import platform
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 
 from service.errors import InvalidData
 
-from .basis import BasisSetting
-from .solvers import Fit, fit
+from .basis import BasisSetting, Categories, InputScaler
+from .model import FittedModel
+from .solvers import Fit, centred_scaled, fit, leverage_factor
 from .spec import TuneSpec
 from .summaries import Summary
 
 METRICS = ("rmse", "mae", "r2")
+PLOT_SAMPLE = 5_000
 
 
 # ---- the one metric function ------------------------------------------------------------------------
@@ -289,3 +293,156 @@ def fingerprint_of(lanes: dict[str, np.ndarray], rows: int) -> dict[str, Any]:
 
 def fingerprint_columns(cols: dict[str, np.ndarray], names: list[str], offset: int = 0) -> dict[str, np.ndarray]:
     return {name: column_lanes(cols[name], offset) for name in names}
+
+
+# ---- the refit and the result ------------------------------------------------------------------------
+def refit_all_rows(full_summary: Summary, spec: TuneSpec, strengths: np.ndarray, strength: float,
+                   ratio: float | None) -> tuple[Fit, int, np.ndarray]:
+    """(fit on all rows over the strength grid, index of the chosen strength, leverage factor F with
+    ``h(z) = 1/n + ‖F z‖²``) from the summary of every row."""
+    full = fit(full_summary, spec.penalty.kind, strengths, ratio)
+    l_idx = int(np.flatnonzero(strengths == strength)[0])
+    F = leverage_factor(centred_scaled(full_summary)[0], strength, spec.penalty.kind, ratio, full.n, full.beta[l_idx])
+    return full, l_idx, F
+
+
+def build_model(spec: TuneSpec, features: list[str], scaler: InputScaler, setting: BasisSetting,
+                categories: Categories, full: Fit, l_idx: int, ratio: float | None, F: np.ndarray,
+                ranges: dict[str, list[float]],
+                max_leverage: float, residuals: tuple[np.ndarray, np.ndarray, float],
+                fold_fits: list[Fit] | None) -> FittedModel:
+    """The fitted model at index ``l_idx`` of the all-rows fit. ``residuals`` is ``thin_residuals``'
+    (sorted absolute out-of-fold residuals, their fold, weight); without ``fold_fits`` the intervals are
+    split-conformal (fold -1)."""
+    res, res_fold, g = residuals
+    fw = fi = None
+    if fold_fits is not None:
+        fw = np.vstack([f.weights[0] for f in fold_fits])
+        fi = np.array([f.intercept[0] for f in fold_fits])
+    else:
+        res_fold = np.full(res.size, -1, dtype=np.int64)
+    strength = float(full.strengths[l_idx])
+    return FittedModel(
+        target=spec.target, features=list(features), scaler=scaler, basis=setting, categories=categories,
+        column_mean=full.mean, column_scale=full.scale, beta=full.beta[l_idx], intercept=float(full.intercept[l_idx]),
+        penalty={"kind": spec.penalty.kind, "strength": strength, "l1_ratio": ratio},
+        n_train=full.n, ranges=ranges, leverage_factor=F, max_leverage=float(max_leverage),
+        fold_weights=fw, fold_intercepts=fi, residuals=res, residual_fold=res_fold, residual_weight=g,
+        term_names=setting.term_names(features) + categories.term_names(),
+    )
+
+
+def path_of(full: Fit, strength: float, names: list[str]) -> dict[str, Any]:
+    """The regularization path of the chosen setting refit on all rows (``TuneResult.path``)."""
+    return {"strengths": full.strengths.tolist(), "coefficients": full.beta.tolist(), "terms": names,
+            "chosen_strength": float(strength), "df": full.effective_df().tolist() if full.singular is not None else None}
+
+
+def finish(spec: TuneSpec, settings: list[BasisSetting], rows: list[dict[str, Any]], picks: tuple[int, int, int],
+           model: FittedModel, full: Fit, *, n_rows: int, n_splits: int, folds: np.ndarray,
+           oof_predictions: np.ndarray, oof_observed: np.ndarray, fingerprint: dict[str, Any],
+           warnings: list[str] = (), summary_extra: dict[str, Any] | None = None) -> TuneResult:
+    """The ``TuneResult`` of either front end, from the CV rows, the selection ``picks`` (chosen, best
+    mean, one-standard-error) and the refit model."""
+    chosen_idx, best_idx, onese_idx = picks
+    chosen = rows[chosen_idx]
+    metric, rule = spec.selection.metric, spec.selection.rule
+    strengths = full.strengths
+    table, table_warnings = finite_table(rows)
+
+    def public(i: int) -> dict[str, Any]:
+        r = rows[i]
+        return {"basis": r["basis"], "penalty": {"kind": spec.penalty.kind, "strength": r["strength"],
+                "l1_ratio": r["l1_ratio"]}, "metric": metric, "mean": r["mean"], "std": r["std"], "index": i}
+
+    summary = {"metric": metric, "rule": rule, "scheme": spec.cv.scheme, "splits": n_splits,
+               "mean": chosen["mean"], "std": chosen["std"], "rows": int(n_rows), "basis_settings": len(settings),
+               "strengths": int(strengths.size), "l1_ratios": len(spec.penalty.ratio_grid()),
+               "candidates": len(rows), "python": platform.python_version(), **(summary_extra or {})}
+    model.cv = {"metric": metric, "mean": chosen["mean"], "std": chosen["std"], "folds": n_splits,
+                "scheme": spec.cv.scheme, "rule": rule}
+    return TuneResult(
+        spec=spec, best=public(chosen_idx) | {"rule": rule}, one_standard_error=public(onese_idx),
+        best_mean=public(best_idx), cv_table=table, model=model, folds=folds,
+        path=path_of(full, chosen["strength"], model.term_names),
+        warnings=edge_warnings(settings, chosen, strengths) + table_warnings + list(warnings),
+        oof_predictions=oof_predictions, oof_observed=oof_observed, oof_residuals=oof_observed - oof_predictions,
+        fingerprint=fingerprint, summary=summary)
+
+
+@dataclass
+class TuneResult:
+    """The outcome of a tuning run, from ``tune`` or ``tune_partitions`` (built here, in ``finish``).
+
+    Attributes (n = training rows, L = strengths, p = basis terms of the chosen setting):
+        spec: the validated ``TuneSpec``.
+        best: the chosen candidate: ``{basis, penalty: {kind, strength, l1_ratio}, metric, mean, std,
+            index, rule}`` (``index`` into ``cv_table``).
+        one_standard_error: the candidate the one-standard-error rule picks (same keys, no ``rule``).
+        best_mean: the candidate with the best mean CV metric (same keys).
+        cv_table: one dict per candidate (basis setting × l1 ratio × strength): ``basis``, ``strength``,
+            ``l1_ratio``, ``mean``, ``std`` (population, over splits), ``se`` (ddof = 1, over √splits),
+            ``df`` (effective degrees of freedom, intercept excluded), ``folds`` (per-split values, or
+            None for loo, which adds ``gcv``). Non-finite figures are None.
+        model: the ``FittedModel`` refit on all rows at the chosen candidate.
+        folds: (n,) int validation split of each row (kfold, grouped, time_ordered: -1 for rows never
+            validated), (repeats, n) for repeated_kfold, or (0,) when streamed.
+        path: ``{strengths (L,), coefficients (L, p), terms (p,), chosen_strength, df (L,) or None}``
+            of the chosen setting refit on all rows.
+        warnings: human-readable warnings (edge of grid, leverage one, solver convergence, ...).
+        oof_predictions, oof_observed, oof_residuals: (m,) out-of-fold predictions, observed values and
+            their differences; m = n in memory (NaN for rows never validated), a seeded sample streamed.
+        fingerprint: ``{sha256, rows, columns, method}`` of the training columns (``fingerprint_of``).
+        summary: counts and settings of the run (metric, rule, scheme, splits, rows, candidates, ...).
+    """
+    spec: TuneSpec
+    best: dict[str, Any]
+    one_standard_error: dict[str, Any]
+    best_mean: dict[str, Any]
+    cv_table: list[dict[str, Any]]
+    model: FittedModel
+    folds: np.ndarray
+    path: dict[str, Any]
+    warnings: list[str]
+    oof_predictions: np.ndarray
+    oof_observed: np.ndarray
+    oof_residuals: np.ndarray
+    fingerprint: dict[str, Any]
+    summary: dict[str, Any] = field(default_factory=dict)
+
+    def to_artifact(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+        """(JSON-serializable manifest body, plain numeric arrays): all a stored version needs."""
+        meta, arrays = self.model.to_parts()
+        finite = np.isfinite(self.oof_predictions)
+        idx = np.flatnonzero(finite)
+        if idx.size > PLOT_SAMPLE:
+            idx = np.sort(np.random.default_rng(0).choice(idx, PLOT_SAMPLE, replace=False))
+        arrays = dict(arrays)
+        arrays["path_strengths"] = np.asarray(self.path["strengths"], dtype=float)
+        arrays["path_coefficients"] = np.asarray(self.path["coefficients"], dtype=float)
+        if self.path.get("df") is not None:
+            arrays["path_df"] = np.asarray(self.path["df"], dtype=float)
+        arrays["oof_predicted"] = self.oof_predictions[idx]
+        arrays["oof_observed"] = self.oof_observed[idx]
+        res = self.oof_residuals[finite]
+        qs = np.linspace(0, 1, 101)
+        body = {
+            "spec": self.spec.model_dump(mode="json"),
+            "model": meta,
+            "chosen": self.best,
+            "best_mean": self.best_mean,
+            "one_standard_error": self.one_standard_error,
+            "cv_table": self.cv_table,
+            "cv_summary": self.summary,
+            "path": {"strengths": "arrays:path_strengths", "coefficients": "arrays:path_coefficients",
+                     "terms": self.path["terms"], "chosen_strength": self.path["chosen_strength"],
+                     "df": "arrays:path_df" if self.path.get("df") is not None else None},
+            "residual_quantiles": {"levels": qs.tolist(),
+                                   "abs_residual": np.quantile(np.abs(res), qs).tolist() if res.size else []},
+            "warnings": list(self.warnings),
+            "data_fingerprint": self.fingerprint,
+            "feature_schema": self.model.feature_schema(),
+        }
+        return body, arrays
+
+

@@ -27,19 +27,20 @@ from typing import Any, Callable, Iterator, Protocol, Sequence
 
 import numpy as np
 
-from service.errors import Cancelled, InvalidData, InvalidSpec
+from service.errors import InvalidData, InvalidSpec
 
 from .basis import KMEANS_SAMPLE, BasisSetting, Categories, InputScaler, kmeans_centers
 from .executors import SerialExecutor
 from .folds import hash_folds, key_hash
 from .model import MAX_INTERVAL_RESIDUALS, FittedModel, thin_residuals
-from .solvers import centred_scaled, convergence_warnings, fit, leverage_factor, watch_convergence
+from .solvers import convergence_warnings, fit, watch_convergence
 from .spec import TuneSpec, parse_spec
 from .summaries import Summary
 from .table import categorical_column, numeric_column
-from .result import (add_lanes, check_spread, edge_warnings, fingerprint_columns, fingerprint_of, finite_table,
-                     metric_value, score_splits, select, setting_df, table_rows)
-from .tune import PLOT_SAMPLE, Budget, TuneResult, _path, basis_settings, check_budget, resolve_columns
+from .result import (PLOT_SAMPLE, TuneResult, add_lanes, build_model, check_spread, fingerprint_columns,
+                     fingerprint_of, finish, metric_value, refit_all_rows, score_splits, select, setting_df,
+                     table_rows)
+from .tune import Budget, basis_settings, check_budget, resolve_columns
 
 SAMPLE_SALT = 0x5A17
 PLOT_SALT = 0x9107
@@ -381,26 +382,54 @@ def _tune_partitions(partitions, schema, spec: TuneSpec, executor, progress, sho
     check_stream_spec(spec)
     if not partitions:
         raise InvalidData("the source has no partitions (no files or no rows)")
-    executor = executor or SerialExecutor()
     features, columns = resolve_columns(spec, schema)
-    ctx = _Ctx(spec, features, columns, spec.execution.batch_rows)
-    K = spec.cv.folds
-    parts = list(partitions)
+    run = _Run(_Ctx(spec, features, columns, spec.execution.batch_rows), list(partitions),
+               executor or SerialExecutor(), progress, should_stop)
+    scan = run.map_reduce(partial(_scan_partition, run.ctx), run.parts, _merge_scan)
+    m, settings = _setup(run, scan, budget)
+    groups = _Groups(settings, len(features), m.categories.width)
+    tasks = [(p, g) for g in range(len(groups.items)) for p in run.parts]
+    fold_summaries = run.map_reduce(partial(_summarize, m, groups.items), tasks, _merge_summaries)
+    empty = [f for f, s in enumerate(fold_summaries[0]) if s.n == 0]
+    if empty:
+        raise InvalidSpec(f"hash assignment left fold {empty[0]} empty; use fewer folds or more rows/groups",
+                          errors=[{"field": "cv.folds", "value": spec.cv.folds, "message": "empty fold"}])
+    rows = _score(run, m, settings, groups, fold_summaries)
+    picks = select(rows, settings, spec.selection.metric, spec.selection.rule)
+    return _refit(run, m, scan, settings, groups, fold_summaries, rows, picks)
 
-    # pass 1 -----------------------------------------------------------------------------------------
-    n_groups_guess = sum(1 for b in spec.bases if b.kind == "rbf" for _ in b.widths) + \
-        (1 if any(b.kind != "rbf" for b in spec.bases) else 0)
-    total = len(parts) * (2 + n_groups_guess + (n_groups_guess if spec.selection.metric == "mae" else 0))
-    done = [0]
 
-    def tick():
-        done[0] += 1
-        if progress:
-            progress(done[0], total)
+@dataclass
+class _Run:
+    """One streamed run: partitions, executor, and the progress count over every map task."""
 
-    scan = executor.map_reduce(partial(_scan_partition, ctx), parts, _merge_scan, on_done=tick,
-                               should_stop=should_stop)
-    n = scan.n
+    ctx: _Ctx
+    parts: list
+    executor: Any
+    progress: Callable[[int, int], None] | None
+    should_stop: Callable[[], bool] | None
+    done: int = 0
+
+    @property
+    def total(self) -> int:
+        spec = self.ctx.spec
+        groups = (any(b.kind != "rbf" for b in spec.bases)
+                  + sum(len(b.widths) for b in spec.bases if b.kind == "rbf"))
+        return len(self.parts) * (2 + groups * (2 if spec.selection.metric == "mae" else 1))
+
+    def tick(self) -> None:
+        self.done += 1
+        if self.progress:
+            self.progress(self.done, self.total)
+
+    def map_reduce(self, fn, tasks, reduce):
+        return self.executor.map_reduce(fn, tasks, reduce, on_done=self.tick, should_stop=self.should_stop)
+
+
+def _setup(run: _Run, scan: Scan, budget: Budget | None) -> tuple[_Model, list[BasisSetting]]:
+    """Checks on the scanned data, the input scaling, the categories and the basis settings."""
+    spec, features = run.ctx.spec, run.ctx.features
+    n, K = scan.n, spec.cv.folds
     if n == 0:
         raise InvalidData("the data has no rows; send at least a few rows per fold")
     if scan.y_lo == scan.y_hi:
@@ -417,146 +446,109 @@ def _tune_partitions(partitions, schema, spec: TuneSpec, executor, progress, sho
     for j, f in enumerate(features):
         check_spread(f, "feature", scan.lo[j], scan.hi[j], n)
     categories = Categories(list(spec.categorical), [sorted(s) for s in scan.levels])
-    d = len(features)
-    check_budget(spec, n, d, budget, categories.width, rows_in_memory=spec.execution.batch_rows)
+    check_budget(spec, n, len(features), budget, categories.width, rows_in_memory=spec.execution.batch_rows)
     std = np.sqrt(scan.m2 / n)
     scaler = InputScaler(features, scan.mean, np.where(std > 0, std, 1.0))
-    order = np.argsort(scan.sample_pos)
-    sample_Xs = scaler.transform(scan.sample_X[order])
+    sample_Xs = scaler.transform(scan.sample_X[np.argsort(scan.sample_pos)])
 
     def centers_from(count: int) -> np.ndarray:
         if count >= n:
             return np.ascontiguousarray(sample_Xs)  # every row (n ≤ sample size here)
         return kmeans_centers(sample_Xs, count, spec.cv.seed)
 
-    settings = basis_settings(spec, np.zeros((0, d)), centers_from=centers_from, sample=sample_Xs)
-    strengths = spec.penalty.strength_grid()
-    ratios = spec.penalty.ratio_grid()
-    model_ctx = _Model(ctx, scaler, categories, K)
+    settings = basis_settings(spec, np.zeros((0, len(features))), centers_from=centers_from, sample=sample_Xs)
+    return _Model(run.ctx, scaler, categories, K), settings
 
-    nested = [i for i, s in enumerate(settings) if s.kind in ("linear", "polynomial")]
-    groups: list[tuple[BasisSetting, bool]] = []
-    members: list[list[int]] = []
-    group_of: dict[int, int] = {}
-    if nested:
-        top = max(nested, key=lambda i: settings[i].n_terms(d))
-        groups.append((settings[top], True))
-        members.append(nested)
-        for i in nested:
-            group_of[i] = 0
-    for i, s in enumerate(settings):
-        if s.kind == "rbf":
-            group_of[i] = len(groups)
-            groups.append((s, False))
-            members.append([i])
-    total = len(parts) * (2 + len(groups) + (len(groups) if spec.selection.metric == "mae" else 0))
 
-    # pass 2 -----------------------------------------------------------------------------------------
-    tasks = [(p, g) for g in range(len(groups)) for p in parts]
-    fold_summaries = executor.map_reduce(partial(_summarize, model_ctx, groups), tasks, _merge_summaries,
-                                         on_done=tick, should_stop=should_stop)
-    if any(s.n == 0 for s in fold_summaries[0]):
-        empty = [f for f, s in enumerate(fold_summaries[0]) if s.n == 0]
-        raise InvalidSpec(f"hash assignment left fold {empty[0]} empty; use fewer folds or more rows/groups",
-                          errors=[{"field": "cv.folds", "value": K, "message": "empty fold"}])
-    q = categories.width
-    splits = [([i for i in range(K) if i != j], [j]) for j in range(K)]
+class _Groups:
+    """Basis settings grouped by the pass that summarizes them: nested linear / polynomial settings share
+    the highest degree's pass (one-hot columns first), each RBF setting has its own."""
 
-    def atoms_of(i: int) -> tuple[list[Summary], int]:
-        s = settings[i]
-        g = group_of[i]
-        if groups[g][1]:
-            k = 1 + q + s.n_terms(d)
-            return [a.leading(k) for a in fold_summaries[g]], k - 1
-        return fold_summaries[g], s.n_terms(d) + q
+    def __init__(self, settings: list[BasisSetting], d: int, q: int):
+        self.settings, self.d, self.q = settings, d, q
+        self.items: list[tuple[BasisSetting, bool]] = []
+        self.members: list[list[int]] = []
+        self.of: dict[int, int] = {}
+        nested = [i for i, s in enumerate(settings) if s.kind in ("linear", "polynomial")]
+        if nested:
+            self.items.append((settings[max(nested, key=lambda i: settings[i].n_terms(d))], True))
+            self.members.append(nested)
+            self.of.update({i: 0 for i in nested})
+        for i, s in enumerate(settings):
+            if s.kind == "rbf":
+                self.of[i] = len(self.items)
+                self.items.append((s, False))
+                self.members.append([i])
 
-    rows: list[dict[str, Any]] = []
-    split_fits: dict[int, list] = {}
-    for i, s in enumerate(settings):
-        atoms, _ = atoms_of(i)
-        values, fits = score_splits(atoms, splits, spec, strengths, ratios)
-        split_fits[i] = fits
-        rows.append((i, s, values))
+    def atoms(self, fold_summaries, i: int, model_order: bool = False) -> tuple[list[Summary], int]:
+        """(fold summaries of setting i, its design width). ``model_order`` reorders a nested setting's
+        columns [1, one-hot, Φ, y] into the model's [1, Φ, one-hot, y] (``Summary.permuted``, no rows)."""
+        g = self.of[i]
+        if not self.items[g][1]:
+            return fold_summaries[g], self.settings[i].n_terms(self.d) + self.q
+        p = self.settings[i].n_terms(self.d)
+        k = 1 + self.q + p
+        atoms = [a.leading(k) for a in fold_summaries[g]]
+        if model_order and self.q:
+            order = [0, *range(1 + self.q, k), *range(1, 1 + self.q), k]
+            atoms = [a.permuted(order) for a in atoms]
+        return atoms, k - 1
+
+
+def _splits(K: int) -> list[tuple[list[int], list[int]]]:
+    return [([i for i in range(K) if i != j], [j]) for j in range(K)]
+
+
+def _score(run: _Run, m: _Model, settings: list[BasisSetting], groups: _Groups, fold_summaries
+           ) -> list[dict[str, Any]]:
+    """The CV rows of every setting, scored from the fold summaries (MAE: one more pass over the rows)."""
+    spec = run.ctx.spec
+    strengths, ratios = spec.penalty.strength_grid(), spec.penalty.ratio_grid()
+    values, weights = {}, {}
+    for i in range(len(settings)):
+        atoms, k = groups.atoms(fold_summaries, i)
+        values[i], fits = score_splits(atoms, _splits(m.folds), spec, strengths, ratios)
+        weights[i] = (np.array([[f.weights for f in per] for per in fits]),
+                      np.array([[f.intercept for f in per] for per in fits]), k)
     if spec.selection.metric == "mae":
-        weights = {}
-        for i in range(len(settings)):
-            _, k = atoms_of(i)
-            fits = split_fits[i]
-            W = np.array([[f.weights for f in per_split] for per_split in fits])
-            b0 = np.array([[f.intercept for f in per_split] for per_split in fits])
-            weights[i] = (W, b0, k)
-        mtasks = [(p, g) for g in range(len(groups)) for p in parts]
-        sums = executor.map_reduce(partial(_mae_sums, model_ctx, groups, members, weights), mtasks,
-                                   _merge_all_mae, on_done=tick, should_stop=should_stop)
-        rows = [(i, s, np.transpose(metric_value("mae", sums[i][1][:, None, None], sae=sums[i][0]), (1, 2, 0)))
-                for i, s, _ in rows]
-    table: list[dict[str, Any]] = []
-    for i, s, values in rows:
-        df = setting_df(Summary.combine(atoms_of(i)[0]), spec, strengths, ratios)
-        table.extend(table_rows(i, s, strengths, ratios, values, df))
-    table_rows_ = table
-    chosen_idx, best_idx, onese_idx = select(table_rows_, settings, spec.selection.metric, spec.selection.rule)
-    chosen = table_rows_[chosen_idx]
-    s_idx = chosen["_setting"]
-    setting = settings[s_idx]
-    strength, ratio = chosen["strength"], chosen["l1_ratio"]
+        tasks = [(p, g) for g in range(len(groups.items)) for p in run.parts]
+        sums = run.map_reduce(partial(_mae_sums, m, groups.items, groups.members, weights), tasks, _merge_all_mae)
+        values = {i: np.transpose(metric_value("mae", sums[i][1][:, None, None], sae=sums[i][0]), (1, 2, 0))
+                  for i in values}
+    rows: list[dict[str, Any]] = []
+    for i, s in enumerate(settings):
+        df = setting_df(Summary.combine(groups.atoms(fold_summaries, i)[0]), spec, strengths, ratios)
+        rows.extend(table_rows(i, s, strengths, ratios, values[i], df))
+    return rows
 
-    # refit from the fold summaries, in the model's column order [Φ, one-hot] --------------------------
-    atoms, k = atoms_of(s_idx)
-    if groups[group_of[s_idx]][1] and q:
-        p = k - q
-        order_cols = [0, *range(1 + q, 1 + q + p), *range(1, 1 + q), k + 1]
-        atoms = [a.permuted(order_cols) for a in atoms]
-    full_summary = Summary.combine(atoms)
-    full = fit(full_summary, spec.penalty.kind, strengths, ratio)
-    l_idx = int(np.flatnonzero(strengths == strength)[0])
+
+def _refit(run: _Run, m: _Model, scan: Scan, settings: list[BasisSetting], groups: _Groups, fold_summaries,
+           rows: list[dict[str, Any]], picks: tuple[int, int, int]) -> TuneResult:
+    """The chosen setting refit from its fold summaries, then pass 3 over the rows, then the result."""
+    spec, features = run.ctx.spec, run.ctx.features
+    chosen = rows[picks[0]]
+    s_idx, strength, ratio = chosen["_setting"], chosen["strength"], chosen["l1_ratio"]
+    setting, n = settings[s_idx], scan.n
+    atoms, _ = groups.atoms(fold_summaries, s_idx, model_order=True)
+    full, l_idx, F = refit_all_rows(Summary.combine(atoms), spec, spec.penalty.strength_grid(), strength, ratio)
     fold_fits = [fit(Summary.combine([atoms[i] for i in tr]), spec.penalty.kind, np.array([strength]), ratio)
-                 for tr, _ in splits]
+                 for tr, _ in _splits(m.folds)]
     fw = np.vstack([f.weights[0] for f in fold_fits])
     fi = np.array([f.intercept[0] for f in fold_fits])
-    Zblock = centred_scaled(full_summary)[0]
-    F = leverage_factor(Zblock, strength, spec.penalty.kind, ratio, n, full.beta[l_idx])
-
-    # pass 3 -----------------------------------------------------------------------------------------
     stride = max(1, math.ceil(n / MAX_INTERVAL_RESIDUALS))
-    fin = executor.map_reduce(partial(_final_pass, model_ctx, setting, fw, fi, full.mean, full.scale, F, n, stride),
-                              parts, _merge_final, on_done=tick, should_stop=should_stop)
+    fin = run.map_reduce(partial(_final_pass, m, setting, fw, fi, full.mean, full.scale, F, n, stride), run.parts,
+                         _merge_final)
     abs_res = np.concatenate(fin.residuals)
     res_fold = np.concatenate([np.full(r.size, f, dtype=np.int64) for f, r in enumerate(fin.residuals)])
     kept, kept_fold, _ = thin_residuals(abs_res, res_fold, limit=abs_res.size)  # sorts per fold, keeps all
-    g = float(stride)
-    names = setting.term_names(features) + categories.term_names()
-    model = FittedModel(
-        target=spec.target, features=features, scaler=scaler, basis=setting, categories=categories,
-        column_mean=full.mean, column_scale=full.scale, beta=full.beta[l_idx], intercept=float(full.intercept[l_idx]),
-        penalty={"kind": spec.penalty.kind, "strength": float(strength), "l1_ratio": ratio}, n_train=n,
-        ranges={f: [float(scan.lo[j]), float(scan.hi[j])] for j, f in enumerate(features)},
-        leverage_factor=F, max_leverage=fin.max_leverage, fold_weights=fw, fold_intercepts=fi,
-        residuals=kept, residual_fold=kept_fold, residual_weight=g, term_names=names,
-    )
-    model.cv = {"metric": spec.selection.metric, "mean": chosen["mean"], "std": chosen["std"], "folds": K,
-                "scheme": spec.cv.scheme, "rule": spec.selection.rule}
-    table, warnings = finite_table(table_rows_)
-    warnings = edge_warnings(settings, chosen, strengths) + warnings
-
-    def public(r):
-        return {"basis": r["basis"], "penalty": {"kind": spec.penalty.kind, "strength": r["strength"],
-                "l1_ratio": r["l1_ratio"]}, "metric": spec.selection.metric, "mean": r["mean"], "std": r["std"],
-                "index": table_rows_.index(r)}
-
-    summary = {"metric": spec.selection.metric, "rule": spec.selection.rule, "scheme": spec.cv.scheme, "splits": K,
-               "mean": chosen["mean"], "std": chosen["std"], "rows": int(n), "basis_settings": len(settings),
-               "strengths": int(strengths.size), "l1_ratios": len(ratios), "candidates": len(table_rows_),
-               "execution": "streaming", "executor": getattr(executor, "name", "in-process"),
-               "partitions": len(parts)}
-    return TuneResult(
-        spec=spec, best=public(chosen) | {"rule": spec.selection.rule}, one_standard_error=public(table_rows_[onese_idx]),
-        best_mean=public(table_rows_[best_idx]), cv_table=table, model=model, folds=np.zeros(0, dtype=np.int64),
-        path=_path(full, strengths, strength, names, spec.penalty.kind), warnings=warnings,
-        oof_predictions=fin.sample_pred, oof_observed=fin.sample_obs, oof_residuals=fin.sample_obs - fin.sample_pred,
-        fingerprint=fingerprint_of(scan.lanes, n),
-        summary=summary,
-    )
+    ranges = {f: [float(scan.lo[j]), float(scan.hi[j])] for j, f in enumerate(features)}
+    model = build_model(spec, features, m.scaler, setting, m.categories, full, l_idx, ratio, F, ranges,
+                        fin.max_leverage, (kept, kept_fold, float(stride)), fold_fits)
+    return finish(spec, settings, rows, picks, model, full, n_rows=n, n_splits=m.folds,
+                  folds=np.zeros(0, dtype=np.int64), oof_predictions=fin.sample_pred, oof_observed=fin.sample_obs,
+                  fingerprint=fingerprint_of(scan.lanes, n),
+                  summary_extra={"execution": "streaming", "executor": getattr(run.executor, "name", "in-process"),
+                                 "partitions": len(run.parts)})
 
 
 def _merge_all_mae(a, b):

@@ -10,8 +10,7 @@ when the metric is MAE, the per-row errors that a sum of squares cannot give.
 from __future__ import annotations
 
 import math
-import platform
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any, Callable
 
 import numpy as np
@@ -22,14 +21,13 @@ from .basis import (BasisSetting, Categories, InputScaler, check_rbf_width, n_po
                     rbf_centers, sample_rows)
 from .folds import Plan, make_plan, order_key
 from .model import FittedModel, thin_residuals
-from .solvers import Fit, centred_scaled, convergence_warnings, fit, leverage_factor, watch_convergence
+from .result import (TuneResult, build_model, check_spread, column_kind, fingerprint_columns,
+                     fingerprint_of, finish, metric_value, refit_all_rows, score_splits, select, setting_df, table_rows)
+from .solvers import Fit, convergence_warnings, fit, watch_convergence
 from .spec import TuneSpec, parse_spec
 from .summaries import Summary
-from .result import (check_spread, column_kind, edge_warnings, fingerprint_columns, fingerprint_of, finite_table, metric_value,
-                     score_splits, select, setting_df, table_rows)
 from .table import as_columns, categorical_column, numeric_column
 
-PLOT_SAMPLE = 5_000
 LEVERAGE_ONE = 1e-10  # a row with hᵢᵢ ≥ 1 − this has leverage 1: its leave-one-out error needs a refit
 MAX_LOO_REFIT_FLOPS = 2e10
 
@@ -60,59 +58,6 @@ class Prepared:
     order: np.ndarray | None
     used: list[str]
     keys: np.ndarray | None = None
-
-
-@dataclass
-class TuneResult:
-    spec: TuneSpec
-    best: dict[str, Any]
-    one_standard_error: dict[str, Any]
-    best_mean: dict[str, Any]
-    cv_table: list[dict[str, Any]]
-    model: FittedModel
-    folds: np.ndarray
-    path: dict[str, Any]
-    warnings: list[str]
-    oof_predictions: np.ndarray
-    oof_observed: np.ndarray
-    oof_residuals: np.ndarray
-    fingerprint: dict[str, Any]
-    summary: dict[str, Any] = field(default_factory=dict)
-
-    def to_artifact(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
-        """(JSON-serializable manifest body, plain numeric arrays): all a stored version needs."""
-        meta, arrays = self.model.to_parts()
-        finite = np.isfinite(self.oof_predictions)
-        idx = np.flatnonzero(finite)
-        if idx.size > PLOT_SAMPLE:
-            idx = np.sort(np.random.default_rng(0).choice(idx, PLOT_SAMPLE, replace=False))
-        arrays = dict(arrays)
-        arrays["path_strengths"] = np.asarray(self.path["strengths"], dtype=float)
-        arrays["path_coefficients"] = np.asarray(self.path["coefficients"], dtype=float)
-        if self.path.get("df") is not None:
-            arrays["path_df"] = np.asarray(self.path["df"], dtype=float)
-        arrays["oof_predicted"] = self.oof_predictions[idx]
-        arrays["oof_observed"] = self.oof_observed[idx]
-        res = self.oof_residuals[finite]
-        qs = np.linspace(0, 1, 101)
-        body = {
-            "spec": self.spec.model_dump(mode="json"),
-            "model": meta,
-            "chosen": self.best,
-            "best_mean": self.best_mean,
-            "one_standard_error": self.one_standard_error,
-            "cv_table": self.cv_table,
-            "cv_summary": self.summary,
-            "path": {"strengths": "arrays:path_strengths", "coefficients": "arrays:path_coefficients",
-                     "terms": self.path["terms"], "chosen_strength": self.path["chosen_strength"],
-                     "df": "arrays:path_df" if self.path.get("df") is not None else None},
-            "residual_quantiles": {"levels": qs.tolist(),
-                                   "abs_residual": np.quantile(np.abs(res), qs).tolist() if res.size else []},
-            "warnings": list(self.warnings),
-            "data_fingerprint": self.fingerprint,
-            "feature_schema": self.model.feature_schema(),
-        }
-        return body, arrays
 
 
 def load_model(manifest_body: dict[str, Any], arrays: dict[str, np.ndarray]) -> FittedModel:
@@ -281,7 +226,6 @@ def _tune(data, spec: TuneSpec, progress, should_stop, budget) -> TuneResult:
     settings = basis_settings(spec, Xs, prep.keys)
     strengths = spec.penalty.strength_grid()
     ratios = spec.penalty.ratio_grid()
-    metric = spec.selection.metric
 
     if spec.cv.scheme == "loo":
         search = _LooSearch(spec, prep, Xs, settings, strengths)
@@ -307,30 +251,14 @@ def _tune(data, spec: TuneSpec, progress, should_stop, budget) -> TuneResult:
 
     if not rows:
         raise InvalidSpec("the grid is empty")
-    chosen_idx, best_idx, onese_idx = select(rows, settings, metric, spec.selection.rule)
-    chosen = rows[chosen_idx]
+    picks = select(rows, settings, spec.selection.metric, spec.selection.rule)
+    chosen = rows[picks[0]]
     s_idx = chosen["_setting"]
-    setting = settings[s_idx]
-    ratio = chosen["l1_ratio"]
-    model, path, oof_pred, oof_res = search.refit(s_idx, setting, chosen["strength"], ratio, strengths, scaler, chosen)
-    table, warnings = finite_table(rows)
-    warnings = edge_warnings(settings, chosen, strengths) + warnings + search.warnings
-    public = lambda r: {"basis": r["basis"], "penalty": {"kind": spec.penalty.kind, "strength": r["strength"],
-                        "l1_ratio": r["l1_ratio"]}, "metric": metric, "mean": r["mean"], "std": r["std"],
-                        "index": rows.index(r)}
-    best = public(chosen) | {"rule": spec.selection.rule}
-    summary = {"metric": metric, "rule": spec.selection.rule, "scheme": spec.cv.scheme, "splits": search.n_splits,
-               "mean": chosen["mean"], "std": chosen["std"], "rows": int(n),
-               "basis_settings": len(settings), "strengths": int(strengths.size), "l1_ratios": len(ratios),
-               "candidates": len(rows),
-               "python": platform.python_version()}
-    model.cv = {"metric": metric, "mean": chosen["mean"], "std": chosen["std"], "folds": search.n_splits,
-                "scheme": spec.cv.scheme, "rule": spec.selection.rule}
-    fp = fingerprint_of(fingerprint_columns(prep.cols, prep.used), n)
-    return TuneResult(spec=spec, best=best, one_standard_error=public(rows[onese_idx]),
-                      best_mean=public(rows[best_idx]), cv_table=table, model=model,
-                      folds=search.assignment, path=path, warnings=warnings, oof_predictions=oof_pred,
-                      oof_observed=prep.y, oof_residuals=oof_res, fingerprint=fp, summary=summary)
+    model, full, oof_pred = search.refit(s_idx, settings[s_idx], chosen["strength"], chosen["l1_ratio"], strengths,
+                                         scaler, chosen)
+    return finish(spec, settings, rows, picks, model, full, n_rows=n, n_splits=search.n_splits,
+                  folds=search.assignment, oof_predictions=oof_pred, oof_observed=prep.y,
+                  fingerprint=fingerprint_of(fingerprint_columns(prep.cols, prep.used), n), warnings=search.warnings)
 
 
 # ---------------------------------------------------------------------------------------------------
@@ -341,43 +269,18 @@ def _design(setting: BasisSetting, Xs: np.ndarray, cat_block: np.ndarray) -> np.
     return Phi
 
 
-def _ranges(prep: Prepared) -> dict[str, list[float]]:
-    return {f: [float(prep.X[:, j].min()), float(prep.X[:, j].max())] for j, f in enumerate(prep.features)}
-
-
 def _model(prep: Prepared, spec: TuneSpec, scaler: InputScaler, setting: BasisSetting, full_summary: Summary,
-           full: Fit, l_idx: int,
-           strength: float, ratio: float | None, Phi: np.ndarray, fold_fits: list[Fit] | None,
-           oof_abs: np.ndarray, oof_fold: np.ndarray) -> FittedModel:
-    """Assemble the fitted model from the refit (at index l_idx of its strength grid)."""
-    beta = full.beta[l_idx]
-    Z = (Phi - full.mean) / full.scale
-    Zblock = centred_scaled(full_summary)[0]
-    F = leverage_factor(Zblock, strength, spec.penalty.kind, ratio, full.n, beta)
-    FZ = Z @ F.T
+           strengths: np.ndarray, strength: float, ratio: float | None, Phi: np.ndarray,
+           fold_fits: list[Fit] | None, oof_abs: np.ndarray, oof_fold: np.ndarray) -> tuple[FittedModel, Fit]:
+    """The model refit on all rows (``result.build_model``), with its training leverages from ``Phi``."""
+    full, l_idx, F = refit_all_rows(full_summary, spec, strengths, strength, ratio)
+    FZ = ((Phi - full.mean) / full.scale) @ F.T
     lev = 1.0 / full.n + np.einsum("ij,ij->i", FZ, FZ)
     finite = np.isfinite(oof_abs)
-    res, res_fold, g = thin_residuals(oof_abs[finite], oof_fold[finite])
-    fw = fi = None
-    if fold_fits is not None:
-        fw = np.vstack([f.weights[0] for f in fold_fits])
-        fi = np.array([f.intercept[0] for f in fold_fits])
-    else:
-        res_fold = np.full(res.size, -1, dtype=np.int64)
-    names = setting.term_names(prep.features) + prep.categories.term_names()
-    return FittedModel(
-        target=spec.target, features=list(prep.features), scaler=scaler, basis=setting, categories=prep.categories,
-        column_mean=full.mean, column_scale=full.scale, beta=beta, intercept=float(full.intercept[l_idx]),
-        penalty={"kind": spec.penalty.kind, "strength": float(strength), "l1_ratio": ratio},
-        n_train=full.n, ranges=_ranges(prep), leverage_factor=F, max_leverage=float(lev.max()),
-        fold_weights=fw, fold_intercepts=fi, residuals=res, residual_fold=res_fold, residual_weight=g,
-        term_names=names,
-    )
-
-
-def _path(full: Fit, strengths: np.ndarray, strength: float, names: list[str], kind: str) -> dict[str, Any]:
-    return {"strengths": strengths.tolist(), "coefficients": full.beta.tolist(), "terms": names,
-            "chosen_strength": float(strength), "df": full.effective_df().tolist() if kind == "l2" else None}
+    ranges = {f: [float(prep.X[:, j].min()), float(prep.X[:, j].max())] for j, f in enumerate(prep.features)}
+    model = build_model(spec, prep.features, scaler, setting, prep.categories, full, l_idx, ratio, F, ranges,
+                        float(lev.max()), thin_residuals(oof_abs[finite], oof_fold[finite]), fold_fits)
+    return model, full
 
 
 class _SharedSearch:
@@ -449,8 +352,6 @@ class _SharedSearch:
         else:
             atoms = [Summary.of(Phi[idx], y[idx]) for idx in plan.atoms]
         full_summary = Summary.combine([atoms[i] for i in plan.refit_atoms])
-        full = fit(full_summary, self.spec.penalty.kind, strengths, ratio)
-        l_idx = int(np.flatnonzero(strengths == strength)[0])
         n = y.size
         oof_pred = np.full(n, np.nan)
         oof_fold = np.full(n, -1, dtype=np.int64)
@@ -463,11 +364,9 @@ class _SharedSearch:
             rows = np.concatenate([plan.atoms[i] for i in test_ids])
             oof_pred[rows] = f.intercept[0] + Phi[rows] @ f.weights[0]
             oof_fold[rows] = len(fold_fits) - 1
-        oof_abs = np.abs(y - oof_pred)
-        model = _model(self.prep, self.spec, scaler, setting, full_summary, full, l_idx, strength, ratio, Phi, fold_fits,
-                       oof_abs, oof_fold)
-        path = _path(full, strengths, strength, model.term_names, self.spec.penalty.kind)
-        return model, path, oof_pred, y - oof_pred
+        model, full = _model(self.prep, self.spec, scaler, setting, full_summary, strengths, strength, ratio, Phi,
+                             fold_fits, np.abs(y - oof_pred), oof_fold)
+        return model, full, oof_pred
 
 
 class _PerFoldSearch(_SharedSearch):
@@ -527,14 +426,9 @@ class _PerFoldSearch(_SharedSearch):
             oof_pred[te] = f.intercept[0] + Phi[te] @ f.weights[0]
         Xs = scaler.transform(self.prep.X)
         Phi = _design(setting, Xs, self.prep.cat_block)
-        full_summary = Summary.of(Phi, y)
-        full = fit(full_summary, self.spec.penalty.kind, strengths, ratio)
-        l_idx = int(np.flatnonzero(strengths == strength)[0])
-        oof_abs = np.abs(y - oof_pred)
-        model = _model(self.prep, self.spec, scaler, setting, full_summary, full, l_idx, strength, ratio, Phi, None,
-                       oof_abs, np.zeros(n, dtype=np.int64))
-        path = _path(full, strengths, strength, model.term_names, self.spec.penalty.kind)
-        return model, path, oof_pred, y - oof_pred
+        model, full = _model(self.prep, self.spec, scaler, setting, Summary.of(Phi, y), strengths, strength, ratio,
+                             Phi, None, np.abs(y - oof_pred), np.zeros(n, dtype=np.int64))
+        return model, full, oof_pred
 
 
 class _LooSearch:
@@ -639,12 +533,7 @@ class _LooSearch:
     def refit(self, s_idx, setting, strength, ratio, strengths, scaler, chosen):
         y = self.prep.y
         Phi = _design(setting, self.Xs, self.prep.cat_block)
-        full_summary = Summary.of(Phi, y)
-        full = fit(full_summary, "l2", strengths, None)
-        l_idx = int(np.flatnonzero(strengths == strength)[0])
-        loo = self.loo[s_idx][:, l_idx]
-        oof_pred = y - loo
-        model = _model(self.prep, self.spec, scaler, setting, full_summary, full, l_idx, strength, None, Phi, None,
-                       np.abs(loo), np.zeros(y.size, dtype=np.int64))
-        path = _path(full, strengths, strength, model.term_names, "l2")
-        return model, path, oof_pred, loo
+        loo = self.loo[s_idx][:, int(np.flatnonzero(strengths == strength)[0])]
+        model, full = _model(self.prep, self.spec, scaler, setting, Summary.of(Phi, y), strengths, strength, None,
+                             Phi, None, np.abs(loo), np.zeros(y.size, dtype=np.int64))
+        return model, full, y - loo
