@@ -239,6 +239,15 @@ def _feature_sign_step(H, c, gamma, beta, theta, A, g) -> bool:
     HA = H[np.ix_(A, A)]
     bA = beta[A]
     target, null_dir = _restricted_minimizer(HA, c[A] - gamma * theta[A])
+    fresh = bA == 0
+    if target is not None and fresh.sum() > 1:
+        wrong = fresh & (np.sign(target) != theta[A])
+        if wrong.any() and not wrong[fresh].all():
+            # newly added coefficients whose restricted optimum has the other sign would leave their
+            # orthant at once: leave them out of this step (they are checked again after it)
+            keep = ~wrong
+            A, HA, bA = A[keep], HA[np.ix_(keep, keep)], bA[keep]
+            target, null_dir = _restricted_minimizer(HA, c[A] - gamma * theta[A])
     if null_dir is not None:
         # the restricted quadratic is unbounded below along a null direction (collinear active columns,
         # lasso): move along it until the first coefficient reaches zero
@@ -276,13 +285,11 @@ def _restricted_minimizer(HA: np.ndarray, rhs: np.ndarray) -> tuple[np.ndarray |
     """(minimizer of ½xᵀHx − rhsᵀx, None), or (None, a descent direction in H's null space) when the
     quadratic is unbounded below. Cholesky when H is positive definite, else an eigendecomposition
     (minimum-norm minimizer when rhs lies in H's range)."""
-    from scipy.linalg import LinAlgError, cho_factor, cho_solve
-
     try:
-        cf = cho_factor(HA, lower=False, check_finite=False)
-        if np.min(np.abs(np.diag(cf[0]))) ** 2 > 1e-12 * float(np.max(np.abs(np.diag(HA)))):
-            return cho_solve(cf, rhs, check_finite=False), None
-    except LinAlgError:
+        Lc = np.linalg.cholesky(HA)
+        if np.min(np.diag(Lc)) ** 2 > 1e-12 * float(np.max(np.diag(HA))):
+            return np.linalg.solve(HA, rhs), None
+    except np.linalg.LinAlgError:
         pass
     w, V = np.linalg.eigh(HA)
     cut = 1e-12 * max(float(w[-1]), 0.0)

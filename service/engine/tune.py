@@ -209,7 +209,14 @@ def check_budget(spec: Any, n_rows: int, n_features: int, budget: Budget | None 
 # ---------------------------------------------------------------------------------------------------
 def tune(data: Any, spec: Any, *, progress: Callable[[int, int], None] | None = None,
          should_stop: Callable[[], bool] | None = None, budget: Budget | None = None) -> TuneResult:
-    """Choose basis setting and penalty strength jointly by cross-validation, then refit on all rows."""
+    """Choose basis setting and penalty strength jointly by cross-validation, then refit on all rows.
+
+    ``data``: dict name → 1-D array (n,), pandas DataFrame or pyarrow Table. ``spec``: dict or ``TuneSpec``.
+    ``progress(done, total)`` is called after each (basis setting × fold) unit; ``should_stop()`` returning
+    True raises ``Cancelled``; ``budget`` bounds the work (``Budget``). Returns a ``TuneResult``
+    (``service.engine.result``); bad data or specs raise ``InvalidData`` / ``InvalidSpec`` naming the
+    field, value and fix.
+    """
     spec = parse_spec(spec)
     with watch_convergence() as unconverged:
         result = _tune(data, spec, progress, should_stop, budget)
