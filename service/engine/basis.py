@@ -157,10 +157,18 @@ def _monomials(Xs: np.ndarray, powers: np.ndarray, plan=None) -> np.ndarray:
     return out
 
 
+ROW_CHUNK_CELLS = 1 << 22  # rows × centres per chunk: bounds the temporaries of sq_distances
+
+
 def _rbf(Xs: np.ndarray, centers: np.ndarray, width: float) -> np.ndarray:
-    sq = sq_distances(Xs, centers, width)
-    sq *= -1.0 / (2.0 * width * width)
-    return np.exp(sq, out=sq)
+    n, m = Xs.shape[0], centers.shape[0]
+    out = np.empty((n, m), dtype=np.float64)
+    step = max(1, ROW_CHUNK_CELLS // max(1, m))
+    for a in range(0, n, step):
+        sq = sq_distances(Xs[a:a + step], centers, width)
+        sq *= -1.0 / (2.0 * width * width)
+        np.exp(sq, out=out[a:a + step])
+    return out
 
 
 EXPONENT_TOL = 1e-11  # largest rounding error allowed in an RBF exponent ‖x − c‖² / (2w²)
@@ -211,11 +219,15 @@ def check_rbf_width(sample: np.ndarray, centers: np.ndarray, width: float, field
 
     if sample.shape[0] == 0 or centers.shape[0] == 0:
         return
-    sq = sq_distances(sample, centers, width)
-    pos = sq[sq > 0]
-    if pos.size == 0:
+    nearest = math.inf
+    step = max(1, ROW_CHUNK_CELLS // centers.shape[0])
+    for a in range(0, sample.shape[0], step):
+        sq = sq_distances(sample[a:a + step], centers, width)
+        pos = sq[sq > 0]
+        if pos.size:
+            nearest = min(nearest, float(pos.min()))
+    if not math.isfinite(nearest):
         return
-    nearest = float(pos.min())
     if nearest / (2.0 * width * width) > IDENTITY_EXPONENT:
         dist = math.sqrt(nearest)
         smallest = dist / math.sqrt(2.0 * IDENTITY_EXPONENT)

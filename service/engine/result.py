@@ -353,7 +353,8 @@ def finish(spec: TuneSpec, settings: list[BasisSetting], rows: list[dict[str, An
     def public(i: int) -> dict[str, Any]:
         r = rows[i]
         return {"basis": r["basis"], "penalty": {"kind": spec.penalty.kind, "strength": r["strength"],
-                "l1_ratio": r["l1_ratio"]}, "metric": metric, "mean": r["mean"], "std": r["std"], "index": i}
+                "l1_ratio": r["l1_ratio"]}, "metric": metric, "mean": r["mean"], "std": r["std"],
+                "se": r["se"] if r["se"] is not None and math.isfinite(r["se"]) else None, "df": r["df"], "index": i}
 
     summary = {"metric": metric, "rule": rule, "scheme": spec.cv.scheme, "splits": n_splits,
                "mean": chosen["mean"], "std": chosen["std"], "rows": int(n_rows), "basis_settings": len(settings),
@@ -377,7 +378,7 @@ class TuneResult:
     Attributes (n = training rows, L = strengths, p = basis terms of the chosen setting):
         spec: the validated ``TuneSpec``.
         best: the chosen candidate: ``{basis, penalty: {kind, strength, l1_ratio}, metric, mean, std,
-            index, rule}`` (``index`` into ``cv_table``).
+            se, df, index, rule}`` (``index`` into ``cv_table``).
         one_standard_error: the candidate the one-standard-error rule picks (same keys, no ``rule``).
         best_mean: the candidate with the best mean CV metric (same keys).
         cv_table: one dict per candidate (basis setting × l1 ratio × strength): ``basis``, ``strength``,

@@ -205,7 +205,7 @@ def _enet_active_set(H: np.ndarray, c: np.ndarray, gamma: float, beta: np.ndarra
     scale = float(np.max(np.abs(c))) if p else 0.0
     hmax = float(np.max(np.abs(np.diag(H)))) if p else 0.0
     single = False  # after a step that did not descend, add one violator at a time (Lee et al.'s rule)
-    for _ in range(50 * p + 100):
+    for _ in range(10 * p + 100):  # a cap; a fit stopped by it shows in its KKT figure and warning
         g = H @ beta - c
         active = beta != 0
         noise = 64 * np.finfo(float).eps * (scale + hmax * float(np.abs(beta).sum()))
