@@ -67,11 +67,13 @@ class CsvPart:
 def _kind(t) -> str:
     import pyarrow.types as pt
 
-    return "number" if (pt.is_integer(t) or pt.is_floating(t) or pt.is_boolean(t) or pt.is_decimal(t)) else "text"
+    if pt.is_boolean(t):
+        return "boolean"  # the engine's one rule (service.engine.result.column_kind): not a number
+    return "number" if (pt.is_integer(t) or pt.is_floating(t) or pt.is_decimal(t)) else "text"
 
 
 def open_source(path: Path) -> tuple[dict[str, str], list]:
-    """(schema: column → "number" | "text", partitions) of a Parquet file, Parquet folder or CSV file."""
+    """(schema: column → "number" | "boolean" | "text", partitions) of a Parquet file, Parquet folder or CSV file."""
     path = Path(path)
     if path.is_dir():
         files = sorted(p for p in path.iterdir() if p.suffix == ".parquet" and p.is_file())

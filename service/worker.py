@@ -192,27 +192,19 @@ def _train(data_path: str | None, spec: dict, conn, progress, cancel, deadline: 
 # scoring the live version on the new data (if_better)
 
 
-def _metric(metric: str, y: np.ndarray, p: np.ndarray) -> float:
-    e = y - p
-    if metric == "mae":
-        return float(np.mean(np.abs(e)))
-    if metric == "r2":
-        sst = float(np.sum((y - y.mean()) ** 2))
-        return float(1.0 - np.sum(e**2) / sst) if sst > 0 else float("nan")
-    return float(np.sqrt(np.mean(e**2)))
-
-
 def score_on(model: Any, cols: dict[str, np.ndarray], target: str, metric: str, folds: np.ndarray | None) -> float:
     """``model``'s error on the rows of ``cols``: the metric per fold of ``folds``, averaged over folds
     (the aggregation of a CV mean); over all rows at once when no usable fold assignment is given."""
+    from service.engine.result import metric_of_rows  # the engine's one metric function (no fallback)
+
     y = np.asarray(cols[target], dtype=np.float64)
     inputs = {k: v for k, v in cols.items() if k != target}
     pred = np.asarray(model.predict(inputs), dtype=np.float64)
     if folds is not None and folds.shape == y.shape:
         ids = np.unique(folds)
         if 2 <= ids.size <= 100 and all((folds == k).sum() >= 2 for k in ids):
-            return float(np.mean([_metric(metric, y[folds == k], pred[folds == k]) for k in ids]))
-    return _metric(metric, y, pred)
+            return float(np.mean([metric_of_rows(metric, y[folds == k], pred[folds == k]) for k in ids]))
+    return metric_of_rows(metric, y, pred)
 
 
 def decide(store, name: str, request: dict, outcome: dict, data_path: str | None) -> tuple[bool, dict[str, Any]]:

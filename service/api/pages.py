@@ -36,6 +36,8 @@ def when(text: Any) -> str:
 
 def _se(chosen: dict[str, Any], splits: Any) -> float | None:
     try:
+        if chosen.get("se") is not None:  # the engine's own (ddof = 1); older versions: std / √splits
+            return float(chosen["se"])
         return float(chosen["std"]) / math.sqrt(max(int(splits), 1))
     except (KeyError, TypeError, ValueError):
         return None

@@ -182,7 +182,8 @@ def cv_series(body: dict[str, Any]) -> list[dict[str, Any]]:
     """The CV table grouped into series: one per basis setting (× l1 ratio), strengths ascending.
 
     Each series: ``label``, ``basis``, ``l1_ratio``, ``strengths``, ``mean``, ``se`` (standard error of
-    the mean over the splits: std / √splits) as arrays."""
+    the mean over the splits: the row's ``se``, sample standard deviation / √splits; std / √splits for
+    versions trained before rows carried it) as arrays."""
     table = body.get("cv_table") or []
     kind = ((body.get("spec") or {}).get("penalty") or {}).get("kind")
     groups: dict[tuple, dict[str, Any]] = {}
@@ -196,9 +197,12 @@ def cv_series(body: dict[str, Any]) -> list[dict[str, Any]]:
         splits = np.array([max(len(r.get("folds") or ()), 1) for r in rows], dtype=float)
         mean = np.array([float(r["mean"]) if r.get("mean") is not None else np.nan for r in rows])
         std = np.array([float(r["std"]) if r.get("std") is not None else np.nan for r in rows])
+        se = std / np.sqrt(splits)  # versions trained before rows carried "se"
+        # the engine's own standard error (ddof = 1, the one its one-SE rule uses) where the row has it
+        se = np.array([float(r["se"]) if r.get("se") is not None else s for r, s in zip(rows, se)])
         out.append({
             "label": setting_label(g["basis"], g["l1_ratio"], kind), "basis": g["basis"], "l1_ratio": g["l1_ratio"],
-            "strengths": np.array([float(r["strength"]) for r in rows]), "mean": mean, "se": std / np.sqrt(splits),
+            "strengths": np.array([float(r["strength"]) for r in rows]), "mean": mean, "se": se,
         })
     return out
 

@@ -2,6 +2,7 @@
 
 from .model import FittedModel
 from .spec import TuneSpec, parse_spec
-from .tune import Budget, TuneResult, check_budget, load_model, tune
+from .result import TuneResult
+from .tune import Budget, check_budget, load_model, tune
 
 __all__ = ["Budget", "FittedModel", "TuneResult", "TuneSpec", "check_budget", "load_model", "parse_spec", "tune"]

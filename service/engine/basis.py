@@ -16,6 +16,7 @@ Definitions (the tests compare them with scikit-learn, so they are exact):
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 from functools import cached_property
 from typing import Any
@@ -156,11 +157,86 @@ def _monomials(Xs: np.ndarray, powers: np.ndarray, plan=None) -> np.ndarray:
     return out
 
 
+ROW_CHUNK_CELLS = 1 << 22  # rows × centres per chunk: bounds the temporaries of sq_distances
+
+
 def _rbf(Xs: np.ndarray, centers: np.ndarray, width: float) -> np.ndarray:
-    sq = (Xs * Xs).sum(axis=1)[:, None] + (centers * centers).sum(axis=1)[None, :] - 2.0 * (Xs @ centers.T)
+    n, m = Xs.shape[0], centers.shape[0]
+    out = np.empty((n, m), dtype=np.float64)
+    step = max(1, ROW_CHUNK_CELLS // max(1, m))
+    for a in range(0, n, step):
+        sq = sq_distances(Xs[a:a + step], centers, width)
+        sq *= -1.0 / (2.0 * width * width)
+        np.exp(sq, out=out[a:a + step])
+    return out
+
+
+EXPONENT_TOL = 1e-11  # largest rounding error allowed in an RBF exponent ‖x − c‖² / (2w²)
+UNDERFLOW = 800.0  # exp(−800) is 0 in float64: pairs this far apart need no accuracy
+PAIR_CHUNK = 1 << 20
+
+
+def sq_distances(Xs: np.ndarray, centers: np.ndarray, width: float | None = None) -> np.ndarray:
+    """(n, m) squared distances ‖x − c‖², accurate enough for ``exp(−‖x − c‖² / (2 w²))``.
+
+    The fast form ‖x‖² + ‖c‖² − 2 x·c (one matrix product) carries a rounding error of about
+    (d + 4) · eps · (‖x‖² + ‖c‖²), which the exponent multiplies by 1/(2w²): at width 1e-8 a row's distance
+    to itself comes out near 1e-15 instead of 0 and its basis value near 1e-31 instead of 1. Every pair
+    where that error could exceed ``EXPONENT_TOL`` in the exponent, and whose basis value is not 0 anyway,
+    is recomputed in difference form Σ (xₖ − cₖ)², which is exact for coincident points. Without a width,
+    every pair whose error exceeds 1e-11 relative is recomputed.
+    """
+    Xs = np.asarray(Xs, dtype=np.float64)
+    centers = np.asarray(centers, dtype=np.float64)
+    d = Xs.shape[1]
+    xx = np.einsum("ij,ij->i", Xs, Xs)
+    cc = np.einsum("ij,ij->i", centers, centers)
+    sq = xx[:, None] + cc[None, :] - 2.0 * (Xs @ centers.T)
     np.maximum(sq, 0.0, out=sq)
-    sq *= -1.0 / (2.0 * width * width)
-    return np.exp(sq, out=sq)
+    err = (xx[:, None] + cc[None, :]) * ((d + 4) * np.finfo(float).eps)
+    if width is None:
+        redo = err > 1e-11 * sq
+    else:
+        two_w2 = 2.0 * width * width
+        redo = (err > EXPONENT_TOL * two_w2) & (sq < UNDERFLOW * two_w2 + err)
+    del err
+    ii, jj = np.nonzero(redo)
+    for a in range(0, ii.size, PAIR_CHUNK):
+        i, j = ii[a:a + PAIR_CHUNK], jj[a:a + PAIR_CHUNK]
+        diff = Xs[i] - centers[j]
+        sq[i, j] = np.einsum("ij,ij->i", diff, diff)
+    return sq
+
+
+IDENTITY_EXPONENT = 27.7  # exp(−27.7) < 1e-12
+
+
+def check_rbf_width(sample: np.ndarray, centers: np.ndarray, width: float, field: str) -> None:
+    """Refuse a width at which the RBF basis is numerically the identity: even the closest pair of a
+    (sampled) row and a centre that do not coincide has exp(−d²/(2w²)) below 1e-12, so each basis column
+    is 1 on rows equal to its centre and 0 elsewhere, and the model can only memorize training rows."""
+    from service.errors import InvalidSpec
+
+    if sample.shape[0] == 0 or centers.shape[0] == 0:
+        return
+    nearest = math.inf
+    step = max(1, ROW_CHUNK_CELLS // centers.shape[0])
+    for a in range(0, sample.shape[0], step):
+        sq = sq_distances(sample[a:a + step], centers, width)
+        pos = sq[sq > 0]
+        if pos.size:
+            nearest = min(nearest, float(pos.min()))
+    if not math.isfinite(nearest):
+        return
+    if nearest / (2.0 * width * width) > IDENTITY_EXPONENT:
+        dist = math.sqrt(nearest)
+        smallest = dist / math.sqrt(2.0 * IDENTITY_EXPONENT)
+        raise InvalidSpec(
+            f"rbf width {width:g} is too narrow: the closest row and centre that do not coincide are "
+            f"{dist:.3g} apart (standardized units), so every basis value is below 1e-12 except at a row equal "
+            f"to its centre, and the basis can only memorize the training rows; use widths of at least "
+            f"{smallest:.3g}, typically 0.1 to 10",
+            errors=[{"field": field, "value": width, "message": f"width below {smallest:.3g}"}])
 
 
 def sample_rows(n: int, seed: int, keys: np.ndarray | None = None, size: int = KMEANS_SAMPLE) -> np.ndarray:

@@ -143,3 +143,82 @@ def check_groups(values: np.ndarray, name: str) -> np.ndarray:
     if len(values) == 0:
         raise InvalidData(f"group column {name!r} is empty")
     return values
+
+
+def order_key(raw: np.ndarray, name: str) -> np.ndarray:
+    """Sort keys of a ``time_ordered`` scheme's ``order_by`` column: numbers as they are, timestamps and
+    dates (datetime64, datetime/date objects, ISO-8601 text such as ``2024-03-01`` or
+    ``2024-03-01T06:00:00+01:00``) as microseconds since 1970-01-01 UTC. Refused, naming the column
+    and the first rows: missing values (NaN, NaT, None; they would sort last and be validated on as the
+    most recent rows), booleans, and any other text ("10" < "9" as text)."""
+    raw = np.asarray(raw)
+    kind = raw.dtype.kind
+
+    def refuse(rows: list[int], what: str, fix: str) -> InvalidData:
+        return InvalidData(f"cv.order_by column {name!r} {what} at rows {rows[:5]}; {fix}",
+                           errors=[{"field": name, "rows": rows[:5], "message": what}])
+
+    missing_fix = "drop those rows or fill in their times: the scheme validates on the most recent rows"
+    if kind == "b":
+        raise InvalidData(f"cv.order_by column {name!r} holds booleans, which do not order rows in time; "
+                          "send numbers or ISO-8601 timestamps",
+                          errors=[{"field": name, "message": "booleans cannot order rows"}])
+    if kind in "iu":
+        return raw.astype(np.int64) if kind == "i" or raw.max(initial=0) < 2**63 else raw.astype(np.float64)
+    if kind == "f":
+        bad = np.flatnonzero(np.isnan(raw)).tolist()
+        if bad:
+            raise refuse(bad, "holds missing values (NaN)", missing_fix)
+        return raw.astype(np.float64)
+    if kind == "M":
+        bad = np.flatnonzero(np.isnat(raw)).tolist()
+        if bad:
+            raise refuse(bad, "holds missing times (NaT)", missing_fix)
+        return raw.astype("datetime64[us]").astype(np.int64)
+    import datetime as dt
+
+    epoch = dt.datetime(1970, 1, 1)
+    keys = np.empty(raw.size, dtype=np.float64)
+    kinds: set[str] = set()
+    missing, text = [], []
+    for i, v in enumerate(raw.tolist()):
+        if isinstance(v, bytes):
+            v = v.decode("utf-8", "replace")
+        if v is None or (isinstance(v, float) and v != v) or type(v).__name__ in ("NAType", "NaTType"):
+            missing.append(i)
+            continue
+        if isinstance(v, bool):
+            text.append(i)
+            continue
+        if isinstance(v, (int, float)):
+            kinds.add("number")
+            keys[i] = float(v)
+            continue
+        if isinstance(v, str):
+            try:
+                v = dt.datetime.fromisoformat(v.strip())
+            except ValueError:
+                text.append(i)
+                continue
+        if isinstance(v, dt.datetime):
+            kinds.add("aware" if v.tzinfo is not None and v.utcoffset() is not None else "naive")
+            if v.tzinfo is not None:
+                v = v.astimezone(dt.timezone.utc).replace(tzinfo=None)
+            keys[i] = (v - epoch) // dt.timedelta(microseconds=1)
+        elif isinstance(v, dt.date):
+            kinds.add("naive")
+            keys[i] = (dt.datetime(v.year, v.month, v.day) - epoch) // dt.timedelta(microseconds=1)
+        else:
+            text.append(i)
+    if missing:
+        raise refuse(missing, "holds missing values", missing_fix)
+    if text:
+        shown = [repr(raw[i])[:40] for i in text[:3]]
+        raise refuse(text, f"holds values that are neither numbers nor ISO-8601 timestamps ({', '.join(shown)})",
+                     "send numbers (JSON numbers, not strings) or timestamps such as 2024-03-01T06:00:00Z; "
+                     "text would sort as text (\"10\" before \"9\")")
+    if len(kinds) > 1:
+        raise InvalidData(f"cv.order_by column {name!r} mixes {' and '.join(sorted(kinds))} values "
+                          "(numbers, timestamps with a UTC offset, timestamps without one); use one kind for every row",
+                          errors=[{"field": name, "message": "mixed kinds of time"}])
+    return keys

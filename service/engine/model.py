@@ -33,6 +33,33 @@ MAX_INTERVAL_RESIDUALS = 20_000  # residuals kept per model; more are thinned to
 
 @dataclass
 class FittedModel:
+    """A model refit on all training rows: predicts, explains and bounds a prediction with plain arrays.
+
+    Shapes: d numeric features, p = basis terms + one-hot columns, n training rows, K fold models,
+    R kept out-of-fold residuals, r ≤ p rows of the leverage factor.
+
+    Attributes:
+        target: name of the target column.
+        features: the d numeric feature names, in input order.
+        scaler: ``InputScaler`` (mean (d,), scale (d,)) standardizing the inputs before the basis.
+        basis: the chosen ``BasisSetting`` (kind; polynomial powers (p_basis, d) or RBF centres (m, d)).
+        categories: ``Categories`` (column names and their training levels) for the one-hot block.
+        column_mean, column_scale: (p,) centring and scaling of the design columns on all rows.
+        beta: (p,) coefficients of the scaled columns; ``weights`` (p,) = beta / column_scale on raw ones.
+        intercept: the unpenalized intercept.
+        penalty: ``{"kind", "strength", "l1_ratio"}`` of the chosen candidate.
+        n_train: n.
+        ranges: numeric feature → [min, max] over the training rows (extrapolation warnings).
+        leverage_factor: (r, p) F with leverage ``h(z) = 1/n + ‖F z‖²`` for a scaled, centred design row z.
+        max_leverage: the largest training leverage (hidden-extrapolation warning above it).
+        fold_weights, fold_intercepts: (K, p) and (K,) raw-column fold models for CV+ intervals, or None
+            (split-conformal intervals: ``basis_fit: per_fold`` and ``loo``).
+        residuals: (R,) sorted absolute out-of-fold residuals, concatenated by fold; residual_fold: (R,)
+            their fold (-1 when split-conformal); residual_weight: how many residuals each kept one stands for.
+        cv: ``{"metric", "mean", "std", "folds", "scheme", "rule"}`` of the chosen candidate.
+        term_names: (p,) names of the design columns.
+    """
+
     target: str
     features: list[str]
     scaler: InputScaler

@@ -172,7 +172,17 @@ class Selection(BaseModel):
 
 
 class TuneSpec(BaseModel):
-    """A training spec. Only ``target`` is required."""
+    """A training spec (the JSON body of a training request). Only ``target`` is required.
+
+    Attributes: ``target`` (column name); ``features`` (numeric column names, default: every numeric
+    column with no other role); ``categorical`` (columns one-hot encoded); ``units`` (column → unit, for
+    labels); ``bases`` (list of linear / polynomial(degrees) / rbf(widths, centers) settings to try);
+    ``basis_fit`` ("all_rows" or "per_fold"); ``penalty`` (kind l2 / l1 / elastic_net, ``strengths``
+    (range or list; ``strength_grid()`` gives the ascending (L,) array), ``l1_ratios``); ``cv`` (scheme,
+    folds, repeats, seed, group_by, order_by, assignment, row_key); ``selection`` (metric rmse / mae / r2,
+    rule best / one_standard_error); ``execution`` (mode, batch_rows). Frozen; validate dicts with
+    ``parse_spec``, which raises ``InvalidSpec`` naming each field.
+    """
 
     model_config = _STRICT
     target: str = Field(..., min_length=1)

@@ -6,7 +6,7 @@ itself (``service.sources`` makes partitions of Parquet and CSV files). Three pa
 map-reduce over partitions that an executor runs here or on a Dask cluster:
 
 1. scan: row count, Chan et al.'s pairwise-merged means and variances of the inputs, ranges, NaN checks,
-   categorical levels, a bottom-k hash sample for RBF centres, and a fingerprint per partition;
+   categorical levels, a bottom-k hash sample for RBF centres, and the fingerprint lanes of each column;
 2. summaries: for every (partition, basis group) the per-fold R factors of ``[1, Φ, y]``, merged by
    stacking and re-factoring; nested polynomial degrees share one group. Then the grid is scored from
    the fold summaries exactly as in memory (MAE takes one more pass for per-row errors);
@@ -20,7 +20,6 @@ row in the same fold; the CV table then matches the in-memory one to rounding.
 
 from __future__ import annotations
 
-import hashlib
 import math
 from dataclasses import dataclass, field
 from functools import partial
@@ -28,18 +27,20 @@ from typing import Any, Callable, Iterator, Protocol, Sequence
 
 import numpy as np
 
-from service.errors import Cancelled, InvalidData, InvalidSpec
+from service.errors import InvalidData, InvalidSpec
 
 from .basis import KMEANS_SAMPLE, BasisSetting, Categories, InputScaler, kmeans_centers
 from .executors import SerialExecutor
 from .folds import hash_folds, key_hash
 from .model import MAX_INTERVAL_RESIDUALS, FittedModel, thin_residuals
-from .solvers import centred_scaled, fit, leverage_factor
+from .solvers import convergence_warnings, fit, watch_convergence
 from .spec import TuneSpec, parse_spec
 from .summaries import Summary
 from .table import categorical_column, numeric_column
-from .tune import (PLOT_SAMPLE, Budget, TuneResult, _edge_warnings, _path, _select, _table_rows, basis_settings,
-                   check_budget, resolve_columns, score_splits)
+from .result import (PLOT_SAMPLE, TuneResult, add_lanes, build_model, check_spread, fingerprint_columns,
+                     fingerprint_of, finish, metric_value, refit_all_rows, score_splits, select, setting_df,
+                     table_rows)
+from .tune import Budget, basis_settings, check_budget, resolve_columns
 
 SAMPLE_SALT = 0x5A17
 PLOT_SALT = 0x9107
@@ -67,7 +68,7 @@ class Scan:
     sample_h: np.ndarray  # bottom-k key hashes
     sample_pos: np.ndarray
     sample_X: np.ndarray
-    digests: list[tuple[int, str, int]] = field(default_factory=list)  # (offset, sha256, rows)
+    lanes: dict[str, np.ndarray] = field(default_factory=dict)  # fingerprint lanes per column (result.py)
 
 
 @dataclass(frozen=True)
@@ -88,7 +89,7 @@ def _keys(ctx: _Ctx, batch: dict[str, np.ndarray], offset: int, rows: int) -> np
 def _fold_ids(ctx: _Ctx, batch: dict[str, np.ndarray], offset: int, rows: int, folds: int) -> np.ndarray:
     """Hash fold of each row of a batch: of its group for ``grouped``, else of its row key."""
     if ctx.spec.cv.scheme == "grouped":
-        return hash_folds(categorical_column(batch, ctx.spec.cv.group_by), ctx.spec.cv.seed, folds)
+        return hash_folds(categorical_column(batch, ctx.spec.cv.group_by, offset), ctx.spec.cv.seed, folds)
     return hash_folds(_keys(ctx, batch, offset, rows), ctx.spec.cv.seed, folds)
 
 
@@ -114,19 +115,14 @@ def _scan_partition(ctx: _Ctx, part: Partition) -> Scan:
     levels: list[set[str]] = [set() for _ in ctx.spec.categorical]
     groups: set[str] = set()
     sh, sp, sx = np.zeros(0, np.uint64), np.zeros(0, np.int64), np.zeros((0, d))
-    digest = hashlib.sha256()
+    lanes: dict[str, np.ndarray] = {}
     pos = part.offset
     for batch in part.read(ctx.columns, ctx.batch_rows):
         X, y = _numeric_block(ctx, batch, pos)
         b = y.size
         if b == 0:
             continue
-        for name in sorted(ctx.columns):
-            c = batch[name]
-            if c.dtype.kind in "biuf":
-                digest.update(np.ascontiguousarray(c, dtype="<f8").tobytes())
-            else:
-                digest.update("\x00".join(str(v) for v in c).encode("utf-8") + b"\x00")
+        lanes = add_lanes(lanes, fingerprint_columns(batch, ctx.columns, pos))
         bm = X.mean(axis=0)
         bm2 = ((X - bm) ** 2).sum(axis=0)
         delta = bm - mean
@@ -138,9 +134,9 @@ def _scan_partition(ctx: _Ctx, part: Partition) -> Scan:
             lo, hi = np.minimum(lo, X.min(axis=0)), np.maximum(hi, X.max(axis=0))
         y_lo, y_hi = min(y_lo, float(y.min())), max(y_hi, float(y.max()))
         for s, name in zip(levels, ctx.spec.categorical):
-            s.update(categorical_column(batch, name).tolist())
+            s.update(categorical_column(batch, name, pos).tolist())
         if ctx.spec.cv.group_by:
-            groups.update(categorical_column(batch, ctx.spec.cv.group_by).tolist())
+            groups.update(categorical_column(batch, ctx.spec.cv.group_by, pos).tolist())
         h = key_hash(_keys(ctx, batch, pos, b), ctx.spec.cv.seed ^ SAMPLE_SALT)
         sh = np.concatenate([sh, h])
         sp = np.concatenate([sp, np.arange(pos, pos + b)])
@@ -148,15 +144,14 @@ def _scan_partition(ctx: _Ctx, part: Partition) -> Scan:
         keep = _bottom_k(sh, ctx.sample_size)
         sh, sp, sx = sh[keep], sp[keep], sx[keep]
         pos += b
-    return Scan(n, mean, m2, lo, hi, y_lo, y_hi, levels, groups, sh, sp, sx,
-                [(part.offset, digest.hexdigest(), pos - part.offset)])
+    return Scan(n, mean, m2, lo, hi, y_lo, y_hi, levels, groups, sh, sp, sx, lanes)
 
 
 def _merge_scan(a: Scan, b: Scan) -> Scan:
     if a.n == 0:
-        return _with_digests(b, a.digests + b.digests)
+        return _with_lanes(b, add_lanes(a.lanes, b.lanes))
     if b.n == 0:
-        return _with_digests(a, a.digests + b.digests)
+        return _with_lanes(a, add_lanes(a.lanes, b.lanes))
     tot = a.n + b.n
     delta = b.mean - a.mean
     mean = a.mean + delta * (b.n / tot)
@@ -166,11 +161,11 @@ def _merge_scan(a: Scan, b: Scan) -> Scan:
     return Scan(tot, mean, m2, np.minimum(a.lo, b.lo), np.maximum(a.hi, b.hi), min(a.y_lo, b.y_lo),
                 max(a.y_hi, b.y_hi), [x | y for x, y in zip(a.levels, b.levels)], a.groups | b.groups, sh[keep],
                 np.concatenate([a.sample_pos, b.sample_pos])[keep], np.vstack([a.sample_X, b.sample_X])[keep],
-                a.digests + b.digests)
+                add_lanes(a.lanes, b.lanes))
 
 
-def _with_digests(s: Scan, digests: list[tuple[int, str, int]]) -> Scan:
-    s.digests = digests
+def _with_lanes(s: Scan, lanes: dict[str, np.ndarray]) -> Scan:
+    s.lanes = lanes
     return s
 
 
@@ -348,12 +343,7 @@ def score_partitions(model: FittedModel, partitions: Sequence[Partition], spec: 
     acc = executor.map_reduce(partial(_score_partition, ctx, model), list(partitions), _sum_arrays)
     n, sse, sae, sy, syy = acc
     with np.errstate(divide="ignore", invalid="ignore"):
-        if metric == "rmse":
-            per = np.sqrt(sse / n)
-        elif metric == "mae":
-            per = sae / n
-        else:
-            per = 1.0 - sse / (syy - sy ** 2 / n)
+        per = metric_value(metric, n, sse=sse, sae=sae, sst=syy - sy ** 2 / n)
     per = per[n > 0]
     return float(per.mean()) if per.size else float("nan")
 
@@ -380,31 +370,66 @@ def _sum_arrays(a: np.ndarray, b: np.ndarray) -> np.ndarray:
 def tune_partitions(partitions: Sequence[Partition], schema: dict[str, str], spec: Any, *,
                     executor=None, progress: Callable[[int, int], None] | None = None,
                     should_stop: Callable[[], bool] | None = None, budget: Budget | None = None) -> TuneResult:
-    """Tune from partitions read in batches. ``schema`` maps column name → "number" or "text"."""
+    """Tune from partitions read in batches. ``schema`` maps column name → "number", "boolean" or "text"."""
     spec = parse_spec(spec)
+    with watch_convergence() as unconverged:
+        result = _tune_partitions(partitions, schema, spec, executor, progress, should_stop, budget)
+    result.warnings.extend(convergence_warnings(unconverged))
+    return result
+
+
+def _tune_partitions(partitions, schema, spec: TuneSpec, executor, progress, should_stop, budget) -> TuneResult:
     check_stream_spec(spec)
     if not partitions:
         raise InvalidData("the source has no partitions (no files or no rows)")
-    executor = executor or SerialExecutor()
     features, columns = resolve_columns(spec, schema)
-    ctx = _Ctx(spec, features, columns, spec.execution.batch_rows)
-    K = spec.cv.folds
-    parts = list(partitions)
+    run = _Run(_Ctx(spec, features, columns, spec.execution.batch_rows), list(partitions),
+               executor or SerialExecutor(), progress, should_stop)
+    scan = run.map_reduce(partial(_scan_partition, run.ctx), run.parts, _merge_scan)
+    m, settings = _setup(run, scan, budget)
+    groups = _Groups(settings, len(features), m.categories.width)
+    tasks = [(p, g) for g in range(len(groups.items)) for p in run.parts]
+    fold_summaries = run.map_reduce(partial(_summarize, m, groups.items), tasks, _merge_summaries)
+    empty = [f for f, s in enumerate(fold_summaries[0]) if s.n == 0]
+    if empty:
+        raise InvalidSpec(f"hash assignment left fold {empty[0]} empty; use fewer folds or more rows/groups",
+                          errors=[{"field": "cv.folds", "value": spec.cv.folds, "message": "empty fold"}])
+    rows = _score(run, m, settings, groups, fold_summaries)
+    picks = select(rows, settings, spec.selection.metric, spec.selection.rule)
+    return _refit(run, m, scan, settings, groups, fold_summaries, rows, picks)
 
-    # pass 1 -----------------------------------------------------------------------------------------
-    n_groups_guess = sum(1 for b in spec.bases if b.kind == "rbf" for _ in b.widths) + \
-        (1 if any(b.kind != "rbf" for b in spec.bases) else 0)
-    total = len(parts) * (2 + n_groups_guess + (n_groups_guess if spec.selection.metric == "mae" else 0))
-    done = [0]
 
-    def tick():
-        done[0] += 1
-        if progress:
-            progress(done[0], total)
+@dataclass
+class _Run:
+    """One streamed run: partitions, executor, and the progress count over every map task."""
 
-    scan = executor.map_reduce(partial(_scan_partition, ctx), parts, _merge_scan, on_done=tick,
-                               should_stop=should_stop)
-    n = scan.n
+    ctx: _Ctx
+    parts: list
+    executor: Any
+    progress: Callable[[int, int], None] | None
+    should_stop: Callable[[], bool] | None
+    done: int = 0
+
+    @property
+    def total(self) -> int:
+        spec = self.ctx.spec
+        groups = (any(b.kind != "rbf" for b in spec.bases)
+                  + sum(len(b.widths) for b in spec.bases if b.kind == "rbf"))
+        return len(self.parts) * (2 + groups * (2 if spec.selection.metric == "mae" else 1))
+
+    def tick(self) -> None:
+        self.done += 1
+        if self.progress:
+            self.progress(self.done, self.total)
+
+    def map_reduce(self, fn, tasks, reduce):
+        return self.executor.map_reduce(fn, tasks, reduce, on_done=self.tick, should_stop=self.should_stop)
+
+
+def _setup(run: _Run, scan: Scan, budget: Budget | None) -> tuple[_Model, list[BasisSetting]]:
+    """Checks on the scanned data, the input scaling, the categories and the basis settings."""
+    spec, features = run.ctx.spec, run.ctx.features
+    n, K = scan.n, spec.cv.folds
     if n == 0:
         raise InvalidData("the data has no rows; send at least a few rows per fold")
     if scan.y_lo == scan.y_hi:
@@ -417,147 +442,113 @@ def tune_partitions(partitions: Sequence[Partition], schema: dict[str, str], spe
         raise InvalidSpec(f"cv.folds is {K} but column {spec.cv.group_by!r} has only {len(scan.groups)} distinct "
                           f"groups; use at most {len(scan.groups)} folds",
                           errors=[{"field": "cv.folds", "value": K, "message": "more folds than groups"}])
+    check_spread(spec.target, "target", scan.y_lo, scan.y_hi, n)
+    for j, f in enumerate(features):
+        check_spread(f, "feature", scan.lo[j], scan.hi[j], n)
     categories = Categories(list(spec.categorical), [sorted(s) for s in scan.levels])
-    d = len(features)
-    check_budget(spec, n, d, budget, categories.width, rows_in_memory=spec.execution.batch_rows)
+    check_budget(spec, n, len(features), budget, categories.width, rows_in_memory=spec.execution.batch_rows)
     std = np.sqrt(scan.m2 / n)
     scaler = InputScaler(features, scan.mean, np.where(std > 0, std, 1.0))
-    order = np.argsort(scan.sample_pos)
-    sample_Xs = scaler.transform(scan.sample_X[order])
+    sample_Xs = scaler.transform(scan.sample_X[np.argsort(scan.sample_pos)])
 
     def centers_from(count: int) -> np.ndarray:
         if count >= n:
             return np.ascontiguousarray(sample_Xs)  # every row (n ≤ sample size here)
         return kmeans_centers(sample_Xs, count, spec.cv.seed)
 
-    settings = basis_settings(spec, np.zeros((0, d)), centers_from=centers_from)
-    strengths = spec.penalty.strength_grid()
-    ratios = spec.penalty.ratio_grid()
-    model_ctx = _Model(ctx, scaler, categories, K)
+    settings = basis_settings(spec, np.zeros((0, len(features))), centers_from=centers_from, sample=sample_Xs)
+    return _Model(run.ctx, scaler, categories, K), settings
 
-    nested = [i for i, s in enumerate(settings) if s.kind in ("linear", "polynomial")]
-    groups: list[tuple[BasisSetting, bool]] = []
-    members: list[list[int]] = []
-    group_of: dict[int, int] = {}
-    if nested:
-        top = max(nested, key=lambda i: settings[i].n_terms(d))
-        groups.append((settings[top], True))
-        members.append(nested)
-        for i in nested:
-            group_of[i] = 0
-    for i, s in enumerate(settings):
-        if s.kind == "rbf":
-            group_of[i] = len(groups)
-            groups.append((s, False))
-            members.append([i])
-    total = len(parts) * (2 + len(groups) + (len(groups) if spec.selection.metric == "mae" else 0))
 
-    # pass 2 -----------------------------------------------------------------------------------------
-    tasks = [(p, g) for g in range(len(groups)) for p in parts]
-    fold_summaries = executor.map_reduce(partial(_summarize, model_ctx, groups), tasks, _merge_summaries,
-                                         on_done=tick, should_stop=should_stop)
-    if any(s.n == 0 for s in fold_summaries[0]):
-        empty = [f for f, s in enumerate(fold_summaries[0]) if s.n == 0]
-        raise InvalidSpec(f"hash assignment left fold {empty[0]} empty; use fewer folds or more rows/groups",
-                          errors=[{"field": "cv.folds", "value": K, "message": "empty fold"}])
-    q = categories.width
-    splits = [([i for i in range(K) if i != j], [j]) for j in range(K)]
+class _Groups:
+    """Basis settings grouped by the pass that summarizes them: nested linear / polynomial settings share
+    the highest degree's pass (one-hot columns first), each RBF setting has its own."""
 
-    def atoms_of(i: int) -> tuple[list[Summary], int]:
-        s = settings[i]
-        g = group_of[i]
-        if groups[g][1]:
-            k = 1 + q + s.n_terms(d)
-            return [a.leading(k) for a in fold_summaries[g]], k - 1
-        return fold_summaries[g], s.n_terms(d) + q
+    def __init__(self, settings: list[BasisSetting], d: int, q: int):
+        self.settings, self.d, self.q = settings, d, q
+        self.items: list[tuple[BasisSetting, bool]] = []
+        self.members: list[list[int]] = []
+        self.of: dict[int, int] = {}
+        nested = [i for i, s in enumerate(settings) if s.kind in ("linear", "polynomial")]
+        if nested:
+            self.items.append((settings[max(nested, key=lambda i: settings[i].n_terms(d))], True))
+            self.members.append(nested)
+            self.of.update({i: 0 for i in nested})
+        for i, s in enumerate(settings):
+            if s.kind == "rbf":
+                self.of[i] = len(self.items)
+                self.items.append((s, False))
+                self.members.append([i])
 
-    rows: list[dict[str, Any]] = []
-    split_fits: dict[int, list] = {}
-    for i, s in enumerate(settings):
-        atoms, _ = atoms_of(i)
-        values, fits = score_splits(atoms, splits, spec, strengths, ratios)
-        split_fits[i] = fits
-        rows.append((i, s, values))
+    def atoms(self, fold_summaries, i: int, model_order: bool = False) -> tuple[list[Summary], int]:
+        """(fold summaries of setting i, its design width). ``model_order`` reorders a nested setting's
+        columns [1, one-hot, Φ, y] into the model's [1, Φ, one-hot, y] (``Summary.permuted``, no rows)."""
+        g = self.of[i]
+        if not self.items[g][1]:
+            return fold_summaries[g], self.settings[i].n_terms(self.d) + self.q
+        p = self.settings[i].n_terms(self.d)
+        k = 1 + self.q + p
+        atoms = [a.leading(k) for a in fold_summaries[g]]
+        if model_order and self.q:
+            order = [0, *range(1 + self.q, k), *range(1, 1 + self.q), k]
+            atoms = [a.permuted(order) for a in atoms]
+        return atoms, k - 1
+
+
+def _splits(K: int) -> list[tuple[list[int], list[int]]]:
+    return [([i for i in range(K) if i != j], [j]) for j in range(K)]
+
+
+def _score(run: _Run, m: _Model, settings: list[BasisSetting], groups: _Groups, fold_summaries
+           ) -> list[dict[str, Any]]:
+    """The CV rows of every setting, scored from the fold summaries (MAE: one more pass over the rows)."""
+    spec = run.ctx.spec
+    strengths, ratios = spec.penalty.strength_grid(), spec.penalty.ratio_grid()
+    values, weights = {}, {}
+    for i in range(len(settings)):
+        atoms, k = groups.atoms(fold_summaries, i)
+        values[i], fits = score_splits(atoms, _splits(m.folds), spec, strengths, ratios)
+        weights[i] = (np.array([[f.weights for f in per] for per in fits]),
+                      np.array([[f.intercept for f in per] for per in fits]), k)
     if spec.selection.metric == "mae":
-        weights = {}
-        for i in range(len(settings)):
-            _, k = atoms_of(i)
-            fits = split_fits[i]
-            W = np.array([[f.weights for f in per_split] for per_split in fits])
-            b0 = np.array([[f.intercept for f in per_split] for per_split in fits])
-            weights[i] = (W, b0, k)
-        mtasks = [(p, g) for g in range(len(groups)) for p in parts]
-        sums = executor.map_reduce(partial(_mae_sums, model_ctx, groups, members, weights), mtasks,
-                                   _merge_all_mae, on_done=tick, should_stop=should_stop)
-        rows = [(i, s, np.transpose(sums[i][0] / sums[i][1][:, None, None], (1, 2, 0))) for i, s, _ in rows]
-    table_rows: list[dict[str, Any]] = []
-    for i, s, values in rows:
-        table_rows.extend(_table_rows(i, s, strengths, ratios, values, None))
-    chosen_idx, best_idx, onese_idx = _select(table_rows, settings, spec, K)
-    chosen = table_rows[chosen_idx]
-    s_idx = chosen["_setting"]
-    setting = settings[s_idx]
-    strength, ratio = chosen["strength"], chosen["l1_ratio"]
+        tasks = [(p, g) for g in range(len(groups.items)) for p in run.parts]
+        sums = run.map_reduce(partial(_mae_sums, m, groups.items, groups.members, weights), tasks, _merge_all_mae)
+        values = {i: np.transpose(metric_value("mae", sums[i][1][:, None, None], sae=sums[i][0]), (1, 2, 0))
+                  for i in values}
+    rows: list[dict[str, Any]] = []
+    for i, s in enumerate(settings):
+        df = setting_df(Summary.combine(groups.atoms(fold_summaries, i)[0]), spec, strengths, ratios)
+        rows.extend(table_rows(i, s, strengths, ratios, values[i], df))
+    return rows
 
-    # refit from the fold summaries, in the model's column order [Φ, one-hot] --------------------------
-    atoms, k = atoms_of(s_idx)
-    if groups[group_of[s_idx]][1] and q:
-        p = k - q
-        order_cols = [0, *range(1 + q, 1 + q + p), *range(1, 1 + q), k + 1]
-        atoms = [a.permuted(order_cols) for a in atoms]
-    full_summary = Summary.combine(atoms)
-    full = fit(full_summary, spec.penalty.kind, strengths, ratio)
-    l_idx = int(np.flatnonzero(strengths == strength)[0])
+
+def _refit(run: _Run, m: _Model, scan: Scan, settings: list[BasisSetting], groups: _Groups, fold_summaries,
+           rows: list[dict[str, Any]], picks: tuple[int, int, int]) -> TuneResult:
+    """The chosen setting refit from its fold summaries, then pass 3 over the rows, then the result."""
+    spec, features = run.ctx.spec, run.ctx.features
+    chosen = rows[picks[0]]
+    s_idx, strength, ratio = chosen["_setting"], chosen["strength"], chosen["l1_ratio"]
+    setting, n = settings[s_idx], scan.n
+    atoms, _ = groups.atoms(fold_summaries, s_idx, model_order=True)
+    full, l_idx, F = refit_all_rows(Summary.combine(atoms), spec, spec.penalty.strength_grid(), strength, ratio)
     fold_fits = [fit(Summary.combine([atoms[i] for i in tr]), spec.penalty.kind, np.array([strength]), ratio)
-                 for tr, _ in splits]
+                 for tr, _ in _splits(m.folds)]
     fw = np.vstack([f.weights[0] for f in fold_fits])
     fi = np.array([f.intercept[0] for f in fold_fits])
-    Zblock = centred_scaled(full_summary)[0]
-    F = leverage_factor(Zblock, strength, spec.penalty.kind, ratio, n, full.beta[l_idx])
-
-    # pass 3 -----------------------------------------------------------------------------------------
     stride = max(1, math.ceil(n / MAX_INTERVAL_RESIDUALS))
-    fin = executor.map_reduce(partial(_final_pass, model_ctx, setting, fw, fi, full.mean, full.scale, F, n, stride),
-                              parts, _merge_final, on_done=tick, should_stop=should_stop)
+    fin = run.map_reduce(partial(_final_pass, m, setting, fw, fi, full.mean, full.scale, F, n, stride), run.parts,
+                         _merge_final)
     abs_res = np.concatenate(fin.residuals)
     res_fold = np.concatenate([np.full(r.size, f, dtype=np.int64) for f, r in enumerate(fin.residuals)])
     kept, kept_fold, _ = thin_residuals(abs_res, res_fold, limit=abs_res.size)  # sorts per fold, keeps all
-    g = float(stride)
-    names = setting.term_names(features) + categories.term_names()
-    model = FittedModel(
-        target=spec.target, features=features, scaler=scaler, basis=setting, categories=categories,
-        column_mean=full.mean, column_scale=full.scale, beta=full.beta[l_idx], intercept=float(full.intercept[l_idx]),
-        penalty={"kind": spec.penalty.kind, "strength": float(strength), "l1_ratio": ratio}, n_train=n,
-        ranges={f: [float(scan.lo[j]), float(scan.hi[j])] for j, f in enumerate(features)},
-        leverage_factor=F, max_leverage=fin.max_leverage, fold_weights=fw, fold_intercepts=fi,
-        residuals=kept, residual_fold=kept_fold, residual_weight=g, term_names=names,
-    )
-    model.cv = {"metric": spec.selection.metric, "mean": chosen["mean"], "std": chosen["std"], "folds": K,
-                "scheme": spec.cv.scheme, "rule": spec.selection.rule}
-    warnings = _edge_warnings(spec, settings, table_rows, chosen, strengths)
-    table = [{kk: v for kk, v in r.items() if not kk.startswith("_")} for r in table_rows]
-
-    def public(r):
-        return {"basis": r["basis"], "penalty": {"kind": spec.penalty.kind, "strength": r["strength"],
-                "l1_ratio": r["l1_ratio"]}, "metric": spec.selection.metric, "mean": r["mean"], "std": r["std"],
-                "index": table_rows.index(r)}
-
-    digests = sorted(scan.digests)
-    fp = hashlib.sha256("".join(f"{o}:{r}:{h};" for o, h, r in digests).encode()).hexdigest()
-    summary = {"metric": spec.selection.metric, "rule": spec.selection.rule, "scheme": spec.cv.scheme, "splits": K,
-               "mean": chosen["mean"], "std": chosen["std"], "rows": int(n), "basis_settings": len(settings),
-               "strengths": int(strengths.size), "l1_ratios": len(ratios), "candidates": len(table_rows),
-               "execution": "streaming", "executor": getattr(executor, "name", "in-process"),
-               "partitions": len(parts)}
-    return TuneResult(
-        spec=spec, best=public(chosen) | {"rule": spec.selection.rule}, one_standard_error=public(table_rows[onese_idx]),
-        best_mean=public(table_rows[best_idx]), cv_table=table, model=model, folds=np.zeros(0, dtype=np.int64),
-        path=_path(full, strengths, strength, names, spec.penalty.kind), warnings=warnings,
-        oof_predictions=fin.sample_pred, oof_observed=fin.sample_obs, oof_residuals=fin.sample_obs - fin.sample_pred,
-        fingerprint={"sha256": fp, "rows": int(n), "columns": len(columns),
-                     "method": "sha256 over partition digests (offset:rows:sha256 of each partition's batches)"},
-        summary=summary,
-    )
+    ranges = {f: [float(scan.lo[j]), float(scan.hi[j])] for j, f in enumerate(features)}
+    model = build_model(spec, features, m.scaler, setting, m.categories, full, l_idx, ratio, F, ranges,
+                        fin.max_leverage, (kept, kept_fold, float(stride)), fold_fits)
+    return finish(spec, settings, rows, picks, model, full, n_rows=n, n_splits=m.folds,
+                  folds=np.zeros(0, dtype=np.int64), oof_predictions=fin.sample_pred, oof_observed=fin.sample_obs,
+                  fingerprint=fingerprint_of(scan.lanes, n),
+                  summary_extra={"execution": "streaming", "executor": getattr(run.executor, "name", "in-process"),
+                                 "partitions": len(run.parts)})
 
 
 def _merge_all_mae(a, b):

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import hashlib
 from typing import Any, Mapping
 
 import numpy as np
@@ -58,7 +57,12 @@ def numeric_column(cols: Columns, name: str, role: str, offset: int = 0) -> np.n
         raise InvalidData(f"{role} column {name!r} is not in the data; columns present: {known}",
                           errors=[{"field": name, "message": "missing column"}])
     raw = cols[name]
-    if raw.dtype.kind in "biuf":
+    if raw.dtype.kind == "b" or (raw.dtype.kind == "O" and any(isinstance(v, (bool, np.bool_)) for v in raw[:1000])):
+        # one rule with the HTTP tables (engine.result.column_kind): true/false is not a number
+        raise InvalidData(
+            f"{role} column {name!r} holds true/false values; encode it as 0/1 numbers or list it under 'categorical'",
+            errors=[{"field": name, "message": "booleans are not numbers"}])
+    if raw.dtype.kind in "iuf":
         x = raw.astype(np.float64, copy=False)
     elif raw.dtype.kind in "US" and raw.size:
         # A text-typed column (JSON strings, a CSV column pyarrow read as text) is text even when its
@@ -91,19 +95,21 @@ def numeric_column(cols: Columns, name: str, role: str, offset: int = 0) -> np.n
     return x
 
 
-def categorical_column(cols: Columns, name: str) -> np.ndarray:
+def categorical_column(cols: Columns, name: str, offset: int = 0) -> np.ndarray:
+    """The named column as level texts; refuses missing values naming the first rows (counted from
+    ``offset``, the position of the first row in the whole source)."""
     if name not in cols:
         known = ", ".join(sorted(cols)[:20])
         raise InvalidData(f"categorical column {name!r} is not in the data; columns present: {known}",
                           errors=[{"field": name, "message": "missing column"}])
     raw = cols[name]
     if raw.dtype.kind == "f":
-        bad = np.flatnonzero(~np.isfinite(raw))[:5].tolist()
+        bad = (np.flatnonzero(~np.isfinite(raw))[:5] + offset).tolist()
         if bad:
             raise InvalidData(f"categorical column {name!r} holds missing values at rows {bad}; fill them in",
                               errors=[{"field": name, "rows": bad, "message": "missing"}])
     out = np.array([_level(v) for v in raw], dtype=object)
-    missing = [i for i, v in enumerate(out) if v is None][:5]
+    missing = [i + offset for i, v in enumerate(out) if v is None][:5]
     if missing:
         raise InvalidData(f"categorical column {name!r} holds missing values at rows {missing}; fill them in",
                           errors=[{"field": name, "rows": missing, "message": "missing"}])
@@ -114,25 +120,9 @@ def numeric_names(cols: Columns) -> list[str]:
     return [n for n, c in cols.items() if c.dtype.kind in "biuf"]
 
 
-def fingerprint(cols: Columns, names: list[str]) -> dict[str, Any]:
-    """SHA-256 over the used columns in a canonical order (names sorted; float64 little-endian values,
-    or UTF-8 strings each followed by a NUL byte), plus the row and column counts."""
-    h = hashlib.sha256()
-    n_rows = len(next(iter(cols.values()))) if cols else 0
-    for name in sorted(names):
-        c = cols[name]
-        h.update(name.encode("utf-8") + b"\x00")
-        if c.dtype.kind in "biuf":
-            h.update(np.ascontiguousarray(c, dtype="<f8").tobytes())
-        else:
-            for v in c:
-                h.update(str(v).encode("utf-8") + b"\x00")
-    return {"sha256": h.hexdigest(), "rows": int(n_rows), "columns": len(names)}
-
-
 def _to_float(v: Any) -> float:
     if isinstance(v, (bool, np.bool_)):
-        return float(v)
+        raise TypeError("bool")
     if isinstance(v, (int, float, np.integer, np.floating)):
         return float(v)
     if isinstance(v, str):
@@ -154,10 +144,17 @@ def _short(v: Any) -> str:
 
 
 def _level(v: Any) -> str | None:
-    if v is None:
+    """The level's text, or None for a missing value: None, NaN (float or in an object column), pandas'
+    NA and NaT, numpy's NaT. A missing value is never learned as a level named 'nan' or '<NA>'."""
+    if v is None or type(v).__name__ in ("NAType", "NaTType"):
         return None
-    if isinstance(v, (float, np.floating)) and float(v).is_integer():
-        return str(int(v))
+    if isinstance(v, (float, np.floating)):
+        if not np.isfinite(v):
+            return None
+        if float(v).is_integer():
+            return str(int(v))
+    if isinstance(v, (np.datetime64, np.timedelta64)) and np.isnat(v):
+        return None
     if isinstance(v, bytes):
         return v.decode("utf-8", "replace")
     return str(v)

@@ -10,23 +10,26 @@ when the metric is MAE, the per-row errors that a sum of squares cannot give.
 from __future__ import annotations
 
 import math
-import platform
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any, Callable
 
 import numpy as np
 
 from service.errors import BudgetExceeded, Cancelled, InvalidData, InvalidSpec
 
-from .basis import BasisSetting, Categories, InputScaler, n_polynomial_terms, polynomial_powers, rbf_centers
-from .folds import Plan, make_plan
+from .basis import (BasisSetting, Categories, InputScaler, check_rbf_width, n_polynomial_terms, polynomial_powers,
+                    rbf_centers, sample_rows)
+from .folds import Plan, make_plan, order_key
 from .model import FittedModel, thin_residuals
-from .solvers import Fit, centred_scaled, fit, leverage_factor
+from .result import (TuneResult, build_model, check_spread, column_kind, fingerprint_columns,
+                     fingerprint_of, finish, metric_value, refit_all_rows, score_splits, select, setting_df, table_rows)
+from .solvers import Fit, convergence_warnings, fit, watch_convergence
 from .spec import TuneSpec, parse_spec
 from .summaries import Summary
-from .table import as_columns, categorical_column, fingerprint, numeric_column, numeric_names
+from .table import as_columns, categorical_column, numeric_column
 
-PLOT_SAMPLE = 5_000
+LEVERAGE_ONE = 1e-10  # a row with hᵢᵢ ≥ 1 − this has leverage 1: its leave-one-out error needs a refit
+MAX_LOO_REFIT_FLOPS = 2e10
 
 
 @dataclass(frozen=True)
@@ -57,59 +60,6 @@ class Prepared:
     keys: np.ndarray | None = None
 
 
-@dataclass
-class TuneResult:
-    spec: TuneSpec
-    best: dict[str, Any]
-    one_standard_error: dict[str, Any]
-    best_mean: dict[str, Any]
-    cv_table: list[dict[str, Any]]
-    model: FittedModel
-    folds: np.ndarray
-    path: dict[str, Any]
-    warnings: list[str]
-    oof_predictions: np.ndarray
-    oof_observed: np.ndarray
-    oof_residuals: np.ndarray
-    fingerprint: dict[str, Any]
-    summary: dict[str, Any] = field(default_factory=dict)
-
-    def to_artifact(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
-        """(JSON-serializable manifest body, plain numeric arrays): all a stored version needs."""
-        meta, arrays = self.model.to_parts()
-        finite = np.isfinite(self.oof_predictions)
-        idx = np.flatnonzero(finite)
-        if idx.size > PLOT_SAMPLE:
-            idx = np.sort(np.random.default_rng(0).choice(idx, PLOT_SAMPLE, replace=False))
-        arrays = dict(arrays)
-        arrays["path_strengths"] = np.asarray(self.path["strengths"], dtype=float)
-        arrays["path_coefficients"] = np.asarray(self.path["coefficients"], dtype=float)
-        if self.path.get("df") is not None:
-            arrays["path_df"] = np.asarray(self.path["df"], dtype=float)
-        arrays["oof_predicted"] = self.oof_predictions[idx]
-        arrays["oof_observed"] = self.oof_observed[idx]
-        res = self.oof_residuals[finite]
-        qs = np.linspace(0, 1, 101)
-        body = {
-            "spec": self.spec.model_dump(mode="json"),
-            "model": meta,
-            "chosen": self.best,
-            "best_mean": self.best_mean,
-            "one_standard_error": self.one_standard_error,
-            "cv_table": self.cv_table,
-            "cv_summary": self.summary,
-            "path": {"strengths": "arrays:path_strengths", "coefficients": "arrays:path_coefficients",
-                     "terms": self.path["terms"], "chosen_strength": self.path["chosen_strength"],
-                     "df": "arrays:path_df" if self.path.get("df") is not None else None},
-            "residual_quantiles": {"levels": qs.tolist(),
-                                   "abs_residual": np.quantile(np.abs(res), qs).tolist() if res.size else []},
-            "warnings": list(self.warnings),
-            "data_fingerprint": self.fingerprint,
-            "feature_schema": self.model.feature_schema(),
-        }
-        return body, arrays
-
-
 def load_model(manifest_body: dict[str, Any], arrays: dict[str, np.ndarray]) -> FittedModel:
     """Rebuild the fitted model of a stored version (no stored code is executed)."""
     return FittedModel.from_parts(manifest_body["model"], arrays)
@@ -121,13 +71,16 @@ def prepare(data: Any, spec: TuneSpec) -> Prepared:
     n = len(next(iter(cols.values()))) if cols else 0
     if n == 0:
         raise InvalidData("the data has no rows; send at least a few rows per fold")
-    schema = {c: "number" if v.dtype.kind in "biuf" else "text" for c, v in cols.items()}
+    schema = {c: column_kind(v) for c, v in cols.items()}
     features, used = resolve_columns(spec, schema)
     y = numeric_column(cols, spec.target, "target")
     if np.ptp(y) == 0:
         raise InvalidData(f"target column {spec.target!r} is constant ({y[0]:g}); there is nothing to learn — "
                           "check that the right column is named as target")
     X = np.column_stack([numeric_column(cols, f, "feature") for f in features]) if features else np.zeros((n, 0))
+    check_spread(spec.target, "target", y.min(), y.max(), n)
+    for j, f in enumerate(features):
+        check_spread(f, "feature", X[:, j].min(), X[:, j].max(), n)
     cat_cols = [categorical_column(cols, c) for c in spec.categorical]
     categories = Categories.fit(spec.categorical, cat_cols)
     cat_block, _ = categories.encode(cat_cols) if cat_cols else (np.zeros((n, 0)), [])
@@ -135,15 +88,15 @@ def prepare(data: Any, spec: TuneSpec) -> Prepared:
     if spec.cv.scheme == "grouped":
         groups = categorical_column(cols, spec.cv.group_by)
     if spec.cv.scheme == "time_ordered":
-        raw = cols[spec.cv.order_by]
-        order = raw if raw.dtype.kind in "biufM" else np.asarray(raw).astype(str)
+        order = order_key(cols[spec.cv.order_by], spec.cv.order_by)
     keys = cols[spec.cv.row_key] if spec.cv.row_key else None
     return Prepared(cols, features, X, y, categories, cat_block, groups, order, used, keys)
 
 
 def resolve_columns(spec: TuneSpec, schema: dict[str, str]) -> tuple[list[str], list[str]]:
-    """(features, every column used) for a table whose columns are ``schema`` (name → "number" or
-    "text"). The default features are all numeric columns that have no other role."""
+    """(features, every column used) for a table whose columns are ``schema`` (name → "number", "boolean"
+    or "text", see ``result.column_kind``). The default features are all numeric columns that have no
+    other role."""
     def unknown(field_name: str, value: Any, what: str) -> InvalidSpec:
         return InvalidSpec(f"{what} {value!r} {'are' if isinstance(value, list) else 'is'} not in the data; "
                            f"columns present: {sorted(schema)[:20]}",
@@ -179,11 +132,14 @@ def resolve_columns(spec: TuneSpec, schema: dict[str, str]) -> tuple[list[str], 
 
 
 def basis_settings(spec: TuneSpec, Xs: np.ndarray, keys: np.ndarray | None = None,
-                   centers_from=None) -> list[BasisSetting]:
-    """The grid of basis settings. ``centers_from(count)`` may supply RBF centres (streaming)."""
+                   centers_from=None, sample: np.ndarray | None = None) -> list[BasisSetting]:
+    """The grid of basis settings. ``centers_from(count)`` may supply RBF centres (streaming).
+    RBF widths are checked on ``sample`` (standardized rows; default: the k-means sample of ``Xs``)."""
     d = Xs.shape[1]
+    if sample is None and any(b.kind == "rbf" for b in spec.bases):
+        sample = Xs[sample_rows(Xs.shape[0], spec.cv.seed, keys)]
     out: list[BasisSetting] = []
-    for b in spec.bases:
+    for i, b in enumerate(spec.bases):
         if b.kind == "linear":
             out.append(BasisSetting("linear"))
         elif b.kind == "polynomial":
@@ -192,6 +148,7 @@ def basis_settings(spec: TuneSpec, Xs: np.ndarray, keys: np.ndarray | None = Non
         else:
             centers = centers_from(b.centers) if centers_from else rbf_centers(Xs, b.centers, spec.cv.seed, keys)
             for w in b.widths:
+                check_rbf_width(sample, centers, float(w), f"bases.{i}.widths")
                 out.append(BasisSetting("rbf", width=float(w), centers=centers))
     return out
 
@@ -252,8 +209,22 @@ def check_budget(spec: Any, n_rows: int, n_features: int, budget: Budget | None 
 # ---------------------------------------------------------------------------------------------------
 def tune(data: Any, spec: Any, *, progress: Callable[[int, int], None] | None = None,
          should_stop: Callable[[], bool] | None = None, budget: Budget | None = None) -> TuneResult:
-    """Choose basis setting and penalty strength jointly by cross-validation, then refit on all rows."""
+    """Choose basis setting and penalty strength jointly by cross-validation, then refit on all rows.
+
+    ``data``: dict name → 1-D array (n,), pandas DataFrame or pyarrow Table. ``spec``: dict or ``TuneSpec``.
+    ``progress(done, total)`` is called after each (basis setting × fold) unit; ``should_stop()`` returning
+    True raises ``Cancelled``; ``budget`` bounds the work (``Budget``). Returns a ``TuneResult``
+    (``service.engine.result``); bad data or specs raise ``InvalidData`` / ``InvalidSpec`` naming the
+    field, value and fix.
+    """
     spec = parse_spec(spec)
+    with watch_convergence() as unconverged:
+        result = _tune(data, spec, progress, should_stop, budget)
+    result.warnings.extend(convergence_warnings(unconverged))
+    return result
+
+
+def _tune(data, spec: TuneSpec, progress, should_stop, budget) -> TuneResult:
     prep = prepare(data, spec)
     n, d = prep.X.shape
     check_budget(spec, n, d, budget, prep.categories.width)
@@ -262,7 +233,6 @@ def tune(data: Any, spec: Any, *, progress: Callable[[int, int], None] | None = 
     settings = basis_settings(spec, Xs, prep.keys)
     strengths = spec.penalty.strength_grid()
     ratios = spec.penalty.ratio_grid()
-    metric = spec.selection.metric
 
     if spec.cv.scheme == "loo":
         search = _LooSearch(spec, prep, Xs, settings, strengths)
@@ -277,9 +247,9 @@ def tune(data: Any, spec: Any, *, progress: Callable[[int, int], None] | None = 
     done = 0
     rows: list[dict[str, Any]] = []
     for s_idx, setting in enumerate(settings):
-        for values, extra in search.evaluate(s_idx, setting):
-            # values: (n_ratios, L, n_splits) metric per split
-            rows.extend(_table_rows(s_idx, setting, strengths, ratios, values, extra))
+        for values, df, extra in search.evaluate(s_idx, setting):
+            # values: (n_ratios, L, n_splits) metric per split; df: (n_ratios, L) complexity on all rows
+            rows.extend(table_rows(s_idx, setting, strengths, ratios, values, df, extra))
         done += search.units_per_setting
         if progress:
             progress(done, total)
@@ -288,99 +258,17 @@ def tune(data: Any, spec: Any, *, progress: Callable[[int, int], None] | None = 
 
     if not rows:
         raise InvalidSpec("the grid is empty")
-    chosen_idx, best_idx, onese_idx = _select(rows, settings, spec, search.n_splits)
-    chosen = rows[chosen_idx]
+    picks = select(rows, settings, spec.selection.metric, spec.selection.rule)
+    chosen = rows[picks[0]]
     s_idx = chosen["_setting"]
-    setting = settings[s_idx]
-    ratio = chosen["l1_ratio"]
-    model, path, oof_pred, oof_res = search.refit(s_idx, setting, chosen["strength"], ratio, strengths, scaler, chosen)
-    warnings = _edge_warnings(spec, settings, rows, chosen, strengths)
-    table = [{k: v for k, v in r.items() if not k.startswith("_")} for r in rows]
-    public = lambda r: {"basis": r["basis"], "penalty": {"kind": spec.penalty.kind, "strength": r["strength"],
-                        "l1_ratio": r["l1_ratio"]}, "metric": metric, "mean": r["mean"], "std": r["std"],
-                        "index": rows.index(r)}
-    best = public(chosen) | {"rule": spec.selection.rule}
-    summary = {"metric": metric, "rule": spec.selection.rule, "scheme": spec.cv.scheme, "splits": search.n_splits,
-               "mean": chosen["mean"], "std": chosen["std"], "rows": int(n),
-               "basis_settings": len(settings), "strengths": int(strengths.size), "l1_ratios": len(ratios),
-               "candidates": len(rows),
-               "python": platform.python_version()}
-    model.cv = {"metric": metric, "mean": chosen["mean"], "std": chosen["std"], "folds": search.n_splits,
-                "scheme": spec.cv.scheme, "rule": spec.selection.rule}
-    fp = fingerprint(prep.cols, prep.used)
-    return TuneResult(spec=spec, best=best, one_standard_error=public(rows[onese_idx]),
-                      best_mean=public(rows[best_idx]), cv_table=table, model=model,
-                      folds=search.assignment, path=path, warnings=warnings, oof_predictions=oof_pred,
-                      oof_observed=prep.y, oof_residuals=oof_res, fingerprint=fp, summary=summary)
+    model, full, oof_pred = search.refit(s_idx, settings[s_idx], chosen["strength"], chosen["l1_ratio"], strengths,
+                                         scaler, chosen)
+    return finish(spec, settings, rows, picks, model, full, n_rows=n, n_splits=search.n_splits,
+                  folds=search.assignment, oof_predictions=oof_pred, oof_observed=prep.y,
+                  fingerprint=fingerprint_of(fingerprint_columns(prep.cols, prep.used), n), warnings=search.warnings)
 
 
 # ---------------------------------------------------------------------------------------------------
-def _table_rows(s_idx: int, setting: BasisSetting, strengths: np.ndarray, ratios: list[float | None],
-                values: np.ndarray, extra: dict[str, np.ndarray] | None) -> list[dict[str, Any]]:
-    """One row per (l1 ratio, strength). ``std`` is the population std over splits, as GridSearchCV's
-    ``std_test_score``; the loo scheme supplies its own (``_std``) and no per-split list."""
-    rows = []
-    extra = extra or {}
-    for r_i, ratio in enumerate(ratios):
-        for l_i, lam in enumerate(strengths):
-            v = values[r_i, l_i]
-            row = {"basis": setting.describe(), "strength": float(lam), "l1_ratio": ratio,
-                   "mean": float(np.mean(v)), "std": float(np.std(v)), "folds": [float(x) for x in v]}
-            if "_std" in extra:
-                row["std"] = float(extra["_std"][r_i, l_i])
-                row["folds"] = None
-            for key, arr in extra.items():
-                if not key.startswith("_"):
-                    row[key] = float(arr[r_i, l_i])
-            row["_setting"] = s_idx
-            rows.append(row)
-    return rows
-
-
-def _select(rows: list[dict[str, Any]], settings: list[BasisSetting], spec: TuneSpec, n_splits: int
-            ) -> tuple[int, int, int]:
-    """(chosen, best mean, one-standard-error) indices into rows.
-
-    One-standard-error rule (Hastie, Tibshirani & Friedman, ESL section 7.10): among candidates whose
-    mean CV error is within one standard error (std over splits / √splits) of the best, take the
-    simplest: the largest strength, then the simplest basis (linear, then lower polynomial degree,
-    then the widest RBF), then the largest l1 ratio.
-    """
-    sign = -1.0 if spec.selection.metric == "r2" else 1.0
-    score = np.array([sign * r["mean"] for r in rows])
-    if not np.isfinite(score).any():
-        raise InvalidData("every candidate's CV score is undefined (NaN); the folds may be too small")
-    score = np.where(np.isfinite(score), score, np.inf)
-    best = int(np.argmin(score))
-    se = rows[best]["std"] / math.sqrt(max(1, n_splits))
-    within = [i for i in range(len(rows)) if score[i] <= score[best] + se]
-    key = lambda i: (-rows[i]["strength"], settings[rows[i]["_setting"]].complexity(), -(rows[i]["l1_ratio"] or 0.0))
-    onese = min(within, key=key)
-    chosen = onese if spec.selection.rule == "one_standard_error" else best
-    return chosen, best, onese
-
-
-def _edge_warnings(spec: TuneSpec, settings: list[BasisSetting], rows: list[dict[str, Any]], chosen: dict[str, Any],
-                   strengths: np.ndarray) -> list[str]:
-    out = []
-    lam = chosen["strength"]
-    if strengths.size > 1 and lam == strengths[-1]:
-        out.append(f"the chosen strength {lam:.4g} is the largest in the grid; widen the grid upwards")
-    if strengths.size > 1 and lam == strengths[0] and lam > 0:
-        out.append(f"the chosen strength {lam:.4g} is the smallest in the grid; widen the grid downwards")
-    s = settings[chosen["_setting"]]
-    if s.kind == "polynomial":
-        degrees = sorted({x.degree for x in settings if x.kind == "polynomial"})
-        if len(degrees) > 1 and s.degree == degrees[-1]:
-            out.append(f"the chosen degree {s.degree} is the highest in the grid; widen the grid (try higher degrees)")
-    if s.kind == "rbf":
-        widths = sorted({x.width for x in settings if x.kind == "rbf"})
-        if len(widths) > 1 and s.width in (widths[0], widths[-1]):
-            side = "narrowest" if s.width == widths[0] else "widest"
-            out.append(f"the chosen RBF width {s.width:g} is the {side} in the grid; widen the grid")
-    return out
-
-
 def _design(setting: BasisSetting, Xs: np.ndarray, cat_block: np.ndarray) -> np.ndarray:
     Phi = setting.expand(Xs)
     if cat_block.shape[1]:
@@ -388,76 +276,18 @@ def _design(setting: BasisSetting, Xs: np.ndarray, cat_block: np.ndarray) -> np.
     return Phi
 
 
-def _metric_from_sse(metric: str, sse: np.ndarray, n_rows: int, sst: float) -> np.ndarray:
-    if metric == "rmse":
-        return np.sqrt(sse / n_rows)
-    if metric == "r2":
-        with np.errstate(divide="ignore", invalid="ignore"):
-            return 1.0 - sse / sst if sst > 0 else np.full_like(sse, np.nan)
-    raise ValueError(metric)
-
-
-def _ranges(prep: Prepared) -> dict[str, list[float]]:
-    return {f: [float(prep.X[:, j].min()), float(prep.X[:, j].max())] for j, f in enumerate(prep.features)}
-
-
 def _model(prep: Prepared, spec: TuneSpec, scaler: InputScaler, setting: BasisSetting, full_summary: Summary,
-           full: Fit, l_idx: int,
-           strength: float, ratio: float | None, Phi: np.ndarray, fold_fits: list[Fit] | None,
-           oof_abs: np.ndarray, oof_fold: np.ndarray) -> FittedModel:
-    """Assemble the fitted model from the refit (at index l_idx of its strength grid)."""
-    beta = full.beta[l_idx]
-    Z = (Phi - full.mean) / full.scale
-    Zblock = centred_scaled(full_summary)[0]
-    F = leverage_factor(Zblock, strength, spec.penalty.kind, ratio, full.n, beta)
-    FZ = Z @ F.T
+           strengths: np.ndarray, strength: float, ratio: float | None, Phi: np.ndarray,
+           fold_fits: list[Fit] | None, oof_abs: np.ndarray, oof_fold: np.ndarray) -> tuple[FittedModel, Fit]:
+    """The model refit on all rows (``result.build_model``), with its training leverages from ``Phi``."""
+    full, l_idx, F = refit_all_rows(full_summary, spec, strengths, strength, ratio)
+    FZ = ((Phi - full.mean) / full.scale) @ F.T
     lev = 1.0 / full.n + np.einsum("ij,ij->i", FZ, FZ)
     finite = np.isfinite(oof_abs)
-    res, res_fold, g = thin_residuals(oof_abs[finite], oof_fold[finite])
-    fw = fi = None
-    if fold_fits is not None:
-        fw = np.vstack([f.weights[0] for f in fold_fits])
-        fi = np.array([f.intercept[0] for f in fold_fits])
-    else:
-        res_fold = np.full(res.size, -1, dtype=np.int64)
-    names = setting.term_names(prep.features) + prep.categories.term_names()
-    return FittedModel(
-        target=spec.target, features=list(prep.features), scaler=scaler, basis=setting, categories=prep.categories,
-        column_mean=full.mean, column_scale=full.scale, beta=beta, intercept=float(full.intercept[l_idx]),
-        penalty={"kind": spec.penalty.kind, "strength": float(strength), "l1_ratio": ratio},
-        n_train=full.n, ranges=_ranges(prep), leverage_factor=F, max_leverage=float(lev.max()),
-        fold_weights=fw, fold_intercepts=fi, residuals=res, residual_fold=res_fold, residual_weight=g,
-        term_names=names,
-    )
-
-
-def _path(full: Fit, strengths: np.ndarray, strength: float, names: list[str], kind: str) -> dict[str, Any]:
-    return {"strengths": strengths.tolist(), "coefficients": full.beta.tolist(), "terms": names,
-            "chosen_strength": float(strength), "df": full.effective_df().tolist() if kind == "l2" else None}
-
-
-def score_splits(atoms: list[Summary], splits: list[tuple[list[int], list[int]]], spec: TuneSpec,
-                 strengths: np.ndarray, ratios: list[float | None], mae_rows=None
-                 ) -> tuple[np.ndarray, list[list[Fit]]]:
-    """Metric per (l1 ratio, strength, split) from atom summaries, and the fits of every split.
-
-    RMSE and R² come from the validation atoms' summaries alone; MAE needs the rows, through
-    ``mae_rows(test_ids, fit) -> (L,)`` (or NaN placeholders, filled later by a streaming pass)."""
-    metric = spec.selection.metric
-    values = np.empty((len(ratios), strengths.size, len(splits)))
-    all_fits = []
-    for j, (train_ids, test_ids) in enumerate(splits):
-        train = Summary.combine([atoms[i] for i in train_ids])
-        fits = [fit(train, spec.penalty.kind, strengths, r) for r in ratios]
-        all_fits.append(fits)
-        test = Summary.combine([atoms[i] for i in test_ids])
-        for r_i, f in enumerate(fits):
-            if metric == "mae":
-                values[r_i, :, j] = mae_rows(test_ids, f) if mae_rows else np.nan
-            else:
-                sse = test.sse(f.residual_operator())
-                values[r_i, :, j] = _metric_from_sse(metric, sse, test.n, test.total_ss())
-    return values, all_fits
+    ranges = {f: [float(prep.X[:, j].min()), float(prep.X[:, j].max())] for j, f in enumerate(prep.features)}
+    model = build_model(spec, prep.features, scaler, setting, prep.categories, full, l_idx, ratio, F, ranges,
+                        float(lev.max()), thin_residuals(oof_abs[finite], oof_fold[finite]), fold_fits)
+    return model, full
 
 
 class _SharedSearch:
@@ -480,6 +310,7 @@ class _SharedSearch:
         d = prep.X.shape[1]
         self._nested_top = max(nested, key=lambda s: s.n_terms(d)) if nested else None
         self._nested: tuple[np.ndarray, list[Summary]] | None = None
+        self.warnings: list[str] = []
 
     def _atoms(self, setting: BasisSetting) -> tuple[np.ndarray, list[Summary]]:
         """(design in the summaries' column order, summaries of each atom) for one setting."""
@@ -504,11 +335,14 @@ class _SharedSearch:
         if self.spec.selection.metric == "mae":
             def mae_rows(test_ids: list[int], f: Fit) -> np.ndarray:
                 rows = np.concatenate([self.plan.atoms[i] for i in test_ids])
-                return np.abs(y[rows, None] - f.intercept[None, :] - D[rows] @ f.weights.T).mean(axis=0)
+                sae = np.abs(y[rows, None] - f.intercept[None, :] - D[rows] @ f.weights.T).sum(axis=0)
+                return metric_value("mae", rows.size, sae=sae)
         values, _ = score_splits(atoms, self.plan.splits, self.spec, self.strengths, self.ratios, mae_rows)
+        df = setting_df(Summary.combine([atoms[i] for i in self.plan.refit_atoms]), self.spec, self.strengths,
+                        self.ratios)
         if self._nested is not None and all(s.kind == "rbf" for s in self.settings[s_idx + 1:]):
             self._nested = (None, self._nested[1])  # free the largest design once no nested setting is left
-        yield values, None
+        yield values, df, None
 
     def refit(self, s_idx, setting, strength, ratio, strengths, scaler, chosen):
         plan = self.plan
@@ -525,8 +359,6 @@ class _SharedSearch:
         else:
             atoms = [Summary.of(Phi[idx], y[idx]) for idx in plan.atoms]
         full_summary = Summary.combine([atoms[i] for i in plan.refit_atoms])
-        full = fit(full_summary, self.spec.penalty.kind, strengths, ratio)
-        l_idx = int(np.flatnonzero(strengths == strength)[0])
         n = y.size
         oof_pred = np.full(n, np.nan)
         oof_fold = np.full(n, -1, dtype=np.int64)
@@ -539,11 +371,9 @@ class _SharedSearch:
             rows = np.concatenate([plan.atoms[i] for i in test_ids])
             oof_pred[rows] = f.intercept[0] + Phi[rows] @ f.weights[0]
             oof_fold[rows] = len(fold_fits) - 1
-        oof_abs = np.abs(y - oof_pred)
-        model = _model(self.prep, self.spec, scaler, setting, full_summary, full, l_idx, strength, ratio, Phi, fold_fits,
-                       oof_abs, oof_fold)
-        path = _path(full, strengths, strength, model.term_names, self.spec.penalty.kind)
-        return model, path, oof_pred, y - oof_pred
+        model, full = _model(self.prep, self.spec, scaler, setting, full_summary, strengths, strength, ratio, Phi,
+                             fold_fits, np.abs(y - oof_pred), oof_fold)
+        return model, full, oof_pred
 
 
 class _PerFoldSearch(_SharedSearch):
@@ -552,6 +382,11 @@ class _PerFoldSearch(_SharedSearch):
     def __init__(self, spec, prep, settings, strengths, ratios, plan):
         super().__init__(spec, prep, None, settings, strengths, ratios, plan)
         self.oof: dict[int, np.ndarray] = {}
+
+    def _rows(self, atom_ids: list[int]) -> np.ndarray:
+        """Row indices of some atoms in their original order: k-means sees the training rows in the order
+        a scikit-learn Pipeline fit on ``X[train]`` would, so per-fold centres are reproducible."""
+        return np.sort(np.concatenate([self.plan.atoms[i] for i in atom_ids]))
 
     def _split_design(self, setting: BasisSetting, train_rows: np.ndarray):
         sc = InputScaler.fit(self.prep.features, self.prep.X[train_rows])
@@ -569,8 +404,7 @@ class _PerFoldSearch(_SharedSearch):
         metric = self.spec.selection.metric
         values = np.empty((len(self.ratios), self.strengths.size, self.plan.n_splits))
         for j, (train_ids, test_ids) in enumerate(self.plan.splits):
-            tr = np.concatenate([self.plan.atoms[i] for i in train_ids])
-            te = np.concatenate([self.plan.atoms[i] for i in test_ids])
+            tr, te = self._rows(train_ids), self._rows(test_ids)
             Phi = self._split_design(setting, tr)
             train = Summary.of(Phi[tr], y[tr])
             test = Summary.of(Phi[te], y[te])
@@ -578,11 +412,14 @@ class _PerFoldSearch(_SharedSearch):
                 f = fit(train, self.spec.penalty.kind, self.strengths, ratio)
                 if metric == "mae":
                     resid = y[te, None] - f.intercept[None, :] - Phi[te] @ f.weights.T
-                    values[r_i, :, j] = np.abs(resid).mean(axis=0)
+                    values[r_i, :, j] = metric_value("mae", te.size, sae=np.abs(resid).sum(axis=0))
                 else:
-                    values[r_i, :, j] = _metric_from_sse(metric, test.sse(f.residual_operator()), test.n,
-                                                         test.total_ss())
-        yield values, None
+                    values[r_i, :, j] = metric_value(metric, test.n, sse=test.sse(f.residual_operator()),
+                                                     sst=test.total_ss())
+        Xs = InputScaler.fit(self.prep.features, self.prep.X).transform(self.prep.X)
+        df = setting_df(Summary.of(_design(setting, Xs, self.prep.cat_block), y), self.spec, self.strengths,
+                        self.ratios)
+        yield values, df, None
 
     def refit(self, s_idx, setting, strength, ratio, strengths, scaler, chosen):
         y = self.prep.y
@@ -590,21 +427,15 @@ class _PerFoldSearch(_SharedSearch):
         oof_pred = np.full(n, np.nan)
         for j in self.plan.interval_splits:
             train_ids, test_ids = self.plan.splits[j]
-            tr = np.concatenate([self.plan.atoms[i] for i in train_ids])
-            te = np.concatenate([self.plan.atoms[i] for i in test_ids])
+            tr, te = self._rows(train_ids), self._rows(test_ids)
             Phi = self._split_design(setting, tr)
             f = fit(Summary.of(Phi[tr], y[tr]), self.spec.penalty.kind, np.array([strength]), ratio)
             oof_pred[te] = f.intercept[0] + Phi[te] @ f.weights[0]
         Xs = scaler.transform(self.prep.X)
         Phi = _design(setting, Xs, self.prep.cat_block)
-        full_summary = Summary.of(Phi, y)
-        full = fit(full_summary, self.spec.penalty.kind, strengths, ratio)
-        l_idx = int(np.flatnonzero(strengths == strength)[0])
-        oof_abs = np.abs(y - oof_pred)
-        model = _model(self.prep, self.spec, scaler, setting, full_summary, full, l_idx, strength, ratio, Phi, None,
-                       oof_abs, np.zeros(n, dtype=np.int64))
-        path = _path(full, strengths, strength, model.term_names, self.spec.penalty.kind)
-        return model, path, oof_pred, y - oof_pred
+        model, full = _model(self.prep, self.spec, scaler, setting, Summary.of(Phi, y), strengths, strength, ratio,
+                             Phi, None, np.abs(y - oof_pred), np.zeros(n, dtype=np.int64))
+        return model, full, oof_pred
 
 
 class _LooSearch:
@@ -624,6 +455,7 @@ class _LooSearch:
         self.n_splits = n
         self.assignment = np.arange(n)
         self.loo: dict[int, np.ndarray] = {}
+        self.warnings: list[str] = []
 
     def evaluate(self, s_idx, setting):
         y = self.prep.y
@@ -638,37 +470,77 @@ class _LooSearch:
         H = 1.0 / n + (Urows ** 2) @ shrink.T  # (n, L)
         fitted = full.intercept[None, :] + Phi @ full.weights.T  # (n, L)
         e = y[:, None] - fitted
-        loo = e / (1.0 - H)
+        one = H >= 1.0 - LEVERAGE_ONE
+        with np.errstate(divide="ignore", invalid="ignore"):
+            loo = e / (1.0 - H)
+        if one.any():
+            loo[one] = self._refit_rows(Z, Phi, one)[one]
+            lams = ", ".join(f"{v:g}" for v in self.strengths[one.any(axis=0)])
+            self.warnings.append(
+                f"{setting.label()}: {int(one.any(axis=1).sum())} row(s) have leverage 1 at strength {lams} (a "
+                "category level on one row, or fewer rows than basis terms); their leave-one-out errors come from "
+                "explicit refits without the row, as eᵢ/(1 − hᵢᵢ) is 0/0 there")
         self.loo[s_idx] = loo
         metric = self.spec.selection.metric
         sst = float(np.sum((y - y.mean()) ** 2))
+        rn = math.sqrt(n)
         if metric == "rmse":
             mean = np.sqrt(np.mean(loo ** 2, axis=0))
             # delta method: se(RMSE) ≈ sd(e²) / (2 RMSE √n); reported as std = se · √n
             std = np.std(loo ** 2, axis=0) / (2 * np.maximum(mean, 1e-300))
+            se = np.std(loo ** 2, axis=0, ddof=1) / (2 * np.maximum(mean, 1e-300)) / rn
         elif metric == "mae":
             mean = np.mean(np.abs(loo), axis=0)
             std = np.std(np.abs(loo), axis=0)
+            se = np.std(np.abs(loo), axis=0, ddof=1) / rn
         else:
             mean = 1.0 - np.sum(loo ** 2, axis=0) / sst
             std = np.std(loo ** 2, axis=0) * n / sst
-        df = full.effective_df() + 1.0
+            se = np.std(loo ** 2, axis=0, ddof=1) * n / sst / rn
+        df = full.effective_df()
         rss = np.sum(e ** 2, axis=0)
-        gcv = (rss / n) / (1.0 - df / n) ** 2
+        with np.errstate(divide="ignore", invalid="ignore"):
+            gcv = (rss / n) / (1.0 - (df + 1.0) / n) ** 2  # the intercept counts in tr(H); inf when df + 1 = n
         L = self.strengths.size
         values = np.empty((1, L, 1))
         values[0, :, 0] = mean
-        yield values, {"gcv": gcv[None, :], "df": df[None, :], "_std": std[None, :]}
+        yield values, df[None, :], {"gcv": gcv[None, :], "_std": std[None, :], "_se": se[None, :]}
+
+    def _refit_rows(self, Z: np.ndarray, Phi: np.ndarray, one: np.ndarray) -> np.ndarray:
+        """Leave-one-out residuals by explicit refits, for the (row, strength) pairs marked in ``one``:
+        the same fit as the closed form (columns scaled as on all rows, intercept refit unpenalized,
+        minimum-norm solution at strength 0) on the other n − 1 rows."""
+        y = self.prep.y
+        n, p = Z.shape
+        rows = np.flatnonzero(one.any(axis=1))
+        cost = rows.size * (n - 1) * p * min(n - 1, p)
+        if cost > MAX_LOO_REFIT_FLOPS:
+            raise InvalidSpec(
+                f"exact leave-one-out finds {rows.size} rows with leverage 1 at strength "
+                f"{self.strengths[one.any(axis=0)].min():g} (more basis terms than rows, or category levels on "
+                "single rows), and refitting each without its row is too costly here; use a positive smallest "
+                "strength, or cv.scheme kfold",
+                errors=[{"field": "penalty.strengths", "value": float(self.strengths[0]),
+                         "message": "leverage 1 under leave-one-out"}])
+        Z = np.where(np.ptp(Phi, axis=0) > 0, Z, 0.0)  # constant columns carry nothing, as in the closed form
+        out = np.full(one.shape, np.nan)
+        for i in rows:
+            keep = np.arange(n) != i
+            Zk, yk = Z[keep], y[keep]
+            mu = Zk.mean(axis=0)
+            U, sv, Vt = np.linalg.svd(Zk - mu, full_matrices=False)
+            ok = sv > np.finfo(float).eps * max(n - 1, p) * (sv[0] if sv.size else 0.0)
+            U, sv, Vt = U[:, ok], sv[ok], Vt[ok]
+            uty = U.T @ (yk - yk.mean())
+            for l in np.flatnonzero(one[i]):
+                beta = Vt.T @ (sv / (sv ** 2 + self.strengths[l]) * uty)
+                out[i, l] = y[i] - (yk.mean() + (Z[i] - mu) @ beta)
+        return out
 
     def refit(self, s_idx, setting, strength, ratio, strengths, scaler, chosen):
         y = self.prep.y
         Phi = _design(setting, self.Xs, self.prep.cat_block)
-        full_summary = Summary.of(Phi, y)
-        full = fit(full_summary, "l2", strengths, None)
-        l_idx = int(np.flatnonzero(strengths == strength)[0])
-        loo = self.loo[s_idx][:, l_idx]
-        oof_pred = y - loo
-        model = _model(self.prep, self.spec, scaler, setting, full_summary, full, l_idx, strength, None, Phi, None,
-                       np.abs(loo), np.zeros(y.size, dtype=np.int64))
-        path = _path(full, strengths, strength, model.term_names, "l2")
-        return model, path, oof_pred, loo
+        loo = self.loo[s_idx][:, int(np.flatnonzero(strengths == strength)[0])]
+        model, full = _model(self.prep, self.spec, scaler, setting, Summary.of(Phi, y), strengths, strength, None,
+                             Phi, None, np.abs(loo), np.zeros(y.size, dtype=np.int64))
+        return model, full, y - loo

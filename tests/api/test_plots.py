@@ -2,8 +2,8 @@
 
 Reference values come from the JSON routes (``/cv``, ``/path``) and numpy, never from the figure code:
 the SVG must name the chosen λ and basis the CV table names, have one series per basis setting (× l1
-ratio), and its bands must be mean ± std/√splits (the standard error of a mean, s/√n: common practice,
-any statistics handbook).
+ratio), and its bands must be mean ± s/√splits with s the sample standard deviation of the split values
+(the standard error of a mean; Hastie, Tibshirani & Friedman, ESL 2nd ed., §7.10).
 """
 
 from __future__ import annotations
@@ -129,8 +129,10 @@ def test_cv_series_and_bands_match_the_table(trained):
         i = line.get_gid().removeprefix("cv-series-")
         verts = bands[f"cv-band-{i}"].get_paths()[0].vertices
         for r in rows:
-            # s/√n with the spread the engine recorded for the row (the one its one-SE rule uses).
-            se = r["std"] / np.sqrt(len(r["folds"]))
+            # the standard error the engine recorded for the row (the one its one-SE rule uses):
+            # sample standard deviation (ddof = 1) of the split values over √splits (ESL §7.10)
+            se = np.std(r["folds"], ddof=1) / np.sqrt(len(r["folds"]))
+            assert r["se"] == pytest.approx(se, rel=1e-12)
             ys = verts[np.isclose(verts[:, 0], r["strength"], rtol=1e-12), 1]
             np.testing.assert_allclose([ys.min(), ys.max()], [r["mean"] - se, r["mean"] + se], rtol=1e-9)
 
