@@ -1,0 +1,250 @@
+"""``tikhon serve --workers N``: several API processes on one socket under one supervisor.
+
+Each test starts the real command line (``tikhon serve --workers 2``) in its own process group on a
+loopback port and reads the supervisor's JSON log to learn which process runs in which slot. Requests
+go on fresh connections (the kernel hands each new connection to whichever process accepts it first)
+until every process has answered; ``X-Tikhon-Process`` says which one did. Every loop is bounded in
+count; no test asserts how fast anything was.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import inspect
+import json
+import os
+import signal
+import subprocess
+import sys
+import threading
+import time
+from pathlib import Path
+
+import httpx
+import pytest
+from prometheus_client.parser import text_string_to_metric_families
+
+
+PROCESSES = 2
+
+
+class Supervised:
+    """``tikhon serve --workers N`` in a fresh interpreter (its own session), log kept in a file."""
+
+    def __init__(self, rk, root: Path, *args: str, **settings):
+        self.port = rk.free_port()
+        self.settings = rk.base_settings(root, port=self.port, **settings)
+        self.base = f"http://{rk.LOOPBACK}:{self.port}"
+        self.log_path = root / f"serve-{time.monotonic_ns()}.log"
+        self._log = open(self.log_path, "ab")
+        code = "import sys; from service.cli import main; sys.exit(main(sys.argv[1:]))"
+        self.proc = subprocess.Popen([sys.executable, "-c", code, "serve", "--workers", str(PROCESSES), *args],
+                                     env=rk.settings_env(self.settings), cwd=str(rk.REPO), stdout=self._log,
+                                     stderr=subprocess.STDOUT, start_new_session=True)
+
+    def events(self, msg: str) -> list[dict]:
+        out = []
+        for line in self.log_path.read_text(errors="replace").splitlines():
+            if line.startswith("{"):
+                with contextlib.suppress(ValueError):
+                    record = json.loads(line)
+                    if record.get("msg") == msg:
+                        out.append(record)
+        return out
+
+    def wait_for(self, msg: str, count: int = 1, deadline_s: float = 120.0) -> list[dict]:
+        """Wait until the log holds ``count`` records with ``msg`` (a start-up wait, not a timing check)."""
+        end = time.monotonic() + deadline_s
+        while True:
+            found = self.events(msg)
+            if len(found) >= count:
+                return found
+            if self.proc.poll() is not None or time.monotonic() > end:
+                raise AssertionError(f"no {count} x {msg!r} in the log (exit {self.proc.poll()}):\n"
+                                     f"{self.log_path.read_text(errors='replace')[-4000:]}")
+            time.sleep(0.05)
+
+    def slot_pid(self, slot: int) -> int:
+        return [e["pid"] for e in self.events("API process started") if e["slot"] == slot][-1]
+
+    def stop(self) -> int:
+        if self.proc.poll() is None:
+            self.proc.send_signal(signal.SIGTERM)
+            try:
+                self.proc.wait(60)
+            except subprocess.TimeoutExpired:
+                pass
+        with contextlib.suppress(ProcessLookupError):
+            os.killpg(self.proc.pid, signal.SIGKILL)
+        self.proc.wait(30)
+        self._log.close()
+        return self.proc.returncode
+
+
+@contextlib.contextmanager
+def supervised(rk, root: Path, *args: str, **settings):
+    srv = Supervised(rk, root, *args, **settings)
+    try:
+        srv.wait_for("serving")
+        yield srv
+    finally:
+        srv.stop()
+
+
+def sweep(call, *, processes: int = PROCESSES, each: int = 3, limit: int = 800) -> dict[int, list[httpx.Response]]:
+    """Call ``call()`` (one request on a fresh connection) until every process answered ``each`` times."""
+    seen: dict[int, list[httpx.Response]] = {}
+    for _ in range(limit):
+        r = call()
+        seen.setdefault(int(r.headers["x-tikhon-process"]), []).append(r)
+        if len(seen) >= processes and all(len(v) >= each for v in seen.values()):
+            return seen
+    raise AssertionError(f"{limit} requests reached only {sorted((k, len(v)) for k, v in seen.items())}")
+
+
+def catalog_ttl_s() -> float:
+    """The store's per-process catalog cache, as documented on ``Store`` (README: "plus the store's
+    one-second catalog cache")."""
+    from service.store import Store
+
+    return float(inspect.signature(Store.__init__).parameters["catalog_ttl_s"].default)
+
+
+@pytest.fixture()
+def two_versions(rk, tmp_path):
+    """A store holding 'pumps' version 1 (live) and version 2 (published, not live), and an admin key."""
+    settings = rk.base_settings(tmp_path)
+    store = rk.open_store(settings)
+    try:
+        rk.publish_demo(store, "pumps", seed=1, live=True)
+        rk.publish_demo(store, "pumps", seed=2, live=False)
+        key_id, secret = store.keys.create(["admin"], "test admin")
+        other_id, other = store.keys.create(["predict"], "to be revoked")
+    finally:
+        store.close()
+    return {"admin": secret, "victim_id": other_id, "victim": other}
+
+
+ROW = {"rows": [{"flow_lps": 60.0, "head_m": 30.0}]}
+
+
+def test_live_switch_and_key_revocation_reach_every_process(rk, tmp_path, two_versions):
+    live_s, auth_s = 1.0, 1.0
+    admin = {"Authorization": f"Bearer {two_versions['admin']}"}
+    with supervised(rk, tmp_path, "--no-worker", live_cache_s=live_s, auth_cache_s=auth_s) as srv:
+        predict = lambda: httpx.post(f"{srv.base}/v1/models/pumps/predict", json=ROW, headers=admin, timeout=30)
+        before = sweep(predict)
+        assert len(before) == PROCESSES
+        assert {r.json()["model"]["version"] for rs in before.values() for r in rs} == {1}
+
+        switch = httpx.put(f"{srv.base}/v1/models/pumps/live", json={"version": 2, "reason": "cross-process test"},
+                           headers=admin, timeout=30)
+        assert switch.status_code == 200, switch.text
+        switched_at = time.monotonic()
+        # The documented bound (README "Running with PostgreSQL and several replicas"): a change made through
+        # one process is seen by the others within TIKHON_LIVE_CACHE_S plus the store's catalog cache.
+        time.sleep(max(0.0, switched_at + live_s + catalog_ttl_s() + 0.05 - time.monotonic()))
+        after = sweep(predict)
+        versions = {pid: sorted({r.json()["model"]["version"] for r in rs}) for pid, rs in after.items()}
+        assert versions == {pid: [2] for pid in after}, versions
+        # Every answer names version 2 and carries its numbers: the pinned route of version 2 agrees.
+        pinned = httpx.post(f"{srv.base}/v1/models/pumps/versions/2/predict", json=ROW, headers=admin, timeout=30)
+        assert {r.json()["predictions"][0]["value"] for rs in after.values() for r in rs} == {
+            pinned.json()["predictions"][0]["value"]}
+
+        victim = {"Authorization": f"Bearer {two_versions['victim']}"}
+        as_victim = lambda: httpx.post(f"{srv.base}/v1/models/pumps/predict", json=ROW, headers=victim, timeout=30)
+        assert {r.status_code for rs in sweep(as_victim).values() for r in rs} == {200}
+        revoke = httpx.delete(f"{srv.base}/v1/keys/{two_versions['victim_id']}", headers=admin, timeout=30)
+        assert revoke.status_code in (200, 204), revoke.text
+        revoked_at = time.monotonic()
+        # README: a revoked key stops working everywhere within TIKHON_AUTH_CACHE_S plus the catalog cache.
+        time.sleep(max(0.0, revoked_at + auth_s + catalog_ttl_s() + 0.05 - time.monotonic()))
+        refused = sweep(as_victim)
+        assert {pid: sorted({r.status_code for r in rs}) for pid, rs in refused.items()} == {
+            pid: [401] for pid in refused}
+
+
+def scrape(base: str) -> tuple[int, dict[tuple, float]]:
+    r = httpx.get(f"{base}/metrics", timeout=30)
+    assert r.status_code == 200
+    samples = {}
+    for family in text_string_to_metric_families(r.text):
+        for s in family.samples:
+            samples[(s.name, tuple(sorted(s.labels.items())))] = s.value
+    return int(r.headers["x-tikhon-process"]), samples
+
+
+def test_metrics_are_summed_over_processes(rk, tmp_path, two_versions):
+    admin = {"Authorization": f"Bearer {two_versions['admin']}"}
+    route = ("tikhon_http_requests_total",
+             (("method", "POST"), ("route", "/v1/models/{name}/predict"), ("status", "200")))
+    rows = ("tikhon_predictions_total", (("model", "pumps"), ("version", "1")))
+    with supervised(rk, tmp_path, "--no-worker") as srv:
+        answered = sweep(lambda: httpx.post(f"{srv.base}/v1/models/pumps/predict", json=ROW, headers=admin,
+                                            timeout=30))
+        sent = sum(len(v) for v in answered.values())
+        assert len(answered) == PROCESSES and sent >= 2 * PROCESSES
+        # Each process counted only its own share, yet every scrape, whichever process answers it, shows
+        # the sum; scraping until every process has answered, every figure is the same.
+        scrapes = sweep(lambda: httpx.get(f"{srv.base}/metrics", timeout=30), each=2)
+        for pid, responses in scrapes.items():
+            for r in responses:
+                samples = {(s.name, tuple(sorted(s.labels.items()))): s.value
+                           for f in text_string_to_metric_families(r.text) for s in f.samples}
+                assert samples[route] == sent, (pid, samples[route], sent)
+                assert samples[rows] == sent, (pid, samples[rows], sent)
+
+        # A process that dies keeps its counts in the sum: kill slot 1, let the replacement start.
+        dead = srv.slot_pid(1)
+        os.kill(dead, signal.SIGKILL)
+        srv.wait_for("API process ready", count=PROCESSES + 1)
+        assert srv.slot_pid(1) != dead
+        scrapes = sweep(lambda: httpx.get(f"{srv.base}/metrics", timeout=30), each=2)
+        assert dead not in scrapes
+        for responses in scrapes.values():
+            for r in responses:
+                samples = {(s.name, tuple(sorted(s.labels.items()))): s.value
+                           for f in text_string_to_metric_families(r.text) for s in f.samples}
+                assert samples[route] == sent
+
+
+def test_exactly_one_training_worker_and_restart(rk, tmp_path, two_versions):
+    admin = {"Authorization": f"Bearer {two_versions['admin']}"}
+    with supervised(rk, tmp_path) as srv:
+        started = srv.wait_for("worker started")
+        srv.wait_for("API process ready", count=PROCESSES)
+        slot0 = srv.slot_pid(0)
+        # worker ids are "<host>:<pid>:<random>" (service.worker.Worker)
+        assert [int(e["worker_id"].split(":")[1]) for e in started] == [slot0]
+        assert [e["training_worker"] for e in srv.events("API process started")] == [True] + [False] * (PROCESSES - 1)
+
+        # The one worker trains: a job submitted through any process ends succeeded.
+        data = rk.csv_text(rk.demo_rows(300, seed=4))
+        (tmp_path / "data" / "m.csv").write_text(data)
+        job = httpx.post(f"{srv.base}/v1/models/pumps/trainings", headers=admin, timeout=30,
+                         json={"data": {"source": "m.csv"}, "spec": rk.QUICK_SPEC, "promote": "never"})
+        assert job.status_code == 202, job.text
+        end = time.monotonic() + 300
+        while (state := httpx.get(f"{srv.base}/v1/trainings/{job.json()['id']}", headers=admin,
+                                  timeout=30).json())["state"] not in ("succeeded", "failed", "cancelled"):
+            assert time.monotonic() < end, state
+            time.sleep(0.1)
+        assert state["state"] == "succeeded" and state["version"] == 3, state
+
+        # Kill the worker's process: its slot gets a replacement, which runs the (only) worker again;
+        # the other slot never gets one.
+        os.kill(slot0, signal.SIGKILL)
+        srv.wait_for("worker started", count=2)
+        assert srv.slot_pid(0) != slot0
+        pids = [int(e["worker_id"].split(":")[1]) for e in srv.events("worker started")]
+        assert pids == [slot0, srv.slot_pid(0)]
+        ended = srv.events("API process ended; starting a replacement")
+        assert [(e["slot"], e["pid"], e["ended_with"]) for e in ended] == [(0, slot0, "signal SIGKILL")]
+
+
+def test_no_worker_means_none(rk, tmp_path, two_versions):
+    with supervised(rk, tmp_path, "--no-worker") as srv:
+        srv.wait_for("API process ready", count=PROCESSES)
+        assert srv.events("worker started") == []
+        assert [e["training_worker"] for e in srv.events("API process started")] == [False] * PROCESSES
