@@ -62,6 +62,8 @@ log = logging.getLogger("tikhon.api.supervisor")
 
 _EARLY_S = 10.0  # a process that dies sooner than this after getting ready counts as a failed start
 _KILL_AFTER_GRACE_S = 10.0
+_LISTEN_BACKLOG = 2048  # the kernel's queue of connections not yet accepted by any process
+_ACCEPT_BATCH = 1  # connections one process accepts per wake-up (see child_main)
 _CHILD_CODE = "from service.api.supervisor import child_main; child_main()"
 
 
@@ -126,7 +128,7 @@ def process_count(workers: int | str) -> int:
 def _listen(host: str, port: int) -> socket.socket:
     family = socket.AF_INET6 if ":" in host else socket.AF_INET
     try:
-        sock = socket.create_server((host.strip("[]"), port), family=family, backlog=2048)
+        sock = socket.create_server((host.strip("[]"), port), family=family, backlog=_LISTEN_BACKLOG)
     except OSError as exc:
         raise TikhonError(f"cannot listen on {host}:{port}: {exc.strerror or exc}; choose another port "
                           "(--port / TIKHON_PORT) or stop what holds it.") from None
@@ -327,13 +329,22 @@ def child_main() -> None:
         async def startup(self, sockets=None):
             await super().startup(sockets=sockets)
             if self.started:
+                # asyncio set the shared queue to ``config.backlog`` (the accept batch, below); give the
+                # kernel queue its full length back for every process.
+                sock.listen(_LISTEN_BACKLOG)
                 os.write(ready_fd, b"r")
                 os.close(ready_fd)
 
     app, store, worker = build(settings, embedded_worker=cfg["worker"], multiprocess_dir=cfg["metrics_dir"],
                                process_header=True)
+    # asyncio accepts up to ``backlog`` waiting connections per wake-up of the listening socket. With one
+    # shared socket, the first process to wake would take a whole burst of new connections (a load
+    # generator's or a proxy's pool opening at once) and keep them for their keep-alive life, leaving the
+    # others idle. Accepting one connection per wake-up lets every woken process take its share, and a
+    # busy process (slower to wake) takes fewer.
     config = uvicorn.Config(app, log_config=None, access_log=False, log_level=settings.log_level.lower(),
-                            server_header=False, timeout_graceful_shutdown=settings.shutdown_grace_s)
+                            server_header=False, timeout_graceful_shutdown=settings.shutdown_grace_s,
+                            backlog=_ACCEPT_BATCH)
     server = _Server(config)
     # uvicorn re-raises the signal that stopped it once it has shut down; a no-op handler lets this
     # process then stop its worker and close the store, and exit with 0.
