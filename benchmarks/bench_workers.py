@@ -201,8 +201,11 @@ def main() -> None:
           f"1 process {one['rps']:.0f} req/s (p99 {one['p99_ms']:.1f} ms), {a.workers} processes "
           f"{many['rps']:.0f} req/s (p99 {many['p99_ms']:.1f} ms). wrk ran on the same {out['cores']}-core "
           f"machine and competed for its cores (it used {many['wrk_cpu_cores']:.2f} cores in the best "
-          f"{a.workers}-process round); load average before the run "
-          f"{' '.join(f'{x:.2f}' for x in out['loadavg'])}.")
+          f"{a.workers}-process round); the server processes used {sum(one['server_cpu_cores']):.2f} cores (1 process) "
+          f"and {sum(many['server_cpu_cores']):.2f} cores ({a.workers} processes: "
+          f"{', '.join(f'{c:.2f}' for c in many['server_cpu_cores'])}); load average before the run "
+          f"{' '.join(f'{x:.2f}' for x in out['loadavg'])}. A scaling figure means something only when the "
+          f"{a.workers}-process round got more CPU than the 1-process round.")
     print(f"workers_scaling={out['scaling']:.3f}")
 
 

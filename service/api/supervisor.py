@@ -83,18 +83,18 @@ def usable_cores() -> int:
     return max(1, cores)
 
 
-def _cgroup_cpu_quota() -> float | None:
+def _cgroup_cpu_quota(proc_cgroup: Path = Path("/proc/self/cgroup"), root: Path = Path("/sys/fs/cgroup")) -> float | None:
     """The tightest CPU quota (in cores) over this process's cgroup and its parents, or None."""
     found: list[float] = []
     try:
-        lines = Path("/proc/self/cgroup").read_text().splitlines()
+        lines = proc_cgroup.read_text().splitlines()
     except OSError:
         return None
     for line in lines:
         hier, _, rest = line.partition(":")
         controllers, _, path = rest.partition(":")
         if hier == "0" and controllers == "":  # cgroup v2: cpu.max is "<quota|max> <period>"
-            base = Path("/sys/fs/cgroup")
+            base = root
             parts = [p for p in path.split("/") if p]
             for depth in range(len(parts), -1, -1):
                 try:
@@ -104,7 +104,7 @@ def _cgroup_cpu_quota() -> float | None:
                 if quota != "max" and int(period) > 0:
                     found.append(int(quota) / int(period))
         elif "cpu" in controllers.split(","):  # cgroup v1 (as mounted in a container)
-            for base in (Path("/sys/fs/cgroup/cpu,cpuacct"), Path("/sys/fs/cgroup/cpu")):
+            for base in (root / "cpu,cpuacct", root / "cpu"):
                 try:
                     quota = int((base / "cpu.cfs_quota_us").read_text())
                     period = int((base / "cpu.cfs_period_us").read_text())

@@ -386,3 +386,59 @@ def test_sigterm_finishes_the_request_in_flight(rk, tmp_path, two_versions):
         assert srv.events("stopped")
     finally:
         srv.stop()
+
+
+def test_a_killed_supervisor_takes_its_processes_with_it(rk, tmp_path, two_versions):
+    srv = Supervised(rk, tmp_path, "--no-worker")
+    try:
+        srv.wait_for("serving")
+        children = [srv.slot_pid(s) for s in range(PROCESSES)]
+        os.kill(srv.proc.pid, signal.SIGKILL)
+        srv.proc.wait(30)
+        end = time.monotonic() + 60  # each process checks for its supervisor every second
+        while any(Path(f"/proc/{pid}").exists() for pid in children):
+            assert time.monotonic() < end, [Path(f"/proc/{p}/status").read_text()[:200] for p in children]
+            time.sleep(0.1)
+        assert len(srv.events("the supervisor is gone; stopping")) == PROCESSES
+    finally:
+        srv.stop()
+
+
+def test_workers_setting_is_checked(rk, tmp_path):
+    env = rk.settings_env(rk.base_settings(tmp_path, workers="many"))
+    run = subprocess.run([sys.executable, "-c", "import sys; from service.cli import main; sys.exit(main(sys.argv[1:]))",
+                          "serve"], env=env, cwd=str(rk.REPO), capture_output=True, text=True, timeout=120)
+    assert run.returncode == 2, run
+    assert "TIKHON_WORKERS" in run.stderr and "'auto'" in run.stderr and "many" in run.stderr, run.stderr
+    assert len(run.stderr.strip().splitlines()) == 1, run.stderr
+
+
+def test_auto_counts_the_cores_this_process_may_use(rk, tmp_path):
+    from service.api.supervisor import _cgroup_cpu_quota, process_count
+
+    # One core by CPU affinity (sched_setaffinity(2)), in a child so this process keeps its own.
+    code = ("import os; os.sched_setaffinity(0, {min(os.sched_getaffinity(0))}); "
+            "from service.api.supervisor import process_count; print(process_count('auto'))")
+    one = subprocess.run([sys.executable, "-c", code], env=rk.settings_env({}), cwd=str(rk.REPO),
+                         capture_output=True, text=True, timeout=120)
+    assert one.stdout.strip() == "1", one
+    assert process_count(3) == 3
+    assert 1 <= process_count("auto") <= len(os.sched_getaffinity(0))
+
+    # cgroup v2: cpu.max holds "$MAX $PERIOD" or "max $PERIOD" (Linux Documentation/admin-guide/cgroup-v2.rst);
+    # the tightest quota over the process's cgroup and its parents counts.
+    (tmp_path / "proc").write_text("0::/kubepods/pod1\n")
+    (tmp_path / "sys" / "kubepods" / "pod1").mkdir(parents=True)
+    (tmp_path / "sys" / "kubepods" / "pod1" / "cpu.max").write_text("max 100000\n")
+    (tmp_path / "sys" / "kubepods" / "cpu.max").write_text("150000 100000\n")
+    assert _cgroup_cpu_quota(tmp_path / "proc", tmp_path / "sys") == 1.5
+    (tmp_path / "sys" / "kubepods" / "cpu.max").write_text("max 100000\n")
+    assert _cgroup_cpu_quota(tmp_path / "proc", tmp_path / "sys") is None
+    # cgroup v1: cpu.cfs_quota_us / cpu.cfs_period_us, -1 meaning no quota (cgroup-v1/cfs-bandwidth docs).
+    (tmp_path / "proc1").write_text("4:cpu,cpuacct:/docker/abc\n")
+    (tmp_path / "sys1" / "cpu").mkdir(parents=True)
+    (tmp_path / "sys1" / "cpu" / "cpu.cfs_quota_us").write_text("250000\n")
+    (tmp_path / "sys1" / "cpu" / "cpu.cfs_period_us").write_text("100000\n")
+    assert _cgroup_cpu_quota(tmp_path / "proc1", tmp_path / "sys1") == 2.5
+    (tmp_path / "sys1" / "cpu" / "cpu.cfs_quota_us").write_text("-1\n")
+    assert _cgroup_cpu_quota(tmp_path / "proc1", tmp_path / "sys1") is None
