@@ -346,10 +346,14 @@ def child_main() -> None:
                             server_header=False, timeout_graceful_shutdown=settings.shutdown_grace_s,
                             backlog=_ACCEPT_BATCH)
     server = _Server(config)
-    # uvicorn re-raises the signal that stopped it once it has shut down; a no-op handler lets this
-    # process then stop its worker and close the store, and exit with 0.
+    # Before uvicorn installs its own handlers (and after it restores these), a stop signal just asks the
+    # server to stop: a SIGTERM that arrives while the process is still starting is not lost, and the one
+    # uvicorn re-raises after its shutdown lets this process stop its worker, close the store and exit 0.
+    def stop_requested(signum, frame):  # noqa: ARG001
+        server.should_exit = True
+
     for sig in (signal.SIGTERM, signal.SIGINT):
-        signal.signal(sig, lambda *_: None)
+        signal.signal(sig, stop_requested)
     threading.Thread(target=_watch_parent, args=(cfg["parent"], server), daemon=True, name="supervisor-watch").start()
     if worker is not None:
         worker.start()
