@@ -134,7 +134,7 @@ def run_wrk(url: str, script: Path, threads: int, connections: int, duration_s: 
     scale = {"us": 1e-3, "ms": 1.0, "s": 1e3}
     return {
         "rps": rps, "requests": total, "non_2xx": int(bad.group(1)) if bad else 0,
-        "socket_errors": sum(int(g) for g in errors.groups()) if errors else 0,
+        "socket_errors": dict(zip(("connect", "read", "write", "timeout"), map(int, errors.groups()))) if errors else {},
         "p99_ms": float(p99.group(1)) * scale[p99.group(2)] if p99 else float("nan"),
         "wrk_cpu_cores": ((after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)) / duration_s,
     }
@@ -176,7 +176,8 @@ def measure_workers_scaling(*, counts: tuple[int, ...] = (1, 2), duration_s: flo
                     fig.update(processes=n, round=i + 1)
                     results.append(fig)
                     log(f"round {i + 1}, {n} process(es): {fig['rps']:.0f} req/s, p99 {fig['p99_ms']:.1f} ms, "
-                        f"non-2xx {fig['non_2xx']}, socket errors {fig['socket_errors']}; CPU cores used: "
+                        f"non-2xx {fig['non_2xx']}, socket errors {fig['socket_errors'] or 0} (wrk counts an answer "
+                        f"slower than 2 s as a timeout); CPU cores used: "
                         f"wrk {fig['wrk_cpu_cores']:.2f}, server processes {fig['server_cpu_cores']}")
         finally:
             for server in servers.values():
