@@ -3,7 +3,8 @@
 Every command except ``serve`` and ``worker`` talks to a server through ``service.client.Client``
 (``--url`` / ``TIKHON_URL``, ``--key`` / ``TIKHON_KEY``). ``serve`` and ``worker`` start the service
 itself; ``keys create --local`` writes the first key straight into the catalog when no server can be
-reached yet (the bootstrap of a server that must listen beyond loopback).
+reached yet (the bootstrap of a server that must listen beyond loopback), and ``keys revoke --local``
+revokes a key there (the only way to revoke the last admin key).
 
 Exit codes: 0 ok; 1 the operation failed (a training job failed or was cancelled, the server could not
 be reached or answered 5xx); 2 bad usage (a wrong option or argument, or a 4xx answer: the request
@@ -38,6 +39,8 @@ app = typer.Typer(name="tikhon", add_completion=False, no_args_is_help=True, pre
                   rich_markup_mode=None, help="Tune, version and serve regularized regression models.")
 keys_app = typer.Typer(no_args_is_help=True, help="API keys: create, list, revoke (admin scope).")
 app.add_typer(keys_app, name="keys")
+store_app = typer.Typer(no_args_is_help=True, help="The local store folder: recover a lost catalog.")
+app.add_typer(store_app, name="store")
 
 
 class UsageProblem(Exception):
@@ -661,8 +664,11 @@ def _num(v: Any) -> str:
 
 
 def _write_predictions(out: Path, answer: dict, with_interval: bool) -> None:
-    """Write atomically (temporary name, then rename). CSV numbers are shortest round-trip decimals."""
+    """Write atomically (temporary name, then rename). CSV numbers are shortest round-trip decimals (a
+    null value an empty cell); text cells are neutralized against formula injection."""
     import csv as _csv
+
+    from service.csvcells import number_cell, text_cell
 
     out.parent.mkdir(parents=True, exist_ok=True)
     tmp = out.with_name(out.name + ".part")
@@ -678,8 +684,9 @@ def _write_predictions(out: Path, answer: dict, with_interval: bool) -> None:
                 bounds = []
                 if with_interval:
                     lo, hi = p.get("interval") or (None, None)
-                    bounds = ["" if lo is None else repr(lo), "" if hi is None else repr(hi)]
-                w.writerow([model["name"], model["version"], repr(p["value"]), *bounds, "; ".join(p.get("warnings") or [])])
+                    bounds = [number_cell(lo), number_cell(hi)]
+                w.writerow([text_cell(model["name"]), model["version"], number_cell(p["value"]), *bounds,
+                            text_cell("; ".join(p.get("warnings") or []))])
     os.replace(tmp, out)
 
 
@@ -837,7 +844,7 @@ def prune(
 @keys_app.command("create")
 def keys_create(
     ctx: typer.Context,
-    scope: Annotated[list[str], typer.Option("--scope", help="predict, train or admin; repeatable.")],
+    scope: Annotated[list[str], typer.Option("--scope", help="predict, train, admin or metrics; repeatable.")],
     label: Annotated[str, typer.Option(help="Who or what uses the key.")] = "",
     local: Annotated[bool, typer.Option("--local", help="Write the key into the catalog of this machine's settings "
                                         "(TIKHON_STORE / TIKHON_DATABASE_URL) without a server: the bootstrap of a "
@@ -877,14 +884,60 @@ def keys_list(ctx: typer.Context) -> None:
 
 
 @keys_app.command("revoke")
-def keys_revoke(ctx: typer.Context, key_id: Annotated[str, typer.Argument(help="The key id ('tikhon keys list').")]) -> None:
-    """Revoke an API key."""
-    with _client(ctx) as tk:
-        entry = tk.revoke_key(key_id)
+def keys_revoke(
+    ctx: typer.Context,
+    key_id: Annotated[str, typer.Argument(help="The key id ('tikhon keys list').")],
+    local: Annotated[bool, typer.Option("--local", help="Revoke in the catalog of this machine's settings "
+                                        "(TIKHON_STORE / TIKHON_DATABASE_URL) without a server; the only way to "
+                                        "revoke the last admin key. A running server stays closed: it then "
+                                        "answers 401 until a new key is made.")] = False,
+) -> None:
+    """Revoke an API key (the last admin key only with --local)."""
+    if local:
+        from service.store import Store
+
+        with Store(_settings()) as store:
+            entry = store.keys.revoke(key_id)
+    else:
+        with _client(ctx) as tk:
+            entry = tk.revoke_key(key_id)
     if _opts(ctx).json:
         _print_json(entry)
     else:
         _out.print(f"key {entry['key_id']} revoked at {entry.get('revoked_at')}")
+
+
+# ----------------------------------------------------------------------------------------------------
+# the local store
+
+
+@store_app.command("recover")
+def store_recover(
+    ctx: typer.Context,
+    live: Annotated[str, typer.Option("--live", help="'newest': make the newest recovered version of each model "
+                                      "that has no live version live (recorded in its history); 'none': leave "
+                                      "every model without a live version.")] = "none",
+    dry_run: Annotated[bool, typer.Option("--dry-run", help="Verify and list what would be registered; write "
+                                          "nothing.")] = False,
+) -> None:
+    """Register the version folders of this machine's store (TIKHON_STORE) that its catalog
+    (TIKHON_DATABASE_URL) does not list, after verifying each one fully. Nothing is moved or deleted."""
+    from service.store import Store
+
+    with Store(_settings()) as store:
+        report = store.recover(dry_run=dry_run, live=live)
+    if _opts(ctx).json:
+        _print_json(report)
+    else:
+        verb = "would register" if dry_run else "registered"
+        done = ", ".join(f"{r['name']}/{r['version']}" for r in report["registered"]) or "nothing"
+        _out.print(f"{verb} {len(report['registered'])} version(s): {done}")
+        for r in report["live"]:
+            _out.print(f"{r['name']}: version {r['version']} is live")
+        for r in report["refused"]:
+            _err.print(f"refused {r['path']}: {r['reason']}")
+    if report["refused"]:
+        raise typer.Exit(1)
 
 
 # ----------------------------------------------------------------------------------------------------

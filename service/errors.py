@@ -75,6 +75,11 @@ class Conflict(TikhonError):
     title = "Conflict"
 
 
+class JobTaken(Conflict):
+    """A worker no longer holds the training job it worked on (re-queued to another worker, or the job
+    already published); its result is dropped and the job's current holder decides."""
+
+
 class IntegrityFailure(TikhonError):
     """A stored artifact failed its checksum, format-version or no-pickle check."""
 
@@ -87,6 +92,16 @@ class StorageFailure(TikhonError):
 
     slug = "storage-failure"
     title = "Storage failure"
+
+
+class CatalogUnavailable(StorageFailure):
+    """The catalog cannot be used right now: its database does not answer (stopped, restarting,
+    unreachable), or its file was deleted, emptied or replaced while the service ran; nothing was changed.
+    Temporary: retry after the ``Retry-After`` seconds. Predictions of versions a replica already serves
+    keep answering meanwhile, on stale knowledge, for a bounded time (``TIKHON_STALE_OK_S``)."""
+
+    slug = "catalog-unavailable"
+    title = "Catalog unavailable"
 
 
 class Cancelled(TikhonError):

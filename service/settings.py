@@ -71,6 +71,11 @@ class Settings(BaseSettings):
         1.0, ge=0, description="Seconds a key check (and 'does any key exist') is cached per process; "
         "a revoked key stops working after at most this long. 0 disables the cache."
     )
+    stale_ok_s: float = Field(
+        300.0, ge=0, description="While the catalog does not answer, predictions keep using the last live version "
+        "and key checks it gave, if at most this many seconds old (answers say 'Tikhon-Catalog: stale'); a key "
+        "revoked meanwhile works here at most this long. 0: no stale answers, predictions fail with the catalog."
+    )
     live_cache_s: float = Field(
         1.0, ge=0, description="Seconds a model's live version number is cached per process; a change made "
         "through this process is seen at once, one made elsewhere after at most this long. 0 disables the cache."

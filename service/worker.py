@@ -13,7 +13,8 @@ While the process runs, the worker sends a heartbeat with the progress (done and
 being one basis setting × fold) every ``worker_heartbeat_s``. The heartbeat answer tells it when the job
 was cancelled; a ``Conflict`` tells it the job was taken away (its heartbeat came too late), and the
 work is dropped without recording anything. Jobs of a worker that died are put back in the queue by
-``requeue_stale`` (any worker calls it while idle), and failed after ``max_attempts`` claims. A re-run
+``requeue_stale``, which every worker calls on a timer (``requeue_period``: a quarter of
+``worker_stale_s``, at most 5 s), busy or idle, and failed after ``max_attempts`` claims. A re-run
 whose earlier attempt had already published (its worker died between publishing and recording the
 result) completes with that version instead of training again, so no version is left that no job claims.
 
@@ -39,12 +40,14 @@ Promotion (``promote`` in the request):
 
 from __future__ import annotations
 
+import ctypes
 import logging
 import math
 import multiprocessing as mp
 import os
 import signal
 import socket
+import sys
 import threading
 import time
 import traceback
@@ -53,7 +56,16 @@ from typing import Any
 
 import numpy as np
 
-from service.errors import BudgetExceeded, Cancelled, Conflict, NotFound, TikhonError
+from service.errors import (
+    BudgetExceeded,
+    CatalogUnavailable,
+    Cancelled,
+    Conflict,
+    JobTaken,
+    NotFound,
+    StorageFailure,
+    TikhonError,
+)
 from service.settings import Settings
 
 log = logging.getLogger("tikhon.worker")
@@ -91,10 +103,47 @@ def _lower_priority() -> None:
         pass
 
 
+# A training process must not outlive the worker that started it: after a SIGKILL of the worker (or of
+# the server that runs it embedded) its job is re-queued and trained again elsewhere, and an orphan would
+# keep burning a core beside the re-run. Two lines of defence, both in the child:
+# * Linux: prctl(PR_SET_PDEATHSIG, SIGKILL) (prctl(2)), through the C library with ctypes: the kernel
+#   kills the child the moment its parent ends. It fires when the parent *thread* that started the child
+#   ends, which here is the worker's own thread, alive for the whole job.
+# * everywhere: a thread that checks every PARENT_CHECK_S whether the parent is still the process that
+#   started it (os.getppid() changes to the reaper's pid once the parent is gone), then exits.
+# A job's result goes back only through the pipe to the worker, and the worker publishes only while the
+# catalog says it still holds the job (``Store.publish(holder=...)``), so even a surviving orphan could
+# never publish: a job publishes at most one version.
+PARENT_CHECK_S = 1.0
+_PR_SET_PDEATHSIG = 1  # <linux/prctl.h>
+
+
+def _die_with_parent(parent_pid: int) -> None:
+    if sys.platform.startswith("linux"):
+        try:
+            libc = ctypes.CDLL(None, use_errno=True)
+            libc.prctl(_PR_SET_PDEATHSIG, int(signal.SIGKILL), 0, 0, 0)
+        except (OSError, AttributeError):  # no usable C library: the watcher thread below still covers it
+            pass
+    if os.getppid() != parent_pid:  # the parent ended before the kernel was told to watch it
+        os._exit(70)
+    threading.Thread(target=_watch_parent, args=(parent_pid,), name="tikhon-lifeline", daemon=True).start()
+
+
+def _watch_parent(parent_pid: int) -> None:
+    while True:
+        time.sleep(PARENT_CHECK_S)
+        if os.getppid() != parent_pid:
+            os._exit(70)
+
+
 def _train(data_path: str | None, spec: dict, conn, progress, cancel, deadline: float,
-           stream: str | None = None, dask_scheduler: str | None = None, dask_workers: int = 2) -> None:
+           stream: str | None = None, dask_scheduler: str | None = None, dask_workers: int = 2,
+           parent_pid: int | None = None) -> None:
     """Body of the training process: read the staged table (or stream the source), tune, send the
     artifact back through ``conn``."""
+    if parent_pid is not None:
+        _die_with_parent(parent_pid)
     signal.signal(signal.SIGINT, signal.SIG_IGN)  # the parent decides when this process stops
     _lower_priority()
     try:
@@ -215,6 +264,95 @@ def decide(store, name: str, request: dict, outcome: dict, data_path: str | None
 
 
 # ----------------------------------------------------------------------------------------------------
+# logging a catalog outage
+
+
+class OutageLog:
+    """How a worker reports a catalog it cannot reach: the first failure once, at error level, with what
+    failed (a traceback only for an unexpected error); then one summary line at growing intervals
+    (``first_summary_s``, doubling up to ``max_summary_s``) with the count of failed attempts and the last
+    message; and one line when the catalog answers again, saying how long it was gone. Thread-safe (the
+    job loop and the re-queue timer share one)."""
+
+    def __init__(self, logger: logging.Logger, worker_id: str, *, first_summary_s: float = 5.0,
+                 max_summary_s: float = 300.0, clock=time.monotonic):
+        self._log = logger
+        self._worker_id = worker_id
+        self._first = float(first_summary_s)
+        self._max = float(max_summary_s)
+        self._clock = clock
+        self._lock = threading.Lock()
+        self._since: float | None = None
+        self._failures = 0
+        self._unreported = 0
+        self._next = 0.0
+        self._gap = self._first
+        self._last = ""
+
+    @property
+    def down(self) -> bool:
+        return self._since is not None
+
+    @property
+    def failures(self) -> int:
+        return self._failures
+
+    def failed(self, what: str, exc: BaseException) -> None:
+        message = " ".join(str(exc).split())[:500] or type(exc).__name__
+        now = self._clock()
+        with self._lock:
+            self._failures += 1
+            self._last = f"{what}: {message}"
+            if self._since is None:
+                self._since, self._unreported, self._gap = now, 0, self._first
+                self._next = now + self._gap
+                first = True
+            else:
+                self._unreported += 1
+                first = False
+                due = now >= self._next
+                if due:
+                    count, self._unreported = self._unreported, 0
+                    self._gap = min(self._gap * 2, self._max)
+                    self._next = now + self._gap
+                    down_for = now - self._since
+        extra = {"worker_id": self._worker_id}
+        if first:
+            kind = "catalog unavailable" if isinstance(exc, StorageFailure) else "worker loop error"
+            self._log.error("%s, retrying with back-off: %s: %s", kind, what, message, extra=extra,
+                            exc_info=None if isinstance(exc, TikhonError) else exc)
+        elif due:
+            self._log.warning("catalog still unavailable after %.0f s: %d more failed attempts; last: %s",
+                              down_for, count, self._last, extra=extra)
+
+    def ok(self) -> None:
+        if self._since is None:  # the common case: no lock, nothing to say
+            return
+        now = self._clock()
+        with self._lock:
+            if self._since is None:
+                return
+            down_for, failures = now - self._since, self._failures
+            self._since, self._failures, self._unreported = None, 0, 0
+        self._log.warning("catalog available again after %.1f s (%d failed attempts)", down_for, failures,
+                          extra={"worker_id": self._worker_id})
+
+    def retry_delay(self, base_s: float, cap_s: float = 5.0) -> float:
+        """Pause before the next attempt: ``base_s`` normally; while the catalog is down, doubling with the
+        number of failures up to ``max(base_s, cap_s)``."""
+        if self._since is None:
+            return base_s
+        return min(base_s * 2 ** min(self._failures, 16), max(base_s, cap_s))
+
+
+def requeue_period(stale_s: float) -> float:
+    """How often every worker looks for stale jobs: a quarter of ``worker_stale_s``, at most 5 s, so a job
+    whose worker died is re-queued between ``stale_s`` and ``stale_s + requeue_period`` after its last
+    heartbeat, whether the other workers are idle or busy."""
+    return max(0.05, min(stale_s / 4.0, 5.0))
+
+
+# ----------------------------------------------------------------------------------------------------
 # the worker
 
 
@@ -231,6 +369,8 @@ class Worker:
         self._thread: threading.Thread | None = None
         self._proc = None
         self._last_requeue = 0.0
+        self._requeue_lock = threading.Lock()
+        self.outage = OutageLog(log, self.worker_id)
 
     # -- lifecycle ----------------------------------------------------------------------------------
     def start(self) -> "Worker":
@@ -250,24 +390,46 @@ class Worker:
     def run_forever(self, stop: threading.Event | None = None) -> None:
         stop = stop or self._stop
         log.info("worker started", extra={"worker_id": self.worker_id})
+        timer = threading.Thread(target=self._requeue_timer, args=(stop,), name="tikhon-requeue", daemon=True)
+        timer.start()
         while not (stop.is_set() or self._stop.is_set()):
             try:
                 ran = self.run_once()
-            except Exception:  # a catalog hiccup must not end the loop; it is logged and retried
-                log.exception("worker loop error", extra={"worker_id": self.worker_id})
+            except Exception as exc:  # a catalog outage must not end the loop; it is logged (with back-off) and retried
+                self.outage.failed("polling the catalog for training jobs", exc)
                 ran = False
             if not ran:
-                stop.wait(self.settings.worker_poll_s)
+                stop.wait(self.outage.retry_delay(self.settings.worker_poll_s))
+        timer.join(5)
         log.info("worker stopped", extra={"worker_id": self.worker_id})
 
-    def run_once(self) -> bool:
-        """Re-queue stale jobs (now and then), claim one job and run it. Returns whether a job ran."""
-        now = time.monotonic()
-        if now - self._last_requeue >= self.settings.worker_stale_s / 2:
+    def _requeue_timer(self, stop: threading.Event) -> None:
+        """Every ``requeue_period``, busy or idle: put back the jobs of workers that stopped beating."""
+        period = requeue_period(self.settings.worker_stale_s)
+        while not stop.wait(period) and not self._stop.is_set():
+            try:
+                self.requeue_due()
+            except Exception as exc:
+                self.outage.failed("re-queueing stale training jobs", exc)
+
+    def requeue_due(self) -> None:
+        """Re-queue stale jobs unless this worker did so less than ``requeue_period`` ago."""
+        with self._requeue_lock:
+            now = time.monotonic()
+            if now - self._last_requeue < requeue_period(self.settings.worker_stale_s):
+                return
             self._last_requeue = now
-            for job in self.store.jobs.requeue_stale(self.settings.worker_stale_s, self.settings.max_attempts):
-                log.warning("stale job handled", extra={"job_id": job["id"], "state": job["state"]})
+            handled = self.store.jobs.requeue_stale(self.settings.worker_stale_s, self.settings.max_attempts,
+                                                    caller=self.worker_id)
+        self.outage.ok()
+        for job in handled:
+            log.warning("stale job handled", extra={"job_id": job["id"], "state": job["state"]})
+
+    def run_once(self) -> bool:
+        """Re-queue stale jobs (when due), claim one job and run it. Returns whether a job ran."""
+        self.requeue_due()
         job = self.store.jobs.claim(self.worker_id)
+        self.outage.ok()
         if job is None:
             return False
         self.run_job(job)
@@ -296,7 +458,7 @@ class Worker:
         deadline = started + s.max_training_seconds
         proc = _SPAWN.Process(
             target=_train, args=(job.get("data_path"), request["spec"], child_conn, progress, cancel, deadline,
-                                 stream, s.dask_scheduler, s.dask_local_workers),
+                                 stream, s.dask_scheduler, s.dask_local_workers, os.getpid()),
             name=f"tikhon-train-{jid[:8]}", daemon=True,
         )
         proc.start()
@@ -329,9 +491,11 @@ class Worker:
                         stop_reason = "lost"
                         proc.kill()
                         break
-                    except TikhonError:
+                    except TikhonError as exc:
                         state = "running"  # a missed heartbeat is retried next round; the stale timeout is generous
-                        log.warning("heartbeat failed", extra={"job_id": jid})
+                        self.outage.failed(f"recording a heartbeat of job {jid}", exc)
+                    else:
+                        self.outage.ok()
                     if state == "cancelled" and stop_reason is None:
                         stop_reason, stop_since = "cancelled", now
                         cancel.set()
@@ -385,23 +549,43 @@ class Worker:
         jid, name = job["id"], job["name"]
         request = job["request"] or {}
         try:
-            go_live, decision = decide(self.store, name, request, outcome, job.get("data_path"))
-            row = self.store.publish(name, body, arrays, job_id=jid)
+            go_live, decision = self._retrying(f"deciding the promotion of job {jid}", lambda: decide(
+                self.store, name, request, outcome, job.get("data_path")))
+            row = self._retrying(f"publishing the result of job {jid}", lambda: self.store.publish(
+                name, body, arrays, job_id=jid, holder=self.worker_id))
             version = int(row["version"])
             decision["version"] = version
             if go_live:
-                self._go_live(name, version, jid, decision)
+                self._retrying(f"making version {version} of {name!r} live", lambda: self._go_live(
+                    name, version, job, decision))
+        except JobTaken as err:  # the job was taken away (re-queued) before the publish: its new holder decides
+            log.warning("job dropped", extra={"job_id": jid, "reason": f"not published: {err}"})
+            return
+        except CatalogUnavailable:  # stopping while the catalog is down: the job is re-queued later
+            log.warning("job dropped", extra={"job_id": jid, "reason": "stopping while the catalog is unavailable"})
+            return
         except TikhonError as err:
             self._finish(jid, "failed", problem=_problem(err))
             return
         self._finish(jid, "succeeded", version=version, decision=decision)
-        log.info("job succeeded", extra={"job_id": jid, "model": name, "version": version, "went_live": go_live})
+        log.info("job succeeded", extra={"job_id": jid, "model": name, "version": version,
+                                       "went_live": decision.get("went_live")})
 
-    def _go_live(self, name: str, version: int, jid: str, decision: dict[str, Any]) -> None:
-        """Make ``version`` live with the job's decision as the history entry's reason and details."""
-        self.store.set_live(name, version, actor=f"worker:{self.worker_id}"[:200],
-                            reason=f"training job {jid}: {decision['reason']}",
-                            details={k: v for k, v in decision.items() if k != "comparison"} | {"job_id": jid})
+    def _go_live(self, name: str, version: int, job: dict[str, Any], decision: dict[str, Any]) -> None:
+        """Make ``version`` live with the job's decision as the history entry's reason and details, unless
+        the live version changed after the job was submitted: an operator's later change stands, the
+        history says why, and ``decision`` is updated to say the version did not go live."""
+        jid = job["id"]
+        seen = job.get("live_at_submit")
+        condition = {"expect_live": seen.get("version")} if isinstance(seen, dict) else {}
+        entry = self.store.set_live(name, version, actor=f"worker:{self.worker_id}"[:200],
+                                    reason=f"training job {jid}: {decision['reason']}",
+                                    details={k: v for k, v in decision.items() if k != "comparison"} | {"job_id": jid},
+                                    **condition)
+        if entry.get("superseded"):
+            decision.update(went_live=False, reason=entry["because"],
+                            live_seen=entry["details"]["live_seen"], live_now=entry["details"]["live_now"])
+            return
         if self.on_live_change is not None:
             self.on_live_change(name)
 
@@ -436,16 +620,32 @@ class Worker:
                 go_live, decision = decide(self.store, name, request, outcome, job.get("data_path"))
                 decision.update(version=version, resumed=True, reason=f"{note}; {decision['reason']}")
                 if go_live:
-                    self._go_live(name, version, jid, decision)
+                    self._go_live(name, version, job, decision)
         except TikhonError as err:
             self._finish(jid, "failed", problem=_problem(err))
             return
         self._finish(jid, "succeeded", version=version, decision=decision)
         log.info("job resumed", extra={"job_id": jid, "model": name, "version": version})
 
+    def _retrying(self, what: str, fn):
+        """``fn()``; while the catalog is unavailable, retried with back-off rather than failing the job (a
+        trained result is not thrown away for a database restart). Safe to repeat: a publish commits only
+        while this worker holds the job. When the worker is told to stop meanwhile, the error is raised and
+        the job is left for re-queueing."""
+        while True:
+            try:
+                out = fn()
+            except CatalogUnavailable as exc:
+                self.outage.failed(what, exc)
+                if self._stop.wait(self.outage.retry_delay(self.settings.worker_poll_s)):
+                    raise
+                continue
+            self.outage.ok()
+            return out
+
     def _finish(self, jid: str, state: str, **kw: Any) -> None:
         try:
-            self.store.jobs.finish(jid, self.worker_id, state, **kw)
+            self._retrying(f"recording the end of job {jid}", lambda: self.store.jobs.finish(jid, self.worker_id, state, **kw))
         except Conflict as err:
             log.warning("job result not recorded", extra={"job_id": jid, "reason": str(err)})
         if state != "succeeded":

@@ -277,10 +277,17 @@ def test_predict_show_promote_history_prune_and_keys(server, tmp_path):
     r = cli(url, "--json", "keys", "list", key=secret)
     (entry,) = json.loads(r.stdout)
     assert entry["active"] and entry["label"] == "cli test" and "secret" not in entry
+    # The last admin key cannot be revoked over HTTP (409, exit 2, naming the way that works) ...
     r = cli(url, "keys", "revoke", entry["key_id"], key=secret)
-    assert r.returncode == 0 and "revoked" in r.stdout
+    assert r.returncode == 2 and "last active admin key" in r.stderr and "--local" in r.stderr, r.stderr
+    assert cli(url, "--json", "models", key=secret).returncode == 0  # still active
+    # ... only on the server's machine; the running server then stays closed (401), never open again.
+    _, _, settings = server
+    local = {"TIKHON_STORE": str(settings.store), "TIKHON_DATA_DIR": str(settings.data_dir)}
+    r = cli(url, "keys", "revoke", "--local", entry["key_id"], env=local)
+    assert r.returncode == 0 and "revoked" in r.stdout, r.stderr
     r = cli(url, "--json", "models")
-    assert r.returncode == 0  # no active key left: the routes are open again (loopback only)
+    assert r.returncode == 2 and "no active key exists" in r.stderr, r.stderr
 
 
 def test_serve_refuses_an_open_network_bind_and_local_key_bootstrap(tmp_path):

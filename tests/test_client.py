@@ -150,31 +150,36 @@ def test_every_route_called_through_the_client(server, live_service, tmp_path):
         assert "Not found" in tk.problem_type("not-found")
         assert "tikhon" in tk.metrics()
 
-        # Keys last: once one exists every /v1 route needs one.
-        made = tk.create_key(["admin"], label="client test")
-        assert made["secret"].startswith("tikhon_") and made["scopes"] == ["admin"]
-        with pytest.raises(ServiceError) as err:
-            tk.models()
-        assert err.value.status == 401 and err.value.type == "/problems/unauthorized"
-    with Client(url, key=made["secret"], event_hooks=hooks) as admin:
-        assert [k["key_id"] for k in admin.keys()] == [made["key_id"]]
-        reader = admin.create_key("predict", label="reader")
-        with Client(url, key=reader["secret"]) as tk:
-            assert tk.predict("pump-c", rows=query)["model"]["version"] == 2
+    # Cancelling needs a job that stays queued, and keys close a server for good (the last admin key cannot
+    # be revoked over HTTP): a second server without a worker, keys last.
+    with live_service(tmp_path / "idle", worker=False) as (idle, _, _):
+        with Client(idle, event_hooks=hooks) as tk:
+            queued = tk.train("pump-q", rows=rows, spec=SPEC)
+            assert tk.cancel(queued)["state"] == "cancelled"
+            assert tk.training(queued["id"])["state"] == "cancelled"
+            assert "tikhon" in tk.metrics()
+            # Keys last: once one exists every /v1 route needs one.
+            made = tk.create_key(["admin"], label="client test")
+            assert made["secret"].startswith("tikhon_") and made["scopes"] == ["admin"]
             with pytest.raises(ServiceError) as err:
-                tk.keys()
-            assert err.value.status == 403
-        assert admin.revoke_key(reader["key_id"])["active"] is False
-        with Client(url, key=reader["secret"]) as tk, pytest.raises(ServiceError) as err:
-            tk.models()
-        assert err.value.status == 401
-        admin.revoke_key(made["key_id"])
-
-    # Cancelling needs a job that stays queued: a second server without a worker.
-    with live_service(tmp_path / "idle", worker=False) as (idle, _, _), Client(idle, event_hooks=hooks) as tk:
-        queued = tk.train("pump-q", rows=rows, spec=SPEC)
-        assert tk.cancel(queued)["state"] == "cancelled"
-        assert tk.training(queued["id"])["state"] == "cancelled"
+                tk.models()
+            assert err.value.status == 401 and err.value.type == "/problems/unauthorized"
+        with Client(idle, key=made["secret"], event_hooks=hooks) as admin:
+            assert [k["key_id"] for k in admin.keys()] == [made["key_id"]]
+            reader = admin.create_key("predict", label="reader")
+            with Client(idle, key=reader["secret"]) as tk:
+                assert [j["state"] for j in tk.trainings(model="pump-q")] == ["cancelled"]
+                with pytest.raises(ServiceError) as err:
+                    tk.keys()
+                assert err.value.status == 403
+            assert admin.revoke_key(reader["key_id"])["active"] is False
+            with Client(idle, key=reader["secret"]) as tk, pytest.raises(ServiceError) as err:
+                tk.models()
+            assert err.value.status == 401
+            with pytest.raises(ServiceError) as err:  # the last admin key: only `tikhon keys revoke --local`
+                admin.revoke_key(made["key_id"])
+            assert err.value.status == 409 and "last active admin key" in str(err.value)
+            assert admin.keys()[0]["active"] is True
 
     missing = sorted(ops - seen)
     assert not missing, f"routes not exercised through the client: {missing}"

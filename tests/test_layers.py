@@ -15,7 +15,7 @@ ROOT = Path(__file__).resolve().parents[1] / "service"
 
 # layer of each part of the package; a module may import its own layer or lower ones
 LAYERS = {
-    "service": 0, "service.errors": 0, "service.settings": 0, "service.demo": 0,
+    "service": 0, "service.errors": 0, "service.settings": 0, "service.demo": 0, "service.paths": 0,
     "service.engine": 1,
     "service.store": 2, "service.sources": 2,
     "service.api": 3, "service.worker": 3,

@@ -14,10 +14,12 @@ from typing import Any
 from fastapi import Depends, FastAPI
 from fastapi.middleware.cors import CORSMiddleware
 
+from service import paths
 from service.api import auth, problems
 from service.api.metrics import ApiMetrics
 from service.api.middleware import BodyLimit, RequestContext
 from service.api.schemas import component_schemas
+from service.api.stale import CatalogWatch, LastKnown
 from service.settings import Settings
 
 API_VERSION = "1"
@@ -61,10 +63,14 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
     )
     metrics = ApiMetrics(multiprocess_dir)
     app.state.settings = settings
+    paths.register(settings)  # problem details name these folders' paths relative to them, never absolute
     app.state.store = store
     app.state.metrics = metrics
-    app.state.gate = auth.KeyGate(store.keys, settings.auth_cache_s)
-    app.state.models = ModelCache(store, settings, metrics)
+    # The catalog's last answers (keys, live versions), served for up to stale_ok_s while it is unavailable.
+    last_known = LastKnown(settings.stale_ok_s, CatalogWatch())
+    app.state.catalog_watch = last_known.watch
+    app.state.gate = auth.KeyGate(store.keys, settings.auth_cache_s, last_known)
+    app.state.models = ModelCache(store, settings, metrics, last_known)
     metrics.watch_jobs(lambda: store.jobs.list())
 
     problems.install(app)
@@ -83,7 +89,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
         app.add_middleware(
             CORSMiddleware, allow_origins=list(settings.cors_origins), allow_methods=["GET", "POST", "PUT", "DELETE"],
             allow_headers=["Authorization", "Content-Type", "Idempotency-Key", "X-Request-Id"],
-            expose_headers=["Location", "X-Request-Id"],
+            expose_headers=["Location", "X-Request-Id", "Retry-After", "Tikhon-Catalog"],
         )
     app.add_middleware(BodyLimit, limit=settings.max_body_bytes)
     app.add_middleware(RequestContext, metrics=metrics, process_header=process_header)

@@ -40,6 +40,17 @@ def table_sha256(cols: tables.Table) -> str:
     return h.hexdigest()
 
 
+def check_column_names(names: list[Any], where: str) -> None:
+    """Refuse a blank column name: specs, predictions and answers name columns, and a blank one can
+    neither be named nor told apart from another."""
+    for i, name in enumerate(names):
+        if not isinstance(name, str) or not name.strip():
+            raise InvalidData(
+                f"column {i + 1} of {where} has an empty name ({name!r}); give every column a name in the header, "
+                "or drop the column.",
+                errors=[{"field": f"columns[{i}]", "value": name, "message": "a column needs a non-empty name"}])
+
+
 def load_data(data: dict[str, Any] | None, settings: Settings, *, upload: tuple[bytes, str | None] | None = None
               ) -> tuple[tables.Table, dict[str, Any]]:
     """(columns, a description of where they came from) for one of rows / csv / source / an upload."""
@@ -60,6 +71,7 @@ def load_data(data: dict[str, Any] | None, settings: Settings, *, upload: tuple[
         path = tables.resolve_source(Path(settings.data_dir), data["source"])
         cols = tables.read_source(path, where=f"data.source={data['source']!r}")
         origin = {"kind": "source", "source": data["source"]}
+    check_column_names(list(cols), "the training data")
     n = len(next(iter(cols.values())))
     tables.check_row_limit(n, settings.max_training_rows, "max_training_rows", "the training data")
     origin.update(rows=n, columns=list(cols), sha256=table_sha256(cols))
@@ -98,6 +110,7 @@ def validate_stream(path: Path, spec_raw: dict[str, Any], settings: Settings, so
 
     spec = parse_spec(spec_raw)
     schema, parts = open_source(path)
+    check_column_names(list(schema), f"data.source={source!r}")
     rows = sum(getattr(p, "rows", 0) or 0 for p in parts)
     if not rows:  # CSV: estimate from the size and the first lines
         with open(path, "rb") as fh:
@@ -159,6 +172,15 @@ def check_idempotency_key(key: str | None) -> str | None:
             errors=[{"field": "header.Idempotency-Key", "message": "1-255 printable ASCII characters, no spaces"}],
         )
     return key
+
+
+def discard(path: Path) -> None:
+    """Remove a staged file that no job took over; a store that refuses even that (read-only, gone) leaves it
+    to the start-up sweep rather than replacing the submission's own answer with a clean-up error."""
+    try:
+        Path(path).unlink(missing_ok=True)
+    except OSError:
+        pass
 
 
 def stage(store, cols: tables.Table) -> Path:

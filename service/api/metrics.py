@@ -74,6 +74,10 @@ class ApiMetrics:
             "tikhon_model_cache_misses", "Prediction requests that had to load a version from the store.",
             registry=self.registry,
         )
+        self.stale_answers = Counter(
+            "tikhon_catalog_stale_answers", "Answers given on the catalog's last answers while it did not answer "
+            "(marked Tikhon-Catalog: stale).", registry=self.registry,
+        )
         self._seen: dict[tuple[str, str, int], tuple] = {}
 
     def watch_jobs(self, list_jobs: Callable[[], Iterable[dict]]) -> None:

@@ -17,6 +17,7 @@ from typing import Any
 import orjson
 
 from service.api.problems import PROBLEM_MEDIA_TYPE, internal_error_body, problem_body
+from service.api.stale import header_value
 
 log = logging.getLogger("tikhon.api")
 access = logging.getLogger("tikhon.api.access")
@@ -75,6 +76,11 @@ class RequestContext:
                 status_box[0] = message["status"]
                 message = dict(message)
                 message["headers"] = [*message.get("headers", ()), rid_header, *extra]
+                age = state.get("catalog_age")
+                if age is not None:  # the answer rests on stale catalog knowledge (service.api.stale)
+                    message["headers"].append((b"tikhon-catalog", header_value(age).encode()))
+                    if self.metrics is not None:
+                        self.metrics.stale_answers.inc()
             await send(message)
 
         try:

@@ -4,23 +4,26 @@ A prediction resolves its version once (``live`` or the pinned number), takes th
 it, and uses that one object for the numbers and for the ``model`` block of the response, so the block
 always describes the version that produced the numbers, even while the live version changes.
 
-Versions are immutable, so a ``Served`` object never goes stale; the LRU here is bounded by the same
-count as the store's cache. The live version number is cached for ``settings.live_cache_s`` seconds;
+Versions are immutable, so a ``Served`` object never goes stale; the LRU here is bounded like the
+store's cache, by ``settings.cache_models`` entries and ``settings.cache_bytes`` bytes (each entry sized
+by what its loaded version holds in memory). A version larger than the whole byte bound is served but
+not kept: the next request loads it again. The live version number is cached for ``settings.live_cache_s`` seconds;
 a change made through this process (``PUT /v1/models/{name}/live``, a worker promotion in the same
-process) clears it at once.
+process) clears it at once. While the catalog is unavailable, the last live version it named stands in
+for up to ``settings.stale_ok_s`` (``service.api.stale``).
 """
 
 from __future__ import annotations
 
-import threading
 import time
-from collections import OrderedDict
 from dataclasses import dataclass, field
 from typing import Any
 
 import orjson
 
+from service.api.stale import CatalogWatch, LastKnown
 from service.errors import NotFound
+from service.store.cache import LRUCache
 
 
 @dataclass
@@ -32,6 +35,7 @@ class Served:
     block: dict[str, Any]
     inputs: list[str] = field(default_factory=list)
     block_json: bytes = b""
+    nbytes: int = 0  # the loaded version's size in memory (service.store.cache.footprint)
 
     def __post_init__(self) -> None:
         self.block_json = orjson.dumps(self.block)
@@ -52,13 +56,12 @@ def model_block(name: str, version: int, manifest: dict[str, Any], model: Any) -
 
 
 class ModelCache:
-    def __init__(self, store, settings, metrics=None):
+    def __init__(self, store, settings, metrics=None, last: LastKnown | None = None):
         self._store = store
+        self._last = last if last is not None else LastKnown(0.0, CatalogWatch())
         self._ttl = settings.live_cache_s
-        self._limit = settings.cache_models
         self._metrics = metrics
-        self._lock = threading.Lock()
-        self._served: OrderedDict[tuple[str, int], Served] = OrderedDict()
+        self._served = LRUCache(settings.cache_models, settings.cache_bytes)
         self._live: dict[str, tuple[float, int]] = {}
 
     # -- live version -------------------------------------------------------------------------------
@@ -69,31 +72,34 @@ class ModelCache:
         return None
 
     def live_version(self, name: str) -> int:
+        return self.live_version_stale(name, allow_stale=False)[0]
+
+    def live_version_stale(self, name: str, *, allow_stale: bool = True) -> tuple[int, float | None]:
+        """The live version and, when the catalog did not answer and its last answer stood in, that
+        answer's age in seconds (None when fresh). See ``service.api.stale``."""
         cached = self.cached_live(name)
         if cached is not None:
-            return cached
-        version = self._store.live_version(name)
+            return cached, None
+        version, age = self._last.lookup(("live", name), lambda: self._store.live_version(name),
+                                         f"the live version of model {name!r}", allow_stale=allow_stale)
         if version is None:
             raise NotFound(
                 f"model {name!r} has no live version yet; wait for its first training job to succeed, pin a version "
                 f"with POST /v1/models/{name}/versions/<n>/predict, or set one with PUT /v1/models/{name}/live.",
                 errors=[{"field": "name", "value": name, "message": "no live version"}],
             )
-        self._live[name] = (time.monotonic(), int(version))
-        return int(version)
+        if age is None:
+            self._live[name] = (time.monotonic(), int(version))
+        return int(version), age
 
     def forget_live(self, name: str) -> None:
-        self._live.pop(name, None)
+        self._live.pop(name, None)  # the catalog's last answer stays as the outage fallback
 
     # -- loaded versions ----------------------------------------------------------------------------
     def cached(self, name: str, version: int) -> Served | None:
         served = self._served.get((name, version))
-        if served is not None:
-            if self._metrics is not None:
-                self._metrics.cache_hits.inc()
-            with self._lock:
-                if (name, version) in self._served:
-                    self._served.move_to_end((name, version))
+        if served is not None and self._metrics is not None:
+            self._metrics.cache_hits.inc()
         return served
 
     def load(self, name: str, version: int) -> Served:
@@ -109,15 +115,16 @@ class ModelCache:
             name=name, version=int(version), model=model, manifest=manifest,
             block=model_block(name, version, manifest, model),
             inputs=list(model.features) + list(getattr(model.categories, "names", [])),
+            nbytes=int(getattr(loaded, "nbytes", 0) or 0),
         )
-        with self._lock:
-            self._served[(name, int(version))] = served
-            while len(self._served) > self._limit:
-                self._served.popitem(last=False)
+        served.nbytes += len(served.block_json)
+        self._served.put((name, int(version)), served, served.nbytes)  # not kept when larger than the bound
         return served
 
+    def stats(self) -> dict[str, int]:
+        """Entries and bytes held, and the bounds (``LRUCache.stats``)."""
+        return self._served.stats()
+
     def forget(self, name: str, version: int | None = None) -> None:
-        with self._lock:
-            for key in [k for k in self._served if k[0] == name and (version is None or k[1] == version)]:
-                del self._served[key]
+        self._served.discard_where(lambda k: k[0] == name and (version is None or k[1] == version))
         self.forget_live(name)

@@ -25,6 +25,7 @@ from starlette.exceptions import HTTPException as StarletteHTTPException
 from starlette.responses import Response
 
 from service import errors as E
+from service import paths
 
 PROBLEM_MEDIA_TYPE = "application/problem+json"
 log = logging.getLogger("tikhon.api")
@@ -55,11 +56,16 @@ _STATUS: dict[type[E.TikhonError], int] = {
     E.Conflict: 409,
     E.Cancelled: 409,
     E.IntegrityFailure: 500,
+    E.CatalogUnavailable: 503,
     E.StorageFailure: 507,
     E.Unauthorized: 401,
     E.Forbidden: 403,
     E.TikhonError: 400,
 }
+
+# Seconds a caller is told to wait (Retry-After, RFC 9110 section 10.2.3) when the catalog does not answer:
+# a database restart takes seconds, and callers retrying sooner only add load to the one recovering.
+CATALOG_RETRY_AFTER_S = 5
 
 # Limits whose excess is "the request itself is too large" (413); any other limit, such as the grid
 # budget of a training spec, is a semantic refusal (422).
@@ -74,7 +80,8 @@ _HTTP_PROBLEMS: dict[str, tuple[str, str]] = {
     "unsupported-media-type": ("Unsupported media type", "The Content-Type is not one this route reads."),
     "not-acceptable": ("Not acceptable", "The Accept header asks for a format this route cannot produce."),
     "internal-error": ("Internal error", "An unexpected failure on the server; report the request id."),
-    "not-ready": ("Not ready", "The catalog does not answer or the store folder is not writable."),
+    "not-ready": ("Not ready", "The catalog does not answer or was replaced, the store folder is not writable, or "
+                  "version folders are not in the catalog (run `tikhon store recover`)."),
     "worker-lost": ("Training worker lost", "A training job's worker stopped sending heartbeats on every attempt "
                     "(killed, out of memory, host lost); the job was failed after the configured attempts."),
 }
@@ -89,6 +96,7 @@ def stored_problem(problem: dict[str, Any] | None) -> dict[str, Any] | None:
     type (documented at that address) and their status here, at the one HTTP boundary."""
     if not isinstance(problem, dict):
         return problem
+    problem = paths.redact_all(problem)  # recorded by a worker, maybe before the paths were made relative
     kind = problem.get("type")
     if isinstance(kind, str) and kind and "/" not in kind:
         problem = {**problem, "type": f"/problems/{kind}"}
@@ -155,16 +163,18 @@ def problem_body(
     *, slug: str, title: str, status: int, detail: str, instance: str | None = None,
     request_id: str | None = None, errors: list[dict[str, Any]] | None = None, **extra: Any
 ) -> dict[str, Any]:
-    body: dict[str, Any] = {"type": f"/problems/{slug}", "title": title, "status": status, "detail": detail}
+    # No absolute path of the data folder or the store leaves the server (service.paths.redact).
+    body: dict[str, Any] = {"type": f"/problems/{slug}", "title": title, "status": status,
+                            "detail": paths.redact(detail)}
     if instance:
         body["instance"] = as_uri_reference(instance)
     if request_id:
         body["request_id"] = request_id
     if errors:
-        body["errors"] = [_jsonable(e) for e in errors]
+        body["errors"] = [paths.redact_all(_jsonable(e)) for e in errors]
     for key, value in extra.items():
         if key not in body:
-            body[key] = _jsonable(value)
+            body[key] = paths.redact_all(_jsonable(value))
     return body
 
 
@@ -233,8 +243,12 @@ def install(app: FastAPI) -> None:
     @app.exception_handler(E.TikhonError)
     async def _tikhon(request: Request, exc: E.TikhonError) -> Response:
         headers = {"WWW-Authenticate": 'Bearer realm="tikhon"'} if isinstance(exc, E.Unauthorized) else None
+        if isinstance(exc, E.CatalogUnavailable):
+            headers = {"Retry-After": str(CATALOG_RETRY_AFTER_S)}
         body = problem_from_error(exc, instance=request.url.path, request_id=_request_id(request))
-        if body["status"] >= 500:
+        if isinstance(exc, E.CatalogUnavailable):  # an outage: one line per request, not an error each
+            log.warning("request refused, catalog unavailable: %s", exc, extra={"request_id": _request_id(request)})
+        elif body["status"] >= 500:
             log.error("request failed: %s", exc, extra={"request_id": _request_id(request)})
         return problem_response(body, headers)
 

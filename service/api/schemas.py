@@ -12,6 +12,7 @@ from typing import Any, Literal
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
 from service.errors import InvalidData
+from service.store.schema import VERSION_MAX
 
 _FORBID = ConfigDict(extra="forbid")
 
@@ -107,7 +108,10 @@ class PredictRequest(BaseModel):
 
 
 class PredictedRow(BaseModel):
-    value: float
+    value: float | None = Field(
+        ..., description="The prediction; null when it is not a finite number (an input so far outside the "
+        "training data that the basis overflowed), and a warning then says so."
+    )
     interval: list[float | None] | None = Field(
         None, description="[lower, upper] at the requested level; a bound is null when the training set is too "
         "small for that level (CV+ needs about 1/(1-level) rows)."
@@ -131,7 +135,7 @@ class PredictResponse(BaseModel):
 
 class LiveRequest(BaseModel):
     model_config = _FORBID
-    version: int = Field(..., ge=1)
+    version: int = Field(..., ge=1, le=VERSION_MAX)
     reason: str = Field(..., min_length=1, max_length=1000, description="Why the live version changes (kept in the history).")
 
 

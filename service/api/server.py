@@ -62,6 +62,8 @@ def build(settings: Settings, *, embedded_worker: bool | None = None, **app_opti
             holder["worker"].stop()
 
     app = create_app(settings, store, on_shutdown=[stop_worker], **app_options)
+    if store.keys.any_active():  # started with keys: they stay required (service.api.auth.KeyGate.close)
+        app.state.gate.close()
     worker = None
     if use_worker:
         worker = Worker(settings, store, on_live_change=app.state.models.forget_live)

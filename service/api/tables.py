@@ -9,6 +9,7 @@ checksummable, and it executes nothing when read.
 
 from __future__ import annotations
 
+import errno
 import io
 import math
 import os
@@ -20,6 +21,7 @@ import pyarrow as pa
 import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
+from service import paths
 from service.errors import BudgetExceeded, InvalidData, StorageFailure
 
 Table = dict[str, np.ndarray]
@@ -212,9 +214,11 @@ def resolve_source(data_dir: Path, source: Any, *, where: str = "data.source", a
 
     Refused: non-strings, empty strings, NUL bytes, absolute paths (POSIX or drive letters), any ``..``
     component, anything whose resolved target leaves ``data_dir``, and anything that is not a regular file
-    (or, with ``allow_dir``, a folder whose every file also resolves inside ``data_dir``).
+    (or, with ``allow_dir``, a folder whose every file also resolves inside ``data_dir``). A path the file
+    system cannot look up (a name too long, a symbolic link loop, a folder without permission) is refused
+    too. Messages name the path relative to the data folder, never its absolute location.
     """
-    hint = f"give a path relative to the data folder (TIKHON_DATA_DIR={data_dir}), such as 'pumps/2024-06.csv'"
+    hint = "give a path relative to the data folder (TIKHON_DATA_DIR), such as 'pumps/2024-06.csv'"
     if not isinstance(source, str) or not source.strip():
         raise InvalidData(f"{where} must be a non-empty string; {hint}.", errors=[{"field": where, "value": source, "message": "not a path"}])
     if "\x00" in source:
@@ -225,12 +229,23 @@ def resolve_source(data_dir: Path, source: Any, *, where: str = "data.source", a
     if ".." in posix.parts:
         raise InvalidData(f"{where}={source!r} contains '..'; {hint}.", errors=[{"field": where, "value": source, "message": "parent reference"}])
     root = Path(data_dir).resolve()
+    try:
+        return _resolve_inside(root, posix, source, where=where, hint=hint, allow_dir=allow_dir)
+    except (OSError, RuntimeError) as exc:  # RuntimeError: Path.resolve's "Symlink loop" before Python 3.13
+        raise _unreachable(root, source, exc, where=where, hint=hint) from None
+
+
+def _resolve_inside(root: Path, posix: PurePosixPath, source: str, *, where: str, hint: str, allow_dir: bool) -> Path:
     target = (root / Path(*posix.parts)).resolve()
     if target != root and root not in target.parents:
         raise InvalidData(
             f"{where}={source!r} resolves (through a symbolic link) outside the data folder; {hint}.",
             errors=[{"field": where, "value": source, "message": "escapes the data folder"}],
         )
+    try:  # raises for a name too long, a loop, no permission (is_file() would hide some of them)
+        os.stat(target)
+    except (FileNotFoundError, NotADirectoryError):
+        pass  # "not a file in the data folder", below
     if allow_dir and target.is_dir():
         for child in target.iterdir():
             real = child.resolve()
@@ -248,14 +263,40 @@ def resolve_source(data_dir: Path, source: Any, *, where: str = "data.source", a
     return target
 
 
+def _unreachable(root: Path, source: str, exc: BaseException, *, where: str, hint: str) -> InvalidData:
+    """The refusal of a source path the file system could not look up, naming it relative to the data folder."""
+    code = getattr(exc, "errno", None)
+    if code == errno.ENAMETOOLONG:
+        why, short = ("a file or folder name in it is longer than the file system allows (255 bytes per name on "
+                      "most Linux file systems); shorten the name"), "name too long"
+    elif code == errno.ELOOP or isinstance(exc, RuntimeError):
+        why, short = ("it runs into a symbolic link loop inside the data folder; point the links at real files"), \
+            "symbolic link loop"
+    else:
+        why, short = f"it cannot be looked up ({getattr(exc, 'strerror', None) or type(exc).__name__})", "cannot be read"
+    shown = source if len(source) <= 120 else source[:60] + "..." + source[-40:]
+    filename = getattr(exc, "filename", None)
+    if filename and code is not None:
+        inner = paths.shown(filename, root)
+        if inner not in (".", shown):
+            why += f" (at {inner[:120]!r})"
+    return InvalidData(f"{where}={shown!r} cannot be used: {why}; {hint}.",
+                       errors=[{"field": where, "value": shown, "message": short}])
+
+
 def read_source(path: Path, *, where: str = "data.source") -> Table:
     if path.suffix.lower() in (".parquet", ".pq"):
         return from_parquet(path, where=where)
-    with open(path, "rb") as fh:
-        head = fh.read(4)
-    if head == b"PAR1":
-        return from_parquet(path, where=where)
-    return from_csv(path.read_bytes(), where=where)
+    try:
+        with open(path, "rb") as fh:
+            head = fh.read(4)
+        if head == b"PAR1":
+            return from_parquet(path, where=where)
+        payload = path.read_bytes()
+    except OSError as exc:  # unreadable (permissions, an I/O error): the caller's 422, not a 500
+        raise InvalidData(f"{where} cannot be read ({exc.strerror or type(exc).__name__}); check the file's "
+                          "permissions in the data folder (TIKHON_DATA_DIR).") from None
+    return from_csv(payload, where=where)
 
 
 def to_arrow(table: Table) -> pa.Table:
@@ -271,12 +312,15 @@ def stage(table: Table, path: Path) -> Path:
         with open(tmp, "rb") as fh:
             os.fsync(fh.fileno())
         os.replace(tmp, path)
-    except OSError as exc:  # disk full, permissions: nothing half-written stays behind
-        tmp.unlink(missing_ok=True)
+    except OSError as exc:  # disk full, permissions, read-only: nothing half-written stays behind
+        try:
+            tmp.unlink(missing_ok=True)
+        except OSError:  # a read-only file system refuses even this (EROFS) when nothing was written
+            pass
         reason = getattr(exc, "strerror", None) or " ".join(str(exc).split())[:200]
         raise StorageFailure(
-            f"the training data could not be staged under {path.parent} ({reason}); nothing was stored and no job "
-            "was created. Free space in the store folder (TIKHON_STORE) and submit again."
+            f"the training data could not be staged in the store folder (TIKHON_STORE) ({paths.redact(reason)}); "
+            "nothing was stored and no job was created. Free space in the store folder and submit again."
         ) from None
     return path
 

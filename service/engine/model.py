@@ -105,6 +105,10 @@ class FittedModel:
         if interval is not None:
             lower, upper = self._interval(Phi, value, 1.0 - interval)
         warnings = self._warnings(X, unseen, lev, cols)
+        for i in np.flatnonzero(~np.isfinite(value)):  # overflow: say so rather than answer a bare null
+            warnings[i].append(
+                f"the prediction is not a finite number ({float(value[i])!r} overflowed): the inputs of this row lie so far "
+                "outside the training data that the basis overflowed; no value is given")
         return {"value": value, "lower": lower, "upper": upper, "leverage": lev, "warnings": warnings}
 
     def _interval(self, Phi: np.ndarray, value: np.ndarray, alpha: float) -> tuple[np.ndarray, np.ndarray]:

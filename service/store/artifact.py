@@ -225,7 +225,7 @@ def _fail(where: str, message: str) -> IntegrityFailure:
 
 def read_manifest(folder: Path, *, expected_sha256: str, name: str, version: int) -> tuple[dict[str, Any], int]:
     """Read and verify ``manifest.json`` of one version; return (manifest, size in bytes)."""
-    where = f"model {name!r} version {version} ({folder})"
+    where = f"model {name!r} version {version} (folder {folder.parent.name}/{folder.name} of the store)"
     try:
         data = (folder / MANIFEST_FILE).read_bytes()
     except FileNotFoundError:
@@ -271,7 +271,7 @@ def read_manifest(folder: Path, *, expected_sha256: str, name: str, version: int
 
 def read_arrays(folder: Path, manifest: dict[str, Any], *, name: str, version: int) -> tuple[dict[str, np.ndarray], int]:
     """Read ``arrays.npz`` after checking it against the manifest; return (arrays, total array bytes)."""
-    where = f"model {name!r} version {version} ({folder})"
+    where = f"model {name!r} version {version} (folder {folder.parent.name}/{folder.name} of the store)"
     info = manifest["arrays"]
     try:
         data = (folder / ARRAYS_FILE).read_bytes()

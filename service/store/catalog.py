@@ -33,8 +33,9 @@ MIGRATIONS_DIR = Path(__file__).resolve().parent / "migrations"
 VERSION_TABLE = "tikhon_schema_version"
 # The newest revision in migrations/versions (tests/store/test_migrations.py checks they agree). Knowing
 # it without Alembic lets an up-to-date catalog open without importing Alembic at all.
-SCHEMA_HEAD = "0001"
+SCHEMA_HEAD = "0002"
 SQLITE_BUSY_TIMEOUT_S = 30.0
+PG_CONNECT_TIMEOUT_S = 5
 _MIGRATION_LOCK = 0x54494B484F4E  # advisory-lock key used while migrating ("TIKHON" in hex)
 
 
@@ -91,7 +92,10 @@ def create_catalog_engine(url: str) -> Engine:
                 f"database URL {safe_url(url)!r} names driver {parsed.get_driver_name()!r}; Tikhon talks to "
                 "PostgreSQL through psycopg 3, use postgresql+psycopg://..."
             )
-        return create_engine(parsed, pool_pre_ping=True, pool_size=5, max_overflow=10)
+        # A bounded connect: an unreachable host (a cut network drops packets rather than refusing) must
+        # not hold a request for the TCP retry time; the URL's own connect_timeout wins when given.
+        extra = {} if "connect_timeout" in parsed.query else {"connect_args": {"connect_timeout": PG_CONNECT_TIMEOUT_S}}
+        return create_engine(parsed, pool_pre_ping=True, pool_size=5, max_overflow=10, **extra)
     raise StorageFailure(
         f"database URL {safe_url(url)!r} uses {backend!r}; the catalog runs on SQLite or PostgreSQL "
         "(sqlite:///... or postgresql+psycopg://...)."

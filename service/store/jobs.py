@@ -40,11 +40,12 @@ from typing import TYPE_CHECKING, Any, Mapping
 from sqlalchemy import and_, insert, select, update
 from sqlalchemy.exc import IntegrityError
 
-from service.errors import Conflict, InvalidData, InvalidSpec, NotFound
-from service.store import artifact
+from service.errors import Conflict, InvalidData, InvalidSpec, JobTaken, NotFound, StorageFailure
+from service.store import artifact, layout
 from service.store.catalog import read_txn, write_txn
 from service.store.names import validate_name
 from service.store.schema import jobs as jobs_t
+from service.store.schema import models as models_t
 from service.store.util import catalog_errors, iso, row_dict, utcnow
 
 if TYPE_CHECKING:
@@ -92,6 +93,7 @@ class Jobs:
             "version": d["version"],
             "problem": d["problem"],
             "decision": d["decision"],
+            "live_at_submit": d.get("live_at_submit"),
         }
 
     def _row(self, conn, job_id: str, *, lock: bool = False) -> Any:
@@ -139,7 +141,7 @@ class Jobs:
         if data_path is not None:
             source = Path(data_path)
             if not source.is_file():
-                raise InvalidData(f"data file {str(source)!r} of the training job does not exist or is not a file.")
+                raise InvalidData(f"data file {source.name!r} of the training job does not exist or is not a file.")
             h.update(b"\0data\0")
             h.update(artifact.sha256_file(source).encode())
         request_sha = h.hexdigest()
@@ -153,9 +155,18 @@ class Jobs:
         final_path: Path | None = None
         if source is not None:
             target_dir = self.folder / job_id
-            target_dir.mkdir(parents=True)
             final_path = target_dir / source.name
-            shutil.move(str(source), str(final_path))
+            try:
+                target_dir.mkdir(parents=True)
+                layout.write_publishing_marker(target_dir, self._store.catalog_id, job_id)  # until the row commits
+                shutil.move(str(source), str(final_path))
+            except OSError as exc:  # full or read-only store: a storage problem (507), nothing half-moved
+                self._drop_folder(job_id)
+                raise StorageFailure(
+                    f"the training data could not be moved into the job area of the store folder (TIKHON_STORE) "
+                    f"({exc.strerror or type(exc).__name__}); nothing was stored and no job was created. Check "
+                    "that the store folder is writable and has free space, then submit again."
+                ) from None
         now = utcnow()
         try:
             with self._errors(f"submitting a training job for {name!r}"):
@@ -166,7 +177,10 @@ class Jobs:
                                 jobs_t.c.model_name == name, jobs_t.c.idempotency_key == idempotency_key))).first()
                             if existing is not None:
                                 raise _Replay(existing)
+                        live = conn.execute(select(models_t.c.live_version)
+                                            .where(models_t.c.name == name)).scalar()
                         conn.execute(insert(jobs_t).values(
+                            live_at_submit={"version": live},
                             id=job_id, model_name=name, state="queued", request=dict(request),
                             request_sha256=request_sha, data_path=str(final_path) if final_path else None,
                             idempotency_key=idempotency_key, attempts=0, worker_id=None, progress_done=0,
@@ -184,6 +198,8 @@ class Jobs:
         except BaseException:
             self._drop_folder(job_id)
             raise
+        if source is not None:
+            layout.clear_markers(self.folder / job_id)
         return self.get(job_id), True
 
     def _by_key(self, name: str, key: str) -> Any:
@@ -305,6 +321,25 @@ class Jobs:
         self._drop_folder(job_id)
         return out
 
+    def check_holder(self, conn, job_id: str, worker_id: str, name: str) -> None:
+        """Inside a publish's transaction: raise ``Conflict`` unless ``worker_id`` still holds job ``job_id``
+        (running, or cancelled while it ran) and the job has no version of ``name`` yet. The job row is
+        locked (PostgreSQL: ``FOR UPDATE``, which ``requeue_stale`` skips; SQLite: the write transaction) until
+        the publish commits."""
+        from service.store.schema import versions as versions_t
+
+        row = self._row(conn, job_id, lock=True)
+        if row.state not in ("running", "cancelled") or row.worker_id != worker_id:
+            raise JobTaken(
+                f"training job {job_id} is no longer held by worker {worker_id!r} (state {row.state}, worker "
+                f"{row.worker_id!r}); it was re-queued, so this worker does not publish its result."
+            )
+        done = conn.execute(select(versions_t.c.version).where(and_(
+            versions_t.c.model_name == name, versions_t.c.job_id == job_id,
+            versions_t.c.deleted_at.is_(None)))).scalar()
+        if done is not None:
+            raise JobTaken(f"training job {job_id} already published version {done} of {name!r}; a job publishes once.")
+
     def cancel(self, job_id: str) -> dict[str, Any]:
         """Cancel a queued or running job (a running one stops at its worker's next heartbeat)."""
         with self._errors("cancelling a training job"), write_txn(self._engine) as conn:
@@ -320,14 +355,22 @@ class Jobs:
             self._drop_folder(job_id)
         return out
 
-    def requeue_stale(self, stale_s: float, max_attempts: int) -> list[dict[str, Any]]:
+    def requeue_stale(self, stale_s: float, max_attempts: int, *, caller: str | None = None) -> list[dict[str, Any]]:
         """Re-queue running jobs whose last heartbeat is older than ``stale_s`` seconds; fail those that
-        already had ``max_attempts`` claims. Returns the jobs changed (in their new state)."""
+        already had ``max_attempts`` claims. Returns the jobs changed (in their new state). ``caller``: the
+        worker asking; its own jobs are left alone (it is alive, so they are not a dead worker's)."""
         cutoff = utcnow() - timedelta(seconds=float(stale_s))
         changed: list[str] = []
         failed: list[str] = []
+        stale = and_(jobs_t.c.state == "running", jobs_t.c.heartbeat_at < cutoff)
+        if caller is not None:
+            stale = and_(stale, jobs_t.c.worker_id != caller)
+        # Every worker calls this every few seconds: look before taking the write lock (SQLite has one).
+        with self._errors("looking for stale training jobs"), read_txn(self._engine) as conn:
+            if conn.execute(select(jobs_t.c.id).where(stale).limit(1)).first() is None:
+                return []
         with self._errors("re-queueing stale training jobs"), write_txn(self._engine) as conn:
-            q = select(jobs_t).where(and_(jobs_t.c.state == "running", jobs_t.c.heartbeat_at < cutoff))
+            q = select(jobs_t).where(stale)
             if conn.dialect.name == "postgresql":
                 q = q.with_for_update(skip_locked=True)
             now = utcnow()
@@ -356,8 +399,11 @@ class Jobs:
     # ------------------------------------------------------------------------------------------------
 
     def sweep_folders(self) -> int:
-        """Remove data folders of finished jobs, old ones without a job, and stale uploads."""
+        """Remove data folders of jobs this catalog lists as finished, folders of submits into this catalog
+        that never committed (a ``.publishing`` marker naming it, older than an hour), and stale uploads.
+        A folder of a job the catalog does not know otherwise is kept and reported in ``kept_folders``."""
         removed = 0
+        self.kept_folders: list[str] = []
         now = time.time()
         candidates = {p.name: p for p in self.folder.iterdir() if p.is_dir() and _ID_RE.fullmatch(p.name)}
         if candidates:
@@ -366,9 +412,16 @@ class Jobs:
                                            .where(jobs_t.c.id.in_(list(candidates)))).all())
             for job_id, path in candidates.items():
                 st = states.get(job_id)
-                if st in FINAL_STATES or (st is None and now - _mtime(path) > ORPHAN_FOLDER_AGE_S):
-                    shutil.rmtree(path, ignore_errors=True)
-                    removed += 1
+                if st is None:
+                    if layout.marker_catalog(path, layout.PUBLISHING_MARKER) != self._store.catalog_id:
+                        self.kept_folders.append(f"_jobs/{job_id}")
+                        continue
+                    if now - _mtime(path) <= ORPHAN_FOLDER_AGE_S:
+                        continue  # a submit in flight
+                elif st not in FINAL_STATES:
+                    continue
+                shutil.rmtree(path, ignore_errors=True)
+                removed += 1
         for p in self.incoming_dir.iterdir():
             if now - _mtime(p) > INCOMING_AGE_S:
                 shutil.rmtree(p, ignore_errors=True) if p.is_dir() else p.unlink(missing_ok=True)

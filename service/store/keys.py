@@ -22,7 +22,7 @@ from typing import TYPE_CHECKING, Any, Iterable
 
 from sqlalchemy import insert, select, update
 
-from service.errors import InvalidSpec, NotFound
+from service.errors import Conflict, InvalidSpec, NotFound
 from service.store.catalog import read_txn, write_txn
 from service.store.schema import api_keys as keys_t
 from service.store.util import catalog_errors, iso, utcnow
@@ -30,7 +30,7 @@ from service.store.util import catalog_errors, iso, utcnow
 if TYPE_CHECKING:
     from service.store.store import Store
 
-SCOPES = ("predict", "train", "admin")
+SCOPES = ("predict", "train", "admin", "metrics")
 KEY_PREFIX = "tikhon_"
 _KEY_RE = re.compile(r"^tikhon_([0-9a-f]{12})_([A-Za-z0-9_-]{43})$")
 _DUMMY_HASH = hashlib.sha256(b"no such key").hexdigest()
@@ -110,12 +110,27 @@ class Keys:
             for r in rows
         ]
 
-    def revoke(self, key_id: str) -> dict[str, Any]:
-        """Revoke a key (idempotent); return its listing entry."""
+    def revoke(self, key_id: str, *, keep_last_admin: bool = False) -> dict[str, Any]:
+        """Revoke a key (idempotent); return its listing entry.
+
+        ``keep_last_admin`` (the HTTP route sets it): refuse with ``Conflict`` to revoke the last active key
+        holding the admin scope, so no one can lock every operator out over the network. The active keys are
+        read with ``FOR UPDATE`` on PostgreSQL (SQLite's write transaction is already exclusive), so two
+        concurrent revocations of the last two admin keys cannot both pass the check."""
         with self._errors("revoking an API key"), write_txn(self._engine) as conn:
             row = conn.execute(select(keys_t).where(keys_t.c.key_id == str(key_id))).first()
             if row is None:
                 raise NotFound(f"API key {key_id!r} does not exist; `tikhon keys list` shows the key ids.")
+            if keep_last_admin and row.revoked_at is None and "admin" in (row.scopes or ()):
+                active = conn.execute(select(keys_t.c.key_id, keys_t.c.scopes)
+                                      .where(keys_t.c.revoked_at.is_(None)).with_for_update()).all()
+                others = [r.key_id for r in active if r.key_id != row.key_id and "admin" in (r.scopes or ())]
+                if not others:
+                    raise Conflict(
+                        f"API key {row.key_id!r} is the last active admin key; revoking it over HTTP would leave no "
+                        "one able to manage this server. Create another admin key first (POST /v1/keys), or revoke "
+                        f"it on the server's machine with 'tikhon keys revoke --local {row.key_id}'."
+                    )
             if row.revoked_at is None:
                 conn.execute(update(keys_t).where(keys_t.c.key_id == row.key_id).values(revoked_at=utcnow()))
         with self._lock:

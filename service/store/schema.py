@@ -35,6 +35,10 @@ models = Table(
     Column("live_version", Integer, nullable=True),
 )
 
+# Version numbers are INTEGER columns: 32-bit signed on PostgreSQL (64-bit on SQLite). Every catalog
+# answers for this range only, so a caller's number beyond it is "no such version", never an overflow.
+VERSION_MAX = 2**31 - 1
+
 # One row per published version. A deleted version keeps its row (``deleted_at`` set) so its number
 # stays taken and the history that mentions it stays readable.
 versions = Table(
@@ -87,6 +91,8 @@ jobs = Table(
     Column("version", Integer, nullable=True),
     Column("problem", JSONV, nullable=True),
     Column("decision", JSONV, nullable=True),
+    # {"version": <the model's live version when the job was submitted, or null>}; NULL on older jobs.
+    Column("live_at_submit", JSONV, nullable=True),
     UniqueConstraint("model_name", "idempotency_key", name="uq_jobs_idempotency"),
     Index("ix_jobs_state_created", "state", "created_at"),
     Index("ix_jobs_model_created", "model_name", "created_at"),
@@ -101,4 +107,13 @@ api_keys = Table(
     Column("label", String(200), nullable=False),
     Column("created_at", TS, nullable=False),
     Column("revoked_at", TS, nullable=True),
+)
+
+# Key/value facts about the catalog itself; ``catalog_id`` (a random hex id written by migration 0002)
+# names this catalog, so the store can tell it from another one (see ``Store.catalog_id``).
+catalog_info = Table(
+    "catalog_info",
+    metadata,
+    Column("key", String(64), primary_key=True),
+    Column("value", String(200), nullable=False),
 )

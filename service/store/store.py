@@ -11,13 +11,16 @@ folder is complete and durable in its final place. Step by step (``name`` alread
                (SQLite: BEGIN IMMEDIATE, one writer at a time; PostgreSQL: pg_advisory_xact_lock).
     3. number  version = models.last_version + 1 (the row is created on the first publish).
                Under the lock, a folder <store>/<name>/<version>/ that already exists cannot be
-               anyone's work in progress: it is the orphan of a publish that crashed after its rename
-               and before its commit. It is moved to <store>/.trash/ and removed.
-    4. write   manifest.json (which records name, version and the SHA-256 of arrays.npz) into the
-               staging folder; fsync it and the folder.
+               anyone's work in progress. When its .publishing marker names this catalog it is the
+               orphan of a publish that crashed after its rename and before its commit: it is moved to
+               <store>/.trash/ and removed. Otherwise (a lost or replaced catalog) it is kept and the
+               publish is refused until ``tikhon store recover`` registers it.
+    4. write   manifest.json (which records name, version and the SHA-256 of arrays.npz) and the
+               .publishing marker (this catalog's id) into the staging folder; fsync it and the folder.
     5. rename  os.rename(<staging>/<token>, <store>/<name>/<version>); fsync <store>/<name>/.
     6. record  UPDATE models.last_version; INSERT the versions row with the manifest's SHA-256.
-    7. commit  the transaction; the lock is released.
+    7. commit  the transaction; the lock is released. Then the .publishing marker is removed (the
+               sweep clears one left by a crash here, since the row now vouches for the folder).
 
 What a SIGKILL leaves behind, by the step it interrupts:
 
@@ -35,12 +38,19 @@ tombstone, so its number is never handed out again.
 
 Start-up sweep
 --------------
-``Store()`` calls ``sweep()``: staging folders whose lock file is no longer held (flock is released when
-its process dies), ``.trash`` leftovers, version folders without a live catalog row (checked under the
-per-name lock, so a publish in flight elsewhere is never touched), and job data folders of finished or
-unknown jobs. Staging locks rely on flock, which works on a local file system; several hosts sharing
-one store over NFS should share the catalog on PostgreSQL and keep the store on a file system with
-working flock.
+``Store()`` first claims the folder (``service.store.layout``: a ``.tikhon-store`` marker; a folder of
+files Tikhon did not write is refused before anything is touched), then calls ``sweep()``, which removes
+only what this service wrote and can prove unfinished: staging folders whose marked lock file is no
+longer held (flock is released when its process dies), ``.trash`` entries of its own naming, version
+folders with a ``.publishing`` marker naming *this* catalog and no row (a publish that crashed between
+rename and commit; checked under the per-name lock, so a publish in flight elsewhere is never touched),
+version folders with a ``.deleting`` marker naming this catalog and a tombstone row, and job data folders
+of jobs this catalog lists as finished. Every other version folder without a catalog row is kept,
+logged and reported by ``ping()`` (readiness) until ``recover()`` registers it: an empty, lost or wrong
+catalog never costs a stored version. In step 3 above, a folder already at the target number is
+discarded only under the same proof; otherwise the publish is refused (``Conflict``) and the folder kept.
+Staging locks rely on flock, which works on a local file system; several hosts sharing one store over
+NFS should share the catalog on PostgreSQL and keep the store on a file system with working flock.
 
 Reading
 -------
@@ -54,6 +64,7 @@ seen by every other process within that time, and at once by the process that ma
 from __future__ import annotations
 
 import fcntl
+import logging
 import operator
 import os
 import shutil
@@ -62,16 +73,25 @@ import time
 import uuid
 from contextlib import contextmanager
 from dataclasses import dataclass, field
+from datetime import datetime
 from pathlib import Path
 from typing import Any, Callable, Iterator, Mapping
 
 import numpy as np
-from sqlalchemy import and_, func, insert, select, text, update
+from sqlalchemy import and_, event, func, insert, select, text, update
 
-from service.errors import Conflict, IntegrityFailure, InvalidSpec, NotFound, StorageFailure, TikhonError
+from service.errors import (
+    CatalogUnavailable,
+    Conflict,
+    IntegrityFailure,
+    InvalidSpec,
+    NotFound,
+    StorageFailure,
+    TikhonError,
+)
 from service.settings import Settings
-from service.store import artifact
-from service.store.cache import LRUCache
+from service.store import artifact, layout
+from service.store.cache import LRUCache, footprint
 from service.store.catalog import (
     create_catalog_engine,
     lock_name,
@@ -82,10 +102,14 @@ from service.store.catalog import (
     write_txn,
 )
 from service.store.names import validate_name
+from service.store.schema import catalog_info as catalog_info_t
 from service.store.schema import history as history_t
 from service.store.schema import models as models_t
+from service.store.schema import VERSION_MAX
 from service.store.schema import versions as versions_t
 from service.store.util import as_utc, catalog_errors, iso, row_dict, utcnow
+
+log = logging.getLogger("tikhon.store")
 
 STAGING_DIR = ".staging"
 TRASH_DIR = ".trash"
@@ -98,6 +122,7 @@ def _fault_point(step: str) -> None:
 
 
 ModelLoader = Callable[[dict, dict], Any]
+_UNSET: Any = object()  # "no condition" for set_live's expect_live
 
 
 def _engine_loader(manifest_body: dict, arrays: dict) -> Any:
@@ -130,17 +155,25 @@ class Store:
 
         self.settings = settings
         self.root = Path(settings.store).resolve()
+        self.folder_state = layout.claim(self.root)  # refuses a foreign folder before touching anything
         try:
             for sub in (STAGING_DIR, TRASH_DIR, JOBS_DIR):
                 (self.root / sub).mkdir(parents=True, exist_ok=True)
         except OSError as exc:
             raise StorageFailure(
-                f"the store folder {self.root} cannot be created or written ({exc.strerror}); "
+                f"the store folder {self.root.name!r} cannot be created or written ({exc.strerror}); "
                 "set TIKHON_STORE to a writable folder."
             ) from None
         self.engine = create_catalog_engine(normalize_url(settings.catalog_url()))
-        self.catalog = safe_url(self.engine)
+        self.catalog = _catalog_label(self.engine, self.root)
         self.schema_revision = migrate(self.engine)
+        self.catalog_id = self._read_catalog_id()
+        self._catalog_file = _sqlite_file(self.engine)
+        self._catalog_identity = _file_identity(self._catalog_file) if self._catalog_file else None
+        if self._catalog_file is not None:
+            event.listen(self.engine, "begin", self._guard_catalog_file, insert=True)  # before BEGIN runs
+        self.unlisted: list[tuple[str, int]] = []  # version folders the catalog does not list (kept)
+        self.kept: list[str] = []  # other entries the sweep could not prove its own (kept)
         self._loader: ModelLoader = model_loader or _engine_loader
         self._cache = LRUCache(settings.cache_models, settings.cache_bytes)
         self._ttl = float(catalog_ttl_s)
@@ -164,16 +197,68 @@ class Store:
         self.close()
 
     def ping(self) -> dict[str, str]:
-        """Readiness: the catalog answers and the store folder takes a write. Raises StorageFailure."""
-        with catalog_errors("a readiness query", self.catalog), read_txn(self.engine) as conn:
-            conn.execute(text("SELECT 1"))
+        """Readiness: the catalog answers and is the one opened at start, the store folder takes a write,
+        and every version folder is listed by the catalog. Returns one entry per check (``"ok"`` or
+        what is wrong); raises StorageFailure only when the catalog cannot be asked at all."""
+        checks = {"catalog": "ok", "store": "ok", "versions": "ok"}
+        try:
+            self._check_catalog_identity()
+        except StorageFailure as exc:
+            checks["catalog"] = str(exc)
         probe = self.root / STAGING_DIR / f"ping-{uuid.uuid4().hex}"
         try:
             probe.write_bytes(b"ok")
             probe.unlink()
         except OSError as exc:
-            raise StorageFailure(f"the store folder {self.root} is not writable ({exc.strerror}).") from None
-        return {"catalog": "ok", "store": "ok"}
+            checks["store"] = f"the store folder {self.root.name!r} is not writable ({exc.strerror})"
+        if checks["catalog"] == "ok":
+            unlisted = self.unlisted_versions()
+            if unlisted:
+                shown = ", ".join(f"{n}/{v}" for n, v in unlisted[:5]) + (" ..." if len(unlisted) > 5 else "")
+                checks["versions"] = (
+                    f"{len(unlisted)} version folder{'s are' if len(unlisted) > 1 else ' is'} not in the catalog "
+                    f"({shown}); they were kept: run `tikhon store recover` to register them")
+        return checks
+
+    def _read_catalog_id(self) -> str:
+        with catalog_errors("reading the catalog's id", self.catalog), read_txn(self.engine) as conn:
+            value = conn.execute(select(catalog_info_t.c.value).where(catalog_info_t.c.key == "catalog_id")).scalar()
+        if not value:
+            raise StorageFailure(f"the catalog at {self.catalog} has no catalog id; it was not made by Tikhon's "
+                                 "migrations. Point TIKHON_DATABASE_URL at a Tikhon catalog or an empty database.")
+        return value
+
+    def _check_catalog_identity(self) -> None:
+        """Raise CatalogUnavailable when the catalog is gone, emptied or not the one opened at start."""
+        if self._catalog_file is not None:
+            self._guard_catalog_file(None)
+        try:
+            with catalog_errors("a readiness query", self.catalog), read_txn(self.engine) as conn:
+                value = conn.execute(select(catalog_info_t.c.value)
+                                     .where(catalog_info_t.c.key == "catalog_id")).scalar()
+        except StorageFailure as exc:
+            raise CatalogUnavailable(str(exc)) from None
+        if value != self.catalog_id:
+            raise CatalogUnavailable(
+                f"the catalog at {self.catalog} is not the one this process opened at start (its id changed); "
+                "restart the service with the right TIKHON_DATABASE_URL.")
+
+    def _guard_catalog_file(self, _conn: Any) -> None:
+        """SQLite: refuse every transaction (and report not ready) once the catalog file was deleted,
+        emptied or replaced under the running process, so no write goes into an unlinked or foreign file
+        and no read answers from one. One ``stat`` per transaction."""
+        now = _file_identity(self._catalog_file)
+        if now is None:
+            what = "deleted"
+        elif now[:2] != self._catalog_identity[:2]:
+            what = "replaced"
+        elif now[2] == 0:
+            what = "emptied"
+        else:
+            return
+        raise CatalogUnavailable(
+            f"the catalog file {layout.relative(self._catalog_file, self.root)!r} was {what} while the service ran; "
+            "nothing was written. Restore it (or run `tikhon store recover` on a fresh one) and restart the service.")
 
     def cache_stats(self) -> dict[str, int]:
         return self._cache.stats()
@@ -201,12 +286,14 @@ class Store:
 
     @contextmanager
     def _staging(self) -> Iterator[Path]:
+        """A fresh staging folder, held by a flock on its marked lock file until the block ends."""
         staging_root = self.root / STAGING_DIR
         while True:
             token = uuid.uuid4().hex
             lock_path = staging_root / f"{token}.lock"
             fd = os.open(lock_path, os.O_CREAT | os.O_EXCL | os.O_RDWR, 0o644)
             fcntl.flock(fd, fcntl.LOCK_EX)
+            os.write(fd, layout.STAGING_MARK)  # proves to a later sweep that this staging folder is ours
             try:
                 ours = os.fstat(fd).st_ino == os.stat(lock_path).st_ino
             except FileNotFoundError:  # a sweeper took it for a dead one between create and flock
@@ -230,9 +317,14 @@ class Store:
     # publish
 
     def publish(
-        self, name: str, manifest_body: dict, arrays: Mapping[str, np.ndarray], *, job_id: str | None = None
+        self, name: str, manifest_body: dict, arrays: Mapping[str, np.ndarray], *, job_id: str | None = None,
+        holder: str | None = None,
     ) -> dict[str, Any]:
-        """Store a new version of ``name``; return its catalog row. See the module docstring."""
+        """Store a new version of ``name``; return its catalog row. See the module docstring.
+
+        ``holder``: the worker publishing for job ``job_id``. The publish then commits only if, inside its
+        transaction, that worker still holds the job and no version of the job exists yet (``Conflict``
+        otherwise), so a job re-queued from a worker that was presumed dead publishes once."""
         validate_name(name)
         arrays = artifact.check_arrays(arrays)
         artifact.dump_json(manifest_body, what="the manifest body")  # fail before touching the disk
@@ -252,6 +344,8 @@ class Store:
                     with catalog_errors(f"publishing a version of {name!r}", self.catalog), \
                             write_txn(self.engine) as conn:
                         lock_name(conn, name)
+                        if job_id is not None and holder is not None:
+                            self.jobs.check_holder(conn, job_id, holder, name)
                         _fault_point("locked")
                         now = utcnow()
                         m = conn.execute(select(models_t.c.last_version).where(models_t.c.name == name)).first()
@@ -264,12 +358,18 @@ class Store:
                         version = last + 1
                         target = self._version_dir(name, version)
                         if os.path.lexists(target):
+                            if not self._crashed_publish(target):
+                                raise Conflict(
+                                    f"version folder {name}/{version} exists but the catalog has no row for it, so "
+                                    "it was kept and nothing was published; run `tikhon store recover` to register "
+                                    "it (the catalog may have been lost or replaced), then train again.")
                             trash.append(self._discard(target))  # orphan of a crashed publish (see step 3)
                         manifest = artifact.build_manifest(
                             name=name, version=version, created_at=now.isoformat(), job_id=job_id,
                             arrays_info=arrays_info, body=manifest_body)
                         manifest_bytes = artifact.dump_json(manifest, what="the manifest")
                         artifact.write_manifest(staging, manifest_bytes)
+                        layout.write_publishing_marker(staging, self.catalog_id, staging.name)
                         artifact.fsync_dir(staging)
                         if not model_dir.is_dir():
                             model_dir.mkdir(exist_ok=True)
@@ -300,12 +400,19 @@ class Store:
                     raise
         except OSError as exc:
             raise StorageFailure(
-                f"could not write a version of {name!r} under {self.root} ({exc.strerror or exc}); "
+                f"could not write a version of {name!r} in the store ({exc.strerror or exc}); "
                 "nothing was published."
             ) from exc
+        layout.clear_markers(target)  # committed: from now on the catalog row vouches for it
         self._erase(trash)
         live = self.live_version(name)
         return self._version_out(row, live)
+
+    def _crashed_publish(self, folder: Path) -> bool:
+        """True when ``folder`` is provably the leftover of a publish into *this* catalog that never
+        committed: it holds a ``.publishing`` marker naming this catalog's id. Call under the name's
+        write lock, after checking that the catalog has no row for it."""
+        return layout.marker_catalog(folder, layout.PUBLISHING_MARKER) == self.catalog_id
 
     @staticmethod
     def _version_out(row: Mapping[str, Any], live: int | None) -> dict[str, Any]:
@@ -337,6 +444,9 @@ class Store:
             ) from None
         if v < 1:
             raise NotFound(f"version {v} of model {name!r} does not exist; versions are numbered from 1.")
+        if v > VERSION_MAX:  # beyond the catalog's integer column: no such version (never an OverflowError)
+            raise NotFound(f"version {v} of model {name!r} does not exist; version numbers go up to {VERSION_MAX}.",
+                           errors=[{"field": "version", "value": str(v), "message": f"at most {VERSION_MAX}"}])
         return v
 
     def _fresh(self, stamp: float) -> bool:
@@ -366,13 +476,14 @@ class Store:
             self._rows[(name, version)] = (d, time.monotonic())
         return d
 
-    def load(self, name: str, version: int) -> LoadedVersion:
-        """Return the verified, rebuilt model of one version (from the cache when possible)."""
+    def load(self, name: str, version: int, *, fresh: bool = False) -> LoadedVersion:
+        """Return the verified, rebuilt model of one version (from the cache when possible; ``fresh``
+        verifies the files on disk again and replaces the cached copy)."""
         validate_name(name)
         version = self._check_version(name, version)
         row = self._version_row(name, version)
         key = (name, version, row["manifest_sha256"])
-        hit = self._cache.get(key)
+        hit = None if fresh else self._cache.get(key)
         if hit is not None:
             return hit
         folder = self._version_dir(name, version)
@@ -389,10 +500,21 @@ class Store:
         loaded = LoadedVersion(
             name=name, version=version, checksum=row["manifest_sha256"], arrays_sha256=row["arrays_sha256"],
             created_at=manifest["created_at"], manifest=manifest, model=model,
-            nbytes=arrays_size + manifest_size,
+            # what it holds in memory (the rebuilt model may keep derived arrays), at least the file's arrays
+            nbytes=max(arrays_size + manifest_size, footprint((model, manifest))),
         )
         self._cache.put(key, loaded, loaded.nbytes)
         return loaded
+
+    def verify(self, name: str, version: int) -> LoadedVersion:
+        """Verify one version from its files as a first load does (checksums, format, members, rebuilt by
+        the loader), whatever the cache holds. Raises ``IntegrityFailure`` naming the failed check."""
+        try:
+            return self.load(name, version, fresh=True)
+        except FileNotFoundError as exc:
+            raise IntegrityFailure(f"{layout.relative(exc.filename or '', self.root)} is missing") from None
+        except OSError as exc:
+            raise IntegrityFailure(f"its files cannot be read ({exc.strerror or exc})") from None
 
     def live_version(self, name: str) -> int | None:
         """The live version of ``name``; None when it has none or the model does not exist."""
@@ -477,9 +599,16 @@ class Store:
     # live version and history
 
     def set_live(
-        self, name: str, version: int, *, actor: str, reason: str, details: dict | None = None
+        self, name: str, version: int, *, actor: str, reason: str, details: dict | None = None,
+        expect_live: Any = _UNSET,
     ) -> dict[str, Any]:
         """Make ``version`` the live version of ``name`` and append the change to the history.
+
+        ``expect_live`` (a version number or None) makes the change conditional: when the live version is
+        no longer the one the caller saw (someone changed it since), nothing changes, and a history entry
+        that keeps the live version and says why is appended instead (``superseded`` is True in the
+        answer). A training job passes the live version it saw at submission, so its promotion never
+        undoes an operator's later change.
 
         Returns the history entry (``changed`` is False, and nothing is written, when the version was
         already live)."""
@@ -507,6 +636,19 @@ class Store:
             now = utcnow()
             entry = {"name": name, "at": now, "actor": actor, "from_version": m.live_version,
                      "to_version": version, "reason": reason, "details": details}
+            if expect_live is not _UNSET and m.live_version != expect_live and m.live_version != version:
+                because = (f"version {version} was not made live because the live version changed from "
+                           f"{expect_live if expect_live is not None else 'none'} to {m.live_version} after the job "
+                           "was submitted (that later change stands)")
+                why = f"{reason}; {because}"
+                kept = {**(details or {}), "not_made_live": version, "live_seen": expect_live,
+                        "live_now": m.live_version}
+                res = conn.execute(insert(history_t).values(
+                    model_name=name, at=now, actor=actor, from_version=m.live_version,
+                    to_version=m.live_version, reason=why, details=kept))
+                return {**entry, "to_version": m.live_version, "reason": why, "details": kept,
+                        "id": res.inserted_primary_key[0], "at": iso(now), "changed": False, "superseded": True,
+                        "because": because}
             if m.live_version == version:
                 out = {**entry, "id": None, "at": iso(now), "changed": False}
             else:
@@ -577,6 +719,9 @@ class Store:
                     raise Conflict(f"version {explicit} of model {name!r} is live and cannot be deleted; "
                                    "make another version live first.")
             doomed = sorted(choose(m.live_version, alive))
+            for v in doomed:  # so that a crash after the commit leaves folders the sweep may prove deleted
+                if self._version_dir(name, v).is_dir():
+                    layout.write_deleting_marker(self._version_dir(name, v), self.catalog_id)
             if doomed:
                 conn.execute(update(versions_t).where(and_(
                     versions_t.c.model_name == name, versions_t.c.version.in_(doomed))).values(deleted_at=utcnow()))
@@ -592,44 +737,178 @@ class Store:
     # sweeping
 
     def sweep(self) -> dict[str, int]:
-        """Remove what crashed or interrupted work left behind (safe while other processes publish)."""
-        counts = {"staging": self._sweep_staging(), "orphan_versions": 0, "trash": 0, "job_folders": 0}
+        """Remove what this service wrote and can prove unfinished (safe while other processes publish);
+        keep and report everything else (``self.unlisted``: version folders the catalog does not list;
+        ``self.kept``: other entries it cannot prove its own). See ``service.store.layout``."""
+        kept: list[str] = []
+        unlisted: list[tuple[str, int]] = []
+        counts = {"staging": self._sweep_staging(kept), "orphan_versions": 0, "trash": 0, "job_folders": 0}
         for entry in sorted(self.root.iterdir()):
             if entry.is_dir() and not entry.is_symlink():
                 try:
                     validate_name(entry.name)
                 except TikhonError:
                     continue
-                counts["orphan_versions"] += self._sweep_model(entry.name)
+                removed, left = self._sweep_model(entry.name)
+                counts["orphan_versions"] += removed
+                unlisted.extend((entry.name, v) for v in left)
         for entry in (self.root / TRASH_DIR).iterdir():
-            shutil.rmtree(entry, ignore_errors=True) if entry.is_dir() else entry.unlink(missing_ok=True)
+            if not layout.HEX_TOKEN.fullmatch(entry.name):
+                kept.append(f"{TRASH_DIR}/{entry.name}")
+                continue
+            shutil.rmtree(entry, ignore_errors=True) if entry.is_dir() and not entry.is_symlink() \
+                else entry.unlink(missing_ok=True)
             counts["trash"] += 1
         counts["job_folders"] = self.jobs.sweep_folders()
+        kept.extend(self.jobs.kept_folders)
+        counts["unlisted_versions"] = len(unlisted)
+        counts["kept"] = len(kept)
+        self.unlisted, self.kept = sorted(unlisted), kept
+        if unlisted:
+            log.warning(
+                "%d version folder(s) are not in the catalog and were kept (%s); run `tikhon store recover` to "
+                "register them", len(unlisted), ", ".join(f"{n}/{v}" for n, v in self.unlisted[:10]))
+        if kept:
+            log.warning("kept %d entr(ies) in the store that the sweep could not prove its own: %s",
+                        len(kept), ", ".join(kept[:10]))
         return counts
 
-    def _sweep_staging(self) -> int:
+    def recover(self, *, dry_run: bool = False, live: str = "none") -> dict[str, Any]:
+        """Register every complete, checksum-valid version folder that the catalog does not list (after a
+        catalog was lost, emptied or replaced). Each one is verified as a first load would (manifest
+        format, name and version, SHA-256 and members of arrays.npz, rebuilt by the model loader) and
+        refused, with the reason, when any check fails; a number the catalog holds as deleted is left
+        alone. ``live="newest"`` makes the newest version of each model that has no live version live
+        (recorded in its history). Nothing is moved or removed.
+
+        Returns ``{"registered": [{"name", "version"}], "refused": [{"path", "reason"}],
+        "live": [{"name", "version"}]}``."""
+        if live not in ("none", "newest"):
+            raise InvalidSpec(f"live must be 'none' or 'newest', received {live!r}.")
+        out: dict[str, list] = {"registered": [], "refused": [], "live": []}
+        for entry in sorted(self.root.iterdir()):
+            if not entry.is_dir() or entry.is_symlink():
+                continue
+            try:
+                validate_name(entry.name)
+            except TikhonError:
+                continue
+            name = entry.name
+            folders = self._version_folders(name)
+            with catalog_errors(f"reading versions of {name!r}", self.catalog), read_txn(self.engine) as conn:
+                known = {r.version: r.deleted_at for r in conn.execute(
+                    select(versions_t.c.version, versions_t.c.deleted_at).where(versions_t.c.model_name == name))}
+            found = []
+            for v, folder in sorted(folders.items()):
+                if v in known:
+                    continue
+                where = f"{name}/{v}"
+                try:
+                    found.append((v, self._verify_folder(name, v, folder)))
+                except (TikhonError, OSError) as exc:
+                    out["refused"].append({"path": where, "reason": " ".join(str(exc).split())})
+            if not found or dry_run:
+                out["registered"].extend({"name": name, "version": v} for v, _ in found)
+                continue
+            with catalog_errors(f"registering versions of {name!r}", self.catalog), write_txn(self.engine) as conn:
+                lock_name(conn, name)
+                now = utcnow()
+                m = conn.execute(select(models_t.c.last_version).where(models_t.c.name == name)).first()
+                if m is None:
+                    conn.execute(insert(models_t).values(
+                        name=name, created_at=now, updated_at=now, last_version=0, live_version=None))
+                taken = set(conn.execute(select(versions_t.c.version)
+                                         .where(versions_t.c.model_name == name)).scalars())
+                for v, row in found:
+                    if v in taken:
+                        continue  # registered by a concurrent recover
+                    conn.execute(insert(versions_t).values(**row))
+                    out["registered"].append({"name": name, "version": v})
+                newest = max(v for v, _ in found)
+                conn.execute(update(models_t).where(and_(models_t.c.name == name, models_t.c.last_version < newest))
+                             .values(last_version=newest, updated_at=now))
+            for v, _ in found:
+                layout.clear_markers(folders[v])
+            with self._lock:
+                self._live.pop(name, None)
+        if live == "newest" and not dry_run:
+            for name in sorted({r["name"] for r in out["registered"]}):
+                if self.live_version(name) is None:
+                    newest = max(r["version"] for r in out["registered"] if r["name"] == name)
+                    self.set_live(name, newest, actor="tikhon store recover",
+                                  reason="made live by `tikhon store recover --live newest` after the catalog was rebuilt")
+                    out["live"].append({"name": name, "version": newest})
+        self.unlisted = [(n, v) for n, v in self.unlisted
+                         if {"name": n, "version": v} not in out["registered"]] if not dry_run else self.unlisted
+        return out
+
+    def _verify_folder(self, name: str, version: int, folder: Path) -> dict[str, Any]:
+        """Verify an unlisted version folder fully; return the catalog row it would get."""
+        manifest_bytes = (folder / artifact.MANIFEST_FILE).read_bytes()
+        sha = artifact.sha256_bytes(manifest_bytes)
+        manifest, manifest_size = artifact.read_manifest(folder, expected_sha256=sha, name=name, version=version)
+        arrays, arrays_size = artifact.read_arrays(folder, manifest, name=name, version=version)
+        try:
+            self._loader(manifest["model"], arrays)
+        except Exception as exc:
+            raise IntegrityFailure(f"it passed its checksums but could not be rebuilt ({type(exc).__name__}: {exc})") from None
+        try:
+            created = as_utc(datetime.fromisoformat(manifest["created_at"]))
+        except (TypeError, ValueError):
+            raise IntegrityFailure(f"its manifest's created_at {manifest.get('created_at')!r} is not an ISO-8601 time") from None
+        job_id = manifest.get("job_id")
+        return {
+            "model_name": name, "version": version, "created_at": created,
+            "job_id": job_id if isinstance(job_id, str) and 0 < len(job_id) <= 64 else None,
+            "manifest_sha256": sha, "arrays_sha256": manifest["arrays"]["sha256"],
+            "bytes": arrays_size + manifest_size, "summary": _summary_of(manifest.get("model")), "deleted_at": None,
+        }
+
+    def unlisted_versions(self) -> list[tuple[str, int]]:
+        """The version folders found without a catalog row at start that still have none (re-checked, so a
+        ``tikhon store recover`` run by another process clears the report)."""
+        if not self.unlisted:
+            return []
+        names = sorted({n for n, _ in self.unlisted})
+        with catalog_errors("checking unlisted version folders", self.catalog), read_txn(self.engine) as conn:
+            listed = set(conn.execute(select(versions_t.c.model_name, versions_t.c.version)
+                                      .where(versions_t.c.model_name.in_(names))).tuples())
+        still = [(n, v) for n, v in self.unlisted
+                 if (n, v) not in listed and self._version_dir(n, v).is_dir()]
+        self.unlisted = still
+        return list(still)
+
+    def _sweep_staging(self, kept: list[str]) -> int:
         staging_root = self.root / STAGING_DIR
         removed = 0
         for entry in staging_root.iterdir():
-            if entry.name.endswith(".lock"):
+            token = entry.name[: -len(".lock")] if entry.name.endswith(".lock") else entry.name
+            if entry.name.endswith(".lock") and layout.HEX_TOKEN.fullmatch(token):
                 try:
-                    fd = os.open(entry, os.O_RDWR)
-                except FileNotFoundError:
+                    fd = os.open(entry, os.O_RDWR | os.O_NOFOLLOW)
+                except (FileNotFoundError, OSError):
                     continue
                 try:
-                    fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-                except BlockingIOError:
-                    os.close(fd)
-                    continue  # a live publish holds it
-                try:
-                    shutil.rmtree(staging_root / entry.name[: -len(".lock")], ignore_errors=True)
+                    try:
+                        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+                    except BlockingIOError:
+                        continue  # a live publish holds it
+                    if os.pread(fd, len(layout.STAGING_MARK), 0) != layout.STAGING_MARK:
+                        kept.append(f"{STAGING_DIR}/{entry.name}")
+                        continue
+                    folder = staging_root / token
+                    if folder.is_symlink():
+                        folder.unlink()
+                    else:
+                        shutil.rmtree(folder, ignore_errors=True)
                     entry.unlink(missing_ok=True)
                     removed += 1
                 finally:
                     os.close(fd)
-            elif entry.is_dir() and not (staging_root / f"{entry.name}.lock").exists():
-                shutil.rmtree(entry, ignore_errors=True)
-                removed += 1
+            elif entry.name.startswith("ping-") and layout.HEX_TOKEN.fullmatch(entry.name[5:]) and entry.is_file():
+                entry.unlink(missing_ok=True)  # a readiness probe whose process died between write and unlink
+            elif not (layout.HEX_TOKEN.fullmatch(token) and (staging_root / f"{token}.lock").exists()):
+                kept.append(f"{STAGING_DIR}/{entry.name}")
         return removed
 
     def _version_folders(self, name: str) -> dict[int, Path]:
@@ -641,24 +920,39 @@ class Store:
                     out[int(entry.name)] = entry
         return out
 
-    def _sweep_model(self, name: str) -> int:
-        """Remove version folders of ``name`` that have no live catalog row. Returns how many."""
+    def _sweep_model(self, name: str) -> tuple[int, list[int]]:
+        """Remove the version folders of ``name`` that are provably crashed publishes into this catalog
+        (no catalog row, a ``.publishing`` marker naming this catalog); clear the marker of listed ones.
+        Returns (how many were removed, the numbers of unlisted folders that were kept)."""
         folders = self._version_folders(name)
         if not folders:
-            return 0
+            return 0, []
         with catalog_errors(f"sweeping {name!r}", self.catalog), read_txn(self.engine) as conn:
-            alive = set(conn.execute(select(versions_t.c.version).where(and_(
-                versions_t.c.model_name == name, versions_t.c.deleted_at.is_(None)))).scalars())
-        if set(folders) <= alive:
-            return 0  # nothing to remove; only suspects are re-checked under the lock below
+            rows = conn.execute(select(versions_t.c.version, versions_t.c.deleted_at)
+                                .where(versions_t.c.model_name == name)).all()
+        listed = {r.version for r in rows if r.deleted_at is None}
+        for v in set(folders) & listed:
+            layout.clear_markers(folders[v])  # a publish that died after its commit, a delete that failed
+        if set(folders) <= listed:
+            return 0, []
         with catalog_errors(f"sweeping {name!r}", self.catalog), write_txn(self.engine) as conn:
             lock_name(conn, name)
             rows = conn.execute(select(versions_t.c.version, versions_t.c.deleted_at)
                                 .where(versions_t.c.model_name == name)).all()
             alive = {r.version for r in rows if r.deleted_at is None}
-            trash = [self._discard(p) for v, p in self._version_folders(name).items() if v not in alive]
+            tombstones = {r.version for r in rows if r.deleted_at is not None}
+            trash, left = [], []
+            for v, p in self._version_folders(name).items():
+                if v in alive:
+                    continue
+                deleted_here = v in tombstones and layout.marker_catalog(p, layout.DELETING_MARKER) == self.catalog_id
+                if p.is_dir() and not p.is_symlink() and (self._crashed_publish(p) or deleted_here):
+                    # a crashed publish into this catalog, or a version deleted in it whose erase was interrupted
+                    trash.append(self._discard(p))
+                else:
+                    left.append(v)
         self._erase(trash)
-        return len(trash)
+        return len(trash), sorted(left)
 
 
 def _summary_of(body: Any) -> Any:
@@ -670,3 +964,28 @@ def _summary_of(body: Any) -> Any:
     if summary and len(artifact.dump_json(summary, what="the summary")) <= 16384:
         return summary
     return None
+
+
+def _sqlite_file(engine: Any) -> Path | None:
+    if engine.dialect.name != "sqlite" or not engine.url.database:
+        return None
+    return Path(engine.url.database).resolve()
+
+
+def _file_identity(path: Path | None) -> tuple[int, int, int] | None:
+    """(device, inode, size) of ``path``, None when it does not exist."""
+    try:
+        st = os.stat(path)
+    except (FileNotFoundError, TypeError):
+        return None
+    return st.st_dev, st.st_ino, st.st_size
+
+
+def _catalog_label(engine: Any, root: Path) -> str:
+    """How messages name the catalog: a SQLite file relative to the store (no host paths in answers),
+    a server URL without its password."""
+    db = _sqlite_file(engine)
+    if db is None:
+        return safe_url(engine)
+    inside = db.is_relative_to(root)
+    return f"{db.relative_to(root).as_posix()} (SQLite, in the store folder)" if inside else f"{db.name} (SQLite)"

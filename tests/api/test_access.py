@@ -78,8 +78,10 @@ def test_every_v1_operation_enforces_its_scopes(keyed):
 
 def test_open_routes_need_no_key(keyed):
     base, _, _ = keyed
-    for path in ("/healthz", "/readyz", "/metrics", "/openapi.json", "/docs", "/problems"):
+    for path in ("/healthz", "/readyz", "/openapi.json", "/docs", "/problems"):
         assert httpx.get(f"{base}{path}").status_code == 200, path
+    # /metrics is keyed once keys exist (metrics or admin scope); tests/reliability/test_access_holes.py
+    assert httpx.get(f"{base}/metrics").status_code == 401
 
 
 def test_revoked_key_stops_working(keyed):

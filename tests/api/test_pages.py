@@ -153,7 +153,8 @@ def test_assets_are_served_and_nothing_else(open_service):
 def test_sign_in_with_keys(tmp_path, kit):
     with kit.service(tmp_path, worker=False) as (base, store, _):
         _, reader = store.keys.create(["predict"], "dashboard")
-        with httpx.Client(base_url=base) as c:
+        # a browser posting this server's own form sends its Origin (Fetch standard)
+        with httpx.Client(base_url=base, headers={"Origin": base}) as c:
             r = c.get("/models/x?version=1")
             assert r.status_code == 303 and r.headers["location"] == "/login?next=%2Fmodels%2Fx%3Fversion%3D1"
             form = c.get("/login", params={"next": "/models/x"})
@@ -187,7 +188,7 @@ def test_sign_in_refuses_other_sites_and_open_redirects(tmp_path, kit):
             r = c.post("/login", data={"key": reader}, headers={"Origin": "https://elsewhere.example"})
             assert r.status_code == 403 and "another site" in r.text and "tikhon_key" not in c.cookies
             for target in ("//elsewhere.example/x", "https://elsewhere.example/", "/\\elsewhere.example", "models"):
-                r = c.post("/login", data={"key": reader, "next": target})
+                r = c.post("/login", data={"key": reader, "next": target}, headers={"Origin": base})
                 assert r.status_code == 303 and r.headers["location"] == "/", target
 
 

@@ -22,9 +22,10 @@ import textwrap
 import httpx
 import pytest
 
-SCOPES = ("predict", "train", "admin")
-OPEN_ROUTES = {("GET", "/healthz"), ("GET", "/readyz"), ("GET", "/metrics"), ("GET", "/problems"),
-               ("GET", "/problems/{slug}")}
+SCOPES = ("predict", "train", "admin", "metrics")
+OPEN_ROUTES = {("GET", "/healthz"), ("GET", "/readyz"), ("GET", "/problems"), ("GET", "/problems/{slug}")}
+# Outside /v1 but keyed once keys exist: the Prometheus scrape (its counters name models and versions).
+KEYED_OUTSIDE_V1 = {("GET", "/metrics"): {"metrics", "admin"}}
 
 
 @pytest.fixture(scope="module")
@@ -77,7 +78,7 @@ def test_route_by_credential_matrix(keyed, rk):
     with httpx.Client(base_url=server.base, timeout=60) as c:
         for method, path, declared in ops:
             url = concrete(path)
-            if not path.startswith("/v1/"):
+            if not path.startswith("/v1/") and (method, path) not in KEYED_OUTSIDE_V1:
                 assert (method, path) in OPEN_ROUTES, f"{method} {path} is outside /v1 but not a known open route"
                 assert not declared
                 r = call(c, method, url, None)
@@ -86,6 +87,9 @@ def test_route_by_credential_matrix(keyed, rk):
                 continue
             assert declared, f"{method} {path} declares no scope"
             assert declared <= set(SCOPES) and "admin" in declared, (method, path, declared)
+            assert declared == KEYED_OUTSIDE_V1.get((method, path), declared), (method, path, declared)
+            # the metrics scope opens the scrape and nothing else (least privilege)
+            assert ("metrics" in declared) == ((method, path) in KEYED_OUTSIDE_V1), (method, path, declared)
             # no key
             p = rk.assert_problem(call(c, method, url, None), 401)
             assert p["type"] == "/problems/unauthorized"
@@ -142,7 +146,8 @@ def test_cookie_authorizes_reads_only(keyed, rk):
 
 def test_sign_in_cookie_is_httponly_and_samesite(keyed):
     server, keys, _ = keyed
-    r = httpx.post(f"{server.base}/login", data={"key": keys["predict"], "next": "/"}, timeout=60)
+    own = {"Origin": server.base}  # what a browser sends with this server's own sign-in form
+    r = httpx.post(f"{server.base}/login", data={"key": keys["predict"], "next": "/"}, headers=own, timeout=60)
     assert r.status_code == 303
     cookies = [v for k, v in r.headers.multi_items() if k.lower() == "set-cookie"]
     assert len(cookies) == 1
@@ -152,7 +157,8 @@ def test_sign_in_cookie_is_httponly_and_samesite(keyed):
     assert "samesite=strict" in attrs
     assert "path=/" in attrs
     # a wrong key sets no cookie
-    bad = httpx.post(f"{server.base}/login", data={"key": "tikhon_000000000000_" + "B" * 43, "next": "/"}, timeout=60)
+    bad = httpx.post(f"{server.base}/login", data={"key": "tikhon_000000000000_" + "B" * 43, "next": "/"}, headers=own,
+                     timeout=60)
     assert bad.status_code == 401 and "set-cookie" not in bad.headers
 
 
@@ -222,8 +228,8 @@ def test_keys_never_appear_in_the_logs(tmp_path, rk):
             httpx.get(f"{b}/v1/models", headers={"authorization": f"Bearer {secret}x"}, timeout=60)
             httpx.get(f"{b}/v1/models", cookies={"tikhon_key": secret}, timeout=60)
             httpx.get(f"{b}/", cookies={"tikhon_key": secret}, timeout=60)
-            httpx.post(f"{b}/login", data={"key": secret, "next": "/"}, timeout=60)
-            httpx.post(f"{b}/login", data={"key": secret + "x", "next": "/"}, timeout=60)
+            httpx.post(f"{b}/login", data={"key": secret, "next": "/"}, headers={"Origin": b}, timeout=60)
+            httpx.post(f"{b}/login", data={"key": secret + "x", "next": "/"}, headers={"Origin": b}, timeout=60)
             httpx.post(f"{b}/v1/models/pumps/predict", headers=h, content=b"{broken", timeout=60)  # an error path
         httpx.get(f"{b}/v1/models", headers={"authorization": f"Bearer {revoked}"}, timeout=60)
         created = httpx.post(f"{b}/v1/keys", headers={"authorization": f"Bearer {keys['admin']}"},

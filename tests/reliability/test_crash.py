@@ -192,7 +192,7 @@ def test_sigkill_worker_at_random_points_of_training(api, rk, full, tmp_path):
         victim = rk.WorkerProcess(settings, tmp_path / f"worker-{i}-victim.log")
         claimed = wait_for(lambda: (j := job_of(server.base, job_id))["state"] != "queued" and j, f"claim of {job_id}")
         time.sleep(point * span)
-        victim.kill(group=bool(i % 2))  # even rounds: the worker alone (its training process lives on)
+        victim.kill(group=bool(i % 2))  # even rounds: the worker alone (its training process dies with it)
         victim.stop()
         after = job_of(server.base, job_id)
         landed.append({"round": i, "point": round(point, 3), "after_s": round(point * span, 2),

@@ -165,16 +165,6 @@ def test_live_switch_and_key_revocation_reach_every_process(rk, tmp_path, two_ve
             pid: [401] for pid in refused}
 
 
-def scrape(base: str) -> tuple[int, dict[tuple, float]]:
-    r = httpx.get(f"{base}/metrics", timeout=30)
-    assert r.status_code == 200
-    samples = {}
-    for family in text_string_to_metric_families(r.text):
-        for s in family.samples:
-            samples[(s.name, tuple(sorted(s.labels.items())))] = s.value
-    return int(r.headers["x-tikhon-process"]), samples
-
-
 def test_metrics_are_summed_over_processes(rk, tmp_path, two_versions):
     admin = {"Authorization": f"Bearer {two_versions['admin']}"}
     route = ("tikhon_http_requests_total",
@@ -187,7 +177,7 @@ def test_metrics_are_summed_over_processes(rk, tmp_path, two_versions):
         assert len(answered) == PROCESSES and sent >= 2 * PROCESSES
         # Each process counted only its own share, yet every scrape, whichever process answers it, shows
         # the sum; scraping until every process has answered, every figure is the same.
-        scrapes = sweep(lambda: httpx.get(f"{srv.base}/metrics", timeout=30), each=2)
+        scrapes = sweep(lambda: httpx.get(f"{srv.base}/metrics", headers=admin, timeout=30), each=2)
         for pid, responses in scrapes.items():
             for r in responses:
                 samples = {(s.name, tuple(sorted(s.labels.items()))): s.value
@@ -200,7 +190,7 @@ def test_metrics_are_summed_over_processes(rk, tmp_path, two_versions):
         os.kill(dead, signal.SIGKILL)
         srv.wait_for("API process ready", count=PROCESSES + 1)
         assert srv.slot_pid(1) != dead
-        scrapes = sweep(lambda: httpx.get(f"{srv.base}/metrics", timeout=30), each=2)
+        scrapes = sweep(lambda: httpx.get(f"{srv.base}/metrics", headers=admin, timeout=30), each=2)
         assert dead not in scrapes
         for responses in scrapes.values():
             for r in responses:

@@ -175,3 +175,37 @@ def test_unfinished_job_folder_survives_sweep_and_finished_one_does_not(store):
         conn.execute(sa.update(jobs_t).where(jobs_t.c.id == job["id"]).values(state="failed"))
     assert Store(store.settings).last_sweep["job_folders"] == 1
     assert not folder.exists()
+
+
+def test_a_job_publishes_only_through_its_holder_and_only_once(store, kit):
+    """A worker presumed dead (its job re-queued and claimed by another) cannot publish the job's result,
+    and the job's holder cannot publish a second version: the check runs inside the publish transaction
+    (common practice for fencing a lease holder: the lease is re-checked where the write commits)."""
+    body, arrays = kit.linear_artifact(seed=1)
+    job, _ = store.jobs.submit("m", {"spec": {}})
+    first = store.jobs.claim("worker-a")
+    _age_heartbeat(store, job["id"], 120)
+    assert [j["id"] for j in store.jobs.requeue_stale(60, 3)] == [job["id"]]
+    second = store.jobs.claim("worker-b")
+    assert first["id"] == second["id"] == job["id"] and second["attempts"] == 2
+    with pytest.raises(Conflict, match="no longer held by worker 'worker-a'"):
+        store.publish("m", body, arrays, job_id=job["id"], holder="worker-a")
+    assert store.list_models() == []  # nothing published, no version number used
+    row = store.publish("m", body, arrays, job_id=job["id"], holder="worker-b")
+    assert row["version"] == 1 and row["job_id"] == job["id"]
+    with pytest.raises(Conflict, match="already published version 1"):
+        store.publish("m", body, arrays, job_id=job["id"], holder="worker-b")
+    assert [v["version"] for v in store.list_versions("m")] == [1]
+    # The next publish still gets the next number: the refused ones left no gap.
+    assert store.publish("m", body, arrays)["version"] == 2
+
+
+def test_a_worker_does_not_requeue_its_own_job(store):
+    """A worker that is alive enough to look for stale jobs is not dead: a late heartbeat of its own job is
+    left for others to judge (they re-queue it if the worker really stopped)."""
+    job, _ = store.jobs.submit("m", {"spec": {}})
+    store.jobs.claim("w1")
+    _age_heartbeat(store, job["id"], 120)
+    assert store.jobs.requeue_stale(60, 3, caller="w1") == []
+    assert store.jobs.get(job["id"])["state"] == "running"
+    assert [j["id"] for j in store.jobs.requeue_stale(60, 3, caller="w2")] == [job["id"]]

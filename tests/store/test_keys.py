@@ -55,3 +55,48 @@ def test_keys_from_another_store_instance(store):
 def test_bad_scopes(store, scopes):
     with pytest.raises(InvalidSpec, match="scopes"):
         store.keys.create(scopes, "x")
+
+
+def test_the_last_admin_key_is_kept_when_asked(store):
+    """``revoke(keep_last_admin=True)`` (what the HTTP route uses) refuses the last active admin key with a
+    Conflict naming ``tikhon keys revoke --local``; without the flag (the local command) it goes. A
+    ``metrics`` key is a valid scope and does not count as an admin key."""
+    from service.errors import Conflict
+
+    scraper, _ = store.keys.create(["metrics"], "scraper")
+    first, _ = store.keys.create(["admin"], "one")
+    second, _ = store.keys.create(["predict", "admin"], "two")
+    assert store.keys.revoke(first, keep_last_admin=True)["active"] is False  # another admin key remains
+    with pytest.raises(Conflict, match=f"last active admin key.*tikhon keys revoke --local {second}"):
+        store.keys.revoke(second, keep_last_admin=True)
+    assert store.keys.revoke(scraper, keep_last_admin=True)["active"] is False  # not an admin key
+    assert store.keys.revoke(first, keep_last_admin=True)["active"] is False  # already revoked: idempotent
+    assert store.keys.revoke(second)["active"] is False  # the local command's way
+    assert store.keys.any_active() is False
+
+
+def test_two_concurrent_revocations_keep_one_admin_key(store):
+    """Two threads revoke the last two admin keys at once (HTTP route's flag): exactly one succeeds."""
+    import threading
+
+    from service.errors import Conflict
+
+    ids = [store.keys.create(["admin"], f"admin {i}")[0] for i in range(2)]
+    barrier = threading.Barrier(2)
+    outcome: dict[str, str] = {}
+
+    def revoke(key_id: str) -> None:
+        barrier.wait()
+        try:
+            store.keys.revoke(key_id, keep_last_admin=True)
+            outcome[key_id] = "revoked"
+        except Conflict:
+            outcome[key_id] = "kept"
+
+    threads = [threading.Thread(target=revoke, args=(k,)) for k in ids]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join(60)
+    assert sorted(outcome.values()) == ["kept", "revoked"], outcome
+    assert [k["active"] for k in store.keys.list()].count(True) == 1

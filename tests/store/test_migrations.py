@@ -8,7 +8,7 @@ from alembic import command
 from alembic.autogenerate import compare_metadata
 from alembic.runtime.migration import MigrationContext
 
-from service.errors import StorageFailure
+from service.errors import Conflict, StorageFailure
 from service.store import Store
 from service.store.catalog import SCHEMA_HEAD, VERSION_TABLE, alembic_config, head_revision, write_txn
 from service.store.schema import metadata
@@ -38,9 +38,14 @@ def test_downgrade_to_nothing_and_back(store, kit):
     store.close()
     reopened = Store(store.settings, model_loader=kit.linear_loader)  # migrates again at open
     assert reopened.list_models() == []
-    # The version folder from before is now an orphan (no catalog row): the start-up sweep removed it.
-    assert not (reopened.root / "m" / "1").exists()
-    assert reopened.publish("m", *kit.linear_artifact())["version"] == 1
+    # The version folder from before has no catalog row now: it is kept and reported, never swept away,
+    # and publishing over its number is refused until `tikhon store recover` registers it.
+    assert (reopened.root / "m" / "1" / "manifest.json").is_file()
+    assert reopened.unlisted == [("m", 1)]
+    with pytest.raises(Conflict, match="m/1 exists but the catalog has no row"):
+        reopened.publish("m", *kit.linear_artifact())
+    assert reopened.recover()["registered"] == [{"name": "m", "version": 1}]
+    assert reopened.publish("m", *kit.linear_artifact())["version"] == 2
     reopened.close()
 
 

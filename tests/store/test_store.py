@@ -200,7 +200,7 @@ def test_sweep_leaves_nothing_behind_after_clean_use(store, kit):
 
 
 def test_ping(store):
-    assert store.ping() == {"catalog": "ok", "store": "ok"}
+    assert store.ping() == {"catalog": "ok", "store": "ok", "versions": "ok"}
 
 
 def test_disk_full_while_publishing_leaves_nothing(store, kit, monkeypatch):
@@ -230,3 +230,15 @@ def test_a_file_in_the_way_of_a_model_folder(store, kit):
     with pytest.raises(StorageFailure, match="is not a folder"):
         store.publish("m", *kit.linear_artifact())
     assert store.list_models() == []
+
+
+@pytest.mark.parametrize("version", [2**31, 2**63, 10**20])
+def test_versions_beyond_the_catalog_integer_range_are_not_found(store, kit, version):
+    """PostgreSQL's INTEGER is 32-bit, SQLite's 64-bit (their manuals, from memory): a number beyond either
+    is "no such version" on both backends, never a driver overflow turned into a storage failure."""
+    store.publish("m", *kit.linear_artifact(seed=1))
+    for call in (store.get_version, store.get_manifest, store.load, store.delete_version):
+        with pytest.raises(NotFound, match="version numbers go up to 2147483647"):
+            call("m", version)
+    with pytest.raises(NotFound):
+        store.set_live("m", version, actor="test", reason="overflow probe")

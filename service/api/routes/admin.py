@@ -2,7 +2,8 @@
 
 * ``POST /v1/keys`` makes a key with one or more scopes; the answer is the only place its secret ever
   appears (the catalog keeps a SHA-256 of it). ``GET /v1/keys`` lists keys without secrets,
-  ``DELETE /v1/keys/{key_id}`` revokes one (idempotent).
+  ``DELETE /v1/keys/{key_id}`` revokes one (idempotent), except the last active admin key (409: revoke
+  that one with ``tikhon keys revoke --local`` on the server's machine).
 * ``POST /v1/models/{name}/prune`` deletes every version of a model except the live one and the newest
   ``keep``; deleted numbers are never handed out again.
 
@@ -32,7 +33,7 @@ _FORBID = ConfigDict(extra="forbid")
 
 class KeyRequest(BaseModel):
     model_config = _FORBID
-    scopes: list[str] = Field(..., min_length=1, description="One or more of predict, train, admin.")
+    scopes: list[str] = Field(..., min_length=1, description="One or more of predict, train, admin, metrics.")
     label: str = Field("", max_length=200, description="A note saying who or what uses the key.")
 
 
@@ -79,9 +80,9 @@ async def create_key(request: Request) -> Response:
     return json_response(out, status=201, headers={"Location": f"/v1/keys/{out['key_id']}"})
 
 
-@router.delete("/keys/{key_id}", summary="Revoke an API key (idempotent)", **auth.ADMIN)
+@router.delete("/keys/{key_id}", summary="Revoke an API key (idempotent); never the last admin key", **auth.ADMIN)
 def revoke_key(request: Request, key_id: str = Path(..., max_length=64)) -> Response:
-    entry = request.app.state.store.keys.revoke(key_id)
+    entry = request.app.state.store.keys.revoke(key_id, keep_last_admin=True)
     request.app.state.gate.forget()
     return json_response(entry)
 

@@ -1,12 +1,17 @@
-"""Open routes (no key needed): liveness, readiness, metrics and the problem-type documentation."""
+"""Routes outside ``/v1``: liveness, readiness and the problem-type documentation (open), and metrics.
+
+``/metrics`` needs a key with the ``metrics`` (or ``admin``) scope once any key exists, like a ``/v1``
+route (its counters name models and versions); while no key exists it is open, as every route is, on
+a server that then listens on loopback only.
+"""
 
 from __future__ import annotations
 
-from fastapi import APIRouter, Request
+from fastapi import APIRouter, Depends, Request
 from fastapi.responses import HTMLResponse, JSONResponse, Response
 from prometheus_client import CONTENT_TYPE_LATEST
 
-from service.api import problems
+from service.api import auth, problems
 from service.errors import NotFound
 
 router = APIRouter(tags=["health"])
@@ -18,7 +23,7 @@ async def healthz() -> dict:
 
 
 @router.get(
-    "/readyz", summary="The catalog answers and the store folder is writable",
+    "/readyz", summary="The catalog answers, the store folder is writable and every version folder is listed",
     responses={503: {"description": "Not ready; the body says which check failed."}},
 )
 def readyz(request: Request):
@@ -30,16 +35,19 @@ def readyz(request: Request):
     ready = all(v == "ok" for v in checks.values())
     if ready:
         return {"status": "ready", "checks": checks}
+    failing = {k: v for k, v in checks.items() if v != "ok"}
+    advice = "" if set(failing) == {"versions"} else (
+        ". Check the catalog URL (TIKHON_DATABASE_URL) and the store folder (TIKHON_STORE) permissions")
     body = problems.problem_body(
         slug="not-ready", title="Not ready", status=503,
-        detail="The service cannot take work: " + "; ".join(v for v in checks.values() if v != "ok")
-        + ". Check the catalog URL (TIKHON_DATABASE_URL) and the store folder (TIKHON_STORE) permissions.",
+        detail="The service cannot take work: " + "; ".join(failing.values()) + advice + ".",
         instance="/readyz", checks=checks,
     )
-    return problems.problem_response(body)
+    return problems.problem_response(body, {"Retry-After": str(problems.CATALOG_RETRY_AFTER_S)})
 
 
-@router.get("/metrics", summary="Prometheus text format", response_class=Response)
+@router.get("/metrics", summary="Prometheus text format (metrics or admin scope once keys exist)",
+            response_class=Response, dependencies=[Depends(auth.authorize)], **auth.METRICS)
 def metrics(request: Request) -> Response:
     return Response(request.app.state.metrics.render(), media_type=CONTENT_TYPE_LATEST)
 

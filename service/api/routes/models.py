@@ -10,13 +10,14 @@ from fastapi.responses import Response
 from service.api import auth
 from service.api.render import json_response, read_json
 from service.api.schemas import LiveRequest, schema_ref
-from service.errors import InvalidData
+from service.errors import Conflict, IntegrityFailure, InvalidData
 from service.store.names import validate_name
+from service.store.schema import VERSION_MAX
 
 router = APIRouter(prefix="/v1", tags=["models"])
 
 NamePath = Path(..., description="Model name: 1-63 of a-z 0-9 _ . - starting with a letter or digit.")
-VersionPath = Path(..., ge=1, description="Version number (1, 2, ...).")
+VersionPath = Path(..., ge=1, le=VERSION_MAX, description="Version number (1, 2, ...).")
 
 # Large parts of the manifest have their own routes; the metadata route links to them instead.
 _SEPARATE = {"cv_table": "cv", "path": "path"}
@@ -131,6 +132,16 @@ async def set_live(request: Request, name: str = NamePath) -> Response:
     store = _store(request)
 
     def change() -> Any:
+        try:
+            store.verify(name, body.version)  # a version that would answer 500 on every prediction never goes live
+        except IntegrityFailure as err:
+            live = store.live_version(name)
+            stays = f"version {live} stays live" if live is not None else "the model stays without a live version"
+            raise Conflict(
+                f"version {body.version} of model {name!r} failed verification ({err}); {stays}. Make another "
+                "version live, or delete this one and train again.",
+                errors=[{"field": "version", "value": body.version, "message": "failed verification: " + str(err)}],
+            ) from None
         return store.set_live(name, body.version, actor=_actor(request), reason=body.reason)
 
     result = await to_thread.run_sync(change)

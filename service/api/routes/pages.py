@@ -14,6 +14,7 @@ from urllib.parse import quote, urlsplit
 from fastapi import APIRouter, Path, Query, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 
+from service import paths
 from service.api import auth, pages
 from service.errors import Forbidden, NotFound, TikhonError, Unauthorized
 from service.store.names import validate_name
@@ -29,7 +30,10 @@ _HEADERS = {
     "Content-Security-Policy": "default-src 'self'; img-src 'self'; style-src 'self'; script-src 'self'; "
     "connect-src 'self'; form-action 'self'; frame-ancestors 'none'; base-uri 'none'; object-src 'none'",
     "X-Content-Type-Options": "nosniff",
-    "Referrer-Policy": "no-referrer",
+    # same-origin, not no-referrer: under no-referrer a browser sends "Origin: null" with a form POST (Fetch
+    # standard, "append a request Origin header"), and /login must see its own origin to refuse other sites.
+    # Other sites still get no referrer at all.
+    "Referrer-Policy": "same-origin",
     "Cache-Control": "no-store",
     "X-Frame-Options": "DENY",
 }
@@ -67,7 +71,7 @@ def _guarded(request: Request, render) -> Response:
     except TikhonError as exc:  # the same message and status as the JSON problem, as a page
         from service.api.problems import status_for
 
-        return _html(pages.error_page(exc.title, str(exc), signed_in=signed_in), status_for(exc))
+        return _html(pages.error_page(exc.title, paths.redact(str(exc)), signed_in=signed_in), status_for(exc))
 
 
 @router.get("/", response_class=HTMLResponse)
@@ -133,6 +137,28 @@ def _safe_next(value: str | None) -> str:
     return value
 
 
+def _foreign_origin(request: Request) -> str | None:
+    """Why a sign-in post is refused (login CSRF), or None when it comes from this server's own page.
+
+    A browser sends ``Origin`` with every form POST (Fetch standard, "append a request Origin header");
+    a missing one, ``null`` (sandboxed frames, ``data:`` pages, some redirects) or another site's is
+    refused, so no other page can sign a visitor in under a key of its choosing. The Origin's host and
+    port must equal the ``Host`` the request was sent to."""
+    origin = (request.headers.get("origin") or "").strip()
+    if not origin:
+        return ("The sign-in form arrived without an Origin header, so it cannot be told apart from a post "
+                "made by another site; sign in from this server's own sign-in page in a web browser.")
+    if origin.lower() == "null":
+        return ("The sign-in form was posted from an opaque origin (Origin: null: a sandboxed frame, a local file "
+                "or a data: page); open this server's sign-in page and post it from there.")
+    parts = urlsplit(origin)
+    host = (request.headers.get("host") or "").strip().lower()
+    if parts.scheme not in ("http", "https") or not parts.netloc or parts.netloc.lower() != host:
+        return (f"The sign-in form was posted from another site ({origin[:200]}); open the sign-in page of this "
+                "server and post it from there.")
+    return None
+
+
 @router.get("/login", response_class=HTMLResponse)
 def login_form(request: Request, next: str | None = Query(None)) -> Response:
     return _html(pages.login_page(_safe_next(next)))
@@ -142,11 +168,9 @@ def login_form(request: Request, next: str | None = Query(None)) -> Response:
 async def login(request: Request) -> Response:
     from anyio import to_thread
 
-    origin = request.headers.get("origin")
-    if origin and origin != "null" and urlsplit(origin).netloc != request.headers.get("host"):
-        return _html(pages.error_page("Sign-in refused", f"The sign-in form was posted from another site ({origin}); "
-                                      "open the sign-in page of this server and post it from there.",
-                                      signed_in=False), 403)
+    refusal = _foreign_origin(request)
+    if refusal is not None:
+        return _html(pages.error_page("Sign-in refused", refusal, signed_in=False), 403)
     try:
         form = await request.form(max_files=0, max_fields=4)
     except Exception:

@@ -19,11 +19,12 @@ from fastapi.responses import Response
 from service.api import auth, plots
 from service.errors import InvalidData, NotFound
 from service.store.names import validate_name
+from service.store.schema import VERSION_MAX
 
 router = APIRouter(prefix="/v1", tags=["plots"])
 
 NamePath = Path(..., description="Model name.")
-VersionPath = Path(..., ge=1, description="Version number (1, 2, ...).")
+VersionPath = Path(..., ge=1, le=VERSION_MAX, description="Version number (1, 2, ...).")
 FormatQuery = Query("svg", description="Image format: 'svg' (default, text kept as text) or 'png'.",
                     json_schema_extra={"enum": list(plots.FORMATS)})
 

@@ -18,13 +18,16 @@ from anyio import to_thread
 from fastapi import APIRouter, Request
 from fastapi.responses import Response
 
+from service.csvcells import number_cell, text_cell
 from service.api import auth, tables
 from service.api.models import Served
 from service.api.render import media_type, parse_json
 from service.api.problems import UnsupportedMediaType
+from service.api.stale import note_stale
 from service.api.schemas import PredictRequest, PredictResponse, schema_ref
 from service.errors import InvalidData
 from service.store.names import validate_name
+from service.store.schema import VERSION_MAX
 
 router = APIRouter(prefix="/v1", tags=["predict"])
 
@@ -56,7 +59,7 @@ _DOC = {
 # solving on the hottest route); they are documented here instead.
 _PARAMS = {
     "name": {"name": "name", "in": "path", "required": True, "schema": {"type": "string"}, "description": "Model name."},
-    "version": {"name": "version", "in": "path", "required": True, "schema": {"type": "integer", "minimum": 1},
+    "version": {"name": "version", "in": "path", "required": True, "schema": {"type": "integer", "minimum": 1, "maximum": VERSION_MAX},
                 "description": "Version number."},
     "interval": {"name": "interval", "in": "query", "required": False,
                  "schema": {"type": "number", "exclusiveMinimum": 0, "exclusiveMaximum": 1},
@@ -78,10 +81,12 @@ def _query_interval(request: Request) -> float | None:
 
 
 def _version(raw: str) -> int:
-    if not raw.isdigit() or int(raw) < 1:
+    # digits checked before int(): a number beyond the catalog's range (or past Python's 4300-digit limit
+    # on int()) is refused here rather than raising an OverflowError or ValueError further down
+    if not (raw.isascii() and raw.isdigit() and len(raw) <= len(str(VERSION_MAX))) or not 1 <= int(raw) <= VERSION_MAX:
         raise InvalidData(
-            f"path.version must be a whole number from 1, got {raw!r}.",
-            errors=[{"field": "path.version", "value": raw, "message": "expected an integer >= 1"}],
+            f"path.version must be a whole number from 1 to {VERSION_MAX}, got {raw[:40]!r}.",
+            errors=[{"field": "path.version", "value": raw[:40], "message": f"expected an integer from 1 to {VERSION_MAX}"}],
         )
     return int(raw)
 
@@ -93,7 +98,9 @@ async def predict_live(request: Request) -> Response:
     cache = request.app.state.models
     version = cache.cached_live(name)
     if version is None:
-        version = await to_thread.run_sync(cache.live_version, name)
+        version, age = await to_thread.run_sync(cache.live_version_stale, name)
+        if age is not None:
+            note_stale(request, age)
     served = cache.cached(name, version) or await to_thread.run_sync(cache.load, name, version)
     return await _predict(request, served, interval)
 
@@ -196,17 +203,18 @@ def _json(served: Served, detail: dict[str, Any], with_interval: bool) -> bytes:
 
 
 def _csv(detail: dict[str, Any], with_interval: bool) -> str:
-    """CSV answer; numbers are written with Python's shortest round-trip repr, so they parse back exactly."""
+    """CSV answer; numbers are written with Python's shortest round-trip repr, so they parse back exactly
+    (a non-finite value as an empty cell); text cells are neutralized against formula injection."""
     out = io.StringIO()
     w = csv.writer(out, lineterminator="\n")
-    values = detail["value"].tolist()
-    warn = ["; ".join(ws) for ws in detail["warnings"]]
+    values = [number_cell(v) for v in detail["value"].tolist()]
+    warn = [text_cell("; ".join(ws)) for ws in detail["warnings"]]  # labels and names come from callers
     if with_interval:
         w.writerow(["value", "lower", "upper", "warnings"])
-        lower = ["" if not math.isfinite(v) else repr(v) for v in detail["lower"].tolist()]
-        upper = ["" if not math.isfinite(v) else repr(v) for v in detail["upper"].tolist()]
-        w.writerows(zip(map(repr, values), lower, upper, warn))
+        lower = [number_cell(v) for v in detail["lower"].tolist()]
+        upper = [number_cell(v) for v in detail["upper"].tolist()]
+        w.writerows(zip(values, lower, upper, warn))
     else:
         w.writerow(["value", "warnings"])
-        w.writerows(zip(map(repr, values), warn))
+        w.writerows(zip(values, warn))
     return out.getvalue()

@@ -139,10 +139,10 @@ async def submit(request: Request, name: str = Path(..., description="Model name
         try:
             job, created = store.jobs.submit(name, job_request, data_path=str(path), idempotency_key=key)
         except BaseException:
-            path.unlink(missing_ok=True)
+            intake.discard(path)  # never raises: the submission's own error is the answer
             raise
         if not created:
-            path.unlink(missing_ok=True)
+            intake.discard(path)
         return job, created
 
     job, created = await to_thread.run_sync(accept)

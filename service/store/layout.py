@@ -1,0 +1,183 @@
+"""Which folder is a store, and what in it the service may ever remove.
+
+A store folder carries a marker file, ``.tikhon-store`` (JSON: ``{"format": "tikhon-store",
+"format_version": 1, "created_at": ...}``), written when the service first takes the folder. The
+service opens a folder as its store only when
+
+* the folder is new or empty (the marker is written), or
+* it holds the marker, or
+* it holds nothing but what a Tikhon store holds (``.staging``, ``.trash``, ``_jobs``, the SQLite catalog
+  files, this repository's ``README.md`` note, and model folders of version folders whose
+  ``manifest.json`` says ``"format": "tikhon-model"``): a store written before markers existed; the
+  marker is written then.
+
+Any other folder is refused before anything in it is created, changed or removed
+(``ForeignFolder``): pointing ``TIKHON_STORE`` at the wrong folder must never cost its files.
+
+What the start-up sweep may remove is only what the service wrote and can prove unfinished:
+
+* a staging folder ``.staging/<token>/`` whose lock file ``<token>.lock`` holds ``STAGING_MARK`` and is
+  not locked by a living process;
+* entries of ``.trash/`` named like the service names them (32 hex digits);
+* a version folder that holds a ``.publishing`` marker naming the catalog in use while that catalog
+  has no row for it: a publish that crashed between its rename and its commit;
+* a version folder that holds a ``.deleting`` marker naming the catalog in use while that catalog
+  holds a tombstone for it: a deletion that crashed between its commit and its erase.
+
+Everything else that the catalog does not list is kept and reported.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any
+
+from service.errors import StorageFailure
+
+STORE_MARKER = ".tikhon-store"
+STORE_FORMAT = "tikhon-store"
+STORE_FORMAT_VERSION = 1
+STAGING_MARK = b"tikhon-staging 1\n"
+PUBLISHING_MARKER = ".publishing"
+DELETING_MARKER = ".deleting"
+HEX_TOKEN = re.compile(r"[0-9a-f]{32}")
+
+# Entries a store written before markers existed may hold at its top level (besides model folders).
+_KNOWN_TOP = frozenset({".staging", ".trash", "_jobs", "catalog.db", "catalog.db-wal", "catalog.db-shm",
+                        "catalog.db-journal", "README.md"})
+
+
+class ForeignFolder(StorageFailure):
+    """The store folder holds files that Tikhon did not write; nothing in it was touched."""
+
+    slug = "foreign-store-folder"
+    title = "Store folder holds other files"
+
+
+def relative(path: Path | str, root: Path | str) -> str:
+    """``path`` relative to ``root`` when it lies inside it, else its base name: messages name paths
+    without revealing where the store sits on the host."""
+    try:
+        return Path(path).resolve().relative_to(Path(root).resolve()).as_posix()
+    except (ValueError, OSError):
+        return Path(path).name
+
+
+def _is_version_folder(path: Path) -> bool:
+    try:
+        with open(path / "manifest.json", "rb") as fh:
+            head = fh.read(4096)
+    except OSError:
+        return False
+    return b'"format"' in head and b'"tikhon-model"' in head
+
+
+def _looks_like_model_folder(path: Path) -> bool:
+    if not path.is_dir() or path.is_symlink():
+        return False
+    entries = list(path.iterdir())
+    return bool(entries) and all(
+        e.name.isdigit() and e.is_dir() and not e.is_symlink() and _is_version_folder(e) for e in entries)
+
+
+def foreign_entries(root: Path) -> list[str]:
+    """The top-level entries of an unmarked ``root`` that a Tikhon store would not hold (sorted)."""
+    out = []
+    for entry in sorted(root.iterdir()):
+        if entry.name in _KNOWN_TOP or _looks_like_model_folder(entry):
+            continue
+        out.append(entry.name)
+    return out
+
+
+def claim(root: Path) -> str:
+    """Make sure ``root`` is a store folder, creating it or writing its marker when that is safe.
+
+    Returns what was found: ``"marked"`` (marker present), ``"new"`` (created or empty) or
+    ``"adopted"`` (an unmarked store of an earlier release). Raises ``ForeignFolder`` (nothing touched)
+    when ``root`` holds anything else, and ``StorageFailure`` when it cannot be created or read."""
+    marker = root / STORE_MARKER
+    try:
+        if root.is_dir():
+            if marker.is_file():
+                _check_marker(marker)
+                return "marked"
+            foreign = foreign_entries(root)
+            if foreign:
+                shown = ", ".join(repr(n) for n in foreign[:5]) + (f" and {len(foreign) - 5} more" if len(foreign) > 5 else "")
+                raise ForeignFolder(
+                    f"the store folder {root.name!r} holds {len(foreign)} entr{'y' if len(foreign) == 1 else 'ies'} that "
+                    f"Tikhon did not write ({shown}) and no {STORE_MARKER} marker, so it was left untouched; set "
+                    "TIKHON_STORE to an empty folder or to an existing Tikhon store."
+                )
+            found = "adopted" if any(root.iterdir()) else "new"
+        elif root.exists():
+            raise ForeignFolder(f"the store path {root.name!r} is a file, not a folder; set TIKHON_STORE to a folder.")
+        else:
+            root.mkdir(parents=True)
+            found = "new"
+        body = {"format": STORE_FORMAT, "format_version": STORE_FORMAT_VERSION,
+                "created_at": datetime.now(timezone.utc).isoformat()}
+        tmp = root / f"{STORE_MARKER}.tmp"
+        tmp.write_text(json.dumps(body) + "\n")
+        os.replace(tmp, marker)
+        return found
+    except ForeignFolder:
+        raise
+    except OSError as exc:
+        raise StorageFailure(
+            f"the store folder {root.name!r} cannot be created or written ({exc.strerror or exc}); "
+            "set TIKHON_STORE to a writable folder."
+        ) from None
+
+
+def _check_marker(marker: Path) -> None:
+    try:
+        body = json.loads(marker.read_text())
+        ok = body.get("format") == STORE_FORMAT
+        version = body.get("format_version")
+    except (OSError, ValueError, AttributeError):
+        ok, version = False, None
+    if not ok:
+        raise ForeignFolder(f"{STORE_MARKER} in the store folder is not a Tikhon store marker; the folder was left "
+                            "untouched. Set TIKHON_STORE to an empty folder or to a Tikhon store.")
+    if version not in (STORE_FORMAT_VERSION,):
+        raise StorageFailure(f"the store folder was written by a newer Tikhon (store format {version!r}, this one "
+                             f"reads {STORE_FORMAT_VERSION}); upgrade this one.")
+
+
+def write_publishing_marker(folder: Path, catalog_id: str, token: str) -> None:
+    """Mark ``folder`` as being published into the catalog ``catalog_id`` (removed after the commit)."""
+    _write_marker(folder / PUBLISHING_MARKER, catalog_id, token)
+
+
+def write_deleting_marker(folder: Path, catalog_id: str) -> None:
+    """Mark a version folder as being deleted from the catalog ``catalog_id`` (before its tombstone commits)."""
+    _write_marker(folder / DELETING_MARKER, catalog_id, "delete")
+
+
+def _write_marker(path: Path, catalog_id: str, token: str) -> None:
+    path.write_text(json.dumps({"catalog_id": catalog_id, "token": token}) + "\n")
+
+
+def marker_catalog(folder: Path, marker: str) -> str | None:
+    """The catalog id in ``folder``'s marker file ``marker``, or None when it has none (or a broken one)."""
+    try:
+        body: Any = json.loads((folder / marker).read_text())
+    except (OSError, ValueError):
+        return None
+    value = body.get("catalog_id") if isinstance(body, dict) else None
+    return value if isinstance(value, str) else None
+
+
+def clear_markers(folder: Path) -> None:
+    """Remove the publishing and deleting markers of a version folder the catalog lists as alive."""
+    for marker in (PUBLISHING_MARKER, DELETING_MARKER):
+        try:
+            (folder / marker).unlink()
+        except FileNotFoundError:
+            pass
