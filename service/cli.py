@@ -140,14 +140,22 @@ def serve(
     port: Annotated[Optional[int], typer.Option(help="Port [default: $TIKHON_PORT or 8000].", min=1, max=65535)] = None,
     no_worker: Annotated[bool, typer.Option("--no-worker", help="Do not run a training worker in this process "
                                             "(run 'tikhon worker' separately).")] = False,
+    workers: Annotated[Optional[str], typer.Option(
+        "--workers", help="API processes sharing the port under one supervisor, or 'auto' for one per core "
+        "[default: $TIKHON_WORKERS or 1]. One of them runs the training worker.")] = None,
 ) -> None:
     """Start the HTTP API (and, unless --no-worker, a training worker in the same process)."""
-    settings = _settings(host=host, port=port, embedded_worker=False if no_worker else None)
+    settings = _settings(host=host, port=port, embedded_worker=False if no_worker else None, workers=workers)
     if demo:
         _seed_demo(settings, _opts(ctx).key)
     from service.api.server import run
 
-    _err.print(f"tikhon: serving on http://{settings.host}:{settings.port} (store {settings.store}); Ctrl-C stops.")
+    from service.api.supervisor import process_count
+
+    count = process_count(settings.workers)
+    processes = f", {count} processes" if count > 1 else ""
+    _err.print(f"tikhon: serving on http://{settings.host}:{settings.port} (store {settings.store}{processes}); "
+               "Ctrl-C stops.")
     run(settings)
 
 

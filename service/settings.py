@@ -7,8 +7,9 @@ Nothing reads the environment at import time: the API app factory, the worker an
 from __future__ import annotations
 
 from pathlib import Path
+from typing import Literal
 
-from pydantic import Field
+from pydantic import Field, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
 
@@ -56,6 +57,14 @@ class Settings(BaseSettings):
     # HTTP
     host: str = "127.0.0.1"
     port: int = 8000
+    workers: int | Literal["auto"] = Field(
+        1, description="API processes `tikhon serve` runs on one listening socket under one supervising process; "
+        "'auto': one per core this process may use (CPU affinity and container CPU quota)."
+    )
+    shutdown_grace_s: float = Field(
+        15.0, gt=0, description="On SIGTERM, time in-flight requests get to finish before the server processes are "
+        "stopped anyway."
+    )
     cors_origins: list[str] = Field(default_factory=list)
     log_level: str = "info"
     auth_cache_s: float = Field(
@@ -71,6 +80,16 @@ class Settings(BaseSettings):
         1.0, ge=0, description="Seconds a model's live version number is cached per process; a change made "
         "through this process is seen at once, one made elsewhere after at most this long. 0 disables the cache."
     )
+
+    @field_validator("workers", mode="before")
+    @classmethod
+    def _workers(cls, value):
+        text = str(value).strip().lower()
+        if text == "auto":
+            return "auto"
+        if not text.isdigit() or not 1 <= int(text) <= 256:
+            raise ValueError(f"expected a whole number of processes from 1 to 256 or 'auto', got {value!r}")
+        return int(text)
 
     def catalog_url(self) -> str:
         if self.database_url:

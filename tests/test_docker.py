@@ -152,11 +152,27 @@ def test_compose_services():
     text = COMPOSE.read_text()
     services = re.findall(r"^  ([a-z][a-z0-9_-]*):\s*$", text.split("\nservices:\n", 1)[1].split("\nvolumes:\n", 1)[0], re.M)
     assert services == ["db", "api", "worker"]
-    assert compose_commands() == [["tikhon", "serve", "--no-worker"], ["tikhon", "worker"]]
+    assert compose_commands() == [["tikhon", "serve", "--no-worker", "--workers", "auto"], ["tikhon", "worker"]]
     assert re.search(r"^\s*image: postgres:\d+", text, re.M)
     store = dockerfile_env()["TIKHON_STORE"]
     assert text.count(f"store:{store}") == 2  # api and worker share the store volume
     assert "dockerfile: docker/Dockerfile" in text and (ROOT / "docker" / "Dockerfile").is_file()
+
+
+def test_the_image_uses_every_core_and_stops_in_time():
+    from service.settings import Settings
+
+    env = dockerfile_env()
+    image = Settings(**{k.removeprefix("TIKHON_").lower(): v for k, v in env.items() if k.startswith("TIKHON_")})
+    assert image.workers == "auto"
+    # `docker stop` waits 10 s between SIGTERM and SIGKILL by default (Docker CLI reference, `--time`;
+    # from memory): the image's grace period must end before that.
+    assert image.shutdown_grace_s < 10
+    api = COMPOSE.read_text().split("\n  api:\n", 1)[1].split("\n  worker:\n", 1)[0]
+    assert re.search(r"^    init: true$", api, re.M)  # reaps training processes a killed API process left
+    grace = float(re.search(r'TIKHON_SHUTDOWN_GRACE_S: "?([\d.]+)"?', api).group(1))
+    stop = float(re.search(r"^    stop_grace_period: (\d+)s$", api, re.M).group(1))
+    assert grace < stop  # compose waits longer than the server's own grace period
 
 
 def _healthcheck_code() -> str:
@@ -178,7 +194,7 @@ def test_healthcheck_passes_on_a_live_server_and_fails_on_a_closed_port(live_ser
     assert bad.returncode != 0
 
 
-@pytest.mark.parametrize("module", ["service.cli", "service.api.server", "service.worker"])
+@pytest.mark.parametrize("module", ["service.cli", "service.api.server", "service.api.supervisor", "service.worker"])
 def test_modules_the_image_runs_import(module):
     # `tikhon serve` runs service.api.server, `tikhon worker` service.worker; both through service.cli.
     __import__(module)

@@ -25,11 +25,14 @@ from service.settings import Settings
 API_VERSION = "1"
 
 
-def create_app(settings: Settings, store: Any = None, *, on_shutdown=None) -> FastAPI:
+def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multiprocess_dir: str | None = None,
+               process_header: bool = False) -> FastAPI:
     """Build the HTTP app. ``store`` defaults to ``service.store.Store(settings)``.
 
     ``on_shutdown``: optional callables run when the app's lifespan ends (the server uses it to stop an
-    embedded worker)."""
+    embedded worker). ``multiprocess_dir`` and ``process_header``: set by ``tikhon serve --workers N`` in
+    each of its API processes (metrics summed over the processes; an ``X-Tikhon-Process`` header naming
+    the process that answered)."""
     if store is None:
         from service.store import Store
 
@@ -58,7 +61,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None) -> Fa
         redoc_url=None,
         lifespan=lifespan,
     )
-    metrics = ApiMetrics()
+    metrics = ApiMetrics(multiprocess_dir)
     app.state.settings = settings
     paths.register(settings)  # problem details name these folders' paths relative to them, never absolute
     app.state.store = store
@@ -89,7 +92,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None) -> Fa
             expose_headers=["Location", "X-Request-Id", "Retry-After", "Tikhon-Catalog"],
         )
     app.add_middleware(BodyLimit, limit=settings.max_body_bytes)
-    app.add_middleware(RequestContext, metrics=metrics)
+    app.add_middleware(RequestContext, metrics=metrics, process_header=process_header)
 
     _document_security(app)
     return app

@@ -2,6 +2,12 @@
 
 Each app owns its own ``CollectorRegistry`` (not the process-global one), so tests and benchmarks can
 build several apps in one process. ``GET /metrics`` renders it in the Prometheus text format.
+
+Under ``tikhon serve --workers N`` (N >= 2) every API process writes its counters and histograms to
+files in one private folder (prometheus_client's multiprocess mode: the supervisor sets
+``PROMETHEUS_MULTIPROC_DIR`` for its children before they import prometheus_client), and a scrape
+answered by any process sums the files of all processes, those of processes that died and were
+replaced included, so counters never go down between scrapes whichever process answers.
 """
 
 from __future__ import annotations
@@ -9,7 +15,7 @@ from __future__ import annotations
 from collections import Counter as _Tally
 from typing import Callable, Iterable
 
-from prometheus_client import CollectorRegistry, Counter, Histogram, generate_latest
+from prometheus_client import CollectorRegistry, Counter, Histogram, generate_latest, values
 from prometheus_client.core import GaugeMetricFamily
 
 # Latency buckets in seconds: dense below 50 ms where single-row predictions live.
@@ -37,7 +43,17 @@ class _JobStates:
 
 
 class ApiMetrics:
-    def __init__(self) -> None:
+    """The app's metrics. ``multiprocess_dir``: the folder shared by the processes of one server (see the
+    module docstring); prometheus_client must already be in multiprocess mode for that same folder."""
+
+    def __init__(self, multiprocess_dir: str | None = None) -> None:
+        if multiprocess_dir is not None and values.ValueClass is values.MutexValue:
+            raise RuntimeError(
+                "multiprocess metrics need PROMETHEUS_MULTIPROC_DIR set before prometheus_client is imported; "
+                "start the process through 'tikhon serve --workers N'."
+            )
+        self.multiprocess_dir = multiprocess_dir
+        self._job_states = None
         self.registry = CollectorRegistry(auto_describe=True)
         self.requests = Counter(
             "tikhon_http_requests", "HTTP requests by route template, method and status.",
@@ -65,7 +81,8 @@ class ApiMetrics:
         self._seen: dict[tuple[str, str, int], tuple] = {}
 
     def watch_jobs(self, list_jobs: Callable[[], Iterable[dict]]) -> None:
-        self.registry.register(_JobStates(list_jobs))
+        self._job_states = _JobStates(list_jobs)
+        self.registry.register(self._job_states)
 
     def observe_request(self, method: str, route: str, status: int, seconds: float) -> None:
         key = (route, method, status)
@@ -77,4 +94,13 @@ class ApiMetrics:
         children[1].observe(seconds)
 
     def render(self) -> bytes:
-        return generate_latest(self.registry)
+        if self.multiprocess_dir is None:
+            return generate_latest(self.registry)
+        from prometheus_client.multiprocess import MultiProcessCollector
+
+        # Every process's files, summed per label set; the job counts come from the catalog, once.
+        merged = CollectorRegistry(auto_describe=False)
+        MultiProcessCollector(merged, path=self.multiprocess_dir)
+        if self._job_states is not None:
+            merged.register(self._job_states)
+        return generate_latest(merged)

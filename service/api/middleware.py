@@ -8,6 +8,7 @@ stream copy per request, and the body limit can count bytes as they arrive (a mi
 from __future__ import annotations
 
 import logging
+import os
 import re
 import time
 import uuid
@@ -40,11 +41,15 @@ class RequestContext:
     echoes it in the response, records Prometheus metrics per route template, writes one structured log
     line, and turns an exception that escaped everything else into a 500 problem without a traceback.
 
-    Nothing from the request headers other than the request id is logged (keys never are)."""
+    Nothing from the request headers other than the request id is logged (keys never are).
 
-    def __init__(self, app, metrics=None):
+    ``process_header``: also name the answering process (``X-Tikhon-Process: <pid>``), for a server
+    running several API processes on one socket (``tikhon serve --workers N``)."""
+
+    def __init__(self, app, metrics=None, process_header: bool = False):
         self.app = app
         self.metrics = metrics
+        self._extra = [(b"x-tikhon-process", str(os.getpid()).encode())] if process_header else []
 
     async def __call__(self, scope, receive, send):
         if scope["type"] != "http":
@@ -62,6 +67,7 @@ class RequestContext:
         state = scope.setdefault("state", {})
         state["request_id"] = rid
         rid_header = (b"x-request-id", rid.encode())
+        extra = self._extra
         status_box = [0]
         started = time.perf_counter()
 
@@ -69,7 +75,7 @@ class RequestContext:
             if message["type"] == "http.response.start":
                 status_box[0] = message["status"]
                 message = dict(message)
-                message["headers"] = [*message.get("headers", ()), rid_header]
+                message["headers"] = [*message.get("headers", ()), rid_header, *extra]
                 age = state.get("catalog_age")
                 if age is not None:  # the answer rests on stale catalog knowledge (service.api.stale)
                     message["headers"].append((b"tikhon-catalog", header_value(age).encode()))
@@ -83,7 +89,7 @@ class RequestContext:
             log.exception("unhandled error", extra={"request_id": rid})
             if status_box[0] == 0:
                 status_box[0] = 500
-                await _send_problem(send, internal_error_body(scope.get("path"), rid), [rid_header])
+                await _send_problem(send, internal_error_body(scope.get("path"), rid), [rid_header, *extra])
         finally:
             elapsed = time.perf_counter() - started
             route = scope.get("route")

@@ -45,8 +45,10 @@ def check_bind(host: str, keys_exist: bool) -> None:
         )
 
 
-def build(settings: Settings, *, embedded_worker: bool | None = None):
-    """(app, store, worker or None) wired together: the worker's promotions clear the app's live cache."""
+def build(settings: Settings, *, embedded_worker: bool | None = None, **app_options):
+    """(app, store, worker or None) wired together: the worker's promotions clear the app's live cache.
+
+    ``app_options`` go to ``create_app`` (the multi-process server's metrics folder and process header)."""
     from service.api.app import create_app
     from service.store import Store
     from service.worker import Worker
@@ -59,7 +61,7 @@ def build(settings: Settings, *, embedded_worker: bool | None = None):
         if holder.get("worker") is not None:
             holder["worker"].stop()
 
-    app = create_app(settings, store, on_shutdown=[stop_worker])
+    app = create_app(settings, store, on_shutdown=[stop_worker], **app_options)
     if store.keys.any_active():  # started with keys: they stay required (service.api.auth.KeyGate.close)
         app.state.gate.close()
     worker = None
@@ -70,8 +72,19 @@ def build(settings: Settings, *, embedded_worker: bool | None = None):
 
 
 def run(settings: Settings) -> None:
-    """Start the HTTP server (and the embedded worker) until interrupted."""
+    """Start the HTTP server (and the embedded worker) until interrupted.
+
+    With ``settings.workers`` above 1 (or 'auto' on a machine with several cores) the server is several
+    processes on one socket under a supervisor (``service.api.supervisor``); with 1, this process."""
     from service.api.logs import configure
+    from service.api.supervisor import process_count
+
+    count = process_count(settings.workers)
+    if count > 1:
+        from service.api.supervisor import Supervisor
+
+        Supervisor(settings, count).run()
+        return
 
     configure(settings.log_level)
     app, store, worker = build(settings)
@@ -84,7 +97,8 @@ def run(settings: Settings) -> None:
         worker.start()
     try:
         uvicorn.run(app, host=settings.host, port=settings.port, log_config=None, access_log=False,
-                    log_level=settings.log_level.lower(), server_header=False)
+                    log_level=settings.log_level.lower(), server_header=False,
+                    timeout_graceful_shutdown=settings.shutdown_grace_s)
     finally:
         if worker is not None:
             worker.stop()
