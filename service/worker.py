@@ -92,7 +92,8 @@ def _lower_priority() -> None:
 
 
 def _train(data_path: str | None, spec: dict, conn, progress, cancel, deadline: float,
-           stream: str | None = None, dask_scheduler: str | None = None, dask_workers: int = 2) -> None:
+           stream: str | None = None, dask_scheduler: str | None = None, dask_workers: int = 2,
+           limits: dict | None = None) -> None:
     """Body of the training process: read the staged table (or stream the source), tune, send the
     artifact back through ``conn``."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)  # the parent decides when this process stops
@@ -120,8 +121,10 @@ def _train(data_path: str | None, spec: dict, conn, progress, cancel, deadline: 
             from service.api.tables import read_staged
             from service.engine import tune
 
+            from service.engine.tune import Budget
+
             cols = read_staged(data_path)
-            result = tune(cols, spec, progress=on_progress, should_stop=should_stop)
+            result = tune(cols, spec, progress=on_progress, should_stop=should_stop, budget=Budget(**(limits or {})))
         body, arrays = result.to_artifact()
         folds = np.asarray(result.folds)
         conn.send(("ok", body, arrays, {
@@ -296,7 +299,8 @@ class Worker:
         deadline = started + s.max_training_seconds
         proc = _SPAWN.Process(
             target=_train, args=(job.get("data_path"), request["spec"], child_conn, progress, cancel, deadline,
-                                 stream, s.dask_scheduler, s.dask_local_workers),
+                                 stream, s.dask_scheduler, s.dask_local_workers,
+                                 {"max_grid_fits": s.max_grid_fits, "max_levels": s.max_levels}),
             name=f"tikhon-train-{jid[:8]}", daemon=True,
         )
         proc.start()

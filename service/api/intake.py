@@ -31,10 +31,13 @@ def table_sha256(cols: tables.Table) -> str:
     """SHA-256 of a table in a canonical form (names, dtypes and little-endian values, in column order)."""
     h = hashlib.sha256()
     for name, arr in cols.items():
-        h.update(name.encode() + b"\x00" + arr.dtype.str.encode() + b"\x00")
-        if arr.dtype.kind == "U":
+        if arr.dtype.kind in "UO":
+            # text: the same bytes as when text columns were fixed-width "<U{longest}" arrays
+            width = max(1, max(map(len, arr.tolist()), default=1))
+            h.update(name.encode() + b"\x00" + f"<U{width}".encode() + b"\x00")
             h.update("\x1f".join(arr.tolist()).encode())
         else:
+            h.update(name.encode() + b"\x00" + arr.dtype.str.encode() + b"\x00")
             h.update(np.ascontiguousarray(arr, dtype="<f8").tobytes())
         h.update(b"\x1e")
     return h.hexdigest()
@@ -45,20 +48,20 @@ def load_data(data: dict[str, Any] | None, settings: Settings, *, upload: tuple[
     """(columns, a description of where they came from) for one of rows / csv / source / an upload."""
     if upload is not None:
         payload, filename = upload
-        cols = tables.from_file_bytes(payload, filename, where="the uploaded file")
+        cols = tables.from_file_bytes(payload, filename, where="the uploaded file", max_label=settings.max_label_chars)
         origin = {"kind": "upload", "filename": filename}
     elif "rows" in data:
         rows = data["rows"]
         if isinstance(rows, list):
             tables.check_row_limit(len(rows), settings.max_training_rows, "max_training_rows", "data.rows")
-        cols = tables.from_rows(rows, where="data.rows")
+        cols = tables.from_rows(rows, where="data.rows", max_label=settings.max_label_chars)
         origin = {"kind": "rows"}
     elif "csv" in data:
-        cols = tables.from_csv(data["csv"], where="data.csv")
+        cols = tables.from_csv(data["csv"], where="data.csv", max_label=settings.max_label_chars)
         origin = {"kind": "csv"}
     else:
         path = tables.resolve_source(Path(settings.data_dir), data["source"])
-        cols = tables.read_source(path, where=f"data.source={data['source']!r}")
+        cols = tables.read_source(path, where=f"data.source={data['source']!r}", max_label=settings.max_label_chars)
         origin = {"kind": "source", "source": data["source"]}
     n = len(next(iter(cols.values())))
     tables.check_row_limit(n, settings.max_training_rows, "max_training_rows", "the training data")
@@ -137,14 +140,15 @@ def validate(cols: tables.Table, spec_raw: dict[str, Any], settings: Settings) -
     from service.engine.tune import Budget, prepare
 
     spec = parse_spec(spec_raw)
-    prep = prepare(cols, spec)
+    budget = Budget(max_grid_fits=settings.max_grid_fits, max_levels=settings.max_levels)
+    prep = prepare(cols, spec, budget)
     n, d = prep.X.shape
     if spec.cv.scheme not in ("loo",) and spec.cv.folds > n:
         raise InvalidSpec(
             f"cv.folds={spec.cv.folds} is more than the {n} rows of the data; use at most {n} folds or send more rows.",
             errors=[{"field": "cv.folds", "value": spec.cv.folds, "message": "more folds than rows"}],
         )
-    counts = check_budget(spec, n, d, Budget(max_grid_fits=settings.max_grid_fits), prep.categories.width)
+    counts = check_budget(spec, n, d, budget, prep.categories.width)
     return spec.model_dump(mode="json"), counts
 
 

@@ -36,11 +36,14 @@ class Budget:
     ``max_grid_fits`` counts what a from-scratch grid search would fit: basis settings × strengths ×
     l1 ratios × splits. ``max_basis_terms`` bounds the width of one basis setting, and
     ``max_design_cells`` bounds rows × basis terms (the memory of one expanded design, 8 bytes a cell).
+    ``max_levels`` bounds the levels of each categorical column; it is checked in ``prepare`` before
+    the one-hot block (rows × levels) is built.
     """
 
     max_grid_fits: int = 2_000_000
     max_basis_terms: int = 4_000
     max_design_cells: int = 400_000_000
+    max_levels: int = 1_000  # distinct levels of one categorical column, counted before one-hot expansion
 
 
 @dataclass
@@ -116,7 +119,19 @@ def load_model(manifest_body: dict[str, Any], arrays: dict[str, np.ndarray]) -> 
 
 
 # ---------------------------------------------------------------------------------------------------
-def prepare(data: Any, spec: TuneSpec) -> Prepared:
+def check_levels(name: str, levels: int, budget: Budget) -> None:
+    if levels > budget.max_levels:
+        raise BudgetExceeded(
+            f"categorical column {name!r} has {levels:,} distinct levels, above the limit max_levels="
+            f"{budget.max_levels:,} (each level becomes a column of the design); group rare levels into one "
+            "(e.g. 'other'), use an identifier column as cv.group_by or cv.row_key instead of as an input, or raise "
+            "TIKHON_MAX_LEVELS on the server",
+            errors=[{"field": "categorical", "value": name, "message": f"{levels} levels"}],
+            limit="max_levels", allowed=budget.max_levels, received=levels)
+
+
+def prepare(data: Any, spec: TuneSpec, budget: Budget | None = None) -> Prepared:
+    budget = budget or Budget()
     cols = as_columns(data)
     n = len(next(iter(cols.values()))) if cols else 0
     if n == 0:
@@ -129,6 +144,8 @@ def prepare(data: Any, spec: TuneSpec) -> Prepared:
                           "check that the right column is named as target")
     X = np.column_stack([numeric_column(cols, f, "feature") for f in features]) if features else np.zeros((n, 0))
     cat_cols = [categorical_column(cols, c) for c in spec.categorical]
+    for c, values in zip(spec.categorical, cat_cols):  # before any one-hot expansion
+        check_levels(c, len(set(values.tolist())), budget)
     categories = Categories.fit(spec.categorical, cat_cols)
     cat_block, _ = categories.encode(cat_cols) if cat_cols else (np.zeros((n, 0)), [])
     groups = order = None
@@ -136,7 +153,7 @@ def prepare(data: Any, spec: TuneSpec) -> Prepared:
         groups = categorical_column(cols, spec.cv.group_by)
     if spec.cv.scheme == "time_ordered":
         raw = cols[spec.cv.order_by]
-        order = raw if raw.dtype.kind in "biufM" else np.asarray(raw).astype(str)
+        order = raw if raw.dtype.kind in "biufM" else categorical_column(cols, spec.cv.order_by)
     keys = cols[spec.cv.row_key] if spec.cv.row_key else None
     return Prepared(cols, features, X, y, categories, cat_block, groups, order, used, keys)
 
@@ -254,7 +271,7 @@ def tune(data: Any, spec: Any, *, progress: Callable[[int, int], None] | None = 
          should_stop: Callable[[], bool] | None = None, budget: Budget | None = None) -> TuneResult:
     """Choose basis setting and penalty strength jointly by cross-validation, then refit on all rows."""
     spec = parse_spec(spec)
-    prep = prepare(data, spec)
+    prep = prepare(data, spec, budget)
     n, d = prep.X.shape
     check_budget(spec, n, d, budget, prep.categories.width)
     scaler = InputScaler.fit(prep.features, prep.X)
