@@ -62,7 +62,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None) -> Fa
     app.state.metrics = metrics
     app.state.gate = auth.KeyGate(store.keys, settings.auth_cache_s)
     app.state.models = ModelCache(store, settings, metrics)
-    metrics.watch_jobs(lambda: store.jobs.list())
+    metrics.watch_jobs(store.jobs.counts)
 
     problems.install(app)
 

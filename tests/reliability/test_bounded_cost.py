@@ -176,3 +176,36 @@ def test_batch_prediction_on_a_wide_model_stays_within_the_memory_budget(srv):
         for a, b in zip(alone["predictions"], preds[first:first + 100]):
             assert a["value"] == pytest.approx(b["value"], rel=1e-9, abs=1e-9)
             assert a["interval"] == pytest.approx(b["interval"], rel=1e-9, abs=1e-9)
+
+
+# ---------------------------------------------------------------------------------------------------
+# 4. /metrics reads counts, never job bodies
+
+
+@pytest.fixture(scope="module")
+def heavy_jobs(tmp_path_factory, rk):
+    """A server whose catalog holds 110 jobs, each request carrying a 1 MB string (entered through the
+    store directly, as an older server without spec caps accepted them); 7 of them cancelled."""
+    root = tmp_path_factory.mktemp("heavy-jobs")
+    settings = rk.base_settings(root, embedded_worker=False, log_level="warning")
+    store = rk.open_store(settings)
+    ids = [store.jobs.submit("pumps", {"spec": {"target": "energy_kwh", "units": {"energy_kwh": f"{i}" + "k" * MiB}}})[0]["id"]
+           for i in range(110)]
+    for job_id in ids[:7]:
+        store.jobs.cancel(job_id)
+    store.close()
+    with rk.server_process(root, **{k: v for k, v in settings.items() if k not in ("store", "data_dir")},
+                           store=settings["store"], data_dir=settings["data_dir"]) as server:
+        httpx.get(f"{server.base}/metrics", timeout=60)  # warm-up
+        yield server
+
+
+def test_metrics_scrape_reads_no_job_bodies_and_counts_every_job(heavy_jobs):
+    grew, r = peak_growth(heavy_jobs.pid, lambda: httpx.get(f"{heavy_jobs.base}/metrics", timeout=120))
+    # the unbounded scrape loaded the newest 100 job rows in full: 100 x 1 MB of JSON, parsed
+    assert grew < 30 * MiB, f"peak grew by {grew / MiB:.0f} MiB"
+    assert r.status_code == 200
+    gauge = {line.split('"')[1]: float(line.split()[-1]) for line in r.text.splitlines()
+             if line.startswith("tikhon_training_jobs{")}
+    # all 110 jobs, not the newest 100: 103 queued + 7 cancelled
+    assert gauge == {"queued": 103.0, "running": 0.0, "succeeded": 0.0, "failed": 0.0, "cancelled": 7.0}
