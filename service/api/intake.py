@@ -17,9 +17,10 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+import orjson
 
 from service.api import tables
-from service.errors import InvalidData, InvalidSpec, NotFound
+from service.errors import BudgetExceeded, InvalidData, InvalidSpec, NotFound
 from service.settings import Settings
 from service.store.jobs import IDEMPOTENCY_KEY_RULE
 
@@ -41,6 +42,42 @@ def table_sha256(cols: tables.Table) -> str:
             h.update(np.ascontiguousarray(arr, dtype="<f8").tobytes())
         h.update(b"\x1e")
     return h.hexdigest()
+
+
+def check_spec_size(spec_raw: Any, settings: Settings) -> None:
+    """Refuse a spec whose JSON text exceeds ``max_spec_bytes`` or that holds a string (a value or a key:
+    units, column names, ...) longer than ``max_spec_string_chars``, naming the field. A spec is small
+    (a few hundred bytes); it is stored with the job and the version, and read by every listing."""
+    if spec_raw is None:
+        return
+    cap = settings.max_spec_string_chars
+    stack: list[tuple[str, Any]] = [("spec", spec_raw)]
+    while stack:
+        path, v = stack.pop()
+        if isinstance(v, str):
+            if len(v) > cap:
+                raise BudgetExceeded(
+                    f"{path} is a string of {len(v):,} characters, above the limit max_spec_string_chars={cap:,}; "
+                    "a spec names columns and units in short strings: shorten it (or raise "
+                    "TIKHON_MAX_SPEC_STRING_CHARS on the server).",
+                    errors=[{"field": path, "value": len(v), "message": "string too long"}],
+                    limit="max_spec_string_chars", allowed=cap, received=len(v))
+        elif isinstance(v, dict):
+            for k, x in v.items():
+                key = str(k)
+                if len(key) > cap:
+                    stack.append((f"{path} (a key)", key))
+                    continue
+                stack.append((f"{path}.{key}", x))
+        elif isinstance(v, list):
+            stack.extend((f"{path}[{i}]", x) for i, x in enumerate(v))
+    size = len(orjson.dumps(spec_raw))
+    if size > settings.max_spec_bytes:
+        raise BudgetExceeded(
+            f"spec is {size:,} bytes as JSON, above the limit max_spec_bytes={settings.max_spec_bytes:,}; list fewer "
+            "strengths (use {\"min\", \"max\", \"count\"}), features or units (or raise TIKHON_MAX_SPEC_BYTES).",
+            errors=[{"field": "spec", "value": size, "message": "spec too large"}],
+            limit="max_spec_bytes", allowed=settings.max_spec_bytes, received=size)
 
 
 def load_data(data: dict[str, Any] | None, settings: Settings, *, upload: tuple[bytes, str | None] | None = None

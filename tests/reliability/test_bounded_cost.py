@@ -209,3 +209,33 @@ def test_metrics_scrape_reads_no_job_bodies_and_counts_every_job(heavy_jobs):
              if line.startswith("tikhon_training_jobs{")}
     # all 110 jobs, not the newest 100: 103 queued + 7 cancelled
     assert gauge == {"queued": 103.0, "running": 0.0, "succeeded": 0.0, "failed": 0.0, "cancelled": 7.0}
+
+
+# ---------------------------------------------------------------------------------------------------
+# 5. spec size caps
+
+
+def test_a_spec_with_a_huge_string_is_refused_naming_the_field(srv, rk):
+    spec = {"target": "energy_kwh", "features": ["flow_lps", "head_m"], "bases": [{"kind": "linear"}],
+            "units": {"energy_kwh": "k" * (20 * MiB)}}
+    rows = [{"flow_lps": 10.0 + i, "head_m": 20.0 + i % 5, "energy_kwh": 30.0 + 2 * i} for i in range(30)]
+    body = json.dumps({"data": {"rows": rows}, "spec": spec}).encode()
+    grew, r = peak_growth(srv.pid, lambda: httpx.post(f"{srv.base}/v1/models/{CAT}/trainings", content=body,
+                                                      headers={"content-type": "application/json"}, timeout=120))
+    # the body itself is 20 MB; the unbounded server also validated, copied and stored it in the catalog
+    assert grew < 90 * MiB, f"peak grew by {grew / MiB:.0f} MiB"
+    p = rk.assert_problem(r, 422)
+    assert p["limit"] == "max_spec_string_chars" and p["allowed"] == 1_000 and p["received"] == 20 * MiB
+    assert p["errors"][0]["field"] == "spec.units.energy_kwh"
+    assert httpx.get(f"{srv.base}/v1/trainings", timeout=60).json()["trainings"] == []
+
+
+def test_a_spec_larger_than_the_cap_is_refused(srv, rk):
+    strengths = [round(1e-4 * 1.001 ** i, 9) for i in range(8_000)]  # about 100 KB of JSON
+    spec = {"target": "energy_kwh", "features": ["flow_lps", "head_m"], "bases": [{"kind": "linear"}],
+            "penalty": {"kind": "l2", "strengths": strengths}}
+    rows = [{"flow_lps": 10.0 + i, "head_m": 20.0 + i % 5, "energy_kwh": 30.0 + 2 * i} for i in range(30)]
+    r = httpx.post(f"{srv.base}/v1/models/{CAT}/trainings", json={"data": {"rows": rows}, "spec": spec}, timeout=120)
+    p = rk.assert_problem(r, 422)
+    assert p["limit"] == "max_spec_bytes" and p["allowed"] == 64 * 1024 and p["received"] > 64 * 1024
+    assert p["errors"][0]["field"] == "spec"

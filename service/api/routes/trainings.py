@@ -120,6 +120,7 @@ async def submit(request: Request, name: str = Path(..., description="Model name
     store, settings = app.state.store, app.state.settings
 
     def accept() -> tuple[dict[str, Any], bool]:
+        intake.check_spec_size(parsed.spec, settings)  # before any other work on the request
         spec_raw = parsed.spec if parsed.spec is not None else intake.live_spec(store, name)
         stream = intake.stream_source(data, spec_raw, settings) if upload is None else None
         if stream is not None:  # out of core: the worker reads the source itself, in batches
