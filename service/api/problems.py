@@ -51,6 +51,7 @@ _STATUS: dict[type[E.TikhonError], int] = {
     E.InvalidData: 422,
     E.BudgetExceeded: 422,
     E.InvalidName: 422,
+    E.Busy: 429,
     E.NotFound: 404,
     E.Conflict: 409,
     E.Cancelled: 409,
@@ -233,6 +234,8 @@ def install(app: FastAPI) -> None:
     @app.exception_handler(E.TikhonError)
     async def _tikhon(request: Request, exc: E.TikhonError) -> Response:
         headers = {"WWW-Authenticate": 'Bearer realm="tikhon"'} if isinstance(exc, E.Unauthorized) else None
+        if isinstance(exc, E.Busy):  # RFC 9110 section 10.2.3: when to try again, in seconds
+            headers = {"Retry-After": str(int(exc.extra.get("retry_after", 30)))}
         body = problem_from_error(exc, instance=request.url.path, request_id=_request_id(request))
         if body["status"] >= 500:
             log.error("request failed: %s", exc, extra={"request_id": _request_id(request)})

@@ -239,3 +239,50 @@ def test_a_spec_larger_than_the_cap_is_refused(srv, rk):
     p = rk.assert_problem(r, 422)
     assert p["limit"] == "max_spec_bytes" and p["allowed"] == 64 * 1024 and p["received"] > 64 * 1024
     assert p["errors"][0]["field"] == "spec"
+
+
+# ---------------------------------------------------------------------------------------------------
+# 8. queue limits
+
+
+QUICK_ROWS = [{"flow_lps": 10.0 + i, "head_m": 20.0 + i % 5, "energy_kwh": 30.0 + 2 * i} for i in range(30)]
+QUICK = {"target": "energy_kwh", "features": ["flow_lps", "head_m"], "bases": [{"kind": "linear"}],
+         "penalty": {"kind": "l2", "strengths": [0.1, 1.0]}, "cv": {"folds": 3}}
+
+
+def test_a_full_queue_refuses_with_429_before_reading_the_data(heavy_jobs, rk):
+    # 103 jobs are queued, above the default max_queued_jobs=100: a 30 MB CSV training body is refused
+    # before it is parsed (the unbounded server parsed, validated and staged it, then queued job 104).
+    csv = "flow_lps,head_m,energy_kwh\n" + "12.5,31.25,40.125\n" * 1_700_000
+    body = json.dumps({"data": {"csv": csv}, "spec": QUICK}).encode()
+    grew, r = peak_growth(heavy_jobs.pid, lambda: httpx.post(
+        f"{heavy_jobs.base}/v1/models/pumps/trainings", content=body, headers={"content-type": "application/json"},
+        timeout=300))
+    assert grew < 3 * len(body), f"peak grew by {grew / MiB:.0f} MiB for a {len(body) / MiB:.0f} MiB body"
+    p = rk.assert_problem(r, 429)
+    assert p["limit"] == "max_queued_jobs" and p["allowed"] == 100
+    assert r.headers["retry-after"] == "30"
+    counts = httpx.get(f"{heavy_jobs.base}/metrics", timeout=60).text
+    assert 'tikhon_training_jobs{state="queued"} 103.0' in counts
+
+
+def test_queued_jobs_are_limited_per_key(tmp_path, rk):
+    settings = rk.base_settings(tmp_path, embedded_worker=False, log_level="warning", max_queued_jobs_per_key=2)
+    store = rk.open_store(settings)
+    _, secret_a = store.keys.create(["train"], "nightly retrain A")
+    _, secret_b = store.keys.create(["train"], "nightly retrain B")
+    store.close()
+    with rk.server_process(tmp_path, **{k: v for k, v in settings.items() if k not in ("store", "data_dir")},
+                           store=settings["store"], data_dir=settings["data_dir"]) as server:
+        def submit(secret):
+            return httpx.post(f"{server.base}/v1/models/pumps/trainings", json={"data": {"rows": QUICK_ROWS}, "spec": QUICK},
+                              headers={"authorization": f"Bearer {secret}"}, timeout=60)
+
+        assert [submit(secret_a).status_code for _ in range(2)] == [202, 202]
+        r = submit(secret_a)
+        p = rk.assert_problem(r, 429)
+        assert p["limit"] == "max_queued_jobs_per_key" and p["allowed"] == 2 and p["received"] == 3
+        assert int(r.headers["retry-after"]) == 30
+        assert submit(secret_b).status_code == 202  # another key still has room
+        jobs = httpx.get(f"{server.base}/v1/trainings", headers={"authorization": f"Bearer {secret_a}"}, timeout=60)
+        assert [j["state"] for j in jobs.json()["trainings"]] == ["queued"] * 3

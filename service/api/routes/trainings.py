@@ -14,6 +14,7 @@ from service.api.problems import MalformedBody, UnsupportedMediaType
 from service.api.render import json_response, media_type, parse_json
 from service.api.schemas import TrainingRequest, parse_training_request, schema_ref
 from service.errors import InvalidData
+from service.store.jobs import SUBMITTER
 from service.store.names import validate_name
 
 router = APIRouter(prefix="/v1", tags=["trainings"])
@@ -119,8 +120,13 @@ async def submit(request: Request, name: str = Path(..., description="Model name
     app = request.app
     store, settings = app.state.store, app.state.settings
 
+    submitter = _submitter(request)
+    limits = {"queue_limit": settings.max_queued_jobs, "submitter_limit": settings.max_queued_jobs_per_key}
+
     def accept() -> tuple[dict[str, Any], bool]:
         intake.check_spec_size(parsed.spec, settings)  # before any other work on the request
+        if key is None:  # a full queue refuses before the data is read (checked again when the job is entered)
+            store.jobs.check_capacity(submitter=submitter, **limits)
         spec_raw = parsed.spec if parsed.spec is not None else intake.live_spec(store, name)
         stream = intake.stream_source(data, spec_raw, settings) if upload is None else None
         if stream is not None:  # out of core: the worker reads the source itself, in batches
@@ -128,17 +134,18 @@ async def submit(request: Request, name: str = Path(..., description="Model name
             job_request = {
                 "spec": spec, "promote": parsed.promote, "min_improvement": parsed.min_improvement,
                 "data": origin, "grid": counts, "spec_reused": parsed.spec is None, "stream": str(stream),
+                SUBMITTER: submitter,
             }
-            return store.jobs.submit(name, job_request, idempotency_key=key)
+            return store.jobs.submit(name, job_request, idempotency_key=key, **limits)
         cols, origin = intake.load_data(data, settings, upload=upload)
         spec, counts = intake.validate(cols, spec_raw, settings)
         job_request = {
             "spec": spec, "promote": parsed.promote, "min_improvement": parsed.min_improvement,
-            "data": origin, "grid": counts, "spec_reused": parsed.spec is None,
+            "data": origin, "grid": counts, "spec_reused": parsed.spec is None, SUBMITTER: submitter,
         }
         path = intake.stage(store, cols)
         try:
-            job, created = store.jobs.submit(name, job_request, data_path=str(path), idempotency_key=key)
+            job, created = store.jobs.submit(name, job_request, data_path=str(path), idempotency_key=key, **limits)
         except BaseException:
             path.unlink(missing_ok=True)
             raise
@@ -152,6 +159,14 @@ async def submit(request: Request, name: str = Path(..., description="Model name
     if not created:
         headers["Idempotent-Replay"] = "true"
     return json_response(view, status=202, headers=headers)
+
+
+def _submitter(request: Request) -> str:
+    """Whom the per-key queue limit counts: the key id when keys are in use, else the client address."""
+    key = request.scope.get("state", {}).get("key_id")
+    if key:
+        return f"key:{key}"
+    return f"client:{request.client.host if request.client else 'unknown'}"
 
 
 @router.get("/trainings/{job_id}", summary="State, progress and outcome of a training job", **auth.READ)
