@@ -433,7 +433,7 @@ class Worker:
                             "reason": f"{note}; " + ("it had already gone live" if went else
                                                      f"the newer version {live} is live and stays live")}
             else:
-                body = self.store.get_manifest(name, version).get("model") or {}
+                body = self.store.get_manifest(name, version, cv_table=False).get("model") or {}
                 summary = body.get("cv_summary") or {}
                 outcome = {"metric": summary.get("metric"), "cv_mean": float(summary.get("mean")), "folds": None,
                            "target": (body.get("spec") or {}).get("target")}

@@ -164,7 +164,7 @@ def live_spec(store, name: str) -> dict[str, Any]:
             "send a spec, at least {\"target\": \"<column>\"}.",
             errors=[{"field": "spec", "message": "missing"}],
         )
-    manifest = store.get_manifest(name, live)
+    manifest = store.get_manifest(name, live, cv_table=False)
     spec = (manifest.get("model") or {}).get("spec")
     if not isinstance(spec, dict):
         raise InvalidSpec(f"the live version {live} of {name!r} keeps no reusable spec; send a spec with the request.")

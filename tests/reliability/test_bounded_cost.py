@@ -286,3 +286,75 @@ def test_queued_jobs_are_limited_per_key(tmp_path, rk):
         assert submit(secret_b).status_code == 202  # another key still has room
         jobs = httpx.get(f"{server.base}/v1/trainings", headers={"authorization": f"Bearer {secret_a}"}, timeout=60)
         assert [j["state"] for j in jobs.json()["trainings"]] == ["queued"] * 3
+
+
+# ---------------------------------------------------------------------------------------------------
+# 6. a small, fixed-size manifest; the CV table read lazily and in pages
+
+BIG = "big-grid"
+BIG_SPEC = {"target": "energy_kwh", "features": ["flow_lps", "head_m"],
+            "bases": [{"kind": "linear"}, {"kind": "polynomial", "degrees": [2, 3, 4, 5, 6]}],
+            "penalty": {"kind": "l2", "strengths": {"min": 1e-6, "max": 1e4, "count": 10_000}},
+            "cv": {"folds": 3, "seed": 8}}
+
+
+@pytest.fixture(scope="module")
+def big_cv(tmp_path_factory, rk):
+    """A version whose CV table has 60,000 rows (6 basis settings x 10,000 strengths), and the same
+    version written in the old format (format_version 1, the table inline in manifest.json)."""
+    from service.engine import tune
+    from service.store import artifact
+
+    root = tmp_path_factory.mktemp("big-cv")
+    settings = rk.base_settings(root, embedded_worker=False, log_level="warning")
+    store = rk.open_store(settings)
+    result = tune(rk.demo_rows(300, 9), BIG_SPEC)
+    body, arrays = result.to_artifact()
+    store.set_live(BIG, store.publish(BIG, body, arrays)["version"], actor="test", reason="fixture")
+    saved = artifact.FORMAT_VERSION, getattr(artifact, "split_cv_table", None)
+    artifact.FORMAT_VERSION, artifact.split_cv_table = 1, lambda rows: None  # as the old code wrote it
+    try:
+        store.publish(BIG, body, arrays)
+    finally:
+        artifact.FORMAT_VERSION, artifact.split_cv_table = saved
+    manifest_bytes = [(Path(settings["store"]) / BIG / str(v) / "manifest.json").stat().st_size for v in (1, 2)]
+    store.close()
+    with rk.server_process(root, **{k: v for k, v in settings.items() if k not in ("store", "data_dir")},
+                           store=settings["store"], data_dir=settings["data_dir"]) as server:
+        httpx.get(f"{server.base}/v1/models/{BIG}/versions/1/cv", timeout=120)  # warm-up
+        yield server, result, manifest_bytes
+
+
+def test_model_metadata_does_not_read_the_cv_table(big_cv):
+    server, result, manifest_bytes = big_cv
+    assert manifest_bytes[0] < 64 * 1024 < 10 * 2**20 < manifest_bytes[1]  # new: small; old format: tens of MB
+    grew, r = peak_growth(server.pid, lambda: httpx.get(f"{server.base}/v1/models/{BIG}", timeout=120))
+    # the unbounded route parsed the whole manifest (the 60,000-row table) on every call
+    assert grew < 20 * MiB, f"peak grew by {grew / MiB:.0f} MiB"
+    assert r.status_code == 200
+    live = r.json()["live"]
+    assert live["chosen"] == result.best and "cv_table" not in live
+    assert live["cv_summary"]["candidates"] == 60_000
+
+
+def test_cv_route_answers_best_per_basis_and_pages(big_cv):
+    server, result, _ = big_cv
+    table = result.cv_table
+    for version in (1, 2):  # the new format and the old (inline) one answer the same
+        base = f"{server.base}/v1/models/{BIG}/versions/{version}/cv"
+        grew, r = peak_growth(server.pid, lambda: httpx.get(base, timeout=120))
+        assert r.status_code == 200 and r.json()["total"] == 60_000
+        best = r.json()["table"]
+        assert [row["basis"] for row in best] == [{"kind": "linear"}] + [{"kind": "polynomial", "degree": d}
+                                                                         for d in (2, 3, 4, 5, 6)]
+        for row in best:  # the best mean of its basis setting, found independently here
+            mine = [t for t in table if t["basis"] == row["basis"]]
+            assert row["mean"] == min(t["mean"] for t in mine)
+            assert {k: v for k, v in row.items() if k != "row"} == table[row["row"]]
+        page = httpx.get(base, params={"view": "all", "offset": 9_995, "limit": 10}, timeout=120).json()
+        assert page["table"] == table[9_995:10_005]  # across the boundary of two basis settings
+        assert page["links"]["next"].endswith("offset=10005&limit=10")
+        last = httpx.get(base, params={"view": "all", "offset": 59_998, "limit": 10}, timeout=120).json()
+        assert last["table"] == table[59_998:] and last["links"]["next"] is None
+        if version == 1:
+            assert grew < 60 * MiB, f"peak grew by {grew / MiB:.0f} MiB"
