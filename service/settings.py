@@ -48,8 +48,9 @@ class Settings(BaseSettings):
     max_spec_string_chars: int = Field(
         1_000, ge=16, description="Longest string inside a spec or training request (units, reasons, labels, names).")
     max_job_cost: float = Field(
-        2e12, gt=0, description="Largest estimated cost of one training job, in floating-point operations "
-        "(rows x basis width^2 per basis setting and split, plus the L1 iterations); refused before queueing.")
+        2e11, gt=0, description="Largest estimated cost of one training job, in floating-point operations "
+        "(rows x basis width^2 per pass over the rows, width^3 and strengths x width^2 per split, x sweeps for L1); "
+        "a costlier job is refused before it is queued.")
     max_queued_jobs: int = Field(
         100, ge=1, description="Most training jobs queued at once; more are refused with 429 and Retry-After.")
     max_queued_jobs_per_key: int = Field(

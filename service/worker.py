@@ -300,7 +300,8 @@ class Worker:
         proc = _SPAWN.Process(
             target=_train, args=(job.get("data_path"), request["spec"], child_conn, progress, cancel, deadline,
                                  stream, s.dask_scheduler, s.dask_local_workers,
-                                 {"max_grid_fits": s.max_grid_fits, "max_levels": s.max_levels}),
+                                 {"max_grid_fits": s.max_grid_fits, "max_levels": s.max_levels,
+                                  "max_job_cost": s.max_job_cost}),
             name=f"tikhon-train-{jid[:8]}", daemon=True,
         )
         proc.start()

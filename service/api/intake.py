@@ -144,7 +144,7 @@ def validate_stream(path: Path, spec_raw: dict[str, Any], settings: Settings, so
             head = fh.read(1 << 16)
         lines = max(1, head.count(b"\n"))
         rows = int(path.stat().st_size / (len(head) / lines)) if head else 0
-    counts = check_partitions(schema, spec, rows, Budget(max_grid_fits=settings.max_grid_fits))
+    counts = check_partitions(schema, spec, rows, _budget(settings))
     files = sorted(path.iterdir()) if path.is_dir() else [path]
     origin = {"kind": "source", "source": source, "execution": "streaming", "rows": rows,
               "columns": list(schema), "bytes": sum(f.stat().st_size for f in files if f.is_file()),
@@ -177,7 +177,13 @@ def validate(cols: tables.Table, spec_raw: dict[str, Any], settings: Settings) -
     from service.engine.tune import Budget, prepare
 
     spec = parse_spec(spec_raw)
-    budget = Budget(max_grid_fits=settings.max_grid_fits, max_levels=settings.max_levels)
+    budget = _budget(settings)
+    # The size checks first, from the shape alone (declared or numeric features, no one-hot columns yet);
+    # then the checks that read the data, then the size checks again with the category columns counted.
+    n_rows = len(next(iter(cols.values()))) if cols else 0
+    d_guess = len(spec.features) if spec.features is not None else sum(
+        1 for c, v in cols.items() if v.dtype.kind in "biuf" and c != spec.target)
+    check_budget(spec, n_rows, d_guess, budget)
     prep = prepare(cols, spec, budget)
     n, d = prep.X.shape
     if spec.cv.scheme not in ("loo",) and spec.cv.folds > n:
@@ -187,6 +193,13 @@ def validate(cols: tables.Table, spec_raw: dict[str, Any], settings: Settings) -
         )
     counts = check_budget(spec, n, d, budget, prep.categories.width)
     return spec.model_dump(mode="json"), counts
+
+
+def _budget(settings: Settings):
+    from service.engine.tune import Budget
+
+    return Budget(max_grid_fits=settings.max_grid_fits, max_levels=settings.max_levels,
+                  max_job_cost=settings.max_job_cost)
 
 
 def check_idempotency_key(key: str | None) -> str | None:

@@ -63,7 +63,7 @@ def srv(tmp_path_factory, rk):
     store.set_live(CAT, store.publish(CAT, body, arrays)["version"], actor="test", reason="fixture")
     wide = {"target": "y", "features": WIDE_FEATURES, "bases": [{"kind": "polynomial", "degrees": [4]}],
             "penalty": {"kind": "l2", "strengths": [1.0, 10.0]}, "cv": {"folds": 3, "seed": 2}}
-    body, arrays = tune(_wide_rows(1200, 3), wide).to_artifact()
+    body, arrays = tune(_wide_rows(700, 3), wide).to_artifact()
     store.set_live(WIDE, store.publish(WIDE, body, arrays)["version"], actor="test", reason="fixture")
     store.close()
     with rk.server_process(root, **{k: v for k, v in settings.items() if k not in ("store", "data_dir")},
@@ -358,3 +358,44 @@ def test_cv_route_answers_best_per_basis_and_pages(big_cv):
         assert last["table"] == table[59_998:] and last["links"]["next"] is None
         if version == 1:
             assert grew < 60 * MiB, f"peak grew by {grew / MiB:.0f} MiB"
+
+
+# ---------------------------------------------------------------------------------------------------
+# 7. the cost of a job is estimated before it is accepted; a long setting reports progress inside
+
+
+def test_a_job_whose_fits_are_costly_is_refused_before_it_is_queued(srv, rk):
+    # Two fits (1 strength x 2 folds) of a 4,000-centre RBF basis on 20,000 rows: within the grid budget,
+    # yet hours of a small host's time (QR of 10,000 x 4,000 per fold and a 4,000-wide factorization).
+    rng = np.random.default_rng(11)
+    csv = "flow_lps,head_m,energy_kwh\n" + "".join(
+        f"{a:.4f},{b:.4f},{c:.4f}\n" for a, b, c in rng.uniform(1, 100, size=(20_000, 3)))
+    spec = {"target": "energy_kwh", "features": ["flow_lps", "head_m"],
+            "bases": [{"kind": "rbf", "widths": [1.0], "centers": 4_000}],
+            "penalty": {"kind": "l2", "strengths": [1.0]}, "cv": {"folds": 2}}
+    grew, r = peak_growth(srv.pid, lambda: httpx.post(
+        f"{srv.base}/v1/models/{CAT}/trainings", json={"data": {"csv": csv}, "spec": spec}, timeout=300))
+    assert grew < 60 * MiB, f"peak grew by {grew / MiB:.0f} MiB"  # no design, no k-means: refused from the shape
+    p = rk.assert_problem(r, 422)
+    assert p["limit"] == "max_job_cost" and p["allowed"] == 2e11 and p["received"] > 2e11
+    assert "rbf width 1" in p["detail"] and "fewer RBF centres" in p["detail"]
+
+
+def test_progress_moves_inside_a_long_basis_setting(monkeypatch, rk):
+    import importlib
+
+    tune_module = importlib.import_module("service.engine.tune")
+
+    monkeypatch.setattr(tune_module, "PROGRESS_DETAIL_FLOPS", 0.0)  # treat this small job as a long one
+    rows = _wide_rows(60_000, 12)
+    spec = {"target": "y", "features": WIDE_FEATURES[:3], "bases": [{"kind": "polynomial", "degrees": [2]}],
+            "penalty": {"kind": "l2", "strengths": [1.0]}, "cv": {"folds": 3, "seed": 1}}
+    seen: list[tuple[int, int]] = []
+    result = tune_module.tune(rows, spec, progress=lambda done, total: seen.append((done, total)))
+    # one basis setting, 3 splits: 300 sub-units; each fold's 20,000 rows are summarized in two row blocks
+    # (16,384 + 3,616) and each split is fitted, so progress moves 9 times before the setting ends
+    assert seen[-1] == (300, 300)
+    inside = [d for d, _ in seen[:-1]]
+    assert inside == sorted(inside) and len(set(inside)) == 9 and max(inside) < 300
+    # the numbers are those of the same job without progress reports
+    assert result.cv_table == tune_module.tune(rows, spec).cv_table
