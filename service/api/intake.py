@@ -80,7 +80,7 @@ def check_spec_size(spec_raw: Any, settings: Settings) -> None:
             limit="max_spec_bytes", allowed=settings.max_spec_bytes, received=size)
 
 
-def load_data(data: dict[str, Any] | None, settings: Settings, *, upload: tuple[bytes, str | None] | None = None
+def load_data(data: dict[str, Any] | None, settings: Settings, *, upload: tuple[bytes | Path, str | None] | None = None
               ) -> tuple[tables.Table, dict[str, Any]]:
     """(columns, a description of where they came from) for one of rows / csv / source / an upload."""
     if upload is not None:

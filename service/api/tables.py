@@ -210,22 +210,34 @@ def from_arrow(table: pa.Table, *, where: str, max_label: int | None = MAX_LABEL
     return out
 
 
-def from_csv(payload: bytes | str, *, where: str = "csv", max_label: int | None = MAX_LABEL_CHARS) -> Table:
-    data = payload.encode() if isinstance(payload, str) else payload
-    if not data.strip():
+def from_csv(payload: bytes | str | Path, *, where: str = "csv", max_label: int | None = MAX_LABEL_CHARS) -> Table:
+    """CSV text, bytes, or a file (read by pyarrow from disk, never held in memory whole)."""
+    if isinstance(payload, Path):
+        with open(payload, "rb") as fh:
+            empty = not fh.read(1 << 16).strip()
+        source: Any = None
+    else:
+        data = payload.encode() if isinstance(payload, str) else payload
+        empty = not data.strip()
+        source = io.BytesIO(data)
+    if empty:
         raise InvalidData(f"{where} is empty; send a header line and at least one row.")
+    if source is None:
+        source = pa.OSFile(str(payload), "rb")  # no compression guessed from the file name
     try:
         table = pacsv.read_csv(
-            io.BytesIO(data),
+            source,
             read_options=pacsv.ReadOptions(use_threads=False),
             convert_options=pacsv.ConvertOptions(strings_can_be_null=True),
         )
     except (pa.ArrowInvalid, pa.ArrowTypeError, UnicodeDecodeError) as exc:
+        source.close()
         reason = " ".join(str(exc).split())
         raise InvalidData(
             f"{where} could not be parsed as CSV ({reason[:300]}); send comma-separated UTF-8 text with one header "
             "line and the same number of fields on every line."
         ) from None
+    source.close()
     return from_arrow(table, where=where, max_label=max_label)
 
 
@@ -239,8 +251,15 @@ def from_parquet(payload: bytes | Path, *, where: str, max_label: int | None = M
     return from_arrow(table, where=where, max_label=max_label)
 
 
-def from_file_bytes(payload: bytes, filename: str | None, *, where: str, max_label: int | None = MAX_LABEL_CHARS) -> Table:
-    """An uploaded file: Parquet when it starts with the Parquet magic bytes, else CSV."""
+def from_file_bytes(payload: bytes | Path, filename: str | None, *, where: str, max_label: int | None = MAX_LABEL_CHARS) -> Table:
+    """An uploaded file (its bytes, or the file it was saved to): Parquet when it starts with the Parquet
+    magic bytes, else CSV."""
+    if isinstance(payload, Path):
+        with open(payload, "rb") as fh:
+            head = fh.read(4)
+        if head == b"PAR1":
+            return from_parquet(payload, where=where, max_label=max_label)
+        return from_csv(payload, where=where, max_label=max_label)
     if payload[:4] == b"PAR1":
         return from_parquet(payload, where=where, max_label=max_label)
     return from_csv(payload, where=where, max_label=max_label)
@@ -294,7 +313,7 @@ def read_source(path: Path, *, where: str = "data.source", max_label: int | None
         head = fh.read(4)
     if head == b"PAR1":
         return from_parquet(path, where=where, max_label=max_label)
-    return from_csv(path.read_bytes(), where=where, max_label=max_label)
+    return from_csv(Path(path), where=where, max_label=max_label)
 
 
 def to_arrow(table: Table) -> pa.Table:

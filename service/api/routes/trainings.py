@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import uuid
+from pathlib import Path as FsPath
 from typing import Any
 
 import orjson
@@ -73,7 +75,28 @@ def job_view(job: dict[str, Any]) -> dict[str, Any]:
     return out
 
 
-async def _read_submission(request: Request) -> tuple[TrainingRequest | None, dict[str, Any], tuple[bytes, str | None] | None]:
+OFF_LOOP_BYTES = 65_536  # a JSON body larger than this is parsed and validated in a worker thread
+_UPLOAD_CHUNK = 1 << 20
+
+
+def _parse_training_json(raw: bytes) -> tuple[TrainingRequest, dict[str, Any]]:
+    body = parse_json(raw)
+    parsed = parse_training_request(body)
+    return parsed, body["data"]
+
+
+def _save_upload(source, target: FsPath) -> None:
+    """Copy the uploaded file (Starlette spools it to a temporary file) into ``target`` in 1 MiB chunks."""
+    source.seek(0)
+    with open(target, "xb") as out:
+        while chunk := source.read(_UPLOAD_CHUNK):
+            out.write(chunk)
+
+
+async def _read_submission(request: Request, incoming: FsPath
+                           ) -> tuple[TrainingRequest | None, dict[str, Any], tuple[FsPath, str | None] | None]:
+    """(parsed request, its data member, the uploaded file saved under ``incoming`` or None). Large
+    JSON bodies are parsed and validated off the event loop; an upload is never held in memory whole."""
     mt = media_type(request)
     if mt == "multipart/form-data":
         try:
@@ -89,7 +112,6 @@ async def _read_submission(request: Request) -> tuple[TrainingRequest | None, di
         if upload is None or isinstance(upload, str):
             raise InvalidData("the multipart body needs a 'file' part holding a CSV or Parquet table.",
                               errors=[{"field": "file", "message": "missing"}])
-        payload = await upload.read()
         fields: dict[str, Any] = {"data": {"csv": ""}}
         if form.get("spec") is not None:
             fields["spec"] = parse_json(str(form["spec"]).encode(), "multipart field 'spec'")
@@ -102,11 +124,22 @@ async def _read_submission(request: Request) -> tuple[TrainingRequest | None, di
                 raise InvalidData(f"min_improvement must be a number >= 0, got {form['min_improvement']!r}.",
                                   errors=[{"field": "min_improvement", "value": str(form["min_improvement"])}]) from None
         parsed = parse_training_request(fields)
-        return parsed, {}, (payload, getattr(upload, "filename", None))
+        target = incoming / f"{uuid.uuid4().hex}-upload"
+        try:
+            await to_thread.run_sync(_save_upload, upload.file, target)
+        except BaseException:
+            target.unlink(missing_ok=True)
+            raise
+        finally:
+            await form.close()
+        return parsed, {}, (target, getattr(upload, "filename", None))
     if mt in ("", "application/json") or mt.endswith("+json"):
-        raw = parse_json(await request.body())
-        parsed = parse_training_request(raw)
-        return parsed, raw["data"], None
+        raw = await request.body()
+        if len(raw) > OFF_LOOP_BYTES:
+            parsed, data = await to_thread.run_sync(_parse_training_json, raw)
+        else:
+            parsed, data = _parse_training_json(raw)
+        return parsed, data, None
     raise UnsupportedMediaType(
         f"Content-Type {mt!r} is not read here; send application/json or multipart/form-data (file + spec)."
     )
@@ -116,9 +149,9 @@ async def _read_submission(request: Request) -> tuple[TrainingRequest | None, di
 async def submit(request: Request, name: str = Path(..., description="Model name.")) -> Response:
     validate_name(name)
     key = intake.check_idempotency_key(request.headers.get("idempotency-key"))
-    parsed, data, upload = await _read_submission(request)
     app = request.app
     store, settings = app.state.store, app.state.settings
+    parsed, data, upload = await _read_submission(request, FsPath(store.jobs.incoming_dir))
 
     submitter = _submitter(request)
     limits = {"queue_limit": settings.max_queued_jobs, "submitter_limit": settings.max_queued_jobs_per_key}
@@ -153,7 +186,11 @@ async def submit(request: Request, name: str = Path(..., description="Model name
             path.unlink(missing_ok=True)
         return job, created
 
-    job, created = await to_thread.run_sync(accept)
+    try:
+        job, created = await to_thread.run_sync(accept)
+    finally:
+        if upload is not None:
+            upload[0].unlink(missing_ok=True)
     view = job_view(job)
     headers = {"Location": view["links"]["self"]}
     if not created:
