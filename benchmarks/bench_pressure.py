@@ -109,15 +109,15 @@ def hostile_requests() -> list[tuple[str, str, dict]]:
     big_json = json.dumps({"data": {"rows": big_rows}, "spec": quick}).encode()
     csv_h = {"content-type": "text/csv"}
     json_h = {"content-type": "application/json"}
-    return [
-        ("long_label", "/v1/models/stations/predict", {"content": long_label, "headers": csv_h}),
-        ("new_level_every_row", "/v1/models/stations/trainings", {"json": {"data": {"csv": levels}, "spec": level_spec}}),
-        ("wide_batch", "/v1/models/wide/predict?interval=0.9", {"content": wide_csv, "headers": csv_h}),
+    return [  # the quick refusals first, so every kind arrives within a short run
         ("metrics", "/metrics", {}),
         ("huge_spec_string", "/v1/models/pumps/trainings", {"content": huge_spec.encode(), "headers": json_h}),
         ("costly_rbf", "/v1/models/pumps/trainings", {"json": {"data": {"csv": rbf_csv}, "spec": rbf_spec}}),
         ("queue_flood", "/v1/models/pumps/trainings", {"json": {"data": {"rows": small_rows}, "spec": quick}}),
+        ("long_label", "/v1/models/stations/predict", {"content": long_label, "headers": csv_h}),
+        ("new_level_every_row", "/v1/models/stations/trainings", {"json": {"data": {"csv": levels}, "spec": level_spec}}),
         ("big_json_body", "/v1/models/pumps/trainings", {"content": big_json, "headers": json_h}),
+        ("wide_batch", "/v1/models/wide/predict?interval=0.9", {"content": wide_csv, "headers": csv_h}),
     ]
 
 
@@ -168,7 +168,7 @@ def main(argv: list[str] | None = None) -> int:
 
             def sender(k: int) -> None:
                 with httpx.Client(base_url=base, timeout=300) as client:
-                    i = k
+                    i = k * len(hostile) // max(1, args.hostile_workers)
                     while not stop.is_set():
                         label, path, kw = hostile[i % len(hostile)]
                         method = "GET" if label == "metrics" else "POST"
