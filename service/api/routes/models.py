@@ -121,7 +121,7 @@ def get_cv(request: Request, name: str = NamePath, version: int = VersionPath,
     base = f"/v1/models/{name}/versions/{version}/cv"
     if view == "best_per_basis":
         metric = ((body.get("spec") or {}).get("selection") or {}).get("metric") or (body.get("chosen") or {}).get("metric")
-        mean = columns.get("mean", np.zeros(0))
+        mean = columns["mean"] if "mean" in columns else np.zeros(total)
         score = np.where(np.isfinite(mean), -mean if metric == "r2" else mean, np.inf)
         picks = []
         for b in range(len(meta["bases"])):
