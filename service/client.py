@@ -280,9 +280,28 @@ class Client:
         return self._send("GET", f"/v1/models/{_seg(name)}/versions/{_num(version)}")
 
     @_route("GET", "/v1/models/{name}/versions/{version}/cv")
-    def cv(self, name: str, version: int) -> dict[str, Any]:
-        """The CV surface: one row per (basis setting, strength[, l1 ratio]) with fold errors, mean and std."""
-        return self._send("GET", f"/v1/models/{_seg(name)}/versions/{_num(version)}/cv")
+    def cv(self, name: str, version: int, *, view: str = "all", offset: int | None = None,
+           limit: int | None = None) -> dict[str, Any]:
+        """The CV surface: one row per (basis setting, strength[, l1 ratio]) with fold errors, mean and std.
+
+        ``view="best_per_basis"``: the best row of each basis setting. ``view="all"``: every row; with
+        ``offset``/``limit`` one page, without them all pages, joined (the server sends at most 10,000
+        rows per page)."""
+        path = f"/v1/models/{_seg(name)}/versions/{_num(version)}/cv"
+        if view != "all" or offset is not None or limit is not None:
+            params = {"view": view, **({"offset": offset} if offset is not None else {}),
+                      **({"limit": limit} if limit is not None else {})}
+            return self._send("GET", path, params=params)
+        out = self._send("GET", path, params={"view": "all", "offset": 0, "limit": 10_000})
+        while (out.get("links") or {}).get("next"):
+            page = self._send("GET", path, params={"view": "all", "offset": out["offset"] + len(out["table"]),
+                                                   "limit": 10_000})
+            if not page["table"]:
+                break
+            out["table"].extend(page["table"])
+            out["links"] = page["links"]
+        out["limit"] = len(out["table"])
+        return out
 
     @_route("GET", "/v1/models/{name}/versions/{version}/path")
     def path(self, name: str, version: int) -> dict[str, Any]:

@@ -58,6 +58,14 @@ class BudgetExceeded(TikhonError):
     title = "Limit exceeded"
 
 
+class Busy(TikhonError):
+    """A capacity limit is reached for now (queued training jobs, overall or per key); retry later.
+    ``retry_after`` (seconds) travels in ``extra``."""
+
+    slug = "busy"
+    title = "Too many queued jobs"
+
+
 class InvalidName(TikhonError):
     slug = "invalid-name"
     title = "Invalid model name"

@@ -36,6 +36,26 @@ class Settings(BaseSettings):
     max_rows_per_request: int = Field(100_000, ge=1, description="Most rows in one predict request.")
     max_training_rows: int = Field(5_000_000, ge=1, description="Most rows in one in-memory training job.")
     max_training_seconds: float = Field(3600.0, gt=0, description="Wall-time limit of one training job.")
+    max_label_chars: int = Field(
+        256, ge=1, description="Longest category label (characters) in any table, predict or training; a longer "
+        "one is refused with a 422 naming its row and column.")
+    max_levels: int = Field(
+        1_000, ge=1, description="Most distinct levels of one categorical column in training data, counted before "
+        "any one-hot expansion (each level becomes a column of the design).")
+    predict_memory_bytes: int = Field(
+        256 * 2**20, ge=2**20, description="Working memory of one prediction request: rows are predicted in chunks "
+        "sized from the model's width so the design and interval arrays of a chunk stay within this.")
+    max_spec_bytes: int = Field(64 * 2**10, ge=1024, description="Largest training spec, as JSON text.")
+    max_spec_string_chars: int = Field(
+        1_000, ge=16, description="Longest string inside a spec or training request (units, reasons, labels, names).")
+    max_job_cost: float = Field(
+        2e11, gt=0, description="Largest estimated cost of one training job, in floating-point operations "
+        "(rows x basis width^2 per pass over the rows, width^3 and strengths x width^2 per split, x sweeps for L1); "
+        "a costlier job is refused before it is queued.")
+    max_queued_jobs: int = Field(
+        100, ge=1, description="Most training jobs queued at once; more are refused with 429 and Retry-After.")
+    max_queued_jobs_per_key: int = Field(
+        20, ge=1, description="Most queued training jobs per API key (or per anonymous caller when no keys exist).")
 
     # scale: out-of-core and distributed training
     streaming_threshold_bytes: int = Field(

@@ -139,7 +139,7 @@ def _watch_parent(parent_pid: int) -> None:
 
 def _train(data_path: str | None, spec: dict, conn, progress, cancel, deadline: float,
            stream: str | None = None, dask_scheduler: str | None = None, dask_workers: int = 2,
-           parent_pid: int | None = None) -> None:
+           limits: dict | None = None, parent_pid: int | None = None) -> None:
     """Body of the training process: read the staged table (or stream the source), tune, send the
     artifact back through ``conn``."""
     if parent_pid is not None:
@@ -169,8 +169,10 @@ def _train(data_path: str | None, spec: dict, conn, progress, cancel, deadline: 
             from service.api.tables import read_staged
             from service.engine import tune
 
+            from service.engine.tune import Budget
+
             cols = read_staged(data_path)
-            result = tune(cols, spec, progress=on_progress, should_stop=should_stop)
+            result = tune(cols, spec, progress=on_progress, should_stop=should_stop, budget=Budget(**(limits or {})))
         body, arrays = result.to_artifact()
         folds = np.asarray(result.folds)
         conn.send(("ok", body, arrays, {
@@ -450,7 +452,9 @@ class Worker:
         deadline = started + s.max_training_seconds
         proc = _SPAWN.Process(
             target=_train, args=(job.get("data_path"), request["spec"], child_conn, progress, cancel, deadline,
-                                 stream, s.dask_scheduler, s.dask_local_workers, os.getpid()),
+                                 stream, s.dask_scheduler, s.dask_local_workers,
+                                 {"max_grid_fits": s.max_grid_fits, "max_levels": s.max_levels,
+                                  "max_job_cost": s.max_job_cost}, os.getpid()),
             name=f"tikhon-train-{jid[:8]}", daemon=True,
         )
         proc.start()
@@ -605,7 +609,7 @@ class Worker:
                             "reason": f"{note}; " + ("it had already gone live" if went else
                                                      f"the newer version {live} is live and stays live")}
             else:
-                body = self.store.get_manifest(name, version).get("model") or {}
+                body = self.store.get_manifest(name, version, cv_table=False).get("model") or {}
                 summary = body.get("cv_summary") or {}
                 outcome = {"metric": summary.get("metric"), "cv_mean": float(summary.get("mean")), "folds": None,
                            "target": (body.get("spec") or {}).get("target")}

@@ -71,7 +71,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
     app.state.catalog_watch = last_known.watch
     app.state.gate = auth.KeyGate(store.keys, settings.auth_cache_s, last_known)
     app.state.models = ModelCache(store, settings, metrics, last_known)
-    metrics.watch_jobs(lambda: store.jobs.list())
+    metrics.watch_jobs(store.jobs.counts)
 
     problems.install(app)
 

@@ -17,9 +17,10 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+import orjson
 
 from service.api import tables
-from service.errors import InvalidData, InvalidSpec, NotFound
+from service.errors import BudgetExceeded, InvalidData, InvalidSpec, NotFound
 from service.settings import Settings
 from service.store.jobs import IDEMPOTENCY_KEY_RULE
 
@@ -31,10 +32,13 @@ def table_sha256(cols: tables.Table) -> str:
     """SHA-256 of a table in a canonical form (names, dtypes and little-endian values, in column order)."""
     h = hashlib.sha256()
     for name, arr in cols.items():
-        h.update(name.encode() + b"\x00" + arr.dtype.str.encode() + b"\x00")
-        if arr.dtype.kind == "U":
+        if arr.dtype.kind in "UO":
+            # text: the same bytes as when text columns were fixed-width "<U{longest}" arrays
+            width = max(1, max(map(len, arr.tolist()), default=1))
+            h.update(name.encode() + b"\x00" + f"<U{width}".encode() + b"\x00")
             h.update("\x1f".join(arr.tolist()).encode())
         else:
+            h.update(name.encode() + b"\x00" + arr.dtype.str.encode() + b"\x00")
             h.update(np.ascontiguousarray(arr, dtype="<f8").tobytes())
         h.update(b"\x1e")
     return h.hexdigest()
@@ -51,25 +55,62 @@ def check_column_names(names: list[Any], where: str) -> None:
                 errors=[{"field": f"columns[{i}]", "value": name, "message": "a column needs a non-empty name"}])
 
 
-def load_data(data: dict[str, Any] | None, settings: Settings, *, upload: tuple[bytes, str | None] | None = None
+
+def check_spec_size(spec_raw: Any, settings: Settings) -> None:
+    """Refuse a spec whose JSON text exceeds ``max_spec_bytes`` or that holds a string (a value or a key:
+    units, column names, ...) longer than ``max_spec_string_chars``, naming the field. A spec is small
+    (a few hundred bytes); it is stored with the job and the version, and read by every listing."""
+    if spec_raw is None:
+        return
+    cap = settings.max_spec_string_chars
+    stack: list[tuple[str, Any]] = [("spec", spec_raw)]
+    while stack:
+        path, v = stack.pop()
+        if isinstance(v, str):
+            if len(v) > cap:
+                raise BudgetExceeded(
+                    f"{path} is a string of {len(v):,} characters, above the limit max_spec_string_chars={cap:,}; "
+                    "a spec names columns and units in short strings: shorten it (or raise "
+                    "TIKHON_MAX_SPEC_STRING_CHARS on the server).",
+                    errors=[{"field": path, "value": len(v), "message": "string too long"}],
+                    limit="max_spec_string_chars", allowed=cap, received=len(v))
+        elif isinstance(v, dict):
+            for k, x in v.items():
+                key = str(k)
+                if len(key) > cap:
+                    stack.append((f"{path} (a key)", key))
+                    continue
+                stack.append((f"{path}.{key}", x))
+        elif isinstance(v, list):
+            stack.extend((f"{path}[{i}]", x) for i, x in enumerate(v))
+    size = len(orjson.dumps(spec_raw))
+    if size > settings.max_spec_bytes:
+        raise BudgetExceeded(
+            f"spec is {size:,} bytes as JSON, above the limit max_spec_bytes={settings.max_spec_bytes:,}; list fewer "
+            "strengths (use {\"min\", \"max\", \"count\"}), features or units (or raise TIKHON_MAX_SPEC_BYTES).",
+            errors=[{"field": "spec", "value": size, "message": "spec too large"}],
+            limit="max_spec_bytes", allowed=settings.max_spec_bytes, received=size)
+
+
+def load_data(data: dict[str, Any] | None, settings: Settings, *, upload: tuple[bytes | Path, str | None] | None = None
               ) -> tuple[tables.Table, dict[str, Any]]:
     """(columns, a description of where they came from) for one of rows / csv / source / an upload."""
     if upload is not None:
         payload, filename = upload
-        cols = tables.from_file_bytes(payload, filename, where="the uploaded file")
+        cols = tables.from_file_bytes(payload, filename, where="the uploaded file", max_label=settings.max_label_chars)
         origin = {"kind": "upload", "filename": filename}
     elif "rows" in data:
         rows = data["rows"]
         if isinstance(rows, list):
             tables.check_row_limit(len(rows), settings.max_training_rows, "max_training_rows", "data.rows")
-        cols = tables.from_rows(rows, where="data.rows")
+        cols = tables.from_rows(rows, where="data.rows", max_label=settings.max_label_chars)
         origin = {"kind": "rows"}
     elif "csv" in data:
-        cols = tables.from_csv(data["csv"], where="data.csv")
+        cols = tables.from_csv(data["csv"], where="data.csv", max_label=settings.max_label_chars)
         origin = {"kind": "csv"}
     else:
         path = tables.resolve_source(Path(settings.data_dir), data["source"])
-        cols = tables.read_source(path, where=f"data.source={data['source']!r}")
+        cols = tables.read_source(path, where=f"data.source={data['source']!r}", max_label=settings.max_label_chars)
         origin = {"kind": "source", "source": data["source"]}
     check_column_names(list(cols), "the training data")
     n = len(next(iter(cols.values())))
@@ -105,7 +146,6 @@ def validate_stream(path: Path, spec_raw: dict[str, Any], settings: Settings, so
     grid fits the budget (rows from Parquet metadata, or estimated from a CSV's size)."""
     from service.engine import parse_spec
     from service.engine.streaming import check_partitions
-    from service.engine.tune import Budget
     from service.sources import open_source
 
     spec = parse_spec(spec_raw)
@@ -117,7 +157,7 @@ def validate_stream(path: Path, spec_raw: dict[str, Any], settings: Settings, so
             head = fh.read(1 << 16)
         lines = max(1, head.count(b"\n"))
         rows = int(path.stat().st_size / (len(head) / lines)) if head else 0
-    counts = check_partitions(schema, spec, rows, Budget(max_grid_fits=settings.max_grid_fits))
+    counts = check_partitions(schema, spec, rows, _budget(settings))
     files = sorted(path.iterdir()) if path.is_dir() else [path]
     origin = {"kind": "source", "source": source, "execution": "streaming", "rows": rows,
               "columns": list(schema), "bytes": sum(f.stat().st_size for f in files if f.is_file()),
@@ -137,7 +177,7 @@ def live_spec(store, name: str) -> dict[str, Any]:
             "send a spec, at least {\"target\": \"<column>\"}.",
             errors=[{"field": "spec", "message": "missing"}],
         )
-    manifest = store.get_manifest(name, live)
+    manifest = store.get_manifest(name, live, cv_table=False)
     spec = (manifest.get("model") or {}).get("spec")
     if not isinstance(spec, dict):
         raise InvalidSpec(f"the live version {live} of {name!r} keeps no reusable spec; send a spec with the request.")
@@ -147,18 +187,32 @@ def live_spec(store, name: str) -> dict[str, Any]:
 def validate(cols: tables.Table, spec_raw: dict[str, Any], settings: Settings) -> tuple[dict[str, Any], dict[str, int]]:
     """Validate spec and data together exactly as the engine will; return the normalized spec and grid counts."""
     from service.engine import check_budget, parse_spec
-    from service.engine.tune import Budget, prepare
+    from service.engine.tune import prepare
 
     spec = parse_spec(spec_raw)
-    prep = prepare(cols, spec)
+    budget = _budget(settings)
+    # The size checks first, from the shape alone (declared or numeric features, no one-hot columns yet);
+    # then the checks that read the data, then the size checks again with the category columns counted.
+    n_rows = len(next(iter(cols.values()))) if cols else 0
+    d_guess = len(spec.features) if spec.features is not None else sum(
+        1 for c, v in cols.items() if v.dtype.kind in "biuf" and c != spec.target)
+    check_budget(spec, n_rows, d_guess, budget)
+    prep = prepare(cols, spec, budget)
     n, d = prep.X.shape
     if spec.cv.scheme not in ("loo",) and spec.cv.folds > n:
         raise InvalidSpec(
             f"cv.folds={spec.cv.folds} is more than the {n} rows of the data; use at most {n} folds or send more rows.",
             errors=[{"field": "cv.folds", "value": spec.cv.folds, "message": "more folds than rows"}],
         )
-    counts = check_budget(spec, n, d, Budget(max_grid_fits=settings.max_grid_fits), prep.categories.width)
+    counts = check_budget(spec, n, d, budget, prep.categories.width)
     return spec.model_dump(mode="json"), counts
+
+
+def _budget(settings: Settings):
+    from service.engine.tune import Budget
+
+    return Budget(max_grid_fits=settings.max_grid_fits, max_levels=settings.max_levels,
+                  max_job_cost=settings.max_job_cost)
 
 
 def check_idempotency_key(key: str | None) -> str | None:

@@ -12,8 +12,7 @@ replaced included, so counters never go down between scrapes whichever process a
 
 from __future__ import annotations
 
-from collections import Counter as _Tally
-from typing import Callable, Iterable
+from typing import Callable, Mapping
 
 from prometheus_client import CollectorRegistry, Counter, Histogram, generate_latest, values
 from prometheus_client.core import GaugeMetricFamily
@@ -26,15 +25,17 @@ JOB_STATES = ("queued", "running", "succeeded", "failed", "cancelled")
 
 class _JobStates:
     """Collector that counts training jobs by state at scrape time (the catalog is the source of truth,
-    so the figure is right across server replicas and standalone workers)."""
+    so the figure is right across server replicas and standalone workers). ``count_jobs`` is one
+    ``SELECT state, count(*) ... GROUP BY state`` over all jobs: a scrape never reads a job's body, so its
+    cost does not grow with what callers put in their requests."""
 
-    def __init__(self, list_jobs: Callable[[], Iterable[dict]]):
-        self._list_jobs = list_jobs
+    def __init__(self, count_jobs: Callable[[], Mapping[str, int]]):
+        self._count_jobs = count_jobs
 
     def collect(self):
         family = GaugeMetricFamily("tikhon_training_jobs", "Training jobs in the catalog by state.", labels=["state"])
         try:
-            tally = _Tally(str(j.get("state")) for j in self._list_jobs())
+            tally = self._count_jobs()
         except Exception:  # an unreachable catalog must not break the scrape; /readyz reports it
             return
         for state in JOB_STATES:
@@ -80,8 +81,9 @@ class ApiMetrics:
         )
         self._seen: dict[tuple[str, str, int], tuple] = {}
 
-    def watch_jobs(self, list_jobs: Callable[[], Iterable[dict]]) -> None:
-        self._job_states = _JobStates(list_jobs)
+    def watch_jobs(self, count_jobs: Callable[[], Mapping[str, int]]) -> None:
+        """Register the job-state gauge; ``count_jobs()`` returns {state: count} over all jobs."""
+        self._job_states = _JobStates(count_jobs)
         self.registry.register(self._job_states)
 
     def observe_request(self, method: str, route: str, status: int, seconds: float) -> None:

@@ -52,6 +52,7 @@ _STATUS: dict[type[E.TikhonError], int] = {
     E.InvalidData: 422,
     E.BudgetExceeded: 422,
     E.InvalidName: 422,
+    E.Busy: 429,
     E.NotFound: 404,
     E.Conflict: 409,
     E.Cancelled: 409,
@@ -245,6 +246,8 @@ def install(app: FastAPI) -> None:
         headers = {"WWW-Authenticate": 'Bearer realm="tikhon"'} if isinstance(exc, E.Unauthorized) else None
         if isinstance(exc, E.CatalogUnavailable):
             headers = {"Retry-After": str(CATALOG_RETRY_AFTER_S)}
+        elif isinstance(exc, E.Busy):  # RFC 9110 section 10.2.3: when to try again, in seconds
+            headers = {"Retry-After": str(int(exc.extra.get("retry_after", 30)))}
         body = problem_from_error(exc, instance=request.url.path, request_id=_request_id(request))
         if isinstance(exc, E.CatalogUnavailable):  # an outage: one line per request, not an error each
             log.warning("request refused, catalog unavailable: %s", exc, extra={"request_id": _request_id(request)})

@@ -1,7 +1,10 @@
 """Turning request payloads into validated columns, and staging training data for the worker.
 
 Every table inside the service is a ``dict[str, numpy.ndarray]`` in column order: numeric columns
-are float64, text columns (categorical inputs) are fixed-width unicode (``<U``), never object arrays.
+are float64, text columns (categorical inputs) are object arrays of Python ``str``. Never fixed-width
+unicode (``<U``): one long label would make every row as wide as it (100,000 rows and one
+20,000-character label are 8 GB as ``<U20000``). Every label is at most ``max_label`` characters
+(the setting ``max_label_chars``); a longer one is refused naming its row and column.
 All checks raise ``InvalidData`` / ``BudgetExceeded`` whose message names the column, the first
 offending rows and the fix. Training data is staged for the worker as Parquet (pyarrow): typed,
 checksummable, and it executes nothing when read.
@@ -18,6 +21,7 @@ from typing import Any
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
@@ -27,6 +31,30 @@ from service.errors import BudgetExceeded, InvalidData, StorageFailure
 Table = dict[str, np.ndarray]
 
 _NUMBER = (int, float)
+
+MAX_LABEL_CHARS = 256  # default of the setting max_label_chars
+
+
+def _label_too_long(where: str, name: str, row: int, length: int, cap: int):
+    raise BudgetExceeded(
+        f"{where} column {name!r} holds a label of {length:,} characters at row {row} (rows counted from 0), above "
+        f"the limit max_label_chars={cap}; category labels are short names: shorten it, or raise "
+        "TIKHON_MAX_LABEL_CHARS on the server.",
+        errors=[{"field": f"{where}[{row}].{name}", "value": length, "message": "label too long"}],
+        limit="max_label_chars", allowed=cap, received=length,
+    )
+
+
+def text_column(name: str, vals: list, where: str, max_label: int | None) -> np.ndarray:
+    """Python strings -> an object array, refusing a label longer than ``max_label`` characters."""
+    arr = np.empty(len(vals), dtype=object)
+    arr[:] = vals
+    if max_label is not None and arr.size:
+        lengths = np.fromiter(map(len, vals), dtype=np.int64, count=len(vals))
+        over = np.flatnonzero(lengths > max_label)
+        if over.size:
+            _label_too_long(where, name, int(over[0]), int(lengths[over[0]]), max_label)
+    return arr
 
 
 def _rows_list(ids: list[int]) -> str:
@@ -43,7 +71,7 @@ def check_row_limit(n: int, limit: int, setting: str, where: str) -> None:
         )
 
 
-def from_rows(rows: Any, *, where: str = "rows") -> Table:
+def from_rows(rows: Any, *, where: str = "rows", max_label: int | None = MAX_LABEL_CHARS) -> Table:
     """JSON rows (a list of objects with the same keys) -> columns. Rows are numbered from 0."""
     if not isinstance(rows, list):
         raise InvalidData(
@@ -69,7 +97,11 @@ def from_rows(rows: Any, *, where: str = "rows") -> Table:
                     _bad_value(where, name, 0, v)
                 cols[name] = np.array([v], dtype=np.float64)
             elif t is str:
-                cols[name] = np.array([v])
+                if max_label is not None and len(v) > max_label:
+                    _label_too_long(where, name, 0, len(v), max_label)
+                col = np.empty(1, dtype=object)
+                col[0] = v
+                cols[name] = col
             else:
                 _bad_value(where, name, 0, v)
         return cols
@@ -95,7 +127,7 @@ def from_rows(rows: Any, *, where: str = "rows") -> Table:
             )
         for k, v in row.items():
             values[k][i] = v
-    return {name: _column_from_values(name, vals, where) for name, vals in values.items()}
+    return {name: _column_from_values(name, vals, where, max_label) for name, vals in values.items()}
 
 
 def _bad_value(where: str, name: str, i: int, v: Any):
@@ -108,7 +140,7 @@ def _bad_value(where: str, name: str, i: int, v: Any):
     raise InvalidData(msg, errors=[{"field": f"{where}[{i}].{name}", "value": v, "message": "not a finite number or string"}])
 
 
-def _column_from_values(name: str, vals: list, where: str) -> np.ndarray:
+def _column_from_values(name: str, vals: list, where: str, max_label: int | None = MAX_LABEL_CHARS) -> np.ndarray:
     kinds = {type(v) for v in vals}
     if kinds <= {int, float}:
         arr = np.asarray(vals, dtype=np.float64)
@@ -117,7 +149,7 @@ def _column_from_values(name: str, vals: list, where: str) -> np.ndarray:
             _bad_value(where, name, int(bad[0]), vals[int(bad[0])])
         return arr
     if kinds == {str}:
-        return np.asarray(vals, dtype=str)
+        return text_column(name, vals, where, max_label)
     for i, v in enumerate(vals):
         if type(v) not in (int, float, str) or (type(v) is float and not math.isfinite(v)):
             _bad_value(where, name, i, v)
@@ -130,7 +162,7 @@ def _column_from_values(name: str, vals: list, where: str) -> np.ndarray:
     )
 
 
-def from_arrow(table: pa.Table, *, where: str) -> Table:
+def from_arrow(table: pa.Table, *, where: str, max_label: int | None = MAX_LABEL_CHARS) -> Table:
     """An Arrow table (from CSV or Parquet) -> columns, refusing nulls, NaN/inf and unsupported types."""
     if table.num_rows == 0:
         raise InvalidData(f"{where} has a header but no rows; send at least one row.")
@@ -160,7 +192,14 @@ def from_arrow(table: pa.Table, *, where: str) -> Table:
                 )
             out[name] = arr
         elif pa.types.is_string(t) or pa.types.is_large_string(t) or pa.types.is_dictionary(t):
-            out[name] = np.asarray(col.cast(pa.string()).to_pylist(), dtype=str)
+            text = col.cast(pa.string())
+            if max_label is not None:
+                lengths = pc.utf8_length(text)
+                longest = pc.max(lengths).as_py() or 0
+                if longest > max_label:
+                    row = int(np.flatnonzero(np.asarray(lengths.to_numpy(zero_copy_only=False)) > max_label)[0])
+                    _label_too_long(where, name, row, int(lengths[row].as_py()), max_label)
+            out[name] = text.to_numpy(zero_copy_only=False).astype(object, copy=False)
         elif pa.types.is_boolean(t):
             raise InvalidData(
                 f"{where} column {name!r} holds true/false values; encode it as 0/1 numbers or as category labels."
@@ -173,40 +212,59 @@ def from_arrow(table: pa.Table, *, where: str) -> Table:
     return out
 
 
-def from_csv(payload: bytes | str, *, where: str = "csv") -> Table:
-    data = payload.encode() if isinstance(payload, str) else payload
-    if not data.strip():
+def from_csv(payload: bytes | str | Path, *, where: str = "csv", max_label: int | None = MAX_LABEL_CHARS) -> Table:
+    """CSV text, bytes, or a file (read by pyarrow from disk, never held in memory whole)."""
+    if isinstance(payload, Path):
+        with open(payload, "rb") as fh:
+            empty = not fh.read(1 << 16).strip()
+        source: Any = None
+    else:
+        data = payload.encode() if isinstance(payload, str) else payload
+        empty = not data.strip()
+        source = io.BytesIO(data)
+    if empty:
         raise InvalidData(f"{where} is empty; send a header line and at least one row.")
+    if source is None:
+        source = pa.OSFile(str(payload), "rb")  # no compression guessed from the file name
     try:
         table = pacsv.read_csv(
-            io.BytesIO(data),
+            source,
             read_options=pacsv.ReadOptions(use_threads=False),
             convert_options=pacsv.ConvertOptions(strings_can_be_null=True),
         )
     except (pa.ArrowInvalid, pa.ArrowTypeError, UnicodeDecodeError) as exc:
+        source.close()
         reason = " ".join(str(exc).split())
         raise InvalidData(
             f"{where} could not be parsed as CSV ({reason[:300]}); send comma-separated UTF-8 text with one header "
             "line and the same number of fields on every line."
         ) from None
-    return from_arrow(table, where=where)
+    source.close()
+    return from_arrow(table, where=where, max_label=max_label)
 
 
-def from_parquet(payload: bytes | Path, *, where: str) -> Table:
+def from_parquet(payload: bytes | Path, *, where: str, max_label: int | None = MAX_LABEL_CHARS) -> Table:
     try:
         source = pa.BufferReader(payload) if isinstance(payload, (bytes, bytearray)) else str(payload)
         table = pq.read_table(source)
     except (pa.ArrowException, OSError) as exc:
         reason = " ".join(str(exc).split())
         raise InvalidData(f"{where} could not be read as Parquet ({reason[:300]}); send a valid Parquet file or CSV.") from None
-    return from_arrow(table, where=where)
+    return from_arrow(table, where=where, max_label=max_label)
 
 
-def from_file_bytes(payload: bytes, filename: str | None, *, where: str) -> Table:
-    """An uploaded file: Parquet when it starts with the Parquet magic bytes, else CSV."""
+def from_file_bytes(payload: bytes | Path, filename: str | None, *, where: str, max_label: int | None = MAX_LABEL_CHARS) -> Table:
+    """An uploaded file (its bytes, or the file it was saved to): Parquet when it starts with the Parquet
+    magic bytes, else CSV."""
+    if isinstance(payload, Path):
+        with open(payload, "rb") as fh:
+            head = fh.read(4)
+        if head == b"PAR1":
+            return from_parquet(payload, where=where, max_label=max_label)
+        return from_csv(payload, where=where, max_label=max_label)
     if payload[:4] == b"PAR1":
-        return from_parquet(payload, where=where)
-    return from_csv(payload, where=where)
+        return from_parquet(payload, where=where, max_label=max_label)
+    return from_csv(payload, where=where, max_label=max_label)
 
 
 def resolve_source(data_dir: Path, source: Any, *, where: str = "data.source", allow_dir: bool = False) -> Path:
@@ -284,19 +342,18 @@ def _unreachable(root: Path, source: str, exc: BaseException, *, where: str, hin
                        errors=[{"field": where, "value": shown, "message": short}])
 
 
-def read_source(path: Path, *, where: str = "data.source") -> Table:
+def read_source(path: Path, *, where: str = "data.source", max_label: int | None = MAX_LABEL_CHARS) -> Table:
     if path.suffix.lower() in (".parquet", ".pq"):
-        return from_parquet(path, where=where)
+        return from_parquet(path, where=where, max_label=max_label)
     try:
         with open(path, "rb") as fh:
             head = fh.read(4)
-        if head == b"PAR1":
-            return from_parquet(path, where=where)
-        payload = path.read_bytes()
     except OSError as exc:  # unreadable (permissions, an I/O error): the caller's 422, not a 500
         raise InvalidData(f"{where} cannot be read ({exc.strerror or type(exc).__name__}); check the file's "
                           "permissions in the data folder (TIKHON_DATA_DIR).") from None
-    return from_csv(payload, where=where)
+    if head == b"PAR1":
+        return from_parquet(path, where=where, max_label=max_label)
+    return from_csv(Path(path), where=where, max_label=max_label)
 
 
 def to_arrow(table: Table) -> pa.Table:
@@ -326,4 +383,5 @@ def stage(table: Table, path: Path) -> Path:
 
 
 def read_staged(path: Path) -> Table:
-    return from_parquet(Path(path), where="staged training data")
+    # checked when the job was accepted; a job staged before a lower cap still trains
+    return from_parquet(Path(path), where="staged training data", max_label=None)

@@ -29,6 +29,7 @@ from .basis import BasisSetting, Categories, InputScaler
 from .table import as_columns, categorical_column, numeric_column
 
 MAX_INTERVAL_RESIDUALS = 20_000  # residuals kept per model; more are thinned to evenly spaced order statistics
+PREDICT_MEMORY_BYTES = 256 * 2**20  # default working memory of one predict call (the setting predict_memory_bytes)
 
 
 @dataclass
@@ -111,18 +112,51 @@ class FittedModel:
             raise InvalidData(f"columns {extra} are not inputs of this model; remove them (inputs: {needed})",
                               errors=[{"field": c, "message": "unknown column"} for c in extra])
 
-    def predict(self, data: Any) -> np.ndarray:
-        cols = as_columns(data)
-        Phi, _, _ = self.design(cols)
-        return self.intercept + Phi @ self.weights
+    def chunk_rows(self, memory_bytes: int = PREDICT_MEMORY_BYTES, interval: bool = True) -> int:
+        """Rows predicted at once so that one chunk's arrays stay within ``memory_bytes``: per row, the
+        basis design and its temporaries (about 5 × the width p), the leverage product (rank of the
+        leverage factor), the fold predictions (2 × K folds), the inputs, and for CV+ intervals the
+        row × residual blocks of the interval (2 × the residuals kept)."""
+        p = int(self.beta.size)
+        r = int(self.leverage_factor.shape[0]) if self.leverage_factor.ndim == 2 else 0
+        k = int(self.fold_weights.shape[0]) if self.fold_weights is not None else 0
+        d = len(self.features)
+        per_row = 8 * (5 * p + r + 2 * k + 4 * d + 16 + (2 * int(self.residuals.size) if interval and k else 0))
+        return max(1, memory_bytes // per_row)
 
-    def predict_detail(self, data: Any, interval: float | None = None, strict: bool = True) -> dict[str, Any]:
-        """Predictions with CV+ intervals, leverage and extrapolation warnings per row."""
+    def predict(self, data: Any, memory_bytes: int = PREDICT_MEMORY_BYTES) -> np.ndarray:
+        cols = as_columns(data)
+        m = _nrows(cols)
+        step = self.chunk_rows(memory_bytes, interval=False)
+        out = np.empty(m)
+        for a in range(0, m, step):
+            Phi, _, _ = self.design(_rows(cols, a, a + step) if m > step else cols)
+            out[a:a + step] = self.intercept + Phi @ self.weights
+        return out
+
+    def predict_detail(self, data: Any, interval: float | None = None, strict: bool = True,
+                       memory_bytes: int = PREDICT_MEMORY_BYTES) -> dict[str, Any]:
+        """Predictions with CV+ intervals, leverage and extrapolation warnings per row.
+
+        Rows are computed in chunks of ``chunk_rows(memory_bytes)``, so the working memory of one call
+        is bounded whatever the row count (the answer itself is a few numbers per row)."""
         cols = as_columns(data)
         if strict:
             self.check_columns(cols)
         if interval is not None and not (0 < interval < 1):
             raise InvalidData(f"interval must lie strictly between 0 and 1, got {interval}; e.g. 0.9 for 90%")
+        m = _nrows(cols)
+        step = self.chunk_rows(memory_bytes, interval is not None)
+        if m <= step:
+            return self._detail(cols, interval)
+        parts = [self._detail(_rows(cols, a, a + step), interval) for a in range(0, m, step)]
+        out: dict[str, Any] = {}
+        for key in ("value", "lower", "upper", "leverage"):
+            out[key] = None if parts[0][key] is None else np.concatenate([q[key] for q in parts])
+        out["warnings"] = [w for q in parts for w in q["warnings"]]
+        return out
+
+    def _detail(self, cols: dict[str, np.ndarray], interval: float | None) -> dict[str, Any]:
         Phi, X, unseen = self.design(cols)
         value = self.intercept + Phi @ self.weights
         Zs = (Phi - self.column_mean) / self.column_scale
@@ -297,6 +331,10 @@ def thin_residuals(abs_res: np.ndarray, fold: np.ndarray, limit: int = MAX_INTER
 
 def _nrows(cols: dict[str, np.ndarray]) -> int:
     return len(next(iter(cols.values()))) if cols else 0
+
+
+def _rows(cols: dict[str, np.ndarray], a: int, b: int) -> dict[str, np.ndarray]:
+    return {k: v[a:b] for k, v in cols.items()}
 
 
 def _fmt(v: float) -> str:

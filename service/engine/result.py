@@ -104,12 +104,13 @@ def setting_df(full: Summary, spec: TuneSpec, strengths: np.ndarray, ratios: lis
 
 
 def score_splits(atoms: list[Summary], splits: list[tuple[list[int], list[int]]], spec: TuneSpec,
-                 strengths: np.ndarray, ratios: list[float | None], mae_rows=None
+                 strengths: np.ndarray, ratios: list[float | None], mae_rows=None, tick=None
                  ) -> tuple[np.ndarray, list[list[Fit]]]:
     """Metric per (l1 ratio, strength, split) from atom summaries, and the fits of every split.
 
     RMSE and R² come from the validation atoms' summaries alone; MAE needs the rows, through
-    ``mae_rows(test_ids, fit) -> (L,)`` (or NaN placeholders, filled later by a streaming pass)."""
+    ``mae_rows(test_ids, fit) -> (L,)`` (or NaN placeholders, filled later by a streaming pass).
+    ``tick(fraction)``, when given, is called after each split."""
     metric = spec.selection.metric
     values = np.empty((len(ratios), strengths.size, len(splits)))
     all_fits = []
@@ -124,6 +125,8 @@ def score_splits(atoms: list[Summary], splits: list[tuple[list[int], list[int]]]
             else:
                 sse = test.sse(f.residual_operator())
                 values[r_i, :, j] = metric_value(metric, test.n, sse=sse, sst=test.total_ss())
+        if tick is not None:  # a long job's progress inside one basis setting: the share of splits done
+            tick((j + 1) / len(splits))
     return values, all_fits
 
 

@@ -51,7 +51,8 @@ class Summary:
     n: int
 
     @staticmethod
-    def of(Phi: np.ndarray, y: np.ndarray, chunk_rows: int = CHUNK_ROWS) -> "Summary":
+    def of(Phi: np.ndarray, y: np.ndarray, chunk_rows: int = CHUNK_ROWS, on_block=None) -> "Summary":
+        """``on_block(rows)``, if given, is called after each chunk of rows (progress of a long pass)."""
         n, p = Phi.shape
         parts = []
         for lo in range(0, n, chunk_rows):
@@ -61,6 +62,8 @@ class Summary:
             A[:, 1:-1] = Phi[lo:hi]
             A[:, -1] = y[lo:hi]
             parts.append(qr_r(A))
+            if on_block is not None:
+                on_block(hi - lo)
         if not parts:
             return Summary(np.zeros((p + 2, p + 2)), 0)
         return Summary(merge(parts), n)

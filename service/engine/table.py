@@ -64,7 +64,7 @@ def numeric_column(cols: Columns, name: str, role: str, offset: int = 0) -> np.n
             errors=[{"field": name, "message": "booleans are not numbers"}])
     if raw.dtype.kind in "iuf":
         x = raw.astype(np.float64, copy=False)
-    elif raw.dtype.kind in "US" and raw.size:
+    elif raw.size and (raw.dtype.kind in "UST" or (raw.dtype.kind == "O" and _all_text(raw))):
         # A text-typed column (JSON strings, a CSV column pyarrow read as text) is text even when its
         # values look like numbers ("55.5"): reading them as numbers would hide a caller's type error.
         shown = [offset + i for i in range(min(5, raw.size))]
@@ -108,12 +108,20 @@ def categorical_column(cols: Columns, name: str, offset: int = 0) -> np.ndarray:
         if bad:
             raise InvalidData(f"categorical column {name!r} holds missing values at rows {bad}; fill them in",
                               errors=[{"field": name, "rows": bad, "message": "missing"}])
-    out = np.array([_level(v) for v in raw], dtype=object)
+    if raw.dtype.kind == "O" and _all_text(raw):
+        return raw  # already Python strings (the API's text columns): no copy, no fixed width
+    # An object array of Python strings, never fixed-width unicode: one long label would widen every row.
+    out = np.empty(raw.size, dtype=object)
+    out[:] = [_level(v) for v in raw]
     missing = [i + offset for i, v in enumerate(out) if v is None][:5]
     if missing:
         raise InvalidData(f"categorical column {name!r} holds missing values at rows {missing}; fill them in",
                           errors=[{"field": name, "rows": missing, "message": "missing"}])
-    return out.astype(str)
+    return out
+
+
+def _all_text(raw: np.ndarray) -> bool:
+    return all(type(v) is str for v in raw)
 
 
 def numeric_names(cols: Columns) -> list[str]:

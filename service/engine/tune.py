@@ -39,11 +39,17 @@ class Budget:
     ``max_grid_fits`` counts what a from-scratch grid search would fit: basis settings × strengths ×
     l1 ratios × splits. ``max_basis_terms`` bounds the width of one basis setting, and
     ``max_design_cells`` bounds rows × basis terms (the memory of one expanded design, 8 bytes a cell).
+    ``max_levels`` bounds the levels of each categorical column; it is checked in ``prepare`` before
+    the one-hot block (rows × levels) is built. ``max_job_cost`` bounds ``estimate_cost``: the grid count
+    alone says nothing of what one fit costs (two fits of a 4,000-centre RBF basis on 20,000 rows are
+    hours of a small host's time).
     """
 
     max_grid_fits: int = 2_000_000
     max_basis_terms: int = 4_000
     max_design_cells: int = 400_000_000
+    max_levels: int = 1_000  # distinct levels of one categorical column, counted before one-hot expansion
+    max_job_cost: float = 2e11  # estimated floating-point operations of the whole job (``estimate_cost``)
 
 
 @dataclass
@@ -66,7 +72,19 @@ def load_model(manifest_body: dict[str, Any], arrays: dict[str, np.ndarray]) -> 
 
 
 # ---------------------------------------------------------------------------------------------------
-def prepare(data: Any, spec: TuneSpec) -> Prepared:
+def check_levels(name: str, levels: int, budget: Budget) -> None:
+    if levels > budget.max_levels:
+        raise BudgetExceeded(
+            f"categorical column {name!r} has {levels:,} distinct levels, above the limit max_levels="
+            f"{budget.max_levels:,} (each level becomes a column of the design); group rare levels into one "
+            "(e.g. 'other'), use an identifier column as cv.group_by or cv.row_key instead of as an input, or raise "
+            "TIKHON_MAX_LEVELS on the server",
+            errors=[{"field": "categorical", "value": name, "message": f"{levels} levels"}],
+            limit="max_levels", allowed=budget.max_levels, received=levels)
+
+
+def prepare(data: Any, spec: TuneSpec, budget: Budget | None = None) -> Prepared:
+    budget = budget or Budget()
     cols = as_columns(data)
     n = len(next(iter(cols.values()))) if cols else 0
     if n == 0:
@@ -82,6 +100,8 @@ def prepare(data: Any, spec: TuneSpec) -> Prepared:
     for j, f in enumerate(features):
         check_spread(f, "feature", X[:, j].min(), X[:, j].max(), n)
     cat_cols = [categorical_column(cols, c) for c in spec.categorical]
+    for c, values in zip(spec.categorical, cat_cols):  # before any one-hot expansion
+        check_levels(c, len(set(values.tolist())), budget)
     categories = Categories.fit(spec.categorical, cat_cols)
     cat_block, _ = categories.encode(cat_cols) if cat_cols else (np.zeros((n, 0)), [])
     groups = order = None
@@ -165,6 +185,47 @@ def basis_width(spec: TuneSpec, d: int, n: int) -> list[tuple[str, int]]:
     return out
 
 
+PROGRESS_STEPS = 100  # sub-units of one (setting × split) unit in a long job's progress
+PROGRESS_DETAIL_FLOPS = 1e10  # a job estimated above this reports progress inside basis settings
+L1_SWEEPS = 50  # coordinate-descent sweeps assumed per strength (and l1 ratio) in the cost estimate
+
+
+def estimate_cost(spec: Any, n_rows: int, n_features: int, n_category_columns: int = 0) -> dict[str, Any]:
+    """Floating-point operations a job will take, estimated from its shape before any work (orders of
+    magnitude, not a timing): per basis setting of width p (one-hot columns included), with r = min(n, p),
+    the pass over the rows, n·p·r (QR of the design; RBF adds n·centres·d for the distances;
+    ``per_fold`` repeats it per split), and per split the factorization r²·p plus the solutions for
+    every strength, L·r·p for L2 and L·R·r·p·L1_SWEEPS for the L1 penalties (R l1 ratios). The ``loo``
+    scheme is one pass and one factorization per setting plus n·L·p for the hat-matrix diagonals. Polynomial degrees and the linear
+    basis share one pass (the widest). Returns ``{"flops", "largest": (label, flops)}``."""
+    spec = parse_spec(spec)
+    n, d, q = int(n_rows), int(n_features), int(n_category_columns)
+    L = len(spec.penalty.strength_grid())
+    R = len(spec.penalty.ratio_grid())
+    sweeps = 1 if spec.penalty.kind == "l2" else L1_SWEEPS
+    splits = spec.cv.folds * (spec.cv.repeats if spec.cv.scheme == "repeated_kfold" else 1)
+    widths = basis_width(spec, d, n)
+    nested = max((p for label, p in widths if not label.startswith("rbf")), default=0)
+    total = 0.0
+    largest = ("", -1.0)
+    splits = min(splits, n)
+    for label, p in widths:
+        p += q
+        r = float(min(n, p))  # a factorization of a wide design costs min(n, p)² · p
+        if spec.cv.scheme == "loo":
+            cost = float(n) * p * r + r * r * p + float(n) * L * p
+        else:
+            shared = label.startswith("rbf") or p - q == nested
+            rows = float(n) * p * r * (splits if spec.basis_fit == "per_fold" else 1) if shared else 0.0
+            if label.startswith("rbf"):
+                rows += float(n) * (p - q) * max(1, d)
+            cost = rows + splits * (r * r * p + float(L) * R * r * p * sweeps)
+        total += cost
+        if cost > largest[1]:
+            largest = (label, cost)
+    return {"flops": total, "largest": largest}
+
+
 def check_budget(spec: Any, n_rows: int, n_features: int, budget: Budget | None = None,
                  n_category_columns: int = 0, rows_in_memory: int | None = None) -> dict[str, int]:
     """Refuse, before any work, a grid or a basis that exceeds the budget. Returns the counts.
@@ -203,7 +264,18 @@ def check_budget(spec: Any, n_rows: int, n_features: int, budget: Budget | None 
             f"{label} on {held:,} rows makes a {held:,} × {widest:,} design, above the limit of "
             f"{budget.max_design_cells:,} cells; {fix}",
             errors=[{"field": "bases", "value": label, "message": "design too large"}], limit="max_design_cells")
-    return {"fits": fits, "basis_settings": len(widths), "splits": n_splits, "widest_basis": widest}
+    cost = estimate_cost(spec, n_rows, n_features, n_category_columns)
+    if cost["flops"] > budget.max_job_cost:
+        label, part = cost["largest"]
+        raise BudgetExceeded(
+            f"the job is estimated at {cost['flops']:.3g} floating-point operations, above the limit max_job_cost="
+            f"{budget.max_job_cost:.3g}; the largest part is {label} ({part:.3g}: rows × width² per pass, width³ and "
+            f"strengths × width² per split): use fewer RBF centres or a lower degree, fewer rows, strengths or "
+            f"folds, or raise TIKHON_MAX_JOB_COST on the server",
+            errors=[{"field": "bases", "value": label, "message": "job too costly"}], limit="max_job_cost",
+            allowed=budget.max_job_cost, received=cost["flops"])
+    return {"fits": fits, "basis_settings": len(widths), "splits": n_splits, "widest_basis": widest,
+            "cost_flops": float(cost["flops"])}
 
 
 # ---------------------------------------------------------------------------------------------------
@@ -225,7 +297,7 @@ def tune(data: Any, spec: Any, *, progress: Callable[[int, int], None] | None = 
 
 
 def _tune(data, spec: TuneSpec, progress, should_stop, budget) -> TuneResult:
-    prep = prepare(data, spec)
+    prep = prepare(data, spec, budget)
     n, d = prep.X.shape
     check_budget(spec, n, d, budget, prep.categories.width)
     scaler = InputScaler.fit(prep.features, prep.X)
@@ -243,14 +315,21 @@ def _tune(data, spec: TuneSpec, progress, should_stop, budget) -> TuneResult:
         plan = make_plan(spec.cv, n, prep.groups, prep.order, prep.keys)
         search = _SharedSearch(spec, prep, Xs, settings, strengths, ratios, plan)
 
-    total = len(settings) * search.units_per_setting
+    # A long job reports progress inside each basis setting too (after each row block of each fold's
+    # pass and after each split's fit): its units are then PROGRESS_STEPS sub-units of a (setting × split).
+    steps = PROGRESS_STEPS if progress and estimate_cost(spec, n, d, prep.categories.width)["flops"] > PROGRESS_DETAIL_FLOPS else 1
+    unit = search.units_per_setting * steps
+    total = len(settings) * unit
     done = 0
     rows: list[dict[str, Any]] = []
     for s_idx, setting in enumerate(settings):
+        if steps > 1:
+            search.tick = lambda frac, base=done: progress(base + min(unit - 1, int(frac * unit)), total)
         for values, df, extra in search.evaluate(s_idx, setting):
             # values: (n_ratios, L, n_splits) metric per split; df: (n_ratios, L) complexity on all rows
             rows.extend(table_rows(s_idx, setting, strengths, ratios, values, df, extra))
-        done += search.units_per_setting
+        search.tick = None
+        done += unit
         if progress:
             progress(done, total)
         if should_stop and should_stop():
@@ -312,6 +391,23 @@ class _SharedSearch:
         self._nested: tuple[np.ndarray, list[Summary]] | None = None
         self.warnings: list[str] = []
 
+    tick: Callable[[float], None] | None = None  # progress inside one setting (fraction done), long jobs only
+
+    def _summaries(self, D: np.ndarray, y: np.ndarray) -> list[Summary]:
+        """One summary per atom; with ``tick``, the first half of the setting's progress moves after
+        every row block (``Summary.of``'s chunks) of every atom."""
+        tick = self.tick
+        if tick is None:
+            return [Summary.of(D[idx], y[idx]) for idx in self.plan.atoms]
+        total = max(1, sum(len(idx) for idx in self.plan.atoms))
+        seen = [0]
+
+        def block(rows: int) -> None:
+            seen[0] += rows
+            tick(0.5 * seen[0] / total)
+
+        return [Summary.of(D[idx], y[idx], on_block=block) for idx in self.plan.atoms]
+
     def _atoms(self, setting: BasisSetting) -> tuple[np.ndarray, list[Summary]]:
         """(design in the summaries' column order, summaries of each atom) for one setting."""
         y = self.prep.y
@@ -319,14 +415,14 @@ class _SharedSearch:
             if self._nested is None:
                 top = self._nested_top
                 D = np.hstack([self.prep.cat_block, top.expand(self.Xs)])
-                self._nested = (D, [Summary.of(D[idx], y[idx]) for idx in self.plan.atoms])
+                self._nested = (D, self._summaries(D, y))
             D, atoms = self._nested
             if D is None:  # asked again after the design was freed (the refit): summaries only
                 D = np.hstack([self.prep.cat_block, self._nested_top.expand(self.Xs)])
             k = 1 + self.prep.categories.width + setting.n_terms(self.prep.X.shape[1])
             return D[:, :k - 1], [a.leading(k) for a in atoms]
         D = _design(setting, self.Xs, self.prep.cat_block)
-        return D, [Summary.of(D[idx], y[idx]) for idx in self.plan.atoms]
+        return D, self._summaries(D, y)
 
     def evaluate(self, s_idx: int, setting: BasisSetting):
         D, atoms = self._atoms(setting)
@@ -337,7 +433,9 @@ class _SharedSearch:
                 rows = np.concatenate([self.plan.atoms[i] for i in test_ids])
                 sae = np.abs(y[rows, None] - f.intercept[None, :] - D[rows] @ f.weights.T).sum(axis=0)
                 return metric_value("mae", rows.size, sae=sae)
-        values, _ = score_splits(atoms, self.plan.splits, self.spec, self.strengths, self.ratios, mae_rows)
+        tick = self.tick
+        values, _ = score_splits(atoms, self.plan.splits, self.spec, self.strengths, self.ratios, mae_rows,
+                                 tick=None if tick is None else (lambda f: tick(0.5 + 0.5 * f)))
         df = setting_df(Summary.combine([atoms[i] for i in self.plan.refit_atoms]), self.spec, self.strengths,
                         self.ratios)
         if self._nested is not None and all(s.kind == "rbf" for s in self.settings[s_idx + 1:]):
@@ -416,6 +514,8 @@ class _PerFoldSearch(_SharedSearch):
                 else:
                     values[r_i, :, j] = metric_value(metric, test.n, sse=test.sse(f.residual_operator()),
                                                      sst=test.total_ss())
+            if self.tick is not None:
+                self.tick((j + 1) / self.plan.n_splits)
         Xs = InputScaler.fit(self.prep.features, self.prep.X).transform(self.prep.X)
         df = setting_df(Summary.of(_design(setting, Xs, self.prep.cat_block), y), self.spec, self.strengths,
                         self.ratios)

@@ -1,9 +1,24 @@
 """The on-disk format of one model version, and its verification.
 
-Layout (format version 1)::
+Layout (format version 2)::
 
     <store>/<model name>/<version>/manifest.json
     <store>/<model name>/<version>/arrays.npz
+    <store>/<model name>/<version>/cv.npz        (when the version has a CV table)
+
+The manifest stays small and of bounded size (the chosen point, the summary, the schema); the CV
+table, which grows with basis settings × strengths × l1 ratios (800,000 rows is within the grid budget),
+lives in ``cv.npz``, one numeric column per field, and is read only by the routes that show it
+(``/cv`` pages through it). In the manifest, ``model.cv_table`` is then a reference::
+
+    "cv_table": {"file": "cv.npz", "sha256": "<hex>", "bytes": 123, "members": {...}, "rows": 800000,
+                 "keys": ["basis", "strength", "l1_ratio", "mean", "std", "folds", ...],
+                 "bases": [{"kind": "linear"}, {"kind": "polynomial", "degree": 2}, ...]}
+
+with members ``basis`` (int32 index into ``bases``), ``folds`` (rows × splits, when every row has a
+per-split list) and one float64 column per other key (a JSON ``null`` is stored as NaN; strict JSON
+has no NaN, so the mapping is exact both ways). Format version 1 manifests (the CV table inline, no
+``cv.npz``) are still read.
 
 ``arrays.npz`` is an uncompressed ZIP of ``.npy`` members, one per array, written with
 ``allow_pickle=False`` and with fixed member timestamps, so equal arrays give equal bytes (and an equal
@@ -59,10 +74,11 @@ import numpy as np
 from service.errors import IntegrityFailure
 
 FORMAT = "tikhon-model"
-FORMAT_VERSION = 1
-SUPPORTED_FORMAT_VERSIONS = (1,)
+FORMAT_VERSION = 2
+SUPPORTED_FORMAT_VERSIONS = (1, 2)
 MANIFEST_FILE = "manifest.json"
 ARRAYS_FILE = "arrays.npz"
+CV_FILE = "cv.npz"
 
 ALLOWED_KINDS = frozenset("biufc")  # bool, int, uint, float, complex
 ARRAY_NAME_RULE = r"^[A-Za-z0-9_][A-Za-z0-9_.:-]{0,127}$"
@@ -172,9 +188,9 @@ def _check_dtype(dtype: np.dtype, what: str, *, when: str) -> None:
         )
 
 
-def write_arrays(folder: Path, arrays: Mapping[str, np.ndarray]) -> dict[str, Any]:
-    """Write ``arrays.npz`` into ``folder``, fsync it, and return the manifest's ``arrays`` section."""
-    path = folder / ARRAYS_FILE
+def write_arrays(folder: Path, arrays: Mapping[str, np.ndarray], file: str = ARRAYS_FILE) -> dict[str, Any]:
+    """Write ``arrays.npz`` (or ``file``) into ``folder``, fsync it, and return the manifest's section."""
+    path = folder / file
     members: dict[str, Any] = {}
     with open(path, "xb") as raw:
         with zipfile.ZipFile(raw, "w", compression=zipfile.ZIP_STORED, allowZip64=True) as zf:
@@ -188,7 +204,73 @@ def write_arrays(folder: Path, arrays: Mapping[str, np.ndarray]) -> dict[str, An
                 members[name] = {"dtype": arr.dtype.str, "shape": list(arr.shape)}
         raw.flush()
         os.fsync(raw.fileno())
-    return {"file": ARRAYS_FILE, "sha256": sha256_file(path), "bytes": path.stat().st_size, "members": members}
+    return {"file": file, "sha256": sha256_file(path), "bytes": path.stat().st_size, "members": members}
+
+
+# ----------------------------------------------------------------------------------------------------
+# the CV table as columns
+
+
+def split_cv_table(rows: Any) -> tuple[dict[str, np.ndarray], dict[str, Any]] | None:
+    """The CV table (a list of row objects) as numeric columns plus their description, or None when a
+    row does not fit the column form (it then stays inline in the manifest, as in format version 1)."""
+    if not isinstance(rows, list) or not rows or not all(isinstance(r, dict) for r in rows):
+        return None
+    keys = list(rows[0])
+    if any(list(r) != keys for r in rows) or "basis" not in keys:
+        return None
+    bases: dict[str, int] = {}
+    basis_list: list[Any] = []
+    index = np.empty(len(rows), dtype=np.int32)
+    for i, r in enumerate(rows):
+        k = json.dumps(r["basis"], sort_keys=True)
+        if k not in bases:
+            bases[k] = len(basis_list)
+            basis_list.append(r["basis"])
+        index[i] = bases[k]
+    out: dict[str, np.ndarray] = {"basis": index}
+    for key in keys:
+        if key == "basis":
+            continue
+        values = [r[key] for r in rows]
+        if key == "folds" and all(isinstance(v, list) for v in values):
+            width = len(values[0])
+            if any(len(v) != width for v in values) or not all(_number(x) for v in values for x in v):
+                return None
+            out["folds"] = np.array(values, dtype=np.float64).reshape(len(rows), width)
+        elif all(v is None or _number(v) for v in values):
+            out[key] = np.array([np.nan if v is None else float(v) for v in values], dtype=np.float64)
+        else:
+            return None
+        if not _ARRAY_NAME_RE.fullmatch(key):
+            return None
+    return out, {"rows": len(rows), "keys": keys, "bases": basis_list}
+
+
+def _number(v: Any) -> bool:
+    return type(v) in (int, float) and math.isfinite(v)
+
+
+def cv_rows(columns: Mapping[str, np.ndarray], meta: Mapping[str, Any], index: Any) -> list[dict[str, Any]]:
+    """Rows ``index`` (a slice or integer array) of a CV table in column form, as row objects."""
+    picked = {k: np.asarray(v[index]) for k, v in columns.items()}
+    n = len(picked["basis"])
+    lists = {k: (v.tolist() if k == "folds" else [None if x != x else x for x in v.tolist()])
+             for k, v in picked.items() if k != "basis"}
+    bases = meta["bases"]
+    basis = [bases[i] for i in picked["basis"].tolist()]
+    out = []
+    for i in range(n):
+        row: dict[str, Any] = {}
+        for key in meta["keys"]:
+            if key == "basis":
+                row[key] = dict(basis[i])
+            elif key in lists:
+                row[key] = lists[key][i]
+            else:  # a key whose every value was null in a list form, e.g. loo's folds
+                row[key] = None
+        out.append(row)
+    return out
 
 
 def build_manifest(
@@ -269,19 +351,33 @@ def read_manifest(folder: Path, *, expected_sha256: str, name: str, version: int
     return manifest, len(data)
 
 
-def read_arrays(folder: Path, manifest: dict[str, Any], *, name: str, version: int) -> tuple[dict[str, np.ndarray], int]:
-    """Read ``arrays.npz`` after checking it against the manifest; return (arrays, total array bytes)."""
+def read_arrays(folder: Path, manifest: dict[str, Any], *, name: str, version: int,
+                info: dict[str, Any] | None = None) -> tuple[dict[str, np.ndarray], int]:
+    """Read ``arrays.npz`` (or the file ``info`` describes, e.g. the manifest's ``cv_table`` reference)
+    after checking it against the manifest; return (arrays, total array bytes)."""
     where = f"model {name!r} version {version} (folder {folder.parent.name}/{folder.name} of the store)"
-    info = manifest["arrays"]
+    info = manifest["arrays"] if info is None else info
+    fname = info.get("file")
+    if fname not in (ARRAYS_FILE, CV_FILE) or not isinstance(info.get("sha256"), str) \
+            or not isinstance(info.get("members"), dict):
+        raise _fail(where, f"the manifest's reference to {fname!r} is not valid (file, sha256, members)")
+    for member, decl in info["members"].items():
+        try:
+            dtype = np.dtype(decl["dtype"])
+        except Exception:
+            raise _fail(where, f"array {member!r} has a malformed declaration {decl!r}") from None
+        if dtype.hasobject or dtype.kind not in ALLOWED_KINDS or dtype.fields is not None:
+            raise _fail(where, f"array {member!r} is declared with dtype {decl['dtype']!r}, which would need "
+                               "pickle or is not plain numeric; stored models never use pickle")
     try:
-        data = (folder / ARRAYS_FILE).read_bytes()
+        data = (folder / fname).read_bytes()
     except FileNotFoundError:
-        raise _fail(where, f"{ARRAYS_FILE} is missing; restore the folder from a backup or delete the version") from None
+        raise _fail(where, f"{fname} is missing; restore the folder from a backup or delete the version") from None
     except OSError as exc:
-        raise _fail(where, f"{ARRAYS_FILE} cannot be read ({exc.strerror})") from None
+        raise _fail(where, f"{fname} cannot be read ({exc.strerror})") from None
     actual = sha256_bytes(data)
     if actual != info["sha256"]:
-        raise _fail(where, f"{ARRAYS_FILE} is damaged or was changed: its SHA-256 is {actual}, "
+        raise _fail(where, f"{fname} is damaged or was changed: its SHA-256 is {actual}, "
                            f"the manifest recorded {info['sha256']}; the version is not loaded")
     declared = info["members"]
     out: dict[str, np.ndarray] = {}
@@ -289,16 +385,16 @@ def read_arrays(folder: Path, manifest: dict[str, Any], *, name: str, version: i
         with np.load(io.BytesIO(data), allow_pickle=False) as npz:
             files = set(npz.files)
             if files != set(declared):
-                raise _fail(where, f"{ARRAYS_FILE} holds arrays {sorted(files)}, the manifest declares "
+                raise _fail(where, f"{fname} holds arrays {sorted(files)}, the manifest declares "
                                    f"{sorted(declared)}")
             for member in sorted(files):
                 try:
                     arr = npz[member]
                 except ValueError as exc:
                     if "pickle" in str(exc):
-                        raise _fail(where, f"array {member!r} in {ARRAYS_FILE} needs pickle to load "
+                        raise _fail(where, f"array {member!r} in {fname} needs pickle to load "
                                            "(object dtype); stored models never use pickle") from None
-                    raise _fail(where, f"array {member!r} in {ARRAYS_FILE} cannot be read ({exc})") from None
+                    raise _fail(where, f"array {member!r} in {fname} cannot be read ({exc})") from None
                 decl = declared[member]
                 if arr.dtype.str != decl["dtype"] or list(arr.shape) != list(decl["shape"]):
                     raise _fail(where, f"array {member!r} has dtype {arr.dtype.str} and shape {list(arr.shape)}, "
@@ -308,5 +404,5 @@ def read_arrays(folder: Path, manifest: dict[str, Any], *, name: str, version: i
     except IntegrityFailure:
         raise
     except Exception as exc:  # a damaged ZIP raises several types (BadZipFile, OSError, ValueError...)
-        raise _fail(where, f"{ARRAYS_FILE} cannot be read as an uncompressed .npz ({type(exc).__name__}: {exc})") from None
+        raise _fail(where, f"{fname} cannot be read as an uncompressed .npz ({type(exc).__name__}: {exc})") from None
     return out, sum(a.nbytes for a in out.values())

@@ -40,7 +40,7 @@ from typing import TYPE_CHECKING, Any, Mapping
 from sqlalchemy import and_, insert, select, update
 from sqlalchemy.exc import IntegrityError
 
-from service.errors import Conflict, InvalidData, InvalidSpec, JobTaken, NotFound, StorageFailure
+from service.errors import Busy, Conflict, InvalidData, InvalidSpec, JobTaken, NotFound, StorageFailure
 from service.store import artifact, layout
 from service.store.catalog import read_txn, write_txn
 from service.store.names import validate_name
@@ -58,6 +58,8 @@ _KEY_RE = re.compile(IDEMPOTENCY_KEY_RULE)
 _ID_RE = re.compile(r"^[0-9a-f]{32}$")
 ORPHAN_FOLDER_AGE_S = 3600.0  # a job folder with no job row is left alone this long (a submit in flight)
 INCOMING_AGE_S = 24 * 3600.0
+RETRY_AFTER_S = 30  # the Retry-After of a refusal because the queue is full
+SUBMITTER = "submitted_by"  # request member naming who submitted (key id or client); not part of the request hash
 
 
 class Jobs:
@@ -119,9 +121,16 @@ class Jobs:
         *,
         data_path: str | Path | None = None,
         idempotency_key: str | None = None,
+        queue_limit: int | None = None,
+        submitter_limit: int | None = None,
     ) -> tuple[dict[str, Any], bool]:
         """Queue a training job; return ``(job, created)``. With an idempotency key already used for this
-        model name, the first job comes back and ``created`` is False (the data file is then dropped)."""
+        model name, the first job comes back and ``created`` is False (the data file is then dropped).
+
+        ``queue_limit``: refuse (``Busy``) when that many jobs are already queued; ``submitter_limit``: the
+        same per ``request["submitted_by"]``. Both are counted in the transaction that inserts the job
+        (on SQLite it holds the write lock, so the limits are exact; on PostgreSQL concurrent submissions
+        may pass them by a few)."""
         validate_name(name)
         if not isinstance(request, Mapping):
             raise InvalidSpec(f"the training request must be a JSON object, received {type(request).__name__}.")
@@ -137,7 +146,8 @@ class Jobs:
                          "message": "1-255 printable ASCII characters"}],
             )
         source: Path | None = None
-        h = hashlib.sha256(json.dumps(request, sort_keys=True, separators=(",", ":")).encode())
+        hashed = {k: v for k, v in request.items() if k != SUBMITTER}
+        h = hashlib.sha256(json.dumps(hashed, sort_keys=True, separators=(",", ":")).encode())
         if data_path is not None:
             source = Path(data_path)
             if not source.is_file():
@@ -179,6 +189,7 @@ class Jobs:
                                 raise _Replay(existing)
                         live = conn.execute(select(models_t.c.live_version)
                                             .where(models_t.c.name == name)).scalar()
+                        self._check_capacity(conn, queue_limit, request.get(SUBMITTER), submitter_limit)
                         conn.execute(insert(jobs_t).values(
                             live_at_submit={"version": live},
                             id=job_id, model_name=name, state="queued", request=dict(request),
@@ -201,6 +212,34 @@ class Jobs:
         if source is not None:
             layout.clear_markers(self.folder / job_id)
         return self.get(job_id), True
+
+    def _check_capacity(self, conn, queue_limit: int | None, submitter: Any, submitter_limit: int | None) -> None:
+        from sqlalchemy import func
+
+        queued = jobs_t.c.state == "queued"
+        if queue_limit is not None:
+            n = conn.execute(select(func.count()).select_from(jobs_t).where(queued)).scalar() or 0
+            if n >= queue_limit:
+                raise Busy(
+                    f"{n} training jobs are queued, the limit max_queued_jobs={queue_limit}; retry in "
+                    f"{RETRY_AFTER_S} s (the Retry-After header), or raise TIKHON_MAX_QUEUED_JOBS on the server.",
+                    limit="max_queued_jobs", allowed=queue_limit, received=n + 1, retry_after=RETRY_AFTER_S)
+        if submitter_limit is not None and isinstance(submitter, str):
+            mine = conn.execute(select(func.count()).select_from(jobs_t).where(and_(
+                queued, jobs_t.c.request[SUBMITTER].as_string() == submitter))).scalar() or 0
+            if mine >= submitter_limit:
+                raise Busy(
+                    f"{submitter} already has {mine} training jobs queued, the limit max_queued_jobs_per_key="
+                    f"{submitter_limit}; wait until some have started (or cancel some), then retry.",
+                    limit="max_queued_jobs_per_key", allowed=submitter_limit, received=mine + 1,
+                    retry_after=RETRY_AFTER_S)
+
+    def check_capacity(self, *, queue_limit: int | None = None, submitter: str | None = None,
+                       submitter_limit: int | None = None) -> None:
+        """Raise ``Busy`` when a job submitted now would exceed the queue limits (a cheap early check;
+        ``submit`` checks again in its own transaction)."""
+        with self._errors("counting queued training jobs"), read_txn(self._engine) as conn:
+            self._check_capacity(conn, queue_limit, submitter, submitter_limit)
 
     def _by_key(self, name: str, key: str) -> Any:
         with self._errors("reading a training job"), read_txn(self._engine) as conn:

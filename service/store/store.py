@@ -78,7 +78,7 @@ from pathlib import Path
 from typing import Any, Callable, Iterator, Mapping
 
 import numpy as np
-from sqlalchemy import and_, event, func, insert, select, text, update
+from sqlalchemy import and_, event, func, insert, select, update
 
 from service.errors import (
     CatalogUnavailable,
@@ -331,6 +331,7 @@ class Store:
         if job_id is not None and (not isinstance(job_id, str) or not 0 < len(job_id) <= 64):
             raise IntegrityFailure(f"job_id must be a string of 1-64 characters or None, received {job_id!r}.")
         summary = _summary_of(manifest_body)
+        cv_split = artifact.split_cv_table(manifest_body.get("cv_table")) if isinstance(manifest_body, Mapping) else None
         model_dir = self.root / name
         if model_dir.exists() and not model_dir.is_dir():
             raise StorageFailure(f"{model_dir} exists and is not a folder; move it away to publish {name!r}.")
@@ -338,6 +339,11 @@ class Store:
         try:
             with self._staging() as staging:
                 arrays_info = artifact.write_arrays(staging, arrays)
+                side_bytes = 0
+                if cv_split is not None:  # the CV table goes to cv.npz; the manifest keeps a reference
+                    cv_info = artifact.write_arrays(staging, cv_split[0], file=artifact.CV_FILE)
+                    side_bytes = cv_info["bytes"]
+                    manifest_body = {**manifest_body, "cv_table": {**cv_info, **cv_split[1]}}
                 _fault_point("staged")
                 renamed = False
                 try:
@@ -385,7 +391,7 @@ class Store:
                             "model_name": name, "version": version, "created_at": now, "job_id": job_id,
                             "manifest_sha256": artifact.sha256_bytes(manifest_bytes),
                             "arrays_sha256": arrays_info["sha256"],
-                            "bytes": arrays_info["bytes"] + len(manifest_bytes),
+                            "bytes": arrays_info["bytes"] + side_bytes + len(manifest_bytes),
                             "summary": summary, "deleted_at": None,
                         }
                         conn.execute(insert(versions_t).values(**row))
@@ -586,14 +592,40 @@ class Store:
             self._rows.pop((name, version), None)
         return self._version_out(self._version_row(name, version), self.live_version(name))
 
-    def get_manifest(self, name: str, version: int) -> dict[str, Any]:
-        """The verified manifest of one version, read from disk (a fresh dict the caller may keep)."""
+    def get_manifest(self, name: str, version: int, *, cv_table: bool = True) -> dict[str, Any]:
+        """The verified manifest of one version, read from disk (a fresh dict the caller may keep).
+
+        With ``cv_table`` (the default) a CV table kept in ``cv.npz`` is read back into
+        ``model.cv_table`` as a list of rows, so the manifest looks as the engine wrote it; without it,
+        ``model.cv_table`` stays the small reference (what metadata routes should read)."""
         validate_name(name)
         version = self._check_version(name, version)
         row = self._version_row(name, version)
-        manifest, _ = artifact.read_manifest(
-            self._version_dir(name, version), expected_sha256=row["manifest_sha256"], name=name, version=version)
+        folder = self._version_dir(name, version)
+        manifest, _ = artifact.read_manifest(folder, expected_sha256=row["manifest_sha256"], name=name, version=version)
+        body = manifest.get("model")
+        if cv_table and isinstance(body, dict) and _is_cv_reference(body.get("cv_table")):
+            columns, meta = self.cv_columns(name, version, manifest)
+            body["cv_table"] = artifact.cv_rows(columns, meta, slice(None))
         return manifest
+
+    def cv_columns(self, name: str, version: int, manifest: dict[str, Any] | None = None
+                   ) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
+        """The CV table of one version in column form (``artifact.split_cv_table``): ``(columns, meta)``.
+        Read from ``cv.npz`` (verified against the manifest); for a format-1 version with the table inline,
+        converted from it. A version without a CV table gives empty columns and ``meta["rows"] == 0``."""
+        if manifest is None:
+            manifest = self.get_manifest(name, version, cv_table=False)
+        body = manifest.get("model") if isinstance(manifest.get("model"), dict) else {}
+        ref = body.get("cv_table")
+        if _is_cv_reference(ref):
+            columns, _ = artifact.read_arrays(self._version_dir(name, version), manifest, name=name,
+                                              version=version, info=ref)
+            return columns, {"rows": int(ref["rows"]), "keys": list(ref["keys"]), "bases": list(ref["bases"])}
+        split = artifact.split_cv_table(ref)
+        if split is None:
+            return {"basis": np.zeros(0, dtype=np.int32)}, {"rows": 0, "keys": [], "bases": []}
+        return split
 
     # ------------------------------------------------------------------------------------------------
     # live version and history
@@ -989,3 +1021,7 @@ def _catalog_label(engine: Any, root: Path) -> str:
         return safe_url(engine)
     inside = db.is_relative_to(root)
     return f"{db.relative_to(root).as_posix()} (SQLite, in the store folder)" if inside else f"{db.name} (SQLite)"
+
+
+def _is_cv_reference(ref: Any) -> bool:
+    return isinstance(ref, dict) and ref.get("file") == artifact.CV_FILE

@@ -67,7 +67,7 @@ def test_train_poll_metadata_predict_matches_engine(worker_service, kit):
     assert lines[0] == "value,warnings"
     np.testing.assert_allclose([float(x.split(",")[0]) for x in lines[1:]], expected, rtol=1e-12, atol=1e-12)
 
-    cv = httpx.get(f"{base}/v1/models/pump-a/versions/1/cv").json()
+    cv = httpx.get(f"{base}/v1/models/pump-a/versions/1/cv?view=all").json()
     assert len(cv["table"]) == len(reference.cv_table)
     path = httpx.get(f"{base}/v1/models/pump-a/versions/1/path").json()["path"]
     assert len(path["strengths"]) == len(path["coefficients"]) and isinstance(path["strengths"][0], float)

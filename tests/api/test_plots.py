@@ -76,7 +76,7 @@ def _basis_words(basis: dict) -> str:
 
 def test_cv_svg_names_the_chosen_point_and_draws_one_series_per_basis_setting(trained):
     base, _ = trained
-    cv = httpx.get(f"{base}/v1/models/pump-plot/versions/1/cv").json()
+    cv = httpx.get(f"{base}/v1/models/pump-plot/versions/1/cv?view=all").json()
     chosen = cv["chosen"]
     settings = {tuple(sorted(row["basis"].items())) for row in cv["table"]}
     assert len(settings) == 3  # linear, polynomial 2 and 3 in the spec
@@ -112,7 +112,7 @@ def test_cv_one_standard_error_choice_is_marked_when_it_differs(trained):
 
 def test_cv_series_and_bands_match_the_table(trained):
     base, store = trained
-    table = httpx.get(f"{base}/v1/models/pump-plot/versions/1/cv").json()["table"]
+    table = httpx.get(f"{base}/v1/models/pump-plot/versions/1/cv?view=all").json()["table"]
     body = plots.engine_body(store.get_manifest("pump-plot", 1))
     fig = plots.cv_figure(body)
     ax = fig.axes[0]
@@ -139,7 +139,7 @@ def test_cv_series_and_bands_match_the_table(trained):
 
 def test_elastic_net_has_one_series_per_setting_and_l1_ratio(trained):
     base, store = trained
-    cv = httpx.get(f"{base}/v1/models/pump-net/versions/1/cv").json()
+    cv = httpx.get(f"{base}/v1/models/pump-net/versions/1/cv?view=all").json()
     combos = {(tuple(sorted(r["basis"].items())), r["l1_ratio"]) for r in cv["table"]}
     assert len(combos) == 2 * 2
     _, root, text = _svg(base, "/v1/models/pump-net/versions/1/plots/cv")

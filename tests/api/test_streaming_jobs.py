@@ -36,7 +36,7 @@ def test_folder_source_streams_and_matches_the_in_memory_result(tmp_path, kit):
         job = kit.wait_job(base, r.json()["id"])
         assert job["state"] == "succeeded", job
         meta = httpx.get(f"{base}/v1/models/pumps/versions/1").json()
-        cv = httpx.get(f"{base}/v1/models/pumps/versions/1/cv").json()
+        cv = httpx.get(f"{base}/v1/models/pumps/versions/1/cv?view=all").json()
         mem = tune(first, spec)
         rows = cv["table"]
         assert cv["summary"]["execution"] == "streaming"

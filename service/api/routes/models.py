@@ -2,9 +2,9 @@
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Any, Literal
 
-from fastapi import APIRouter, Path, Request
+from fastapi import APIRouter, Path, Query, Request
 from fastapi.responses import Response
 
 from service.api import auth
@@ -67,7 +67,7 @@ def get_model(request: Request, name: str = NamePath) -> Response:
     live = out.get("live_version")
     out["versions"] = [v.get("version") for v in versions]
     if live is not None:
-        out["live"] = version_metadata(name, live, store.get_manifest(name, live))
+        out["live"] = version_metadata(name, live, store.get_manifest(name, live, cv_table=False))
     out["links"] = {
         "versions": f"/v1/models/{name}/versions", "history": f"/v1/models/{name}/history",
         "trainings": f"/v1/trainings?model={name}", "predict": f"/v1/models/{name}/predict",
@@ -87,29 +87,63 @@ def list_versions(request: Request, name: str = NamePath) -> Response:
 def get_version(request: Request, name: str = NamePath, version: int = VersionPath) -> Response:
     validate_name(name)
     store = _store(request)
-    manifest = store.get_manifest(name, version)
+    manifest = store.get_manifest(name, version, cv_table=False)
     row = store.get_version(name, version)
     out = version_metadata(name, version, manifest, row)
     out["live"] = bool(row.get("live"))
     return json_response(out)
 
 
-@router.get("/models/{name}/versions/{version}/cv", summary="The whole CV table (basis setting x strength)", **auth.READ)
-def get_cv(request: Request, name: str = NamePath, version: int = VersionPath) -> Response:
+CV_PAGE_MAX = 10_000
+
+
+@router.get("/models/{name}/versions/{version}/cv", summary="The CV table: best row per basis setting, or pages of all rows",
+            **auth.READ)
+def get_cv(request: Request, name: str = NamePath, version: int = VersionPath,
+           view: Literal["best_per_basis", "all"] = Query(
+               "best_per_basis", description="best_per_basis: the best row of each basis setting (over strengths "
+               "and l1 ratios); all: every row, in pages of `limit` from `offset`."),
+           offset: int = Query(0, ge=0, description="First row of the page (view=all)."),
+           limit: int = Query(1_000, ge=1, le=CV_PAGE_MAX, description="Rows per page (view=all).")) -> Response:
+    import numpy as np
+
+    from service.store import artifact
+
     validate_name(name)
-    body = _engine_body(_store(request).get_manifest(name, version))
-    return json_response({
+    store = _store(request)
+    manifest = store.get_manifest(name, version, cv_table=False)
+    body = _engine_body(manifest)
+    columns, meta = store.cv_columns(name, version, manifest)
+    total = int(meta["rows"])
+    out: dict[str, Any] = {
         "name": name, "version": version, "selection": (body.get("spec") or {}).get("selection"),
-        "chosen": body.get("chosen"), "summary": body.get("cv_summary"),
-        "table": body.get("cv_table", []),
-    })
+        "chosen": body.get("chosen"), "summary": body.get("cv_summary"), "view": view, "total": total,
+    }
+    base = f"/v1/models/{name}/versions/{version}/cv"
+    if view == "best_per_basis":
+        metric = ((body.get("spec") or {}).get("selection") or {}).get("metric") or (body.get("chosen") or {}).get("metric")
+        mean = columns["mean"] if "mean" in columns else np.zeros(total)
+        score = np.where(np.isfinite(mean), -mean if metric == "r2" else mean, np.inf)
+        picks = []
+        for b in range(len(meta["bases"])):
+            rows = np.flatnonzero(columns["basis"] == b)
+            if rows.size:
+                picks.append(int(rows[np.argmin(score[rows])]))  # first of equal scores: the smallest strength
+        out["table"] = [{"row": i, **r} for i, r in zip(picks, artifact.cv_rows(columns, meta, np.array(picks, dtype=np.int64)))]
+        out["links"] = {"all": f"{base}?view=all&offset=0&limit=1000"}
+    else:
+        stop = min(total, offset + limit)
+        out["offset"], out["limit"] = offset, limit
+        out["table"] = artifact.cv_rows(columns, meta, slice(offset, stop)) if offset < total else []
+        out["links"] = {"next": f"{base}?view=all&offset={stop}&limit={limit}" if stop < total else None}
+    return json_response(out)
 
 
 @router.get("/models/{name}/versions/{version}/path", summary="Regularization path of the chosen basis setting", **auth.READ)
 def get_path(request: Request, name: str = NamePath, version: int = VersionPath) -> Response:
     validate_name(name)
     store = _store(request)
-    manifest = store.get_manifest(name, version)
+    manifest = store.get_manifest(name, version, cv_table=False)
     body = _engine_body(manifest)
     return json_response({"name": name, "version": version, "chosen": body.get("chosen"),
                           "path": resolve_arrays(store, name, version, manifest, body.get("path"))})

@@ -121,7 +121,7 @@ def model(request: Request, name: str = Path(...), version: str | None = Query(N
                                f"{', '.join(map(str, numbers)) or 'none'}.")
         else:
             selected = info.get("live_version") or (numbers[-1] if numbers else None)
-        manifest = store.get_manifest(name, selected) if selected is not None else None
+        manifest = store.get_manifest(name, selected, cv_table=False) if selected is not None else None
         return pages.model_page(name, info, versions, history, jobs, selected, manifest, signed_in=signed_in)
 
     return _guarded(request, render)

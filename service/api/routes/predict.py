@@ -126,7 +126,8 @@ def _check_interval(value: Any, field: str) -> float | None:
     return float(value)
 
 
-def _parse_json_body(raw: bytes, limit: int, interval_q: float | None) -> tuple[dict, float | None, int]:
+def _parse_json_body(raw: bytes, limit: int, interval_q: float | None, max_label: int | None = tables.MAX_LABEL_CHARS
+                     ) -> tuple[dict, float | None, int]:
     body = parse_json(raw)
     if not isinstance(body, dict):
         raise InvalidData(
@@ -145,40 +146,41 @@ def _parse_json_body(raw: bytes, limit: int, interval_q: float | None) -> tuple[
     rows = body["rows"]
     if isinstance(rows, list):
         tables.check_row_limit(len(rows), limit, "max_rows_per_request", "rows")
-    cols = tables.from_rows(rows, where="rows")
+    cols = tables.from_rows(rows, where="rows", max_label=max_label)
     return cols, interval, len(rows)
 
 
-def _compute(served: Served, cols: dict, interval: float | None) -> dict[str, Any]:
-    return served.model.predict_detail(cols, interval=interval)
+def _compute(served: Served, cols: dict, interval: float | None, memory_bytes: int) -> dict[str, Any]:
+    return served.model.predict_detail(cols, interval=interval, memory_bytes=memory_bytes)
 
 
 async def _predict(request: Request, served: Served, interval_q: float | None) -> Response:
     settings = request.app.state.settings
     limit = settings.max_rows_per_request
+    max_label = settings.max_label_chars
     mt = media_type(request)
     raw = await request.body()
     if mt == "text/csv":
         if len(raw) > 65536:
-            cols = await to_thread.run_sync(functools.partial(tables.from_csv, raw, where="body"))
+            cols = await to_thread.run_sync(functools.partial(tables.from_csv, raw, where="body", max_label=max_label))
         else:
-            cols = tables.from_csv(raw, where="body")
+            cols = tables.from_csv(raw, where="body", max_label=max_label)
         n = len(next(iter(cols.values())))
         tables.check_row_limit(n, limit, "max_rows_per_request", "the CSV body")
         interval = interval_q
     elif mt in ("", "application/json") or mt.endswith("+json"):
         if len(raw) > 65536:
-            cols, interval, n = await to_thread.run_sync(_parse_json_body, raw, limit, interval_q)
+            cols, interval, n = await to_thread.run_sync(_parse_json_body, raw, limit, interval_q, max_label)
         else:
-            cols, interval, n = _parse_json_body(raw, limit, interval_q)
+            cols, interval, n = _parse_json_body(raw, limit, interval_q, max_label)
     else:
         raise UnsupportedMediaType(
             f"Content-Type {mt!r} is not read here; send application/json ({{\"rows\": [...]}}) or text/csv."
         )
     if n <= INLINE_ROWS:
-        detail = _compute(served, cols, interval)
+        detail = _compute(served, cols, interval, settings.predict_memory_bytes)
     else:
-        detail = await to_thread.run_sync(_compute, served, cols, interval)
+        detail = await to_thread.run_sync(_compute, served, cols, interval, settings.predict_memory_bytes)
     request.app.state.metrics.predictions.labels(served.name, str(served.version)).inc(n)
     accept = request.headers.get("accept", "")
     if "text/csv" in accept or (mt == "text/csv" and "application/json" not in accept):

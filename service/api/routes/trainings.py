@@ -2,9 +2,10 @@
 
 from __future__ import annotations
 
+import uuid
+from pathlib import Path as FsPath
 from typing import Any
 
-import orjson
 from anyio import to_thread
 from fastapi import APIRouter, Path, Query, Request
 from fastapi.responses import Response
@@ -14,6 +15,7 @@ from service.api.problems import MalformedBody, UnsupportedMediaType
 from service.api.render import json_response, media_type, parse_json
 from service.api.schemas import TrainingRequest, parse_training_request, schema_ref
 from service.errors import InvalidData
+from service.store.jobs import SUBMITTER
 from service.store.names import validate_name
 
 router = APIRouter(prefix="/v1", tags=["trainings"])
@@ -72,7 +74,34 @@ def job_view(job: dict[str, Any]) -> dict[str, Any]:
     return out
 
 
-async def _read_submission(request: Request) -> tuple[TrainingRequest | None, dict[str, Any], tuple[bytes, str | None] | None]:
+OFF_LOOP_BYTES = 65_536  # a JSON body larger than this is parsed and validated in a worker thread
+_UPLOAD_CHUNK = 1 << 20
+
+
+def _parse_training_json(raw: bytes) -> tuple[TrainingRequest, dict[str, Any]]:
+    body = parse_json(raw)
+    data = body.get("data") if isinstance(body, dict) else None
+    if isinstance(data, dict) and isinstance(data.get("rows"), list) and data["rows"]:
+        # Validate the envelope with an empty row list: the model would copy every row object (twice the
+        # memory of a large body); the rows themselves are checked, row by row, when read as a table.
+        parsed = parse_training_request({**body, "data": {**data, "rows": []}})
+        return parsed, data
+    parsed = parse_training_request(body)
+    return parsed, body["data"]
+
+
+def _save_upload(source, target: FsPath) -> None:
+    """Copy the uploaded file (Starlette spools it to a temporary file) into ``target`` in 1 MiB chunks."""
+    source.seek(0)
+    with open(target, "xb") as out:
+        while chunk := source.read(_UPLOAD_CHUNK):
+            out.write(chunk)
+
+
+async def _read_submission(request: Request, incoming: FsPath
+                           ) -> tuple[TrainingRequest | None, dict[str, Any], tuple[FsPath, str | None] | None]:
+    """(parsed request, its data member, the uploaded file saved under ``incoming`` or None). Large
+    JSON bodies are parsed and validated off the event loop; an upload is never held in memory whole."""
     mt = media_type(request)
     if mt == "multipart/form-data":
         try:
@@ -88,7 +117,6 @@ async def _read_submission(request: Request) -> tuple[TrainingRequest | None, di
         if upload is None or isinstance(upload, str):
             raise InvalidData("the multipart body needs a 'file' part holding a CSV or Parquet table.",
                               errors=[{"field": "file", "message": "missing"}])
-        payload = await upload.read()
         fields: dict[str, Any] = {"data": {"csv": ""}}
         if form.get("spec") is not None:
             fields["spec"] = parse_json(str(form["spec"]).encode(), "multipart field 'spec'")
@@ -101,11 +129,22 @@ async def _read_submission(request: Request) -> tuple[TrainingRequest | None, di
                 raise InvalidData(f"min_improvement must be a number >= 0, got {form['min_improvement']!r}.",
                                   errors=[{"field": "min_improvement", "value": str(form["min_improvement"])}]) from None
         parsed = parse_training_request(fields)
-        return parsed, {}, (payload, getattr(upload, "filename", None))
+        target = incoming / f"{uuid.uuid4().hex}-upload"
+        try:
+            await to_thread.run_sync(_save_upload, upload.file, target)
+        except BaseException:
+            target.unlink(missing_ok=True)
+            raise
+        finally:
+            await form.close()
+        return parsed, {}, (target, getattr(upload, "filename", None))
     if mt in ("", "application/json") or mt.endswith("+json"):
-        raw = parse_json(await request.body())
-        parsed = parse_training_request(raw)
-        return parsed, raw["data"], None
+        raw = await request.body()
+        if len(raw) > OFF_LOOP_BYTES:
+            parsed, data = await to_thread.run_sync(_parse_training_json, raw)
+        else:
+            parsed, data = _parse_training_json(raw)
+        return parsed, data, None
     raise UnsupportedMediaType(
         f"Content-Type {mt!r} is not read here; send application/json or multipart/form-data (file + spec)."
     )
@@ -115,11 +154,17 @@ async def _read_submission(request: Request) -> tuple[TrainingRequest | None, di
 async def submit(request: Request, name: str = Path(..., description="Model name.")) -> Response:
     validate_name(name)
     key = intake.check_idempotency_key(request.headers.get("idempotency-key"))
-    parsed, data, upload = await _read_submission(request)
     app = request.app
     store, settings = app.state.store, app.state.settings
+    parsed, data, upload = await _read_submission(request, FsPath(store.jobs.incoming_dir))
+
+    submitter = _submitter(request)
+    limits = {"queue_limit": settings.max_queued_jobs, "submitter_limit": settings.max_queued_jobs_per_key}
 
     def accept() -> tuple[dict[str, Any], bool]:
+        intake.check_spec_size(parsed.spec, settings)  # before any other work on the request
+        if key is None:  # a full queue refuses before the data is read (checked again when the job is entered)
+            store.jobs.check_capacity(submitter=submitter, **limits)
         spec_raw = parsed.spec if parsed.spec is not None else intake.live_spec(store, name)
         stream = intake.stream_source(data, spec_raw, settings) if upload is None else None
         if stream is not None:  # out of core: the worker reads the source itself, in batches
@@ -127,17 +172,20 @@ async def submit(request: Request, name: str = Path(..., description="Model name
             job_request = {
                 "spec": spec, "promote": parsed.promote, "min_improvement": parsed.min_improvement,
                 "data": origin, "grid": counts, "spec_reused": parsed.spec is None, "stream": str(stream),
+                SUBMITTER: submitter,
             }
-            return store.jobs.submit(name, job_request, idempotency_key=key)
+            return store.jobs.submit(name, job_request, idempotency_key=key, **limits)
         cols, origin = intake.load_data(data, settings, upload=upload)
+        if isinstance(data, dict):
+            data.pop("rows", None)  # the row objects are columns now: free them before validating and staging
         spec, counts = intake.validate(cols, spec_raw, settings)
         job_request = {
             "spec": spec, "promote": parsed.promote, "min_improvement": parsed.min_improvement,
-            "data": origin, "grid": counts, "spec_reused": parsed.spec is None,
+            "data": origin, "grid": counts, "spec_reused": parsed.spec is None, SUBMITTER: submitter,
         }
         path = intake.stage(store, cols)
         try:
-            job, created = store.jobs.submit(name, job_request, data_path=str(path), idempotency_key=key)
+            job, created = store.jobs.submit(name, job_request, data_path=str(path), idempotency_key=key, **limits)
         except BaseException:
             intake.discard(path)  # never raises: the submission's own error is the answer
             raise
@@ -145,12 +193,24 @@ async def submit(request: Request, name: str = Path(..., description="Model name
             intake.discard(path)
         return job, created
 
-    job, created = await to_thread.run_sync(accept)
+    try:
+        job, created = await to_thread.run_sync(accept)
+    finally:
+        if upload is not None:
+            upload[0].unlink(missing_ok=True)
     view = job_view(job)
     headers = {"Location": view["links"]["self"]}
     if not created:
         headers["Idempotent-Replay"] = "true"
     return json_response(view, status=202, headers=headers)
+
+
+def _submitter(request: Request) -> str:
+    """Whom the per-key queue limit counts: the key id when keys are in use, else the client address."""
+    key = request.scope.get("state", {}).get("key_id")
+    if key:
+        return f"key:{key}"
+    return f"client:{request.client.host if request.client else 'unknown'}"
 
 
 @router.get("/trainings/{job_id}", summary="State, progress and outcome of a training job", **auth.READ)
