@@ -67,6 +67,13 @@ def build(settings: Settings, *, embedded_worker: bool | None = None):
     return app, store, worker
 
 
+def uvicorn_options(settings: Settings) -> dict:
+    """The uvicorn keyword arguments ``run`` uses (the serving benchmark starts its bare reference endpoint
+    with the same ones, so both servers differ only in the application)."""
+    return dict(host=settings.host, port=settings.port, log_config=None, access_log=False,
+                log_level=settings.log_level.lower(), server_header=False)
+
+
 def run(settings: Settings) -> None:
     """Start the HTTP server (and the embedded worker) until interrupted."""
     from service.api.logs import configure
@@ -81,8 +88,7 @@ def run(settings: Settings) -> None:
     if worker is not None:
         worker.start()
     try:
-        uvicorn.run(app, host=settings.host, port=settings.port, log_config=None, access_log=False,
-                    log_level=settings.log_level.lower(), server_header=False)
+        uvicorn.run(app, **uvicorn_options(settings))
     finally:
         if worker is not None:
             worker.stop()
