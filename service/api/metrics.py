@@ -7,7 +7,7 @@ build several apps in one process. ``GET /metrics`` renders it in the Prometheus
 from __future__ import annotations
 
 from collections import Counter as _Tally
-from typing import Callable, Iterable
+from typing import Any, Callable, Iterable
 
 from prometheus_client import CollectorRegistry, Counter, Histogram, generate_latest
 from prometheus_client.core import GaugeMetricFamily
@@ -59,6 +59,7 @@ class ApiMetrics:
             registry=self.registry,
         )
         self._seen: dict[tuple[str, str, int], tuple] = {}
+        self._predicted: dict[tuple[str, int], Any] = {}
 
     def watch_jobs(self, list_jobs: Callable[[], Iterable[dict]]) -> None:
         self.registry.register(_JobStates(list_jobs))
@@ -71,6 +72,13 @@ class ApiMetrics:
             self._seen[key] = children
         children[0].inc()
         children[1].observe(seconds)
+
+    def count_predictions(self, model: str, version: int, rows: int) -> None:
+        child = self._predicted.get((model, version))
+        if child is None:  # as in observe_request: keep the labelled child
+            child = self.predictions.labels(model, str(version))
+            self._predicted[(model, version)] = child
+        child.inc(rows)
 
     def render(self) -> bytes:
         return generate_latest(self.registry)

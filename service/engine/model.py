@@ -58,8 +58,9 @@ class FittedModel:
     term_names: list[str] = field(default_factory=list)
 
     # ---- prediction -------------------------------------------------------------------------------
-    @property
+    @cached_property
     def weights(self) -> np.ndarray:
+        """Coefficients of the raw basis columns (computed once: a model is never changed in place)."""
         return self.beta / self.column_scale
 
     def design(self, cols: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray, list[np.ndarray]]:
@@ -250,28 +251,32 @@ class FittedModel:
 
     def _warnings(self, X: np.ndarray, unseen: list[np.ndarray], lev: np.ndarray,
                   cols: dict[str, np.ndarray]) -> list[list[str]]:
+        """Per row: inputs outside the training range (in feature order), unseen category levels, then a
+        leverage above the largest training leverage. The checks are made on whole columns; only the rows
+        that have a warning are visited one by one."""
         m = X.shape[0]
-        out: list[list[str]] = [[] for _ in range(m)]
-        outside = (X > self._hi) | (X < self._lo) if X.size else np.zeros(X.shape, bool)
-        for j in (np.flatnonzero(outside.any(axis=0)) if outside.size else []):
-            f = self.features[j]
-            lo, hi = self.ranges[f]
-            col = X[:, j]
-            for i in np.flatnonzero(col > hi):
-                out[i].append(f"{f}={_fmt(col[i])} is above the training range [{_fmt(lo)}, {_fmt(hi)}]")
-            for i in np.flatnonzero(col < lo):
-                out[i].append(f"{f}={_fmt(col[i])} is below the training range [{_fmt(lo)}, {_fmt(hi)}]")
-        for name, mask in zip(self.categories.names, unseen):
-            if not mask.any():
-                continue
-            raw = cols[name]
-            for i in np.flatnonzero(mask):
-                out[i].append(f"{name}={raw[i]!s} was not seen in training; its effect is taken as zero")
+        above = X > self._hi if X.size else np.zeros(X.shape, bool)
+        below = X < self._lo if X.size else np.zeros(X.shape, bool)
         # Hidden extrapolation: leverage above the largest leverage of any training row
         # (Montgomery, Peck & Vining, Introduction to Linear Regression Analysis, section 3.8).
-        for i in np.flatnonzero(lev > self.max_leverage * (1 + 1e-9)):
-            out[i].append(f"leverage {lev[i]:.3g} exceeds the largest training leverage {self.max_leverage:.3g}: "
-                          "the input combination lies outside the data the model has seen")
+        high_lev = lev > self.max_leverage * (1 + 1e-9)
+        flagged = high_lev | above.any(axis=1) | below.any(axis=1)
+        for mask in unseen:
+            flagged |= mask
+        out: list[list[str]] = [[] for _ in range(m)]
+        for i in np.flatnonzero(flagged).tolist():
+            w = out[i]
+            for j in np.flatnonzero(above[i] | below[i]).tolist():
+                f = self.features[j]
+                lo, hi = self.ranges[f]
+                side = "above" if above[i, j] else "below"
+                w.append(f"{f}={_fmt(X[i, j])} is {side} the training range [{_fmt(lo)}, {_fmt(hi)}]")
+            for name, mask in zip(self.categories.names, unseen):
+                if mask[i]:
+                    w.append(f"{name}={cols[name][i]!s} was not seen in training; its effect is taken as zero")
+            if high_lev[i]:
+                w.append(f"leverage {lev[i]:.3g} exceeds the largest training leverage {self.max_leverage:.3g}: "
+                         "the input combination lies outside the data the model has seen")
         return out
 
     @cached_property

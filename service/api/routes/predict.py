@@ -88,6 +88,7 @@ def _version(raw: str) -> int:
 
 @router.post("/models/{name}/predict", summary="Predict with the live version", openapi_extra=_LIVE_DOC)
 async def predict_live(request: Request) -> Response:
+    await auth.authorize(request)  # the key check every /v1 route has (see app.create_app)
     name = validate_name(request.path_params["name"])
     interval = _query_interval(request)
     cache = request.app.state.models
@@ -100,6 +101,7 @@ async def predict_live(request: Request) -> Response:
 
 @router.post("/models/{name}/versions/{version}/predict", summary="Predict with a pinned version", openapi_extra=_PINNED_DOC)
 async def predict_version(request: Request) -> Response:
+    await auth.authorize(request)  # the key check every /v1 route has (see app.create_app)
     name = validate_name(request.path_params["name"])
     version = _version(request.path_params["version"])
     interval = _query_interval(request)
@@ -172,7 +174,7 @@ async def _predict(request: Request, served: Served, interval_q: float | None) -
         detail = _compute(served, cols, interval)
     else:
         detail = await to_thread.run_sync(_compute, served, cols, interval)
-    request.app.state.metrics.predictions.labels(served.name, str(served.version)).inc(n)
+    request.app.state.metrics.count_predictions(served.name, served.version, n)
     accept = request.headers.get("accept", "")
     if "text/csv" in accept or (mt == "text/csv" and "application/json" not in accept):
         text = _csv(detail, interval is not None) if n <= INLINE_ROWS else await to_thread.run_sync(_csv, detail, interval is not None)
