@@ -18,8 +18,9 @@ Batches: ``wrk -t1 -c1`` posts a 10,000-row CSV body (``Accept: application/json
 ``?interval=0.9``; rows per second = requests per second × rows.
 
 ``wrk`` is the Debian package ``wrk``; without it the script says how to install it and exits 2.
-``--code PATH`` runs both servers from another checkout (a before/after comparison in the same
-conditions); ``--server-arg`` passes extra arguments to ``tikhon serve`` (``start_server`` takes them
+``--stack h11`` runs both servers on uvicorn's pure-Python stack (h11 parser, asyncio loop) instead of
+the project's default (httptools and uvloop); ``--code PATH`` runs both servers from another checkout
+(a before/after comparison in the same conditions); ``--server-arg`` passes extra arguments to ``tikhon serve`` (``start_server`` takes them
 too, for benchmarks of other server options).
 
 Last line: ``predict_rps_ratio=<ours/bare> p99_ms=<ours> bare_p99_ms=<bare> batch_rows_per_s=<plain>
@@ -39,6 +40,8 @@ from dataclasses import dataclass
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
+# Both servers read these settings (service.api.server.uvicorn_options); {} keeps the project's defaults.
+STACKS = {"default": {}, "h11": {"TIKHON_SERVER_HTTP": "h11", "TIKHON_SERVER_LOOP": "asyncio"}}
 MODEL = "pumps"
 CLK_TCK = os.sysconf("SC_CLK_TCK")
 
@@ -219,6 +222,9 @@ def main() -> None:
     p.add_argument("--batch-duration", type=float, default=8.0, help="seconds per batch wrk run [8]")
     p.add_argument("--code", type=Path, default=ROOT, help="checkout whose service package the servers run [this one]")
     p.add_argument("--server-arg", action="append", default=[], help="extra argument for 'tikhon serve' (repeatable)")
+    p.add_argument("--stack", choices=sorted(STACKS), default="default",
+                   help="server stack of both servers: default (the project's settings: httptools and uvloop when "
+                   "installed) or h11 (h11 parser, asyncio loop) [default]")
     a = p.parse_args()
     if a.serve_bare:
         return serve_bare(a.serve_bare)
@@ -244,8 +250,9 @@ def main() -> None:
             f"{float(f)!r},{float(h)!r}" for f, h in zip(batch["flow_lps"], batch["head_m"])) + "\n")
 
         bare_port, our_port = free_port(), free_port()
-        procs = [start_server("bare", bare_port, work, code=code),
-                 start_server("ours", our_port, work, code=code, extra_args=a.server_arg)]
+        stack = STACKS[a.stack]
+        procs = [start_server("bare", bare_port, work, code=code, env=stack),
+                 start_server("ours", our_port, work, code=code, extra_args=a.server_arg, env=stack)]
         try:
             import httpx
 
@@ -257,7 +264,7 @@ def main() -> None:
                                headers={"content-type": "text/csv", "accept": "application/json"}).json()
             assert len(check["predictions"]) == a.batch_rows and check["predictions"][0]["interval"][0] is not None
             print(f"wrk -t{a.threads} -c{a.connections} -d{a.duration:g}s, one-row JSON body, {os.cpu_count()} cores, "
-                  f"load average before: {os.getloadavg()[0]:.2f}; code: {code}", flush=True)
+                  f"load average before: {os.getloadavg()[0]:.2f}; stack: {a.stack}; code: {code}", flush=True)
             for url, pid in ((bare_url, procs[0].pid), (our_url, procs[1].pid)):  # warm-up
                 run_wrk(url, one, "application/json", threads=1, connections=a.connections, duration=2,
                         server_pid=pid, script=script)

@@ -71,7 +71,8 @@ def uvicorn_options(settings: Settings) -> dict:
     """The uvicorn keyword arguments ``run`` uses (the serving benchmark starts its bare reference endpoint
     with the same ones, so both servers differ only in the application)."""
     return dict(host=settings.host, port=settings.port, log_config=None, access_log=False,
-                log_level=settings.log_level.lower(), server_header=False)
+                log_level=settings.log_level.lower(), server_header=False, http=settings.server_http,
+                loop=settings.server_loop)
 
 
 def run(settings: Settings) -> None:
