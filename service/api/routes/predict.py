@@ -185,16 +185,40 @@ async def _predict(request: Request, served: Served, interval_q: float | None) -
     return Response(payload, media_type="application/json")
 
 
+_NUMPY = orjson.OPT_SERIALIZE_NUMPY
+
+
+def _numbers(column) -> list[bytes]:
+    """A float column as JSON number texts (orjson writes numpy floats exactly as Python floats; a non-finite
+    value becomes null, as it would from a list of floats)."""
+    return orjson.dumps(column, option=_NUMPY)[1:-1].split(b",")
+
+
 def _json(served: Served, detail: dict[str, Any], with_interval: bool) -> bytes:
-    values = detail["value"].tolist()
-    warnings = detail["warnings"]
+    """``{"model": ..., "predictions": [{"value", ["interval",] "warnings"}, ...]}`` built from the column
+    arrays: each column is serialized once and the row objects are spliced from fixed pieces, so no dict or
+    float object is made per row; only rows that carry warnings are serialized one by one."""
+    value = detail["value"]
+    m = int(value.shape[0])
+    if m == 0:
+        return b'{"model":' + served.block_json + b',"predictions":[]}'
     if with_interval:
-        lower = [v if math.isfinite(v) else None for v in detail["lower"].tolist()]
-        upper = [v if math.isfinite(v) else None for v in detail["upper"].tolist()]
-        preds = [{"value": v, "interval": [lo, hi], "warnings": w} for v, lo, hi, w in zip(values, lower, upper, warnings)]
+        pieces = [b'{"value":', None, b',"interval":[', None, b",", None, b'],"warnings":[]}', b","]
+        columns = {1: _numbers(value), 3: _numbers(detail["lower"]), 5: _numbers(detail["upper"])}
     else:
-        preds = [{"value": v, "warnings": w} for v, w in zip(values, warnings)]
-    return b'{"model":' + served.block_json + b',"predictions":' + orjson.dumps(preds) + b"}"
+        pieces = [b'{"value":', None, b',"warnings":[]}', b","]
+        columns = {1: _numbers(value)}
+    width = len(pieces)
+    parts: list[bytes | None] = [None] * (width * m)
+    for k, piece in enumerate(pieces):
+        parts[k::width] = columns[k] if piece is None else [piece] * m
+    closing = width - 2  # the piece that ends a row object, holding its (empty) warnings
+    tail = pieces[closing][: -len(b'[]}')]
+    for i, w in enumerate(detail["warnings"]):
+        if w:
+            parts[i * width + closing] = tail + orjson.dumps(w) + b"}"
+    parts[-1] = b""  # no comma after the last row
+    return b'{"model":' + served.block_json + b',"predictions":[' + b"".join(parts) + b"]}"
 
 
 def _csv(detail: dict[str, Any], with_interval: bool) -> str:
