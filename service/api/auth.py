@@ -20,6 +20,7 @@ from typing import Any, Iterable
 from anyio import to_thread
 from fastapi import Request
 
+from service.api.coalesce import Coalescer
 from service.errors import Forbidden, Unauthorized
 
 SCHEME = "bearerKey"
@@ -74,6 +75,7 @@ class KeyGate:
         self._lock = threading.Lock()
         self._any: tuple[float, bool] | None = None
         self._verified: dict[str, tuple[float, tuple[frozenset[str], str] | None]] = {}
+        self.lookups = Coalescer()  # concurrent checks of the same header share one catalog look-up
 
     def forget(self) -> None:
         with self._lock:
@@ -172,7 +174,7 @@ async def authorize(request: Request) -> None:
     header = credentials(request)
     accepted = accepted_scopes(request.scope.get("route"))
     if gate.needs_lookup(header):
-        key_id = await to_thread.run_sync(gate.check, header, accepted)
+        key_id = await gate.lookups.run((header, accepted), gate.check, header, accepted)
     else:
         key_id = gate.check(header, accepted)
     if key_id:

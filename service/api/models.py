@@ -20,6 +20,8 @@ from typing import Any
 
 import orjson
 
+from service.api.coalesce import Coalescer
+
 from service.errors import NotFound
 
 
@@ -60,6 +62,7 @@ class ModelCache:
         self._lock = threading.Lock()
         self._served: OrderedDict[tuple[str, int], Served] = OrderedDict()
         self._live: dict[str, tuple[float, int]] = {}
+        self.lookups = Coalescer()  # concurrent misses of the same live version or version share one look-up
 
     # -- live version -------------------------------------------------------------------------------
     def cached_live(self, name: str) -> int | None:

@@ -94,8 +94,8 @@ async def predict_live(request: Request) -> Response:
     cache = request.app.state.models
     version = cache.cached_live(name)
     if version is None:
-        version = await to_thread.run_sync(cache.live_version, name)
-    served = cache.cached(name, version) or await to_thread.run_sync(cache.load, name, version)
+        version = await cache.lookups.run(("live", name), cache.live_version, name)
+    served = cache.cached(name, version) or await cache.lookups.run(("load", name, version), cache.load, name, version)
     return await _predict(request, served, interval)
 
 
@@ -106,7 +106,7 @@ async def predict_version(request: Request) -> Response:
     version = _version(request.path_params["version"])
     interval = _query_interval(request)
     cache = request.app.state.models
-    served = cache.cached(name, version) or await to_thread.run_sync(cache.load, name, version)
+    served = cache.cached(name, version) or await cache.lookups.run(("load", name, version), cache.load, name, version)
     return await _predict(request, served, interval)
 
 
