@@ -8,6 +8,7 @@ says how to fix it.
 
 from __future__ import annotations
 
+import gc
 import ipaddress
 import logging
 import socket
@@ -88,6 +89,12 @@ def run(settings: Settings) -> None:
                     extra={"host": settings.host, "port": settings.port})
     if worker is not None:
         worker.start()
+    # Everything built so far (libraries, the app, the store) lives as long as the process: moving it out of
+    # the garbage collector's generations keeps each full collection to what requests allocate. A 10,000-row
+    # prediction allocates one list per row, and scanning the ~180,000 start-up objects on each full
+    # collection cost more than the prediction itself (16 against 8 ms of CPU per batch, measured).
+    gc.collect()
+    gc.freeze()
     try:
         uvicorn.run(app, **uvicorn_options(settings))
     finally:
