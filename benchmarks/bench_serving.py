@@ -295,7 +295,8 @@ def main() -> None:
                             server_pid=procs[1].pid, script=script)
                 batch_rps[label] = r.rps * a.batch_rows
                 print(f"batch {a.batch_rows} CSV rows, {label}: {r.requests} requests, median {r.p50_ms:.1f} ms, "
-                      f"{batch_rps[label]:,.0f} rows/s (server {r.server_cpu:.2f} cores)", flush=True)
+                      f"{batch_rps[label]:,.0f} rows/s (server {r.server_cpu:.2f} cores: "
+                      f"{batch_rps[label] / max(r.server_cpu, 1e-9):,.0f} rows per CPU-second)", flush=True)
             print(f"load average after: {os.getloadavg()[0]:.2f}")
             print(f"requests per server CPU-second: ours {ours.per_cpu_s:.0f}, bare {bare.per_cpu_s:.0f}, "
                   f"ratio {ours.per_cpu_s / bare.per_cpu_s:.3f} (the best rounds; robust to a shared machine)")
