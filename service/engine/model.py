@@ -142,6 +142,28 @@ class FittedModel:
         """Sorted residuals of each fold model's held-out rows, indexed like the rows of ``fold_weights``."""
         return [np.sort(self.residuals[self.residual_fold == k]) for k in range(self.fold_weights.shape[0])]
 
+    @cached_property
+    def _fold_levels(self) -> list[tuple[np.ndarray, np.ndarray]]:
+        """Per fold: its distinct residuals (sorted) and cumulative counts (``cum[j]`` residuals lie below the
+        j-th distinct value), so tied residuals cost one window slot, not one each."""
+        out = []
+        for Rf in self._fold_residuals:
+            u, c = np.unique(Rf, return_counts=True)
+            out.append((u, np.concatenate([[0], np.cumsum(c)])))
+        return out
+
+    @cached_property
+    def _fold_levels_padded(self) -> tuple[list[np.ndarray], list[np.ndarray], bool]:
+        """Distinct values padded with +inf and their counts padded with 0 (for gathering past a fold's end),
+        and whether any residual is tied within its fold."""
+        values, counts, ties = [], [], False
+        for u, cum in self._fold_levels:
+            values.append(np.concatenate([u, np.full(u.size + 1, np.inf)]))
+            c = np.diff(cum)
+            ties = ties or bool((c > 1).any())
+            counts.append(np.concatenate([c, np.zeros(u.size + 1, dtype=c.dtype)]))
+        return values, counts, ties
+
     def _shifted_order_statistic(self, mu: np.ndarray, k: int) -> np.ndarray:
         """Per row r, the k-th smallest (1-based) of the multiset {fl(mu[r, f(i)] + Rᵢ)}: the union of K sorted
         residual sets, each shifted by its fold model's prediction. Exact (the same floating-point values the
@@ -156,8 +178,9 @@ class FittedModel:
         3. Snap. In fold k the residuals outside [lo − margin − μₖ, hi + margin − μₖ] give values surely below
            (L of them) or above the bracket; t* is the (k − L)-th smallest of the values computed for the
            residuals inside (a few per fold), sorted exactly.
-        Rows with a non-finite shift take the direct form (sort of all n values)."""
-        folds = self._fold_residuals
+        Windows count distinct residuals (tied ones carry their multiplicity), so a model whose residuals are
+        mostly equal (an exact fit) stays as cheap. Rows with a non-finite shift take the direct form."""
+        levels = self._fold_levels
         pooled = self._pooled_residuals
         m, K = mu.shape
         out = np.empty(m)
@@ -183,9 +206,9 @@ class FittedModel:
             a = np.empty((count, K), dtype=np.int64)
             b = np.empty((count, K), dtype=np.int64)
             below, above = lo[rows] - margin[rows], hi[rows] + margin[rows]
-            for f, Rf in enumerate(folds):
-                a[:, f] = np.searchsorted(Rf, below - mu[rows, f], side="left")
-                b[:, f] = np.searchsorted(Rf, above - mu[rows, f], side="right")
+            for f, (u, _) in enumerate(levels):
+                a[:, f] = np.searchsorted(u, below - mu[rows, f], side="left")
+                b[:, f] = np.searchsorted(u, above - mu[rows, f], side="right")
             return a, b
 
         a, b = window(slice(None), m)
@@ -196,8 +219,8 @@ class FittedModel:
                 break
             mid = lo[active] + 0.5 * (hi[active] - lo[active])
             count = np.zeros(active.size, dtype=np.int64)
-            for f, Rf in enumerate(folds):
-                count += np.searchsorted(Rf, mid - mu[active, f], side="right")
+            for f, (u, cum) in enumerate(levels):
+                count += cum[np.searchsorted(u, mid - mu[active, f], side="right")]
             up = count >= k  # t* ≤ mid + margin; else t* > mid − margin
             hi[active[up]] = np.minimum(hi[active[up]], mid[up] + margin[active[up]])
             lo[active[~up]] = np.maximum(lo[active[~up]], mid[~up] - margin[active[~up]])
@@ -205,7 +228,10 @@ class FittedModel:
             a[active], b[active] = a_act, b_act
             active = active[(b_act - a_act).sum(axis=1) > _WINDOW]
         width = b - a
-        need = k - a.sum(axis=1)  # 1-based rank of t* among the values inside the windows
+        below_count = np.zeros(m, dtype=np.int64)
+        for f, (_, cum) in enumerate(levels):
+            below_count += cum[a[:, f]]
+        need = k - below_count  # 1-based rank of t* among the values inside the windows
         total = width.sum(axis=1)
         # Rows in chunks of at most _SNAP_VALUES candidate values; when some windows stayed wide (many tied
         # residuals), rows are taken in order of width so a wide row does not widen every row's matrix.
@@ -226,28 +252,37 @@ class FittedModel:
 
     def _snap(self, rows: np.ndarray | slice, mu: np.ndarray, a: np.ndarray, width: np.ndarray, need: np.ndarray,
               out: np.ndarray) -> None:
-        """out[rows] = the need-th smallest of the values fl(mu[r, f] + R_f[a[r, f] + j]), j < width[r, f].
+        """out[rows] = the need-th smallest of the values fl(mu[r, f] + u_f[a[r, f] + j]), j < width[r, f], each
+        counted as often as its residual occurs in fold f.
 
         Each fold contributes the same number of values to every row (its widest window); the values past a
         row's own window all lie above its bracket, so they rank after the order statistic and do not move it
-        (past the end of a fold, +inf pads)."""
+        (past the end of a fold, +inf pads with count 0)."""
+        values, counts, ties = self._fold_levels_padded
         wmax = width[rows].max(axis=0)
         mu_r, a_r = mu[rows], a[rows]
         n_rows = mu_r.shape[0]
         cand = np.empty((n_rows, int(wmax.sum())))
+        weight = np.empty(cand.shape, dtype=np.int64) if ties else None
         col = 0
-        for f, Rf in enumerate(self._fold_residuals_padded):
+        for f, u in enumerate(values):
             wf = int(wmax[f])
             if wf == 0:
                 continue
-            np.add(mu_r[:, f, None], Rf[a_r[:, f, None] + np.arange(wf)], out=cand[:, col:col + wf])
+            idx = a_r[:, f, None] + np.arange(wf)
+            np.add(mu_r[:, f, None], u[idx], out=cand[:, col:col + wf])
+            if ties:
+                weight[:, col:col + wf] = counts[f][idx]
             col += wf
-        cand.sort(axis=1)
-        out[rows] = cand[np.arange(n_rows), need[rows] - 1]
-
-    @cached_property
-    def _fold_residuals_padded(self) -> list[np.ndarray]:
-        return [np.concatenate([Rf, np.full(Rf.size + 1, np.inf)]) for Rf in self._fold_residuals]
+        r = np.arange(n_rows)
+        if not ties:
+            cand.sort(axis=1)
+            out[rows] = cand[r, need[rows] - 1]
+            return
+        order = np.argsort(cand, axis=1, kind="stable")
+        cum = np.take_along_axis(weight, order, axis=1).cumsum(axis=1)
+        first = (cum < need[rows][:, None]).sum(axis=1)  # the first sorted value with `need` values up to it
+        out[rows] = cand[r[:, None], order][r, first]
 
     def _warnings(self, X: np.ndarray, unseen: list[np.ndarray], lev: np.ndarray,
                   cols: dict[str, np.ndarray]) -> list[list[str]]:
