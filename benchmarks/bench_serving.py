@@ -1,42 +1,75 @@
-"""Serving overhead: single-row predictions against a bare constant-JSON endpoint, and a CSV batch.
+"""Serving speed against a bare endpoint, driven by ``wrk`` (a compiled HTTP load generator).
 
-Two uvicorn servers are started as subprocesses with identical server settings (one process, asyncio
-loop, h11, no access log, log level warning):
+Two servers run as subprocesses on loopback with the same uvicorn options
+(``service.api.server.uvicorn_options``: the project's defaults, log level ``info`` included):
 
-* ``bare``: a FastAPI app with one POST route that ignores the body and returns a constant JSON object;
-* ``ours``: the Tikhon app (``create_app``) over a store in a temporary folder holding one model of the
-  invented pump-station scenario (polynomial basis, tuned by ``service.engine.tune``), no API key,
-  embedded worker off.
+* ``bare``: a FastAPI app with one POST route that reads the body and answers a constant JSON object;
+* ``ours``: ``tikhon serve --no-worker`` (the real command line) over a store in a temporary folder
+  holding one model of the invented pump-station scenario (polynomial degrees 1-3 tuned by
+  ``service.engine.tune`` on 2,000 rows, 5 folds, so CV+ intervals use 5 fold models and 2,000
+  residuals). No API key exists, so the routes are open (loopback only). Its JSON log lines go to a file.
 
-Both get the same bounded load from one httpx async client on loopback: ``--concurrency`` requests in
-flight, ``--requests`` requests per round, the same JSON body (one row). Rounds alternate bare/ours,
-and the best round of each is kept (the least disturbed by other work on a shared machine). Then a
-10,000-row CSV batch is sent to ours ``--batches`` times; the median gives rows per second.
+Single rows: ``wrk -t<threads> -c<connections> -d<duration>`` posts the same one-row JSON body; rounds
+alternate bare/ours and the best round of each is kept (the least disturbed on a shared machine). The
+CPU time of ``wrk`` and of each server is printed beside every round, so a saturated load generator
+shows (``wrk`` should use well under one core while the bare server uses about one).
 
-Last line: ``predict_rps_ratio=<ours/bare> p99_ms=<ours, single row> batch_rows_per_s=<y>``.
+On a shared machine the servers get only part of a core each; every run also prints requests per
+second of server CPU time, which such contention disturbs much less than requests per second.
+
+Batches: ``wrk -t1 -c1`` posts a 10,000-row CSV body (``Accept: application/json``), without and with
+``?interval=0.9``; rows per second = requests per second × rows.
+
+``wrk`` is the Debian package ``wrk``; without it the script says how to install it and exits 2.
+``--stack h11`` runs both servers on uvicorn's pure-Python stack (h11 parser, asyncio loop) instead of
+the project's default (httptools and uvloop); ``--code PATH`` runs both servers from another checkout
+(a before/after comparison in the same conditions); ``--server-arg`` passes extra arguments to ``tikhon serve`` (``start_server`` takes them
+too, for benchmarks of other server options).
+
+Last line: ``predict_rps_ratio=<ours/bare> p99_ms=<ours> bare_p99_ms=<bare> batch_rows_per_s=<plain>
+batch_interval_rows_per_s=<with 0.9 intervals>``.
 """
 
-from __future__ import annotations
-
 import argparse
-import asyncio
+import json
 import os
+import shutil
 import socket
-import statistics
 import subprocess
 import sys
 import tempfile
 import time
+from dataclasses import dataclass
 from pathlib import Path
 
-import httpx
-import numpy as np
-
 ROOT = Path(__file__).resolve().parents[1]
-SERVER_OPTS = dict(loop="asyncio", http="h11", workers=None, access_log=False, log_level="warning", server_header=False)
+# Both servers read these settings (service.api.server.uvicorn_options); {} keeps the project's defaults.
+STACKS = {"default": {}, "h11": {"TIKHON_SERVER_HTTP": "h11", "TIKHON_SERVER_LOOP": "asyncio"}}
+MODEL = "pumps"
+CLK_TCK = os.sysconf("SC_CLK_TCK")
+
+WRK_SCRIPT = """
+local f = assert(io.open(os.getenv("BENCH_BODY"), "rb"))
+wrk.method = "POST"
+wrk.body = f:read("*a")
+f:close()
+wrk.headers["Content-Type"] = os.getenv("BENCH_CONTENT_TYPE")
+wrk.headers["Accept"] = "application/json"
+done = function(summary, latency, requests)
+  local e = summary.errors
+  io.write(string.format("WRK_RESULT %d %d %d %d %.1f %.1f\\n", summary.requests, summary.duration,
+    e.connect + e.read + e.write + e.timeout, e.status, latency:percentile(50), latency:percentile(99)))
+end
+"""
 
 
-def pump_table(n: int, seed: int) -> dict[str, np.ndarray]:
+# ----------------------------------------------------------------------------------------------------
+# run inside the servers' interpreter (``--code`` checkout on PYTHONPATH)
+
+
+def pump_table(n: int, seed: int):
+    import numpy as np
+
     rng = np.random.default_rng(seed)
     flow = rng.uniform(5.0, 120.0, n)
     head = rng.uniform(10.0, 60.0, n)
@@ -44,50 +77,50 @@ def pump_table(n: int, seed: int) -> dict[str, np.ndarray]:
     return {"flow_lps": flow, "head_m": head, "energy_kwh": energy}
 
 
-# ----------------------------------------------------------------------------------------------------
-# server side (run in subprocesses)
-
-
-def serve_bare(port: int) -> None:
-    import uvicorn
-    from fastapi import FastAPI
-    from fastapi.responses import Response
-
-    app = FastAPI()
-    constant = b'{"status":"ok","value":1.0}'
-
-    @app.post("/bare")
-    async def bare():
-        return Response(constant, media_type="application/json")
-
-    uvicorn.run(app, host="127.0.0.1", port=port, **{k: v for k, v in SERVER_OPTS.items() if v is not None})
-
-
-def serve_ours(port: int, store_dir: str) -> None:
-    import uvicorn
-
-    from service.api.app import create_app
-    from service.api.logs import configure
+def prepare_store(store_dir: str) -> None:
+    """Train the benchmark model and make it live in a fresh store."""
     from service.engine import tune
     from service.settings import Settings
     from service.store import Store
 
-    settings = Settings(store=store_dir, data_dir=store_dir, embedded_worker=False, log_level="warning",
-                        max_rows_per_request=100_000)
+    store = Store(Settings(store=store_dir, data_dir=store_dir))
+    spec = {"target": "energy_kwh", "bases": [{"kind": "polynomial", "degrees": [1, 2, 3]}],
+            "penalty": {"kind": "l2", "strengths": {"min": 1e-4, "max": 1e2, "count": 20}}}
+    body, arrays = tune(pump_table(2000, seed=1), spec).to_artifact()
+    store.publish(MODEL, body, arrays)
+    store.set_live(MODEL, 1, actor="benchmark", reason="benchmark model")
+    store.close()
+
+
+def serve_bare(port: int) -> None:
+    import uvicorn
+    from fastapi import FastAPI, Request
+    from fastapi.responses import Response
+
+    from service.api.logs import configure
+    from service.settings import Settings
+
+    settings = Settings(port=port)
+    try:
+        from service.api.server import uvicorn_options
+        options = uvicorn_options(settings)
+    except ImportError:  # a checkout from before uvicorn_options existed: the literal options its run() used
+        options = dict(host=settings.host, port=settings.port, log_config=None, access_log=False,
+                       log_level=settings.log_level.lower(), server_header=False)
     configure(settings.log_level)
-    store = Store(settings)
-    if store.live_version("pumps") is None:
-        spec = {"target": "energy_kwh", "bases": [{"kind": "polynomial", "degrees": [1, 2, 3]}],
-                "penalty": {"kind": "l2", "strengths": {"min": 1e-4, "max": 1e2, "count": 20}}}
-        body, arrays = tune(pump_table(2000, seed=1), spec).to_artifact()
-        store.publish("pumps", body, arrays)
-        store.set_live("pumps", 1, actor="benchmark", reason="benchmark model")
-    app = create_app(settings, store)
-    uvicorn.run(app, host="127.0.0.1", port=port, **{k: v for k, v in SERVER_OPTS.items() if v is not None})
+    app = FastAPI()
+    constant = b'{"status":"ok","value":1.0}'
+
+    @app.post("/bare")
+    async def bare(request: Request):
+        await request.body()
+        return Response(constant, media_type="application/json")
+
+    uvicorn.run(app, **options)
 
 
 # ----------------------------------------------------------------------------------------------------
-# client side
+# harness
 
 
 def free_port() -> int:
@@ -96,103 +129,181 @@ def free_port() -> int:
         return s.getsockname()[1]
 
 
-def start(kind: str, port: int, store_dir: str) -> subprocess.Popen:
-    args = [sys.executable, __file__, "--serve", kind, "--port", str(port), "--store", store_dir]
-    proc = subprocess.Popen(args, cwd=ROOT, env={**os.environ, "PYTHONPATH": str(ROOT)})
+def _env(code: Path, extra: dict[str, str] | None = None) -> dict[str, str]:
+    return {**os.environ, "PYTHONPATH": str(code), **(extra or {})}
+
+
+def start_server(kind: str, port: int, workdir: Path, *, code: Path = ROOT, extra_args: list[str] | tuple = (),
+                 env: dict[str, str] | None = None) -> subprocess.Popen:
+    """Start ``bare`` or ``ours`` on ``port`` and wait until it answers. ``ours`` is ``tikhon serve --no-worker``
+    over the store in ``workdir/store`` plus ``extra_args``; stderr (the JSON log) goes to ``workdir/<kind>.log``."""
+    if kind == "bare":
+        args = [sys.executable, __file__, "--serve-bare", str(port)]
+    else:
+        args = [sys.executable, "-m", "service.cli", "serve", "--no-worker", "--port", str(port), *extra_args]
+    log = open(workdir / f"{kind}-{port}.log", "ab")
+    settings_env = {"TIKHON_STORE": str(workdir / "store"), "TIKHON_DATA_DIR": str(workdir / "data"), **(env or {})}
+    proc = subprocess.Popen(args, cwd=workdir, env=_env(code, settings_env), stdout=log, stderr=log)
     deadline = time.monotonic() + 120
     while time.monotonic() < deadline:
-        try:
-            if httpx.get(f"http://127.0.0.1:{port}/openapi.json", timeout=1).status_code == 200:
-                return proc
-        except httpx.HTTPError:
-            pass
         if proc.poll() is not None:
-            raise SystemExit(f"{kind} server exited with {proc.returncode}")
-        time.sleep(0.1)
+            raise SystemExit(f"{kind} server exited with {proc.returncode}; see {log.name}")
+        try:
+            with socket.create_connection(("127.0.0.1", port), timeout=0.5):
+                return proc
+        except OSError:
+            time.sleep(0.1)
     proc.kill()
-    raise SystemExit(f"{kind} server did not start")
+    raise SystemExit(f"{kind} server did not start within 120 s; see {log.name}")
 
 
-async def load(url: str, body: bytes, n: int, concurrency: int) -> tuple[float, list[float]]:
-    """``n`` POSTs with at most ``concurrency`` in flight; returns (requests per second, latencies in s)."""
-    latencies: list[float] = []
-    headers = {"content-type": "application/json"}
-    limits = httpx.Limits(max_connections=concurrency, max_keepalive_connections=concurrency)
-    async with httpx.AsyncClient(limits=limits, timeout=30) as client:
-        queue = iter(range(n))
+def cpu_seconds(pid: int) -> float:
+    """User + system CPU time of a process so far (/proc/PID/stat fields 14 and 15)."""
+    with open(f"/proc/{pid}/stat") as fh:
+        fields = fh.read().rsplit(")", 1)[1].split()
+    return (int(fields[11]) + int(fields[12])) / CLK_TCK
 
-        async def runner() -> None:
-            for _ in queue:
-                t0 = time.perf_counter()
-                r = await client.post(url, content=body, headers=headers)
-                latencies.append(time.perf_counter() - t0)
-                if r.status_code != 200:
-                    raise SystemExit(f"{url} answered {r.status_code}: {r.text[:300]}")
 
-        for _ in range(min(50, n)):  # warm-up: connections, caches
-            await client.post(url, content=body, headers=headers)
-        t0 = time.perf_counter()
-        await asyncio.gather(*(runner() for _ in range(concurrency)))
-        elapsed = time.perf_counter() - t0
-    return n / elapsed, latencies
+@dataclass
+class WrkRun:
+    rps: float
+    p50_ms: float
+    p99_ms: float
+    requests: int
+    wrk_cpu: float  # cores used by wrk on average
+    server_cpu: float  # cores used by the server on average
+
+    @property
+    def per_cpu_s(self) -> float:
+        """Requests per second of server CPU time: what a run on a machine shared with other work still shows."""
+        return self.rps / max(self.server_cpu, 1e-9)
+
+
+def run_wrk(url: str, body: Path, content_type: str, *, threads: int, connections: int, duration: float,
+            server_pid: int, script: Path) -> WrkRun:
+    """One wrk run; refuses a run with any socket error or non-2xx answer."""
+    args = ["wrk", f"-t{threads}", f"-c{connections}", f"-d{duration:g}s", "--timeout", "60s", "-s", str(script), url]
+    env = {**os.environ, "BENCH_BODY": str(body), "BENCH_CONTENT_TYPE": content_type}
+    s0 = cpu_seconds(server_pid)
+    t0 = time.perf_counter()
+    proc = subprocess.Popen(args, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, env=env)
+    out = proc.stdout.read().decode()
+    _, status, usage = os.wait4(proc.pid, 0)
+    wall = time.perf_counter() - t0
+    s1 = cpu_seconds(server_pid)
+    line = next((ln for ln in out.splitlines() if ln.startswith("WRK_RESULT")), None)
+    if status != 0 or line is None:
+        raise SystemExit(f"wrk failed on {url}:\n{out}")
+    n, dur_us, sock_err, status_err, p50, p99 = line.split()[1:]
+    if int(sock_err) or int(status_err):
+        raise SystemExit(f"wrk saw {sock_err} socket errors and {status_err} non-2xx answers on {url}:\n{out}")
+    return WrkRun(rps=int(n) / (int(dur_us) / 1e6), p50_ms=float(p50) / 1000, p99_ms=float(p99) / 1000,
+                  requests=int(n), wrk_cpu=(usage.ru_utime + usage.ru_stime) / wall, server_cpu=(s1 - s0) / wall)
+
+
+def stop(procs: list[subprocess.Popen]) -> None:
+    for proc in procs:
+        if proc.poll() is None:
+            proc.terminate()
+    for proc in procs:
+        try:
+            proc.wait(15)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            proc.wait()
+
+
+def describe(r: WrkRun) -> str:
+    return (f"{r.rps:8.0f} req/s  p50 {r.p50_ms:6.2f} ms  p99 {r.p99_ms:6.2f} ms  "
+            f"(server {r.server_cpu:.2f} cores: {r.per_cpu_s:.0f} req per CPU-second; wrk {r.wrk_cpu:.2f} cores)")
 
 
 def main() -> None:
     p = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
-    p.add_argument("--serve", choices=["bare", "ours"])
-    p.add_argument("--port", type=int)
-    p.add_argument("--store")
-    p.add_argument("--requests", type=int, default=2000)
-    p.add_argument("--concurrency", type=int, default=16)
-    p.add_argument("--rounds", type=int, default=3)
-    p.add_argument("--batches", type=int, default=5)
+    p.add_argument("--serve-bare", type=int, metavar="PORT", help=argparse.SUPPRESS)
+    p.add_argument("--prepare", metavar="STORE", help=argparse.SUPPRESS)
+    p.add_argument("--duration", type=float, default=10.0, help="seconds per single-row wrk run [10]")
+    p.add_argument("--threads", type=int, default=1, help="wrk threads for single rows [1]")
+    p.add_argument("--connections", type=int, default=32, help="wrk connections for single rows [32]")
+    p.add_argument("--rounds", type=int, default=2, help="alternating bare/ours rounds; the best of each is kept [2]")
+    p.add_argument("--batch-rows", type=int, default=10_000)
+    p.add_argument("--batch-duration", type=float, default=8.0, help="seconds per batch wrk run [8]")
+    p.add_argument("--code", type=Path, default=ROOT, help="checkout whose service package the servers run [this one]")
+    p.add_argument("--server-arg", action="append", default=[], help="extra argument for 'tikhon serve' (repeatable)")
+    p.add_argument("--stack", choices=sorted(STACKS), default="default",
+                   help="server stack of both servers: default (the project's settings: httptools and uvloop when "
+                   "installed) or h11 (h11 parser, asyncio loop) [default]")
     a = p.parse_args()
-    if a.serve == "bare":
-        return serve_bare(a.port)
-    if a.serve == "ours":
-        return serve_ours(a.port, a.store)
+    if a.serve_bare:
+        return serve_bare(a.serve_bare)
+    if a.prepare:
+        return prepare_store(a.prepare)
+    if shutil.which("wrk") is None:
+        print("bench_serving: the load generator 'wrk' is not installed; install it with 'apt-get install wrk' "
+              "(Debian/Ubuntu package wrk) and run again.", file=sys.stderr)
+        raise SystemExit(2)
+    code = a.code.resolve()
 
-    with tempfile.TemporaryDirectory() as tmp:
+    with tempfile.TemporaryDirectory(prefix="tikhon-bench-") as tmp:
+        work = Path(tmp)
+        (work / "data").mkdir()
+        subprocess.run([sys.executable, __file__, "--prepare", str(work / "store")], env=_env(code), check=True)
+        script = work / "post.lua"
+        script.write_text(WRK_SCRIPT)
+        one = work / "one.json"
+        one.write_bytes(json.dumps({"rows": [{"flow_lps": 61.5, "head_m": 33.0}]}).encode())
+        batch = pump_table(a.batch_rows, seed=5)
+        csv_body = work / "batch.csv"
+        csv_body.write_text("flow_lps,head_m\n" + "\n".join(
+            f"{float(f)!r},{float(h)!r}" for f, h in zip(batch["flow_lps"], batch["head_m"])) + "\n")
+
         bare_port, our_port = free_port(), free_port()
-        procs = [start("bare", bare_port, tmp), start("ours", our_port, tmp)]
+        stack = STACKS[a.stack]
+        procs = [start_server("bare", bare_port, work, code=code, env=stack),
+                 start_server("ours", our_port, work, code=code, extra_args=a.server_arg, env=stack)]
         try:
-            row = {"flow_lps": 61.5, "head_m": 33.0}
-            body = httpx.Request("POST", "http://x", json={"rows": [row]}).content
-            bare_url = f"http://127.0.0.1:{bare_port}/bare"
-            our_url = f"http://127.0.0.1:{our_port}/v1/models/pumps/predict"
-            check = httpx.post(our_url, content=body, headers={"content-type": "application/json"}).json()
-            assert check["model"]["version"] == 1 and len(check["predictions"]) == 1, check
-            bare_rps, our_rps, our_lat = [], [], []
-            for i in range(a.rounds):
-                rps, _ = asyncio.run(load(bare_url, body, a.requests, a.concurrency))
-                bare_rps.append(rps)
-                rps, lat = asyncio.run(load(our_url, body, a.requests, a.concurrency))
-                our_rps.append(rps)
-                our_lat.append(lat)
-                print(f"round {i + 1}: bare {bare_rps[-1]:.0f} req/s, ours {our_rps[-1]:.0f} req/s", flush=True)
-            best = int(np.argmax(our_rps))
-            p99_ms = float(np.percentile(our_lat[best], 99)) * 1000
-            ratio = max(our_rps) / max(bare_rps)
+            import httpx
 
-            batch = pump_table(10_000, seed=5)
-            csv = "flow_lps,head_m\n" + "\n".join(f"{float(f)!r},{float(h)!r}" for f, h in zip(batch["flow_lps"], batch["head_m"]))
-            times = []
-            with httpx.Client(timeout=120) as c:
-                for _ in range(a.batches):
-                    t0 = time.perf_counter()
-                    r = c.post(f"{our_url}?interval=0.9", content=csv, headers={"content-type": "text/csv"})
-                    times.append(time.perf_counter() - t0)
-                    assert r.status_code == 200 and r.text.count("\n") == 10_001, r.text[:300]
-            rows_per_s = 10_000 / statistics.median(times)
-            print(f"single-row predict: ours {max(our_rps):.0f} req/s vs bare {max(bare_rps):.0f} req/s "
-                  f"({a.concurrency} in flight, {a.requests} requests per round, best of {a.rounds}); "
-                  f"10,000-row CSV batch with 0.9 intervals: median {statistics.median(times) * 1000:.0f} ms")
-            print(f"predict_rps_ratio={ratio:.3f} p99_ms={p99_ms:.2f} batch_rows_per_s={rows_per_s:.0f}")
+            our_url = f"http://127.0.0.1:{our_port}/v1/models/{MODEL}/predict"
+            bare_url = f"http://127.0.0.1:{bare_port}/bare"
+            check = httpx.post(our_url, content=one.read_bytes(), headers={"content-type": "application/json"}).json()
+            assert check["model"]["version"] == 1 and len(check["predictions"]) == 1, check
+            check = httpx.post(our_url + "?interval=0.9", content=csv_body.read_bytes(), timeout=120,
+                               headers={"content-type": "text/csv", "accept": "application/json"}).json()
+            assert len(check["predictions"]) == a.batch_rows and check["predictions"][0]["interval"][0] is not None
+            print(f"wrk -t{a.threads} -c{a.connections} -d{a.duration:g}s, one-row JSON body, {os.cpu_count()} cores, "
+                  f"load average before: {os.getloadavg()[0]:.2f}; stack: {a.stack}; code: {code}", flush=True)
+            for url, pid in ((bare_url, procs[0].pid), (our_url, procs[1].pid)):  # warm-up
+                run_wrk(url, one, "application/json", threads=1, connections=a.connections, duration=2,
+                        server_pid=pid, script=script)
+            bare_runs, our_runs = [], []
+            for i in range(a.rounds):
+                bare_runs.append(run_wrk(bare_url, one, "application/json", threads=a.threads, connections=a.connections,
+                                         duration=a.duration, server_pid=procs[0].pid, script=script))
+                print(f"round {i + 1} bare: {describe(bare_runs[-1])}", flush=True)
+                our_runs.append(run_wrk(our_url, one, "application/json", threads=a.threads, connections=a.connections,
+                                        duration=a.duration, server_pid=procs[1].pid, script=script))
+                print(f"round {i + 1} ours: {describe(our_runs[-1])}", flush=True)
+            bare = max(bare_runs, key=lambda r: r.rps)
+            ours = max(our_runs, key=lambda r: r.rps)
+            if max(r.wrk_cpu for r in bare_runs + our_runs) > 0.9 * a.threads:
+                print("warning: wrk used nearly all of its threads' CPU; it may limit the figures (try --threads 2)")
+
+            batch_rps = {}
+            for label, query in (("plain", ""), ("interval 0.9", "?interval=0.9")):
+                r = run_wrk(our_url + query, csv_body, "text/csv", threads=1, connections=1, duration=a.batch_duration,
+                            server_pid=procs[1].pid, script=script)
+                batch_rps[label] = r.rps * a.batch_rows
+                print(f"batch {a.batch_rows} CSV rows, {label}: {r.requests} requests, median {r.p50_ms:.1f} ms, "
+                      f"{batch_rps[label]:,.0f} rows/s (server {r.server_cpu:.2f} cores: "
+                      f"{batch_rps[label] / max(r.server_cpu, 1e-9):,.0f} rows per CPU-second)", flush=True)
+            print(f"load average after: {os.getloadavg()[0]:.2f}")
+            print(f"requests per server CPU-second: ours {ours.per_cpu_s:.0f}, bare {bare.per_cpu_s:.0f}, "
+                  f"ratio {ours.per_cpu_s / bare.per_cpu_s:.3f} (the best rounds; robust to a shared machine)")
+            print(f"predict_rps_ratio={ours.rps / bare.rps:.3f} p99_ms={ours.p99_ms:.2f} bare_p99_ms={bare.p99_ms:.2f} "
+                  f"batch_rows_per_s={batch_rps['plain']:.0f} batch_interval_rows_per_s={batch_rps['interval 0.9']:.0f}")
         finally:
-            for proc in procs:
-                proc.terminate()
-            for proc in procs:
-                proc.wait(10)
+            stop(procs)
 
 
 if __name__ == "__main__":

@@ -87,6 +87,13 @@ class Settings(BaseSettings):
     )
     cors_origins: list[str] = Field(default_factory=list)
     log_level: str = "info"
+    server_http: Literal["auto", "h11", "httptools"] = Field(
+        "auto", description="HTTP parser of the server (uvicorn's 'http'): auto takes httptools when installed "
+        "(it is, with the uvicorn[standard] dependency), else h11."
+    )
+    server_loop: Literal["auto", "asyncio", "uvloop"] = Field(
+        "auto", description="Event loop of the server (uvicorn's 'loop'): auto takes uvloop when installed, else asyncio."
+    )
     auth_cache_s: float = Field(
         1.0, ge=0, description="Seconds a key check (and 'does any key exist') is cached per process; "
         "a revoked key stops working after at most this long. 0 disables the cache."

@@ -28,6 +28,7 @@ from anyio import to_thread
 from fastapi import Request
 
 from service.api.stale import CatalogWatch, LastKnown, note_stale
+from service.api.coalesce import Coalescer
 from service.errors import Forbidden, Unauthorized
 
 SCHEME = "bearerKey"
@@ -97,6 +98,7 @@ class KeyGate:
     @property
     def closed(self) -> bool:
         return self._closed
+        self.lookups = Coalescer()  # concurrent checks of the same header share one catalog look-up
 
     def forget(self) -> None:
         with self._lock:
@@ -222,8 +224,8 @@ async def authorize(request: Request) -> None:
     # Reads and predictions may rest on the catalog's last answers during an outage; changes never do.
     allow_stale = request.method in ("GET", "HEAD") or str(getattr(route, "path", "")).endswith("/predict")
     if gate.needs_lookup(header):
-        key_id, age = await to_thread.run_sync(functools.partial(gate.check_stale, header, accepted,
-                                                                 allow_stale=allow_stale))
+        key_id, age = await gate.lookups.run((header, accepted, allow_stale), functools.partial(
+            gate.check_stale, header, accepted, allow_stale=allow_stale))
     else:
         key_id, age = gate.check_stale(header, accepted, allow_stale=allow_stale)
     if age is not None:

@@ -8,6 +8,7 @@ defence any field whose name mentions a key, secret, token or authorization is d
 
 from __future__ import annotations
 
+import functools
 import logging
 import sys
 import time
@@ -18,18 +19,30 @@ _STANDARD = set(vars(logging.LogRecord("x", 0, "", 0, "", None, None))) | {"mess
 _SECRETISH = ("authorization", "secret", "token", "api_key", "apikey", "password")
 
 
+@functools.lru_cache(maxsize=1024)
+def _secretish(key: str) -> bool:
+    lowered = key.lower()
+    return any(s in lowered for s in _SECRETISH)
+
+
 class JsonFormatter(logging.Formatter):
+    _second: tuple[int, str] = (-1, "")  # the last whole second formatted, and its text
+
+    def _timestamp(self, created: float, msecs: float) -> str:
+        second = int(created)
+        if self._second[0] != second:
+            self._second = (second, time.strftime("%Y-%m-%dT%H:%M:%S", time.gmtime(created)))
+        return f"{self._second[1]}.{int(msecs):03d}Z"
+
     def format(self, record: logging.LogRecord) -> str:
         out = {
-            "ts": time.strftime("%Y-%m-%dT%H:%M:%S", time.gmtime(record.created)) + f".{int(record.msecs):03d}Z",
+            "ts": self._timestamp(record.created, record.msecs),
             "level": record.levelname.lower(),
             "logger": record.name,
             "msg": record.getMessage(),
         }
         for key, value in record.__dict__.items():
-            if key in _STANDARD or key.startswith("_"):
-                continue
-            if any(s in key.lower() for s in _SECRETISH):
+            if key in _STANDARD or key.startswith("_") or _secretish(key):
                 continue
             out[key] = value
         if record.exc_info:
@@ -38,6 +51,13 @@ class JsonFormatter(logging.Formatter):
 
 
 def configure(level: str = "info", stream=None) -> None:
+    # The JSON lines never carry the caller's file, line, thread or process (they are dropped as standard
+    # attributes), so the logging module need not look them up for every record: these are the switches
+    # its documentation gives for that ("Optimization" in the logging HOWTO).
+    logging._srcfile = None
+    logging.logThreads = False
+    logging.logProcesses = False
+    logging.logMultiprocessing = False
     handler = logging.StreamHandler(stream or sys.stderr)
     handler.setFormatter(JsonFormatter())
     for name in ("tikhon", "uvicorn", "uvicorn.error"):

@@ -12,7 +12,8 @@ replaced included, so counters never go down between scrapes whichever process a
 
 from __future__ import annotations
 
-from typing import Callable, Mapping
+from collections import Counter as _Tally
+from typing import Any, Callable, Iterable, Mapping
 
 from prometheus_client import CollectorRegistry, Counter, Histogram, generate_latest, values
 from prometheus_client.core import GaugeMetricFamily
@@ -80,6 +81,7 @@ class ApiMetrics:
             "(marked Tikhon-Catalog: stale).", registry=self.registry,
         )
         self._seen: dict[tuple[str, str, int], tuple] = {}
+        self._predicted: dict[tuple[str, int], Any] = {}
 
     def watch_jobs(self, count_jobs: Callable[[], Mapping[str, int]]) -> None:
         """Register the job-state gauge; ``count_jobs()`` returns {state: count} over all jobs."""
@@ -94,6 +96,13 @@ class ApiMetrics:
             self._seen[key] = children
         children[0].inc()
         children[1].observe(seconds)
+
+    def count_predictions(self, model: str, version: int, rows: int) -> None:
+        child = self._predicted.get((model, version))
+        if child is None:  # as in observe_request: keep the labelled child
+            child = self.predictions.labels(model, str(version))
+            self._predicted[(model, version)] = child
+        child.inc(rows)
 
     def render(self) -> bytes:
         if self.multiprocess_dir is None:

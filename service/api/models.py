@@ -21,6 +21,7 @@ from typing import Any
 
 import orjson
 
+from service.api.coalesce import Coalescer
 from service.api.stale import CatalogWatch, LastKnown
 from service.errors import NotFound
 from service.store.cache import LRUCache
@@ -63,6 +64,7 @@ class ModelCache:
         self._metrics = metrics
         self._served = LRUCache(settings.cache_models, settings.cache_bytes)
         self._live: dict[str, tuple[float, int]] = {}
+        self.lookups = Coalescer()  # concurrent misses of the same live version or version share one look-up
 
     # -- live version -------------------------------------------------------------------------------
     def cached_live(self, name: str) -> int | None:

@@ -8,6 +8,7 @@ says how to fix it.
 
 from __future__ import annotations
 
+import gc
 import ipaddress
 import logging
 import socket
@@ -71,6 +72,14 @@ def build(settings: Settings, *, embedded_worker: bool | None = None, **app_opti
     return app, store, worker
 
 
+def uvicorn_options(settings: Settings) -> dict:
+    """The uvicorn keyword arguments ``run`` uses (the serving benchmark starts its bare reference endpoint
+    with the same ones, so both servers differ only in the application)."""
+    return dict(host=settings.host, port=settings.port, log_config=None, access_log=False,
+                log_level=settings.log_level.lower(), server_header=False, http=settings.server_http,
+                loop=settings.server_loop, timeout_graceful_shutdown=settings.shutdown_grace_s)
+
+
 def run(settings: Settings) -> None:
     """Start the HTTP server (and the embedded worker) until interrupted.
 
@@ -95,10 +104,14 @@ def run(settings: Settings) -> None:
                     extra={"host": settings.host, "port": settings.port})
     if worker is not None:
         worker.start()
+    # Everything built so far (libraries, the app, the store) lives as long as the process: moving it out of
+    # the garbage collector's generations keeps each full collection to what requests allocate. A 10,000-row
+    # prediction allocates one list per row, and scanning the ~180,000 start-up objects on each full
+    # collection cost more than the prediction itself (16 against 8 ms of CPU per batch, measured).
+    gc.collect()
+    gc.freeze()
     try:
-        uvicorn.run(app, host=settings.host, port=settings.port, log_config=None, access_log=False,
-                    log_level=settings.log_level.lower(), server_header=False,
-                    timeout_graceful_shutdown=settings.shutdown_grace_s)
+        uvicorn.run(app, **uvicorn_options(settings))
     finally:
         if worker is not None:
             worker.stop()

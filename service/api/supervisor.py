@@ -342,9 +342,10 @@ def child_main() -> None:
     # generator's or a proxy's pool opening at once) and keep them for their keep-alive life, leaving the
     # others idle. Accepting one connection per wake-up lets every woken process take its share, and a
     # busy process (slower to wake) takes fewer.
-    config = uvicorn.Config(app, log_config=None, access_log=False, log_level=settings.log_level.lower(),
-                            server_header=False, timeout_graceful_shutdown=settings.shutdown_grace_s,
-                            backlog=_ACCEPT_BATCH)
+    from service.api.server import uvicorn_options
+
+    options = {k: v for k, v in uvicorn_options(settings).items() if k not in ("host", "port")}
+    config = uvicorn.Config(app, **options, backlog=_ACCEPT_BATCH)  # the socket is the supervisor's
     server = _Server(config)
     # Before uvicorn installs its own handlers (and after it restores these), a stop signal just asks the
     # server to stop: a SIGTERM that arrives while the process is still starting is not lost, and the one

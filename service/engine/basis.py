@@ -100,12 +100,16 @@ class BasisSetting:
         if self.kind == "linear":
             return np.ascontiguousarray(Xs, dtype=np.float64)
         if self.kind == "polynomial":
-            return _monomials(Xs, self.powers, self.plan)
+            return _monomials(Xs, self.powers, self.plan, self._degree_one)
         return _rbf(Xs, self.centers, self.width)
 
     @cached_property
     def plan(self):
         return monomial_plan(self.powers) if self.powers is not None else None
+
+    @cached_property
+    def _degree_one(self) -> tuple[np.ndarray, np.ndarray]:
+        return _degree_one(self.powers)
 
 
 def polynomial_powers(d: int, degree: int) -> np.ndarray:
@@ -145,13 +149,19 @@ def monomial_plan(powers: np.ndarray) -> list[tuple[np.ndarray, np.ndarray, np.n
     return [tuple(np.array(col) for col in zip(*levels[k])) for k in sorted(levels)]
 
 
-def _monomials(Xs: np.ndarray, powers: np.ndarray, plan=None) -> np.ndarray:
+def _degree_one(powers: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(columns of total degree 1, the input each one is)."""
+    first = np.flatnonzero(powers.sum(axis=1) == 1)
+    return first, np.argmax(powers[first], axis=1)
+
+
+def _monomials(Xs: np.ndarray, powers: np.ndarray, plan=None, degree_one=None) -> np.ndarray:
     """Columns of degree 1 are the inputs; each higher column is its parent times one input, filled one
     degree level at a time (the same products, in the same order, for one row or a million)."""
     n, d = Xs.shape
     out = np.empty((n, powers.shape[0]), dtype=np.float64)
-    first = np.flatnonzero(powers.sum(axis=1) == 1)
-    out[:, first] = Xs[:, np.argmax(powers[first], axis=1)]
+    first, inputs = degree_one if degree_one is not None else _degree_one(powers)
+    out[:, first] = Xs[:, inputs]
     for cols, parents, var in (plan if plan is not None else monomial_plan(powers)):
         out[:, cols] = out[:, parents] * Xs[:, var]
     return out

@@ -30,6 +30,8 @@ from .table import as_columns, categorical_column, numeric_column
 
 MAX_INTERVAL_RESIDUALS = 20_000  # residuals kept per model; more are thinned to evenly spaced order statistics
 PREDICT_MEMORY_BYTES = 256 * 2**20  # default working memory of one predict call (the setting predict_memory_bytes)
+_WINDOW = 64  # CV+ bounds: bisect until a row's bracket holds at most this many residuals, then sort those
+_SNAP_VALUES = 2**18  # CV+ bounds: candidate values sorted at once (rows × window widths)
 
 
 @dataclass
@@ -84,8 +86,9 @@ class FittedModel:
     term_names: list[str] = field(default_factory=list)
 
     # ---- prediction -------------------------------------------------------------------------------
-    @property
+    @cached_property
     def weights(self) -> np.ndarray:
+        """Coefficients of the raw basis columns (computed once: a model is never changed in place)."""
         return self.beta / self.column_scale
 
     def design(self, cols: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray, list[np.ndarray]]:
@@ -182,48 +185,198 @@ class FittedModel:
         hi = np.full(m, np.inf)
         if self.fold_weights is None:
             if k_hi <= n_eff:
-                q = np.sort(R)[k_hi - 1]
+                q = self._pooled_residuals[k_hi - 1]
                 hi = value + q
                 lo = value - q if k_lo >= 1 else lo
             return lo, hi
         mu = self.fold_intercepts[None, :] + Phi @ self.fold_weights.T  # (m, K)
-        mu_rows_per_res = self.residual_fold
-        chunk = max(1, 4_000_000 // max(1, n_eff))
-        for a in range(0, m, chunk):
-            b = min(m, a + chunk)
-            centres = mu[a:b][:, mu_rows_per_res]  # (c, n_eff)
-            if k_lo >= 1:
-                low_vals = centres - R[None, :]
-                lo[a:b] = np.partition(low_vals, k_lo - 1, axis=1)[:, k_lo - 1]
-            if k_hi <= n_eff:
-                high_vals = centres + R[None, :]
-                hi[a:b] = np.partition(high_vals, k_hi - 1, axis=1)[:, k_hi - 1]
+        # The lower bound is the k_lo-th smallest of {μ₋ₖ₍ᵢ₎ − Rᵢ} = −(the (n−k_lo+1)-th smallest of
+        # {−μ₋ₖ₍ᵢ₎ + Rᵢ}); IEEE rounding is symmetric, so fl(μ − R) = −fl(−μ + R) bit for bit.
+        if k_lo >= 1:
+            lo = -self._shifted_order_statistic(-mu, n_eff - k_lo + 1)
+        if k_hi <= n_eff:
+            hi = self._shifted_order_statistic(mu, k_hi)
         return lo, hi
+
+    @cached_property
+    def _pooled_residuals(self) -> np.ndarray:
+        return np.sort(self.residuals)
+
+    @cached_property
+    def _fold_residuals(self) -> list[np.ndarray]:
+        """Sorted residuals of each fold model's held-out rows, indexed like the rows of ``fold_weights``."""
+        return [np.sort(self.residuals[self.residual_fold == k]) for k in range(self.fold_weights.shape[0])]
+
+    @cached_property
+    def _fold_levels(self) -> list[tuple[np.ndarray, np.ndarray]]:
+        """Per fold: its distinct residuals (sorted) and cumulative counts (``cum[j]`` residuals lie below the
+        j-th distinct value), so tied residuals cost one window slot, not one each."""
+        out = []
+        for Rf in self._fold_residuals:
+            u, c = np.unique(Rf, return_counts=True)
+            out.append((u, np.concatenate([[0], np.cumsum(c)])))
+        return out
+
+    @cached_property
+    def _fold_levels_padded(self) -> tuple[list[np.ndarray], list[np.ndarray], bool]:
+        """Distinct values padded with +inf and their counts padded with 0 (for gathering past a fold's end),
+        and whether any residual is tied within its fold."""
+        values, counts, ties = [], [], False
+        for u, cum in self._fold_levels:
+            values.append(np.concatenate([u, np.full(u.size + 1, np.inf)]))
+            c = np.diff(cum)
+            ties = ties or bool((c > 1).any())
+            counts.append(np.concatenate([c, np.zeros(u.size + 1, dtype=c.dtype)]))
+        return values, counts, ties
+
+    def _shifted_order_statistic(self, mu: np.ndarray, k: int) -> np.ndarray:
+        """Per row r, the k-th smallest (1-based) of the multiset {fl(mu[r, f(i)] + Rᵢ)}: the union of K sorted
+        residual sets, each shifted by its fold model's prediction. Exact (the same floating-point values the
+        direct form ranks) in O(K log n) per row for finite ``mu``, vectorized over rows:
+
+        1. Bracket. With every shift replaced by the row's smallest (largest) one, the k-th smallest is
+           fl(shift + R₍ₖ₎) of the pooled sorted residuals, and rounding is monotone, so
+           t* ∈ [fl(min μ + R₍ₖ₎), fl(max μ + R₍ₖ₎)]: as wide as the fold models disagree.
+        2. Bisection on the value while a row's bracket still holds more than ``_WINDOW`` residuals: a count
+           ``Σₖ searchsorted(Rₖ, t − μₖ)`` per step. Counts made through ``t − μₖ`` can misplace only values
+           within a few ulps of ``t``, so each step moves the bracket end by a margin that covers that.
+        3. Snap. In fold k the residuals outside [lo − margin − μₖ, hi + margin − μₖ] give values surely below
+           (L of them) or above the bracket; t* is the (k − L)-th smallest of the values computed for the
+           residuals inside (a few per fold), sorted exactly.
+        Windows count distinct residuals (tied ones carry their multiplicity), so a model whose residuals are
+        mostly equal (an exact fit) stays as cheap. Rows with a non-finite shift take the direct form."""
+        levels = self._fold_levels
+        pooled = self._pooled_residuals
+        m, K = mu.shape
+        out = np.empty(m)
+        finite = np.isfinite(mu).all(axis=1)
+        bad = np.flatnonzero(~finite)
+        if bad.size:
+            for r in bad:  # the direct form, one row at a time (overflowing basis values only)
+                out[r] = np.sort(mu[r, self.residual_fold] + self.residuals)[k - 1]
+            rows = np.flatnonzero(finite)
+            if rows.size:
+                out[rows] = self._shifted_order_statistic(mu[rows], k)
+            return out
+        if m == 0:
+            return out
+        rk = pooled[k - 1]
+        lo = mu.min(axis=1) + rk
+        hi = mu.max(axis=1) + rk
+        eps = np.finfo(np.float64).eps
+        margin = 16 * eps * (np.abs(mu).max(axis=1) + np.maximum(np.abs(lo), np.abs(hi))
+                             + max(abs(pooled[0]), abs(pooled[-1])))
+
+        def window(rows: np.ndarray | slice, count: int) -> tuple[np.ndarray, np.ndarray]:
+            a = np.empty((count, K), dtype=np.int64)
+            b = np.empty((count, K), dtype=np.int64)
+            below, above = lo[rows] - margin[rows], hi[rows] + margin[rows]
+            for f, (u, _) in enumerate(levels):
+                a[:, f] = np.searchsorted(u, below - mu[rows, f], side="left")
+                b[:, f] = np.searchsorted(u, above - mu[rows, f], side="right")
+            return a, b
+
+        a, b = window(slice(None), m)
+        active = np.flatnonzero((b - a).sum(axis=1) > _WINDOW)
+        for _ in range(200):
+            active = active[hi[active] - lo[active] > 6 * margin[active]]
+            if not active.size:
+                break
+            mid = lo[active] + 0.5 * (hi[active] - lo[active])
+            count = np.zeros(active.size, dtype=np.int64)
+            for f, (u, cum) in enumerate(levels):
+                count += cum[np.searchsorted(u, mid - mu[active, f], side="right")]
+            up = count >= k  # t* ≤ mid + margin; else t* > mid − margin
+            hi[active[up]] = np.minimum(hi[active[up]], mid[up] + margin[active[up]])
+            lo[active[~up]] = np.maximum(lo[active[~up]], mid[~up] - margin[active[~up]])
+            a_act, b_act = window(active, active.size)
+            a[active], b[active] = a_act, b_act
+            active = active[(b_act - a_act).sum(axis=1) > _WINDOW]
+        width = b - a
+        below_count = np.zeros(m, dtype=np.int64)
+        for f, (_, cum) in enumerate(levels):
+            below_count += cum[a[:, f]]
+        need = k - below_count  # 1-based rank of t* among the values inside the windows
+        total = width.sum(axis=1)
+        # Rows in chunks of at most _SNAP_VALUES candidate values; when some windows stayed wide (many tied
+        # residuals), rows are taken in order of width so a wide row does not widen every row's matrix.
+        if int(total.max()) <= K * _WINDOW:
+            step = max(1, _SNAP_VALUES // max(1, K * _WINDOW))
+            for start in range(0, m, step):
+                self._snap(slice(start, start + step), mu, a, width, need, out)
+            return out
+        order = np.argsort(total, kind="stable")
+        start = 0
+        while start < m:
+            stop = min(m, start + max(1, _SNAP_VALUES // max(1, K * _WINDOW)))
+            while stop - start > 1 and int(total[order[stop - 1]]) * (stop - start) > _SNAP_VALUES:
+                stop = start + (stop - start) // 2
+            self._snap(order[start:stop], mu, a, width, need, out)
+            start = stop
+        return out
+
+    def _snap(self, rows: np.ndarray | slice, mu: np.ndarray, a: np.ndarray, width: np.ndarray, need: np.ndarray,
+              out: np.ndarray) -> None:
+        """out[rows] = the need-th smallest of the values fl(mu[r, f] + u_f[a[r, f] + j]), j < width[r, f], each
+        counted as often as its residual occurs in fold f.
+
+        Each fold contributes the same number of values to every row (its widest window); the values past a
+        row's own window all lie above its bracket, so they rank after the order statistic and do not move it
+        (past the end of a fold, +inf pads with count 0)."""
+        values, counts, ties = self._fold_levels_padded
+        wmax = width[rows].max(axis=0)
+        mu_r, a_r = mu[rows], a[rows]
+        n_rows = mu_r.shape[0]
+        cand = np.empty((n_rows, int(wmax.sum())))
+        weight = np.empty(cand.shape, dtype=np.int64) if ties else None
+        col = 0
+        for f, u in enumerate(values):
+            wf = int(wmax[f])
+            if wf == 0:
+                continue
+            idx = a_r[:, f, None] + np.arange(wf)
+            np.add(mu_r[:, f, None], u[idx], out=cand[:, col:col + wf])
+            if ties:
+                weight[:, col:col + wf] = counts[f][idx]
+            col += wf
+        r = np.arange(n_rows)
+        if not ties:
+            cand.sort(axis=1)
+            out[rows] = cand[r, need[rows] - 1]
+            return
+        order = np.argsort(cand, axis=1, kind="stable")
+        cum = np.take_along_axis(weight, order, axis=1).cumsum(axis=1)
+        first = (cum < need[rows][:, None]).sum(axis=1)  # the first sorted value with `need` values up to it
+        out[rows] = cand[r[:, None], order][r, first]
 
     def _warnings(self, X: np.ndarray, unseen: list[np.ndarray], lev: np.ndarray,
                   cols: dict[str, np.ndarray]) -> list[list[str]]:
+        """Per row: inputs outside the training range (in feature order), unseen category levels, then a
+        leverage above the largest training leverage. The checks are made on whole columns; only the rows
+        that have a warning are visited one by one."""
         m = X.shape[0]
-        out: list[list[str]] = [[] for _ in range(m)]
-        outside = (X > self._hi) | (X < self._lo) if X.size else np.zeros(X.shape, bool)
-        for j in (np.flatnonzero(outside.any(axis=0)) if outside.size else []):
-            f = self.features[j]
-            lo, hi = self.ranges[f]
-            col = X[:, j]
-            for i in np.flatnonzero(col > hi):
-                out[i].append(f"{f}={_fmt(col[i])} is above the training range [{_fmt(lo)}, {_fmt(hi)}]")
-            for i in np.flatnonzero(col < lo):
-                out[i].append(f"{f}={_fmt(col[i])} is below the training range [{_fmt(lo)}, {_fmt(hi)}]")
-        for name, mask in zip(self.categories.names, unseen):
-            if not mask.any():
-                continue
-            raw = cols[name]
-            for i in np.flatnonzero(mask):
-                out[i].append(f"{name}={raw[i]!s} was not seen in training; its effect is taken as zero")
+        above = X > self._hi if X.size else np.zeros(X.shape, bool)
+        below = X < self._lo if X.size else np.zeros(X.shape, bool)
         # Hidden extrapolation: leverage above the largest leverage of any training row
         # (Montgomery, Peck & Vining, Introduction to Linear Regression Analysis, section 3.8).
-        for i in np.flatnonzero(lev > self.max_leverage * (1 + 1e-9)):
-            out[i].append(f"leverage {lev[i]:.3g} exceeds the largest training leverage {self.max_leverage:.3g}: "
-                          "the input combination lies outside the data the model has seen")
+        high_lev = lev > self.max_leverage * (1 + 1e-9)
+        flagged = high_lev | above.any(axis=1) | below.any(axis=1)
+        for mask in unseen:
+            flagged |= mask
+        out: list[list[str]] = [[] for _ in range(m)]
+        for i in np.flatnonzero(flagged).tolist():
+            w = out[i]
+            for j in np.flatnonzero(above[i] | below[i]).tolist():
+                f = self.features[j]
+                lo, hi = self.ranges[f]
+                side = "above" if above[i, j] else "below"
+                w.append(f"{f}={_fmt(X[i, j])} is {side} the training range [{_fmt(lo)}, {_fmt(hi)}]")
+            for name, mask in zip(self.categories.names, unseen):
+                if mask[i]:
+                    w.append(f"{name}={cols[name][i]!s} was not seen in training; its effect is taken as zero")
+            if high_lev[i]:
+                w.append(f"leverage {lev[i]:.3g} exceeds the largest training leverage {self.max_leverage:.3g}: "
+                         "the input combination lies outside the data the model has seen")
         return out
 
     @cached_property

@@ -93,25 +93,27 @@ def _version(raw: str) -> int:
 
 @router.post("/models/{name}/predict", summary="Predict with the live version", openapi_extra=_LIVE_DOC)
 async def predict_live(request: Request) -> Response:
+    await auth.authorize(request)  # the key check every /v1 route has (see app.create_app)
     name = validate_name(request.path_params["name"])
     interval = _query_interval(request)
     cache = request.app.state.models
     version = cache.cached_live(name)
     if version is None:
-        version, age = await to_thread.run_sync(cache.live_version_stale, name)
+        version, age = await cache.lookups.run(("live", name), cache.live_version_stale, name)
         if age is not None:
             note_stale(request, age)
-    served = cache.cached(name, version) or await to_thread.run_sync(cache.load, name, version)
+    served = cache.cached(name, version) or await cache.lookups.run(("load", name, version), cache.load, name, version)
     return await _predict(request, served, interval)
 
 
 @router.post("/models/{name}/versions/{version}/predict", summary="Predict with a pinned version", openapi_extra=_PINNED_DOC)
 async def predict_version(request: Request) -> Response:
+    await auth.authorize(request)  # the key check every /v1 route has (see app.create_app)
     name = validate_name(request.path_params["name"])
     version = _version(request.path_params["version"])
     interval = _query_interval(request)
     cache = request.app.state.models
-    served = cache.cached(name, version) or await to_thread.run_sync(cache.load, name, version)
+    served = cache.cached(name, version) or await cache.lookups.run(("load", name, version), cache.load, name, version)
     return await _predict(request, served, interval)
 
 
@@ -181,7 +183,7 @@ async def _predict(request: Request, served: Served, interval_q: float | None) -
         detail = _compute(served, cols, interval, settings.predict_memory_bytes)
     else:
         detail = await to_thread.run_sync(_compute, served, cols, interval, settings.predict_memory_bytes)
-    request.app.state.metrics.predictions.labels(served.name, str(served.version)).inc(n)
+    request.app.state.metrics.count_predictions(served.name, served.version, n)
     accept = request.headers.get("accept", "")
     if "text/csv" in accept or (mt == "text/csv" and "application/json" not in accept):
         text = _csv(detail, interval is not None) if n <= INLINE_ROWS else await to_thread.run_sync(_csv, detail, interval is not None)
@@ -192,16 +194,40 @@ async def _predict(request: Request, served: Served, interval_q: float | None) -
     return Response(payload, media_type="application/json")
 
 
+_NUMPY = orjson.OPT_SERIALIZE_NUMPY
+
+
+def _numbers(column) -> list[bytes]:
+    """A float column as JSON number texts (orjson writes numpy floats exactly as Python floats; a non-finite
+    value becomes null, as it would from a list of floats)."""
+    return orjson.dumps(column, option=_NUMPY)[1:-1].split(b",")
+
+
 def _json(served: Served, detail: dict[str, Any], with_interval: bool) -> bytes:
-    values = detail["value"].tolist()
-    warnings = detail["warnings"]
+    """``{"model": ..., "predictions": [{"value", ["interval",] "warnings"}, ...]}`` built from the column
+    arrays: each column is serialized once and the row objects are spliced from fixed pieces, so no dict or
+    float object is made per row; only rows that carry warnings are serialized one by one."""
+    value = detail["value"]
+    m = int(value.shape[0])
+    if m == 0:
+        return b'{"model":' + served.block_json + b',"predictions":[]}'
     if with_interval:
-        lower = [v if math.isfinite(v) else None for v in detail["lower"].tolist()]
-        upper = [v if math.isfinite(v) else None for v in detail["upper"].tolist()]
-        preds = [{"value": v, "interval": [lo, hi], "warnings": w} for v, lo, hi, w in zip(values, lower, upper, warnings)]
+        pieces = [b'{"value":', None, b',"interval":[', None, b",", None, b'],"warnings":[]}', b","]
+        columns = {1: _numbers(value), 3: _numbers(detail["lower"]), 5: _numbers(detail["upper"])}
     else:
-        preds = [{"value": v, "warnings": w} for v, w in zip(values, warnings)]
-    return b'{"model":' + served.block_json + b',"predictions":' + orjson.dumps(preds) + b"}"
+        pieces = [b'{"value":', None, b',"warnings":[]}', b","]
+        columns = {1: _numbers(value)}
+    width = len(pieces)
+    parts: list[bytes | None] = [None] * (width * m)
+    for k, piece in enumerate(pieces):
+        parts[k::width] = columns[k] if piece is None else [piece] * m
+    closing = width - 2  # the piece that ends a row object, holding its (empty) warnings
+    tail = pieces[closing][: -len(b'[]}')]
+    for i, w in enumerate(detail["warnings"]):
+        if w:
+            parts[i * width + closing] = tail + orjson.dumps(w) + b"}"
+    parts[-1] = b""  # no comma after the last row
+    return b'{"model":' + served.block_json + b',"predictions":[' + b"".join(parts) + b"]}"
 
 
 def _csv(detail: dict[str, Any], with_interval: bool) -> str:
