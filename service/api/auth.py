@@ -24,7 +24,6 @@ import threading
 import time
 from typing import Any, Iterable
 
-from anyio import to_thread
 from fastapi import Request
 
 from service.api.stale import CatalogWatch, LastKnown, note_stale

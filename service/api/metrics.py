@@ -12,8 +12,7 @@ replaced included, so counters never go down between scrapes whichever process a
 
 from __future__ import annotations
 
-from collections import Counter as _Tally
-from typing import Any, Callable, Iterable, Mapping
+from typing import Any, Callable, Mapping
 
 from prometheus_client import CollectorRegistry, Counter, Histogram, generate_latest, values
 from prometheus_client.core import GaugeMetricFamily
