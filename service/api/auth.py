@@ -89,6 +89,7 @@ class KeyGate:
         self._any: tuple[float, bool] | None = None
         self._verified: dict[str, tuple[float, tuple[frozenset[str], str] | None]] = {}
         self._closed = False  # keys are required for good (see the module docstring)
+        self.lookups = Coalescer()  # concurrent checks of the same header share one catalog look-up
 
     def close(self) -> None:
         """Require keys from now on, whatever the catalog says later (a server started with keys)."""
@@ -97,7 +98,6 @@ class KeyGate:
     @property
     def closed(self) -> bool:
         return self._closed
-        self.lookups = Coalescer()  # concurrent checks of the same header share one catalog look-up
 
     def forget(self) -> None:
         with self._lock:
