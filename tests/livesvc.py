@@ -68,3 +68,16 @@ def live_service(root, *, worker: bool = True, **over):
         if w is not None:
             w.stop()
         store.close()
+
+
+def wait_for(predicate, what: str, deadline_s: float = 300.0, every: float = 0.05):
+    """Poll until ``predicate()`` returns a truthy value and return it (a readiness wait: it fails only if
+    the state never comes, never because something was slow)."""
+    end = time.monotonic() + deadline_s
+    while True:
+        value = predicate()
+        if value:
+            return value
+        if time.monotonic() > end:
+            raise AssertionError(f"gave up waiting for {what}")
+        time.sleep(every)

@@ -20,6 +20,7 @@ as ``.ci/run`` does. Without the binaries it skips, saying so.
 from __future__ import annotations
 
 import contextlib
+import functools
 import glob
 import os
 import shutil
@@ -31,6 +32,9 @@ import time
 
 import httpx
 import pytest
+from livesvc import wait_for
+
+_wait = functools.partial(wait_for, deadline_s=120.0, every=0.1)  # readiness waits of this module
 
 pytestmark = pytest.mark.slow
 
@@ -147,16 +151,6 @@ def _ms(values: list[float]) -> dict[str, float]:
     return {"p50_ms": round(q[49] * 1000, 1), "p99_ms": round(q[98] * 1000, 1), "max_ms": round(max(values) * 1000, 1)}
 
 
-def _wait(predicate, what: str, deadline_s: float = 120.0):
-    """Poll until ``predicate()`` is truthy (a readiness wait: it fails only if the state never comes)."""
-    end = time.monotonic() + deadline_s
-    while True:
-        value = predicate()
-        if value:
-            return value
-        if time.monotonic() > end:
-            raise AssertionError(f"gave up waiting for {what}")
-        time.sleep(0.1)
 
 
 def test_two_replicas_keep_predicting_through_a_postgresql_restart(postgres, tmp_path, rk, full):

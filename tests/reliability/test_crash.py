@@ -22,6 +22,7 @@ kills have landed inside running jobs, the short run until 3 have.
 from __future__ import annotations
 
 import contextlib
+import functools
 import os
 import shutil
 import subprocess
@@ -31,6 +32,9 @@ from pathlib import Path
 import httpx
 import numpy as np
 import pytest
+from livesvc import wait_for as _wait_for
+
+wait_for = functools.partial(_wait_for, every=0.02)  # readiness waits of this module
 
 pytestmark = pytest.mark.slow
 
@@ -75,16 +79,6 @@ _store_module._fault_point = _fault
 """
 
 
-def wait_for(predicate, what: str, deadline_s: float = 300.0, every: float = 0.02):
-    """Poll until ``predicate()`` returns a truthy value (a readiness wait, not a timed assertion)."""
-    end = time.monotonic() + deadline_s
-    while True:
-        value = predicate()
-        if value:
-            return value
-        if time.monotonic() > end:
-            raise AssertionError(f"gave up waiting for {what}")
-        time.sleep(every)
 
 
 def job_of(base: str, job_id: str) -> dict:

@@ -14,6 +14,7 @@ from pathlib import Path
 
 import httpx
 import pytest
+from livesvc import wait_for
 
 pytestmark = pytest.mark.slow
 
@@ -50,16 +51,6 @@ def running(pid: int) -> bool:
     return stat[stat.rindex(")") + 2:].split()[0] != "Z"
 
 
-def wait_for(predicate, what: str, deadline_s: float = 300.0, every: float = 0.05):
-    """Poll until ``predicate()`` is truthy (a readiness wait: it fails only if the state never comes)."""
-    end = time.monotonic() + deadline_s
-    while True:
-        value = predicate()
-        if value:
-            return value
-        if time.monotonic() > end:
-            raise AssertionError(f"gave up waiting for {what}")
-        time.sleep(every)
 
 
 def _submit(base: str, rk) -> str:
