@@ -62,7 +62,7 @@ class FittedModel:
 
     def design(self, cols: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray, list[np.ndarray]]:
         """(Φ raw design (m, p), numeric inputs X (m, d), unseen-level masks per categorical column)."""
-        X = np.column_stack([numeric_column(cols, f, "feature") for f in self.features]) if self.features else \
+        X = np.column_stack([numeric_column(cols, f, "input") for f in self.features]) if self.features else \
             np.zeros((_nrows(cols), 0))
         Xs = self.scaler.transform(X)
         Phi = self.basis.expand(Xs)
@@ -152,12 +152,14 @@ class FittedModel:
                 out[i].append(f"{f}={_fmt(col[i])} is above the training range [{_fmt(lo)}, {_fmt(hi)}]")
             for i in np.flatnonzero(col < lo):
                 out[i].append(f"{f}={_fmt(col[i])} is below the training range [{_fmt(lo)}, {_fmt(hi)}]")
-        for name, mask in zip(self.categories.names, unseen):
+        for name, levels, mask in zip(self.categories.names, self.categories.levels, unseen):
             if not mask.any():
                 continue
             raw = cols[name]
+            known = known_levels(levels)
             for i in np.flatnonzero(mask):
-                out[i].append(f"{name}={raw[i]!s} was not seen in training; its effect is taken as zero")
+                out[i].append(f"{name}={level_as_sent(raw[i])} was not seen in training; its effect is taken as zero "
+                              f"(known levels: {known})")
         # Hidden extrapolation: leverage above the largest leverage of any training row
         # (Montgomery, Peck & Vining, Introduction to Linear Regression Analysis, section 3.8).
         for i in np.flatnonzero(lev > self.max_leverage * (1 + 1e-9)):
@@ -274,3 +276,18 @@ def _nrows(cols: dict[str, np.ndarray]) -> int:
 
 def _fmt(v: float) -> str:
     return f"{v:.6g}"
+
+
+def known_levels(levels: list[str], limit: int = 20) -> str:
+    """The levels a categorical column was trained with, quoted, for messages (the first ``limit``)."""
+    shown = ", ".join(repr(str(v)) for v in levels[:limit])
+    return shown + (f" and {len(levels) - limit} more" if len(levels) > limit else "")
+
+
+def level_as_sent(v: Any) -> str:
+    """A categorical value as the caller wrote it: text quoted, a number bare and marked as a number."""
+    if isinstance(v, (str, np.str_)):
+        return repr(str(v))
+    if isinstance(v, (float, np.floating)) and float(v).is_integer():
+        return f"{int(v)} (a number)"
+    return f"{v!s} (a number)" if isinstance(v, (int, float, np.number)) else repr(str(v))

@@ -37,6 +37,7 @@ from .model import MAX_INTERVAL_RESIDUALS, FittedModel, thin_residuals
 from .solvers import centred_scaled, fit, leverage_factor
 from .spec import TuneSpec, parse_spec
 from .summaries import Summary
+from .advice import data_warnings
 from .table import categorical_column, numeric_column
 from .tune import (PLOT_SAMPLE, Budget, TuneResult, _edge_warnings, _path, _select, _table_rows, basis_settings,
                    check_budget, resolve_columns, score_splits)
@@ -534,7 +535,8 @@ def tune_partitions(partitions: Sequence[Partition], schema: dict[str, str], spe
     )
     model.cv = {"metric": spec.selection.metric, "mean": chosen["mean"], "std": chosen["std"], "folds": K,
                 "scheme": spec.cv.scheme, "rule": spec.selection.rule}
-    warnings = _edge_warnings(spec, settings, table_rows, chosen, strengths)
+    warnings = _edge_warnings(spec, settings, table_rows, chosen, strengths) + data_warnings(
+        spec, schema, columns, int(n), K, len(names))
     table = [{kk: v for kk, v in r.items() if not kk.startswith("_")} for r in table_rows]
 
     def public(r):

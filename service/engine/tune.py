@@ -24,6 +24,7 @@ from .model import FittedModel, thin_residuals
 from .solvers import Fit, centred_scaled, fit, leverage_factor
 from .spec import TuneSpec, parse_spec
 from .summaries import Summary
+from .advice import data_warnings
 from .table import as_columns, categorical_column, fingerprint, numeric_column, numeric_names
 
 PLOT_SAMPLE = 5_000
@@ -294,7 +295,9 @@ def tune(data: Any, spec: Any, *, progress: Callable[[int, int], None] | None = 
     setting = settings[s_idx]
     ratio = chosen["l1_ratio"]
     model, path, oof_pred, oof_res = search.refit(s_idx, setting, chosen["strength"], ratio, strengths, scaler, chosen)
-    warnings = _edge_warnings(spec, settings, rows, chosen, strengths)
+    warnings = _edge_warnings(spec, settings, rows, chosen, strengths) + data_warnings(
+        spec, {c: "number" if v.dtype.kind in "biuf" else "text" for c, v in prep.cols.items()}, prep.used, int(n),
+        search.n_splits, len(model.term_names))
     table = [{k: v for k, v in r.items() if not k.startswith("_")} for r in rows]
     public = lambda r: {"basis": r["basis"], "penalty": {"kind": spec.penalty.kind, "strength": r["strength"],
                         "l1_ratio": r["l1_ratio"]}, "metric": metric, "mean": r["mean"], "std": r["std"],

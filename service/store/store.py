@@ -63,6 +63,7 @@ seen by every other process within that time, and at once by the process that ma
 
 from __future__ import annotations
 
+import difflib
 import fcntl
 import logging
 import operator
@@ -452,11 +453,12 @@ class Store:
             last = None
             if row is None or row.deleted_at is not None:
                 last = conn.execute(select(models_t.c.last_version).where(models_t.c.name == name)).scalar()
+                missing = unknown_model(conn, name) if last is None else None
         if row is None or row.deleted_at is not None:
             with self._lock:
                 self._rows.pop((name, version), None)
             if last is None:
-                raise NotFound(f"model {name!r} does not exist; publish a version or train it first.")
+                raise missing
             if row is not None:
                 raise NotFound(f"version {version} of model {name!r} was deleted at {iso(row.deleted_at)}.")
             raise NotFound(f"model {name!r} has no version {version} (its newest version number is {last}).")
@@ -520,7 +522,7 @@ class Store:
     def _model_row(self, conn, name: str) -> Any:
         m = conn.execute(select(models_t).where(models_t.c.name == name)).first()
         if m is None:
-            raise NotFound(f"model {name!r} does not exist; publish a version or train it first.")
+            raise unknown_model(conn, name)
         return m
 
     def _models(self, name: str | None) -> list[dict[str, Any]]:
@@ -551,7 +553,8 @@ class Store:
         validate_name(name)
         found = self._models(name)
         if not found:
-            raise NotFound(f"model {name!r} does not exist; publish a version or train it first.")
+            with catalog_errors(f"reading the model {name!r}", self.catalog), read_txn(self.engine) as conn:
+                raise unknown_model(conn, name)
         return found[0]
 
     def list_versions(self, name: str) -> list[dict[str, Any]]:
@@ -941,6 +944,23 @@ class Store:
                     left.append(v)
         self._erase(trash)
         return len(trash), sorted(left)
+
+
+def unknown_model(conn: Any, name: str) -> NotFound:
+    """The error for a model name the catalog does not hold, naming the closest names it does hold
+    (a mistyped name is the usual cause)."""
+    names = [r[0] for r in conn.execute(select(models_t.c.name).order_by(models_t.c.name)).all()]
+    close = difflib.get_close_matches(name, names, n=3, cutoff=0.75)
+    if close:
+        hint = f"the closest name{'s' if len(close) > 1 else ''} on this server: {', '.join(repr(c) for c in close)}"
+    elif names:
+        hint = f"this server holds {len(names)} model{'s' if len(names) > 1 else ''}, none with a similar name (GET /v1/models lists them)"
+    else:
+        hint = "this server holds no models yet"
+    return NotFound(
+        f"no model named {name!r} exists; {hint}. Check the spelling, or train it first.",
+        errors=[{"field": "name", "value": name, "message": "no such model", "closest": close}],
+    )
 
 
 def _summary_of(body: Any) -> Any:
