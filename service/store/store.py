@@ -666,6 +666,27 @@ class Store:
             for r in rows
         ]
 
+    def record_decision(self, name: str, version: int, *, actor: str, reason: str,
+                        details: dict | None = None) -> dict[str, Any]:
+        """Append a history entry saying that ``version`` was published but not made live, and why (a
+        training job's ``if_better`` refusal or ``promote: never``). The live version does not change: the
+        entry's ``from_version`` and ``to_version`` are both the live version, and ``details.not_made_live``
+        names ``version`` (the same shape as a job whose promotion was superseded)."""
+        validate_name(name)
+        version = self._check_version(name, version)
+        if details is not None:
+            artifact.dump_json(details, what="the history details")
+        with catalog_errors(f"recording a decision for {name!r}", self.catalog), write_txn(self.engine) as conn:
+            lock_name(conn, name)
+            m = self._model_row(conn, name)
+            now = utcnow()
+            kept = {**(details or {}), "not_made_live": version}
+            res = conn.execute(insert(history_t).values(
+                model_name=name, at=now, actor=actor[:200], from_version=m.live_version, to_version=m.live_version,
+                reason=reason, details=kept))
+        return {"id": res.inserted_primary_key[0], "name": name, "at": iso(now), "actor": actor[:200],
+                "from_version": m.live_version, "to_version": m.live_version, "reason": reason, "details": kept}
+
     # ------------------------------------------------------------------------------------------------
     # retention
 
@@ -685,11 +706,17 @@ class Store:
                               "versions to keep besides the live one.",
                               errors=[{"field": "keep", "value": repr(keep), "message": "whole number >= 0"}])
 
-        def choose(live: int | None, alive: list[int]) -> list[int]:
-            kept = set(sorted(alive, reverse=True)[:keep]) | ({live} if live is not None else set())
-            return [v for v in alive if v not in kept]
+        return self._delete(name, _prune_choice(keep), explicit=None)
 
-        return self._delete(name, choose, explicit=None)
+    def prune_plan(self, name: str, keep: int) -> list[int]:
+        """The versions ``prune(name, keep)`` would delete now, deleting nothing (``tikhon prune --dry-run``)."""
+        validate_name(name)
+        if isinstance(keep, bool) or not isinstance(keep, int) or keep < 0:
+            raise InvalidSpec(f"keep must be a whole number >= 0, received {keep!r}.",
+                              errors=[{"field": "keep", "value": repr(keep), "message": "whole number >= 0"}])
+        alive = [int(v["version"]) for v in self.list_versions(name)]
+        live = self.get_model(name).get("live_version")
+        return _prune_choice(keep)(live, alive)
 
     def _delete(self, name: str, choose: Callable[[int | None, list[int]], list[int]], *, explicit: int | None) -> list[int]:
         with catalog_errors(f"deleting versions of {name!r}", self.catalog), write_txn(self.engine) as conn:
@@ -944,6 +971,15 @@ class Store:
                     left.append(v)
         self._erase(trash)
         return len(trash), sorted(left)
+
+
+def _prune_choice(keep: int) -> Callable[[int | None, list[int]], list[int]]:
+    """The pruning rule: every version but the live one and the newest ``keep``."""
+    def choose(live: int | None, alive: list[int]) -> list[int]:
+        kept = set(sorted(alive, reverse=True)[:keep]) | ({live} if live is not None else set())
+        return [v for v in alive if v not in kept]
+
+    return choose
 
 
 def unknown_model(conn: Any, name: str) -> NotFound:
