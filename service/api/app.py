@@ -52,7 +52,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None) -> Fa
             "extrapolation warnings. Errors are RFC 9457 problem details (application/problem+json)."
         ),
         openapi_url="/openapi.json",
-        docs_url="/docs",
+        docs_url=None,  # served by routes.docs from packaged files (no CDN)
         redoc_url=None,
         lifespan=lifespan,
     )
@@ -74,6 +74,8 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None) -> Fa
     app.include_router(admin.router, dependencies=[Depends(auth.authorize)])
     app.include_router(health.router)
     app.include_router(pages.router)  # the HTML overview; checks keys itself (login form)
+    from service.api.routes import docs  # /docs with its assets served from the package
+    app.include_router(docs.router)
 
     # Starlette wraps in reverse order of addition: the last added is the outermost.
     if settings.cors_origins:
