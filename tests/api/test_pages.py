@@ -91,7 +91,11 @@ def test_model_page_shows_choice_warnings_figures_and_history(open_service):
     chosen = manifest["chosen"]
     assert "live: v2" in r.text
     assert f"λ = {chosen['penalty']['strength']:.3g}" in r.text
-    assert repr(chosen["penalty"]["strength"]) in r.text  # the exact value, too
+    exact = chosen["penalty"]["strength"]
+    if float(f"{exact:.3g}") != exact:  # the exact value too, only when the rounded one differs from it
+        assert f"(exactly {exact!r})" in r.text
+    else:
+        assert "(exactly " not in r.text
     assert "energy_kwh (kWh)" in r.text and "flow_lps (L/s)" in r.text
     # v2's grid: 5 strengths from 100 to 10^4, bases linear and polynomial 2 and 3 (the fixture's spec).
     assert "λ from 100 to 1e+04 (5 values) × 3 basis settings" in r.text
