@@ -77,6 +77,8 @@ _HTTP_PROBLEMS: dict[str, tuple[str, str]] = {
     "method-not-allowed": ("Method not allowed", "The route exists but not with this HTTP method."),
     "unsupported-media-type": ("Unsupported media type", "The Content-Type is not one this route reads."),
     "not-acceptable": ("Not acceptable", "The Accept header asks for a format this route cannot produce."),
+    "cors-origin-not-allowed": ("Origin not allowed", "A browser page on another site sent a CORS preflight, and "
+                                "its origin is not in TIKHON_CORS_ORIGINS; the operator adds it there to allow it."),
     "internal-error": ("Internal error", "An unexpected failure on the server; report the request id."),
     "not-ready": ("Not ready", "The catalog does not answer or was replaced, the store folder is not writable, or "
                   "version folders are not in the catalog (run `tikhon store recover`)."),

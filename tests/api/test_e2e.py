@@ -236,7 +236,9 @@ def test_live_switch_never_mixes_versions(worker_service, kit):
     assert {v for v, _ in seen} == {1, 2}
     for v, values in seen:
         assert values == expected[v]
-    assert len(httpx.get(f"{base}/v1/models/pump-flip/history").json()["history"]) == 31
+    # v1 going live, v2's 'never' decision (kept v1 live) and the 30 flips
+    hist = httpx.get(f"{base}/v1/models/pump-flip/history").json()["history"]
+    assert len(hist) == 32 and [h["went_live"] for h in hist[:2]] == [True, False]
 
 
 def test_metrics_and_request_ids(worker_service, kit):
