@@ -158,3 +158,10 @@ def test_overview_in_headless_chromium(tmp_path, kit):
     names = sorted(p.name for p in shots.iterdir())
     assert {"02-overview.png", "03-model.png", "06-job-done.png"} <= set(names), names
     print(f"\nscreenshots: {shots}")
+    # The README's screenshots are these files: TIKHON_README_SCREENSHOTS=docs/screenshots pytest ... copies them.
+    target = os.environ.get("TIKHON_README_SCREENSHOTS")
+    if target:
+        os.makedirs(target, exist_ok=True)
+        for src, dst in (("01-sign-in.png", "sign-in.png"), ("02-overview.png", "overview.png"),
+                         ("07-version-2.png", "model-page.png")):
+            shutil.copyfile(shots / src, os.path.join(target, dst))
