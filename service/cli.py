@@ -6,9 +6,12 @@ itself; ``keys create --local`` writes the first key straight into the catalog w
 reached yet (the bootstrap of a server that must listen beyond loopback), and ``keys revoke --local``
 revokes a key there (the only way to revoke the last admin key).
 
-Exit codes: 0 ok; 1 the operation failed (a training job failed or was cancelled, the server could not
-be reached or answered 5xx); 2 bad usage (a wrong option or argument, or a 4xx answer: the request
-must change). Every error is one line on stderr; ``--json`` prints machine-readable results on stdout.
+Exit codes (``EXIT_CODES``, also printed by ``tikhon --help``): 0 ok; 1 the operation failed (a training
+job failed or was cancelled, the server could not be reached or answered 5xx); 2 bad usage (a wrong
+option or argument, or a 4xx answer: the request must change); 3 a training job succeeded but its
+version was not made live (``--promote if_better`` found it no better, or the live version changed
+after submission; ``train --wait`` and ``job --wait``); 130 interrupted. Every error is one line on
+stderr; ``--json`` prints machine-readable results on stdout.
 """
 
 from __future__ import annotations
@@ -35,8 +38,17 @@ DEMO_FILES = {0: "pump-stations.csv", 1: "pump-stations-next-month.csv"}
 DEMO_ROWS = 3000
 DEMO_SEED = 0
 
+EXIT_CODES = {
+    0: "ok",
+    1: "failed: a training job failed or was cancelled, or the server could not be reached or answered 5xx",
+    2: "bad usage: a wrong option or argument, or the server refused the request (4xx)",
+    3: "trained, not made live: the job succeeded but its version did not go live (train/job --wait)",
+    130: "interrupted",
+}
+
 app = typer.Typer(name="tikhon", add_completion=False, no_args_is_help=True, pretty_exceptions_enable=False,
-                  rich_markup_mode=None, help="Tune, version and serve regularized regression models.")
+                  rich_markup_mode=None, help="Tune, version and serve regularized regression models.",
+                  epilog="Exit codes: " + "; ".join(f"{k} {v}" for k, v in EXIT_CODES.items()) + ".")
 keys_app = typer.Typer(no_args_is_help=True, help="API keys: create, list, revoke (admin scope).")
 app.add_typer(keys_app, name="keys")
 store_app = typer.Typer(no_args_is_help=True, help="The local store folder: recover a lost catalog.")
@@ -49,6 +61,10 @@ class UsageProblem(Exception):
 
 class JobFailed(Exception):
     """A training job ended failed or cancelled; exit code 1."""
+
+
+class TrainedNotLive(Exception):
+    """A training job succeeded but its version was not made live; exit code 3."""
 
 
 class _Options:
@@ -408,11 +424,21 @@ def jobs(
     t.add_column("job", no_wrap=True, min_width=32)  # full ids: they are copied into 'tikhon job' and 'cancel'
     for title in ("model", "state", "progress", "version", "created (UTC)"):
         t.add_column(title, no_wrap=True)
+    t.add_column("decision")
     for j in items:
         p = j.get("progress") or {}
         t.add_row(j["id"], j["model"], j["state"], f"{p.get('done', 0)}/{p.get('total') or '?'}",
-                  str(j.get("version") or ""), str(j.get("created_at") or "")[5:16].replace("T", " "))
+                  str(j.get("version") or ""), str(j.get("created_at") or "")[5:16].replace("T", " "),
+                  _decision_text(j.get("decision")))
     _out.print(t)
+
+
+def _decision_text(decision: dict | None) -> str:
+    """``went live: <why>`` or ``not live: <why>`` for a finished job's decision; empty before it ends."""
+    if not isinstance(decision, dict) or "went_live" not in decision:
+        return ""
+    why = " ".join(str(decision.get("reason") or "").split())
+    return ("went live" if decision.get("went_live") else "not live") + (f": {why}" if why else "")
 
 
 @app.command()
@@ -467,10 +493,38 @@ def _finish_job(tk: Client, job: dict, o: _Options) -> None:
     meta = tk.version(name, version)
     cv = tk.cv(name, version)
     if o.json:
-        _print_json({"job": job, "chosen": meta.get("chosen"), "cv_summary": meta.get("cv_summary")})
-        return
-    _out.print(summary_table(job, meta))
-    _out.print(cv_text_plot(cv.get("table") or [], meta.get("chosen") or {}))
+        _print_json({"job": job, "chosen": meta.get("chosen"), "cv_summary": meta.get("cv_summary"),
+                     "warnings": meta.get("warnings") or []})
+    else:
+        _out.print(summary_table(job, meta))
+        _out.print(cv_text_plot(cv.get("table") or [], meta.get("chosen") or {}))
+        _print_warnings(meta)
+    decision = job.get("decision") or {}
+    if decision.get("went_live") is False and decision.get("promote") != "never":
+        raise TrainedNotLive(f"version {version} of {name} was trained but not made live: {decision.get('reason')}")
+
+
+def _print_warnings(meta: dict) -> None:
+    """The version's warnings (edge of the grid, little data, unused columns), one line each."""
+    for w in meta.get("warnings") or []:
+        _out.print(f"warning: {' '.join(str(w).split())}")
+
+
+def _pm_text(chosen: dict, splits: Any) -> str:
+    """``mean ± SE (1 SE over K folds)``: the one meaning of ± everywhere (pages, figures, CLI) is one
+    standard error of the mean over the CV splits, std/√splits."""
+    mean = chosen.get("mean")
+    std = chosen.get("std")
+    if not isinstance(mean, (int, float)):
+        return "-"
+    text = f"{mean:.6g}"
+    try:
+        k = int(splits)
+    except (TypeError, ValueError):
+        return text
+    if isinstance(std, (int, float)) and k >= 1:
+        text += f" ± {std / math.sqrt(k):.3g} (1 SE over {k} folds)"
+    return text
 
 
 def _basis_text(basis: dict | None) -> str:
@@ -504,8 +558,7 @@ def summary_table(job: dict, meta: dict) -> Table:
     t.add_row("chosen penalty", _penalty_text(chosen.get("penalty")))
     metric = chosen.get("metric") or summary.get("metric") or "rmse"
     folds = summary.get("splits")
-    t.add_row(f"CV {metric}", f"{chosen.get('mean', float('nan')):.6g} ± {chosen.get('std', float('nan')):.3g} (std over "
-              f"{folds} folds)" if folds else f"{chosen.get('mean', float('nan')):.6g} ± {chosen.get('std', float('nan')):.3g}")
+    t.add_row(f"CV {metric}", _pm_text(chosen, folds))
     t.add_row("selection rule", str(chosen.get("rule") or summary.get("rule")))
     t.add_row("candidates", f"{summary.get('candidates')} ({summary.get('basis_settings')} basis settings × "
               f"{summary.get('strengths')} strengths), {summary.get('rows')} rows")
@@ -731,8 +784,8 @@ def show(
     t.add_row("target", str((meta.get("spec") or {}).get("target")))
     t.add_row("chosen basis", _basis_text(chosen.get("basis")))
     t.add_row("chosen penalty", _penalty_text(chosen.get("penalty")))
-    t.add_row(f"CV {chosen.get('metric', '')}", f"{chosen.get('mean', float('nan')):.6g} ± {chosen.get('std', float('nan')):.3g}"
-              f" ({summary.get('scheme')}, {summary.get('splits')} splits, rule {chosen.get('rule')})")
+    t.add_row(f"CV {chosen.get('metric', '')}", _pm_text(chosen, summary.get("splits"))
+              + f"; {summary.get('scheme')}, rule {chosen.get('rule')}")
     for f in meta.get("feature_schema") or []:
         rng = f.get("range")
         levels = f.get("levels")
@@ -748,6 +801,7 @@ def show(
     t.add_row("arrays sha256", str(sums.get("arrays_sha256")))
     t.add_row("live", "yes" if meta.get("live") else "no")
     _out.print(t)
+    _print_warnings(meta)
 
 
 @app.command()
@@ -800,6 +854,9 @@ def promote(
         _print_json(result)
         return
     change = result.get("change") or {}
+    if result.get("already_live") or (change.get("changed") is False and change.get("from_version") == version):
+        _out.print(f"{name}: version {version} is already live; nothing changed (no history entry)")
+        return
     _out.print(f"{name}: live version {change.get('from_version') or '-'} -> {result['live_version']}")
 
 
@@ -811,9 +868,15 @@ def history(ctx: typer.Context, name: Annotated[str, typer.Argument(help="Model 
     if _opts(ctx).json:
         _print_json(entries)
         return
-    t = Table("when", "from", "to", "by", "reason")
+    t = Table("when (UTC)", "version", "decision", "live", "by", "reason")
     for h in entries:
-        t.add_row(str(h.get("at"))[:19], str(h.get("from_version") or "-"), str(h.get("to_version")),
+        details = h.get("details") if isinstance(h.get("details"), dict) else {}
+        not_live = details.get("not_made_live")
+        version = not_live if not_live is not None else h.get("to_version")
+        decision = h.get("decision") or ("not made live" if not_live is not None else "went live")
+        live = (f"{h.get('from_version') or '-'} -> {h.get('to_version') or '-'}" if not_live is None
+                else f"{h.get('to_version') or '-'} (unchanged)")
+        t.add_row(str(h.get("at"))[:19].replace("T", " "), str(version or "-"), decision, live,
                   str(h.get("actor")), str(h.get("reason")))
     _out.print(t)
 
@@ -823,10 +886,35 @@ def prune(
     ctx: typer.Context,
     keep: Annotated[int, typer.Option("--keep", min=0, help="Newest versions to keep besides the live one.")],
     names: Annotated[Optional[list[str]], typer.Argument(help="Models to prune (default: every model).")] = None,
+    dry_run: Annotated[bool, typer.Option("--dry-run", help="List what would be deleted; delete nothing.")] = False,
+    yes: Annotated[bool, typer.Option("--yes", "-y", help="Do not ask for confirmation on a terminal.")] = False,
 ) -> None:
-    """Delete old versions: all but the live one and the newest --keep (admin scope)."""
+    """Delete old versions: all but the live one and the newest --keep (admin scope). On a terminal it
+    lists what would go and asks first (--yes skips the question); --dry-run only lists."""
     with _client(ctx) as tk:
         targets = list(names or [m["name"] for m in tk.models()])
+        if dry_run or (not yes and sys.stdin.isatty()):
+            plans = [tk.prune(n, keep, dry_run=True) for n in targets]
+            if dry_run:
+                if _opts(ctx).json:
+                    _print_json(plans)
+                    return
+                for r in plans:
+                    _out.print(f"{r['name']}: would delete {', '.join(map(str, r['deleted'])) or 'nothing'}; would keep "
+                               f"{', '.join(map(str, r['remaining'])) or 'nothing'} (live {r.get('live_version') or '-'})")
+                return
+            doomed = sum(len(r["deleted"]) for r in plans)
+            if doomed == 0:
+                _out.print("nothing to delete: " + "; ".join(f"{r['name']} keeps {', '.join(map(str, r['remaining'])) or 'nothing'}"
+                                                           for r in plans))
+                return
+            for r in plans:
+                if r["deleted"]:
+                    _err.print(f"{r['name']}: will delete version(s) {', '.join(map(str, r['deleted']))}; keeps "
+                               f"{', '.join(map(str, r['remaining']))} (live {r.get('live_version') or '-'})")
+            if not typer.confirm(f"Delete {doomed} version(s)? Their files are removed for good", default=False):
+                _err.print("tikhon: nothing deleted")
+                raise typer.Exit(1)
         results = [tk.prune(n, keep) for n in targets]
     if _opts(ctx).json:
         _print_json(results)
@@ -996,12 +1084,59 @@ def _globals_first(args: list[str]) -> list[str]:
     return front + rest
 
 
+# What a value is, in words, for the help text (instead of the parser's type names such as <list[str]>).
+_METAVARS = {
+    "data": "FILE", "source": "PATH", "target": "COLUMN", "spec": "FILE", "basis": "BASIS", "feature": "COLUMN",
+    "categorical": "COLUMN", "promote": "always|if_better|never", "min_improvement": "NUMBER", "idempotency_key": "TEXT",
+    "interval": "LEVEL", "out": "FILE", "kind": "KIND", "keep": "COUNT", "scope": "predict|train|admin",
+    "label": "TEXT", "reason": "TEXT", "url": "URL", "key": "KEY", "timeout": "SECONDS", "live": "newest|none",
+    "host": "ADDRESS", "port": "PORT", "version": "VERSION", "name": "NAME", "names": "NAME", "job_id": "JOB",
+    "key_id": "KEY_ID", "ref": "NAME[@VERSION]", "workers": "COUNT",
+}
+
+
+def _human_help(command: Any) -> None:
+    """Give every option and argument a plain metavar, and the --url default the port this environment
+    uses (TIKHON_PORT), read when the command line runs rather than at import."""
+    port = os.environ.get("TIKHON_PORT", "").strip()
+    port = port if port.isdigit() else "8000"
+    stack = [command]
+    while stack:
+        cmd = stack.pop()
+        stack.extend(getattr(cmd, "commands", {}).values())
+        for param in cmd.params:
+            is_flag = getattr(param, "is_flag", False) or getattr(param, "count", False)
+            if not is_flag and param.name in _METAVARS and param.metavar in (None, ""):
+                param.metavar = _METAVARS[param.name]
+            if getattr(param, "param_type_name", "") == "argument" and hasattr(param, "display_type_rich"):
+                param.display_type_rich = lambda ctx=None: None  # "NAME  Model name.", not "NAME <str>"
+            if getattr(param, "param_type_name", "") == "option" and param.name == "url":
+                param.help = (f"Server address [default: http://127.0.0.1:{port}, from TIKHON_PORT]." if port != "8000"
+                              else "Server address [default: http://127.0.0.1:8000; TIKHON_PORT changes the port].")
+
+
+def _fail_service(exc: ServiceError, args: list[str]) -> int:
+    """One line for a refused or failed call; a missing or wrong API key is explained in the CLI's own
+    terms (--key / TIKHON_KEY), not as an HTTP header."""
+    if exc.status == 401:
+        given = bool(os.environ.get("TIKHON_KEY")) or any(a == "--key" or a.startswith("--key=") for a in args)
+        if given:
+            return _fail("the API key given with --key or TIKHON_KEY is unknown or revoked on this server; use an "
+                         "active key ('tikhon keys list' shows them; an admin makes one with 'tikhon keys create "
+                         "--scope ...').", 2)
+        return _fail("this server needs an API key: pass --key KEY or set TIKHON_KEY (an admin makes one with "
+                     "'tikhon keys create --scope predict|train|admin').", 2)
+    usage = exc.is_client_error or exc.title == "Invalid argument"
+    return _fail(str(exc), 2 if usage else 1)
+
+
 def main(argv: list[str] | None = None) -> int:
     """Run the command line; return (and, as a console script, exit with) the exit code."""
     from service.errors import TikhonError
 
     no_args_help, usage_error, exit_, abort = _parser_errors()
     command = typer.main.get_command(app)
+    _human_help(command)
     args = _globals_first(list(sys.argv[1:] if argv is None else argv))
     try:
         result = command.main(args=args, prog_name="tikhon", standalone_mode=False)
@@ -1024,9 +1159,11 @@ def main(argv: list[str] | None = None) -> int:
         code = _fail(str(exc), 2)
     except JobFailed as exc:
         code = _fail(str(exc), 1)
+    except TrainedNotLive as exc:
+        sys.stderr.write("tikhon: " + " ".join(str(exc).split()) + "\n")
+        code = 3
     except ServiceError as exc:
-        usage = exc.is_client_error or exc.title == "Invalid argument"
-        code = _fail(str(exc), 2 if usage else 1)
+        code = _fail_service(exc, args)
     except TikhonError as exc:  # serve / worker / keys --local: the service's own refusals
         from service.errors import Forbidden, InvalidData, InvalidName, InvalidSpec
 

@@ -326,9 +326,13 @@ class Client:
         self._send("DELETE", f"/v1/models/{_seg(name)}/versions/{_num(version)}")
 
     @_route("POST", "/v1/models/{name}/prune")
-    def prune(self, name: str, keep: int) -> dict[str, Any]:
-        """Delete every version except the live one and the newest ``keep`` (admin scope)."""
-        return self._send("POST", f"/v1/models/{_seg(name)}/prune", json={"keep": keep})
+    def prune(self, name: str, keep: int, *, dry_run: bool = False) -> dict[str, Any]:
+        """Delete every version except the live one and the newest ``keep`` (admin scope); with ``dry_run``
+        only list them in ``deleted`` and delete nothing."""
+        body: dict[str, Any] = {"keep": keep}
+        if dry_run:
+            body["dry_run"] = True
+        return self._send("POST", f"/v1/models/{_seg(name)}/prune", json=body)
 
     # -- figures --------------------------------------------------------------------------------------
     def plot(self, name: str, version: int, kind: str, format: str = "svg") -> bytes:

@@ -51,6 +51,28 @@ class InvalidData(TikhonError):
     title = "Invalid data"
 
 
+class InvalidRequest(InvalidData):
+    """A field of the request itself (not the data, not the spec) has a value the service does not accept."""
+
+    slug = "invalid-request"
+    title = "Invalid request"
+
+
+def choice_message(value: Any, expected: str) -> str:
+    """Say that ``value`` is not one of the allowed values listed in ``expected`` (a pydantic-style list such
+    as "'always', 'if_better' or 'never'"), and name the closest allowed value when one is close."""
+    import difflib
+    import re
+
+    allowed = re.findall(r"'([^']*)'", expected) or [expected]
+    text = f"{value!r} is not one of the allowed values {', '.join(repr(a) for a in allowed)}"
+    if isinstance(value, str):
+        close = difflib.get_close_matches(value.replace("-", "_").lower(), allowed, n=1, cutoff=0.5)
+        if close:
+            text += f" (did you mean {close[0]!r}?)"
+    return text
+
+
 class BudgetExceeded(TikhonError):
     """A configured limit (grid size, rows, body size, training time) would be exceeded."""
 

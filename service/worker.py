@@ -554,6 +554,9 @@ class Worker:
             if go_live:
                 self._retrying(f"making version {version} of {name!r} live", lambda: self._go_live(
                     name, version, job, decision))
+            else:
+                self._retrying(f"recording why version {version} of {name!r} did not go live",
+                               lambda: self._record_not_live(name, version, job, decision))
         except JobTaken as err:  # the job was taken away (re-queued) before the publish: its new holder decides
             log.warning("job dropped", extra={"job_id": jid, "reason": f"not published: {err}"})
             return
@@ -584,6 +587,14 @@ class Worker:
             return
         if self.on_live_change is not None:
             self.on_live_change(name)
+
+    def _record_not_live(self, name: str, version: int, job: dict[str, Any], decision: dict[str, Any]) -> None:
+        """Put a decision not to make ``version`` live into the model's history, so every retrain's outcome is
+        read in one place (the live version is unchanged)."""
+        jid = job["id"]
+        self.store.record_decision(name, version, actor=f"worker:{self.worker_id}"[:200],
+                                   reason=f"training job {jid}: {decision['reason']}",
+                                   details={k: v for k, v in decision.items() if k != "comparison"} | {"job_id": jid})
 
     def _published_by(self, name: str, jid: str) -> int | None:
         """The version an earlier attempt of job ``jid`` published, if any (versions record their job)."""
@@ -617,6 +628,8 @@ class Worker:
                 decision.update(version=version, resumed=True, reason=f"{note}; {decision['reason']}")
                 if go_live:
                     self._go_live(name, version, job, decision)
+                else:
+                    self._record_not_live(name, version, job, decision)
         except TikhonError as err:
             self._finish(jid, "failed", problem=_problem(err))
             return

@@ -150,7 +150,8 @@ def test_train_wait_shows_progress_then_the_chosen_point(server, tmp_path):
     degree = chosen["basis"].get("degree")
     assert (f"polynomial, degree {degree}" if degree else "linear") in summary
     assert f"λ = {chosen['penalty']['strength']:.4g}" in summary
-    assert f"{chosen['mean']:.6g} ± {chosen['std']:.3g}" in summary
+    se = chosen["std"] / meta["cv_summary"]["splits"] ** 0.5  # one standard error, std/sqrt(folds): common practice
+    assert f"{chosen['mean']:.6g} ± {se:.3g} (1 SE over {meta['cv_summary']['splits']} folds)" in summary
     assert "O = chosen" in summary and "(λ, log)" in summary
 
 
@@ -167,9 +168,9 @@ def test_retrain_reuses_the_live_spec_and_reports_the_if_better_decision(server,
     assert r.returncode == 0, r.stderr
     assert json.loads(r.stdout)["job"]["version"] == 1
     r = cli(url, "--json", "train", "pump-re", "--source", "next/b.csv", "--promote", "if_better", "--wait")
-    assert r.returncode == 0, r.stderr
     done = json.loads(r.stdout)
     decision = done["job"]["decision"]
+    assert r.returncode == (0 if decision["went_live"] else 3), r.stderr  # 3: trained, not made live
     assert decision["promote"] == "if_better" and decision["live_version"] == 1
     assert decision["went_live"] == (decision["new_cv_mean"] < decision["live_on_new_data"])
     assert done["job"]["data"]["source"] == "next/b.csv"
@@ -262,7 +263,9 @@ def test_predict_show_promote_history_prune_and_keys(server, tmp_path):
     r = cli(url, "promote", "pump-ops", "3", "--reason", "operator check of version 3")
     assert r.returncode == 0 and "1 -> 3" in r.stdout, r.stdout
     r = cli(url, "--json", "history", "pump-ops")
-    assert [(h["from_version"], h["to_version"]) for h in json.loads(r.stdout)] == [(None, 1), (1, 3)]
+    # The two 'never' trainings are in the history too, as decisions that kept version 1 live.
+    assert [(h["from_version"], h["to_version"], h["version"], h["went_live"]) for h in json.loads(r.stdout)] == [
+        (None, 1, 1, True), (1, 1, 2, False), (1, 1, 3, False), (1, 3, 3, True)]
     r = cli(url, "--json", "prune", "pump-ops", "--keep", "0")
     assert r.returncode == 0 and json.loads(r.stdout)[0]["deleted"] == [1, 2]
     r = cli(url, "--json", "models")

@@ -131,7 +131,9 @@ def test_every_route_called_through_the_client(server, live_service, tmp_path):
         moved = tk.set_live("pump-c", 2, reason="client test: version 2 is trained on more recent rows")
         assert moved["live_version"] == 2
         hist = tk.history("pump-c")
-        assert [(h["from_version"], h["to_version"]) for h in hist] == [(None, 1), (1, 2)]
+        # version 2's own decision (published, not made live) is in the history before the change to it
+        assert [(h["from_version"], h["to_version"], h["went_live"]) for h in hist] == [
+            (None, 1, True), (1, 1, False), (1, 2, True)]
         assert hist[-1]["reason"].startswith("client test")
 
         for kind in ("cv", "path", "residuals"):
@@ -289,7 +291,7 @@ def test_two_api_replicas_and_a_separate_worker_share_a_postgresql_catalog(live_
                 while ta.predict("pump-rep", rows=rows)["model"]["version"] != 2:
                     assert time.monotonic() < deadline, "replica a kept answering with version 1"
                     time.sleep(0.1)
-                assert [h["to_version"] for h in ta.history("pump-rep")] == [1, 2]
+                assert [(h["to_version"], h["went_live"]) for h in ta.history("pump-rep")] == [(1, True), (1, False), (2, True)]
         finally:
             worker.send_signal(signal.SIGTERM)
             _, err_text = worker.communicate(timeout=60)

@@ -57,7 +57,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
             "extrapolation warnings. Errors are RFC 9457 problem details (application/problem+json)."
         ),
         openapi_url="/openapi.json",
-        docs_url="/docs",
+        docs_url=None,  # served by routes.docs from packaged files (no CDN)
         redoc_url=None,
         lifespan=lifespan,
     )
@@ -87,6 +87,8 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
     app.include_router(admin.router, dependencies=[Depends(auth.authorize)])
     app.include_router(health.router)
     app.include_router(pages.router)  # the HTML overview; checks keys itself (login form)
+    from service.api.routes import docs  # /docs with its assets served from the package
+    app.include_router(docs.router)
 
     # Starlette wraps in reverse order of addition: the last added is the outermost.
     if settings.cors_origins:
@@ -95,6 +97,8 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
             allow_headers=["Authorization", "Content-Type", "Idempotency-Key", "X-Request-Id"],
             expose_headers=["Location", "X-Request-Id", "Retry-After", "Tikhon-Catalog"],
         )
+    from service.api.cors import PreflightGuard  # an unlisted origin's preflight: a problem naming the setting
+    app.add_middleware(PreflightGuard, allowed=list(settings.cors_origins))
     app.add_middleware(BodyLimit, limit=settings.max_body_bytes)
     app.add_middleware(RequestContext, metrics=metrics, process_header=process_header)
 

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import functools
 import logging
+import re
 import sys
 import time
 
@@ -17,6 +18,14 @@ import orjson
 
 _STANDARD = set(vars(logging.LogRecord("x", 0, "", 0, "", None, None))) | {"message", "asctime", "taskName"}
 _SECRETISH = ("authorization", "secret", "token", "api_key", "apikey", "password")
+# uvicorn adds a coloured copy of its messages ("color_message"); a JSON log carries plain text only, and
+# any terminal escape sequence (ECMA-48 CSI) left in a message is removed.
+_DROP = frozenset({"color_message"})
+_ANSI = re.compile(r"\x1b\[[0-9;?]*[ -/]*[@-~]")
+
+
+def _plain(value):
+    return _ANSI.sub("", value) if isinstance(value, str) and "\x1b" in value else value
 
 
 @functools.lru_cache(maxsize=1024)
@@ -39,12 +48,12 @@ class JsonFormatter(logging.Formatter):
             "ts": self._timestamp(record.created, record.msecs),
             "level": record.levelname.lower(),
             "logger": record.name,
-            "msg": record.getMessage(),
+            "msg": _plain(record.getMessage()),
         }
         for key, value in record.__dict__.items():
-            if key in _STANDARD or key.startswith("_") or _secretish(key):
+            if key in _STANDARD or key in _DROP or key.startswith("_") or _secretish(key):
                 continue
-            out[key] = value
+            out[key] = _plain(value)
         if record.exc_info:
             out["exc"] = self.formatException(record.exc_info)
         return orjson.dumps(out, default=str).decode()

@@ -85,6 +85,7 @@ class ModelCache:
         version, age = self._last.lookup(("live", name), lambda: self._store.live_version(name),
                                          f"the live version of model {name!r}", allow_stale=allow_stale)
         if version is None:
+            self._store.get_model(name)  # a name with no model at all answers "no model named ..., closest ..."
             raise NotFound(
                 f"model {name!r} has no live version yet; wait for its first training job to succeed, pin a version "
                 f"with POST /v1/models/{name}/versions/<n>/predict, or set one with PUT /v1/models/{name}/live.",

@@ -9,6 +9,7 @@ script or style (the pages send a Content-Security-Policy that forbids them): th
 from __future__ import annotations
 
 import html
+import json
 import math
 from datetime import datetime
 from typing import Any, Iterable
@@ -43,13 +44,24 @@ def _se(chosen: dict[str, Any], splits: Any) -> float | None:
         return None
 
 
+def _exact_strength(value: Any) -> str:
+    """The exact penalty strength next to the rounded one, only when rounding changed it."""
+    try:
+        shown, exact = fmt_strength(value), repr(float(value))
+    except (TypeError, ValueError):
+        return ""
+    if float(shown) == float(exact):
+        return ""
+    return f' <span class="muted small" title="exact value">(exactly {esc(exact)})</span>'
+
+
 def metric_text(chosen: dict[str, Any] | None, splits: Any = None, unit: str | None = None) -> str:
     if not chosen or chosen.get("mean") is None:
         return "—"
     text = f"{str(chosen.get('metric') or 'rmse').upper()} {float(chosen['mean']):.4g}"
     se = _se(chosen, splits) if splits else None
     if se is not None:
-        text += f" ± {se:.2g}"
+        text += f" ± {se:.2g} (1 SE over {int(splits)} folds)"
     if unit:
         text += f" {unit}"
     return text
@@ -109,15 +121,17 @@ def _progress(job: dict[str, Any]) -> str:
     return '<span class="muted">—</span>'
 
 
-def _outcome(job: dict[str, Any]) -> str:
+def _outcome(job: dict[str, Any], deleted: frozenset = frozenset()) -> str:
     state = job.get("state")
     if state == "succeeded":
         decision = job.get("decision") or {}
         text = f"version {esc(job.get('version'))}"
+        if (str(job.get("model")), job.get("version")) in deleted:
+            text += ' <span class="muted">(since deleted)</span>'
         if decision.get("went_live") is True:
             text += " · went live"
         elif decision.get("went_live") is False:
-            text += " · not promoted"
+            text += " · not made live"
         if decision.get("reason"):
             text += f'<div class="reason">{esc(decision["reason"])}</div>'
         return text
@@ -129,21 +143,26 @@ def _outcome(job: dict[str, Any]) -> str:
     return ""
 
 
-def jobs_table(jobs: list[dict[str, Any]], *, model: str | None, limit: int = 15) -> str:
+def jobs_table(jobs: list[dict[str, Any]], *, model: str | None, limit: int = 15,
+               deleted: Iterable[tuple[str, int]] = ()) -> str:
+    """``deleted``: (model, version) pairs of job versions that were deleted since (pruned); the page's
+    script keeps saying so when it redraws the table (``data-deleted``)."""
+    deleted = frozenset(deleted)
     source = "/v1/trainings" + (f"?model={quote(model)}" if model else "")
+    gone = json.dumps(sorted(f"{n}@{v}" for n, v in deleted))
     rows = "".join(
         f'<tr data-job="{esc(j["id"])}" data-state="{esc(j.get("state"))}"><td class="mono">{esc(str(j["id"])[:8])}</td>'
         + ("" if model else f'<td><a href="/models/{esc(quote(str(j.get("model"))))}">{esc(j.get("model"))}</a></td>')
         + f'<td><span class="state state-{esc(j.get("state"))}">{esc(j.get("state"))}</span></td>'
         f"<td>{_progress(j)}</td><td>{when(j.get('created_at'))}</td><td>{when(j.get('finished_at'))}</td>"
-        f"<td>{_outcome(j)}</td></tr>"
+        f"<td>{_outcome(j, deleted)}</td></tr>"
         for j in jobs[:limit]
     )
     empty = '<p class="muted empty" data-empty>No training jobs yet.</p>' if not jobs else ""
     model_head = "" if model else "<th>model</th>"
     return (
         f'<section class="panel" id="jobs" data-source="{esc(source)}" data-limit="{limit}" '
-        f'data-model="{esc(model or "")}"><h2>Training jobs</h2>'
+        f'data-model="{esc(model or "")}" data-deleted="{esc(gone)}"><h2>Training jobs</h2>'
         '<p class="hint">Progress counts (basis setting × fold) units; this table refreshes itself while '
         'jobs run. <span class="live-status" data-status></span></p>'
         f"<table class=\"grid jobs\"><thead><tr><th>job</th>{model_head}<th>state</th><th>progress</th>"
@@ -156,7 +175,7 @@ def jobs_table(jobs: list[dict[str, Any]], *, model: str | None, limit: int = 15
 # overview
 
 def overview(models: list[dict[str, Any]], live_rows: dict[str, dict[str, Any] | None],
-             jobs: list[dict[str, Any]], *, signed_in: bool) -> str:
+             jobs: list[dict[str, Any]], *, signed_in: bool, deleted: Iterable[tuple[str, int]] = ()) -> str:
     last_job: dict[str, dict[str, Any]] = {}
     active: dict[str, int] = {}
     for j in jobs:  # newest first
@@ -199,10 +218,11 @@ def overview(models: list[dict[str, Any]], live_rows: dict[str, dict[str, Any] |
             )
         table = (
             '<section class="panel"><h2>Models on this server</h2><table class="grid models"><thead><tr>'
-            "<th>model</th><th>live</th><th>chosen point of the live version</th><th>CV error (± 1 SE)</th>"
+            "<th>model</th><th>live</th><th>chosen point of the live version</th><th>CV error ± 1 standard error</th>"
             f"<th>versions</th><th>last training</th></tr></thead><tbody>{''.join(rows)}</tbody></table></section>"
         )
-    return layout("Models", intro + table + jobs_table(jobs, model=None), signed_in=signed_in, page="overview")
+    return layout("Models", intro + table + jobs_table(jobs, model=None, deleted=deleted), signed_in=signed_in,
+                  page="overview")
 
 
 # ----------------------------------------------------------------------------------------------------
@@ -223,6 +243,9 @@ def _figure(src: str, alt: str, caption: str, gid: str) -> str:
 def model_page(name: str, model: dict[str, Any], versions: list[dict[str, Any]], history: list[dict[str, Any]],
                jobs: list[dict[str, Any]], selected: int | None, manifest: dict[str, Any] | None,
                *, signed_in: bool) -> str:
+    alive = {v["version"] for v in versions}
+    deleted = {(name, j.get("version")) for j in jobs
+               if j.get("state") == "succeeded" and j.get("version") is not None and j.get("version") not in alive}
     live = model.get("live_version")
     qn = quote(name)
     head = (
@@ -257,7 +280,7 @@ def model_page(name: str, model: dict[str, Any], versions: list[dict[str, Any]],
             ("basis", esc(basis_label(chosen.get("basis")))),
             ("penalty", esc(f"{pen.get('kind', '?')}, λ = {fmt_strength(pen.get('strength'))}"
                             + (f", l1 ratio {float(pen['l1_ratio']):g}" if pen.get("l1_ratio") is not None else ""))
-             + f' <span class="muted small" title="exact value">({esc(repr(pen.get("strength")))})</span>'),
+             + _exact_strength(pen.get("strength"))),
             ("CV error", esc(metric_text(chosen, splits, units.get(target or "")))),
             ("selection rule", esc(chosen.get("rule") or (spec.get("selection") or {}).get("rule"))),
             ("cross-validation", esc(f"{summary.get('scheme', '?')}, {splits or '?'} splits, "
@@ -313,12 +336,7 @@ def model_page(name: str, model: dict[str, Any], versions: list[dict[str, Any]],
         f'<td class="mono small">{esc(str(v.get("checksum"))[:12])}…</td></tr>'
         for v in reversed(versions)
     )
-    hrows = "".join(
-        f"<tr><td>{when(h.get('at'))}</td><td>{('v' + esc(h.get('from_version'))) if h.get('from_version') else '—'} → "
-        f"v{esc(h.get('to_version'))}</td><td class=\"mono small\">{esc(h.get('actor'))}</td>"
-        f"<td class=\"reason\">{esc(h.get('reason'))}</td></tr>"
-        for h in reversed(history)
-    )
+    hrows = "".join(_history_row(h) for h in reversed(history))
     hist = (
         '<section class="panel" id="history"><h2>How the model changed</h2>'
         + (_figure(f"/v1/models/{qn}/plots/history", f"CV error and chosen settings of every version of {name}",
@@ -326,13 +344,28 @@ def model_page(name: str, model: dict[str, Any], versions: list[dict[str, Any]],
                    "were live at some time.", "figure-history") if versions else "")
         + '<h3>Versions</h3><table class="grid versions"><thead><tr><th>version</th><th>published</th>'
         f"<th>chosen point</th><th>CV error</th><th>checksum</th></tr></thead><tbody>{vrows}</tbody></table>"
-        '<h3>Promotions (changes of the live version)</h3>'
-        + (f"<table class=\"grid promotions\"><thead><tr><th>when</th><th>live</th><th>by</th><th>reason</th></tr></thead>"
-           f"<tbody>{hrows}</tbody></table>" if history else '<p class="muted">No version has gone live yet.</p>')
+        '<h3>History (every decision about the live version)</h3>'
+        + (f"<table class=\"grid history\"><thead><tr><th>when</th><th>version</th><th>decision</th><th>live</th>"
+           f"<th>by</th><th>reason</th></tr></thead><tbody>{hrows}</tbody></table>" if history
+           else '<p class="muted">No version has gone live yet.</p>')
         + "</section>"
     )
-    return layout(name, head + picker + main + jobs_table(jobs, model=name) + hist, signed_in=signed_in,
+    return layout(name, head + picker + main + jobs_table(jobs, model=name, deleted=deleted) + hist, signed_in=signed_in,
                   page="model")
+
+
+def _history_row(h: dict[str, Any]) -> str:
+    """One history entry: a change of the live version, or a decision that kept it (``details.not_made_live``)."""
+    details = h.get("details") if isinstance(h.get("details"), dict) else {}
+    not_live = details.get("not_made_live")
+    v = lambda x: ("v" + esc(x)) if x is not None else "—"  # noqa: E731
+    if not_live is None:
+        version, decision, live = v(h.get("to_version")), "went live", f"{v(h.get('from_version'))} → {v(h.get('to_version'))}"
+    else:
+        version, decision, live = v(not_live), "not made live", f"{v(h.get('to_version'))} (unchanged)"
+    cls = "went-live" if not_live is None else "kept"
+    return (f'<tr class="{cls}"><td>{when(h.get("at"))}</td><td>{version}</td><td>{decision}</td><td>{live}</td>'
+            f'<td class="mono small">{esc(h.get("actor"))}</td><td class="reason">{esc(h.get("reason"))}</td></tr>')
 
 
 # ----------------------------------------------------------------------------------------------------

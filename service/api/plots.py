@@ -22,7 +22,7 @@ from __future__ import annotations
 import io
 import math
 import re
-from datetime import datetime, timedelta
+from datetime import datetime, timedelta, timezone
 from typing import Any, Iterable, Sequence
 from xml.sax.saxutils import escape as xml_escape
 
@@ -410,6 +410,12 @@ def _parse_time(text: Any) -> datetime | None:
         return None
 
 
+def _time_ticks(span: timedelta) -> str:
+    """One tick format for the whole axis, so every label reads the same way (never a day number next to a
+    clock time): month-day and time within a week, the full date beyond."""
+    return "%m-%d %H:%M" if span <= timedelta(days=7) else "%Y-%m-%d"
+
+
 def history_figure(name: str, versions: Sequence[dict[str, Any]], live: int | None,
                    promoted: Iterable[int] = (), *, heading: str = "") -> Figure:
     """``versions``: catalog rows (``version``, ``created_at``, ``summary`` with ``chosen`` and
@@ -475,11 +481,13 @@ def history_figure(name: str, versions: Sequence[dict[str, Any]], live: int | No
     if points:
         first, last = min(p["when"] for p in points), max(p["when"] for p in points)
         span = f"{first:%Y-%m-%d %H:%M}" + (f" to {last:%Y-%m-%d %H:%M}" if last - first >= timedelta(minutes=1) else "")
+    times = [p["when"] for p in points]
+    tick_format = _time_ticks(max(times) - min(times) if times else timedelta(0))
     for ax in (top, bottom):
         ax.set_xlabel("version created (UTC)")
         locator = mdates.AutoDateLocator(minticks=3, maxticks=6)
         ax.xaxis.set_major_locator(locator)
-        ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator, show_offset=False))
+        ax.xaxis.set_major_formatter(mdates.DateFormatter(tick_format, tz=timezone.utc))
         if len({p["when"] for p in points}) > 1:
             ax.margins(x=0.15, y=0.18)
         else:

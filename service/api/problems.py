@@ -80,11 +80,48 @@ _HTTP_PROBLEMS: dict[str, tuple[str, str]] = {
     "method-not-allowed": ("Method not allowed", "The route exists but not with this HTTP method."),
     "unsupported-media-type": ("Unsupported media type", "The Content-Type is not one this route reads."),
     "not-acceptable": ("Not acceptable", "The Accept header asks for a format this route cannot produce."),
+    "cors-origin-not-allowed": ("Origin not allowed", "A browser page on another site sent a CORS preflight, and "
+                                "its origin is not in TIKHON_CORS_ORIGINS; the operator adds it there to allow it."),
     "internal-error": ("Internal error", "An unexpected failure on the server; report the request id."),
     "not-ready": ("Not ready", "The catalog does not answer or was replaced, the store folder is not writable, or "
                   "version folders are not in the catalog (run `tikhon store recover`)."),
     "worker-lost": ("Training worker lost", "A training job's worker stopped sending heartbeats on every attempt "
                     "(killed, out of memory, host lost); the job was failed after the configured attempts."),
+}
+
+# What each problem type means to the person reading it, and what to do (shown at /problems and
+# /problems/<slug>); a type missing here falls back to its class docstring.
+_FOR_PEOPLE: dict[str, str] = {
+    "error": "The request failed for a reason no more specific type covers; the detail says what went wrong and "
+             "what to change.",
+    "invalid-spec": "The training spec cannot be used as sent: a field has a wrong value, or it names columns the "
+                    "data does not have. The detail names the field, the value received and the allowed values.",
+    "invalid-data": "The data cannot be used as sent: a column is missing or unknown, a value is not a number where "
+                    "one is needed, a value is empty, NaN or infinite, or the CSV is not comma-separated. The detail "
+                    "names the column, the first rows concerned and the fix.",
+    "invalid-request": "A field of the request itself (not the data, not the spec) has a wrong type, is missing, or "
+                       "is not one of the allowed values. The detail names the field and the values it accepts.",
+    "limit-exceeded": "The request would go past a limit set on the server (rows per request, body size, grid "
+                      "size, training time). The detail names the setting and its value: make the request smaller, "
+                      "or ask the operator to raise that setting.",
+    "invalid-name": "The model name is not allowed. Names are 1-63 characters of lower-case letters, digits, "
+                    "'_', '.' and '-', starting with a letter or digit.",
+    "not-found": "The model, version, job or key does not exist, or was deleted. For a mistyped model name the "
+                 "detail lists the closest names on the server.",
+    "conflict": "The request contradicts the current state, for example deleting the live version or cancelling "
+                "a job that has already ended. Nothing was changed; the detail says what the state is.",
+    "integrity-failure": "A stored version's files failed verification (checksum, format version, or content). "
+                         "The version is not served; the operator should restore it from a backup or retrain.",
+    "storage-failure": "The store could not be written (disk full, permissions). Nothing was published; free "
+                       "space or fix permissions in the store folder and retry.",
+    "catalog-unavailable": "The catalog (the database that lists models and versions) does not answer, or was "
+                           "replaced while the service ran. Nothing was written; retry after the time in "
+                           "Retry-After, and tell the operator if it persists.",
+    "cancelled": "The training job was cancelled before it finished; no version was published by it.",
+    "unauthorized": "No API key was sent, or the key is unknown or revoked. Send a key with the scope the route "
+                    "needs (the command-line client takes --key or TIKHON_KEY).",
+    "forbidden": "The API key is valid but lacks the scope this route needs (predict, train or admin). Use a key "
+                 "with that scope.",
 }
 
 # Status of the problems the store records on jobs by itself (it knows no HTTP): the job failed on the server.
@@ -120,10 +157,10 @@ def catalogue() -> dict[str, dict[str, str]]:
     out: dict[str, dict[str, str]] = {}
     classes = [E.TikhonError, *_all_subclasses(E.TikhonError)]
     for cls in classes:
-        doc = " ".join((cls.__doc__ or cls.title).split())
+        doc = _FOR_PEOPLE.get(cls.slug) or " ".join((cls.__doc__ or cls.title).split())
         out.setdefault(cls.slug, {"title": cls.title, "description": doc})
     for slug, (title, desc) in _HTTP_PROBLEMS.items():
-        out[slug] = {"title": title, "description": desc}
+        out[slug] = {"title": title, "description": _FOR_PEOPLE.get(slug, desc)}
     return out
 
 

@@ -11,7 +11,7 @@ from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
-from service.errors import InvalidData
+from service.errors import InvalidRequest, choice_message
 from service.store.schema import VERSION_MAX
 
 _FORBID = ConfigDict(extra="forbid")
@@ -80,6 +80,8 @@ def parse_training_request(raw: Any) -> TrainingRequest:
             loc = [str(p) for p in e["loc"] if p not in ("RowsData", "CsvData", "SourceData")]
             loc = [p for p in loc if not p.startswith(("function-", "union["))]
             item = {"field": ".".join(loc) or "body", "message": e["msg"].removeprefix("Value error, ")}
+            if e.get("type") == "literal_error":
+                item["message"] = choice_message(e.get("input"), (e.get("ctx") or {}).get("expected", ""))
             if e.get("type") != "missing":
                 item["value"] = e.get("input")
             items.append(item)
@@ -91,7 +93,7 @@ def parse_training_request(raw: Any) -> TrainingRequest:
                 seen.add(key)
                 unique.append(it)
         first = unique[0]
-        raise InvalidData(
+        raise InvalidRequest(
             f"training request field '{first['field']}': {first['message']}"
             + (f" (and {len(unique) - 1} more, listed in 'errors')" if len(unique) > 1 else "")
             + "; see the TrainingRequest schema in /openapi.json.",
@@ -104,6 +106,10 @@ class PredictRequest(BaseModel):
     rows: list[dict[str, Value]] = Field(..., description="Input rows: every input column of the model, nothing else.")
     interval: float | None = Field(
         None, gt=0, lt=1, description="Level of the CV+ prediction interval, e.g. 0.9. Omitted: no interval."
+    )
+    unseen_levels: Literal["warn", "refuse"] = Field(
+        "warn", description="A category level not seen in training: 'warn' answers the row with the level's effect "
+        "taken as zero and a warning listing the known levels; 'refuse' answers 422 naming the row and the known levels."
     )
 
 

@@ -235,12 +235,36 @@ def from_csv(payload: bytes | str | Path, *, where: str = "csv", max_label: int 
     except (pa.ArrowInvalid, pa.ArrowTypeError, UnicodeDecodeError) as exc:
         source.close()
         reason = " ".join(str(exc).split())
+        _check_delimiter(data, where)
         raise InvalidData(
             f"{where} could not be parsed as CSV ({reason[:300]}); send comma-separated UTF-8 text with one header "
             "line and the same number of fields on every line."
         ) from None
     source.close()
+    if table.num_columns == 1:
+        _check_delimiter(data, where)
     return from_arrow(table, where=where, max_label=max_label)
+
+
+_OTHER_DELIMITERS = {";": "semicolon (;)", "\t": "tab", "|": "vertical bar (|)"}
+
+
+def _check_delimiter(data: bytes, where: str) -> None:
+    """Refuse a CSV whose header is one field holding another delimiter (a semicolon- or tab-separated file),
+    naming the delimiter found; otherwise return and let the caller's own message stand."""
+    header = data.lstrip(b"\xef\xbb\xbf").split(b"\n", 1)[0].decode("utf-8", "replace").rstrip("\r")
+    if "," in header:
+        return
+    for sep, label in _OTHER_DELIMITERS.items():
+        parts = header.split(sep)
+        if len(parts) > 1 and all(p.strip() for p in parts):
+            shown = ", ".join(repr(p.strip()) for p in parts[:6]) + (", ..." if len(parts) > 6 else "")
+            raise InvalidData(
+                f"{where} is separated by {label}, not commas: its header {header[:120]!r} reads as one column. "
+                f"Tikhon reads comma-separated CSV; save the file with commas as the separator (columns found: {shown}).",
+                errors=[{"field": where, "value": sep, "message": f"delimiter {label} found; comma expected"}],
+            )
+
 
 
 def from_parquet(payload: bytes | Path, *, where: str, max_label: int | None = MAX_LABEL_CHARS) -> Table:

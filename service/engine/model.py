@@ -93,7 +93,7 @@ class FittedModel:
 
     def design(self, cols: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray, list[np.ndarray]]:
         """(Φ raw design (m, p), numeric inputs X (m, d), unseen-level masks per categorical column)."""
-        X = np.column_stack([numeric_column(cols, f, "feature") for f in self.features]) if self.features else \
+        X = np.column_stack([numeric_column(cols, f, "input") for f in self.features]) if self.features else \
             np.zeros((_nrows(cols), 0))
         Xs = self.scaler.transform(X)
         Phi = self.basis.expand(Xs)
@@ -371,9 +371,10 @@ class FittedModel:
                 lo, hi = self.ranges[f]
                 side = "above" if above[i, j] else "below"
                 w.append(f"{f}={_fmt(X[i, j])} is {side} the training range [{_fmt(lo)}, {_fmt(hi)}]")
-            for name, mask in zip(self.categories.names, unseen):
+            for name, levels, mask in zip(self.categories.names, self.categories.levels, unseen):
                 if mask[i]:
-                    w.append(f"{name}={cols[name][i]!s} was not seen in training; its effect is taken as zero")
+                    w.append(f"{name}={level_as_sent(cols[name][i])} was not seen in training; its effect is taken "
+                             f"as zero (known levels: {known_levels(levels)})")
             if high_lev[i]:
                 w.append(f"leverage {lev[i]:.3g} exceeds the largest training leverage {self.max_leverage:.3g}: "
                          "the input combination lies outside the data the model has seen")
@@ -492,3 +493,18 @@ def _rows(cols: dict[str, np.ndarray], a: int, b: int) -> dict[str, np.ndarray]:
 
 def _fmt(v: float) -> str:
     return f"{v:.6g}"
+
+
+def known_levels(levels: list[str], limit: int = 20) -> str:
+    """The levels a categorical column was trained with, quoted, for messages (the first ``limit``)."""
+    shown = ", ".join(repr(str(v)) for v in levels[:limit])
+    return shown + (f" and {len(levels) - limit} more" if len(levels) > limit else "")
+
+
+def level_as_sent(v: Any) -> str:
+    """A categorical value as the caller wrote it: text quoted, a number bare and marked as a number."""
+    if isinstance(v, (str, np.str_)):
+        return repr(str(v))
+    if isinstance(v, (float, np.floating)) and float(v).is_integer():
+        return f"{int(v)} (a number)"
+    return f"{v!s} (a number)" if isinstance(v, (int, float, np.number)) else repr(str(v))

@@ -12,7 +12,7 @@ from typing import Annotated, Any, Literal, Union
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
-from service.errors import InvalidSpec
+from service.errors import InvalidSpec, choice_message
 
 _STRICT = ConfigDict(extra="forbid", frozen=True)
 
@@ -234,7 +234,14 @@ def parse_spec(spec: Any) -> TuneSpec:
         errors = []
         for e in exc.errors(include_url=False):
             msg = e["msg"].removeprefix("Value error, ")
+            ctx = e.get("ctx") or {}
+            if e.get("type") == "literal_error":
+                msg = choice_message(e.get("input"), ctx.get("expected", ""))
+            elif e.get("type") == "union_tag_invalid":
+                msg = choice_message(ctx.get("tag"), ctx.get("expected_tags", ""))
             field = _loc(e["loc"])
+            if e.get("type") == "union_tag_invalid":
+                field += "." + str(ctx.get("discriminator", "kind")).strip("'")
             errors.append({"field": field, "value": _jsonable(e.get("input")), "message": msg})
         first = errors[0]
         more = f" (and {len(errors) - 1} more problem(s))" if len(errors) > 1 else ""

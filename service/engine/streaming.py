@@ -36,6 +36,7 @@ from .model import MAX_INTERVAL_RESIDUALS, FittedModel, thin_residuals
 from .solvers import convergence_warnings, fit, watch_convergence
 from .spec import TuneSpec, parse_spec
 from .summaries import Summary
+from .advice import data_warnings
 from .table import categorical_column, numeric_column
 from .result import (PLOT_SAMPLE, TuneResult, add_lanes, build_model, check_spread, fingerprint_columns,
                      fingerprint_of, finish, metric_value, refit_all_rows, score_splits, select, setting_df,
@@ -78,6 +79,7 @@ class _Ctx:
     columns: list[str]
     batch_rows: int
     sample_size: int = KMEANS_SAMPLE
+    schema: dict[str, str] | None = None  # every column of the source: "number", "boolean" or "text"
 
 
 def _keys(ctx: _Ctx, batch: dict[str, np.ndarray], offset: int, rows: int) -> np.ndarray:
@@ -383,7 +385,7 @@ def _tune_partitions(partitions, schema, spec: TuneSpec, executor, progress, sho
     if not partitions:
         raise InvalidData("the source has no partitions (no files or no rows)")
     features, columns = resolve_columns(spec, schema)
-    run = _Run(_Ctx(spec, features, columns, spec.execution.batch_rows), list(partitions),
+    run = _Run(_Ctx(spec, features, columns, spec.execution.batch_rows, schema=dict(schema)), list(partitions),
                executor or SerialExecutor(), progress, should_stop)
     scan = run.map_reduce(partial(_scan_partition, run.ctx), run.parts, _merge_scan)
     m, settings = _setup(run, scan, budget)
@@ -547,6 +549,7 @@ def _refit(run: _Run, m: _Model, scan: Scan, settings: list[BasisSetting], group
     return finish(spec, settings, rows, picks, model, full, n_rows=n, n_splits=m.folds,
                   folds=np.zeros(0, dtype=np.int64), oof_predictions=fin.sample_pred, oof_observed=fin.sample_obs,
                   fingerprint=fingerprint_of(scan.lanes, n),
+                  warnings=data_warnings(spec, run.ctx.schema or {}, run.ctx.columns, int(n), m.folds, len(model.term_names)),
                   summary_extra={"execution": "streaming", "executor": getattr(run.executor, "name", "in-process"),
                                  "partitions": len(run.parts)})
 

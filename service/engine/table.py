@@ -70,7 +70,7 @@ def numeric_column(cols: Columns, name: str, role: str, offset: int = 0) -> np.n
         shown = [offset + i for i in range(min(5, raw.size))]
         raise InvalidData(
             f"{role} column {name!r} must be numeric but holds text, e.g. row {offset} = {_short(raw[0])}; "
-            "send numbers (JSON numbers, not strings), or list the column under 'categorical'",
+            f"{_numeric_fix(role, name)}",
             errors=[{"field": name, "rows": shown, "message": "text where a number belongs"}],
         )
     else:
@@ -80,8 +80,8 @@ def numeric_column(cols: Columns, name: str, role: str, offset: int = 0) -> np.n
             bad = [i for i, v in enumerate(raw) if not _is_number(v)][:5]
             shown = [i + offset for i in bad]
             raise InvalidData(
-                f"{role} column {name!r} must be numeric; rows {shown} hold {[_short(raw[i]) for i in bad]}; "
-                "fix or drop those rows, or list the column under 'categorical'",
+                f"{role} column {name!r} must be numeric; rows {shown} hold {', '.join(_short(raw[i]) for i in bad)}; "
+                f"{_numeric_fix(role, name)}",
                 errors=[{"field": name, "rows": shown, "message": "not a number"}],
             ) from None
     finite = np.isfinite(x)
@@ -146,7 +146,23 @@ def _is_number(v: Any) -> bool:
         return False
 
 
+def _numeric_fix(role: str, name: str) -> str:
+    """The fix for text where a number belongs, for the place it happened (training or prediction)."""
+    if role == "input":
+        return (f"this model was trained with {name!r} as a number, so send a number there (a JSON number, not a "
+                "string; a plain number in CSV), or drop the row")
+    if role == "target":
+        return "the target must be a number on every row; fix or drop those rows"
+    return ("send numbers (JSON numbers, not strings), fix or drop those rows, or, if the column holds labels, "
+            "list it under 'categorical' in the spec")
+
+
 def _short(v: Any) -> str:
+    """A value as the caller wrote it: text in quotes, numbers bare (never a numpy repr such as np.str_('x'))."""
+    if isinstance(v, (str, np.str_)):
+        v = str(v)
+    elif isinstance(v, np.generic):
+        v = v.item()
     s = repr(v)
     return s if len(s) <= 40 else s[:37] + "..."
 

@@ -26,6 +26,7 @@ from .result import (TuneResult, build_model, check_spread, column_kind, fingerp
 from .solvers import Fit, convergence_warnings, fit, watch_convergence
 from .spec import TuneSpec, parse_spec
 from .summaries import Summary
+from .advice import data_warnings
 from .table import as_columns, categorical_column, numeric_column
 
 LEVERAGE_ONE = 1e-10  # a row with hᵢᵢ ≥ 1 − this has leverage 1: its leave-one-out error needs a refit
@@ -344,7 +345,10 @@ def _tune(data, spec: TuneSpec, progress, should_stop, budget) -> TuneResult:
                                          scaler, chosen)
     return finish(spec, settings, rows, picks, model, full, n_rows=n, n_splits=search.n_splits,
                   folds=search.assignment, oof_predictions=oof_pred, oof_observed=prep.y,
-                  fingerprint=fingerprint_of(fingerprint_columns(prep.cols, prep.used), n), warnings=search.warnings)
+                  fingerprint=fingerprint_of(fingerprint_columns(prep.cols, prep.used), n),
+                  warnings=search.warnings + data_warnings(
+                      spec, {c: column_kind(v) for c, v in prep.cols.items()}, prep.used, int(n), search.n_splits,
+                      len(model.term_names)))
 
 
 # ---------------------------------------------------------------------------------------------------

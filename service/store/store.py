@@ -63,6 +63,7 @@ seen by every other process within that time, and at once by the process that ma
 
 from __future__ import annotations
 
+import difflib
 import fcntl
 import logging
 import operator
@@ -469,11 +470,12 @@ class Store:
             last = None
             if row is None or row.deleted_at is not None:
                 last = conn.execute(select(models_t.c.last_version).where(models_t.c.name == name)).scalar()
+                missing = unknown_model(conn, name) if last is None else None
         if row is None or row.deleted_at is not None:
             with self._lock:
                 self._rows.pop((name, version), None)
             if last is None:
-                raise NotFound(f"model {name!r} does not exist; publish a version or train it first.")
+                raise missing
             if row is not None:
                 raise NotFound(f"version {version} of model {name!r} was deleted at {iso(row.deleted_at)}.")
             raise NotFound(f"model {name!r} has no version {version} (its newest version number is {last}).")
@@ -538,7 +540,7 @@ class Store:
     def _model_row(self, conn, name: str) -> Any:
         m = conn.execute(select(models_t).where(models_t.c.name == name)).first()
         if m is None:
-            raise NotFound(f"model {name!r} does not exist; publish a version or train it first.")
+            raise unknown_model(conn, name)
         return m
 
     def _models(self, name: str | None) -> list[dict[str, Any]]:
@@ -569,7 +571,8 @@ class Store:
         validate_name(name)
         found = self._models(name)
         if not found:
-            raise NotFound(f"model {name!r} does not exist; publish a version or train it first.")
+            with catalog_errors(f"reading the model {name!r}", self.catalog), read_txn(self.engine) as conn:
+                raise unknown_model(conn, name)
         return found[0]
 
     def list_versions(self, name: str) -> list[dict[str, Any]]:
@@ -707,6 +710,27 @@ class Store:
             for r in rows
         ]
 
+    def record_decision(self, name: str, version: int, *, actor: str, reason: str,
+                        details: dict | None = None) -> dict[str, Any]:
+        """Append a history entry saying that ``version`` was published but not made live, and why (a
+        training job's ``if_better`` refusal or ``promote: never``). The live version does not change: the
+        entry's ``from_version`` and ``to_version`` are both the live version, and ``details.not_made_live``
+        names ``version`` (the same shape as a job whose promotion was superseded)."""
+        validate_name(name)
+        version = self._check_version(name, version)
+        if details is not None:
+            artifact.dump_json(details, what="the history details")
+        with catalog_errors(f"recording a decision for {name!r}", self.catalog), write_txn(self.engine) as conn:
+            lock_name(conn, name)
+            m = self._model_row(conn, name)
+            now = utcnow()
+            kept = {**(details or {}), "not_made_live": version}
+            res = conn.execute(insert(history_t).values(
+                model_name=name, at=now, actor=actor[:200], from_version=m.live_version, to_version=m.live_version,
+                reason=reason, details=kept))
+        return {"id": res.inserted_primary_key[0], "name": name, "at": iso(now), "actor": actor[:200],
+                "from_version": m.live_version, "to_version": m.live_version, "reason": reason, "details": kept}
+
     # ------------------------------------------------------------------------------------------------
     # retention
 
@@ -726,11 +750,17 @@ class Store:
                               "versions to keep besides the live one.",
                               errors=[{"field": "keep", "value": repr(keep), "message": "whole number >= 0"}])
 
-        def choose(live: int | None, alive: list[int]) -> list[int]:
-            kept = set(sorted(alive, reverse=True)[:keep]) | ({live} if live is not None else set())
-            return [v for v in alive if v not in kept]
+        return self._delete(name, _prune_choice(keep), explicit=None)
 
-        return self._delete(name, choose, explicit=None)
+    def prune_plan(self, name: str, keep: int) -> list[int]:
+        """The versions ``prune(name, keep)`` would delete now, deleting nothing (``tikhon prune --dry-run``)."""
+        validate_name(name)
+        if isinstance(keep, bool) or not isinstance(keep, int) or keep < 0:
+            raise InvalidSpec(f"keep must be a whole number >= 0, received {keep!r}.",
+                              errors=[{"field": "keep", "value": repr(keep), "message": "whole number >= 0"}])
+        alive = [int(v["version"]) for v in self.list_versions(name)]
+        live = self.get_model(name).get("live_version")
+        return _prune_choice(keep)(live, alive)
 
     def _delete(self, name: str, choose: Callable[[int | None, list[int]], list[int]], *, explicit: int | None) -> list[int]:
         with catalog_errors(f"deleting versions of {name!r}", self.catalog), write_txn(self.engine) as conn:
@@ -985,6 +1015,32 @@ class Store:
                     left.append(v)
         self._erase(trash)
         return len(trash), sorted(left)
+
+
+def _prune_choice(keep: int) -> Callable[[int | None, list[int]], list[int]]:
+    """The pruning rule: every version but the live one and the newest ``keep``."""
+    def choose(live: int | None, alive: list[int]) -> list[int]:
+        kept = set(sorted(alive, reverse=True)[:keep]) | ({live} if live is not None else set())
+        return [v for v in alive if v not in kept]
+
+    return choose
+
+
+def unknown_model(conn: Any, name: str) -> NotFound:
+    """The error for a model name the catalog does not hold, naming the closest names it does hold
+    (a mistyped name is the usual cause)."""
+    names = [r[0] for r in conn.execute(select(models_t.c.name).order_by(models_t.c.name)).all()]
+    close = difflib.get_close_matches(name, names, n=3, cutoff=0.75)
+    if close:
+        hint = f"the closest name{'s' if len(close) > 1 else ''} on this server: {', '.join(repr(c) for c in close)}"
+    elif names:
+        hint = f"this server holds {len(names)} model{'s' if len(names) > 1 else ''}, none with a similar name (GET /v1/models lists them)"
+    else:
+        hint = "this server holds no models yet"
+    return NotFound(
+        f"no model named {name!r} exists; {hint}. Check the spelling, or train it first.",
+        errors=[{"field": "name", "value": name, "message": "no such model", "closest": close}],
+    )
 
 
 def _summary_of(body: Any) -> Any:

@@ -84,7 +84,8 @@ def test_overview_in_headless_chromium(tmp_path, kit):
                 page.screenshot(path=str(shots / "01-sign-in.png"))
                 page.fill("#key", "not-a-key")
                 page.click("button[type=submit]")
-                assert "unknown or revoked" in page.inner_text("[role=alert]")
+                alert = page.inner_text("[role=alert]")
+                assert "unknown or revoked" in alert and "Authorization" not in alert and "tikhon keys list" in alert
                 page.fill("#key", viewer)
                 page.click("button[type=submit]")
                 page.wait_for_url(f"{base}/")
@@ -145,10 +146,22 @@ def test_overview_in_headless_chromium(tmp_path, kit):
                 page.click("#jobs [data-notice] a")
                 page.wait_for_url(f"{base}/models/pump-energy?version=2")
                 assert "live: v2" in page.inner_text("h1")
-                assert page.locator("#history table.promotions tbody tr").count() == 2
+                assert page.locator("#history table.history tbody tr").count() == 2
+                assert "went live" in page.inner_text("#history table.history tbody tr:first-child")
                 page.screenshot(path=str(shots / "07-version-2.png"), full_page=True)
+
+                # No job runs now: the jobs table checks less and less often (3 s, 6 s, ...), and says so.
+                page.wait_for_function("() => Number(document.getElementById('jobs').dataset.nextCheckMs) >= 6000")
+                assert "No job is running; next check in" in page.inner_text("#jobs [data-status]")
             finally:
                 browser.close()
     names = sorted(p.name for p in shots.iterdir())
     assert {"02-overview.png", "03-model.png", "06-job-done.png"} <= set(names), names
     print(f"\nscreenshots: {shots}")
+    # The README's screenshots are these files: TIKHON_README_SCREENSHOTS=docs/screenshots pytest ... copies them.
+    target = os.environ.get("TIKHON_README_SCREENSHOTS")
+    if target:
+        os.makedirs(target, exist_ok=True)
+        for src, dst in (("01-sign-in.png", "sign-in.png"), ("02-overview.png", "overview.png"),
+                         ("07-version-2.png", "model-page.png")):
+            shutil.copyfile(shots / src, os.path.join(target, dst))

@@ -121,7 +121,11 @@ def test_if_better_promotes_better_and_refuses_worse(worker_service, kit):
         httpx.get(f"{base}/v1/models/pump-gate/versions/2").json()["spec"]["bases"]
 
     hist = httpx.get(f"{base}/v1/models/pump-gate/history").json()["history"]
-    assert [(h["from_version"], h["to_version"]) for h in hist] == [(None, 1), (1, 2)]
+    # Every decision is in the history: the two refused retrains keep version 2 live and say why.
+    assert [(h["from_version"], h["to_version"], h["version"], h["went_live"]) for h in hist] == [
+        (None, 1, 1, True), (1, 2, 2, True), (2, 2, 3, False), (2, 2, j4["version"], False)]
+    assert hist[2]["decision"] == "not made live" and hist[2]["details"]["new_cv_mean"] == d3["new_cv_mean"]
+    assert "does not beat" in hist[3]["reason"] and hist[3]["details"]["job_id"] == j4["id"]
     assert hist[1]["details"]["new_cv_mean"] == d2["new_cv_mean"]
     assert hist[1]["details"]["live_on_new_data"] == d2["live_on_new_data"]
 
@@ -232,7 +236,9 @@ def test_live_switch_never_mixes_versions(worker_service, kit):
     assert {v for v, _ in seen} == {1, 2}
     for v, values in seen:
         assert values == expected[v]
-    assert len(httpx.get(f"{base}/v1/models/pump-flip/history").json()["history"]) == 31
+    # v1 going live, v2's 'never' decision (kept v1 live) and the 30 flips
+    hist = httpx.get(f"{base}/v1/models/pump-flip/history").json()["history"]
+    assert len(hist) == 32 and [h["went_live"] for h in hist[:2]] == [True, False]
 
 
 def test_metrics_and_request_ids(worker_service, kit):

@@ -80,7 +80,7 @@ def test_overview_lists_models_live_version_and_jobs(open_service):
     assert r.text.count("state-succeeded") >= 2
     # The table that the script refreshes says where it polls.
     assert ("section", {"class": "panel", "id": "jobs", "data-source": "/v1/trainings", "data-limit": "15",
-                        "data-model": ""}) in page.tags
+                        "data-model": "", "data-deleted": "[]"}) in page.tags
 
 
 def test_model_page_shows_choice_warnings_figures_and_history(open_service):
@@ -91,7 +91,11 @@ def test_model_page_shows_choice_warnings_figures_and_history(open_service):
     chosen = manifest["chosen"]
     assert "live: v2" in r.text
     assert f"λ = {chosen['penalty']['strength']:.3g}" in r.text
-    assert repr(chosen["penalty"]["strength"]) in r.text  # the exact value, too
+    exact = chosen["penalty"]["strength"]
+    if float(f"{exact:.3g}") != exact:  # the exact value too, only when the rounded one differs from it
+        assert f"(exactly {exact!r})" in r.text
+    else:
+        assert "(exactly " not in r.text
     assert "energy_kwh (kWh)" in r.text and "flow_lps (L/s)" in r.text
     # v2's grid: 5 strengths from 100 to 10^4, bases linear and polynomial 2 and 3 (the fixture's spec).
     assert "λ from 100 to 1e+04 (5 values) × 3 basis settings" in r.text
@@ -131,7 +135,7 @@ def test_unknown_model_or_version_is_an_html_404(open_service):
     base, _ = open_service
     r = httpx.get(f"{base}/models/no-such-pump")
     assert r.status_code == 404 and r.headers["content-type"].startswith("text/html")
-    assert "no-such-pump" in r.text and "does not exist" in r.text
+    assert "no model named &#x27;no-such-pump&#x27; exists" in r.text and "closest" not in r.text
     r = httpx.get(f"{base}/models/pump-page?version=9")
     assert r.status_code == 404 and "has no version 9; it has 1, 2" in r.text
     r = httpx.get(f"{base}/models/pump-page?version=two")

@@ -75,7 +75,7 @@ def test_csv_answers_neutralize_formula_cells(rk, tmp_path):
             assert not warnings.startswith(FORMULA_STARTS), warnings
         # the warning of the hostile label starts with the column name '@zone': neutralized, still readable
         assert table[2][-1].startswith("'@zone=") and hostile in table[2][-1]
-        assert table[3][-1].startswith("flow_lps=-5 is below") and "@zone=+east was not seen" in table[3][-1]
+        assert table[3][-1].startswith("flow_lps=-5 is below") and "@zone='+east' was not seen" in table[3][-1]
 
         # The CLI's --out file, through the client.
         out = tmp_path / "answer.csv"

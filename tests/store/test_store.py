@@ -45,9 +45,9 @@ def test_load_predicts_what_was_published(store, kit):
 
 
 def test_not_found_messages(store, kit):
-    with pytest.raises(NotFound, match="model 'nope' does not exist"):
+    with pytest.raises(NotFound, match="no model named 'nope' exists"):
         store.load("nope", 1)
-    with pytest.raises(NotFound, match="does not exist"):
+    with pytest.raises(NotFound, match="no model named .nope. exists"):
         store.list_versions("nope")
     with pytest.raises(NotFound):
         store.history("nope")

@@ -40,6 +40,8 @@ class KeyRequest(BaseModel):
 class PruneRequest(BaseModel):
     model_config = _FORBID
     keep: int = Field(..., ge=0, description="How many of the newest versions to keep besides the live one.")
+    dry_run: bool = Field(False, description="Only say which versions would be deleted ('deleted' lists them); "
+                          "delete nothing.")
 
 
 def _body_doc(model: type[BaseModel]) -> dict[str, Any]:
@@ -95,10 +97,10 @@ async def prune(request: Request, name: str = Path(..., description="Model name.
     store = request.app.state.store
 
     def run() -> dict[str, Any]:
-        deleted = store.prune(name, body.keep)
-        remaining = [v["version"] for v in store.list_versions(name)]
-        return {"name": name, "keep": body.keep, "deleted": deleted, "live_version": store.live_version(name),
-                "remaining": remaining}
+        deleted = store.prune_plan(name, body.keep) if body.dry_run else store.prune(name, body.keep)
+        remaining = [v["version"] for v in store.list_versions(name) if v["version"] not in set(deleted)]
+        return {"name": name, "keep": body.keep, "dry_run": body.dry_run, "deleted": deleted,
+                "live_version": store.live_version(name), "remaining": remaining}
 
     out = await to_thread.run_sync(run)
     for v in out["deleted"]:

@@ -180,15 +180,31 @@ async def set_live(request: Request, name: str = NamePath) -> Response:
 
     result = await to_thread.run_sync(change)
     request.app.state.models.forget_live(name)
-    return json_response({"name": name, "live_version": body.version, "change": result})
+    already = not result.get("changed") and not result.get("superseded")
+    out = {"name": name, "live_version": body.version, "change": result, "already_live": already}
+    if already:
+        out["detail"] = f"version {body.version} of {name!r} is already live; nothing changed and no history entry was added."
+    return json_response(out)
 
 
 @router.get("/models/{name}/history", summary="Every change of the live version", **auth.READ)
 def get_history(request: Request, name: str = NamePath) -> Response:
     validate_name(name)
     store = _store(request)
-    entries = store.history(name)
+    entries = [decision_view(h) for h in store.history(name)]
     return json_response({"name": name, "history": entries})
+
+
+def decision_view(entry: dict[str, Any]) -> dict[str, Any]:
+    """A history entry with its decision spelled out: ``version`` (the version the entry is about),
+    ``went_live`` and ``decision`` ("went live" or "not made live"). Entries that kept the live version
+    (a retrain refused by if_better, ``promote: never``, a promotion superseded by a later change) carry
+    ``details.not_made_live``."""
+    details = entry.get("details") if isinstance(entry.get("details"), dict) else {}
+    not_live = details.get("not_made_live")
+    went = not_live is None
+    return {**entry, "version": entry.get("to_version") if went else not_live, "went_live": went,
+            "decision": "went live" if went else "not made live"}
 
 
 @router.delete("/models/{name}/versions/{version}", summary="Delete a version that is not live", **auth.ADMIN)

@@ -88,9 +88,22 @@ def overview(request: Request) -> Response:
                 except NotFound:  # deleted between the two reads; show the model without it
                     live_rows[m["name"]] = None
         jobs = _jobs(store, None)
-        return pages.overview(models, live_rows, jobs, signed_in=signed_in)
+        return pages.overview(models, live_rows, jobs, signed_in=signed_in, deleted=_deleted_versions(store, jobs))
 
     return _guarded(request, render)
+
+
+def _deleted_versions(store, jobs: list[dict], shown: int = 15) -> set[tuple[str, int]]:
+    """(model, version) of the shown jobs whose version has been deleted since (pruned or deleted)."""
+    out: set[tuple[str, int]] = set()
+    done = [j for j in jobs[:shown] if j.get("state") == "succeeded" and j.get("version") is not None]
+    for name in {str(j.get("model")) for j in done}:
+        try:
+            alive = {v["version"] for v in store.list_versions(name)}
+        except NotFound:
+            alive = set()
+        out |= {(name, j["version"]) for j in done if str(j.get("model")) == name and j["version"] not in alive}
+    return out
 
 
 def _jobs(store, name: str | None) -> list[dict]:
@@ -182,8 +195,12 @@ async def login(request: Request) -> Response:
         return _html(pages.login_page(next_url, message="Paste an API key into the field."), 400)
     try:
         await to_thread.run_sync(gate.check, f"Bearer {key}", READ_SCOPES)
-    except (Unauthorized, Forbidden) as exc:
-        return _html(pages.login_page(next_url, message=str(exc)), 401 if isinstance(exc, Unauthorized) else 403)
+    except Unauthorized:
+        return _html(pages.login_page(next_url, message=(
+            "This key is unknown or revoked on this server. Paste an active key; an operator lists them with "
+            "'tikhon keys list' and makes one with 'tikhon keys create --scope predict'.")), 401)
+    except Forbidden as exc:
+        return _html(pages.login_page(next_url, message=str(exc)), 403)
     response = RedirectResponse(next_url, status_code=303, headers=_HEADERS)
     response.set_cookie(auth.COOKIE, key, httponly=True, samesite="strict", path="/",
                         secure=request.url.scheme == "https")

@@ -16,7 +16,8 @@ from typing import Any, Callable
 from fastapi import APIRouter, Path, Query, Request
 from fastapi.responses import Response
 
-from service.api import auth, plots
+from service.api import auth, figure_data, plots
+from service.api.render import json_response
 from service.errors import InvalidData, NotFound
 from service.store.names import validate_name
 from service.store.schema import VERSION_MAX
@@ -29,7 +30,8 @@ FormatQuery = Query("svg", description="Image format: 'svg' (default, text kept 
                     json_schema_extra={"enum": list(plots.FORMATS)})
 
 _IMAGE_RESPONSES = {
-    200: {"description": "The figure.", "content": {"image/svg+xml": {}, "image/png": {}}},
+    200: {"description": "The figure; with 'Accept: application/json' (and no 'format' parameter) the plotted "
+          "series as JSON instead.", "content": {"image/svg+xml": {}, "image/png": {}, "application/json": {}}},
     304: {"description": "Not modified (the ETag in If-None-Match still matches)."},
 }
 
@@ -119,8 +121,38 @@ def _arrays(store, name: str, version: int, manifest: dict[str, Any]) -> dict[st
     return arrays
 
 
+def wants_json(request: Request) -> bool:
+    """The caller asked for the plotted numbers (``Accept: application/json``) and named no image format."""
+    return "application/json" in request.headers.get("accept", "") and "format" not in request.query_params
+
+
+def _version_data(request: Request, name: str, version: int, kind: str) -> Response:
+    store = request.app.state.store
+    store.get_version(name, version)  # NotFound for an unknown or deleted version
+    manifest = store.get_manifest(name, version)
+    body = plots.engine_body(manifest)
+    if not body.get("cv_table"):
+        raise NotFound(f"version {version} of model {name!r} has no CV table (it was not published by a training "
+                       "job); the figures and their numbers exist only for trained versions.")
+    if kind == "cv":
+        out = figure_data.cv_data(name, version, body)
+    elif kind == "path":
+        arrays = _arrays(store, name, version, manifest)
+        out = figure_data.path_data(name, version, body, arrays["path_strengths"], arrays["path_coefficients"],
+                                    arrays.get("path_df"))
+    else:
+        arrays = _arrays(store, name, version, manifest)
+        if "oof_predicted" not in arrays:
+            raise NotFound(f"version {version} of model {name!r} stores no out-of-fold predictions; retrain it to "
+                           "get the residuals.")
+        out = figure_data.residuals_data(name, version, body, arrays["oof_predicted"], arrays["oof_observed"])
+    return json_response(out, headers={"Cache-Control": "private, max-age=86400", "Vary": "Accept"})
+
+
 def _version_plot(request: Request, name: str, version: int, kind: str, fmt: str) -> Response:
     validate_name(name)
+    if wants_json(request):
+        return _version_data(request, name, version, kind)
     fmt = check_format(fmt)
     store = request.app.state.store
     row = store.get_version(name, version)  # NotFound for an unknown or deleted version
@@ -186,12 +218,15 @@ def plot_history(request: Request, name: str = NamePath, format: str = FormatQue
     """Every version over time: the CV error of its chosen point (±1 SE) and its chosen strength and basis;
     the live version ringed, versions that were ever live filled."""
     validate_name(name)
-    fmt = check_format(format)
+    fmt = check_format(format) if not wants_json(request) else "svg"
     store = request.app.state.store
     versions = store.list_versions(name)  # NotFound for an unknown model
     history = store.history(name)
     live = next((v["version"] for v in versions if v.get("live")), None)
     promoted = sorted({h["to_version"] for h in history if h.get("to_version") is not None})
+    if wants_json(request):
+        return json_response(figure_data.history_data(name, versions, live, promoted),
+                             headers={"Cache-Control": "private, no-cache", "Vary": "Accept"})
     state = repr(([(v["version"], v.get("checksum")) for v in versions], live, promoted)).encode()
     digest = hashlib.sha256(state).hexdigest()[:24]
 

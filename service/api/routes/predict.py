@@ -19,7 +19,7 @@ from fastapi import APIRouter, Request
 from fastapi.responses import Response
 
 from service.csvcells import number_cell, text_cell
-from service.api import auth, tables
+from service.api import auth, levels, tables
 from service.api.models import Served
 from service.api.render import media_type, parse_json
 from service.api.problems import UnsupportedMediaType
@@ -64,9 +64,14 @@ _PARAMS = {
     "interval": {"name": "interval", "in": "query", "required": False,
                  "schema": {"type": "number", "exclusiveMinimum": 0, "exclusiveMaximum": 1},
                  "description": "Interval level for CSV bodies (JSON bodies use the 'interval' field)."},
+    "unseen_levels": {"name": "unseen_levels", "in": "query", "required": False,
+                      "schema": {"type": "string", "enum": list(levels.MODES), "default": "warn"},
+                      "description": "For CSV bodies: 'warn' answers a category level not seen in training with a "
+                      "warning, 'refuse' answers 422 (JSON bodies use the 'unseen_levels' field)."},
 }
-_LIVE_DOC = {**_DOC, "parameters": [_PARAMS["name"], _PARAMS["interval"]]}
-_PINNED_DOC = {**_DOC, "parameters": [_PARAMS["name"], _PARAMS["version"], _PARAMS["interval"]]}
+_LIVE_DOC = {**_DOC, "parameters": [_PARAMS["name"], _PARAMS["interval"], _PARAMS["unseen_levels"]]}
+_PINNED_DOC = {**_DOC, "parameters": [_PARAMS["name"], _PARAMS["version"], _PARAMS["interval"],
+                                     _PARAMS["unseen_levels"]]}
 
 
 def _query_interval(request: Request) -> float | None:
@@ -129,17 +134,17 @@ def _check_interval(value: Any, field: str) -> float | None:
 
 
 def _parse_json_body(raw: bytes, limit: int, interval_q: float | None, max_label: int | None = tables.MAX_LABEL_CHARS
-                     ) -> tuple[dict, float | None, int]:
+                     ) -> tuple[dict, float | None, int, str]:
     body = parse_json(raw)
     if not isinstance(body, dict):
         raise InvalidData(
             f"the body must be a JSON object {{\"rows\": [...], \"interval\": 0.9}}, got a {type(body).__name__}.",
             errors=[{"field": "body", "message": "expected an object"}],
         )
-    extra = sorted(set(body) - {"rows", "interval"})
+    extra = sorted(set(body) - {"rows", "interval", "unseen_levels"})
     if extra:
         raise InvalidData(
-            f"unknown field(s) {extra} in the body; only 'rows' and 'interval' are read.",
+            f"unknown field(s) {extra} in the body; only 'rows', 'interval' and 'unseen_levels' are read.",
             errors=[{"field": k, "message": "unknown field"} for k in extra],
         )
     if "rows" not in body:
@@ -149,7 +154,7 @@ def _parse_json_body(raw: bytes, limit: int, interval_q: float | None, max_label
     if isinstance(rows, list):
         tables.check_row_limit(len(rows), limit, "max_rows_per_request", "rows")
     cols = tables.from_rows(rows, where="rows", max_label=max_label)
-    return cols, interval, len(rows)
+    return cols, interval, len(rows), levels.mode(body.get("unseen_levels"), "unseen_levels")
 
 
 def _compute(served: Served, cols: dict, interval: float | None, memory_bytes: int) -> dict[str, Any]:
@@ -170,15 +175,18 @@ async def _predict(request: Request, served: Served, interval_q: float | None) -
         n = len(next(iter(cols.values())))
         tables.check_row_limit(n, limit, "max_rows_per_request", "the CSV body")
         interval = interval_q
+        unseen = levels.mode(request.query_params.get("unseen_levels"), "query.unseen_levels")
     elif mt in ("", "application/json") or mt.endswith("+json"):
         if len(raw) > 65536:
-            cols, interval, n = await to_thread.run_sync(_parse_json_body, raw, limit, interval_q, max_label)
+            cols, interval, n, unseen = await to_thread.run_sync(_parse_json_body, raw, limit, interval_q, max_label)
         else:
-            cols, interval, n = _parse_json_body(raw, limit, interval_q, max_label)
+            cols, interval, n, unseen = _parse_json_body(raw, limit, interval_q, max_label)
     else:
         raise UnsupportedMediaType(
             f"Content-Type {mt!r} is not read here; send application/json ({{\"rows\": [...]}}) or text/csv."
         )
+    if unseen == "refuse" and served.model.categories.names:
+        levels.refuse_unseen(served.model, cols)
     if n <= INLINE_ROWS:
         detail = _compute(served, cols, interval, settings.predict_memory_bytes)
     else:

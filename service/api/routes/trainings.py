@@ -105,7 +105,7 @@ async def _read_submission(request: Request, incoming: FsPath
     mt = media_type(request)
     if mt == "multipart/form-data":
         try:
-            form = await request.form(max_files=1, max_fields=8)
+            form = await request.form(max_files=2, max_fields=8)  # the table, and the spec sent as a file
         except Exception as exc:  # python-multipart raises several types for broken bodies
             raise MalformedBody(f"the multipart body could not be read ({exc}); send fields 'file' and optionally "
                                 "'spec', 'promote', 'min_improvement'.") from None
@@ -118,8 +118,10 @@ async def _read_submission(request: Request, incoming: FsPath
             raise InvalidData("the multipart body needs a 'file' part holding a CSV or Parquet table.",
                               errors=[{"field": "file", "message": "missing"}])
         fields: dict[str, Any] = {"data": {"csv": ""}}
-        if form.get("spec") is not None:
-            fields["spec"] = parse_json(str(form["spec"]).encode(), "multipart field 'spec'")
+        if form.get("spec") is not None:  # as text (curl -F 'spec=<spec.json') or as a file (-F spec=@spec.json)
+            spec_part = form["spec"]
+            raw_spec = spec_part.encode() if isinstance(spec_part, str) else await spec_part.read()
+            fields["spec"] = parse_json(raw_spec, "multipart field 'spec'")
         if form.get("promote") is not None:
             fields["promote"] = str(form["promote"])
         if form.get("min_improvement") is not None:

@@ -36,13 +36,18 @@
     return td;
   }
 
-  function outcomeCell(job) {
+  function outcomeCell(job, deleted) {
     var td = el("td");
     if (job.state === "succeeded") {
       var d = job.decision || {};
-      var text = "version " + job.version;
+      td.appendChild(document.createTextNode("version " + job.version));
+      if (deleted && deleted[job.model + "@" + job.version]) {
+        td.appendChild(document.createTextNode(" "));
+        td.appendChild(el("span", { "class": "muted" }, "(since deleted)"));
+      }
+      var text = "";
       if (d.went_live === true) text += " · went live";
-      else if (d.went_live === false) text += " · not promoted";
+      else if (d.went_live === false) text += " · not made live";
       td.appendChild(document.createTextNode(text));
       if (d.reason) td.appendChild(el("div", { "class": "reason" }, d.reason));
     } else if (job.state === "failed") {
@@ -54,7 +59,7 @@
     return td;
   }
 
-  function row(job, showModel) {
+  function row(job, showModel, deleted) {
     var tr = el("tr", { "data-job": job.id, "data-state": job.state });
     tr.appendChild(el("td", { "class": "mono" }, String(job.id).slice(0, 8)));
     if (showModel) {
@@ -68,7 +73,7 @@
     tr.appendChild(progressCell(job));
     var c = el("td"); c.appendChild(when(job.created_at)); tr.appendChild(c);
     var f = el("td"); f.appendChild(when(job.finished_at)); tr.appendChild(f);
-    tr.appendChild(outcomeCell(job));
+    tr.appendChild(outcomeCell(job, deleted));
     return tr;
   }
 
@@ -84,10 +89,18 @@
       if (!FINAL[tr.getAttribute("data-state")]) watching[tr.getAttribute("data-job")] = true;
     });
     var failures = 0;
+    var deleted = {};  // "model@version" of versions deleted since their job (rendered by the server)
+    try {
+      JSON.parse(section.getAttribute("data-deleted") || "[]").forEach(function (k) { deleted[k] = true; });
+    } catch (e) { deleted = {}; }
+    // While a job runs the table refreshes every second; when none runs the checks back off (3 s, 6 s,
+    // 12 s ... up to a minute), and a new job brings the pace back to one second.
+    var IDLE_FIRST = 3000, IDLE_MAX = 60000;
+    var idleDelay = IDLE_FIRST;
 
     function render(jobs) {
       var frag = document.createDocumentFragment();
-      jobs.slice(0, limit).forEach(function (job) { frag.appendChild(row(job, !model)); });
+      jobs.slice(0, limit).forEach(function (job) { frag.appendChild(row(job, !model, deleted)); });
       tbody.replaceChildren(frag);
       var empty = section.querySelector("[data-empty]");
       if (empty) empty.hidden = jobs.length > 0;
@@ -120,8 +133,17 @@
           render(jobs);
           var active = jobs.some(function (j) { return !FINAL[j.state]; });
           section.setAttribute("data-active", active ? "yes" : "no");
-          if (status) status.textContent = active ? "Updating every second." : "No job is running; checking every 3 s.";
-          setTimeout(poll, active ? 1000 : 3000);
+          var delay = 1000;
+          if (active) {
+            idleDelay = IDLE_FIRST;
+          } else {
+            delay = idleDelay;
+            idleDelay = Math.min(IDLE_MAX, idleDelay * 2);
+          }
+          section.setAttribute("data-next-check-ms", String(delay));
+          if (status) status.textContent = active ? "Updating every second." :
+            "No job is running; next check in " + Math.round(delay / 1000) + " s.";
+          setTimeout(poll, delay);
         })
         .catch(function (err) {
           failures += 1;
