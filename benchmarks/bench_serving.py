@@ -27,7 +27,9 @@ the project's default (httptools and uvloop); ``--code PATH`` runs both servers 
 too, for benchmarks of other server options).
 
 Last line: ``predict_rps_ratio=<ours/bare> p99_ms=<ours> bare_p99_ms=<bare> batch_rows_per_s=<plain>
-batch_interval_rows_per_s=<with 0.9 intervals>``.
+batch_interval_rows_per_s=<with 0.9 intervals>``; with ``--workers N`` (N >= 2) it also measures single-row
+predict through ``tikhon serve --workers 1`` and ``--workers N`` in the same run (``bench_workers``) and
+adds ``workers_scaling=<rps with N / rps with 1>``.
 """
 
 import argparse
@@ -233,6 +235,8 @@ def main() -> None:
     p.add_argument("--stack", choices=sorted(STACKS), default="default",
                    help="server stack of both servers: default (the project's settings: httptools and uvloop when "
                    "installed) or h11 (h11 parser, asyncio loop) [default]")
+    p.add_argument("--workers", type=int, default=1,
+                   help="also measure 'tikhon serve --workers 1' against '--workers N' (N >= 2) [1: skip]")
     a = p.parse_args()
     if a.serve_bare:
         return serve_bare(a.serve_bare)
@@ -300,10 +304,20 @@ def main() -> None:
             print(f"load average after: {os.getloadavg()[0]:.2f}")
             print(f"requests per server CPU-second: ours {ours.per_cpu_s:.0f}, bare {bare.per_cpu_s:.0f}, "
                   f"ratio {ours.per_cpu_s / bare.per_cpu_s:.3f} (the best rounds; robust to a shared machine)")
-            print(f"predict_rps_ratio={ours.rps / bare.rps:.3f} p99_ms={ours.p99_ms:.2f} bare_p99_ms={bare.p99_ms:.2f} "
-                  f"batch_rows_per_s={batch_rps['plain']:.0f} batch_interval_rows_per_s={batch_rps['interval 0.9']:.0f}")
+            last = (f"predict_rps_ratio={ours.rps / bare.rps:.3f} p99_ms={ours.p99_ms:.2f} "
+                    f"bare_p99_ms={bare.p99_ms:.2f} batch_rows_per_s={batch_rps['plain']:.0f} "
+                    f"batch_interval_rows_per_s={batch_rps['interval 0.9']:.0f}")
         finally:
             stop(procs)
+    if a.workers >= 2:  # after the servers above have stopped, so the processes do not share the cores with them
+        from bench_workers import measure_workers_scaling
+
+        out = measure_workers_scaling(counts=(1, a.workers), duration_s=a.duration, connections=a.connections,
+                                      threads=a.threads, rounds=a.rounds)
+        print(f"workers: 1 process {out['best'][1]['rps']:.0f} req/s, {a.workers} processes "
+              f"{out['best'][a.workers]['rps']:.0f} req/s (wrk competes for the same cores)")
+        last += f" workers_scaling={out['scaling']:.3f}"
+    print(last)
 
 
 if __name__ == "__main__":
