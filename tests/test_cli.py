@@ -44,16 +44,17 @@ def cli(url: str, *args: str, key: str | None = None, env: dict | None = None) -
                           timeout=300)
 
 
-def cli_tty(url: str, *args: str) -> tuple[int, str]:
-    """Run the CLI with stdout and stderr on a pseudo-terminal; return (exit code, everything it wrote)."""
+def cli_tty(url: str, *args: str, answer: str | None = None, columns: int = 120) -> tuple[int, str]:
+    """Run the CLI with stdin, stdout and stderr on a pseudo-terminal; return (exit code, everything it
+    wrote). With ``answer``, type it (and Enter) once the CLI asks a ``[y/N]`` question."""
     master, slave = os.openpty()
-    env = dict(os.environ, TIKHON_URL=url, COLUMNS="120", LINES="40", TERM="xterm-256color")
+    env = dict(os.environ, TIKHON_URL=url, COLUMNS=str(columns), LINES="40", TERM="xterm-256color")
     for var in ("NO_COLOR", "TIKHON_KEY", "TTY_COMPATIBLE", "TTY_INTERACTIVE"):
         env.pop(var, None)
     proc = subprocess.Popen([sys.executable, "-m", "service.cli", *args], stdin=slave, stdout=slave, stderr=slave,
                             env=env, close_fds=True)
     os.close(slave)
-    chunks = []
+    chunks, sent = [], answer is None
     while True:
         ready, _, _ = select.select([master], [], [], 300)
         if not ready:
@@ -66,6 +67,9 @@ def cli_tty(url: str, *args: str) -> tuple[int, str]:
         if not chunk:
             break
         chunks.append(chunk)
+        if not sent and b"[y/N]" in b"".join(chunks):
+            os.write(master, answer.encode() + b"\r")
+            sent = True
     os.close(master)
     code = proc.wait(timeout=60)
     return code, ANSI.sub("", b"".join(chunks).decode("utf-8", "replace"))

@@ -5,9 +5,7 @@ and ``promote`` to the version that is already live."""
 
 from __future__ import annotations
 
-import json
 import os
-import select
 import subprocess
 import sys
 
@@ -15,37 +13,12 @@ import numpy as np
 import pytest
 
 from service.client import Client
-from test_cli import ANSI, cli, cli_tty, write_table  # tests/ is on pytest's pythonpath
+from test_cli import cli, cli_tty, write_table  # tests/ is on pytest's pythonpath
 
 
 def cli_answering(url: str, answer: str, *args: str) -> tuple[int, str]:
     """Run the CLI on a pseudo-terminal (stdin too), type ``answer`` once it asks; return (code, output)."""
-    master, slave = os.openpty()
-    env = dict(os.environ, TIKHON_URL=url, COLUMNS="160", LINES="40", TERM="xterm-256color")
-    for var in ("NO_COLOR", "TIKHON_KEY"):
-        env.pop(var, None)
-    proc = subprocess.Popen([sys.executable, "-m", "service.cli", *args], stdin=slave, stdout=slave, stderr=slave,
-                            env=env, close_fds=True)
-    os.close(slave)
-    chunks, sent = [], False
-    while True:
-        ready, _, _ = select.select([master], [], [], 300)
-        if not ready:
-            proc.kill()
-            break
-        try:
-            chunk = os.read(master, 65536)
-        except OSError:
-            break
-        if not chunk:
-            break
-        chunks.append(chunk)
-        if not sent and b"[y/N]" in b"".join(chunks):
-            os.write(master, answer.encode() + b"\r")
-            sent = True
-    os.close(master)
-    code = proc.wait(timeout=60)
-    return code, ANSI.sub("", b"".join(chunks).decode("utf-8", "replace"))
+    return cli_tty(url, *args, answer=answer, columns=160)
 
 
 @pytest.fixture(scope="module")
@@ -73,7 +46,7 @@ def test_a_retrain_not_made_live_exits_3_and_every_decision_is_listed(server, tm
         hist = tk.history("pump-s")
     assert [(h["version"], h["decision"], h["from_version"], h["to_version"]) for h in hist] == [
         (1, "went live", None, 1), (2, "not made live", 1, 1), (3, "not made live", 1, 1)]
-    assert hist[1]["reason"].startswith(f"training job ") and "new rmse" in hist[1]["reason"]
+    assert hist[1]["reason"].startswith("training job ") and "new rmse" in hist[1]["reason"]
     assert hist[2]["reason"].endswith("promote is 'never': the version was only published")
 
     r = cli(url, "history", "pump-s")

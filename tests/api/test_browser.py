@@ -17,28 +17,11 @@ import os
 import shutil
 
 import httpx
-import pytest
 
 from service.demo import DEMO_SPEC, pump_stations
 
-CHROMIUM = shutil.which("chromium") or "/usr/bin/chromium"
-ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
-        "--disable-background-networking", "--disable-component-update", "--disable-sync"]
-WAIT_MS = 180_000  # readiness waits (they fail only if the page never gets there), not timed assertions
-
-
-def _browser_or_skip():
-    missing = None
-    if not os.path.exists(CHROMIUM):
-        missing = f"chromium is not installed at {CHROMIUM} (apt-get install -y chromium)"
-    try:
-        from playwright.sync_api import sync_playwright  # noqa: F401
-    except ImportError:
-        missing = missing or "the playwright Python package is not installed (pip install -e '.[test]')"
-    if missing:
-        if os.environ.get("TIKHON_CI_FULL"):
-            pytest.fail(f"the browser test must run under .ci/run but {missing}")
-        pytest.skip(missing)
+from headless import ARGS, CHROMIUM, WAIT_MS  # tests/headless.py
+from headless import browser_or_skip as _browser_or_skip
 
 
 def _demo_request(n: int, seed: int, *, full: bool) -> dict:

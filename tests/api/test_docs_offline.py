@@ -4,32 +4,12 @@ file from this server), JSON logs carry no terminal colour codes."""
 from __future__ import annotations
 
 import logging
-import os
-import shutil
 from urllib.parse import urlsplit
 
 import httpx
-import pytest
 
-# The browser set-up of tests/api/test_browser.py (Debian's chromium driven by Playwright's Python package).
-CHROMIUM = shutil.which("chromium") or "/usr/bin/chromium"
-ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
-        "--disable-background-networking", "--disable-component-update", "--disable-sync"]
-WAIT_MS = 180_000  # readiness waits, not timed assertions
-
-
-def _browser_or_skip():
-    missing = None
-    if not os.path.exists(CHROMIUM):
-        missing = f"chromium is not installed at {CHROMIUM} (apt-get install -y chromium)"
-    try:
-        from playwright.sync_api import sync_playwright  # noqa: F401
-    except ImportError:
-        missing = missing or "the playwright Python package is not installed (pip install -e '.[test]')"
-    if missing:
-        if os.environ.get("TIKHON_CI_FULL"):
-            pytest.fail(f"the browser test must run under .ci/run but {missing}")
-        pytest.skip(missing)
+from headless import ARGS, CHROMIUM, WAIT_MS  # tests/headless.py
+from headless import browser_or_skip as _browser_or_skip
 
 
 def test_docs_page_and_its_assets_come_from_this_server(tmp_path, kit):
