@@ -511,10 +511,12 @@ def _print_warnings(meta: dict) -> None:
 
 
 def _pm_text(chosen: dict, splits: Any) -> str:
-    """``mean ± SE (1 SE over K folds)``: the one meaning of ± everywhere (pages, figures, CLI) is one
-    standard error of the mean over the CV splits, std/√splits."""
+    """``mean ± SE (1 SE over K folds)``: the one meaning of ± everywhere (pages, figures, CLI) is the
+    one-standard-error rule's standard error over the CV splits: the engine's ``se`` (sample standard
+    deviation over √splits), or std/√splits for versions trained before ``se`` was stored."""
     mean = chosen.get("mean")
     std = chosen.get("std")
+    se = chosen.get("se")
     if not isinstance(mean, (int, float)):
         return "-"
     text = f"{mean:.6g}"
@@ -522,7 +524,9 @@ def _pm_text(chosen: dict, splits: Any) -> str:
         k = int(splits)
     except (TypeError, ValueError):
         return text
-    if isinstance(std, (int, float)) and k >= 1:
+    if isinstance(se, (int, float)) and k >= 1:
+        text += f" ± {se:.3g} (1 SE over {k} folds)"
+    elif isinstance(std, (int, float)) and k >= 1:
         text += f" ± {std / math.sqrt(k):.3g} (1 SE over {k} folds)"
     return text
 

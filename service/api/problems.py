@@ -104,6 +104,11 @@ _FOR_PEOPLE: dict[str, str] = {
     "limit-exceeded": "The request would go past a limit set on the server (rows per request, body size, grid "
                       "size, training time). The detail names the setting and its value: make the request smaller, "
                       "or ask the operator to raise that setting.",
+    "busy": "The server's training queue is full, or the key has as many jobs queued as it may. Nothing was "
+            "queued; retry after the seconds in Retry-After, or wait for queued jobs to finish.",
+    "foreign-store-folder": "The store folder (TIKHON_STORE) holds files that Tikhon did not write and no store "
+                            "marker, so the service refused to start there and touched nothing. Point TIKHON_STORE "
+                            "at an empty folder or at an existing Tikhon store.",
     "invalid-name": "The model name is not allowed. Names are 1-63 characters of lower-case letters, digits, "
                     "'_', '.' and '-', starting with a letter or digit.",
     "not-found": "The model, version, job or key does not exist, or was deleted. For a mistyped model name the "
@@ -120,8 +125,8 @@ _FOR_PEOPLE: dict[str, str] = {
     "cancelled": "The training job was cancelled before it finished; no version was published by it.",
     "unauthorized": "No API key was sent, or the key is unknown or revoked. Send a key with the scope the route "
                     "needs (the command-line client takes --key or TIKHON_KEY).",
-    "forbidden": "The API key is valid but lacks the scope this route needs (predict, train or admin). Use a key "
-                 "with that scope.",
+    "forbidden": "The API key is valid but lacks the scope this route needs (predict, train, admin or metrics). "
+                 "Use a key with that scope.",
 }
 
 # Status of the problems the store records on jobs by itself (it knows no HTTP): the job failed on the server.

@@ -4,6 +4,7 @@ and a CORS preflight from an unlisted origin answers a problem that names TIKHON
 from __future__ import annotations
 
 import math
+import statistics
 
 import httpx
 import numpy as np
@@ -32,7 +33,7 @@ def test_cv_figure_json_is_the_cv_table_grouped_by_setting(dash):
     r = httpx.get(f"{base}/v1/models/pump-dash/versions/1/plots/cv", headers=J)
     assert r.status_code == 200 and r.headers["content-type"] == "application/json"
     data = r.json()
-    table = httpx.get(f"{base}/v1/models/pump-dash/versions/1/cv").json()["table"]
+    table = httpx.get(f"{base}/v1/models/pump-dash/versions/1/cv", params={"view": "all"}).json()["table"]
     assert data["figure"] == "cv" and len(data["series"]) == 3  # linear, polynomial 2 and 3 (the spec's grid)
     assert sum(len(s["strengths"]) for s in data["series"]) == len(table)
     for s in data["series"]:
@@ -40,8 +41,10 @@ def test_cv_figure_json_is_the_cv_table_grouped_by_setting(dash):
         for lam, mean, se in zip(s["strengths"], s["mean"], s["se"]):
             row = next(t for t in table if t["basis"] == s["basis"] and t["strength"] == lam)
             assert mean == row["mean"]
-            # one standard error of the mean over the 5 folds, std/sqrt(5): common practice
-            assert math.isclose(se, row["std"] / math.sqrt(5), rel_tol=1e-12)
+            # one standard error over the 5 folds, the sample standard deviation (ddof=1) over sqrt(5):
+            # Hastie, Tibshirani & Friedman, The Elements of Statistical Learning, 2nd ed., section 7.10
+            assert math.isclose(se, statistics.stdev(row["folds"]) / math.sqrt(5), rel_tol=1e-9)
+            assert math.isclose(se, row["se"], rel_tol=1e-12)
     assert data["chosen"]["penalty"]["strength"] == result.best["penalty"]["strength"]
     # An explicit image format still gets the image.
     img = httpx.get(f"{base}/v1/models/pump-dash/versions/1/plots/cv?format=svg", headers=J, timeout=120)

@@ -4,7 +4,9 @@ page's own terms, and history-figure ticks that all read the same way."""
 
 from __future__ import annotations
 
+import math
 import re
+import statistics
 
 import httpx
 
@@ -41,7 +43,13 @@ def test_model_page_history_decisions_deleted_versions_and_labels(tmp_path, kit)
         assert "pump-hist@2" in overview  # data-deleted, for the script that redraws the table
         # ± is one standard error over the folds, and the label says so.
         chosen = store.get_manifest("pump-hist", 1)["model"]["chosen"]
-        se = chosen["std"] / 5 ** 0.5  # standard error of a mean, s/sqrt(n): common practice
+        # the one-standard-error rule's standard error: the sample standard deviation of the 5 split errors
+        # over sqrt(5) (Hastie, Tibshirani & Friedman, The Elements of Statistical Learning, 2nd ed., 7.10)
+        table = httpx.get(f"{base}/v1/models/pump-hist/versions/1/cv", params={"view": "all"}).json()["table"]
+        folds = next(r["folds"] for r in table if r["basis"] == chosen["basis"]
+                     and r["strength"] == chosen["penalty"]["strength"])
+        se = statistics.stdev(folds) / 5 ** 0.5
+        assert math.isclose(se, chosen["se"], rel_tol=1e-9)
         assert f"± {se:.2g} (1 SE over 5 folds)" in page
         # The strengths of this grid print exactly at three digits: no "(exactly ...)" beside them.
         assert "(exactly " not in page
@@ -50,7 +58,7 @@ def test_model_page_history_decisions_deleted_versions_and_labels(tmp_path, kit)
 def test_sign_in_with_a_wrong_key_speaks_of_keys_not_headers(tmp_path, kit):
     with kit.service(tmp_path / "svc", worker=False) as (base, store, _):
         store.keys.create(["predict"], "viewer")
-        r = httpx.post(f"{base}/login", data={"key": "tikhon_wrong", "next": "/"})
+        r = httpx.post(f"{base}/login", data={"key": "tikhon_wrong", "next": "/"}, headers={"Origin": base})
         assert r.status_code == 401
         assert "Authorization" not in r.text
         assert "This key is unknown or revoked on this server" in r.text
