@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import uuid
 from pathlib import Path as FsPath
 from typing import Any
@@ -14,7 +15,7 @@ from service.api import auth, intake, problems
 from service.api.problems import MalformedBody, UnsupportedMediaType
 from service.api.render import json_response, media_type, parse_json
 from service.api.schemas import TrainingRequest, parse_training_request, schema_ref
-from service.errors import InvalidData
+from service.errors import InvalidData, StorageFailure
 from service.store.jobs import SUBMITTER
 from service.store.names import validate_name
 
@@ -98,6 +99,12 @@ def _save_upload(source, target: FsPath) -> None:
             out.write(chunk)
 
 
+def _discard(path: FsPath) -> None:
+    """Remove a partly written upload; a clean-up that fails (a read-only store) never hides the cause."""
+    with contextlib.suppress(OSError):
+        path.unlink(missing_ok=True)
+
+
 async def _read_submission(request: Request, incoming: FsPath
                            ) -> tuple[TrainingRequest | None, dict[str, Any], tuple[FsPath, str | None] | None]:
     """(parsed request, its data member, the uploaded file saved under ``incoming`` or None). Large
@@ -134,8 +141,14 @@ async def _read_submission(request: Request, incoming: FsPath
         target = incoming / f"{uuid.uuid4().hex}-upload"
         try:
             await to_thread.run_sync(_save_upload, upload.file, target)
+        except OSError as exc:  # a full or read-only store: a storage problem (507), never a 500
+            _discard(target)
+            raise StorageFailure(
+                f"the uploaded file could not be staged in the store folder (TIKHON_STORE) "
+                f"({exc.strerror or type(exc).__name__}); nothing was stored and no job was created. Check that "
+                "the store folder is writable and has free space, then submit again.") from None
         except BaseException:
-            target.unlink(missing_ok=True)
+            _discard(target)
             raise
         finally:
             await form.close()
