@@ -216,7 +216,8 @@ def from_csv(payload: bytes | str | Path, *, where: str = "csv", max_label: int 
     """CSV text, bytes, or a file (read by pyarrow from disk, never held in memory whole)."""
     if isinstance(payload, Path):
         with open(payload, "rb") as fh:
-            empty = not fh.read(1 << 16).strip()
+            data = fh.read(1 << 16)  # the head: enough to tell an empty file and to read the header line
+        empty = not data.strip()
         source: Any = None
     else:
         data = payload.encode() if isinstance(payload, str) else payload
