@@ -11,6 +11,7 @@ import os
 import re
 import select
 import socket
+import statistics
 import subprocess
 import sys
 
@@ -154,7 +155,13 @@ def test_train_wait_shows_progress_then_the_chosen_point(server, tmp_path):
     degree = chosen["basis"].get("degree")
     assert (f"polynomial, degree {degree}" if degree else "linear") in summary
     assert f"λ = {chosen['penalty']['strength']:.4g}" in summary
-    se = chosen["std"] / meta["cv_summary"]["splits"] ** 0.5  # one standard error, std/sqrt(folds): common practice
+    # the one-standard-error rule's standard error: sample standard deviation of the split errors over
+    # sqrt(splits) (Hastie, Tibshirani & Friedman, The Elements of Statistical Learning, 2nd ed., 7.10)
+    with Client(url) as tk:
+        table = tk.cv("pump-cli", 1)["table"]
+    folds = next(r["folds"] for r in table if r["basis"] == chosen["basis"]
+                 and r["strength"] == chosen["penalty"]["strength"])
+    se = statistics.stdev(folds) / meta["cv_summary"]["splits"] ** 0.5
     assert f"{chosen['mean']:.6g} ± {se:.3g} (1 SE over {meta['cv_summary']['splits']} folds)" in summary
     assert "O = chosen" in summary and "(λ, log)" in summary
 
