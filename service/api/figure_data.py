@@ -16,7 +16,8 @@ import numpy as np
 
 from service.api import plots
 
-SE_NOTE = "se: one standard error of the mean over the CV splits (std / sqrt(splits))"
+SE_NOTE = ("se: the one-standard-error rule's standard error over the CV splits (sample standard deviation "
+           "of the split errors / sqrt(splits))")
 
 
 def _num(values: Any) -> list[float | None]:
@@ -74,10 +75,10 @@ def history_data(name: str, versions: Sequence[dict[str, Any]], live: int | None
         summary = v.get("summary") or {}
         chosen = summary.get("chosen") or {}
         splits = (summary.get("cv_summary") or {}).get("splits") or 1
-        mean, std = chosen.get("mean"), chosen.get("std")
+        mean = chosen.get("mean")
         points.append({
             "version": int(v["version"]), "created_at": v.get("created_at"), "metric": chosen.get("metric"),
-            "mean": mean, "se": (float(std) / math.sqrt(max(int(splits), 1))) if std is not None else None,
+            "mean": mean, "se": plots.chosen_se(chosen, splits),
             "splits": splits, "strength": (chosen.get("penalty") or {}).get("strength"),
             "basis": chosen.get("basis"), "basis_label": plots.basis_label(chosen.get("basis")),
             "live": int(v["version"]) == live, "was_live": int(v["version"]) in promoted or int(v["version"]) == live,

@@ -10,12 +10,11 @@ from __future__ import annotations
 
 import html
 import json
-import math
 from datetime import datetime
 from typing import Any, Iterable
 from urllib.parse import quote
 
-from service.api.plots import basis_label, chosen_text, engine_body, fmt_strength
+from service.api.plots import basis_label, chosen_se, chosen_text, engine_body, fmt_strength
 
 FINAL_STATES = ("succeeded", "failed", "cancelled")
 
@@ -36,12 +35,7 @@ def when(text: Any) -> str:
 
 
 def _se(chosen: dict[str, Any], splits: Any) -> float | None:
-    try:
-        if chosen.get("se") is not None:  # the engine's own (ddof = 1); older versions: std / √splits
-            return float(chosen["se"])
-        return float(chosen["std"]) / math.sqrt(max(int(splits), 1))
-    except (KeyError, TypeError, ValueError):
-        return None
+    return chosen_se(chosen, splits)
 
 
 def _exact_strength(value: Any) -> str:

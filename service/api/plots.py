@@ -429,7 +429,7 @@ def history_figure(name: str, versions: Sequence[dict[str, Any]], live: int | No
         if when is None or chosen.get("mean") is None:
             continue
         splits = (summary.get("cv_summary") or {}).get("splits") or 1
-        se = float(chosen.get("std") or 0.0) / math.sqrt(max(int(splits), 1))
+        se = chosen_se(chosen, splits) or 0.0
         points.append({"version": int(v["version"]), "when": when, "mean": float(chosen["mean"]), "se": se,
                        "metric": chosen.get("metric") or "rmse", "chosen": chosen,
                        "strength": float((chosen.get("penalty") or {}).get("strength") or float("nan"))})
@@ -500,3 +500,15 @@ def history_figure(name: str, versions: Sequence[dict[str, Any]], live: int | No
     _note(fig, (f"Versions created {span} UTC. " if span else "") + "Filled markers: versions that were live at some "
                "time; hollow: published but never live. Ring: the live version.")
     return fig
+
+
+def chosen_se(chosen: dict[str, Any], splits: Any) -> float | None:
+    """The one meaning of ± on pages and figures: the chosen point's one-standard-error-rule standard error
+    (the engine's ``se``: sample standard deviation of the split errors over √splits); std/√splits for
+    versions trained before ``se`` was stored."""
+    try:
+        if chosen.get("se") is not None:
+            return float(chosen["se"])
+        return float(chosen["std"]) / math.sqrt(max(int(splits), 1))
+    except (KeyError, TypeError, ValueError):
+        return None

@@ -70,7 +70,7 @@ def test_path_residuals_and_history_json(dash):
     assert hist["figure"] == "history" and hist["live_version"] == 1
     assert [(p["version"], p["live"], p["was_live"]) for p in hist["points"]] == [(1, True, True), (2, False, False)]
     v2 = store.get_version("pump-dash", 2)["summary"]["chosen"]
-    assert hist["points"][1]["mean"] == v2["mean"] and math.isclose(hist["points"][1]["se"], v2["std"] / math.sqrt(5))
+    assert hist["points"][1]["mean"] == v2["mean"] and math.isclose(hist["points"][1]["se"], v2["se"])
 
 
 def test_cors_preflight_from_an_unlisted_origin_names_the_setting(dash):
