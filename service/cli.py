@@ -1122,6 +1122,8 @@ def _human_help(command: Any) -> None:
 def _fail_service(exc: ServiceError, args: list[str]) -> int:
     """One line for a refused or failed call; a missing or wrong API key is explained in the CLI's own
     terms (--key / TIKHON_KEY), not as an HTTP header."""
+    if exc.status == 401 and "no active key exists" in (exc.detail or ""):
+        return _fail(exc.detail, 2)  # the server has no key left at all: its own words say what to do (--local)
     if exc.status == 401:
         given = bool(os.environ.get("TIKHON_KEY")) or any(a == "--key" or a.startswith("--key=") for a in args)
         if given:
