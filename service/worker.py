@@ -159,6 +159,13 @@ def _train(data_path: str | None, spec: dict, conn, progress, cancel, deadline: 
             from service.sources import open_source
 
             schema, parts = open_source(stream)
+            if dask_scheduler == "local":
+                # The worker starts this process as a daemon (so it ends with the worker), and a daemonic
+                # process may not start children; a LocalCluster's worker processes are children. Clearing
+                # the flag here, in the child, changes nothing on the parent's side (it still stops this
+                # process at exit), and Dask's own worker processes exit as soon as this one is gone
+                # (distributed.process watches its parent through a pipe).
+                mp.current_process().daemon = False
             executor = DaskExecutor(dask_scheduler, dask_workers) if dask_scheduler else SerialExecutor()
             try:
                 result = tune_partitions(parts, schema, spec, executor=executor, progress=on_progress,
