@@ -9,6 +9,7 @@ what can be refused before a job is queued.
 from __future__ import annotations
 
 import os
+import re
 import socket
 import subprocess
 import sys
@@ -134,3 +135,206 @@ def test_separate_dask_cluster_trains_a_folder_through_the_api(tmp_path, kit):
             except subprocess.TimeoutExpired:
                 p.kill()
         log.close()
+
+
+# ---- item 2: the file list is fixed at submission ------------------------------------------------------
+
+
+def with_station(cols: dict, levels=("north", "south")) -> dict:
+    out = dict(cols)
+    n = len(next(iter(cols.values())))
+    out["station"] = np.array([levels[i % len(levels)] for i in range(n)], dtype=object)
+    return out
+
+
+def run_one_job(settings, store):
+    """Run the next queued job with a worker built like the embedded one (the job waited until now)."""
+    from service.worker import Worker
+
+    worker = Worker(settings, store)
+    assert worker.run_once()
+
+
+def test_a_symlink_added_while_the_job_waits_is_not_read(tmp_path, kit):
+    spec = hash_spec(kit, categorical=["station"])
+    cols = with_station(kit.pump_table(400, seed=41))
+    with kit.service(tmp_path, worker=False) as (base, store, settings):
+        write_parts(settings.data_dir / "june", cols, files=2)
+        r = submit(base, "june", spec, promote="always")
+        assert r.status_code == 202, r.text
+        assert [f["name"] for f in r.json()["data"]["files"]] == ["june/part-0.parquet", "june/part-1.parquet"]
+        # while the job waits: a link to data outside the data folder appears in the folder
+        outside = tmp_path / "outside.parquet"
+        pq.write_table(pa.table(with_station(kit.pump_table(50, seed=42), levels=("elsewhere",))), outside)
+        (settings.data_dir / "june" / "part-2.parquet").symlink_to(outside)
+        run_one_job(settings, store)
+        job = httpx.get(f"{base}/v1/trainings/{r.json()['id']}").json()
+        assert job["state"] == "succeeded", job["problem"]
+        manifest = store.get_manifest("pumps", 1, cv_table=False)
+        assert "elsewhere" not in str(manifest["model"])
+        # exactly the listed rows: the in-memory engine on the 400 rows gives the same table
+        assert_same_table(cv_rows(base)["table"], tune(cols, spec).cv_table)
+
+
+def test_a_listed_file_replaced_by_a_symlink_is_refused(tmp_path, kit):
+    spec = hash_spec(kit)
+    with kit.service(tmp_path, worker=False) as (base, store, settings):
+        files = write_parts(settings.data_dir / "june", kit.pump_table(300, seed=43), files=2)
+        r = submit(base, "june", spec)
+        assert r.status_code == 202, r.text
+        outside = tmp_path / "outside.parquet"
+        outside.write_bytes(files[1].read_bytes())  # the same bytes, but outside the data folder
+        files[1].unlink()
+        files[1].symlink_to(outside)
+        run_one_job(settings, store)
+        job = httpx.get(f"{base}/v1/trainings/{r.json()['id']}").json()
+        assert job["state"] == "failed"
+        assert job["problem"]["type"].endswith("/source-changed"), job["problem"]
+        assert "'june/part-1.parquet' was replaced by a symbolic link" in job["problem"]["detail"]
+        assert str(tmp_path) not in str(job)
+
+
+# ---- item 3: files changed or deleted mid-job ------------------------------------------------------------
+
+
+@pytest.mark.parametrize("change", ["rewritten", "deleted"])
+def test_a_file_changed_after_submission_fails_the_job_with_a_clear_problem(tmp_path, kit, change):
+    spec = hash_spec(kit)
+    with kit.service(tmp_path, worker=False) as (base, store, settings):
+        files = write_parts(settings.data_dir / "june", kit.pump_table(300, seed=44), files=2)
+        r = submit(base, "june", spec)
+        assert r.status_code == 202, r.text
+        if change == "deleted":
+            files[0].unlink()
+        else:  # other rows, same file name
+            pq.write_table(pa.table(kit.pump_table(150, seed=45)), files[0], row_group_size=100)
+        run_one_job(settings, store)
+        job = httpx.get(f"{base}/v1/trainings/{r.json()['id']}").json()
+        assert job["state"] == "failed" and job["version"] is None
+        assert job["problem"]["type"].endswith("/source-changed"), job["problem"]
+        what = "was deleted or renamed" if change == "deleted" else "(was modified|changed size|was rewritten)"
+        assert re.search(f"the source file 'june/part-0.parquet' {what}.* after the job was submitted",
+                         job["problem"]["detail"]), job["problem"]
+        assert str(settings.data_dir) not in str(job) and str(tmp_path) not in str(job)
+        assert store.list_models() == []
+
+
+class _ChangeAfterFirstPass:
+    """An in-process executor that runs ``change()`` once the first pass (the scan) has finished."""
+
+    name = "in-process"
+
+    def __init__(self, change):
+        from service.engine.executors import SerialExecutor
+
+        self._inner, self._change, self.passes = SerialExecutor(), change, 0
+
+    def map_reduce(self, fn, items, combine, **kw):
+        out = self._inner.map_reduce(fn, items, combine, **kw)
+        self.passes += 1
+        if self.passes == 1:
+            self._change()
+        return out
+
+    def close(self):
+        pass
+
+
+def test_a_parquet_file_rewritten_between_passes_is_detected(tmp_path, kit):
+    from service.engine.streaming import tune_partitions
+    from service.errors import SourceChanged
+    from service.filelist import list_source
+    from service.sources import open_files
+
+    files = write_parts(tmp_path / "june", kit.pump_table(300, seed=46), files=2)
+    schema, parts = open_files(list_source(tmp_path, tmp_path / "june"))
+
+    def rewrite():  # other rows, same row count: without the check this pass would mix two data sets
+        pq.write_table(pa.table(kit.pump_table(150, seed=47)), files[1], row_group_size=100)
+
+    ex = _ChangeAfterFirstPass(rewrite)
+    with pytest.raises(SourceChanged, match="'june/part-1.parquet' (was rewritten|was modified|changed size)"):
+        tune_partitions(parts, schema, hash_spec(kit), executor=ex)
+    assert ex.passes == 1
+
+
+def test_a_csv_rewritten_between_passes_with_its_size_and_mtime_kept_is_detected(tmp_path, kit):
+    """The content digest of every pass catches a change that keeps size and modification time."""
+    import pyarrow.csv as pcsv
+
+    from service.engine.streaming import tune_partitions
+    from service.errors import SourceChanged
+    from service.filelist import list_source
+    from service.sources import CsvPart, open_files
+
+    path = tmp_path / "june.csv"
+    pcsv.write_csv(pa.table(kit.pump_table(300, seed=48)), path)
+    schema, parts = open_files(list_source(tmp_path, path))
+    parts = [CsvPart(p.ref.with_content_digest(), p.offset) for p in parts]  # as the training process does
+    st = path.stat()
+
+    def swap_digits():  # same length, same timestamps, other values in the middle of the file
+        raw = bytearray(path.read_bytes())
+        i = len(raw) // 2
+        while not chr(raw[i]).isdigit() or raw[i] == ord("9"):
+            i += 1
+        raw[i] += 1
+        path.write_bytes(bytes(raw))
+        os.utime(path, ns=(st.st_atime_ns, st.st_mtime_ns))
+
+    with pytest.raises(SourceChanged, match="'june.csv' was rewritten"):
+        tune_partitions(parts, schema, hash_spec(kit), executor=_ChangeAfterFirstPass(swap_digits))
+
+
+# ---- item 5: a folder of 0-row Parquet files --------------------------------------------------------------
+
+
+def test_a_folder_of_empty_parquet_files_is_a_422_not_a_500(tmp_path, kit):
+    with kit.service(tmp_path, worker=False) as (base, store, settings):
+        empty = {k: v[:0] for k, v in kit.pump_table(10, seed=1).items()}
+        write_parts(settings.data_dir / "empty", empty, files=2)
+        r = submit(base, "empty", kit.SPEC)
+        assert r.status_code == 422, r.text
+        assert r.headers["content-type"].startswith("application/problem+json")
+        assert "holds no rows" in r.json()["detail"] and "0 rows" in r.json()["detail"]
+        assert store.jobs.list() == []
+
+
+# ---- item 6: folder listing --------------------------------------------------------------------------------
+
+
+def test_every_parquet_suffix_and_hive_subfolders_are_read_and_listed(tmp_path, kit):
+    cols = kit.pump_table(800, seed=51)
+    names = ["a.PARQUET", "b.Parquet", "c.pq", "d.parquet"]
+    spec = hash_spec(kit)
+    with kit.service(tmp_path, worker=True) as (base, store, settings):
+        write_parts(settings.data_dir / "mixed", cols, files=4, names=names)
+        (settings.data_dir / "mixed" / "_SUCCESS").write_bytes(b"")  # writers' side files are skipped
+        (settings.data_dir / "mixed" / "notes.txt").write_text("not data")
+        r = submit(base, "mixed", spec, promote="always")
+        assert r.status_code == 202, r.text
+        job = kit.wait_job(base, r.json()["id"])
+        assert job["state"] == "succeeded", job
+        assert job["data"]["file_count"] == 4 and job["data"]["rows"] == 800
+        assert [f["name"] for f in job["data"]["files"]] == [f"mixed/{n}" for n in names]
+        assert [f["rows"] for f in job["data"]["files"]] == [200, 200, 200, 200]
+        assert_same_table(cv_rows(base)["table"], tune(cols, spec).cv_table)  # reference: in-memory engine
+
+        # Hive layout: year=2023/..., year=2024/... give every row a `year` column (integers: a number)
+        hive = kit.pump_table(600, seed=52)
+        year = np.repeat([2023, 2024], 300)
+        hive["energy_kwh"] = hive["energy_kwh"] + 0.5 * (year - 2023)
+        for y in (2023, 2024):
+            sel = year == y
+            write_parts(settings.data_dir / "hive" / f"year={y}", {k: v[sel] for k, v in hive.items()}, files=2)
+        hspec = hash_spec(kit, features=["flow_lps", "head_m", "year"])
+        r = submit(base, "hive", hspec, promote="always")
+        assert r.status_code == 202, r.text
+        assert r.json()["data"]["columns"] == ["flow_lps", "head_m", "energy_kwh", "year"]
+        job = kit.wait_job(base, r.json()["id"])
+        assert job["state"] == "succeeded", job
+        assert [f["name"] for f in job["data"]["files"]] == [
+            "hive/year=2023/part-0.parquet", "hive/year=2023/part-1.parquet",
+            "hive/year=2024/part-0.parquet", "hive/year=2024/part-1.parquet"]
+        ref = tune({**hive, "year": year.astype(np.int64)}, hspec)
+        assert_same_table(cv_rows(base, 2)["table"], ref.cv_table)  # reference: in-memory engine, year as a column
