@@ -176,7 +176,7 @@ def validate_stream(path: Path, spec_raw: dict[str, Any], settings: Settings, so
                 "read out of core; use cv.scheme 'kfold' or 'grouped', or combine the files into one Parquet file "
                 "and train it with execution.mode 'memory'.", errors=err.errors) from None
         raise
-    if spec.cv.row_key and exact:
+    if spec.cv.row_key and spec.cv.scheme == "kfold" and exact:
         _check_row_key(refs, spec.cv.row_key, where)
     if not exact:
         _scan_csv_target(refs[0], spec.target, where)
@@ -240,11 +240,17 @@ def _check_row_key(refs, column: str, where: str) -> None:
                 return
             seen = ("stats", st.min)
     if seen is not None:
-        raise InvalidSpec(
-            f"cv.row_key={column!r} has the same value ({seen[1]!r}) in every row of {where} (Parquet footer "
-            "statistics); hash folds would put every row in one fold: name a column that identifies rows, or "
-            "leave row_key out to use row positions.",
-            errors=[{"field": "cv.row_key", "value": column, "message": "constant column"}])
+        raise constant_row_key(column, seen[1], where)
+
+
+def constant_row_key(column: str, value: Any, where: str) -> InvalidSpec:
+    """The one refusal of a ``cv.row_key`` column holding a single value (memory and streamed paths)."""
+    if isinstance(value, np.generic):
+        value = value.item()
+    return InvalidSpec(
+        f"cv.row_key={column!r} has the same value ({value!r}) in every row of {where}; hash folds would put every "
+        "row in one fold: name a column that identifies rows, or leave row_key out to use row positions.",
+        errors=[{"field": "cv.row_key", "value": column, "message": "constant column"}])
 
 
 def _scan_csv_target(ref, target: str, where: str) -> None:
@@ -273,8 +279,9 @@ def _scan_csv_target(ref, target: str, where: str) -> None:
         if not ok:
             shown = "" if cell is None else cell[:40]
             raise InvalidData(
-                f"the target column {target!r} of {where} holds {shown!r} in data row {i + 1}, which is not a finite "
-                "number; the target must be numeric in every row: fix or remove that row (or pick another target).",
+                f"{where} column {target!r} (the target) holds {shown!r} at row {i} (rows counted from 0 after the "
+                "header), which is not a finite number; the target must be a number in every row: fix or drop "
+                "that row, or name another target.",
                 errors=[{"field": f"{target}[{i}]", "value": shown, "message": "not a number"}])
 
 
@@ -300,6 +307,7 @@ def live_spec(store, name: str) -> dict[str, Any]:
 def validate(cols: tables.Table, spec_raw: dict[str, Any], settings: Settings) -> tuple[dict[str, Any], dict[str, int]]:
     """Validate spec and data together exactly as the engine will; return the normalized spec and grid counts."""
     from service.engine import check_budget, parse_spec
+    from service.engine.folds import uses_hash
     from service.engine.tune import prepare
 
     spec = parse_spec(spec_raw)
@@ -318,6 +326,10 @@ def validate(cols: tables.Table, spec_raw: dict[str, Any], settings: Settings) -
             errors=[{"field": "cv.folds", "value": spec.cv.folds, "message": "more folds than rows"}],
         )
     counts = check_budget(spec, n, d, budget, prep.categories.width)
+    if prep.keys is not None and uses_hash(spec.cv) and spec.cv.scheme == "kfold" and n > 1:
+        keys = np.asarray(prep.keys)
+        if (keys[:1] == keys).all():
+            raise constant_row_key(spec.cv.row_key, keys[0], "the training data")
     return spec.model_dump(mode="json"), counts
 
 

@@ -338,3 +338,86 @@ def test_every_parquet_suffix_and_hive_subfolders_are_read_and_listed(tmp_path, 
             "hive/year=2024/part-0.parquet", "hive/year=2024/part-1.parquet"]
         ref = tune({**hive, "year": year.astype(np.int64)}, hspec)
         assert_same_table(cv_rows(base, 2)["table"], ref.cv_table)  # reference: in-memory engine, year as a column
+
+
+# ---- item 12: refused at submission from metadata ------------------------------------------------------
+
+
+def test_what_the_metadata_shows_is_refused_before_a_job_is_queued(tmp_path, kit):
+    with kit.service(tmp_path, worker=False) as (base, store, settings):
+        d = settings.data_dir
+        cols = kit.pump_table(300, seed=61)
+        streaming = dict(kit.SPEC, execution={"mode": "streaming"})
+        # 0 and 1 rows: the Parquet footer counts them (Apache Parquet format: FileMetaData.num_rows)
+        pq.write_table(pa.table({k: v[:0] for k, v in cols.items()}), d / "none.parquet")
+        pq.write_table(pa.table({k: v[:1] for k, v in cols.items()}), d / "one.parquet")
+        r = submit(base, "none.parquet", streaming)
+        assert r.status_code == 422 and "holds no rows" in r.json()["detail"], r.text
+        r = submit(base, "one.parquet", streaming)
+        assert r.status_code == 422, r.text
+        assert "cv.folds=5 is more than the 1 row(s)" in r.json()["detail"]
+        assert r.json()["errors"][0]["field"] == "cv.folds"
+
+        # a row_key with one value in every row: footer statistics (min == max, no nulls) on the streamed
+        # path, the column itself in memory; the same refusal on both
+        const = dict(cols, site=np.full(300, 7, dtype=np.int64))
+        write_parts(d / "sites", const, files=2)
+        pq.write_table(pa.table(const), d / "sites.parquet")
+        for source, spec in [("sites", dict(kit.SPEC, cv={"scheme": "kfold", "row_key": "site"})),
+                             ("sites.parquet", dict(kit.SPEC, cv={"scheme": "kfold", "row_key": "site",
+                                                                  "assignment": "hash"}))]:
+            r = submit(base, source, spec)
+            assert r.status_code == 422, (source, r.text)
+            assert "cv.row_key='site' has the same value" in r.json()["detail"]
+            assert r.json()["errors"][0]["field"] == "cv.row_key"
+
+        # a streamed CSV whose target holds text after pyarrow's first 1 MiB block (type inference
+        # looks at the first block only, so the job used to fail after queueing)
+        big = kit.pump_table(40_000, seed=62)
+        lines = ["flow_lps,head_m,energy_kwh"] + [f"{a!r},{b!r},{c!r}" for a, b, c in zip(*(v.tolist() for v in big.values()))]
+        lines[35_001] = lines[35_001].rsplit(",", 1)[0] + ",n/a"
+        (d / "late.csv").write_text("\n".join(lines) + "\n")
+        assert (d / "late.csv").stat().st_size > 1 << 20
+        r = submit(base, "late.csv", streaming)
+        assert r.status_code == 422, r.text
+        assert "column 'energy_kwh' (the target) holds 'n/a' at row 35000" in r.json()["detail"]
+        assert store.jobs.list() == []
+
+
+# ---- item 13: messages about files ------------------------------------------------------------------------
+
+
+def test_file_messages_name_the_difference_the_folder_rule_and_compression(tmp_path, kit):
+    import gzip
+
+    with kit.service(tmp_path, worker=False) as (base, store, settings):
+        d = settings.data_dir
+        cols = kit.pump_table(200, seed=71)
+        write_parts(d / "mixed", cols, files=2)
+        odd = dict(cols, head_m=np.array([f"h{i}" for i in range(200)], dtype=object))
+        pq.write_table(pa.table({k: v[:50] for k, v in odd.items()}), d / "mixed" / "part-2.parquet")
+        r = submit(base, "mixed", kit.SPEC)
+        assert r.status_code == 422, r.text
+        detail = r.json()["detail"]
+        assert "'mixed/part-2.parquet' stores 'head_m' as string (text) where 'mixed/part-0.parquet' stores " \
+               "double (number)" in detail, detail
+
+        write_parts(d / "june", cols, files=2)
+        r = submit(base, "june", dict(kit.SPEC, cv={"scheme": "time_ordered", "order_by": "flow_lps"}))
+        assert r.status_code == 422, r.text
+        detail = r.json()["detail"]
+        assert "is a folder, which is always read out of core" in detail and "combine the files" in detail
+        assert "set execution.mode to memory for the others" not in detail
+
+        csv = "flow_lps,head_m,energy_kwh\n" + "\n".join(f"{a},{b},{c}" for a, b, c in zip(*cols.values()))
+        packed = gzip.compress(csv.encode())  # RFC 1952 gzip member: magic bytes 1f 8b
+        (d / "june.csv.gz").write_bytes(packed)
+        for spec in (kit.SPEC, dict(kit.SPEC, execution={"mode": "streaming"})):
+            r = submit(base, "june.csv.gz", spec)
+            assert r.status_code == 422, r.text
+            assert "gzip-compressed file" in r.json()["detail"] and "\\x" not in r.text, r.text
+        r = httpx.post(base + TRAININGS.format(name="pumps"), files={"file": ("june.csv.gz", packed)},
+                       data={"spec": __import__("json").dumps(kit.SPEC)}, timeout=60)
+        assert r.status_code == 422, r.text
+        assert "gzip-compressed file" in r.json()["detail"] and "\\x" not in r.text
+        assert store.jobs.list() == []
