@@ -1,9 +1,12 @@
 """Training data sources read in row batches: a Parquet file, a folder of Parquet files, or a CSV file.
 
-This is where files are opened (the engine only sees partitions). A partition is a picklable
-description — a path and which row groups — so a Dask worker can read its own share of the data
-where it runs. ``open_source`` returns the column schema and the partitions in a fixed order, each with
-the position of its first row in the whole source (for positional row keys).
+This is where files are read (the engine only sees partitions). A partition is a picklable
+description — a file (a ``service.filelist.FileRef``: the file as fixed at submission) and which row
+groups — so a Dask worker can read its own share of the data where it runs; every read opens the file
+through its ``FileRef``, which re-checks it (inside the data folder, same size, mtime and digest).
+``open_files`` (a fixed list) and ``open_source`` (a path, listed now) return the column schema and the
+partitions in a fixed order, each with the position of its first row in the whole source (for
+positional row keys).
 """
 
 from __future__ import annotations
