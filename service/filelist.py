@@ -208,6 +208,18 @@ class CheckedReader(io.RawIOBase):
         super().close()
 
 
+def native(fh: BinaryIO):
+    """A pyarrow native file over the already opened and checked ``fh`` (the same inode, through
+    ``/proc/self/fd``), which pyarrow reads several times faster than a Python file object; ``fh`` itself
+    where there is no ``/proc``."""
+    import pyarrow as pa
+
+    try:
+        return pa.OSFile(f"/proc/self/fd/{fh.fileno()}")
+    except (OSError, ValueError):
+        return fh
+
+
 def _opened_path(fd: int, fallback: str) -> str:
     try:
         return os.readlink(f"/proc/self/fd/{fd}")

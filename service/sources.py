@@ -20,7 +20,7 @@ from typing import Iterator
 import numpy as np
 
 from service.errors import InvalidData
-from service.filelist import HIVE_NULL, FileRef, list_source
+from service.filelist import HIVE_NULL, FileRef, list_source, native
 
 PARTITION_ROWS = 1_000_000  # target rows per Parquet partition (whole row groups are never split)
 
@@ -50,7 +50,7 @@ class ParquetPart:
 
         extra = {name: (kind, value) for name, kind, value in self.extra}
         stored = [c for c in columns if c not in extra]
-        with self.ref.open() as fh, pq.ParquetFile(fh) as f:
+        with self.ref.open() as fh, native(fh) as source, pq.ParquetFile(source) as f:
             for batch in f.iter_batches(batch_size=batch_rows, row_groups=list(self.row_groups), columns=stored):
                 out = _columns(batch, stored)
                 for name in columns:
