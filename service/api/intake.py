@@ -165,8 +165,11 @@ def validate_stream(path: Path, spec_raw: dict[str, Any], settings: Settings, so
     check_column_names(list(schema), where)
     exact = all(r.kind == "parquet" for r in refs)
     rows = sum(r.rows or 0 for r in refs) if exact else _csv_rows_estimate(refs[0].path)
-    if exact:
-        _check_row_count(rows, spec, where, len(refs))
+    counted = rows
+    if not exact:
+        counted = _scan_csv(refs[0], spec, where, rows)
+        rows = rows if counted is None else counted
+    _check_row_count(counted, spec, where, len(refs), exact)
     try:
         counts = check_partitions(schema, spec, rows, _budget(settings))
     except InvalidSpec as err:
@@ -178,8 +181,6 @@ def validate_stream(path: Path, spec_raw: dict[str, Any], settings: Settings, so
         raise
     if spec.cv.row_key and spec.cv.scheme == "kfold" and exact:
         _check_row_key(refs, spec.cv.row_key, where)
-    if not exact:
-        _scan_csv_target(refs[0], spec.target, where)
     origin = {"kind": "source", "source": source, "execution": "streaming", "rows": rows,
               "columns": list(schema), "bytes": sum(r.size for r in refs),
               "modified": max(r.mtime_ns for r in refs) / 1e9, "file_count": len(refs),
@@ -196,16 +197,19 @@ def _csv_rows_estimate(path: str) -> int:
     return int(size / (len(head) / lines)) if head else 0
 
 
-def _check_row_count(rows: int, spec, where: str, files: int) -> None:
-    """Refuse a Parquet source whose footers count no rows, or fewer rows than folds (the in-memory check)."""
+def _check_row_count(rows: int | None, spec, where: str, files: int, parquet: bool) -> None:
+    """Refuse a source with no rows, or fewer rows than folds (the in-memory check), when the count is exact:
+    from the Parquet footers, or from a CSV read whole at submission (``rows`` None: not known)."""
+    if rows is None:
+        return
+    how = "counted in the Parquet footers" if parquet else "counted in the CSV file"
     if rows == 0:
         raise InvalidData(
-            f"{where} holds no rows: the Parquet footer{'s' if files > 1 else ''} of its {files} file(s) count 0 rows; "
-            "point the source at files with data.",
+            f"{where} holds no rows ({how}: 0 rows in {files} file(s)); point the source at files with data.",
             errors=[{"field": "data.source", "value": rows, "message": "no rows"}])
     if spec.cv.folds > rows:
         raise InvalidSpec(
-            f"cv.folds={spec.cv.folds} is more than the {rows} row(s) of {where} (counted in the Parquet footers); "
+            f"cv.folds={spec.cv.folds} is more than the {rows} row(s) of {where} ({how}); "
             f"use at most {rows} folds or send more rows.",
             errors=[{"field": "cv.folds", "value": spec.cv.folds, "message": "more folds than rows"}])
 
@@ -253,24 +257,29 @@ def constant_row_key(column: str, value: Any, where: str) -> InvalidSpec:
         errors=[{"field": "cv.row_key", "value": column, "message": "constant column"}])
 
 
-def _scan_csv_target(ref, target: str, where: str) -> None:
-    """Read the target column of the first ``CSV_SCAN_BYTES`` of a streamed CSV as text and refuse the first
-    cell that is not a number (the job would fail on it after queueing)."""
+def _scan_csv(ref, spec, where: str, estimate: int) -> int | None:
+    """Read the first ``CSV_SCAN_BYTES`` of a streamed CSV (the target and ``cv.row_key`` columns, as text):
+    refuse the first target cell that is not a finite number (the job would fail on it after queueing),
+    and, when that was the whole file, a ``cv.row_key`` with one value in every row. Returns the exact row
+    count when the whole file was read, else None (the estimate is used for the budget only)."""
     import pyarrow as pa
     import pyarrow.csv as pcsv
 
     with ref.open() as fh:
         head = fh.read(CSV_SCAN_BYTES)
-    if len(head) == CSV_SCAN_BYTES:  # only whole lines
+    whole = len(head) < CSV_SCAN_BYTES
+    if not whole:  # only whole lines
         head = head[: head.rfind(b"\n") + 1]
+    key = spec.cv.row_key if spec.cv.scheme == "kfold" else None
+    wanted = [c for c in dict.fromkeys([spec.target, key]) if c]
     try:
         table = pcsv.read_csv(pa.py_buffer(head), read_options=pcsv.ReadOptions(block_size=max(1 << 20, len(head) + 1)),
-                              convert_options=pcsv.ConvertOptions(include_columns=[target],
-                                                                  column_types={target: pa.string()},
+                              convert_options=pcsv.ConvertOptions(include_columns=wanted,
+                                                                  column_types={c: pa.string() for c in wanted},
                                                                   strings_can_be_null=False))
     except Exception:  # a ragged or undecodable head: the job reports it with its line
-        return
-    cells = table.column(0).to_pylist()
+        return None
+    cells = table.column(spec.target).to_pylist()
     for i, cell in enumerate(cells):
         try:
             ok = cell is not None and cell.strip() != "" and math.isfinite(float(cell))
@@ -279,10 +288,17 @@ def _scan_csv_target(ref, target: str, where: str) -> None:
         if not ok:
             shown = "" if cell is None else cell[:40]
             raise InvalidData(
-                f"{where} column {target!r} (the target) holds {shown!r} at row {i} (rows counted from 0 after the "
-                "header), which is not a finite number; the target must be a number in every row: fix or drop "
+                f"{where} column {spec.target!r} (the target) holds {shown!r} at row {i} (rows counted from 0 after "
+                "the header), which is not a finite number; the target must be a number in every row: fix or drop "
                 "that row, or name another target.",
-                errors=[{"field": f"{target}[{i}]", "value": shown, "message": "not a number"}])
+                errors=[{"field": f"{spec.target}[{i}]", "value": shown, "message": "not a number"}])
+    if not whole:
+        return None
+    if key and len(cells) > 1:
+        keys = table.column(key).to_pylist()
+        if all(k == keys[0] for k in keys):
+            raise constant_row_key(key, keys[0], where)
+    return len(cells)
 
 
 def live_spec(store, name: str) -> dict[str, Any]:

@@ -371,6 +371,15 @@ def test_what_the_metadata_shows_is_refused_before_a_job_is_queued(tmp_path, kit
             assert "cv.row_key='site' has the same value" in r.json()["detail"]
             assert r.json()["errors"][0]["field"] == "cv.row_key"
 
+        # a CSV read whole at submission (under 8 MiB): its row count and row_key are exact too
+        (d / "header.csv").write_text("flow_lps,head_m,energy_kwh\n")
+        r = submit(base, "header.csv", streaming)
+        assert r.status_code == 422 and "holds no rows (counted in the CSV file" in r.json()["detail"], r.text
+        (d / "sites.csv").write_text("flow_lps,head_m,energy_kwh,site\n" + "".join(
+            f"{a},{b},{c},7\n" for a, b, c in zip(*(v.tolist() for v in cols.values()))))
+        r = submit(base, "sites.csv", dict(streaming, cv={"scheme": "kfold", "row_key": "site"}))
+        assert r.status_code == 422 and "cv.row_key='site' has the same value" in r.json()["detail"], r.text
+
         # a streamed CSV whose target holds text after pyarrow's first 1 MiB block (type inference
         # looks at the first block only, so the job used to fail after queueing)
         big = kit.pump_table(40_000, seed=62)
