@@ -93,7 +93,7 @@ class FileRef:
         return out
 
     @classmethod
-    def from_json(cls, root: Any, d: dict[str, Any]) -> "FileRef":
+    def from_json(cls, root: Any, d: dict[str, Any]) -> FileRef:
         return cls(root=os.path.realpath(os.fspath(root)), name=str(d["name"]), size=int(d["bytes"]),
                    mtime_ns=int(d["mtime_ns"]), kind=str(d["kind"]), digest=str(d["sha256"]),
                    rows=None if d.get("rows") is None else int(d["rows"]),
@@ -146,7 +146,7 @@ class FileRef:
         if st.st_mtime_ns != self.mtime_ns:
             raise self._changed("was modified (its modification time differs from the one at submission)")
 
-    def with_content_digest(self) -> "FileRef":
+    def with_content_digest(self) -> FileRef:
         """This CSV entry with the digest of its whole content (read once, checked as it was at submission)."""
         if self.kind != "csv" or self.content:
             return self
@@ -157,7 +157,7 @@ class FileRef:
             self.check_stat(os.fstat(fh.fileno()))
         return replace(self, digest=h.hexdigest(), content=True)
 
-    def reader(self) -> "CheckedReader":
+    def reader(self) -> CheckedReader:
         """A binary stream of the file that checks, at its end, that the bytes read are the ones recorded
         (CSV with a content digest) and that size and modification time did not change meanwhile."""
         return CheckedReader(self, self.open())
