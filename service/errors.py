@@ -51,6 +51,13 @@ class InvalidData(TikhonError):
     title = "Invalid data"
 
 
+class SourceChanged(InvalidData):
+    """A file of a training source changed, was deleted or was replaced by a link after the job was submitted."""
+
+    slug = "source-changed"
+    title = "Training data changed"
+
+
 class InvalidRequest(InvalidData):
     """A field of the request itself (not the data, not the spec) has a value the service does not accept."""
 

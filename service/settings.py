@@ -61,6 +61,9 @@ class Settings(BaseSettings):
     streaming_threshold_bytes: int = Field(
         512 * 2**20, ge=0, description="A 'source' file (or folder) larger than this is trained out of core, in row "
         "batches, unless the spec's execution.mode says otherwise.")
+    max_source_files: int = Field(
+        10_000, ge=1, description="Most Parquet files in one folder 'source' (the list is fixed and stored with the "
+        "job at submission).")
     dask_scheduler: str | None = Field(
         None, description="Run streamed training on a Dask cluster: a scheduler address (tcp://host:8786) or "
         "'local' for a LocalCluster on this machine. Unset: in the worker's own process.")

@@ -137,9 +137,23 @@ def _watch_parent(parent_pid: int) -> None:
             os._exit(70)
 
 
+def stream_partitions(request: dict, data_dir) -> tuple[dict[str, str], list] | None:
+    """(schema, partitions) of a streamed job: exactly the files fixed at submission (``request["files"]``),
+    each re-checked when opened (``service.filelist``); a job queued by an older version names only its
+    source path (``stream``) and is listed now. None for a job whose data was staged."""
+    from service.filelist import refs_from_job
+    from service.sources import open_files, open_source
+
+    if request.get("files"):
+        return open_files(refs_from_job(data_dir, request["files"]))
+    if request.get("stream"):
+        return open_source(request["stream"])
+    return None
+
+
 def _train(data_path: str | None, spec: dict, conn, progress, cancel, deadline: float,
-           stream: str | None = None, dask_scheduler: str | None = None, dask_workers: int = 2,
-           limits: dict | None = None, parent_pid: int | None = None) -> None:
+           stream: dict | None = None, dask_scheduler: str | None = None, dask_workers: int = 2,
+           limits: dict | None = None, parent_pid: int | None = None, data_dir: str | None = None) -> None:
     """Body of the training process: read the staged table (or stream the source), tune, send the
     artifact back through ``conn``."""
     if parent_pid is not None:
@@ -156,9 +170,18 @@ def _train(data_path: str | None, spec: dict, conn, progress, cancel, deadline: 
         if stream is not None:
             from service.engine.executors import DaskExecutor, SerialExecutor
             from service.engine.streaming import tune_partitions
-            from service.sources import open_source
+            from service.sources import CsvPart
 
-            schema, parts = open_source(stream)
+            schema, parts = stream_partitions(stream, data_dir)
+            # a CSV's whole content is hashed once here; every pass then re-hashes what it parses
+            parts = [CsvPart(p.ref.with_content_digest(), p.offset) if isinstance(p, CsvPart) else p for p in parts]
+            if dask_scheduler == "local":
+                # The worker starts this process as a daemon (so it ends with the worker), and a daemonic
+                # process may not start children; a LocalCluster's worker processes are children. Clearing
+                # the flag here, in the child, changes nothing on the parent's side (it still stops this
+                # process at exit), and Dask's own worker processes exit as soon as this one is gone
+                # (distributed.process watches its parent through a pipe).
+                mp.current_process().daemon = False
             executor = DaskExecutor(dask_scheduler, dask_workers) if dask_scheduler else SerialExecutor()
             try:
                 result = tune_partitions(parts, schema, spec, executor=executor, progress=on_progress,
@@ -209,7 +232,8 @@ def score_on(model: Any, cols: dict[str, np.ndarray], target: str, metric: str, 
     return metric_of_rows(metric, y, pred)
 
 
-def decide(store, name: str, request: dict, outcome: dict, data_path: str | None) -> tuple[bool, dict[str, Any]]:
+def decide(store, name: str, request: dict, outcome: dict, data_path: str | None, data_dir=None
+           ) -> tuple[bool, dict[str, Any]]:
     """Whether the new version goes live, and the record of why (see the module docstring)."""
     promote = request.get("promote", "if_better")
     metric = outcome["metric"]
@@ -229,11 +253,10 @@ def decide(store, name: str, request: dict, outcome: dict, data_path: str | None
                               "and averaged; the new version's figure is its CV mean")
     try:
         live_model = store.load(name, live).model
-        if request.get("stream"):  # out of core: score the live model on the streamed rows, per hash fold
+        if request.get("files") or request.get("stream"):  # out of core: the live model on the streamed rows
             from service.engine.streaming import score_partitions
-            from service.sources import open_source
 
-            live_score = score_partitions(live_model, open_source(request["stream"])[1], request["spec"], metric)
+            live_score = score_partitions(live_model, stream_partitions(request, data_dir)[1], request["spec"], metric)
             decision["comparison"] = ("live version's predictions on the new rows, scored per hash fold of the new "
                                       "job's spec and averaged; the new version's figure is its CV mean")
         else:
@@ -440,7 +463,7 @@ class Worker:
             if published is not None:
                 self._resume(job, published)
                 return
-        stream = request.get("stream")
+        stream = {k: request[k] for k in ("files", "stream") if request.get(k)} or None
         if not job.get("data_path") and not stream:
             self._finish(jid, "failed", problem=_problem(TikhonError(
                 "the job has no staged data file; submit it again through POST /v1/models/{name}/trainings.")))
@@ -454,7 +477,7 @@ class Worker:
             target=_train, args=(job.get("data_path"), request["spec"], child_conn, progress, cancel, deadline,
                                  stream, s.dask_scheduler, s.dask_local_workers,
                                  {"max_grid_fits": s.max_grid_fits, "max_levels": s.max_levels,
-                                  "max_job_cost": s.max_job_cost}, os.getpid()),
+                                  "max_job_cost": s.max_job_cost}, os.getpid(), str(s.data_dir)),
             name=f"tikhon-train-{jid[:8]}", daemon=True,
         )
         proc.start()
@@ -546,7 +569,7 @@ class Worker:
         request = job["request"] or {}
         try:
             go_live, decision = self._retrying(f"deciding the promotion of job {jid}", lambda: decide(
-                self.store, name, request, outcome, job.get("data_path")))
+                self.store, name, request, outcome, job.get("data_path"), self.settings.data_dir))
             row = self._retrying(f"publishing the result of job {jid}", lambda: self.store.publish(
                 name, body, arrays, job_id=jid, holder=self.worker_id))
             version = int(row["version"])
@@ -624,7 +647,8 @@ class Worker:
                 summary = body.get("cv_summary") or {}
                 outcome = {"metric": summary.get("metric"), "cv_mean": float(summary.get("mean")), "folds": None,
                            "target": (body.get("spec") or {}).get("target")}
-                go_live, decision = decide(self.store, name, request, outcome, job.get("data_path"))
+                go_live, decision = decide(self.store, name, request, outcome, job.get("data_path"),
+                                           self.settings.data_dir)
                 decision.update(version=version, resumed=True, reason=f"{note}; {decision['reason']}")
                 if go_live:
                     self._go_live(name, version, job, decision)

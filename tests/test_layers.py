@@ -17,7 +17,7 @@ ROOT = Path(__file__).resolve().parents[1] / "service"
 LAYERS = {
     "service": 0, "service.errors": 0, "service.settings": 0, "service.demo": 0, "service.paths": 0,
     "service.engine": 1,
-    "service.store": 2, "service.sources": 2,
+    "service.store": 2, "service.sources": 2, "service.filelist": 2,
     "service.api": 3, "service.worker": 3,
     "service.client": 4, "service.cli": 4,
 }

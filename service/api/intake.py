@@ -11,6 +11,8 @@ with, and ``check_budget``), so a job that is accepted here does not fail later 
 from __future__ import annotations
 
 import hashlib
+import math
+import os
 import re
 import uuid
 from pathlib import Path
@@ -129,7 +131,7 @@ def stream_source(data: dict[str, Any] | None, spec_raw: dict[str, Any] | None, 
         return None
     path = tables.resolve_source(Path(settings.data_dir), data["source"], allow_dir=True)
     mode = ((spec_raw or {}).get("execution") or {}).get("mode", "auto") if isinstance(spec_raw, dict) else "auto"
-    size = sum(p.stat().st_size for p in path.iterdir() if p.is_file()) if path.is_dir() else path.stat().st_size
+    size = 0 if path.is_dir() else path.stat().st_size  # a folder always streams
     if mode == "streaming" or (mode == "auto" and (path.is_dir() or size > settings.streaming_threshold_bytes)):
         return path
     if path.is_dir():
@@ -140,29 +142,163 @@ def stream_source(data: dict[str, Any] | None, spec_raw: dict[str, Any] | None, 
     return None
 
 
+SHOWN_FILES = 100  # files listed in a job's ``data.files`` (all of them are stored with the job)
+CSV_SCAN_BYTES = 8 << 20  # bytes of a streamed CSV read at submission to check the target's cells
+
+
 def validate_stream(path: Path, spec_raw: dict[str, Any], settings: Settings, source: str
-                    ) -> tuple[dict[str, Any], dict[str, int], dict[str, Any]]:
-    """Check an out-of-core job before it is queued: the source opens, the spec fits its columns, the
-    grid fits the budget (rows from Parquet metadata, or estimated from a CSV's size)."""
+                    ) -> tuple[dict[str, Any], dict[str, int], dict[str, Any], list[dict[str, Any]]]:
+    """Check an out-of-core job before it is queued: fix its file list (``service.filelist``), open every
+    file, check the spec against the columns and the grid against the budget (rows from the Parquet
+    footers, or estimated from a CSV's size), and refuse what the metadata already shows will fail: no
+    rows, fewer rows than folds, a constant ``cv.row_key``, a CSV target with cells that are not numbers
+    (in its first ``CSV_SCAN_BYTES``). Returns (spec, grid counts, the job's ``data`` view, the file list)."""
     from service.engine import parse_spec
     from service.engine.streaming import check_partitions
-    from service.sources import open_source
+    from service.filelist import list_source
+    from service.sources import open_files
 
+    where = f"data.source={source!r}"
     spec = parse_spec(spec_raw)
-    schema, parts = open_source(path)
-    check_column_names(list(schema), f"data.source={source!r}")
-    rows = sum(getattr(p, "rows", 0) or 0 for p in parts)
-    if not rows:  # CSV: estimate from the size and the first lines
-        with open(path, "rb") as fh:
-            head = fh.read(1 << 16)
-        lines = max(1, head.count(b"\n"))
-        rows = int(path.stat().st_size / (len(head) / lines)) if head else 0
-    counts = check_partitions(schema, spec, rows, _budget(settings))
-    files = sorted(path.iterdir()) if path.is_dir() else [path]
+    refs = list_source(settings.data_dir, path, where=where, max_files=settings.max_source_files)
+    schema, _ = open_files(refs)  # opens every file: a damaged footer or mixed columns are refused now
+    check_column_names(list(schema), where)
+    exact = all(r.kind == "parquet" for r in refs)
+    rows = sum(r.rows or 0 for r in refs) if exact else _csv_rows_estimate(refs[0].path)
+    counted = rows
+    if not exact:
+        counted = _scan_csv(refs[0], spec, where, rows)
+        rows = rows if counted is None else counted
+    _check_row_count(counted, spec, where, len(refs), exact)
+    try:
+        counts = check_partitions(schema, spec, rows, _budget(settings))
+    except InvalidSpec as err:
+        if path.is_dir() and any(e.get("field") == "cv.scheme" for e in err.errors):
+            raise InvalidSpec(
+                f"cv.scheme {spec.cv.scheme!r} needs all rows in memory, and {where} is a folder, which is always "
+                "read out of core; use cv.scheme 'kfold' or 'grouped', or combine the files into one Parquet file "
+                "and train it with execution.mode 'memory'.", errors=err.errors) from None
+        raise
+    if spec.cv.row_key and spec.cv.scheme == "kfold" and exact:
+        _check_row_key(refs, spec.cv.row_key, where)
     origin = {"kind": "source", "source": source, "execution": "streaming", "rows": rows,
-              "columns": list(schema), "bytes": sum(f.stat().st_size for f in files if f.is_file()),
-              "modified": max(f.stat().st_mtime for f in files if f.is_file())}
-    return spec.model_dump(mode="json"), counts, origin
+              "columns": list(schema), "bytes": sum(r.size for r in refs),
+              "modified": max(r.mtime_ns for r in refs) / 1e9, "file_count": len(refs),
+              "files": [{"name": r.name, "bytes": r.size, "rows": r.rows} for r in refs[:SHOWN_FILES]]}
+    return spec.model_dump(mode="json"), counts, origin, [r.to_json() for r in refs]
+
+
+def _csv_rows_estimate(path: str) -> int:
+    """Rows of a CSV file estimated from its size and its first 64 KiB."""
+    size = os.path.getsize(path)
+    with open(path, "rb") as fh:
+        head = fh.read(1 << 16)
+    lines = max(1, head.count(b"\n"))
+    return int(size / (len(head) / lines)) if head else 0
+
+
+def _check_row_count(rows: int | None, spec, where: str, files: int, parquet: bool) -> None:
+    """Refuse a source with no rows, or fewer rows than folds (the in-memory check), when the count is exact:
+    from the Parquet footers, or from a CSV read whole at submission (``rows`` None: not known)."""
+    if rows is None:
+        return
+    how = "counted in the Parquet footers" if parquet else "counted in the CSV file"
+    if rows == 0:
+        raise InvalidData(
+            f"{where} holds no rows ({how}: 0 rows in {files} file(s)); point the source at files with data.",
+            errors=[{"field": "data.source", "value": rows, "message": "no rows"}])
+    if spec.cv.folds > rows:
+        raise InvalidSpec(
+            f"cv.folds={spec.cv.folds} is more than the {rows} row(s) of {where} ({how}); "
+            f"use at most {rows} folds or send more rows.",
+            errors=[{"field": "cv.folds", "value": spec.cv.folds, "message": "more folds than rows"}])
+
+
+def _check_row_key(refs, column: str, where: str) -> None:
+    """Refuse a ``cv.row_key`` that the footers' statistics show holds one value in every row (every row would
+    hash to one fold). Row groups without statistics leave the question open, and the job decides."""
+    import pyarrow.parquet as pq
+
+    seen = None
+    for ref in refs:
+        if column in dict(ref.partition):
+            values = {dict(r.partition).get(column) for r in refs}
+            if len(values) > 1:
+                return
+            seen = ("partition", next(iter(values)))
+            continue
+        with ref.open() as fh:
+            md = pq.ParquetFile(fh).metadata
+        names = [md.schema.column(i).name for i in range(md.num_columns)]
+        if column not in names:
+            return  # the spec check names the missing column
+        j = names.index(column)
+        for g in range(md.num_row_groups):
+            rg = md.row_group(g)
+            if rg.num_rows == 0:
+                continue
+            st = rg.column(j).statistics
+            if st is None or not st.has_min_max or st.null_count != 0 or st.min != st.max:
+                return
+            if seen is not None and seen[1] != st.min:
+                return
+            seen = ("stats", st.min)
+    if seen is not None:
+        raise constant_row_key(column, seen[1], where)
+
+
+def constant_row_key(column: str, value: Any, where: str) -> InvalidSpec:
+    """The one refusal of a ``cv.row_key`` column holding a single value (memory and streamed paths)."""
+    if isinstance(value, np.generic):
+        value = value.item()
+    return InvalidSpec(
+        f"cv.row_key={column!r} has the same value ({value!r}) in every row of {where}; hash folds would put every "
+        "row in one fold: name a column that identifies rows, or leave row_key out to use row positions.",
+        errors=[{"field": "cv.row_key", "value": column, "message": "constant column"}])
+
+
+def _scan_csv(ref, spec, where: str, estimate: int) -> int | None:
+    """Read the first ``CSV_SCAN_BYTES`` of a streamed CSV (the target and ``cv.row_key`` columns, as text):
+    refuse the first target cell that is not a finite number (the job would fail on it after queueing),
+    and, when that was the whole file, a ``cv.row_key`` with one value in every row. Returns the exact row
+    count when the whole file was read, else None (the estimate is used for the budget only)."""
+    import pyarrow as pa
+    import pyarrow.csv as pcsv
+
+    with ref.open() as fh:
+        head = fh.read(CSV_SCAN_BYTES)
+    whole = len(head) < CSV_SCAN_BYTES
+    if not whole:  # only whole lines
+        head = head[: head.rfind(b"\n") + 1]
+    key = spec.cv.row_key if spec.cv.scheme == "kfold" else None
+    wanted = [c for c in dict.fromkeys([spec.target, key]) if c]
+    try:
+        table = pcsv.read_csv(pa.py_buffer(head), read_options=pcsv.ReadOptions(block_size=max(1 << 20, len(head) + 1)),
+                              convert_options=pcsv.ConvertOptions(include_columns=wanted,
+                                                                  column_types={c: pa.string() for c in wanted},
+                                                                  strings_can_be_null=False))
+    except Exception:  # a ragged or undecodable head: the job reports it with its line
+        return None
+    cells = table.column(spec.target).to_pylist()
+    for i, cell in enumerate(cells):
+        try:
+            ok = cell is not None and cell.strip() != "" and math.isfinite(float(cell))
+        except ValueError:
+            ok = False
+        if not ok:
+            shown = "" if cell is None else cell[:40]
+            raise InvalidData(
+                f"{where} column {spec.target!r} (the target) holds {shown!r} at row {i} (rows counted from 0 after "
+                "the header), which is not a finite number; the target must be a number in every row: fix or drop "
+                "that row, or name another target.",
+                errors=[{"field": f"{spec.target}[{i}]", "value": shown, "message": "not a number"}])
+    if not whole:
+        return None
+    if key and len(cells) > 1:
+        keys = table.column(key).to_pylist()
+        if all(k == keys[0] for k in keys):
+            raise constant_row_key(key, keys[0], where)
+    return len(cells)
 
 
 def live_spec(store, name: str) -> dict[str, Any]:
@@ -187,6 +323,7 @@ def live_spec(store, name: str) -> dict[str, Any]:
 def validate(cols: tables.Table, spec_raw: dict[str, Any], settings: Settings) -> tuple[dict[str, Any], dict[str, int]]:
     """Validate spec and data together exactly as the engine will; return the normalized spec and grid counts."""
     from service.engine import check_budget, parse_spec
+    from service.engine.folds import uses_hash
     from service.engine.tune import prepare
 
     spec = parse_spec(spec_raw)
@@ -205,6 +342,10 @@ def validate(cols: tables.Table, spec_raw: dict[str, Any], settings: Settings) -
             errors=[{"field": "cv.folds", "value": spec.cv.folds, "message": "more folds than rows"}],
         )
     counts = check_budget(spec, n, d, budget, prep.categories.width)
+    if prep.keys is not None and uses_hash(spec.cv) and spec.cv.scheme == "kfold" and n > 1:
+        keys = np.asarray(prep.keys)
+        if (keys[:1] == keys).all():
+            raise constant_row_key(spec.cv.row_key, keys[0], "the training data")
     return spec.model_dump(mode="json"), counts
 
 

@@ -99,6 +99,10 @@ _FOR_PEOPLE: dict[str, str] = {
     "invalid-data": "The data cannot be used as sent: a column is missing or unknown, a value is not a number where "
                     "one is needed, a value is empty, NaN or infinite, or the CSV is not comma-separated. The detail "
                     "names the column, the first rows concerned and the fix.",
+    "source-changed": "A file of the job's data source changed size, modification time or content, was deleted, "
+                      "or was replaced by a symbolic link after the job was accepted. The job stopped and published "
+                      "nothing; keep a source's files unchanged while its job runs (write new data to a new folder) "
+                      "and submit again.",
     "invalid-request": "A field of the request itself (not the data, not the spec) has a wrong type, is missing, or "
                        "is not one of the allowed values. The detail names the field and the values it accepts.",
     "limit-exceeded": "The request would go past a limit set on the server (rows per request, body size, grid "

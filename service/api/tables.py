@@ -283,13 +283,24 @@ def from_file_bytes(payload: bytes | Path, filename: str | None, *, where: str, 
     magic bytes, else CSV."""
     if isinstance(payload, Path):
         with open(payload, "rb") as fh:
-            head = fh.read(4)
-        if head == b"PAR1":
+            head = fh.read(8)
+        _refuse_compressed(head, where)
+        if head[:4] == b"PAR1":
             return from_parquet(payload, where=where, max_label=max_label)
         return from_csv(payload, where=where, max_label=max_label)
+    _refuse_compressed(payload[:8], where)
     if payload[:4] == b"PAR1":
         return from_parquet(payload, where=where, max_label=max_label)
     return from_csv(payload, where=where, max_label=max_label)
+
+
+def _refuse_compressed(head: bytes, where: str) -> None:
+    """A compressed file is refused by name of its format, never parsed as text (its bytes would be echoed)."""
+    from service.filelist import compressed_refusal, compression_of
+
+    fmt = compression_of(head)
+    if fmt:
+        raise compressed_refusal(where, fmt)
 
 
 def resolve_source(data_dir: Path, source: Any, *, where: str = "data.source", allow_dir: bool = False) -> Path:
@@ -372,11 +383,12 @@ def read_source(path: Path, *, where: str = "data.source", max_label: int | None
         return from_parquet(path, where=where, max_label=max_label)
     try:
         with open(path, "rb") as fh:
-            head = fh.read(4)
+            head = fh.read(8)
     except OSError as exc:  # unreadable (permissions, an I/O error): the caller's 422, not a 500
         raise InvalidData(f"{where} cannot be read ({exc.strerror or type(exc).__name__}); check the file's "
                           "permissions in the data folder (TIKHON_DATA_DIR).") from None
-    if head == b"PAR1":
+    _refuse_compressed(head, where)
+    if head[:4] == b"PAR1":
         return from_parquet(path, where=where, max_label=max_label)
     return from_csv(Path(path), where=where, max_label=max_label)
 

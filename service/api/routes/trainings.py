@@ -183,10 +183,10 @@ async def submit(request: Request, name: str = Path(..., description="Model name
         spec_raw = parsed.spec if parsed.spec is not None else intake.live_spec(store, name)
         stream = intake.stream_source(data, spec_raw, settings) if upload is None else None
         if stream is not None:  # out of core: the worker reads the source itself, in batches
-            spec, counts, origin = intake.validate_stream(stream, spec_raw, settings, data["source"])
-            job_request = {
+            spec, counts, origin, files = intake.validate_stream(stream, spec_raw, settings, data["source"])
+            job_request = {  # the worker reads exactly ``files`` (fixed here), each re-checked when opened
                 "spec": spec, "promote": parsed.promote, "min_improvement": parsed.min_improvement,
-                "data": origin, "grid": counts, "spec_reused": parsed.spec is None, "stream": str(stream),
+                "data": origin, "grid": counts, "spec_reused": parsed.spec is None, "files": files,
                 SUBMITTER: submitter,
             }
             return store.jobs.submit(name, job_request, idempotency_key=key, **limits)
