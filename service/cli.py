@@ -845,6 +845,36 @@ def plot(
 
 
 @app.command()
+def export(
+    ctx: typer.Context,
+    ref: Annotated[str, typer.Argument(metavar="NAME[@VERSION]", help="Model (its live version) or one version.")],
+    format: Annotated[str, typer.Option("--format", help="json (the model's formula as numbers, to evaluate anywhere) "
+                                        "or sklearn (a joblib file of a scikit-learn Pipeline).")] = "json",
+    out: Annotated[Optional[Path], typer.Option(help="File to write [default: NAME-vVERSION.json or .joblib].")] = None,
+) -> None:
+    """Write a version in a form that leaves the service (loading a joblib file runs code: load only your own exports)."""
+    name, version = parse_ref(ref)
+    if format not in ("json", "sklearn"):
+        raise UsageProblem(f"--format {format!r} is not offered; use json or sklearn.")
+    with _client(ctx) as tk:
+        if version is None:
+            version = tk.model(name).get("live_version")
+            if version is None:
+                raise UsageProblem(f"model {name!r} has no live version; name one: {name}@VERSION.")
+        got = tk.export(name, version, format=format)
+    data = json.dumps(got, indent=1).encode() + b"\n" if format == "json" else got
+    target = out or Path(f"{name}-v{version}." + ("json" if format == "json" else "joblib"))
+    tmp = target.with_name(target.name + ".part")
+    target.parent.mkdir(parents=True, exist_ok=True)
+    tmp.write_bytes(data)
+    os.replace(tmp, target)
+    if _opts(ctx).json:
+        _print_json({"file": str(target), "bytes": len(data), "model": name, "version": version, "format": format})
+    else:
+        _out.print(f"wrote {target} ({len(data)} bytes)")
+
+
+@app.command()
 def promote(
     ctx: typer.Context,
     name: Annotated[str, typer.Argument(help="Model name.")],

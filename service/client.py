@@ -308,6 +308,19 @@ class Client:
         """The regularization path (coefficients against strength) of the chosen basis setting."""
         return self._send("GET", f"/v1/models/{_seg(name)}/versions/{_num(version)}/path")
 
+    @_route("GET", "/v1/models/{name}/versions/{version}/export")
+    def export(self, name: str, version: int, format: str = "json") -> Any:
+        """One version in a form that leaves the service: ``format="json"`` answers the export document (a dict:
+        input scaling, basis, category levels, weights, intercept; the README shows a numpy evaluator),
+        ``format="sklearn"`` the bytes of a joblib file holding a scikit-learn Pipeline. Loading a joblib file
+        runs code: load only exports from your own server."""
+        if format not in ("json", "sklearn"):
+            raise ValueError(f"format {format!r} is not offered; use 'json' or 'sklearn'")
+        path = f"/v1/models/{_seg(name)}/versions/{_num(version)}/export"
+        if format == "json":
+            return self._send("GET", path, params={"format": "json"})
+        return self._send("GET", path, params={"format": "sklearn"}, expect="bytes")
+
     @_route("PUT", "/v1/models/{name}/live")
     def set_live(self, name: str, version: int, reason: str) -> dict[str, Any]:
         """Make ``version`` the live version (admin scope); the change and ``reason`` go into the history."""
