@@ -144,6 +144,17 @@ def _route(method: str, template: str) -> Callable[[Callable], Callable]:
     return mark
 
 
+def _window(version: int | None, since: str | None, until: str | None) -> dict[str, Any]:
+    params: dict[str, Any] = {}
+    if version is not None:
+        params["version"] = _num(version)
+    if since is not None:
+        params["since"] = since
+    if until is not None:
+        params["until"] = until
+    return params
+
+
 def _rows_from_columns(columns: Mapping[str, Sequence[Any]]) -> list[dict[str, Any]]:
     names = list(columns)
     lengths = {len(columns[n]) for n in names}
@@ -320,6 +331,27 @@ class Client:
         if format == "json":
             return self._send("GET", path, params={"format": "json"})
         return self._send("GET", path, params={"format": "sklearn"}, expect="bytes")
+
+    @_route("GET", "/v1/models/{name}/inputs")
+    def inputs(self, name: str, *, version: int | None = None, since: str | None = None,
+               until: str | None = None) -> dict[str, Any]:
+        """Input drift of a version (default: live): recent shares of each input's training bins, PSI and
+        flags, rows outside the training range. ``since``/``until``: ISO 8601 times or spans (``7d``, ``36h``)."""
+        return self._send("GET", f"/v1/models/{_seg(name)}/inputs", params=_window(version, since, until))
+
+    @_route("GET", "/v1/models/{name}/outcomes")
+    def outcomes(self, name: str, *, version: int | None = None, since: str | None = None,
+                 until: str | None = None) -> dict[str, Any]:
+        """Real-world error of scored outcomes (RMSE, MAE, 0.9 coverage) against the CV error, overall and per hour."""
+        return self._send("GET", f"/v1/models/{_seg(name)}/outcomes", params=_window(version, since, until))
+
+    @_route("POST", "/v1/models/{name}/outcomes")
+    def add_outcomes(self, name: str, rows: Sequence[Mapping[str, Any]], *, version: int | None = None) -> dict[str, Any]:
+        """Score a version (default: live) on rows that carry the target's true value; answers the count accepted."""
+        body: dict[str, Any] = {"rows": list(rows)}
+        if version is not None:
+            body["version"] = _num(version)
+        return self._send("POST", f"/v1/models/{_seg(name)}/outcomes", json=body)
 
     @_route("PUT", "/v1/models/{name}/live")
     def set_live(self, name: str, version: int, reason: str) -> dict[str, Any]:

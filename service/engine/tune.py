@@ -348,7 +348,17 @@ def _tune(data, spec: TuneSpec, progress, should_stop, budget) -> TuneResult:
                   fingerprint=fingerprint_of(fingerprint_columns(prep.cols, prep.used), n),
                   warnings=search.warnings + data_warnings(
                       spec, {c: column_kind(v) for c, v in prep.cols.items()}, prep.used, int(n), search.n_splits,
-                      len(model.term_names)))
+                      len(model.term_names)),
+                  drift_inputs=(prep.X, _level_counts(prep)))
+
+
+def _level_counts(prep: Prepared) -> list[np.ndarray]:
+    """Training rows of every level of every categorical column (column sums of the one-hot block)."""
+    out, off = [], 0
+    for lv in prep.categories.levels:
+        out.append(prep.cat_block[:, off:off + len(lv)].sum(axis=0))
+        off += len(lv)
+    return out
 
 
 # ---------------------------------------------------------------------------------------------------

@@ -10,7 +10,7 @@ import joblib
 from fastapi import APIRouter, Path, Query, Request
 from fastapi.responses import Response
 
-from service.api import auth
+from service.api import auth, monitor
 from service.api.render import json_response, read_json
 from service.api.schemas import LiveRequest, schema_ref
 from service.engine.export import export_json, sklearn_pipeline
@@ -70,11 +70,15 @@ def get_model(request: Request, name: str = NamePath) -> Response:
     versions = store.list_versions(name)
     live = out.get("live_version")
     out["versions"] = [v.get("version") for v in versions]
+    out["monitoring_warnings"] = []
     if live is not None:
-        out["live"] = version_metadata(name, live, store.get_manifest(name, live, cv_table=False))
+        manifest = store.get_manifest(name, live, cv_table=False)
+        out["live"] = version_metadata(name, live, manifest)
+        out["monitoring_warnings"] = monitor.live_warnings(request.app.state.monitor, name, live, manifest)
     out["links"] = {
         "versions": f"/v1/models/{name}/versions", "history": f"/v1/models/{name}/history",
         "trainings": f"/v1/trainings?model={name}", "predict": f"/v1/models/{name}/predict",
+        "inputs": f"/v1/models/{name}/inputs", "outcomes": f"/v1/models/{name}/outcomes",
     }
     return json_response(out)
 
