@@ -405,6 +405,36 @@ class Client:
         return self._send("GET", f"/v1/models/{_seg(name)}/versions/{_num(version)}/plots/residuals",
                           params={"format": format}, expect="bytes")
 
+    def plot_monitoring(self, name: str, kind: str, *, version: int | None = None, since: str | None = None,
+                        until: str | None = None, format: str = "svg") -> bytes:
+        """Figure since training: ``kind`` is ``drift`` (training against recent shares per input),
+        ``outside-range`` (share of rows outside the training range per hour) or ``live-error`` (real error
+        per hour against the CV band). ``since``/``until``: ISO 8601 times or spans (``7d``)."""
+        methods = {"drift": self.plot_drift, "outside-range": self.plot_outside_range, "live-error": self.plot_live_error}
+        if kind not in methods:
+            raise ValueError(f"monitoring figure {kind!r} is not offered; use drift, outside-range or live-error")
+        return methods[kind](name, version=version, since=since, until=until, format=format)
+
+    @_route("GET", "/v1/models/{name}/plots/drift")
+    def plot_drift(self, name: str, **kw: Any) -> bytes:
+        """Figure: each input's training against recent shares, with its PSI (see ``plot_monitoring``)."""
+        return self._monitoring_figure(name, "drift", **kw)
+
+    @_route("GET", "/v1/models/{name}/plots/outside-range")
+    def plot_outside_range(self, name: str, **kw: Any) -> bytes:
+        """Figure: share of served rows outside the training range, per hour (see ``plot_monitoring``)."""
+        return self._monitoring_figure(name, "outside-range", **kw)
+
+    @_route("GET", "/v1/models/{name}/plots/live-error")
+    def plot_live_error(self, name: str, **kw: Any) -> bytes:
+        """Figure: real error of scored outcomes per hour against the CV band (see ``plot_monitoring``)."""
+        return self._monitoring_figure(name, "live-error", **kw)
+
+    def _monitoring_figure(self, name: str, kind: str, *, version: int | None = None, since: str | None = None,
+                           until: str | None = None, format: str = "svg") -> bytes:
+        return self._send("GET", f"/v1/models/{_seg(name)}/plots/{kind}",
+                          params={**_window(version, since, until), "format": format}, expect="bytes")
+
     @_route("GET", "/v1/models/{name}/plots/history")
     def plot_history(self, name: str, format: str = "svg") -> bytes:
         """Figure: CV error and chosen settings of every version of a model."""

@@ -119,6 +119,8 @@ def test_every_route_called_through_the_client(server, live_service, tmp_path):
         assert scored == {"model": "pump-c", "version": 1, "accepted": 1, "skipped": 0}
         assert tk.outcomes("pump-c", version=1, since="1d")["rows"] == 1
         assert tk.inputs("pump-c", version=1)["version"] == 1
+        for kind in ("drift", "outside-range", "live-error"):
+            assert b"<svg" in tk.plot_monitoring("pump-c", kind, version=1)[:400], kind
 
         # Live predictions with intervals: the client's answer is the server's answer, unchanged.
         query = [{"flow_lps": 50.0, "head_m": 30.0}, {"flow_lps": 90.5, "head_m": 12.25}]

@@ -141,3 +141,25 @@ def test_cli_monitor_prints_the_psi_table_and_the_outcomes(served, kit):
     assert lines["head_m"][2] == f"{expected['head_m']['psi']:.3f}"
     assert "(200 rows)" in run.stdout and "outcomes (0 scored rows)" in run.stdout
     assert "retrain suggested: input flow_lps has drifted" in " ".join(run.stdout.split())
+
+
+def test_figures_answer_images_and_their_numbers_and_the_page_shows_them(served, kit):
+    import re
+
+    base, tk, _ = served
+    page = httpx.get(f"{base}/models/pump-shifted")
+    assert page.status_code == 200 and 'id="monitoring"' in page.text
+    srcs = re.findall(r'<img src="([^"]+)"', page.text)
+    mon = [s.replace("&amp;", "&") for s in srcs if "/plots/drift" in s or "/plots/outside-range" in s or "/plots/live-error" in s]
+    assert len(mon) == 3
+    for src in mon:
+        img = httpx.get(base + src)
+        assert img.status_code == 200 and img.headers["content-type"] == "image/svg+xml" and b"<svg" in img.content[:400]
+        png = httpx.get(base + src + "&format=png")
+        assert png.content[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (ISO/IEC 15948)
+    drift = httpx.get(f"{base}/v1/models/pump-shifted/plots/drift", headers={"Accept": "application/json"}).json()
+    assert drift["features"] == tk.inputs("pump-shifted")["features"]
+    err = httpx.get(f"{base}/v1/models/pump-scored/plots/live-error", headers={"Accept": "application/json"}).json()
+    assert err["series"] == tk.outcomes("pump-scored")["series"] and err["cv"]["metric"] == "rmse"
+    bad = httpx.get(f"{base}/v1/models/pump-shifted/plots/drift", params={"format": "gif"})
+    assert bad.status_code == 422 and "format" in bad.json()["detail"]

@@ -122,3 +122,64 @@ async def post_outcomes(request: Request, name: str = NamePath) -> Response:
     counts = await to_thread.run_sync(score)
     return json_response({"model": name, "version": v, "accepted": counts["rows"],
                           "skipped": len(body["rows"]) - counts["rows"]}, status=202)
+
+
+# ---- figures (each answers its numbers as JSON under Accept: application/json) -------------------------
+_FIGURE_RESPONSES = {200: {"description": "The figure; with 'Accept: application/json' (and no 'format' parameter) "
+                           "the plotted numbers as JSON instead.",
+                           "content": {"image/svg+xml": {}, "image/png": {}, "application/json": {}}}}
+
+
+def _figure(request: Request, name: str, version: int | None, since: str | None, until: str | None, kind: str,
+            fmt: str) -> Response:
+    from service.api import monitor_plots, plots
+    from service.api.routes.plots import _image, _serialized, check_format, wants_json
+
+    validate_name(name)
+    v = _version(request, name, version)
+    t0, t1 = _window(request, name, v, since, until)
+    manifest = request.app.state.store.get_manifest(name, v, cv_table=False)
+    body = manifest.get("model") or {}
+    if kind == "error":
+        report = monitor.outcomes_report(name, v, body.get("chosen") or {},
+                                         _counts(request, name, v, "outcomes", t0, t1), t0, t1)
+        data = {k: report[k] for k in ("model", "version", "from", "to", "rows", "cv", "series")}
+    else:
+        report = monitor.inputs_report(name, v, body.get("drift_reference"),
+                                       _counts(request, name, v, "inputs", t0, t1), t0, t1)
+        keys = ("features",) if kind == "drift" else ("series", "outside_range_rows")
+        data = {k: report.get(k) for k in ("model", "version", "from", "to", "rows") + keys}
+    if wants_json(request):
+        return json_response(data, headers={"Cache-Control": "private, no-cache", "Vary": "Accept"})
+    fmt = check_format(fmt)
+    draw = {"drift": monitor_plots.drift_figure, "outside": monitor_plots.outside_figure,
+            "error": monitor_plots.error_figure}[kind]
+    titles = {"drift": "input drift: training against recent shares", "outside": "rows outside the training range",
+              "error": "real error against the CV error"}
+    png_or_svg = _serialized(lambda: plots.render(draw(report), fmt, title=f"{name} v{v}: {titles[kind]}",
+                                                  description=f"{report['rows']} rows from {report['from']} to {report['to']}"))()
+    return _image(request, png_or_svg, fmt, f'"{kind}-{v}-{int(t1)}"', "private, no-cache")
+
+
+FormatQuery = Query("svg", description="Image format: 'svg' (default) or 'png'.", json_schema_extra={"enum": ["svg", "png"]})
+
+
+@router.get("/models/{name}/plots/drift", summary="Figure: each input's training against recent shares, with PSI",
+            response_class=Response, responses=_FIGURE_RESPONSES, **auth.READ)
+def plot_drift(request: Request, name: str = NamePath, version: int | None = VersionQuery, since: str | None = SinceQuery,
+               until: str | None = UntilQuery, format: str = FormatQuery) -> Response:
+    return _figure(request, name, version, since, until, "drift", format)
+
+
+@router.get("/models/{name}/plots/outside-range", summary="Figure: share of rows outside the training range, per hour",
+            response_class=Response, responses=_FIGURE_RESPONSES, **auth.READ)
+def plot_outside(request: Request, name: str = NamePath, version: int | None = VersionQuery, since: str | None = SinceQuery,
+                 until: str | None = UntilQuery, format: str = FormatQuery) -> Response:
+    return _figure(request, name, version, since, until, "outside", format)
+
+
+@router.get("/models/{name}/plots/live-error", summary="Figure: real error of scored outcomes per hour against the CV band",
+            response_class=Response, responses=_FIGURE_RESPONSES, **auth.READ)
+def plot_live_error(request: Request, name: str = NamePath, version: int | None = VersionQuery,
+                    since: str | None = SinceQuery, until: str | None = UntilQuery, format: str = FormatQuery) -> Response:
+    return _figure(request, name, version, since, until, "error", format)
