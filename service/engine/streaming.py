@@ -322,6 +322,10 @@ def check_stream_spec(spec: TuneSpec) -> None:
     if spec.basis_fit == "per_fold":
         raise InvalidSpec("basis_fit 'per_fold' needs all rows in memory; use 'all_rows' out of core",
                           errors=[{"field": "basis_fit", "value": "per_fold", "message": "not available out of core"}])
+    if spec.weight is not None:
+        raise InvalidSpec(f"row weights (weight {spec.weight!r}) are trained in memory only: set execution.mode to memory "
+                          "(up to the service's training row limit), or leave weight out to stream",
+                          errors=[{"field": "weight", "value": spec.weight, "message": "not available out of core"}])
 
 
 def check_partitions(schema: dict[str, str], spec: Any, n_rows: int, budget: Budget | None = None) -> dict[str, int]:
