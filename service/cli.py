@@ -834,12 +834,17 @@ def plot(
                     raise UsageProblem(f"model {name!r} has no live version; name one: {name}@VERSION.")
             data = tk.plot(name, version, kind, format=fmt)
             target = out or Path(f"{name}-v{version}-{kind}.{fmt}")
+    _write_file(ctx, target, data, model=name, version=version, kind=kind)
+
+
+def _write_file(ctx: typer.Context, target: Path, data: bytes, **about: Any) -> None:
+    """Write ``data`` whole or not at all (a ``.part`` file renamed into place), then say so."""
     tmp = target.with_name(target.name + ".part")
     target.parent.mkdir(parents=True, exist_ok=True)
     tmp.write_bytes(data)
     os.replace(tmp, target)
     if _opts(ctx).json:
-        _print_json({"file": str(target), "bytes": len(data), "model": name, "version": version, "kind": kind})
+        _print_json({"file": str(target), "bytes": len(data), **about})
     else:
         _out.print(f"wrote {target} ({len(data)} bytes)")
 
@@ -906,14 +911,7 @@ def export(
         got = tk.export(name, version, format=format)
     data = json.dumps(got, indent=1).encode() + b"\n" if format == "json" else got
     target = out or Path(f"{name}-v{version}." + ("json" if format == "json" else "joblib"))
-    tmp = target.with_name(target.name + ".part")
-    target.parent.mkdir(parents=True, exist_ok=True)
-    tmp.write_bytes(data)
-    os.replace(tmp, target)
-    if _opts(ctx).json:
-        _print_json({"file": str(target), "bytes": len(data), "model": name, "version": version, "format": format})
-    else:
-        _out.print(f"wrote {target} ({len(data)} bytes)")
+    _write_file(ctx, target, data, model=name, version=version, format=format)
 
 
 @app.command()

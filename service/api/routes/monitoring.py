@@ -54,26 +54,29 @@ def _counts(request: Request, name: str, version: int, kind: str, t0: float, t1:
     return mon.sums.read(name, version, kind, bucket_of(t0), bucket_of(t1))
 
 
-@router.get("/models/{name}/inputs", summary="Input drift: recent inputs against the training distribution", **auth.READ)
-def get_inputs(request: Request, name: str = NamePath, version: int | None = VersionQuery,
-               since: str | None = SinceQuery, until: str | None = UntilQuery) -> Response:
+def _report(request: Request, name: str, version: int | None, since: str | None, until: str | None,
+            kind: str) -> dict[str, Any]:
+    """The ``inputs`` or ``outcomes`` report of a version (default: live) over a window."""
     validate_name(name)
     v = _version(request, name, version)
     t0, t1 = _window(request, name, v, since, until)
-    manifest = request.app.state.store.get_manifest(name, v, cv_table=False)
-    ref = (manifest.get("model") or {}).get("drift_reference")
-    return json_response(monitor.inputs_report(name, v, ref, _counts(request, name, v, "inputs", t0, t1), t0, t1))
+    body = request.app.state.store.get_manifest(name, v, cv_table=False).get("model") or {}
+    counts = _counts(request, name, v, kind, t0, t1)
+    if kind == "inputs":
+        return monitor.inputs_report(name, v, body.get("drift_reference"), counts, t0, t1)
+    return monitor.outcomes_report(name, v, body.get("chosen") or {}, counts, t0, t1)
+
+
+@router.get("/models/{name}/inputs", summary="Input drift: recent inputs against the training distribution", **auth.READ)
+def get_inputs(request: Request, name: str = NamePath, version: int | None = VersionQuery,
+               since: str | None = SinceQuery, until: str | None = UntilQuery) -> Response:
+    return json_response(_report(request, name, version, since, until, "inputs"))
 
 
 @router.get("/models/{name}/outcomes", summary="Real-world error of scored outcomes against the CV error", **auth.READ)
 def get_outcomes(request: Request, name: str = NamePath, version: int | None = VersionQuery,
                  since: str | None = SinceQuery, until: str | None = UntilQuery) -> Response:
-    validate_name(name)
-    v = _version(request, name, version)
-    t0, t1 = _window(request, name, v, since, until)
-    manifest = request.app.state.store.get_manifest(name, v, cv_table=False)
-    cv = (manifest.get("model") or {}).get("chosen") or {}
-    return json_response(monitor.outcomes_report(name, v, cv, _counts(request, name, v, "outcomes", t0, t1), t0, t1))
+    return json_response(_report(request, name, version, since, until, "outcomes"))
 
 
 @router.post("/models/{name}/outcomes", status_code=202, summary="Score a version on rows whose true values are known",
@@ -135,18 +138,11 @@ def _figure(request: Request, name: str, version: int | None, since: str | None,
     from service.api import monitor_plots, plots
     from service.api.routes.plots import _image, _serialized, check_format, wants_json
 
-    validate_name(name)
-    v = _version(request, name, version)
-    t0, t1 = _window(request, name, v, since, until)
-    manifest = request.app.state.store.get_manifest(name, v, cv_table=False)
-    body = manifest.get("model") or {}
+    report = _report(request, name, version, since, until, "outcomes" if kind == "error" else "inputs")
+    v = report["version"]
     if kind == "error":
-        report = monitor.outcomes_report(name, v, body.get("chosen") or {},
-                                         _counts(request, name, v, "outcomes", t0, t1), t0, t1)
         data = {k: report[k] for k in ("model", "version", "from", "to", "rows", "cv", "series")}
     else:
-        report = monitor.inputs_report(name, v, body.get("drift_reference"),
-                                       _counts(request, name, v, "inputs", t0, t1), t0, t1)
         keys = ("features",) if kind == "drift" else ("series", "outside_range_rows")
         data = {k: report.get(k) for k in ("model", "version", "from", "to", "rows") + keys}
     if wants_json(request):
@@ -158,7 +154,7 @@ def _figure(request: Request, name: str, version: int | None, since: str | None,
               "error": "real error against the CV error"}
     png_or_svg = _serialized(lambda: plots.render(draw(report), fmt, title=f"{name} v{v}: {titles[kind]}",
                                                   description=f"{report['rows']} rows from {report['from']} to {report['to']}"))()
-    return _image(request, png_or_svg, fmt, f'"{kind}-{v}-{int(t1)}"', "private, no-cache")
+    return _image(request, png_or_svg, fmt, f'"{kind}-{v}-{report["to"]}"', "private, no-cache")
 
 
 FormatQuery = Query("svg", description="Image format: 'svg' (default) or 'png'.", json_schema_extra={"enum": ["svg", "png"]})
