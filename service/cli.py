@@ -834,14 +834,84 @@ def plot(
                     raise UsageProblem(f"model {name!r} has no live version; name one: {name}@VERSION.")
             data = tk.plot(name, version, kind, format=fmt)
             target = out or Path(f"{name}-v{version}-{kind}.{fmt}")
+    _write_file(ctx, target, data, model=name, version=version, kind=kind)
+
+
+def _write_file(ctx: typer.Context, target: Path, data: bytes, **about: Any) -> None:
+    """Write ``data`` whole or not at all (a ``.part`` file renamed into place), then say so."""
     tmp = target.with_name(target.name + ".part")
     target.parent.mkdir(parents=True, exist_ok=True)
     tmp.write_bytes(data)
     os.replace(tmp, target)
     if _opts(ctx).json:
-        _print_json({"file": str(target), "bytes": len(data), "model": name, "version": version, "kind": kind})
+        _print_json({"file": str(target), "bytes": len(data), **about})
     else:
         _out.print(f"wrote {target} ({len(data)} bytes)")
+
+
+@app.command()
+def monitor(
+    ctx: typer.Context,
+    ref: Annotated[str, typer.Argument(metavar="NAME[@VERSION]", help="Model (its live version) or one version.")],
+    since: Annotated[str, typer.Option(help="Start: a span back from now (90m, 36h, 7d) or an ISO 8601 time.")] = "7d",
+    until: Annotated[Optional[str], typer.Option(help="End [default: now].")] = None,
+) -> None:
+    """Input drift (PSI per input) and real-world error of scored outcomes since training."""
+    name, version = parse_ref(ref)
+    with _client(ctx) as tk:
+        inputs = tk.inputs(name, version=version, since=since, until=until)
+        outcomes = tk.outcomes(name, version=inputs["version"], since=since, until=until)
+    if _opts(ctx).json:
+        _print_json({"inputs": inputs, "outcomes": outcomes})
+        return
+    t = Table(title=f"{name} version {inputs['version']}: inputs from {inputs['from'][:16]} to {inputs['to'][:16]} "
+                    f"({inputs['rows']} rows)")
+    for col in ("input", "kind", "PSI", "flag", "outside range"):
+        t.add_column(col, justify="right" if col in ("PSI", "outside range") else "left")
+    for f in inputs.get("features") or []:
+        psi = "-" if f.get("psi") is None else f"{f['psi']:.3f}"
+        out = f.get("outside_range")
+        t.add_row(f["name"], f["kind"], psi, f.get("flag") or "", "-" if out is None else f"{100 * out:.1f} %")
+    _out.print(t)
+    m = outcomes.get("metrics") or {}
+    cv = outcomes.get("cv") or {}
+
+    def num(v: Any) -> str:
+        return "-" if v is None else f"{v:.4g}"
+
+    o = Table(title=f"outcomes ({outcomes['rows']} scored rows)", show_header=False)
+    o.add_column("what", style="bold")
+    o.add_column("value")
+    o.add_row("RMSE", num(m.get("rmse")))
+    o.add_row("MAE", num(m.get("mae")))
+    o.add_row("0.9 interval coverage", "-" if m.get("coverage90") is None else f"{100 * m['coverage90']:.1f} %")
+    o.add_row(f"CV {str(cv.get('metric') or '').upper()}", f"{num(cv.get('mean'))} (std over folds {num(cv.get('std'))})")
+    _out.print(o)
+    for w in (inputs.get("warnings") or []) + (outcomes.get("warnings") or []):
+        _out.print(f"warning: {' '.join(str(w).split())}")
+
+
+@app.command()
+def export(
+    ctx: typer.Context,
+    ref: Annotated[str, typer.Argument(metavar="NAME[@VERSION]", help="Model (its live version) or one version.")],
+    format: Annotated[str, typer.Option("--format", help="json (the model's formula as numbers, to evaluate anywhere) "
+                                        "or sklearn (a joblib file of a scikit-learn Pipeline).")] = "json",
+    out: Annotated[Optional[Path], typer.Option(help="File to write [default: NAME-vVERSION.json or .joblib].")] = None,
+) -> None:
+    """Write a version in a form that leaves the service (loading a joblib file runs code: load only your own exports)."""
+    name, version = parse_ref(ref)
+    if format not in ("json", "sklearn"):
+        raise UsageProblem(f"--format {format!r} is not offered; use json or sklearn.")
+    with _client(ctx) as tk:
+        if version is None:
+            version = tk.model(name).get("live_version")
+            if version is None:
+                raise UsageProblem(f"model {name!r} has no live version; name one: {name}@VERSION.")
+        got = tk.export(name, version, format=format)
+    data = json.dumps(got, indent=1).encode() + b"\n" if format == "json" else got
+    target = out or Path(f"{name}-v{version}." + ("json" if format == "json" else "joblib"))
+    _write_file(ctx, target, data, model=name, version=version, format=format)
 
 
 @app.command()

@@ -144,6 +144,17 @@ def _route(method: str, template: str) -> Callable[[Callable], Callable]:
     return mark
 
 
+def _window(version: int | None, since: str | None, until: str | None) -> dict[str, Any]:
+    params: dict[str, Any] = {}
+    if version is not None:
+        params["version"] = _num(version)
+    if since is not None:
+        params["since"] = since
+    if until is not None:
+        params["until"] = until
+    return params
+
+
 def _rows_from_columns(columns: Mapping[str, Sequence[Any]]) -> list[dict[str, Any]]:
     names = list(columns)
     lengths = {len(columns[n]) for n in names}
@@ -308,6 +319,40 @@ class Client:
         """The regularization path (coefficients against strength) of the chosen basis setting."""
         return self._send("GET", f"/v1/models/{_seg(name)}/versions/{_num(version)}/path")
 
+    @_route("GET", "/v1/models/{name}/versions/{version}/export")
+    def export(self, name: str, version: int, format: str = "json") -> Any:
+        """One version in a form that leaves the service: ``format="json"`` answers the export document (a dict:
+        input scaling, basis, category levels, weights, intercept; the README shows a numpy evaluator),
+        ``format="sklearn"`` the bytes of a joblib file holding a scikit-learn Pipeline. Loading a joblib file
+        runs code: load only exports from your own server."""
+        if format not in ("json", "sklearn"):
+            raise ValueError(f"format {format!r} is not offered; use 'json' or 'sklearn'")
+        path = f"/v1/models/{_seg(name)}/versions/{_num(version)}/export"
+        if format == "json":
+            return self._send("GET", path, params={"format": "json"})
+        return self._send("GET", path, params={"format": "sklearn"}, expect="bytes")
+
+    @_route("GET", "/v1/models/{name}/inputs")
+    def inputs(self, name: str, *, version: int | None = None, since: str | None = None,
+               until: str | None = None) -> dict[str, Any]:
+        """Input drift of a version (default: live): recent shares of each input's training bins, PSI and
+        flags, rows outside the training range. ``since``/``until``: ISO 8601 times or spans (``7d``, ``36h``)."""
+        return self._send("GET", f"/v1/models/{_seg(name)}/inputs", params=_window(version, since, until))
+
+    @_route("GET", "/v1/models/{name}/outcomes")
+    def outcomes(self, name: str, *, version: int | None = None, since: str | None = None,
+                 until: str | None = None) -> dict[str, Any]:
+        """Real-world error of scored outcomes (RMSE, MAE, 0.9 coverage) against the CV error, overall and per hour."""
+        return self._send("GET", f"/v1/models/{_seg(name)}/outcomes", params=_window(version, since, until))
+
+    @_route("POST", "/v1/models/{name}/outcomes")
+    def add_outcomes(self, name: str, rows: Sequence[Mapping[str, Any]], *, version: int | None = None) -> dict[str, Any]:
+        """Score a version (default: live) on rows that carry the target's true value; answers the count accepted."""
+        body: dict[str, Any] = {"rows": list(rows)}
+        if version is not None:
+            body["version"] = _num(version)
+        return self._send("POST", f"/v1/models/{_seg(name)}/outcomes", json=body)
+
     @_route("PUT", "/v1/models/{name}/live")
     def set_live(self, name: str, version: int, reason: str) -> dict[str, Any]:
         """Make ``version`` the live version (admin scope); the change and ``reason`` go into the history."""
@@ -359,6 +404,36 @@ class Client:
         """Figure: out-of-fold residuals of one version."""
         return self._send("GET", f"/v1/models/{_seg(name)}/versions/{_num(version)}/plots/residuals",
                           params={"format": format}, expect="bytes")
+
+    def plot_monitoring(self, name: str, kind: str, *, version: int | None = None, since: str | None = None,
+                        until: str | None = None, format: str = "svg") -> bytes:
+        """Figure since training: ``kind`` is ``drift`` (training against recent shares per input),
+        ``outside-range`` (share of rows outside the training range per hour) or ``live-error`` (real error
+        per hour against the CV band). ``since``/``until``: ISO 8601 times or spans (``7d``)."""
+        methods = {"drift": self.plot_drift, "outside-range": self.plot_outside_range, "live-error": self.plot_live_error}
+        if kind not in methods:
+            raise ValueError(f"monitoring figure {kind!r} is not offered; use drift, outside-range or live-error")
+        return methods[kind](name, version=version, since=since, until=until, format=format)
+
+    @_route("GET", "/v1/models/{name}/plots/drift")
+    def plot_drift(self, name: str, **kw: Any) -> bytes:
+        """Figure: each input's training against recent shares, with its PSI (see ``plot_monitoring``)."""
+        return self._monitoring_figure(name, "drift", **kw)
+
+    @_route("GET", "/v1/models/{name}/plots/outside-range")
+    def plot_outside_range(self, name: str, **kw: Any) -> bytes:
+        """Figure: share of served rows outside the training range, per hour (see ``plot_monitoring``)."""
+        return self._monitoring_figure(name, "outside-range", **kw)
+
+    @_route("GET", "/v1/models/{name}/plots/live-error")
+    def plot_live_error(self, name: str, **kw: Any) -> bytes:
+        """Figure: real error of scored outcomes per hour against the CV band (see ``plot_monitoring``)."""
+        return self._monitoring_figure(name, "live-error", **kw)
+
+    def _monitoring_figure(self, name: str, kind: str, *, version: int | None = None, since: str | None = None,
+                           until: str | None = None, format: str = "svg") -> bytes:
+        return self._send("GET", f"/v1/models/{_seg(name)}/plots/{kind}",
+                          params={**_window(version, since, until), "format": format}, expect="bytes")
 
     @_route("GET", "/v1/models/{name}/plots/history")
     def plot_history(self, name: str, format: str = "svg") -> bytes:

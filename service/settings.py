@@ -110,6 +110,18 @@ class Settings(BaseSettings):
         1.0, ge=0, description="Seconds a model's live version number is cached per process; a change made "
         "through this process is seen at once, one made elsewhere after at most this long. 0 disables the cache."
     )
+    monitor: bool = Field(
+        True, description="Count served inputs into each version's training bins (input drift) and keep scored "
+        "outcomes' error sums, aggregated per hour in the catalog; never raw rows. false: served inputs are not "
+        "counted (outcomes sent to /outcomes still are)."
+    )
+    monitor_flush_s: float = Field(
+        5.0, gt=0, le=3600, description="Seconds between writes of a process's monitoring counts to the catalog "
+        "(also written at shutdown); a crash loses at most this long of counts."
+    )
+    monitor_retention_days: int = Field(
+        90, ge=1, description="Hour buckets of monitoring counts older than this many days are deleted."
+    )
 
     @field_validator("workers", mode="before")
     @classmethod

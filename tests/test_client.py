@@ -111,6 +111,16 @@ def test_every_route_called_through_the_client(server, live_service, tmp_path):
         assert len(cv["table"]) == 2 * 8 and cv["chosen"]["basis"] == meta["chosen"]["basis"]
         path = tk.path("pump-c", 1)["path"]
         assert len(path["strengths"]) == len(path["coefficients"])
+        exported = tk.export("pump-c", 1)
+        assert exported["source"] == {"model": "pump-c", "version": 1, "manifest_sha256": meta["checksums"]["manifest_sha256"],
+                                      "created_at": meta["created_at"]}
+        assert tk.export("pump-c", 1, format="sklearn")[:1] == b"\x80"  # a pickle stream's PROTO opcode (joblib.dump)
+        scored = tk.add_outcomes("pump-c", [{"flow_lps": 50.0, "head_m": 30.0, "energy_kwh": 40.0}], version=1)
+        assert scored == {"model": "pump-c", "version": 1, "accepted": 1, "skipped": 0}
+        assert tk.outcomes("pump-c", version=1, since="1d")["rows"] == 1
+        assert tk.inputs("pump-c", version=1)["version"] == 1
+        for kind in ("drift", "outside-range", "live-error"):
+            assert b"<svg" in tk.plot_monitoring("pump-c", kind, version=1)[:400], kind
 
         # Live predictions with intervals: the client's answer is the server's answer, unchanged.
         query = [{"flow_lps": 50.0, "head_m": 30.0}, {"flow_lps": 90.5, "head_m": 12.25}]

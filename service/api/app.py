@@ -43,7 +43,9 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
 
     @asynccontextmanager
     async def lifespan(app: FastAPI):
+        app.state.monitor.start()
         yield
+        app.state.monitor.close()  # writes the last counts
         for fn in on_shutdown or ():
             fn()
 
@@ -71,6 +73,11 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
     app.state.catalog_watch = last_known.watch
     app.state.gate = auth.KeyGate(store.keys, settings.auth_cache_s, last_known)
     app.state.models = ModelCache(store, settings, metrics, last_known)
+    from service.api.monitor import Monitor
+    from service.store.monitor import MonitorSums
+
+    app.state.monitor = Monitor(MonitorSums(store.engine), enabled=settings.monitor, flush_s=settings.monitor_flush_s,
+                                retention_days=settings.monitor_retention_days)
     metrics.watch_jobs(store.jobs.counts)
 
     problems.install(app)
@@ -81,7 +88,9 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
     # same check, ``auth.authorize``, as their first statement instead of through a dependency, which
     # FastAPI would solve per request.
     app.include_router(predict.router)
-    for router in (models.router, trainings.router, plots.router):
+    from service.api.routes import monitoring
+
+    for router in (models.router, trainings.router, plots.router, monitoring.router):
         app.include_router(router, dependencies=[Depends(auth.authorize)])
     from service.api.routes import admin  # API keys and pruning (admin scope)
     app.include_router(admin.router, dependencies=[Depends(auth.authorize)])

@@ -230,7 +230,7 @@ def _figure(src: str, alt: str, caption: str, gid: str) -> str:
     return (
         f'<figure class="plot" id="{esc(gid)}"><img src="{esc(src)}" alt="{esc(alt)}" loading="eager" '
         f'decoding="async"><figcaption>{caption} <span class="formats"><a href="{esc(src)}">SVG</a> · '
-        f'<a href="{esc(src)}?format=png">PNG</a></span></figcaption></figure>'
+        f'<a href="{esc(src)}{"&" if "?" in src else "?"}format=png">PNG</a></span></figcaption></figure>'
     )
 
 
@@ -318,7 +318,27 @@ def model_page(name: str, model: dict[str, Any], versions: list[dict[str, Any]],
                       "see it.", "figure-residuals")
             + "</section>"
         )
-        main = '<div class="two">' + chosen_panel + warn + "</div>" + figures
+        mon = f"/v1/models/{qn}/plots"
+        q = f"?version={selected}"
+        monitoring = (
+            '<section class="panel" id="monitoring"><h2>Since training</h2>'
+            '<p class="muted small">Served inputs against this version\'s training distribution, and the real error '
+            f'of outcomes sent to <span class="mono">POST /v1/models/{esc(name)}/outcomes</span>. As JSON: '
+            f'<a href="/v1/models/{esc(qn)}/inputs{esc(q)}">inputs</a> · '
+            f'<a href="/v1/models/{esc(qn)}/outcomes{esc(q)}">outcomes</a></p>'
+            '<div class="figures">'
+            + _figure(f"{mon}/drift{q}", f"Input drift of {name} v{selected}",
+                      "<strong>Do the inputs still look like the training data?</strong> Grey: training shares of "
+                      "each bin; blue: recent. PSI above 0.25 suggests a retrain (rule of thumb).", "figure-drift")
+            + _figure(f"{mon}/outside-range{q}", f"Rows outside the training range of {name} v{selected}",
+                      "<strong>How often does the model extrapolate?</strong> Share of served rows with an input "
+                      "outside the training range, per hour.", "figure-outside")
+            + _figure(f"{mon}/live-error{q}", f"Real error of {name} v{selected}",
+                      "<strong>Is the real error what CV promised?</strong> RMSE of scored outcomes per hour, "
+                      "against the CV RMSE and its spread over folds.", "figure-live-error")
+            + "</div></section>"
+        )
+        main = '<div class="two">' + chosen_panel + warn + "</div>" + figures + monitoring
 
     live_row, live_pill = ' class="is-live"', ' <span class="pill">live</span>'
     vrows = "".join(

@@ -33,7 +33,15 @@ class InputScaler:
     scale: np.ndarray
 
     @classmethod
-    def fit(cls, names: list[str], X: np.ndarray) -> "InputScaler":
+    def fit(cls, names: list[str], X: np.ndarray, weights: np.ndarray | None = None) -> "InputScaler":
+        """Mean and population standard deviation of each column (weighted by ``weights`` when given,
+        as ``StandardScaler.fit(X, sample_weight=w)`` computes them); a constant column keeps scale 1."""
+        if weights is not None and X.shape[0]:
+            w = np.asarray(weights, dtype=np.float64)
+            mean = (w @ X) / w.sum()
+            std = np.sqrt((w @ (X - mean) ** 2) / w.sum())
+            scale = np.where(std > 0, std, 1.0)
+            return cls(list(names), mean, scale)
         mean = X.mean(axis=0) if X.shape[0] else np.zeros(X.shape[1])
         std = X.std(axis=0) if X.shape[0] else np.ones(X.shape[1])
         scale = np.where(std > 0, std, 1.0)

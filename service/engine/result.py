@@ -19,6 +19,7 @@ import numpy as np
 
 from service.errors import InvalidData
 
+from . import drift
 from .basis import BasisSetting, Categories, InputScaler
 from .model import FittedModel
 from .solvers import Fit, centred_scaled, fit, leverage_factor
@@ -344,9 +345,11 @@ def path_of(full: Fit, strength: float, names: list[str]) -> dict[str, Any]:
 def finish(spec: TuneSpec, settings: list[BasisSetting], rows: list[dict[str, Any]], picks: tuple[int, int, int],
            model: FittedModel, full: Fit, *, n_rows: int, n_splits: int, folds: np.ndarray,
            oof_predictions: np.ndarray, oof_observed: np.ndarray, fingerprint: dict[str, Any],
-           warnings: list[str] = (), summary_extra: dict[str, Any] | None = None) -> TuneResult:
+           warnings: list[str] = (), summary_extra: dict[str, Any] | None = None,
+           drift_inputs: tuple[np.ndarray, list[np.ndarray]] | None = None) -> TuneResult:
     """The ``TuneResult`` of either front end, from the CV rows, the selection ``picks`` (chosen, best
-    mean, one-standard-error) and the refit model."""
+    mean, one-standard-error) and the refit model. ``drift_inputs``: the numeric training inputs (n, d)
+    (or a uniform sample of them) and each categorical column's level counts, for the drift reference."""
     chosen_idx, best_idx, onese_idx = picks
     chosen = rows[chosen_idx]
     metric, rule = spec.selection.metric, spec.selection.rule
@@ -371,7 +374,10 @@ def finish(spec: TuneSpec, settings: list[BasisSetting], rows: list[dict[str, An
         path=path_of(full, chosen["strength"], model.term_names),
         warnings=edge_warnings(settings, chosen, strengths) + table_warnings + list(warnings),
         oof_predictions=oof_predictions, oof_observed=oof_observed, oof_residuals=oof_observed - oof_predictions,
-        fingerprint=fingerprint, summary=summary)
+        fingerprint=fingerprint, summary=summary,
+        drift=None if drift_inputs is None else drift.reference(
+            model.features, drift_inputs[0], model.categories.names, model.categories.levels, drift_inputs[1],
+            oof_predictions[np.isfinite(oof_predictions)]))
 
 
 @dataclass
@@ -413,6 +419,7 @@ class TuneResult:
     oof_residuals: np.ndarray
     fingerprint: dict[str, Any]
     summary: dict[str, Any] = field(default_factory=dict)
+    drift: dict[str, Any] | None = None  # training distribution in bins (``drift.reference``)
 
     def to_artifact(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
         """(JSON-serializable manifest body, plain numeric arrays): all a stored version needs."""
@@ -447,6 +454,8 @@ class TuneResult:
             "data_fingerprint": self.fingerprint,
             "feature_schema": self.model.feature_schema(),
         }
+        if self.drift is not None:
+            body["drift_reference"] = self.drift
         return body, arrays
 
 

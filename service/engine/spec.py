@@ -197,9 +197,23 @@ class TuneSpec(BaseModel):
     cv: CrossValidation = Field(default_factory=CrossValidation)
     selection: Selection = Field(default_factory=Selection)
     execution: Execution = Field(default_factory=Execution)
+    weight: str | None = Field(
+        None, min_length=1, description="Column of non-negative row weights (weighted least squares, weighted input "
+        "standardization, weighted CV metrics); a zero-weight row keeps its fold but contributes nothing.")
 
     @model_validator(mode="after")
     def _consistent(self) -> "TuneSpec":
+        if self.weight is not None:
+            roles = {"target": self.target, "cv.group_by": self.cv.group_by, "cv.order_by": self.cv.order_by,
+                     "cv.row_key": self.cv.row_key}
+            for role, col in roles.items():
+                if col == self.weight:
+                    raise ValueError(f"the weight column {self.weight!r} is also {role}; weights need a column of their own")
+            if self.weight in (self.features or []) or self.weight in self.categorical:
+                raise ValueError(f"the weight column {self.weight!r} cannot also be an input; remove it from features "
+                                 "or categorical")
+            if self.cv.scheme == "loo":
+                raise ValueError("the loo scheme (exact leave-one-out) does not take row weights; use kfold")
         if self.features is not None:
             if not self.features and not self.categorical:
                 raise ValueError("features must name at least one column (or leave it out to use all numeric columns)")

@@ -25,6 +25,8 @@ from dataclasses import dataclass, field
 from functools import partial
 from typing import Any, Callable, Iterator, Protocol, Sequence
 
+from collections import Counter
+
 import numpy as np
 
 from service.errors import InvalidData, InvalidSpec
@@ -64,7 +66,7 @@ class Scan:
     hi: np.ndarray
     y_lo: float
     y_hi: float
-    levels: list[set[str]]
+    levels: list[Counter]  # rows of every level of every categorical column
     groups: set[str]
     sample_h: np.ndarray  # bottom-k key hashes
     sample_pos: np.ndarray
@@ -114,7 +116,7 @@ def _scan_partition(ctx: _Ctx, part: Partition) -> Scan:
     n, mean, m2 = 0, np.zeros(d), np.zeros(d)
     lo, hi = np.full(d, np.inf), np.full(d, -np.inf)
     y_lo, y_hi = np.inf, -np.inf
-    levels: list[set[str]] = [set() for _ in ctx.spec.categorical]
+    levels: list[Counter] = [Counter() for _ in ctx.spec.categorical]
     groups: set[str] = set()
     sh, sp, sx = np.zeros(0, np.uint64), np.zeros(0, np.int64), np.zeros((0, d))
     lanes: dict[str, np.ndarray] = {}
@@ -161,7 +163,7 @@ def _merge_scan(a: Scan, b: Scan) -> Scan:
     sh = np.concatenate([a.sample_h, b.sample_h])
     keep = _bottom_k(sh, KMEANS_SAMPLE)
     return Scan(tot, mean, m2, np.minimum(a.lo, b.lo), np.maximum(a.hi, b.hi), min(a.y_lo, b.y_lo),
-                max(a.y_hi, b.y_hi), [x | y for x, y in zip(a.levels, b.levels)], a.groups | b.groups, sh[keep],
+                max(a.y_hi, b.y_hi), [x + y for x, y in zip(a.levels, b.levels)], a.groups | b.groups, sh[keep],
                 np.concatenate([a.sample_pos, b.sample_pos])[keep], np.vstack([a.sample_X, b.sample_X])[keep],
                 add_lanes(a.lanes, b.lanes))
 
@@ -320,6 +322,10 @@ def check_stream_spec(spec: TuneSpec) -> None:
     if spec.basis_fit == "per_fold":
         raise InvalidSpec("basis_fit 'per_fold' needs all rows in memory; use 'all_rows' out of core",
                           errors=[{"field": "basis_fit", "value": "per_fold", "message": "not available out of core"}])
+    if spec.weight is not None:
+        raise InvalidSpec(f"row weights (weight {spec.weight!r}) are trained in memory only: set execution.mode to memory "
+                          "(up to the service's training row limit), or leave weight out to stream",
+                          errors=[{"field": "weight", "value": spec.weight, "message": "not available out of core"}])
 
 
 def check_partitions(schema: dict[str, str], spec: Any, n_rows: int, budget: Budget | None = None) -> dict[str, int]:
@@ -550,6 +556,8 @@ def _refit(run: _Run, m: _Model, scan: Scan, settings: list[BasisSetting], group
                   folds=np.zeros(0, dtype=np.int64), oof_predictions=fin.sample_pred, oof_observed=fin.sample_obs,
                   fingerprint=fingerprint_of(scan.lanes, n),
                   warnings=data_warnings(spec, run.ctx.schema or {}, run.ctx.columns, int(n), m.folds, len(model.term_names)),
+                  drift_inputs=(scan.sample_X, [np.array([scan.levels[j][lv] for lv in levels], dtype=np.float64)
+                                                for j, levels in enumerate(m.categories.levels)]),
                   summary_extra={"execution": "streaming", "executor": getattr(run.executor, "name", "in-process"),
                                  "partitions": len(run.parts)})
 

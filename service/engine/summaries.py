@@ -45,28 +45,38 @@ def merge(factors: list[np.ndarray]) -> np.ndarray:
 
 @dataclass
 class Summary:
-    """The R factor of ``[1, Φ, y]`` over some rows, and how many rows."""
+    """The R factor of ``[1, Φ, y]`` over some rows, and how many rows (the sum of the row weights when the
+    rows are weighted, see ``of``)."""
 
     R: np.ndarray
     n: int
 
     @staticmethod
-    def of(Phi: np.ndarray, y: np.ndarray, chunk_rows: int = CHUNK_ROWS, on_block=None) -> "Summary":
-        """``on_block(rows)``, if given, is called after each chunk of rows (progress of a long pass)."""
+    def of(Phi: np.ndarray, y: np.ndarray, chunk_rows: int = CHUNK_ROWS, on_block=None,
+           weights: np.ndarray | None = None) -> "Summary":
+        """``on_block(rows)``, if given, is called after each chunk of rows (progress of a long pass).
+
+        ``weights`` (n,), non-negative: the summary of the rows scaled by √w, ``[√w, √w Φ, √w y]``, whose
+        ``RᵀR`` holds the weighted cross-products; ``n`` is then Σw, so every mean, scale, penalty and
+        metric computed from it is the weighted one (weighted least squares; a zero weight drops the row)."""
         n, p = Phi.shape
         parts = []
+        root = None if weights is None else np.sqrt(np.asarray(weights, dtype=np.float64))
         for lo in range(0, n, chunk_rows):
             hi = min(n, lo + chunk_rows)
             A = np.empty((hi - lo, p + 2), order="F")
             A[:, 0] = 1.0
             A[:, 1:-1] = Phi[lo:hi]
             A[:, -1] = y[lo:hi]
+            if root is not None:
+                A *= root[lo:hi, None]
             parts.append(qr_r(A))
             if on_block is not None:
                 on_block(hi - lo)
         if not parts:
             return Summary(np.zeros((p + 2, p + 2)), 0)
-        return Summary(merge(parts), n)
+        total = n if root is None else float(np.sum(np.asarray(weights, dtype=np.float64)))
+        return Summary(merge(parts), total)
 
     @staticmethod
     def combine(items: list["Summary"]) -> "Summary":

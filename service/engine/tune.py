@@ -65,6 +65,10 @@ class Prepared:
     order: np.ndarray | None
     used: list[str]
     keys: np.ndarray | None = None
+    w: np.ndarray | None = None  # (n,) row weights, or None (every row weighs 1)
+
+    def rows_w(self, idx: np.ndarray) -> np.ndarray | None:
+        return None if self.w is None else self.w[idx]
 
 
 def load_model(manifest_body: dict[str, Any], arrays: dict[str, np.ndarray]) -> FittedModel:
@@ -111,7 +115,27 @@ def prepare(data: Any, spec: TuneSpec, budget: Budget | None = None) -> Prepared
     if spec.cv.scheme == "time_ordered":
         order = order_key(cols[spec.cv.order_by], spec.cv.order_by)
     keys = cols[spec.cv.row_key] if spec.cv.row_key else None
-    return Prepared(cols, features, X, y, categories, cat_block, groups, order, used, keys)
+    w = row_weights(cols, spec.weight) if spec.weight else None
+    return Prepared(cols, features, X, y, categories, cat_block, groups, order, used, keys, w)
+
+
+def row_weights(cols: dict[str, np.ndarray], name: str) -> np.ndarray:
+    """The weight column as float64, refused naming the column and rows when a weight is negative, missing
+    or infinite, or when every weight is zero."""
+    w = numeric_column(cols, name, "weight")
+    bad = np.flatnonzero(~np.isfinite(w) | (w < 0))
+    if bad.size:
+        rows = bad[:5].tolist()
+        raise InvalidData(f"weight column {name!r} has negative, missing or infinite weights at rows {rows} "
+                          f"(e.g. {w[bad[0]]!r}); weights must be finite and at least 0",
+                          errors=[{"field": name, "rows": rows, "message": "weights must be finite and >= 0"}])
+    positive = int(np.count_nonzero(w > 0))
+    if not positive:
+        raise InvalidData(f"weight column {name!r} is zero on every row; at least one row must weigh more than 0",
+                          errors=[{"field": name, "message": "all weights are zero"}])
+    # Weights are relative: rescaled to average 1 over the rows that weigh something, so multiplying every
+    # weight by a constant changes nothing and a penalty strength means what it means without weights.
+    return w * (positive / float(w.sum()))
 
 
 def resolve_columns(spec: TuneSpec, schema: dict[str, str]) -> tuple[list[str], list[str]]:
@@ -125,7 +149,7 @@ def resolve_columns(spec: TuneSpec, schema: dict[str, str]) -> tuple[list[str], 
 
     if spec.target not in schema:
         raise unknown("target", spec.target, "target column")
-    special = {spec.target, *spec.categorical, spec.cv.group_by, spec.cv.order_by, spec.cv.row_key}
+    special = {spec.target, *spec.categorical, spec.cv.group_by, spec.cv.order_by, spec.cv.row_key, spec.weight}
     if spec.features is None:
         features = [c for c, kind in schema.items() if kind == "number" and c not in special]
     else:
@@ -140,13 +164,15 @@ def resolve_columns(spec: TuneSpec, schema: dict[str, str]) -> tuple[list[str], 
         col = getattr(spec.cv, field_name)
         if col and col not in schema:
             raise unknown(f"cv.{field_name}", col, f"cv.{field_name} column")
+    if spec.weight is not None and spec.weight not in schema:
+        raise unknown("weight", spec.weight, "weight column")
     if not features and not spec.categorical:
         raise InvalidSpec("no feature columns: the data has no numeric column besides the target; "
                           "name features or categorical columns")
     if not features and any(b.kind != "linear" for b in spec.bases):
         raise InvalidSpec("polynomial and rbf bases need at least one numeric feature")
     columns = [spec.target, *features, *spec.categorical]
-    for extra in (spec.cv.group_by, spec.cv.order_by, spec.cv.row_key):
+    for extra in (spec.cv.group_by, spec.cv.order_by, spec.cv.row_key, spec.weight):
         if extra and extra not in columns:
             columns.append(extra)
     return features, columns
@@ -301,7 +327,7 @@ def _tune(data, spec: TuneSpec, progress, should_stop, budget) -> TuneResult:
     prep = prepare(data, spec, budget)
     n, d = prep.X.shape
     check_budget(spec, n, d, budget, prep.categories.width)
-    scaler = InputScaler.fit(prep.features, prep.X)
+    scaler = InputScaler.fit(prep.features, prep.X, prep.w)
     Xs = scaler.transform(prep.X)
     settings = basis_settings(spec, Xs, prep.keys)
     strengths = spec.penalty.strength_grid()
@@ -348,7 +374,17 @@ def _tune(data, spec: TuneSpec, progress, should_stop, budget) -> TuneResult:
                   fingerprint=fingerprint_of(fingerprint_columns(prep.cols, prep.used), n),
                   warnings=search.warnings + data_warnings(
                       spec, {c: column_kind(v) for c, v in prep.cols.items()}, prep.used, int(n), search.n_splits,
-                      len(model.term_names)))
+                      len(model.term_names)),
+                  drift_inputs=(prep.X, _level_counts(prep)))
+
+
+def _level_counts(prep: Prepared) -> list[np.ndarray]:
+    """Training rows of every level of every categorical column (column sums of the one-hot block)."""
+    out, off = [], 0
+    for lv in prep.categories.levels:
+        out.append(prep.cat_block[:, off:off + len(lv)].sum(axis=0))
+        off += len(lv)
+    return out
 
 
 # ---------------------------------------------------------------------------------------------------
@@ -364,10 +400,14 @@ def _model(prep: Prepared, spec: TuneSpec, scaler: InputScaler, setting: BasisSe
            fold_fits: list[Fit] | None, oof_abs: np.ndarray, oof_fold: np.ndarray) -> tuple[FittedModel, Fit]:
     """The model refit on all rows (``result.build_model``), with its training leverages from ``Phi``."""
     full, l_idx, F = refit_all_rows(full_summary, spec, strengths, strength, ratio)
-    FZ = ((Phi - full.mean) / full.scale) @ F.T
+    kept = slice(None) if prep.w is None else prep.w > 0  # zero-weight rows are not training data
+    FZ = ((Phi[kept] - full.mean) / full.scale) @ F.T
     lev = 1.0 / full.n + np.einsum("ij,ij->i", FZ, FZ)
     finite = np.isfinite(oof_abs)
-    ranges = {f: [float(prep.X[:, j].min()), float(prep.X[:, j].max())] for j, f in enumerate(prep.features)}
+    if prep.w is not None:
+        finite &= prep.w > 0  # intervals from the out-of-fold residuals of rows that weigh something
+    X = prep.X[kept]
+    ranges = {f: [float(X[:, j].min()), float(X[:, j].max())] for j, f in enumerate(prep.features)}
     model = build_model(spec, prep.features, scaler, setting, prep.categories, full, l_idx, ratio, F, ranges,
                         float(lev.max()), thin_residuals(oof_abs[finite], oof_fold[finite]), fold_fits)
     return model, full
@@ -401,8 +441,9 @@ class _SharedSearch:
         """One summary per atom; with ``tick``, the first half of the setting's progress moves after
         every row block (``Summary.of``'s chunks) of every atom."""
         tick = self.tick
+        prep = self.prep
         if tick is None:
-            return [Summary.of(D[idx], y[idx]) for idx in self.plan.atoms]
+            return [Summary.of(D[idx], y[idx], weights=prep.rows_w(idx)) for idx in self.plan.atoms]
         total = max(1, sum(len(idx) for idx in self.plan.atoms))
         seen = [0]
 
@@ -410,7 +451,7 @@ class _SharedSearch:
             seen[0] += rows
             tick(0.5 * seen[0] / total)
 
-        return [Summary.of(D[idx], y[idx], on_block=block) for idx in self.plan.atoms]
+        return [Summary.of(D[idx], y[idx], on_block=block, weights=prep.rows_w(idx)) for idx in self.plan.atoms]
 
     def _atoms(self, setting: BasisSetting) -> tuple[np.ndarray, list[Summary]]:
         """(design in the summaries' column order, summaries of each atom) for one setting."""
@@ -435,8 +476,11 @@ class _SharedSearch:
         if self.spec.selection.metric == "mae":
             def mae_rows(test_ids: list[int], f: Fit) -> np.ndarray:
                 rows = np.concatenate([self.plan.atoms[i] for i in test_ids])
-                sae = np.abs(y[rows, None] - f.intercept[None, :] - D[rows] @ f.weights.T).sum(axis=0)
-                return metric_value("mae", rows.size, sae=sae)
+                err = np.abs(y[rows, None] - f.intercept[None, :] - D[rows] @ f.weights.T)
+                if self.prep.w is None:
+                    return metric_value("mae", rows.size, sae=err.sum(axis=0))
+                w = self.prep.w[rows]
+                return metric_value("mae", float(w.sum()), sae=w @ err)
         tick = self.tick
         values, _ = score_splits(atoms, self.plan.splits, self.spec, self.strengths, self.ratios, mae_rows,
                                  tick=None if tick is None else (lambda f: tick(0.5 + 0.5 * f)))
@@ -459,7 +503,7 @@ class _SharedSearch:
             if q:
                 atoms = [a.permuted(order) for a in atoms]
         else:
-            atoms = [Summary.of(Phi[idx], y[idx]) for idx in plan.atoms]
+            atoms = [Summary.of(Phi[idx], y[idx], weights=self.prep.rows_w(idx)) for idx in plan.atoms]
         full_summary = Summary.combine([atoms[i] for i in plan.refit_atoms])
         n = y.size
         oof_pred = np.full(n, np.nan)
@@ -491,7 +535,7 @@ class _PerFoldSearch(_SharedSearch):
         return np.sort(np.concatenate([self.plan.atoms[i] for i in atom_ids]))
 
     def _split_design(self, setting: BasisSetting, train_rows: np.ndarray):
-        sc = InputScaler.fit(self.prep.features, self.prep.X[train_rows])
+        sc = InputScaler.fit(self.prep.features, self.prep.X[train_rows], self.prep.rows_w(train_rows))
         Xs = sc.transform(self.prep.X)
         if setting.kind == "rbf":
             keys = None if self.prep.keys is None else self.prep.keys[train_rows]
@@ -508,21 +552,23 @@ class _PerFoldSearch(_SharedSearch):
         for j, (train_ids, test_ids) in enumerate(self.plan.splits):
             tr, te = self._rows(train_ids), self._rows(test_ids)
             Phi = self._split_design(setting, tr)
-            train = Summary.of(Phi[tr], y[tr])
-            test = Summary.of(Phi[te], y[te])
+            w_te = self.prep.rows_w(te)
+            train = Summary.of(Phi[tr], y[tr], weights=self.prep.rows_w(tr))
+            test = Summary.of(Phi[te], y[te], weights=w_te)
             for r_i, ratio in enumerate(self.ratios):
                 f = fit(train, self.spec.penalty.kind, self.strengths, ratio)
                 if metric == "mae":
-                    resid = y[te, None] - f.intercept[None, :] - Phi[te] @ f.weights.T
-                    values[r_i, :, j] = metric_value("mae", te.size, sae=np.abs(resid).sum(axis=0))
+                    err = np.abs(y[te, None] - f.intercept[None, :] - Phi[te] @ f.weights.T)
+                    values[r_i, :, j] = (metric_value("mae", te.size, sae=err.sum(axis=0)) if w_te is None else
+                                         metric_value("mae", float(w_te.sum()), sae=w_te @ err))
                 else:
                     values[r_i, :, j] = metric_value(metric, test.n, sse=test.sse(f.residual_operator()),
                                                      sst=test.total_ss())
             if self.tick is not None:
                 self.tick((j + 1) / self.plan.n_splits)
-        Xs = InputScaler.fit(self.prep.features, self.prep.X).transform(self.prep.X)
-        df = setting_df(Summary.of(_design(setting, Xs, self.prep.cat_block), y), self.spec, self.strengths,
-                        self.ratios)
+        Xs = InputScaler.fit(self.prep.features, self.prep.X, self.prep.w).transform(self.prep.X)
+        df = setting_df(Summary.of(_design(setting, Xs, self.prep.cat_block), y, weights=self.prep.w), self.spec,
+                        self.strengths, self.ratios)
         yield values, df, None
 
     def refit(self, s_idx, setting, strength, ratio, strengths, scaler, chosen):
@@ -533,11 +579,13 @@ class _PerFoldSearch(_SharedSearch):
             train_ids, test_ids = self.plan.splits[j]
             tr, te = self._rows(train_ids), self._rows(test_ids)
             Phi = self._split_design(setting, tr)
-            f = fit(Summary.of(Phi[tr], y[tr]), self.spec.penalty.kind, np.array([strength]), ratio)
+            f = fit(Summary.of(Phi[tr], y[tr], weights=self.prep.rows_w(tr)), self.spec.penalty.kind,
+                    np.array([strength]), ratio)
             oof_pred[te] = f.intercept[0] + Phi[te] @ f.weights[0]
         Xs = scaler.transform(self.prep.X)
         Phi = _design(setting, Xs, self.prep.cat_block)
-        model, full = _model(self.prep, self.spec, scaler, setting, Summary.of(Phi, y), strengths, strength, ratio,
+        model, full = _model(self.prep, self.spec, scaler, setting, Summary.of(Phi, y, weights=self.prep.w), strengths,
+                             strength, ratio,
                              Phi, None, np.abs(y - oof_pred), np.zeros(n, dtype=np.int64))
         return model, full, oof_pred
 

@@ -33,7 +33,7 @@ MIGRATIONS_DIR = Path(__file__).resolve().parent / "migrations"
 VERSION_TABLE = "tikhon_schema_version"
 # The newest revision in migrations/versions (tests/store/test_migrations.py checks they agree). Knowing
 # it without Alembic lets an up-to-date catalog open without importing Alembic at all.
-SCHEMA_HEAD = "0002"
+SCHEMA_HEAD = "0003"
 SQLITE_BUSY_TIMEOUT_S = 30.0
 PG_CONNECT_TIMEOUT_S = 5
 _MIGRATION_LOCK = 0x54494B484F4E  # advisory-lock key used while migrating ("TIKHON" in hex)

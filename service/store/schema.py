@@ -117,3 +117,20 @@ catalog_info = Table(
     Column("key", String(64), primary_key=True),
     Column("value", String(200), nullable=False),
 )
+
+# Aggregated monitoring counts (never raw request rows): one row per model version, hour bucket, kind
+# ("inputs": drift bins of served inputs; "outcomes": error sums of scored outcomes) and replica (one
+# server process). A replica rewrites only its own rows with its cumulative counts, so replicas add up
+# on read and a replica's flush is idempotent (see ``service.store.monitor``).
+monitor_sums = Table(
+    "monitor_sums",
+    metadata,
+    Column("model", String(63), primary_key=True),
+    Column("version", Integer, primary_key=True),
+    Column("bucket", BigInteger, primary_key=True),  # start of the hour, seconds since the Unix epoch (UTC)
+    Column("kind", String(16), primary_key=True),
+    Column("replica", String(32), primary_key=True),
+    Column("counts", JSONV, nullable=False),
+    Column("updated_at", TS, nullable=False),
+    Index("ix_monitor_sums_lookup", "model", "version", "kind", "bucket"),
+)

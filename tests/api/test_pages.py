@@ -105,6 +105,7 @@ def test_model_page_shows_choice_warnings_figures_and_history(open_service):
         assert href in links and httpx.get(f"{base}{href}").status_code == 200
     imgs = [a["src"] for t, a in parse(r.text).tags if t == "img"]
     assert imgs == [f"/v1/models/pump-page/versions/2/plots/{k}" for k in ("cv", "path", "residuals")] + [
+        f"/v1/models/pump-page/plots/{k}?version=2" for k in ("drift", "outside-range", "live-error")] + [
         "/v1/models/pump-page/plots/history"]
     assert manifest["warnings"] and all(html.escape(w) in r.text for w in manifest["warnings"])
     # Promotions with their reasons, escaped: the markup in the reason is shown, never run.

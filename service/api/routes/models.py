@@ -2,14 +2,18 @@
 
 from __future__ import annotations
 
+import io
 from typing import Any, Literal
+
+import joblib
 
 from fastapi import APIRouter, Path, Query, Request
 from fastapi.responses import Response
 
-from service.api import auth
+from service.api import auth, monitor
 from service.api.render import json_response, read_json
 from service.api.schemas import LiveRequest, schema_ref
+from service.engine.export import export_json, sklearn_pipeline
 from service.errors import Conflict, IntegrityFailure, InvalidData
 from service.store.names import validate_name
 from service.store.schema import VERSION_MAX
@@ -66,11 +70,15 @@ def get_model(request: Request, name: str = NamePath) -> Response:
     versions = store.list_versions(name)
     live = out.get("live_version")
     out["versions"] = [v.get("version") for v in versions]
+    out["monitoring_warnings"] = []
     if live is not None:
-        out["live"] = version_metadata(name, live, store.get_manifest(name, live, cv_table=False))
+        manifest = store.get_manifest(name, live, cv_table=False)
+        out["live"] = version_metadata(name, live, manifest)
+        out["monitoring_warnings"] = monitor.live_warnings(request.app.state.monitor, name, live, manifest)
     out["links"] = {
         "versions": f"/v1/models/{name}/versions", "history": f"/v1/models/{name}/history",
         "trainings": f"/v1/trainings?model={name}", "predict": f"/v1/models/{name}/predict",
+        "inputs": f"/v1/models/{name}/inputs", "outcomes": f"/v1/models/{name}/outcomes",
     }
     return json_response(out)
 
@@ -147,6 +155,29 @@ def get_path(request: Request, name: str = NamePath, version: int = VersionPath)
     body = _engine_body(manifest)
     return json_response({"name": name, "version": version, "chosen": body.get("chosen"),
                           "path": resolve_arrays(store, name, version, manifest, body.get("path"))})
+
+
+@router.get("/models/{name}/versions/{version}/export",
+            summary="The model in a form that leaves the service: JSON to evaluate anywhere, or a scikit-learn pipeline",
+            responses={200: {"content": {"application/json": {}, "application/octet-stream": {}}}}, **auth.READ)
+def export_version(request: Request, name: str = NamePath, version: int = VersionPath,
+                   format: Literal["json", "sklearn"] = Query(
+                       "json", description="json: the model's formula as numbers (see the README's evaluator); "
+                                           "sklearn: a joblib file of a scikit-learn Pipeline (loading it runs code: "
+                                           "load only exports from your own server).")) -> Response:
+    validate_name(name)
+    store = _store(request)
+    loaded = store.load(name, version)  # verified against the catalog's checksums
+    if format == "json":
+        body = export_json(loaded.model)
+        body["source"] = {"model": name, "version": int(version), "manifest_sha256": loaded.checksum,
+                          "created_at": loaded.created_at}
+        return json_response(body, headers={
+            "Content-Disposition": f'attachment; filename="{name}-v{int(version)}.json"'})
+    buf = io.BytesIO()
+    joblib.dump(sklearn_pipeline(loaded.model), buf)  # written here, never loaded by the service
+    return Response(buf.getvalue(), media_type="application/octet-stream", headers={
+        "Content-Disposition": f'attachment; filename="{name}-v{int(version)}.joblib"'})
 
 
 @router.put(

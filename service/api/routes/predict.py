@@ -192,6 +192,7 @@ async def _predict(request: Request, served: Served, interval_q: float | None) -
     else:
         detail = await to_thread.run_sync(_compute, served, cols, interval, settings.predict_memory_bytes)
     request.app.state.metrics.count_predictions(served.name, served.version, n)
+    request.app.state.monitor.observe(served, cols, detail)  # an append; counted off the request path
     accept = request.headers.get("accept", "")
     if "text/csv" in accept or (mt == "text/csv" and "application/json" not in accept):
         text = _csv(detail, interval is not None) if n <= INLINE_ROWS else await to_thread.run_sync(_csv, detail, interval is not None)
