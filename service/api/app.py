@@ -38,12 +38,14 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
 
         store = Store(settings)
 
+    from service.api.intake_process import IntakePool
     from service.api.models import ModelCache
     from service.api.routes import health, models, pages, plots, predict, trainings
 
     @asynccontextmanager
     async def lifespan(app: FastAPI):
         yield
+        app.state.intake.close()
         for fn in on_shutdown or ():
             fn()
 
@@ -65,6 +67,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
     app.state.settings = settings
     paths.register(settings)  # problem details name these folders' paths relative to them, never absolute
     app.state.store = store
+    app.state.intake = IntakePool(settings.intake_processes)  # large JSON training bodies are read there
     app.state.metrics = metrics
     # The catalog's last answers (keys, live versions), served for up to stale_ok_s while it is unavailable.
     last_known = LastKnown(settings.stale_ok_s, CatalogWatch())
