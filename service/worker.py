@@ -156,13 +156,14 @@ def _train(data_path: str | None, spec: dict, conn, progress, cancel, deadline: 
         if stream is not None:
             from service.engine.executors import DaskExecutor, SerialExecutor
             from service.engine.streaming import tune_partitions
+            from service.engine.tune import Budget
             from service.sources import open_source
 
             schema, parts = open_source(stream)
             executor = DaskExecutor(dask_scheduler, dask_workers) if dask_scheduler else SerialExecutor()
-            try:
+            try:  # the server's limits (max_levels: checked while the rows are scanned)
                 result = tune_partitions(parts, schema, spec, executor=executor, progress=on_progress,
-                                         should_stop=should_stop)
+                                         should_stop=should_stop, budget=Budget(**(limits or {})))
             finally:
                 executor.close()
         else:

@@ -73,10 +73,14 @@ def load_model(manifest_body: dict[str, Any], arrays: dict[str, np.ndarray]) -> 
 
 
 # ---------------------------------------------------------------------------------------------------
-def check_levels(name: str, levels: int, budget: Budget) -> None:
+def check_levels(name: str, levels: int, budget: Budget, *, rows_read: int | None = None) -> None:
+    """Refuse a categorical column with more than ``budget.max_levels`` levels, before any one-hot block
+    exists. ``rows_read``: the count is of the first rows read so far (a streamed scan stops there)."""
     if levels > budget.max_levels:
+        seen = "" if rows_read is None else f" (counted in the first {rows_read:,} rows read; there may be more)"
         raise BudgetExceeded(
-            f"categorical column {name!r} has {levels:,} distinct levels, above the limit max_levels="
+            f"categorical column {name!r} has {'at least ' if seen else ''}{levels:,} distinct levels{seen}, above "
+            "the limit max_levels="
             f"{budget.max_levels:,} (each level becomes a column of the design); group rare levels into one "
             "(e.g. 'other'), use an identifier column as cv.group_by or cv.row_key instead of as an input, or raise "
             "TIKHON_MAX_LEVELS on the server",
