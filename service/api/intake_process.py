@@ -5,7 +5,8 @@ A JSON body of training rows is costly to read in the interpreter: orjson builds
 one of them. A worker thread does not help: the interpreter lock is held the whole time, and single-row
 predictions on the same process wait for it. So a JSON training body larger than
 ``intake_process_bytes`` is handed, as bytes, to a small pool of *intake processes*
-(``intake_processes``, started when the first such body arrives, spawned, dying with the API process).
+(``intake_processes``, started when the first such body arrives, spawned, dying with the API process,
+at a lower CPU priority).
 There ``read_json_body`` does what the API process would have done: parse, validate the request's
 envelope and the spec's size, turn the rows (or CSV text) into columns, validate them against the spec
 (the engine's own ``prepare`` and budget checks), and stage them as Parquet in the store's incoming
@@ -47,8 +48,9 @@ def limits_of(settings: Any) -> dict[str, Any]:
     return {k: getattr(settings, k) for k in LIMITS}
 
 
-def read_json_body(raw: bytes, limits: dict[str, Any], incoming: str) -> dict[str, Any]:
+def read_json_body(body: bytes | str, limits: dict[str, Any], incoming: str) -> dict[str, Any]:
     """The whole in-memory intake of one JSON training body (runs in an intake process, or inline).
+    ``body``: the bytes, or the path of the file they were written to (read, then removed).
 
     Returns ``{"request": {spec, promote, min_improvement}, "data": ...}`` plus, for rows or CSV data,
     ``origin``, ``spec`` and ``counts`` (None when the request has no spec: the live spec is checked
@@ -57,6 +59,13 @@ def read_json_body(raw: bytes, limits: dict[str, Any], incoming: str) -> dict[st
     from service.api.routes.trainings import parse_training_body
 
     settings = types.SimpleNamespace(**limits)
+    if isinstance(body, str):
+        spooled = Path(body)
+        try:
+            body = spooled.read_bytes()
+        finally:
+            intake.discard(spooled)
+    raw, body = body, None
     try:
         parsed, data = parse_training_body(raw)
         del raw
@@ -83,10 +92,13 @@ def read_json_body(raw: bytes, limits: dict[str, Any], incoming: str) -> dict[st
 
 
 def _start(parent_pid: int) -> None:
-    """Initializer of an intake process: die with the API process (an orphan would hold memory)."""
-    from service.worker import _die_with_parent
+    """Initializer of an intake process: die with the API process (an orphan would hold memory), and run
+    at the training processes' lower CPU priority (``worker.TRAINING_NICENESS``): on a small host it
+    shares the cores with the event loop, and reading a body can wait while predictions cannot."""
+    from service.worker import _die_with_parent, _lower_priority
 
     _die_with_parent(parent_pid)
+    _lower_priority()
 
 
 class IntakePool:
@@ -104,16 +116,19 @@ class IntakePool:
                                                  initargs=(os.getpid(),))
             return self._pool
 
-    async def read_json(self, raw: bytes, settings: Any, incoming: Path) -> dict[str, Any]:
-        """``read_json_body`` in an intake process. A process that died (killed, out of memory) is
-        replaced for the next body; this one is answered with a 429 problem to submit it again."""
+    async def read_json(self, body: bytes | Path, settings: Any, incoming: Path) -> dict[str, Any]:
+        """``read_json_body`` in an intake process, for the body's bytes or the file holding them (which
+        is removed). A process that died (killed, out of memory) is replaced for the next body; this one
+        is answered with a 429 problem to submit it again."""
+        spooled = body if isinstance(body, Path) else None
         pool = self._executor()
         try:
-            future = pool.submit(read_json_body, raw, limits_of(settings), str(incoming))
+            future = pool.submit(read_json_body, str(body) if spooled else body, limits_of(settings), str(incoming))
         except BrokenProcessPool:
             self._drop(pool)
+            _discard_file(spooled)
             raise self._broken() from None
-        del raw
+        del body
         try:
             return await asyncio.wrap_future(future)
         except BrokenProcessPool:
@@ -122,6 +137,8 @@ class IntakePool:
         except BaseException:  # the client went away: a file staged later is removed when it arrives
             future.add_done_callback(_discard_staged)
             raise
+        finally:
+            _discard_file(spooled)  # read and removed by the intake process, unless it never got to it
 
     @staticmethod
     def _broken() -> Busy:
@@ -140,6 +157,13 @@ class IntakePool:
             pool, self._pool = self._pool, None
         if pool is not None:
             pool.shutdown(wait=True, cancel_futures=True)
+
+
+def _discard_file(path: Path | None) -> None:
+    if path is not None:
+        from service.api import intake
+
+        intake.discard(path)
 
 
 def _discard_staged(future) -> None:

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import asyncio
 import io
+import json
 
 import httpx
 import pytest
@@ -114,6 +115,15 @@ def test_a_large_json_body_is_read_staged_and_checked_in_an_intake_process(pair,
     assert list(staged) == list(expected)
     for name in expected:  # the staged columns are the rows' values, bit for bit
         assert np.array_equal(staged[name], expected[name])
+    assert list(store.jobs.incoming_dir.iterdir()) == []
+
+    # the same body sent without a length (chunked transfer): read in memory, parsed in the intake process
+    raw = json.dumps({"data": {"rows": rows}, "spec": SPEC}).encode()
+    chunked = httpx.post(f"{base}/v1/models/far-chunked/trainings", timeout=120,
+                         content=iter([raw[i:i + 65_536] for i in range(0, len(raw), 65_536)]),
+                         headers={"content-type": "application/json"})
+    assert chunked.status_code == 202, chunked.text
+    assert calls == [] and chunked.json()["data"] == job["data"]
     assert list(store.jobs.incoming_dir.iterdir()) == []
 
 

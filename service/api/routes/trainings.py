@@ -100,6 +100,25 @@ def _save_upload(source, target: FsPath) -> None:
             out.write(chunk)
 
 
+async def _spool(request: Request, incoming: FsPath) -> FsPath:
+    """Write the request body to a file under ``incoming`` as it arrives (never joined in memory)."""
+    target = incoming / f"{uuid.uuid4().hex}-body.json"
+    try:
+        with open(target, "xb") as out:
+            async for chunk in request.stream():
+                out.write(chunk)
+    except OSError as exc:  # a full or read-only store: a storage problem (507), never a 500
+        _discard(target)
+        raise StorageFailure(
+            f"the request body could not be staged in the store folder (TIKHON_STORE) "
+            f"({exc.strerror or type(exc).__name__}); nothing was stored and no job was created. Check that "
+            "the store folder is writable and has free space, then submit again.") from None
+    except BaseException:  # the body limit, a client that went away
+        _discard(target)
+        raise
+    return target
+
+
 def _discard(path: FsPath) -> None:
     """Remove a partly written upload; a clean-up that fails (a read-only store) never hides the cause."""
     with contextlib.suppress(OSError):
@@ -163,11 +182,18 @@ async def _read_submission(request: Request, incoming: FsPath
             await form.close()
         return parsed, {}, (target, getattr(upload, "filename", None)), None
     if mt in ("", "application/json") or mt.endswith("+json"):
-        raw = await request.body()
         settings = request.app.state.settings
-        if len(raw) > settings.intake_process_bytes:
+        declared = request.headers.get("content-length", "")
+        if declared.isdigit() and int(declared) > settings.intake_process_bytes:
             # parsed, turned into columns, validated and staged in an intake process (the row objects
-            # would hold this process's interpreter lock for seconds): only a summary comes back
+            # would hold this process's interpreter lock for seconds): the body goes to a file as it
+            # arrives, and only a summary comes back
+            read = await request.app.state.intake.read_json(await _spool(request, incoming), settings, incoming)
+            if read.get("error") is not None and not read["deferred"]:
+                raise read["error"]
+            return _Fields(**read["request"]), read["data"], None, read
+        raw = await request.body()
+        if len(raw) > settings.intake_process_bytes:  # a body sent without a length (chunked)
             read = await request.app.state.intake.read_json(raw, settings, incoming)
             del raw
             if read.get("error") is not None and not read["deferred"]:
