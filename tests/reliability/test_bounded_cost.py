@@ -510,3 +510,46 @@ def test_a_streamed_job_uses_the_servers_level_limit(tmp_path, live_service):
     for k in ("type", "title", "detail", "errors", "limit", "allowed", "received"):
         assert got[k] == want[k], k
     assert got["received"] == 80 and got["allowed"] == 50 and "'site'" in got["detail"]
+
+
+# ---------------------------------------------------------------------------------------------------
+# 7b. progress moves at every heartbeat, even inside one basis setting
+
+
+def test_progress_moves_at_every_heartbeat_while_one_basis_setting_runs(tmp_path, live_service, monkeypatch):
+    import time
+
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    # One basis setting (degree 3 of 8 inputs: 165 terms) over 40,000 rows: it lasts many heartbeats of
+    # 50 ms, and much of that time is inside single LAPACK calls that report nothing.
+    cols = _wide_rows(40_000, 21)
+    spec = {"target": "y", "features": WIDE_FEATURES, "bases": [{"kind": "polynomial", "degrees": [3]}],
+            "penalty": {"kind": "l2", "strengths": [1.0]}, "cv": {"folds": 3, "seed": 1}}
+    with live_service(tmp_path, worker=True, worker_heartbeat_s=0.05) as (base, store, settings):
+        pq.write_table(pa.table(cols), settings.data_dir / "wide.parquet")
+        beats: list[tuple[int, int | None]] = []
+        real = store.jobs.heartbeat
+
+        def spy(job_id, worker_id, progress):
+            beats.append((progress["done"], progress["total"]))
+            return real(job_id, worker_id, progress)
+
+        monkeypatch.setattr(store.jobs, "heartbeat", spy)
+        r = httpx.post(f"{base}/v1/models/paced/trainings", timeout=60,
+                       json={"data": {"source": "wide.parquet"}, "spec": {**spec, "execution": {"mode": "memory"}}})
+        assert r.status_code == 202, r.text
+        end = time.monotonic() + 600
+        while (job := httpx.get(f"{base}/v1/trainings/{r.json()['id']}").json())["state"] not in (
+                "succeeded", "failed", "cancelled"):
+            assert time.monotonic() < end, job  # a readiness wait, not a timing check
+            time.sleep(0.05)
+    assert job["state"] == "succeeded", job
+    total = job["progress"]["total"]
+    assert total == 3 * 1_000 and job["progress"]["done"] == total  # 3 splits x 1,000 sub-units, one setting
+    # the heartbeats from the first that shows the setting under way to the setting's end
+    inside = [d for d, t in beats if t == total and 0 < d < total]
+    assert len(inside) >= 5, beats  # several heartbeats passed inside the one setting
+    assert all(b > a for a, b in zip(inside, inside[1:])), beats  # and each one moved the progress
+    assert beats[-1] == (total, total)
