@@ -166,3 +166,36 @@ def test_refusals_from_the_intake_process_are_the_in_process_problems(pair, case
         assert a.json()["type"].endswith("invalid-spec") and "no live version" in a.json()["detail"]
     assert list(far_store.jobs.incoming_dir.iterdir()) == []  # nothing staged stays behind
     assert far_store.jobs.list(name="bad") == []
+
+
+def test_an_intake_process_that_dies_is_a_429_and_is_replaced(tmp_path, kit):
+    import os
+    import signal
+
+    from service.api.intake_process import IntakePool
+    from service.errors import Busy
+
+    settings = kit.make_settings(tmp_path)
+    incoming = tmp_path / "incoming"
+    incoming.mkdir()
+    body = json.dumps({"data": {"source": "june.csv"}, "spec": SPEC}).encode()
+    pool = IntakePool(1)
+
+    async def scenario():
+        first = await pool.read_json(body, settings, incoming)  # starts the process
+        assert first["data"] == {"source": "june.csv"} and first["request"]["spec"] == SPEC
+        for pid in list(pool._executor()._processes):  # killed (the OOM killer, an operator)
+            os.kill(pid, signal.SIGKILL)
+        with pytest.raises(Busy) as err:
+            for _ in range(50):  # the pool notices the death at the next submission or while it waits
+                await pool.read_json(body, settings, incoming)
+                await asyncio.sleep(0.1)
+        assert err.value.extra == {"retry_after": 1} and "Submit again" in err.value.detail
+        again = await pool.read_json(body, settings, incoming)  # a fresh process reads the next body
+        assert again == first
+
+    try:
+        asyncio.run(scenario())
+    finally:
+        pool.close()
+    assert list(incoming.iterdir()) == []
