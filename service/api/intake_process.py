@@ -4,14 +4,14 @@ A JSON body of training rows is costly to read in the interpreter: orjson builds
 (650,000 rows of a 37 MB body are ~2 million Python objects), and turning them into columns walks every
 one of them. A worker thread does not help: the interpreter lock is held the whole time, and single-row
 predictions on the same process wait for it. So a JSON training body larger than
-``intake_process_bytes`` is handed, as bytes, to a small pool of *intake processes*
-(``intake_processes``, started when the first such body arrives, spawned, dying with the API process,
-at a lower CPU priority).
-There ``read_json_body`` does what the API process would have done: parse, validate the request's
-envelope and the spec's size, turn the rows (or CSV text) into columns, validate them against the spec
-(the engine's own ``prepare`` and budget checks), and stage them as Parquet in the store's incoming
-folder. Back come only a small summary: the request's fields, the data's description (rows, columns,
-sha256), the normalized spec and grid counts, and the staged file's path.
+``intake_process_bytes`` goes to a small pool of *intake processes* (``intake_processes``, started
+when the first such body arrives, spawned, dying with the API process, at a lower CPU priority): as
+the path of the file the route wrote it to while it arrived (a body with a declared length), or as
+bytes (a chunked body). There ``read_json_body`` does what the API process would have done: parse,
+validate the request's envelope and the spec's size, turn the rows (or CSV text) into columns, validate
+them against the spec (the engine's own ``prepare`` and budget checks), and stage them as Parquet in
+the store's incoming folder. Only a small summary comes back: the request's fields, the data's
+description (rows, columns, sha256), the normalized spec and grid counts, and the staged file's path.
 
 Errors keep their order and their problem details. An error of the body or of the spec's size is
 returned as ``error`` with ``deferred`` False and answered at once; an error of the data or of its
