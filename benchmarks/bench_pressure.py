@@ -148,6 +148,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--pressure-s", type=float, default=40.0)
     ap.add_argument("--connections", type=int, default=2)
     ap.add_argument("--hostile-workers", type=int, default=2)
+    ap.add_argument("--only", default="", help="comma-separated hostile kinds to send (default: all), "
+                    "to tell which one costs the latency")
     args = ap.parse_args(argv)
 
     with tempfile.TemporaryDirectory(prefix="tikhon-pressure-") as tmp:
@@ -157,6 +159,11 @@ def main(argv: list[str] | None = None) -> int:
         script.write_text('wrk.method = "POST"\nwrk.headers["Content-Type"] = "application/json"\n'
                           f"wrk.body = '{json.dumps(PROBE)}'\n")
         hostile = hostile_requests()
+        if args.only:
+            wanted = set(args.only.split(","))
+            hostile = [h for h in hostile if h[0] in wanted]
+            if not hostile:
+                raise SystemExit(f"--only names no hostile kind: {args.only}")
         proc, base = start_server(settings, root / "server.log")
         try:
             assert httpx.post(f"{base}/v1/models/pumps/predict", json=PROBE, timeout=60).status_code == 200

@@ -33,6 +33,10 @@ class Settings(BaseSettings):
         "weighted by basis width (see README).",
     )
     max_body_bytes: int = Field(64 * 2**20, ge=1024, description="Largest request body accepted.")
+    intake_process_bytes: int = Field(
+        2**20, ge=0, description="A JSON training body larger than this is parsed, checked and staged in a separate "
+        "intake process, so building its row objects never holds the API process's interpreter lock.")
+    intake_processes: int = Field(1, ge=1, description="Intake processes per API process (started on first use).")
     max_rows_per_request: int = Field(100_000, ge=1, description="Most rows in one predict request.")
     max_training_rows: int = Field(5_000_000, ge=1, description="Most rows in one in-memory training job.")
     max_training_seconds: float = Field(3600.0, gt=0, description="Wall-time limit of one training job.")

@@ -88,6 +88,22 @@ def _problem(err: BaseException) -> dict[str, Any]:
     return body
 
 
+# Progress between the engine's own reports. The engine reports after each row block and each split of a
+# basis setting, but one block or one split's factorization of a wide basis is a single LAPACK call that can
+# outlast several heartbeats. So a heartbeat that finds no new report shows one sub-unit more than the last
+# one did (a job under the worker counts ``tune.PACED_STEPS`` = 1,000 sub-units per basis setting x split),
+# never reaching the end of the setting under way (``tune``'s ``progress_span``): the setting's end, and
+# everything after it, is reported by the engine only. The nudge is the smallest step there is, so the
+# figure stays the engine's own to within a few thousandths, and it can keep moving for at least 1,000
+# heartbeats without a report (83 minutes at the default 5 s).
+def paced(shown: int, done: int, span_end: int) -> int:
+    """What a heartbeat reports: the engine's ``done`` once it passed what was ``shown``; else ``shown + 1``
+    while that stays below ``span_end`` (the end of the setting under way; 0: no setting under way)."""
+    if done > shown:
+        return done
+    return shown + 1 if shown + 1 < span_end else shown
+
+
 # Training processes run at a lower CPU priority than the server that spawned them (a niceness
 # increment, POSIX nice(2)): on a small host the embedded worker shares the cores with the event loop,
 # and at equal priority a training job starved predictions (the soak in tests/reliability saw latencies
@@ -164,12 +180,16 @@ def _train(data_path: str | None, spec: dict, conn, progress, cancel, deadline: 
         def on_progress(done: int, total: int) -> None:
             progress[0], progress[1] = int(done), int(total)
 
+        def on_span(start: int, end: int) -> None:  # the basis setting under way (see paced)
+            progress[2], progress[3] = int(start), int(end)
+
         def should_stop() -> bool:
             return cancel.is_set() or time.time() > deadline
 
         if stream is not None:
             from service.engine.executors import DaskExecutor, SerialExecutor
             from service.engine.streaming import tune_partitions
+            from service.engine.tune import Budget
             from service.sources import CsvPart
 
             schema, parts = stream_partitions(stream, data_dir)
@@ -183,9 +203,9 @@ def _train(data_path: str | None, spec: dict, conn, progress, cancel, deadline: 
                 # (distributed.process watches its parent through a pipe).
                 mp.current_process().daemon = False
             executor = DaskExecutor(dask_scheduler, dask_workers) if dask_scheduler else SerialExecutor()
-            try:
+            try:  # the server's limits (max_levels: checked while the rows are scanned)
                 result = tune_partitions(parts, schema, spec, executor=executor, progress=on_progress,
-                                         should_stop=should_stop)
+                                         should_stop=should_stop, budget=Budget(**(limits or {})))
             finally:
                 executor.close()
         else:
@@ -195,7 +215,8 @@ def _train(data_path: str | None, spec: dict, conn, progress, cancel, deadline: 
             from service.engine.tune import Budget
 
             cols = read_staged(data_path)
-            result = tune(cols, spec, progress=on_progress, should_stop=should_stop, budget=Budget(**(limits or {})))
+            result = tune(cols, spec, progress=on_progress, should_stop=should_stop, budget=Budget(**(limits or {})),
+                          progress_span=on_span)
         body, arrays = result.to_artifact()
         folds = np.asarray(result.folds)
         conn.send(("ok", body, arrays, {
@@ -469,7 +490,7 @@ class Worker:
                 "the job has no staged data file; submit it again through POST /v1/models/{name}/trainings.")))
             return
         parent_conn, child_conn = _SPAWN.Pipe(duplex=False)
-        progress = _SPAWN.Array("q", 2, lock=False)
+        progress = _SPAWN.Array("q", 4, lock=False)  # done, total, and the span of the basis setting under way
         cancel = _SPAWN.Event()
         started = time.time()
         deadline = started + s.max_training_seconds
@@ -487,6 +508,7 @@ class Worker:
         stop_reason: str | None = None  # "cancelled" | "timeout" | "lost" | "shutdown"
         stop_since = 0.0
         last_beat = 0.0
+        shown = 0  # the progress the last heartbeat reported
         try:
             while True:
                 if parent_conn.poll(min(0.1, s.worker_heartbeat_s)):
@@ -504,8 +526,9 @@ class Worker:
                     break
                 if now - last_beat >= s.worker_heartbeat_s:
                     last_beat = now
+                    shown = paced(shown, progress[0], progress[3])
                     try:
-                        state = self.store.jobs.heartbeat(jid, self.worker_id, {"done": progress[0], "total": progress[1] or None})
+                        state = self.store.jobs.heartbeat(jid, self.worker_id, {"done": shown, "total": progress[1] or None})
                     except Conflict:
                         stop_reason = "lost"
                         proc.kill()

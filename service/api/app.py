@@ -38,6 +38,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
 
         store = Store(settings)
 
+    from service.api.intake_process import IntakePool
     from service.api.models import ModelCache
     from service.api.routes import health, models, pages, plots, predict, trainings
 
@@ -46,6 +47,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
         app.state.monitor.start()
         yield
         app.state.monitor.close()  # writes the last counts
+        app.state.intake.close()
         for fn in on_shutdown or ():
             fn()
 
@@ -67,6 +69,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
     app.state.settings = settings
     paths.register(settings)  # problem details name these folders' paths relative to them, never absolute
     app.state.store = store
+    app.state.intake = IntakePool(settings.intake_processes)  # large JSON training bodies are read there
     app.state.metrics = metrics
     # The catalog's last answers (keys, live versions), served for up to stale_ok_s while it is unavailable.
     last_known = LastKnown(settings.stale_ok_s, CatalogWatch())

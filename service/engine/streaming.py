@@ -43,7 +43,7 @@ from .table import categorical_column, numeric_column
 from .result import (PLOT_SAMPLE, TuneResult, add_lanes, build_model, check_spread, fingerprint_columns,
                      fingerprint_of, finish, metric_value, refit_all_rows, score_splits, select, setting_df,
                      table_rows)
-from .tune import Budget, basis_settings, check_budget, resolve_columns
+from .tune import Budget, basis_settings, check_budget, check_levels, resolve_columns
 
 SAMPLE_SALT = 0x5A17
 PLOT_SALT = 0x9107
@@ -82,6 +82,7 @@ class _Ctx:
     batch_rows: int
     sample_size: int = KMEANS_SAMPLE
     schema: dict[str, str] | None = None  # every column of the source: "number", "boolean" or "text"
+    budget: Budget | None = None  # the scan refuses a categorical column above budget.max_levels
 
 
 def _keys(ctx: _Ctx, batch: dict[str, np.ndarray], offset: int, rows: int) -> np.ndarray:
@@ -139,6 +140,8 @@ def _scan_partition(ctx: _Ctx, part: Partition) -> Scan:
         y_lo, y_hi = min(y_lo, float(y.min())), max(y_hi, float(y.max()))
         for s, name in zip(levels, ctx.spec.categorical):
             s.update(categorical_column(batch, name, pos).tolist())
+            if ctx.budget is not None:  # stop at the first batch past the limit: the sets stay small
+                check_levels(name, len(s), ctx.budget, rows_read=pos + b - part.offset)
         if ctx.spec.cv.group_by:
             groups.update(categorical_column(batch, ctx.spec.cv.group_by, pos).tolist())
         h = key_hash(_keys(ctx, batch, pos, b), ctx.spec.cv.seed ^ SAMPLE_SALT)
@@ -391,7 +394,9 @@ def _tune_partitions(partitions, schema, spec: TuneSpec, executor, progress, sho
     if not partitions:
         raise InvalidData("the source has no partitions (no files or no rows)")
     features, columns = resolve_columns(spec, schema)
-    run = _Run(_Ctx(spec, features, columns, spec.execution.batch_rows, schema=dict(schema)), list(partitions),
+    budget = budget or Budget()
+    run = _Run(_Ctx(spec, features, columns, spec.execution.batch_rows, schema=dict(schema), budget=budget),
+               list(partitions),
                executor or SerialExecutor(), progress, should_stop)
     scan = run.map_reduce(partial(_scan_partition, run.ctx), run.parts, _merge_scan)
     m, settings = _setup(run, scan, budget)
@@ -453,6 +458,8 @@ def _setup(run: _Run, scan: Scan, budget: Budget | None) -> tuple[_Model, list[B
     check_spread(spec.target, "target", scan.y_lo, scan.y_hi, n)
     for j, f in enumerate(features):
         check_spread(f, "feature", scan.lo[j], scan.hi[j], n)
+    for name, s in zip(spec.categorical, scan.levels):  # every partition's own count passed: now all of them
+        check_levels(name, len(s), budget or Budget())
     categories = Categories(list(spec.categorical), [sorted(s) for s in scan.levels])
     check_budget(spec, n, len(features), budget, categories.width, rows_in_memory=spec.execution.batch_rows)
     std = np.sqrt(scan.m2 / n)

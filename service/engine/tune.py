@@ -77,10 +77,14 @@ def load_model(manifest_body: dict[str, Any], arrays: dict[str, np.ndarray]) -> 
 
 
 # ---------------------------------------------------------------------------------------------------
-def check_levels(name: str, levels: int, budget: Budget) -> None:
+def check_levels(name: str, levels: int, budget: Budget, *, rows_read: int | None = None) -> None:
+    """Refuse a categorical column with more than ``budget.max_levels`` levels, before any one-hot block
+    exists. ``rows_read``: the count is of the first rows read so far (a streamed scan stops there)."""
     if levels > budget.max_levels:
+        seen = "" if rows_read is None else f" (counted in the first {rows_read:,} rows read; there may be more)"
         raise BudgetExceeded(
-            f"categorical column {name!r} has {levels:,} distinct levels, above the limit max_levels="
+            f"categorical column {name!r} has {'at least ' if seen else ''}{levels:,} distinct levels{seen}, above "
+            "the limit max_levels="
             f"{budget.max_levels:,} (each level becomes a column of the design); group rare levels into one "
             "(e.g. 'other'), use an identifier column as cv.group_by or cv.row_key instead of as an input, or raise "
             "TIKHON_MAX_LEVELS on the server",
@@ -213,6 +217,7 @@ def basis_width(spec: TuneSpec, d: int, n: int) -> list[tuple[str, int]]:
 
 
 PROGRESS_STEPS = 100  # sub-units of one (setting × split) unit in a long job's progress
+PACED_STEPS = 1_000  # sub-units of one (setting × split) unit when tune is given a progress_span
 PROGRESS_DETAIL_FLOPS = 1e10  # a job estimated above this reports progress inside basis settings
 L1_SWEEPS = 50  # coordinate-descent sweeps assumed per strength (and l1 ratio) in the cost estimate
 
@@ -307,23 +312,27 @@ def check_budget(spec: Any, n_rows: int, n_features: int, budget: Budget | None 
 
 # ---------------------------------------------------------------------------------------------------
 def tune(data: Any, spec: Any, *, progress: Callable[[int, int], None] | None = None,
-         should_stop: Callable[[], bool] | None = None, budget: Budget | None = None) -> TuneResult:
+         should_stop: Callable[[], bool] | None = None, budget: Budget | None = None,
+         progress_span: Callable[[int, int], None] | None = None) -> TuneResult:
     """Choose basis setting and penalty strength jointly by cross-validation, then refit on all rows.
 
     ``data``: dict name → 1-D array (n,), pandas DataFrame or pyarrow Table. ``spec``: dict or ``TuneSpec``.
     ``progress(done, total)`` is called after each (basis setting × fold) unit; ``should_stop()`` returning
-    True raises ``Cancelled``; ``budget`` bounds the work (``Budget``). Returns a ``TuneResult``
+    True raises ``Cancelled``; ``budget`` bounds the work (``Budget``). ``progress_span(start, end)``, if
+    given, is called as each basis setting starts: progress stays in ``[start, end)`` until that setting
+    is done (the worker moves its shown progress inside that span between the engine's reports); with it,
+    every job counts ``PACED_STEPS`` sub-units per unit. Returns a ``TuneResult``
     (``service.engine.result``); bad data or specs raise ``InvalidData`` / ``InvalidSpec`` naming the
     field, value and fix.
     """
     spec = parse_spec(spec)
     with watch_convergence() as unconverged:
-        result = _tune(data, spec, progress, should_stop, budget)
+        result = _tune(data, spec, progress, should_stop, budget, progress_span)
     result.warnings.extend(convergence_warnings(unconverged))
     return result
 
 
-def _tune(data, spec: TuneSpec, progress, should_stop, budget) -> TuneResult:
+def _tune(data, spec: TuneSpec, progress, should_stop, budget, span=None) -> TuneResult:
     prep = prepare(data, spec, budget)
     n, d = prep.X.shape
     check_budget(spec, n, d, budget, prep.categories.width)
@@ -344,13 +353,27 @@ def _tune(data, spec: TuneSpec, progress, should_stop, budget) -> TuneResult:
 
     # A long job reports progress inside each basis setting too (after each row block of each fold's
     # pass and after each split's fit): its units are then PROGRESS_STEPS sub-units of a (setting × split).
-    steps = PROGRESS_STEPS if progress and estimate_cost(spec, n, d, prep.categories.width)["flops"] > PROGRESS_DETAIL_FLOPS else 1
+    # With a span reader (the worker), every job counts PACED_STEPS sub-units per unit: room for the worker
+    # to move the progress it shows by one sub-unit per heartbeat between the engine's own reports.
+    if progress and span is not None:
+        steps = PACED_STEPS
+    elif progress and estimate_cost(spec, n, d, prep.categories.width)["flops"] > PROGRESS_DETAIL_FLOPS:
+        steps = PROGRESS_STEPS
+    else:
+        steps = 1
     unit = search.units_per_setting * steps
     total = len(settings) * unit
     done = 0
     rows: list[dict[str, Any]] = []
     for s_idx, setting in enumerate(settings):
-        if steps > 1:
+        if span is not None:
+            span(done, done + unit)
+            progress(done, total)  # the total is known from the first setting on
+        if span is not None:  # the engine's reports stop a twentieth short of the setting's end: the fit on
+            # all rows (df) still follows the last split, and the worker's nudges need room there too
+            room = unit - max(1, unit // 20)
+            search.tick = lambda frac, base=done: progress(base + min(room, int(frac * room)), total)
+        elif steps > 1:
             search.tick = lambda frac, base=done: progress(base + min(unit - 1, int(frac * unit)), total)
         for values, df, extra in search.evaluate(s_idx, setting):
             # values: (n_ratios, L, n_splits) metric per split; df: (n_ratios, L) complexity on all rows

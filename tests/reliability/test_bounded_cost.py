@@ -399,3 +399,157 @@ def test_progress_moves_inside_a_long_basis_setting(monkeypatch, rk):
     assert inside == sorted(inside) and len(set(inside)) == 9 and max(inside) < 300
     # the numbers are those of the same job without progress reports
     assert result.cv_table == tune_module.tune(rows, spec).cv_table
+
+
+# ---------------------------------------------------------------------------------------------------
+# 2b. the streamed path counts levels too (a source read out of core, in row batches)
+
+def _level_table(n: int, levels: int, seed: int) -> dict[str, np.ndarray]:
+    rng = np.random.default_rng(seed)
+    site = np.array([f"s{i % levels:05d}" for i in range(n)], dtype=object)
+    return {"site": site, "flow_lps": rng.uniform(10, 90, n), "energy_kwh": rng.uniform(50, 400, n)}
+
+
+def _write_parts(folder: Path, cols: dict[str, np.ndarray], files: int) -> None:
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    folder.mkdir(parents=True, exist_ok=True)
+    n = len(next(iter(cols.values())))
+    cuts = np.linspace(0, n, files + 1).astype(int)
+    for i in range(files):
+        pq.write_table(pa.table({k: v[cuts[i]:cuts[i + 1]] for k, v in cols.items()}), folder / f"part-{i}.parquet")
+
+
+LEVEL_SPEC = {"target": "energy_kwh", "features": ["flow_lps"], "categorical": ["site"], "bases": [{"kind": "linear"}],
+              "penalty": {"kind": "l2", "strengths": [1.0]}, "cv": {"folds": 3, "seed": 1, "assignment": "hash"}}
+
+
+@pytest.fixture
+def no_one_hot(monkeypatch):
+    """Any one-hot expansion fails the test: the refusal must come before it."""
+    from service.engine import basis
+
+    def refuse(self, *a, **kw):
+        raise AssertionError("a one-hot block was built")
+
+    monkeypatch.setattr(basis.Categories, "encode", refuse)
+
+
+def test_a_streamed_source_over_the_level_limit_is_refused_like_the_in_memory_path(tmp_path, no_one_hot):
+    from service.engine.streaming import tune_partitions
+    from service.engine.tune import Budget, prepare
+    from service.engine import parse_spec
+    from service.errors import BudgetExceeded
+    from service.sources import open_source
+
+    # three files of 600 rows, 400 levels each (1,200 in all): every file is under the limit of 1,000, the
+    # source is not, so only the count over all partitions can tell
+    cols = _level_table(1_800, 1_200, seed=3)
+    cols["site"] = np.array([f"s{i:05d}" for i in range(1_800)], dtype=object)
+    cols["site"][1_200:] = cols["site"][:600]  # 1,200 distinct labels over 1,800 rows
+    _write_parts(tmp_path / "src", cols, files=3)
+    schema, parts = open_source(tmp_path / "src")
+    with pytest.raises(BudgetExceeded) as streamed:
+        tune_partitions(parts, schema, LEVEL_SPEC, budget=Budget())
+    with pytest.raises(BudgetExceeded) as in_memory:
+        prepare(cols, parse_spec(LEVEL_SPEC), Budget())
+    # the same problem: same message (column and count), same field error and limit members
+    assert str(streamed.value) == str(in_memory.value)
+    assert streamed.value.errors == in_memory.value.errors == [
+        {"field": "categorical", "value": "site", "message": "1200 levels"}]
+    assert streamed.value.extra == in_memory.value.extra == {"limit": "max_levels", "allowed": 1_000, "received": 1_200}
+
+
+def test_a_streamed_scan_stops_at_the_first_batch_past_the_level_limit(tmp_path, no_one_hot):
+    from service.engine.streaming import tune_partitions
+    from service.engine.tune import Budget
+    from service.errors import BudgetExceeded
+    from service.sources import open_source
+
+    # one file, a new level on each of 50,000 rows, read in batches of 2,000 rows: the scan stops after the
+    # first batch that passes 1,000 levels (here the first: 2,000 levels) instead of collecting 50,000 labels
+    cols = _level_table(50_000, 50_000, seed=4)
+    _write_parts(tmp_path / "wide", cols, files=1)
+    schema, parts = open_source(tmp_path / "wide")
+    spec = {**LEVEL_SPEC, "execution": {"batch_rows": 2_000}}
+    with pytest.raises(BudgetExceeded) as err:
+        tune_partitions(parts, schema, spec, budget=Budget())
+    assert err.value.extra == {"limit": "max_levels", "allowed": 1_000, "received": 2_000}
+    assert "'site'" in err.value.detail and "at least 2,000 distinct levels" in err.value.detail
+    assert "first 2,000 rows read" in err.value.detail
+
+
+def test_a_streamed_job_uses_the_servers_level_limit(tmp_path, live_service):
+    import time
+
+    from service.api.problems import problem_from_error
+    from service.engine import parse_spec
+    from service.engine.tune import Budget, prepare
+    from service.errors import BudgetExceeded
+
+    # 80 levels (40 in each of the two files): under the default 1,000, over this server's 50
+    cols = _level_table(900, 80, seed=5)
+    cols["site"] = np.array([f"s{(i // 450) * 40 + i % 40:05d}" for i in range(900)], dtype=object)
+    with live_service(tmp_path, worker=True, max_levels=50) as (base, store, settings):
+        _write_parts(settings.data_dir / "levels", cols, files=2)
+        r = httpx.post(f"{base}/v1/models/levels/trainings", timeout=60,
+                       json={"data": {"source": "levels"}, "spec": {**LEVEL_SPEC, "execution": {"mode": "streaming"}}})
+        assert r.status_code == 202, r.text
+        end = time.monotonic() + 300
+        while (job := httpx.get(f"{base}/v1/trainings/{r.json()['id']}").json())["state"] not in (
+                "succeeded", "failed", "cancelled"):
+            assert time.monotonic() < end, job  # a readiness wait, not a timing check
+            time.sleep(0.05)
+    assert job["state"] == "failed", job
+    with pytest.raises(BudgetExceeded) as in_memory:
+        prepare(cols, parse_spec(LEVEL_SPEC), Budget(max_levels=50))
+    want = problem_from_error(in_memory.value)
+    got = job["problem"]
+    assert got["status"] == want["status"] == 422
+    for k in ("type", "title", "detail", "errors", "limit", "allowed", "received"):
+        assert got[k] == want[k], k
+    assert got["received"] == 80 and got["allowed"] == 50 and "'site'" in got["detail"]
+
+
+# ---------------------------------------------------------------------------------------------------
+# 7b. progress moves at every heartbeat, even inside one basis setting
+
+
+def test_progress_moves_at_every_heartbeat_while_one_basis_setting_runs(tmp_path, live_service, monkeypatch):
+    import time
+
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    # One basis setting (degree 3 of 8 inputs: 165 terms) over 40,000 rows: it lasts many heartbeats of
+    # 50 ms, and much of that time is inside single LAPACK calls that report nothing.
+    cols = _wide_rows(40_000, 21)
+    spec = {"target": "y", "features": WIDE_FEATURES, "bases": [{"kind": "polynomial", "degrees": [3]}],
+            "penalty": {"kind": "l2", "strengths": [1.0]}, "cv": {"folds": 3, "seed": 1}}
+    with live_service(tmp_path, worker=True, worker_heartbeat_s=0.05) as (base, store, settings):
+        pq.write_table(pa.table(cols), settings.data_dir / "wide.parquet")
+        beats: list[tuple[int, int | None]] = []
+        real = store.jobs.heartbeat
+
+        def spy(job_id, worker_id, progress):
+            beats.append((progress["done"], progress["total"]))
+            return real(job_id, worker_id, progress)
+
+        monkeypatch.setattr(store.jobs, "heartbeat", spy)
+        r = httpx.post(f"{base}/v1/models/paced/trainings", timeout=60,
+                       json={"data": {"source": "wide.parquet"}, "spec": {**spec, "execution": {"mode": "memory"}}})
+        assert r.status_code == 202, r.text
+        end = time.monotonic() + 600
+        while (job := httpx.get(f"{base}/v1/trainings/{r.json()['id']}").json())["state"] not in (
+                "succeeded", "failed", "cancelled"):
+            assert time.monotonic() < end, job  # a readiness wait, not a timing check
+            time.sleep(0.05)
+    assert job["state"] == "succeeded", job
+    total = job["progress"]["total"]
+    assert total == 3 * 1_000 and job["progress"]["done"] == total  # 3 splits x 1,000 sub-units, one setting
+    # the heartbeats from the first that shows the setting under way to the setting's end
+    inside = [d for d, t in beats if t == total and 0 < d < total]
+    assert len(inside) >= 5, beats  # several heartbeats passed inside the one setting
+    assert all(b > a for a, b in zip(inside, inside[1:])), beats  # and each one moved the progress
+    assert beats[-1] == (total, total)

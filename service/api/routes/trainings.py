@@ -11,7 +11,7 @@ from anyio import to_thread
 from fastapi import APIRouter, Path, Query, Request
 from fastapi.responses import Response
 
-from service.api import auth, intake, problems
+from service.api import auth, intake, problems, tables
 from service.api.problems import MalformedBody, UnsupportedMediaType
 from service.api.render import json_response, media_type, parse_json
 from service.api.schemas import TrainingRequest, parse_training_request, schema_ref
@@ -76,10 +76,11 @@ def job_view(job: dict[str, Any]) -> dict[str, Any]:
 
 
 OFF_LOOP_BYTES = 65_536  # a JSON body larger than this is parsed and validated in a worker thread
+# (and one larger than settings.intake_process_bytes in an intake process: service.api.intake_process)
 _UPLOAD_CHUNK = 1 << 20
 
 
-def _parse_training_json(raw: bytes) -> tuple[TrainingRequest, dict[str, Any]]:
+def parse_training_body(raw: bytes) -> tuple[TrainingRequest, dict[str, Any]]:
     body = parse_json(raw)
     data = body.get("data") if isinstance(body, dict) else None
     if isinstance(data, dict) and isinstance(data.get("rows"), list) and data["rows"]:
@@ -99,16 +100,43 @@ def _save_upload(source, target: FsPath) -> None:
             out.write(chunk)
 
 
+async def _spool(request: Request, incoming: FsPath) -> FsPath:
+    """Write the request body to a file under ``incoming`` as it arrives (never joined in memory)."""
+    target = incoming / f"{uuid.uuid4().hex}-body.json"
+    try:
+        with open(target, "xb") as out:
+            async for chunk in request.stream():
+                out.write(chunk)
+    except OSError as exc:  # a full or read-only store: a storage problem (507), never a 500
+        _discard(target)
+        raise StorageFailure(
+            f"the request body could not be staged in the store folder (TIKHON_STORE) "
+            f"({exc.strerror or type(exc).__name__}); nothing was stored and no job was created. Check that "
+            "the store folder is writable and has free space, then submit again.") from None
+    except BaseException:  # the body limit, a client that went away
+        _discard(target)
+        raise
+    return target
+
+
 def _discard(path: FsPath) -> None:
     """Remove a partly written upload; a clean-up that fails (a read-only store) never hides the cause."""
     with contextlib.suppress(OSError):
         path.unlink(missing_ok=True)
 
 
+class _Fields:
+    """The request fields an intake process sent back (``intake_process.read_json_body``)."""
+
+    def __init__(self, spec: dict[str, Any] | None, promote: str, min_improvement: float):
+        self.spec, self.promote, self.min_improvement = spec, promote, min_improvement
+
+
 async def _read_submission(request: Request, incoming: FsPath
-                           ) -> tuple[TrainingRequest | None, dict[str, Any], tuple[FsPath, str | None] | None]:
-    """(parsed request, its data member, the uploaded file saved under ``incoming`` or None). Large
-    JSON bodies are parsed and validated off the event loop; an upload is never held in memory whole."""
+                           ) -> tuple[Any, dict[str, Any], tuple[FsPath, str | None] | None, dict[str, Any] | None]:
+    """(parsed request, its data member, the uploaded file saved under ``incoming`` or None, what an
+    intake process read or None). Large JSON bodies are parsed and validated off the event loop, the
+    largest in an intake process; an upload is never held in memory whole."""
     mt = media_type(request)
     if mt == "multipart/form-data":
         try:
@@ -152,14 +180,30 @@ async def _read_submission(request: Request, incoming: FsPath
             raise
         finally:
             await form.close()
-        return parsed, {}, (target, getattr(upload, "filename", None))
+        return parsed, {}, (target, getattr(upload, "filename", None)), None
     if mt in ("", "application/json") or mt.endswith("+json"):
+        settings = request.app.state.settings
+        declared = request.headers.get("content-length", "")
+        if declared.isdigit() and int(declared) > settings.intake_process_bytes:
+            # parsed, turned into columns, validated and staged in an intake process (the row objects
+            # would hold this process's interpreter lock for seconds): the body goes to a file as it
+            # arrives, and only a summary comes back
+            read = await request.app.state.intake.read_json(await _spool(request, incoming), settings, incoming)
+            if read.get("error") is not None and not read["deferred"]:
+                raise read["error"]
+            return _Fields(**read["request"]), read["data"], None, read
         raw = await request.body()
+        if len(raw) > settings.intake_process_bytes:  # a body sent without a length (chunked)
+            read = await request.app.state.intake.read_json(raw, settings, incoming)
+            del raw
+            if read.get("error") is not None and not read["deferred"]:
+                raise read["error"]
+            return _Fields(**read["request"]), read["data"], None, read
         if len(raw) > OFF_LOOP_BYTES:
-            parsed, data = await to_thread.run_sync(_parse_training_json, raw)
+            parsed, data = await to_thread.run_sync(parse_training_body, raw)
         else:
-            parsed, data = _parse_training_json(raw)
-        return parsed, data, None
+            parsed, data = parse_training_body(raw)
+        return parsed, data, None, None
     raise UnsupportedMediaType(
         f"Content-Type {mt!r} is not read here; send application/json or multipart/form-data (file + spec)."
     )
@@ -171,7 +215,7 @@ async def submit(request: Request, name: str = Path(..., description="Model name
     key = intake.check_idempotency_key(request.headers.get("idempotency-key"))
     app = request.app
     store, settings = app.state.store, app.state.settings
-    parsed, data, upload = await _read_submission(request, FsPath(store.jobs.incoming_dir))
+    parsed, data, upload, read = await _read_submission(request, FsPath(store.jobs.incoming_dir))
 
     submitter = _submitter(request)
     limits = {"queue_limit": settings.max_queued_jobs, "submitter_limit": settings.max_queued_jobs_per_key}
@@ -190,15 +234,27 @@ async def submit(request: Request, name: str = Path(..., description="Model name
                 SUBMITTER: submitter,
             }
             return store.jobs.submit(name, job_request, idempotency_key=key, **limits)
-        cols, origin = intake.load_data(data, settings, upload=upload)
-        if isinstance(data, dict):
-            data.pop("rows", None)  # the row objects are columns now: free them before validating and staging
-        spec, counts = intake.validate(cols, spec_raw, settings)
+        if read is not None and ("staged" in read or read.get("error") is not None):
+            # read and staged by an intake process; its data errors are raised here, in their order
+            if read.get("error") is not None:
+                raise read["error"]
+            path, origin, spec, counts = FsPath(read["staged"]), read["origin"], read["spec"], read["counts"]
+            if spec is None:  # a retrain reusing the live spec: check the staged columns against it here
+                try:
+                    spec, counts = intake.validate(tables.read_staged(path), spec_raw, settings)
+                except BaseException:
+                    intake.discard(path)
+                    raise
+        else:
+            cols, origin = intake.load_data(data, settings, upload=upload)
+            if isinstance(data, dict):
+                data.pop("rows", None)  # the row objects are columns now: free them before validating and staging
+            spec, counts = intake.validate(cols, spec_raw, settings)
+            path = intake.stage(store, cols)
         job_request = {
             "spec": spec, "promote": parsed.promote, "min_improvement": parsed.min_improvement,
             "data": origin, "grid": counts, "spec_reused": parsed.spec is None, SUBMITTER: submitter,
         }
-        path = intake.stage(store, cols)
         try:
             job, created = store.jobs.submit(name, job_request, data_path=str(path), idempotency_key=key, **limits)
         except BaseException:
@@ -210,6 +266,10 @@ async def submit(request: Request, name: str = Path(..., description="Model name
 
     try:
         job, created = await to_thread.run_sync(accept)
+    except BaseException:
+        if read is not None and read.get("staged"):
+            intake.discard(FsPath(read["staged"]))  # refused after the intake process staged it
+        raise
     finally:
         if upload is not None:
             upload[0].unlink(missing_ok=True)
