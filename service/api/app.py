@@ -39,7 +39,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
         store = Store(settings)
 
     from service.api.models import ModelCache
-    from service.api.routes import health, models, pages, plots, predict, trainings
+    from service.api.routes import health, models, pages, plots, predictions, trainings
 
     @asynccontextmanager
     async def lifespan(app: FastAPI):
@@ -80,7 +80,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
     # (routes are matched in order, and they are the ones called thousands of times a second) and call the
     # same check, ``auth.authorize``, as their first statement instead of through a dependency, which
     # FastAPI would solve per request.
-    app.include_router(predict.router)
+    app.include_router(predictions.router)
     for router in (models.router, trainings.router, plots.router):
         app.include_router(router, dependencies=[Depends(auth.authorize)])
     from service.api.routes import admin  # API keys and pruning (admin scope)
@@ -95,7 +95,8 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
         app.add_middleware(
             CORSMiddleware, allow_origins=list(settings.cors_origins), allow_methods=["GET", "POST", "PUT", "DELETE"],
             allow_headers=["Authorization", "Content-Type", "Idempotency-Key", "X-Request-Id"],
-            expose_headers=["Location", "X-Request-Id", "Retry-After", "Tikhon-Catalog"],
+            expose_headers=["Location", "X-Request-Id", "Retry-After", "Tikhon-Catalog", "Tikhon-Replayed",
+                            "Tikhon-Model", "Tikhon-Model-Version"],
         )
     from service.api.cors import PreflightGuard  # an unlisted origin's preflight: a problem naming the setting
     app.add_middleware(PreflightGuard, allowed=list(settings.cors_origins))

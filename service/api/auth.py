@@ -221,7 +221,7 @@ async def authorize(request: Request) -> None:
     route = request.scope.get("route")
     accepted = accepted_scopes(route)
     # Reads and predictions may rest on the catalog's last answers during an outage; changes never do.
-    allow_stale = request.method in ("GET", "HEAD") or str(getattr(route, "path", "")).endswith("/predict")
+    allow_stale = request.method in ("GET", "HEAD") or str(getattr(route, "path", "")).endswith("/predictions")
     if gate.needs_lookup(header):
         key_id, age = await gate.lookups.run((header, accepted, allow_stale), functools.partial(
             gate.check_stale, header, accepted, allow_stale=allow_stale))

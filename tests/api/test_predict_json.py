@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 from sklearn.datasets import load_diabetes
 
-from service.api.routes.predict import _json
+from service.api.routes.predictions import _json
 from service.engine import tune
 
 SERVED = SimpleNamespace(block_json=b'{"name":"m","version":3}')

@@ -29,7 +29,7 @@ from service.errors import InvalidData
 from service.store.names import validate_name
 from service.store.schema import VERSION_MAX
 
-router = APIRouter(prefix="/v1", tags=["predict"])
+router = APIRouter(prefix="/v1", tags=["predictions"])
 
 INLINE_ROWS = 256  # up to this many rows are computed on the event loop (well under a millisecond)
 
@@ -96,7 +96,7 @@ def _version(raw: str) -> int:
     return int(raw)
 
 
-@router.post("/models/{name}/predict", summary="Predict with the live version", openapi_extra=_LIVE_DOC)
+@router.post("/models/{name}/predictions", summary="Predict with the live version", openapi_extra=_LIVE_DOC)
 async def predict_live(request: Request) -> Response:
     await auth.authorize(request)  # the key check every /v1 route has (see app.create_app)
     name = validate_name(request.path_params["name"])
@@ -111,7 +111,7 @@ async def predict_live(request: Request) -> Response:
     return await _predict(request, served, interval)
 
 
-@router.post("/models/{name}/versions/{version}/predict", summary="Predict with a pinned version", openapi_extra=_PINNED_DOC)
+@router.post("/models/{name}/versions/{version}/predictions", summary="Predict with a pinned version", openapi_extra=_PINNED_DOC)
 async def predict_version(request: Request) -> Response:
     await auth.authorize(request)  # the key check every /v1 route has (see app.create_app)
     name = validate_name(request.path_params["name"])
