@@ -8,6 +8,7 @@ guarded by the key check in ``service.api.auth``.
 
 from __future__ import annotations
 
+import inspect
 from contextlib import asynccontextmanager
 from typing import Any
 
@@ -23,6 +24,12 @@ from service.api.stale import CatalogWatch, LastKnown
 from service.settings import Settings
 
 API_VERSION = "1"
+
+# FastAPI's built-in OpenTelemetry hooks (recent versions) ask on every request whether a tracer, meter or
+# logger provider is configured; this service reports through its own Prometheus metrics and JSON logs and
+# configures none, so they are switched off rather than asked thousands of times a second.
+_NO_OTEL = ({"telemetry": {"tracing": False, "metrics": False, "logs": False}}
+            if "telemetry" in inspect.signature(FastAPI.__init__).parameters else {})
 
 
 def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multiprocess_dir: str | None = None,
@@ -60,6 +67,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
         docs_url=None,  # served by routes.docs from packaged files (no CDN)
         redoc_url=None,
         lifespan=lifespan,
+        **_NO_OTEL,
     )
     metrics = ApiMetrics(multiprocess_dir)
     app.state.settings = settings
@@ -90,7 +98,10 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
     from service.api.routes import docs  # /docs with its assets served from the package
     app.include_router(docs.router)
 
-    # Starlette wraps in reverse order of addition: the last added is the outermost.
+    # Starlette wraps in reverse order of addition: the last added is the outermost. The prediction routes
+    # are answered by the innermost of these (service.api.fastpath), inside every other one.
+    from service.api.fastpath import PredictionsFirst
+    app.add_middleware(PredictionsFirst, owner=app, router=predictions.router)
     if settings.cors_origins:
         app.add_middleware(
             CORSMiddleware, allow_origins=list(settings.cors_origins), allow_methods=["GET", "POST", "PUT", "DELETE"],

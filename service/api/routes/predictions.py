@@ -21,7 +21,7 @@ from fastapi.responses import Response
 from service.csvcells import number_cell, text_cell
 from service.api import auth, levels, tables
 from service.api.models import Served
-from service.api.render import media_type, parse_json
+from service.api.render import parse_json
 from service.api.problems import UnsupportedMediaType
 from service.api.stale import note_stale
 from service.api.schemas import PredictRequest, PredictResponse, schema_ref
@@ -75,6 +75,8 @@ _PINNED_DOC = {**_DOC, "parameters": [_PARAMS["name"], _PARAMS["version"], _PARA
 
 
 def _query_interval(request: Request) -> float | None:
+    if not request.scope.get("query_string"):  # the usual case: no query string to parse
+        return None
     raw = request.query_params.get("interval")
     if raw is None:
         return None
@@ -165,7 +167,8 @@ async def _predict(request: Request, served: Served, interval_q: float | None) -
     settings = request.app.state.settings
     limit = settings.max_rows_per_request
     max_label = settings.max_label_chars
-    mt = media_type(request)
+    content_type = auth.raw_header(request.scope, b"content-type") or ""
+    mt = content_type.split(";", 1)[0].strip().lower()  # as render.media_type
     raw = await request.body()
     if mt == "text/csv":
         if len(raw) > 65536:
@@ -192,7 +195,7 @@ async def _predict(request: Request, served: Served, interval_q: float | None) -
     else:
         detail = await to_thread.run_sync(_compute, served, cols, interval, settings.predict_memory_bytes)
     request.app.state.metrics.count_predictions(served.name, served.version, n)
-    accept = request.headers.get("accept", "")
+    accept = auth.raw_header(request.scope, b"accept") or ""
     if "text/csv" in accept or (mt == "text/csv" and "application/json" not in accept):
         text = _csv(detail, interval is not None) if n <= INLINE_ROWS else await to_thread.run_sync(_csv, detail, interval is not None)
         return Response(text, media_type="text/csv", headers={
