@@ -206,6 +206,7 @@ async def _predict(request: Request, served: Served, interval_q: float | None) -
 
 
 _NUMPY = orjson.OPT_SERIALIZE_NUMPY
+SMALL_JSON_ROWS = 16  # up to this many rows the answer is written from Python objects (fewer calls than splicing)
 
 
 def _numbers(column) -> list[bytes]:
@@ -222,6 +223,13 @@ def _json(served: Served, detail: dict[str, Any], with_interval: bool) -> bytes:
     m = int(value.shape[0])
     if m == 0:
         return b'{"model":' + served.block_json + b',"predictions":[]}'
+    if m <= SMALL_JSON_ROWS:  # a few rows: one orjson call on plain objects writes the same bytes
+        if with_interval:
+            rows = [{"value": v, "interval": [a, b], "warnings": w} for v, a, b, w in zip(
+                value.tolist(), detail["lower"].tolist(), detail["upper"].tolist(), detail["warnings"])]
+        else:
+            rows = [{"value": v, "warnings": w} for v, w in zip(value.tolist(), detail["warnings"])]
+        return b'{"model":' + served.block_json + b',"predictions":' + orjson.dumps(rows) + b"}"
     if with_interval:
         pieces = [b'{"value":', None, b',"interval":[', None, b",", None, b'],"warnings":[]}', b","]
         columns = {1: _numbers(value), 3: _numbers(detail["lower"]), 5: _numbers(detail["upper"])}
