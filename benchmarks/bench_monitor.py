@@ -50,7 +50,7 @@ def main() -> None:
         procs = {k: start_server("ours", ports[k], work, env={"TIKHON_MONITOR": "true" if k == "on" else "false"})
                  for k in ports}
         try:
-            urls = {k: f"http://127.0.0.1:{ports[k]}/v1/models/{MODEL}/predict" for k in ports}
+            urls = {k: f"http://127.0.0.1:{ports[k]}/v1/models/{MODEL}/predictions" for k in ports}
             print(f"wrk -t1 -c{a.connections} -d{a.duration:g}s, one-row JSON body, {os.cpu_count()} cores, "
                   f"load average before: {os.getloadavg()[0]:.2f}", flush=True)
             for k in ports:  # warm-up

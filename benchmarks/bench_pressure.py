@@ -114,10 +114,10 @@ def hostile_requests() -> list[tuple[str, str, dict]]:
         ("huge_spec_string", "/v1/models/pumps/trainings", {"content": huge_spec.encode(), "headers": json_h}),
         ("costly_rbf", "/v1/models/pumps/trainings", {"json": {"data": {"csv": rbf_csv}, "spec": rbf_spec}}),
         ("queue_flood", "/v1/models/pumps/trainings", {"json": {"data": {"rows": small_rows}, "spec": quick}}),
-        ("long_label", "/v1/models/stations/predict", {"content": long_label, "headers": csv_h}),
+        ("long_label", "/v1/models/stations/predictions", {"content": long_label, "headers": csv_h}),
         ("new_level_every_row", "/v1/models/stations/trainings", {"json": {"data": {"csv": levels}, "spec": level_spec}}),
         ("big_json_body", "/v1/models/pumps/trainings", {"content": big_json, "headers": json_h}),
-        ("wide_batch", "/v1/models/wide/predict?interval=0.9", {"content": wide_csv, "headers": csv_h}),
+        ("wide_batch", "/v1/models/wide/predictions?interval=0.9", {"content": wide_csv, "headers": csv_h}),
     ]
 
 
@@ -127,7 +127,7 @@ def wrk(base: str, seconds: float, connections: int, script: Path) -> float:
     if exe is None:
         raise SystemExit("wrk is not installed (apt-get install wrk)")
     out = subprocess.run([exe, "-t1", f"-c{connections}", f"-d{max(1, int(seconds))}s", "--latency", "-s", str(script),
-                          f"{base}/v1/models/pumps/predict"], capture_output=True, text=True, check=True).stdout
+                          f"{base}/v1/models/pumps/predictions"], capture_output=True, text=True, check=True).stdout
     m = re.search(r"^\s*99%\s+([\d.]+)(us|ms|s)\s*$", out, re.M)
     if not m:
         raise RuntimeError(f"no p99 in wrk output:\n{out}")
@@ -166,7 +166,7 @@ def main(argv: list[str] | None = None) -> int:
                 raise SystemExit(f"--only names no hostile kind: {args.only}")
         proc, base = start_server(settings, root / "server.log")
         try:
-            assert httpx.post(f"{base}/v1/models/pumps/predict", json=PROBE, timeout=60).status_code == 200
+            assert httpx.post(f"{base}/v1/models/pumps/predictions", json=PROBE, timeout=60).status_code == 200
             quiet = wrk(base, args.quiet_s, args.connections, script)
 
             stop = threading.Event()

@@ -268,7 +268,7 @@ def main() -> None:
         try:
             import httpx
 
-            our_url = f"http://127.0.0.1:{our_port}/v1/models/{MODEL}/predict"
+            our_url = f"http://127.0.0.1:{our_port}/v1/models/{MODEL}/predictions"
             bare_url = f"http://127.0.0.1:{bare_port}/bare"
             check = httpx.post(our_url, content=one.read_bytes(), headers={"content-type": "application/json"}).json()
             assert check["model"]["version"] == 1 and len(check["predictions"]) == 1, check

@@ -145,7 +145,7 @@ async def _max_rps(base: str, seconds: float, concurrency: int, seed: int, batch
         nonlocal done
         i = k
         while time.perf_counter() < stop:
-            r = await client.post(f"/v1/models/{NAME}/predict", json=bodies[i % len(bodies)])
+            r = await client.post(f"/v1/models/{NAME}/predictions", json=bodies[i % len(bodies)])
             r.raise_for_status()
             done += 1
             i += concurrency
@@ -181,7 +181,7 @@ async def _soak(base: str, pid: int, rate: float, duration: float, batch_rows: i
             scheduled = t0 + i / rate
             async with sem:
                 try:
-                    r = await client.post(f"/v1/models/{NAME}/predict", content=plan[i], headers=headers)
+                    r = await client.post(f"/v1/models/{NAME}/predictions", content=plan[i], headers=headers)
                     elapsed = time.perf_counter() - scheduled
                     if r.status_code == 200:
                         body = orjson.loads(r.content)

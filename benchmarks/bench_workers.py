@@ -4,7 +4,7 @@ Both servers are the real command line (``tikhon serve --workers N --no-worker``
 no API key, on loopback) over one store in a temporary folder holding one model of the invented
 pump-station scenario (polynomial degrees 1-3 x 20 strengths, tuned by ``service.engine.tune``).
 The load generator is ``wrk`` (compiled; ``wrk -t1 -c32 -d10s`` by default) posting one JSON row to
-``/v1/models/pumps/predict``. Rounds alternate 1 process / N processes; each is preceded by a short
+``/v1/models/pumps/predictions``. Rounds alternate 1 process / N processes; each is preceded by a short
 warm-up; the best round of each count is kept (the least disturbed by other work on a shared machine).
 
 wrk runs on the same machine and competes for the same cores as the server processes: on a 2-core
@@ -162,10 +162,10 @@ def measure_workers_scaling(*, counts: tuple[int, ...] = (1, 2), duration_s: flo
             for server in servers.values():
                 server.wait_ready()
             for n, server in servers.items():
-                check = httpx.post(f"{server.url}/v1/models/pumps/predict", content=ROW_BODY,
+                check = httpx.post(f"{server.url}/v1/models/pumps/predictions", content=ROW_BODY,
                                    headers={"content-type": "application/json"}, timeout=30).json()
                 assert check["model"]["version"] == 1 and len(check["predictions"]) == 1, check
-            url_of = {n: f"{s.url}/v1/models/pumps/predict" for n, s in servers.items()}
+            url_of = {n: f"{s.url}/v1/models/pumps/predictions" for n, s in servers.items()}
             for i in range(rounds):
                 for n, server in servers.items():
                     run_wrk(url_of[n], script, threads, connections, warmup_s)

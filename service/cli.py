@@ -241,7 +241,7 @@ def _seed_demo(settings, key: str | None) -> None:
             raise JobFailed(f"demo training job {job_id} {job['state']}: {_problem_text(job)}")
         decision = job.get("decision") or {}
         _err.print(f"tikhon: demo: '{DEMO_MODEL}' version {job['version']} is live "
-                   f"(CV {decision.get('metric', 'rmse')} {decision.get('new_cv_mean', float('nan')):.4g}); "
+                   f"({cv_label(decision.get('metric', 'rmse'))} {decision.get('new_cv_mean', float('nan')):.4g}); "
                    f"next month's data for a scheduled retrain: {paths[1]}")
     finally:
         store.close()
@@ -551,6 +551,11 @@ def _penalty_text(penalty: dict | None) -> str:
     return text
 
 
+def cv_label(metric: str | None) -> str:
+    """The one label of a cross-validated error, as the pages and figures write it: ``CV RMSE``."""
+    return f"CV {metric.upper()}" if metric else "CV error"
+
+
 def summary_table(job: dict, meta: dict) -> Table:
     chosen = meta.get("chosen") or {}
     summary = meta.get("cv_summary") or {}
@@ -562,7 +567,7 @@ def summary_table(job: dict, meta: dict) -> Table:
     t.add_row("chosen penalty", _penalty_text(chosen.get("penalty")))
     metric = chosen.get("metric") or summary.get("metric") or "rmse"
     folds = summary.get("splits")
-    t.add_row(f"CV {metric}", _pm_text(chosen, folds))
+    t.add_row(cv_label(metric), _pm_text(chosen, folds))
     t.add_row("selection rule", str(chosen.get("rule") or summary.get("rule")))
     t.add_row("candidates", f"{summary.get('candidates')} ({summary.get('basis_settings')} basis settings × "
               f"{summary.get('strengths')} strengths), {summary.get('rows')} rows")
@@ -607,9 +612,9 @@ def cv_text_plot(table: list[dict], chosen: dict, *, width: int = 56, height: in
         r, c = row(m), col(x)
         if grid[r][c] != "O":
             grid[r][c] = mark
-    metric = chosen.get("metric", "error")
+    metric = chosen.get("metric")
     label_w = max(len(f"{ymax:.4g}"), len(f"{ymin:.4g}"))
-    lines = [f"CV {metric} against penalty strength λ for {_basis_text(basis)} (O = chosen)"]
+    lines = [f"{cv_label(metric)} against penalty strength λ for {_basis_text(basis)} (O = chosen)"]
     for i, cells in enumerate(grid):
         label = f"{ymax:.4g}" if i == 0 else f"{ymin:.4g}" if i == height - 1 else ""
         lines.append(f"{label:>{label_w}} |" + "".join(cells))
@@ -757,7 +762,7 @@ def models(ctx: typer.Context) -> None:
         return
     t = Table("model", "live", "newest", "versions", "updated")
     for m in items:
-        t.add_row(m["name"], str(m.get("live_version") or "-"), str(m.get("latest_version") or "-"),
+        t.add_row(m["name"], str(m.get("live_version") or "-"), str(m.get("newest_version") or "-"),
                   str(m.get("versions")), str(m.get("updated_at") or "")[:19])
     _out.print(t)
 
@@ -788,7 +793,7 @@ def show(
     t.add_row("target", str((meta.get("spec") or {}).get("target")))
     t.add_row("chosen basis", _basis_text(chosen.get("basis")))
     t.add_row("chosen penalty", _penalty_text(chosen.get("penalty")))
-    t.add_row(f"CV {chosen.get('metric', '')}", _pm_text(chosen, summary.get("splits"))
+    t.add_row(cv_label(chosen.get("metric")), _pm_text(chosen, summary.get("splits"))
               + f"; {summary.get('scheme')}, rule {chosen.get('rule')}")
     for f in meta.get("feature_schema") or []:
         rng = f.get("range")

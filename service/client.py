@@ -525,7 +525,7 @@ class Client:
             delay = min(poll, delay * 1.5)
 
     # -- predictions ----------------------------------------------------------------------------------
-    @_route("POST", "/v1/models/{name}/predict")
+    @_route("POST", "/v1/models/{name}/predictions")
     def predict(
         self, name: str, *, rows: Sequence[Mapping[str, Any]] | None = None,
         columns: Mapping[str, Sequence[Any]] | None = None, csv: str | None = None,
@@ -540,16 +540,16 @@ class Client:
         if version is not None:
             return self.predict_version(name, version, rows=rows, columns=columns, csv=csv, file=file,
                                         interval=interval, as_csv=as_csv)
-        return self._predict(f"/v1/models/{_seg(name)}/predict", rows, columns, csv, file, interval, as_csv)
+        return self._predict(f"/v1/models/{_seg(name)}/predictions", rows, columns, csv, file, interval, as_csv)
 
-    @_route("POST", "/v1/models/{name}/versions/{version}/predict")
+    @_route("POST", "/v1/models/{name}/versions/{version}/predictions")
     def predict_version(
         self, name: str, version: int, *, rows: Sequence[Mapping[str, Any]] | None = None,
         columns: Mapping[str, Sequence[Any]] | None = None, csv: str | None = None,
         file: str | os.PathLike | None = None, interval: float | None = None, as_csv: bool = False,
     ) -> PredictAnswer | str:
         """Predict with one pinned version (see ``predict``)."""
-        return self._predict(f"/v1/models/{_seg(name)}/versions/{_num(version)}/predict",
+        return self._predict(f"/v1/models/{_seg(name)}/versions/{_num(version)}/predictions",
                              rows, columns, csv, file, interval, as_csv)
 
     def _predict(self, url: str, rows, columns, csv, file, interval, as_csv) -> PredictAnswer | str:

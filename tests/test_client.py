@@ -125,7 +125,7 @@ def test_every_route_called_through_the_client(server, live_service, tmp_path):
         # Live predictions with intervals: the client's answer is the server's answer, unchanged.
         query = [{"flow_lps": 50.0, "head_m": 30.0}, {"flow_lps": 90.5, "head_m": 12.25}]
         answer = tk.predict("pump-c", rows=query, interval=0.9)
-        raw = httpx.post(f"{url}/v1/models/pump-c/predict", json={"rows": query, "interval": 0.9}).json()
+        raw = httpx.post(f"{url}/v1/models/pump-c/predictions", json={"rows": query, "interval": 0.9}).json()
         assert answer == raw
         assert answer["model"]["version"] == 1
         for p in answer["predictions"]:

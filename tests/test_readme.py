@@ -220,7 +220,7 @@ def test_first_command_serves_the_demo_model_from_a_fresh_environment(demo):
     lo, hi = inside["interval"]
     assert lo < inside["value"] < hi and inside["warnings"] == []
     # The demo's noise is N(0, 0.6²) (service/demo.py); a 90 % interval of a good model is about
-    # 2 × 1.645 × (its CV rmse) wide (1.645: the standard normal 95th percentile, from standard
+    # 2 × 1.645 × (its CV RMSE) wide (1.645: the standard normal 95th percentile, from standard
     # normal tables), and no narrower than the noise alone allows.
     width = hi - lo
     assert 0.8 * 2 * 1.645 * 0.6 < width < 1.25 * 2 * 1.645 * model["cv"]["mean"], (width, model["cv"])
@@ -282,7 +282,7 @@ def test_curl_tour_runs_as_written(demo):
                 job_id = job["id"]
                 done = tk.wait(job_id, poll=0.5)
                 assert done["state"] == "succeeded" and done["version"] == before + 1 == 2, done
-            if "/predict" in command:
+            if "/predictions" in command:
                 body = json.loads(run.stdout)
                 assert len(body["predictions"]) == 2 and body["predictions"][1]["warnings"]
             if command.rstrip().endswith("/cv") and "/plots/" not in command:

@@ -8,6 +8,7 @@ guarded by the key check in ``service.api.auth``.
 
 from __future__ import annotations
 
+import inspect
 from contextlib import asynccontextmanager
 from typing import Any
 
@@ -23,6 +24,12 @@ from service.api.stale import CatalogWatch, LastKnown
 from service.settings import Settings
 
 API_VERSION = "1"
+
+# FastAPI's built-in OpenTelemetry hooks (recent versions) ask on every request whether a tracer, meter or
+# logger provider is configured; this service reports through its own Prometheus metrics and JSON logs and
+# configures none, so they are switched off rather than asked thousands of times a second.
+_NO_OTEL = ({"telemetry": {"tracing": False, "metrics": False, "logs": False}}
+            if "telemetry" in inspect.signature(FastAPI.__init__).parameters else {})
 
 
 def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multiprocess_dir: str | None = None,
@@ -40,7 +47,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
 
     from service.api.intake_process import IntakePool
     from service.api.models import ModelCache
-    from service.api.routes import health, models, pages, plots, predict, trainings
+    from service.api.routes import health, models, pages, plots, predictions, trainings
 
     @asynccontextmanager
     async def lifespan(app: FastAPI):
@@ -64,6 +71,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
         docs_url=None,  # served by routes.docs from packaged files (no CDN)
         redoc_url=None,
         lifespan=lifespan,
+        **_NO_OTEL,
     )
     metrics = ApiMetrics(multiprocess_dir)
     app.state.settings = settings
@@ -90,7 +98,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
     # (routes are matched in order, and they are the ones called thousands of times a second) and call the
     # same check, ``auth.authorize``, as their first statement instead of through a dependency, which
     # FastAPI would solve per request.
-    app.include_router(predict.router)
+    app.include_router(predictions.router)
     from service.api.routes import monitoring
 
     for router in (models.router, trainings.router, plots.router, monitoring.router):
@@ -102,12 +110,16 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
     from service.api.routes import docs  # /docs with its assets served from the package
     app.include_router(docs.router)
 
-    # Starlette wraps in reverse order of addition: the last added is the outermost.
+    # Starlette wraps in reverse order of addition: the last added is the outermost. The prediction routes
+    # are answered by the innermost of these (service.api.fastpath), inside every other one.
+    from service.api.fastpath import PredictionsFirst
+    app.add_middleware(PredictionsFirst, owner=app, router=predictions.router)
     if settings.cors_origins:
         app.add_middleware(
             CORSMiddleware, allow_origins=list(settings.cors_origins), allow_methods=["GET", "POST", "PUT", "DELETE"],
             allow_headers=["Authorization", "Content-Type", "Idempotency-Key", "X-Request-Id"],
-            expose_headers=["Location", "X-Request-Id", "Retry-After", "Tikhon-Catalog"],
+            expose_headers=["Location", "X-Request-Id", "Retry-After", "Tikhon-Catalog", "Tikhon-Replayed",
+                            "Tikhon-Model", "Tikhon-Model-Version"],
         )
     from service.api.cors import PreflightGuard  # an unlisted origin's preflight: a problem naming the setting
     app.add_middleware(PreflightGuard, allowed=list(settings.cors_origins))

@@ -57,7 +57,21 @@ ADMIN = scopes("admin")
 METRICS = scopes("metrics", "admin")  # the Prometheus scrape (/metrics): a scraper's key reads nothing else
 
 
+_ACCEPTED: dict[int, tuple[Any, frozenset[str]]] = {}
+
+
 def accepted_scopes(route: Any) -> frozenset[str]:
+    """The scopes a route declares (its OpenAPI security requirements), read once per route object."""
+    hit = _ACCEPTED.get(id(route))
+    if hit is not None and hit[0] is route:
+        return hit[1]
+    found = _declared_scopes(route)
+    if route is not None:
+        _ACCEPTED[id(route)] = (route, found)
+    return found
+
+
+def _declared_scopes(route: Any) -> frozenset[str]:
     extra = getattr(route, "openapi_extra", None) or {}
     found = set()
     for requirement in extra.get("security", ()):
@@ -204,9 +218,18 @@ def _bearer(header: str | None) -> str | None:
 COOKIE = "tikhon_key"
 
 
+def raw_header(scope: dict, name: bytes) -> str | None:
+    """The first value of header ``name`` (lower-case bytes) as ``request.headers.get`` gives it, read from the
+    ASGI scope without building the headers mapping."""
+    for key, value in scope["headers"]:
+        if key == name:
+            return value.decode("latin-1")
+    return None
+
+
 def credentials(request: Request) -> str | None:
     """The Authorization header, or for GET/HEAD without one, the login cookie as a bearer header."""
-    header = request.headers.get("authorization")
+    header = raw_header(request.scope, b"authorization")
     if header is None and request.method in ("GET", "HEAD"):
         secret = request.cookies.get(COOKIE)
         if secret:
@@ -221,7 +244,7 @@ async def authorize(request: Request) -> None:
     route = request.scope.get("route")
     accepted = accepted_scopes(route)
     # Reads and predictions may rest on the catalog's last answers during an outage; changes never do.
-    allow_stale = request.method in ("GET", "HEAD") or str(getattr(route, "path", "")).endswith("/predict")
+    allow_stale = request.method in ("GET", "HEAD") or str(getattr(route, "path", "")).endswith("/predictions")
     if gate.needs_lookup(header):
         key_id, age = await gate.lookups.run((header, accepted, allow_stale), functools.partial(
             gate.check_stale, header, accepted, allow_stale=allow_stale))

@@ -28,7 +28,7 @@ def cv_data(name: str, version: int, body: dict[str, Any]) -> dict[str, Any]:
     chosen = body.get("chosen") or {}
     return {
         "figure": "cv", "name": name, "version": version, "metric": chosen.get("metric"),
-        "x": "penalty strength (log scale)", "y": f"CV {chosen.get('metric') or 'error'}", "note": SE_NOTE,
+        "x": "penalty strength (log scale)", "y": f"CV {chosen['metric'].upper()}" if chosen.get("metric") else "CV error", "note": SE_NOTE,
         "chosen": {"basis": chosen.get("basis"), "penalty": chosen.get("penalty"), "mean": chosen.get("mean"),
                    "rule": chosen.get("rule")},
         "series": [{"label": s["label"], "basis": s["basis"], "l1_ratio": s["l1_ratio"],

@@ -76,3 +76,54 @@ def configure(level: str = "info", stream=None) -> None:
         logger.setLevel(level.upper())
     # uvicorn's own access log duplicates ours (ours has the request id and route); keep it quiet.
     logging.getLogger("uvicorn.access").disabled = True
+
+
+def _direct_handler(logger: logging.Logger, level: int) -> logging.StreamHandler | None:
+    """The one JSON handler ``configure`` gave ``logger`` when a record at ``level`` would go to it and to
+    nothing else (no filters, no other handler, the standard record factory); else None."""
+    handlers: list[logging.Handler] = []
+    current: logging.Logger | None = logger
+    while current is not None:  # the handlers logging.Logger.callHandlers would visit
+        if current.disabled or current.filters:
+            return None
+        handlers.extend(current.handlers)
+        current = current.parent if current.propagate else None
+    if len(handlers) != 1:
+        return None
+    handler = handlers[0]
+    if (type(handler) is not logging.StreamHandler or type(handler.formatter) is not JsonFormatter or handler.filters
+            or level < handler.level or logging.getLogRecordFactory() is not logging.LogRecord):
+        return None
+    return handler
+
+
+def line(logger: logging.Logger, level: int, msg: str, fields: dict) -> None:
+    """``logger.log(level, msg, extra=fields)`` for the access log of every request, writing the same JSON
+    line without building a ``LogRecord`` when the logger is set up as ``configure`` leaves it (one
+    ``JsonFormatter`` stream handler, no filters); otherwise through ``logging`` as usual. ``fields``
+    holds plain values under names that are neither standard record attributes nor secret-like."""
+    if not logger.isEnabledFor(level):
+        return
+    handler = _direct_handler(logger, level)
+    if handler is None:
+        logger.log(level, msg, extra=fields)
+        return
+    created = time.time()
+    out = {
+        "ts": handler.formatter._timestamp(created, int((created - int(created)) * 1000)),
+        "level": logging.getLevelName(level).lower(),
+        "logger": logger.name,
+        "msg": _plain(msg),
+    }
+    for key, value in fields.items():
+        out[key] = _plain(value)
+    text = orjson.dumps(out, default=str).decode() + handler.terminator
+    handler.acquire()
+    try:
+        handler.stream.write(text)
+        handler.stream.flush()
+    except Exception:  # a closed or broken stream: let logging report it as it would for any record
+        handler.release()
+        logger.log(level, msg, extra=fields)
+        return
+    handler.release()

@@ -7,15 +7,16 @@ stream copy per request, and the body limit can count bytes as they arrive (a mi
 
 from __future__ import annotations
 
+import itertools
 import logging
 import os
 import re
 import time
-import uuid
 from typing import Any
 
 import orjson
 
+from service.api import logs
 from service.api.problems import PROBLEM_MEDIA_TYPE, internal_error_body, problem_body
 from service.api.stale import header_value
 
@@ -50,6 +51,10 @@ class RequestContext:
         self.app = app
         self.metrics = metrics
         self._extra = [(b"x-tikhon-process", str(os.getpid()).encode())] if process_header else []
+        # New request ids: 32 hex digits as before (a uuid4's), a random 64-bit prefix per app and a counter,
+        # so making one costs no system call and no UUID object.
+        self._id_prefix = os.urandom(8).hex()
+        self._ids = itertools.count(int.from_bytes(os.urandom(4), "big"))
 
     async def __call__(self, scope, receive, send):
         if scope["type"] != "http":
@@ -63,7 +68,7 @@ class RequestContext:
                     rid = text
                 break
         if rid is None:
-            rid = uuid.uuid4().hex
+            rid = f"{self._id_prefix}{next(self._ids) & 0xFFFFFFFFFFFFFFFF:016x}"
         state = scope.setdefault("state", {})
         state["request_id"] = rid
         rid_header = (b"x-request-id", rid.encode())
@@ -98,14 +103,11 @@ class RequestContext:
             if self.metrics is not None:
                 self.metrics.observe_request(scope["method"], template, status, elapsed)
             if access.isEnabledFor(logging.INFO):
-                access.info(
-                    "request",
-                    extra={
-                        "request_id": rid, "method": scope["method"], "path": scope.get("path"), "route": template,
-                        "status": status, "duration_ms": round(elapsed * 1000, 3),
-                        "client": (scope.get("client") or ("", 0))[0],
-                    },
-                )
+                logs.line(access, logging.INFO, "request", {
+                    "request_id": rid, "method": scope["method"], "path": scope.get("path"), "route": template,
+                    "status": status, "duration_ms": round(elapsed * 1000, 3),
+                    "client": (scope.get("client") or ("", 0))[0],
+                })
 
 
 class _TooLarge(Exception):

@@ -88,7 +88,7 @@ class ModelCache:
             self._store.get_model(name)  # a name with no model at all answers "no model named ..., closest ..."
             raise NotFound(
                 f"model {name!r} has no live version yet; wait for its first training job to succeed, pin a version "
-                f"with POST /v1/models/{name}/versions/<n>/predict, or set one with PUT /v1/models/{name}/live.",
+                f"with POST /v1/models/{name}/versions/<n>/predictions, or set one with PUT /v1/models/{name}/live.",
                 errors=[{"field": "name", "value": name, "message": "no live version"}],
             )
         if age is None:

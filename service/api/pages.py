@@ -52,7 +52,7 @@ def _exact_strength(value: Any) -> str:
 def metric_text(chosen: dict[str, Any] | None, splits: Any = None, unit: str | None = None) -> str:
     if not chosen or chosen.get("mean") is None:
         return "—"
-    text = f"{str(chosen.get('metric') or 'rmse').upper()} {float(chosen['mean']):.4g}"
+    text = f"CV {str(chosen.get('metric') or 'rmse').upper()} {float(chosen['mean']):.4g}"
     se = _se(chosen, splits) if splits else None
     if se is not None:
         text += f" ± {se:.2g} (1 SE over {int(splits)} folds)"

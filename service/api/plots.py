@@ -109,7 +109,7 @@ def metric_label(metric: str | None, target: str | None, units: dict[str, str]) 
         return _with_unit(f"CV {metric.upper()}", unit)
     if metric == "mse":
         return _with_unit("CV MSE", f"{unit}²" if unit else None)
-    return f"CV {metric}"
+    return f"CV {metric.upper()}"
 
 
 def _style(ax, *, title: str | None = None) -> None:

@@ -32,6 +32,8 @@ MAX_INTERVAL_RESIDUALS = 20_000  # residuals kept per model; more are thinned to
 PREDICT_MEMORY_BYTES = 256 * 2**20  # default working memory of one predict call (the setting predict_memory_bytes)
 _WINDOW = 64  # CV+ bounds: bisect until a row's bracket holds at most this many residuals, then sort those
 _SNAP_VALUES = 2**18  # CV+ bounds: candidate values sorted at once (rows × window widths)
+SMALL_ROWS = 16  # at most this many rows (polynomial or linear basis) take the few-rows path (``_detail_small``)
+_DIRECT_VALUES = 1 << 15  # CV+ bounds: rows × residuals up to this are ranked directly (one partition per row)
 
 
 @dataclass
@@ -120,6 +122,17 @@ class FittedModel:
         basis design and its temporaries (about 5 × the width p), the leverage product (rank of the
         leverage factor), the fold predictions (2 × K folds), the inputs, and for CV+ intervals the
         row × residual blocks of the interval (2 × the residuals kept)."""
+        key = (memory_bytes, interval)
+        hit = self._chunk_sizes.get(key)
+        if hit is None:
+            hit = self._chunk_sizes[key] = self._chunk_rows(memory_bytes, interval)
+        return hit
+
+    @cached_property
+    def _chunk_sizes(self) -> dict[tuple[int, bool], int]:
+        return {}
+
+    def _chunk_rows(self, memory_bytes: int, interval: bool) -> int:
         p = int(self.beta.size)
         r = int(self.leverage_factor.shape[0]) if self.leverage_factor.ndim == 2 else 0
         k = int(self.fold_weights.shape[0]) if self.fold_weights is not None else 0
@@ -160,6 +173,8 @@ class FittedModel:
         return out
 
     def _detail(self, cols: dict[str, np.ndarray], interval: float | None) -> dict[str, Any]:
+        if _nrows(cols) <= SMALL_ROWS and self.basis.kind != "rbf":
+            return self._detail_small(cols, interval)
         Phi, X, unseen = self.design(cols)
         value = self.intercept + Phi @ self.weights
         Zs = (Phi - self.column_mean) / self.column_scale
@@ -173,6 +188,103 @@ class FittedModel:
             warnings[i].append(
                 f"the prediction is not a finite number ({float(value[i])!r} overflowed): the inputs of this row lie so far "
                 "outside the training data that the basis overflowed; no value is given")
+        return {"value": value, "lower": lower, "upper": upper, "leverage": lev, "warnings": warnings}
+
+    # ---- a few rows --------------------------------------------------------------------------------
+    # For a handful of rows, numpy's fixed cost per call (about a microsecond, some thirty calls per request)
+    # outweighs the arithmetic. The element-wise steps (standardizing, the monomials, the one-hot block, the
+    # range and leverage checks) are then done on Python floats: IEEE 754 rounds each subtraction, division and
+    # product exactly as numpy does element-wise, so the design matrix is the same bit for bit. The reductions
+    # (the coefficient products, the leverage sum) still go through the same numpy calls as above, so values,
+    # leverages, intervals and warnings are exactly those of the vectorized path (tests/engine/test_small_rows.py).
+
+    @cached_property
+    def _small_plan(self) -> tuple:
+        """Everything the few-rows path needs as Python values, computed once per loaded model."""
+        mean, scale = self.scaler.mean.tolist(), self.scaler.scale.tolist()
+        steps: list[tuple[list[int], list[int], list[int]]] = []
+        first: list[tuple[int, int]] = []
+        if self.basis.kind == "polynomial":
+            cols1, inputs = self.basis._degree_one
+            first = list(zip(cols1.tolist(), inputs.tolist()))
+            steps = [(c.tolist(), par.tolist(), var.tolist()) for c, par, var in self.basis.plan]
+            width = int(self.basis.powers.shape[0])
+        else:
+            width = len(self.features)
+        positions = [{lv: i for i, lv in enumerate(lvs)} for lvs in self.categories.levels]
+        offsets, off = [], width
+        for lvs in self.categories.levels:
+            offsets.append(off)
+            off += len(lvs)
+        return mean, scale, first, steps, width, positions, offsets, off, self._lo.tolist(), self._hi.tolist()
+
+    def _design_small(self, cols: dict[str, np.ndarray]) -> tuple[np.ndarray, list[list[float]], list[list[bool]]]:
+        """``design`` for a few rows (polynomial or linear basis): (Φ (m, p), the numeric inputs per row, the
+        unseen-level flags per categorical column and row)."""
+        mean, scale, first, steps, width, positions, offsets, total, _, _ = self._small_plan
+        inputs = [_finite_floats(cols.get(f)) or numeric_column(cols, f, "input").tolist() for f in self.features]
+        m = _nrows(cols)
+        rows = [[c[i] for c in inputs] for i in range(m)]
+        unseen: list[list[bool]] = []
+        cats = [categorical_column(cols, c).tolist() for c in self.categories.names]
+        out = []
+        for i, x in enumerate(rows):
+            xs = [(v - mu) / sd for v, mu, sd in zip(x, mean, scale)]
+            if steps or first:
+                phi = [0.0] * total
+                for col, j in first:
+                    phi[col] = xs[j]
+                for cs, parents, var in steps:
+                    for col, parent, j in zip(cs, parents, var):
+                        phi[col] = phi[parent] * xs[j]
+            else:
+                phi = xs + [0.0] * (total - width)
+            out.append(phi)
+        for pos, off, c in zip(positions, offsets, cats):
+            flags = []
+            for i, v in enumerate(c):
+                k = pos.get(v, -1)
+                if k >= 0:
+                    out[i][off + k] = 1.0
+                flags.append(k < 0)
+            unseen.append(flags)
+        Phi = np.array(out, dtype=np.float64).reshape(m, total)
+        return Phi, rows, unseen
+
+    def _detail_small(self, cols: dict[str, np.ndarray], interval: float | None) -> dict[str, Any]:
+        Phi, rows, unseen = self._design_small(cols)
+        value = self.intercept + Phi @ self.weights
+        Zs = (Phi - self.column_mean) / self.column_scale
+        FZ = Zs @ self.leverage_factor.T if self.leverage_factor.size else np.zeros((Phi.shape[0], 0))
+        lev = 1.0 / self.n_train + np.einsum("ij,ij->i", FZ, FZ)
+        lower = upper = None
+        if interval is not None:
+            lower, upper = self._interval(Phi, value, 1.0 - interval)
+        values = value.tolist()
+        levs = lev.tolist()
+        _, _, _, _, _, _, _, _, lo, hi = self._small_plan
+        limit = self.max_leverage * (1 + 1e-9)
+        warnings: list[list[str]] = []
+        for i, x in enumerate(rows):
+            w: list[str] = []
+            for j, v in enumerate(x):
+                if v > hi[j] or v < lo[j]:
+                    f = self.features[j]
+                    r_lo, r_hi = self.ranges[f]
+                    w.append(f"{f}={_fmt(v)} is {'above' if v > hi[j] else 'below'} the training range "
+                             f"[{_fmt(r_lo)}, {_fmt(r_hi)}]")
+            for name, levels, flags in zip(self.categories.names, self.categories.levels, unseen):
+                if flags[i]:
+                    w.append(f"{name}={level_as_sent(cols[name][i])} was not seen in training; its effect is taken "
+                             f"as zero (known levels: {known_levels(levels)})")
+            if levs[i] > limit:
+                w.append(f"leverage {lev[i]:.3g} exceeds the largest training leverage {self.max_leverage:.3g}: "
+                         "the input combination lies outside the data the model has seen")
+            if not math.isfinite(values[i]):
+                w.append(
+                    f"the prediction is not a finite number ({values[i]!r} overflowed): the inputs of this row lie so "
+                    "far outside the training data that the basis overflowed; no value is given")
+            warnings.append(w)
         return {"value": value, "lower": lower, "upper": upper, "leverage": lev, "warnings": warnings}
 
     def _interval(self, Phi: np.ndarray, value: np.ndarray, alpha: float) -> tuple[np.ndarray, np.ndarray]:
@@ -245,9 +357,12 @@ class FittedModel:
            residuals inside (a few per fold), sorted exactly.
         Windows count distinct residuals (tied ones carry their multiplicity), so a model whose residuals are
         mostly equal (an exact fit) stays as cheap. Rows with a non-finite shift take the direct form."""
+        m, K = mu.shape
+        if m * self.residuals.size <= _DIRECT_VALUES:  # a few rows: rank the values themselves (the direct form)
+            values = mu[:, self.residual_fold] + self.residuals
+            return np.partition(values, k - 1, axis=1)[:, k - 1]
         levels = self._fold_levels
         pooled = self._pooled_residuals
-        m, K = mu.shape
         out = np.empty(m)
         finite = np.isfinite(mu).all(axis=1)
         bad = np.flatnonzero(~finite)
@@ -481,6 +596,15 @@ def thin_residuals(abs_res: np.ndarray, fold: np.ndarray, limit: int = MAX_INTER
         out_r.append(r)
         out_f.append(np.full(r.size, k, dtype=np.int64))
     return np.concatenate(out_r), np.concatenate(out_f), float(g)
+
+
+def _finite_floats(raw: np.ndarray | None) -> list[float] | None:
+    """A float column's values as Python floats when all are finite (None otherwise: the caller then reads the
+    column through ``numeric_column``, which says what is wrong with it)."""
+    if raw is None or raw.dtype.kind != "f" or raw.ndim != 1:
+        return None
+    values = raw.tolist()
+    return values if all(map(math.isfinite, values)) and values else None
 
 
 def _nrows(cols: dict[str, np.ndarray]) -> int:

@@ -546,7 +546,7 @@ class Store:
     def _models(self, name: str | None) -> list[dict[str, Any]]:
         alive = versions_t.select().where(versions_t.c.deleted_at.is_(None)).subquery()
         q = (
-            select(models_t, func.count(alive.c.version).label("n"), func.max(alive.c.version).label("latest"))
+            select(models_t, func.count(alive.c.version).label("n"), func.max(alive.c.version).label("newest"))
             .select_from(models_t.outerjoin(alive, alive.c.model_name == models_t.c.name))
             .group_by(*models_t.c)
             .order_by(models_t.c.name)
@@ -557,7 +557,7 @@ class Store:
             rows = conn.execute(q).all()
         return [
             {
-                "name": r.name, "live_version": r.live_version, "latest_version": r.latest,
+                "name": r.name, "live_version": r.live_version, "newest_version": r.newest,
                 "versions": r.n, "created_at": iso(r.created_at), "updated_at": iso(r.updated_at),
             }
             for r in rows

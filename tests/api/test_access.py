@@ -16,8 +16,8 @@ from service.errors import Forbidden
 
 # The policy the issue asks for, written out independently of the code (common practice: least privilege).
 EXPECTED = {
-    ("POST", "/v1/models/{name}/predict"): {"predict", "admin"},
-    ("POST", "/v1/models/{name}/versions/{version}/predict"): {"predict", "admin"},
+    ("POST", "/v1/models/{name}/predictions"): {"predict", "admin"},
+    ("POST", "/v1/models/{name}/versions/{version}/predictions"): {"predict", "admin"},
     ("POST", "/v1/models/{name}/trainings"): {"train", "admin"},
     ("DELETE", "/v1/trainings/{job_id}"): {"train", "admin"},
     ("PUT", "/v1/models/{name}/live"): {"admin"},

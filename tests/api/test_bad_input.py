@@ -134,14 +134,14 @@ def predict_cases():
 @pytest.mark.parametrize("label,name,kwargs,status,needle", predict_cases(), ids=[c[0] for c in predict_cases()])
 def test_bad_predict(plain, label, name, kwargs, status, needle):
     base, store, settings = plain
-    r = httpx.post(f"{base}/v1/models/{name}/predict", **kwargs)
+    r = httpx.post(f"{base}/v1/models/{name}/predictions", **kwargs)
     body = problem(r, status)
     assert needle.lower() in (body["detail"] + str(body.get("errors", ""))).lower(), body
 
 
 def test_unknown_version_and_job(plain):
     base, _, _ = plain
-    for method, path in [("POST", "/v1/models/pump-b/versions/9/predict"), ("GET", "/v1/models/pump-b/versions/9"),
+    for method, path in [("POST", "/v1/models/pump-b/versions/9/predictions"), ("GET", "/v1/models/pump-b/versions/9"),
                          ("GET", "/v1/models/pump-b/versions/9/cv"), ("GET", "/v1/trainings/" + "f" * 32),
                          ("DELETE", "/v1/trainings/" + "f" * 32), ("GET", "/v1/models/nobody/history")]:
         kw = {"json": {"rows": [{"flow_lps": 1.0, "head_m": 1.0}]}} if method == "POST" else {}

@@ -78,31 +78,31 @@ def test_predictions_survive_an_outage_and_changes_answer_503(tmp_path, kit):
         hp = {"Authorization": f"Bearer {pred}"}
         ha = {"Authorization": f"Bearer {admin}"}
         with httpx.Client(base_url=base, timeout=30) as c:
-            before = c.post(f"/v1/models/{NAME}/predict", json=ROWS, headers=hp)
-            pinned_before = c.post(f"/v1/models/{NAME}/versions/{v1}/predict", json=ROWS, headers=hp)
+            before = c.post(f"/v1/models/{NAME}/predictions", json=ROWS, headers=hp)
+            pinned_before = c.post(f"/v1/models/{NAME}/versions/{v1}/predictions", json=ROWS, headers=hp)
             assert before.status_code == 200 and pinned_before.status_code == 200
             assert "tikhon-catalog" not in before.headers
-            assert c.post(f"/v1/models/{NAME}/predict", json=ROWS,
+            assert c.post(f"/v1/models/{NAME}/predictions", json=ROWS,
                           headers={"Authorization": f"Bearer {revoked}"}).status_code == 401
             assert c.get("/v1/models", headers=ha).status_code == 200  # the admin key is known too
 
             with catalog_down(store):
                 for _ in range(3):
-                    r = c.post(f"/v1/models/{NAME}/predict", json=ROWS, headers=hp)
+                    r = c.post(f"/v1/models/{NAME}/predictions", json=ROWS, headers=hp)
                     assert r.status_code == 200, r.text
                     # Same version and numbers as before the outage, marked stale with an age in seconds.
                     assert r.json() == before.json()
                     assert r.json()["model"]["version"] == v2
                     kind, _, age = r.headers["tikhon-catalog"].partition("; age=")
                     assert kind == "stale" and 0 <= int(age) <= 300
-                p = c.post(f"/v1/models/{NAME}/versions/{v1}/predict", json=ROWS, headers=hp)
+                p = c.post(f"/v1/models/{NAME}/versions/{v1}/predictions", json=ROWS, headers=hp)
                 assert p.status_code == 200 and p.json() == pinned_before.json()
                 assert p.headers["tikhon-catalog"].startswith("stale; age=")
 
                 # A key revoked before the outage stays refused; one never checked here cannot be checked.
-                assert c.post(f"/v1/models/{NAME}/predict", json=ROWS,
+                assert c.post(f"/v1/models/{NAME}/predictions", json=ROWS,
                               headers={"Authorization": f"Bearer {revoked}"}).status_code == 401
-                unknown = c.post(f"/v1/models/{NAME}/predict", json=ROWS,
+                unknown = c.post(f"/v1/models/{NAME}/predictions", json=ROWS,
                                  headers={"Authorization": f"Bearer {never_seen}"})
                 assert unknown.status_code == 503
                 assert unknown.json()["type"] == "/problems/catalog-unavailable"
@@ -134,11 +134,11 @@ def test_predictions_survive_an_outage_and_changes_answer_503(tmp_path, kit):
             # The catalog is back: fresh answers, no stale marker, and changes work again. A replica tries the
             # catalog again at most once a second while it is down (CatalogWatch.retry_s), so wait that long.
             time.sleep(1.1)
-            after = c.post(f"/v1/models/{NAME}/predict", json=ROWS, headers=hp)
+            after = c.post(f"/v1/models/{NAME}/predictions", json=ROWS, headers=hp)
             assert after.status_code == 200 and "tikhon-catalog" not in after.headers
             assert after.json() == before.json()
             assert c.put(f"/v1/models/{NAME}/live", json={"version": v1, "reason": "after"}, headers=ha).status_code == 200
-            assert c.post(f"/v1/models/{NAME}/predict", json=ROWS, headers=hp).json()["model"]["version"] == v1
+            assert c.post(f"/v1/models/{NAME}/predictions", json=ROWS, headers=hp).json()["model"]["version"] == v1
             assert c.get("/readyz").status_code == 200
 
 
@@ -155,16 +155,16 @@ def test_a_key_revoked_elsewhere_stops_working_when_the_catalog_returns(tmp_path
         key_id, pred = store.keys.create(["predict"], "app")
         hp = {"Authorization": f"Bearer {pred}"}
         with httpx.Client(base_url=base, timeout=30) as c:
-            assert c.post(f"/v1/models/{NAME}/predict", json=ROWS, headers=hp).status_code == 200
+            assert c.post(f"/v1/models/{NAME}/predictions", json=ROWS, headers=hp).status_code == 200
             with catalog_down(store):
-                r = c.post(f"/v1/models/{NAME}/predict", json=ROWS, headers=hp)
+                r = c.post(f"/v1/models/{NAME}/predictions", json=ROWS, headers=hp)
                 assert r.status_code == 200 and r.headers["tikhon-catalog"].startswith("stale")
                 # Revoked meanwhile through another replica that still reaches the catalog.
                 with Store(settings) as other:
                     other.keys.revoke(key_id)
-                assert c.post(f"/v1/models/{NAME}/predict", json=ROWS, headers=hp).status_code == 200  # stale
+                assert c.post(f"/v1/models/{NAME}/predictions", json=ROWS, headers=hp).status_code == 200  # stale
             time.sleep(1.2)  # past the store's one-second cache (the documented bound), not a timing check
-            r = c.post(f"/v1/models/{NAME}/predict", json=ROWS, headers=hp)
+            r = c.post(f"/v1/models/{NAME}/predictions", json=ROWS, headers=hp)
             assert r.status_code == 401 and "tikhon-catalog" not in r.headers
 
 
@@ -172,9 +172,9 @@ def test_stale_ok_zero_means_no_stale_answers(tmp_path, kit):
     with kit.service(tmp_path, worker=False, stale_ok_s=0) as (base, store, settings):
         _publish(store, kit)
         with httpx.Client(base_url=base, timeout=30) as c:
-            assert c.post(f"/v1/models/{NAME}/predict", json=ROWS).status_code == 200
+            assert c.post(f"/v1/models/{NAME}/predictions", json=ROWS).status_code == 200
             with catalog_down(store):
-                r = c.post(f"/v1/models/{NAME}/predict", json=ROWS)
+                r = c.post(f"/v1/models/{NAME}/predictions", json=ROWS)
                 assert r.status_code == 503 and r.json()["type"] == "/problems/catalog-unavailable"
                 assert "TIKHON_STALE_OK_S" in r.json()["detail"]
 

@@ -76,13 +76,13 @@ def test_path_residuals_and_history_json(dash):
 def test_cors_preflight_from_an_unlisted_origin_names_the_setting(dash):
     base, _, _ = dash
     pre = {"Origin": "http://elsewhere.localhost:8080", "Access-Control-Request-Method": "POST"}
-    r = httpx.options(f"{base}/v1/models/pump-dash/predict", headers=pre)
+    r = httpx.options(f"{base}/v1/models/pump-dash/predictions", headers=pre)
     assert r.status_code == 403 and r.headers["content-type"] == "application/problem+json"
     body = r.json()
     assert body["type"] == "/problems/cors-origin-not-allowed"
     assert "TIKHON_CORS_ORIGINS" in body["detail"] and "http://elsewhere.localhost:8080" in body["detail"]
     assert "(now: http://dash.localhost:9000)" in body["detail"]
-    ok = httpx.options(f"{base}/v1/models/pump-dash/predict", headers={**pre, "Origin": "http://dash.localhost:9000"})
+    ok = httpx.options(f"{base}/v1/models/pump-dash/predictions", headers={**pre, "Origin": "http://dash.localhost:9000"})
     assert ok.status_code == 200 and ok.headers["access-control-allow-origin"] == "http://dash.localhost:9000"
     assert httpx.get(f"{base}/problems/cors-origin-not-allowed").status_code == 200
 

@@ -47,7 +47,7 @@ def test_train_poll_metadata_predict_matches_engine(worker_service, kit):
     fresh = kit.pump_table(50, seed=99)
     inputs = {k: fresh[k] for k in ("flow_lps", "head_m")}
     expected = reference.model.predict(inputs)
-    p = httpx.post(f"{base}/v1/models/pump-a/predict", json={"rows": kit.as_rows(inputs)})
+    p = httpx.post(f"{base}/v1/models/pump-a/predictions", json={"rows": kit.as_rows(inputs)})
     assert p.status_code == 200, p.text
     body = p.json()
     got = np.array([row["value"] for row in body["predictions"]])
@@ -60,7 +60,7 @@ def test_train_poll_metadata_predict_matches_engine(worker_service, kit):
 
     # CSV in, CSV out gives the same numbers (written as shortest round-trip decimals).
     text = "flow_lps,head_m\n" + "\n".join(f"{float(a)!r},{float(b)!r}" for a, b in zip(inputs["flow_lps"], inputs["head_m"]))
-    c = httpx.post(f"{base}/v1/models/pump-a/versions/1/predict", content=text, headers={"content-type": "text/csv"})
+    c = httpx.post(f"{base}/v1/models/pump-a/versions/1/predictions", content=text, headers={"content-type": "text/csv"})
     assert c.status_code == 200 and c.headers["content-type"].startswith("text/csv")
     assert c.headers["tikhon-model-version"] == "1"
     lines = c.text.strip().split("\n")
@@ -80,7 +80,8 @@ def test_idempotent_retry_returns_first_job(worker_service, kit):
     again = submit(base, "pump-idem", body, headers={"Idempotency-Key": "nightly-2024-06-01"})
     assert first.status_code == again.status_code == 202
     assert again.json()["id"] == first.json()["id"]
-    assert again.headers.get("idempotent-replay") == "true"
+    assert again.headers.get("tikhon-replayed") == "true" and "idempotent-replay" not in again.headers
+    assert "tikhon-replayed" not in first.headers  # only the repeat says it is one
     assert [j["id"] for j in store.jobs.list(name="pump-idem")] == [first.json()["id"]]
     # The same key with a different request is refused, not silently mapped to the first job.
     other = dict(body, promote="always")
@@ -168,7 +169,7 @@ def test_cv_plus_coverage_and_warnings(worker_service, kit):
     assert kit.wait_job(base, job["id"])["state"] == "succeeded"
     fresh = kit.pump_table(2000, seed=12, noise=2.0)
     rows = kit.as_rows({k: fresh[k] for k in ("flow_lps", "head_m")})
-    r = httpx.post(f"{base}/v1/models/pump-cover/predict", json={"rows": rows, "interval": 0.9}, timeout=60)
+    r = httpx.post(f"{base}/v1/models/pump-cover/predictions", json={"rows": rows, "interval": 0.9}, timeout=60)
     assert r.status_code == 200, r.text
     preds = r.json()["predictions"]
     lo = np.array([p["interval"][0] for p in preds])
@@ -182,7 +183,7 @@ def test_cv_plus_coverage_and_warnings(worker_service, kit):
     flagged = np.array([any("training range" in w for w in p["warnings"]) for p in preds])
     assert np.array_equal(flagged, outside)
 
-    out = httpx.post(f"{base}/v1/models/pump-cover/predict",
+    out = httpx.post(f"{base}/v1/models/pump-cover/predictions",
                      json={"rows": [{"flow_lps": 140.0, "head_m": 30.0}], "interval": 0.9}).json()
     warnings = out["predictions"][0]["warnings"]
     hi_flow = float(train["flow_lps"].max())
@@ -199,7 +200,7 @@ def test_live_switch_never_mixes_versions(worker_service, kit):
     probe = {"rows": kit.as_rows({k: v[:5] for k, v in kit.pump_table(5, seed=22).items() if k != "energy_kwh"})}
     expected = {}
     for v in (1, 2):
-        body = httpx.post(f"{base}/v1/models/pump-flip/versions/{v}/predict", json=probe).json()
+        body = httpx.post(f"{base}/v1/models/pump-flip/versions/{v}/predictions", json=probe).json()
         expected[v] = [p["value"] for p in body["predictions"]]
     assert expected[1] != expected[2]
 
@@ -210,7 +211,7 @@ def test_live_switch_never_mixes_versions(worker_service, kit):
     def hammer():
         with httpx.Client(base_url=base) as c:
             while not stop.is_set():
-                r = c.post("/v1/models/pump-flip/predict", json=probe)
+                r = c.post("/v1/models/pump-flip/predictions", json=probe)
                 if r.status_code != 200:
                     errors.append(r.text)
                     continue
@@ -225,7 +226,7 @@ def test_live_switch_never_mixes_versions(worker_service, kit):
             for i in range(30):
                 v = 2 if i % 2 == 0 else 1
                 assert c.put("/v1/models/pump-flip/live", json={"version": v, "reason": f"flip {i}"}).status_code == 200
-                b = c.post("/v1/models/pump-flip/predict", json=probe).json()
+                b = c.post("/v1/models/pump-flip/predictions", json=probe).json()
                 assert b["model"]["version"] == v  # a change made through this server is seen at once
                 seen.append((v, [p["value"] for p in b["predictions"]]))
     finally:
@@ -247,15 +248,15 @@ def test_metrics_and_request_ids(worker_service, kit):
     job = kit.wait_job(base, submit(base, "pump-metrics", {"data": {"rows": rows}, "spec": kit.SPEC, "promote": "always"}).json()["id"])
     probe = {"rows": [{"flow_lps": 50.0, "head_m": 30.0}] * 3}
     for _ in range(4):
-        r = httpx.post(f"{base}/v1/models/pump-metrics/predict", json=probe, headers={"X-Request-Id": "probe-1"})
+        r = httpx.post(f"{base}/v1/models/pump-metrics/predictions", json=probe, headers={"X-Request-Id": "probe-1"})
         assert r.headers["x-request-id"] == "probe-1"
     assert len(httpx.get(f"{base}/healthz").headers["x-request-id"]) == 32  # generated when none is sent
     text = httpx.get(f"{base}/metrics").text
     # Prometheus text exposition format (prometheus.io "Exposition formats"): name{labels} value.
     lines = dict(line.rsplit(" ", 1) for line in text.splitlines() if line and not line.startswith("#"))
-    key = 'tikhon_http_requests_total{method="POST",route="/v1/models/{name}/predict",status="200"}'
+    key = 'tikhon_http_requests_total{method="POST",route="/v1/models/{name}/predictions",status="200"}'
     assert float(lines[key]) >= 4
     assert float(lines[f'tikhon_predictions_total{{model="pump-metrics",version="{job["version"]}"}}']) == 12
     assert float(lines['tikhon_training_jobs{state="succeeded"}']) >= 1
     assert float(lines["tikhon_model_cache_hits_total"]) >= 3
-    assert 'tikhon_http_request_seconds_bucket{le="0.005",method="POST",route="/v1/models/{name}/predict"}' in lines
+    assert 'tikhon_http_request_seconds_bucket{le="0.005",method="POST",route="/v1/models/{name}/predictions"}' in lines

@@ -37,14 +37,14 @@ def problem(r: httpx.Response, status: int) -> dict:
 def test_mistyped_model_name_lists_the_closest_names(svc):
     base, _ = svc
     row = {"rows": [{"flow_lps": 50.0, "head_m": 30.0}]}
-    body = problem(httpx.post(f"{base}/v1/models/pump-enrgy/predict", json=row), 404)
+    body = problem(httpx.post(f"{base}/v1/models/pump-enrgy/predictions", json=row), 404)
     assert body["detail"].startswith("no model named 'pump-enrgy' exists; the closest name on this server: 'pump-energy'.")
     assert "has no live version" not in body["detail"]
     assert body["errors"][0]["closest"] == ["pump-energy"]
     # The same answer on the other routes that take a model name.
     body = problem(httpx.get(f"{base}/v1/models/pump-enrgy"), 404)
     assert "'pump-energy'" in body["detail"]
-    body = problem(httpx.post(f"{base}/v1/models/pump-enrgy/versions/1/predict", json=row), 404)
+    body = problem(httpx.post(f"{base}/v1/models/pump-enrgy/versions/1/predictions", json=row), 404)
     assert "closest name on this server: 'pump-energy'" in body["detail"]
     # Nothing close: the count of models, and where they are listed.
     body = problem(httpx.get(f"{base}/v1/models/boiler"), 404)
@@ -56,34 +56,34 @@ def test_unseen_level_warning_lists_known_levels_and_refuse_mode(svc):
     base, _ = svc
     rows = [{"flow_lps": 50.0, "head_m": 30.0, "zone": "east"}, {"flow_lps": 50.0, "head_m": 30.0, "zone": "north"},
             {"flow_lps": 50.0, "head_m": 30.0, "zone": 7}]
-    r = httpx.post(f"{base}/v1/models/pump-zoned/predict", json={"rows": rows[:2]})
+    r = httpx.post(f"{base}/v1/models/pump-zoned/predictions", json={"rows": rows[:2]})
     assert r.status_code == 200, r.text
     w = r.json()["predictions"]
     assert w[0]["warnings"] == ["zone='east' was not seen in training; its effect is taken as zero "
                                 "(known levels: 'north', 'south')"]
     assert w[1]["warnings"] == []
     # A number sent as a label is named as a number.
-    r = httpx.post(f"{base}/v1/models/pump-zoned/predict", json={"rows": [rows[2]]})
+    r = httpx.post(f"{base}/v1/models/pump-zoned/predictions", json={"rows": [rows[2]]})
     assert r.json()["predictions"][0]["warnings"][0].startswith("zone=7 (a number) was not seen in training")
     # refuse: 422 naming the row, the value as sent and the known levels; nothing predicted.
-    body = problem(httpx.post(f"{base}/v1/models/pump-zoned/predict", json={"rows": rows[:2] + [dict(rows[0], zone="west")], "unseen_levels": "refuse"}), 422)
+    body = problem(httpx.post(f"{base}/v1/models/pump-zoned/predictions", json={"rows": rows[:2] + [dict(rows[0], zone="west")], "unseen_levels": "refuse"}), 422)
     assert body["detail"].startswith("rows[0].zone = 'east' was not seen in training (row(s) 0, 2); known levels of "
                                      "'zone': 'north', 'south'.")
     assert [e["field"] for e in body["errors"]] == ["rows[0].zone", "rows[2].zone"]
     # refuse with only known levels answers normally; CSV takes the option as a query parameter.
-    r = httpx.post(f"{base}/v1/models/pump-zoned/predict", json={"rows": rows[1:2], "unseen_levels": "refuse"})
+    r = httpx.post(f"{base}/v1/models/pump-zoned/predictions", json={"rows": rows[1:2], "unseen_levels": "refuse"})
     assert r.status_code == 200 and r.json()["predictions"][0]["warnings"] == []
-    body = problem(httpx.post(f"{base}/v1/models/pump-zoned/predict?unseen_levels=refuse",
+    body = problem(httpx.post(f"{base}/v1/models/pump-zoned/predictions?unseen_levels=refuse",
                               content="flow_lps,head_m,zone\n50,30,west\n", headers={"content-type": "text/csv"}), 422)
     assert "'west' was not seen in training" in body["detail"]
-    body = problem(httpx.post(f"{base}/v1/models/pump-zoned/predict", json={"rows": rows[:1], "unseen_levels": "no"}), 422)
+    body = problem(httpx.post(f"{base}/v1/models/pump-zoned/predictions", json={"rows": rows[:1], "unseen_levels": "no"}), 422)
     assert "'warn'" in body["detail"] and "'refuse'" in body["detail"]
 
 
 def test_semicolon_and_tab_csv_name_the_delimiter(svc):
     base, _ = svc
     for text, label in (("flow_lps;head_m\n50;30\n", "semicolon (;)"), ("flow_lps\thead_m\n50\t30\n", "tab")):
-        body = problem(httpx.post(f"{base}/v1/models/pump-energy/predict", content=text,
+        body = problem(httpx.post(f"{base}/v1/models/pump-energy/predictions", content=text,
                                   headers={"content-type": "text/csv"}), 422)
         assert body["detail"].startswith(f"body is separated by {label}, not commas")
         assert "columns found: 'flow_lps', 'head_m'" in body["detail"]
@@ -92,7 +92,7 @@ def test_semicolon_and_tab_csv_name_the_delimiter(svc):
 
 def test_text_where_a_number_belongs_is_shown_as_written(svc):
     base, _ = svc
-    body = problem(httpx.post(f"{base}/v1/models/pump-energy/predict",
+    body = problem(httpx.post(f"{base}/v1/models/pump-energy/predictions",
                               json={"rows": [{"flow_lps": "minus five", "head_m": 30.0}]}), 422)
     assert "np.str_" not in body["detail"] and "categorical" not in body["detail"]
     assert body["detail"].startswith("input column 'flow_lps' must be numeric but holds text, e.g. row 0 = 'minus five'; "

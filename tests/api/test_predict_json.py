@@ -13,7 +13,8 @@ import numpy as np
 import pytest
 from sklearn.datasets import load_diabetes
 
-from service.api.routes.predict import _json
+import service.api.routes.predictions as predictions_module
+from service.api.routes.predictions import _json
 from service.engine import tune
 
 SERVED = SimpleNamespace(block_json=b'{"name":"m","version":3}')
@@ -67,3 +68,23 @@ def test_json_answer_of_a_real_model_with_warnings():
     assert detail["warnings"][3] and detail["warnings"][40] and not detail["warnings"][0]
     body = json.loads(_json(SERVED, detail, True))
     assert body["predictions"] == expected(detail, True)
+
+
+@pytest.mark.parametrize("with_interval", [True, False])
+def test_few_rows_are_written_byte_for_byte_as_the_spliced_columns(with_interval, monkeypatch):
+    # Up to SMALL_JSON_ROWS rows are written from Python floats and lists; the bytes must be those of the
+    # column splice (orjson writes a numpy float64 and the equal Python float alike; common practice: compare
+    # the two writers on values across the whole exponent range, signed zeros, infinities and NaN).
+    rng = np.random.default_rng(21)
+    for m in range(1, predictions_module.SMALL_JSON_ROWS + 1):
+        value = rng.normal(0.0, 1.0, m) * 10.0 ** rng.integers(-300, 300, m)
+        value[0] = [-0.0, np.nan, np.inf, 1e-320, 0.1][m % 5]
+        lower, upper = value - rng.uniform(0, 5, m), value + rng.uniform(0, 5, m)
+        warnings = [[] if i % 3 else [f"row {i}: leverage 0.9 exceeds \"0.5\"", "zone=Nörd was not seen"] for i in range(m)]
+        detail = {"value": value, "lower": lower, "upper": upper, "warnings": warnings}
+        small = _json(SERVED, detail, with_interval)
+        monkeypatch.setattr(predictions_module, "SMALL_JSON_ROWS", 0)
+        spliced = _json(SERVED, detail, with_interval)
+        monkeypatch.undo()
+        assert small == spliced, m
+        assert json.loads(small)["predictions"] == expected(detail, with_interval)

@@ -69,7 +69,8 @@ def variants(model, rng: np.random.Generator):
 
 @pytest.mark.parametrize("window", [model_module._WINDOW, 1])
 def test_cv_plus_bounds_equal_the_brute_force_form(diabetes_model, window, monkeypatch):
-    # window=1 forces the value bisection on every row, the default exercises the direct snap as well.
+    # window=1 forces the value bisection on every row, the default exercises the direct snap as well;
+    # the 5-row predict_detail below is ranked directly (rows × residuals under _DIRECT_VALUES).
     monkeypatch.setattr(model_module, "_WINDOW", window)
     model, X = diabetes_model
     rng = np.random.default_rng(14)
@@ -94,8 +95,11 @@ def test_cv_plus_bounds_equal_the_brute_force_form(diabetes_model, window, monke
     assert checked > 15 * 5 * 360  # the bounds were finite (real order statistics), not ±inf everywhere
 
 
-def test_cv_plus_bounds_with_a_non_finite_fold_prediction(diabetes_model):
-    # A basis value that overflows gives ±inf fold predictions; such rows keep the direct form's answer.
+@pytest.mark.parametrize("direct", [model_module._DIRECT_VALUES, -1])
+def test_cv_plus_bounds_with_a_non_finite_fold_prediction(diabetes_model, direct, monkeypatch):
+    # A basis value that overflows gives ±inf fold predictions; such rows keep the direct form's answer
+    # (a few rows are ranked directly; direct=-1 sends them through the windowed order statistic).
+    monkeypatch.setattr(model_module, "_DIRECT_VALUES", direct)
     model, X = diabetes_model
     Phi, _, _ = model.design({f"x{j}": X[:4, j] for j in range(4)})
     Phi[1, 0] = np.inf

@@ -42,7 +42,7 @@ def _cli(rk, settings: dict, *args: str, url: str | None = None, key: str | None
 # server reads the key table again, so an answer then reflects the emptied table, not a cached row.
 CATALOG_TTL_S = 1.5
 
-GUARDED = (("GET", "/v1/models"), ("GET", "/v1/models/pumps"), ("POST", "/v1/models/pumps/predict"),
+GUARDED = (("GET", "/v1/models"), ("GET", "/v1/models/pumps"), ("POST", "/v1/models/pumps/predictions"),
            ("GET", "/v1/keys"), ("POST", "/v1/keys"), ("GET", "/metrics"))
 
 
@@ -72,12 +72,12 @@ def test_last_admin_key_is_kept_and_a_keyless_server_stays_closed(tmp_path, rk):
         assert json.loads(r.stdout)["active"] is False
         time.sleep(CATALOG_TTL_S)  # let the server's catalog cache see the change (waiting, not a timed check)
         for method, path in GUARDED:
-            body = row if path.endswith("predict") else ({"scopes": ["admin"]} if path == "/v1/keys" else None)
+            body = row if path.endswith("/predictions") else ({"scopes": ["admin"]} if path == "/v1/keys" else None)
             for headers in ({}, _bearer(admin)):
                 r = httpx.request(method, f"{b}{path}", json=body, headers=headers, timeout=60)
                 p = rk.assert_problem(r, 401)
                 assert "no active key exists" in p["detail"] or "unknown or revoked" in p["detail"], p
-        assert httpx.post(f"{b}/v1/models/pumps/predict", json=row, timeout=60).status_code == 401
+        assert httpx.post(f"{b}/v1/models/pumps/predictions", json=row, timeout=60).status_code == 401
         page = httpx.get(f"{b}/", timeout=60)
         assert page.status_code == 303 and page.headers["location"].startswith("/login")
         assert httpx.get(f"{b}/healthz", timeout=60).status_code == 200
@@ -171,7 +171,7 @@ def test_metrics_needs_the_metrics_scope_once_keys_exist(tmp_path, rk):
         # the metrics scope opens the scrape only: not a model, not a prediction, not the page
         scraper = _bearer(made.json()["secret"])
         assert httpx.get(f"{b}/v1/models", headers=scraper, timeout=60).status_code == 403
-        assert httpx.post(f"{b}/v1/models/pumps/predict", headers=scraper,
+        assert httpx.post(f"{b}/v1/models/pumps/predictions", headers=scraper,
                           json={"rows": [{"flow_lps": 1.0, "head_m": 1.0}]}, timeout=60).status_code == 403
         r = httpx.post(f"{b}/login", data={"key": made.json()["secret"], "next": "/"}, headers={"Origin": b}, timeout=60)
         assert r.status_code == 403

@@ -124,7 +124,7 @@ def test_malformed_or_altered_keys_open_nothing(keyed, rk, header):
 def test_authorization_comes_before_validation(keyed, rk):
     """An anonymous caller learns nothing from validation errors: malformed input without a key is a 401."""
     server, _, _ = keyed
-    for method, url, body in (("POST", "/v1/models/pumps/predict", b"{not json"),
+    for method, url, body in (("POST", "/v1/models/pumps/predictions", b"{not json"),
                               ("POST", "/v1/models/BAD NAME/trainings", b"[]"),
                               ("GET", "/v1/models/pumps/versions/not-a-number", None),
                               ("PUT", "/v1/models/pumps/live", b'{"version": "x"}')):
@@ -223,14 +223,14 @@ def test_keys_never_appear_in_the_logs(tmp_path, rk):
         for scope, secret in keys.items():
             h = {"authorization": f"Bearer {secret}"}
             httpx.get(f"{b}/v1/models", headers=h, timeout=60)
-            httpx.post(f"{b}/v1/models/pumps/predict", headers=h, json={"rows": [{"flow_lps": 50.0, "head_m": 30.0}]}, timeout=60)
+            httpx.post(f"{b}/v1/models/pumps/predictions", headers=h, json={"rows": [{"flow_lps": 50.0, "head_m": 30.0}]}, timeout=60)
             httpx.put(f"{b}/v1/models/pumps/live", headers=h, json={"version": 1, "reason": "log test"}, timeout=60)
             httpx.get(f"{b}/v1/models", headers={"authorization": f"Bearer {secret}x"}, timeout=60)
             httpx.get(f"{b}/v1/models", cookies={"tikhon_key": secret}, timeout=60)
             httpx.get(f"{b}/", cookies={"tikhon_key": secret}, timeout=60)
             httpx.post(f"{b}/login", data={"key": secret, "next": "/"}, headers={"Origin": b}, timeout=60)
             httpx.post(f"{b}/login", data={"key": secret + "x", "next": "/"}, headers={"Origin": b}, timeout=60)
-            httpx.post(f"{b}/v1/models/pumps/predict", headers=h, content=b"{broken", timeout=60)  # an error path
+            httpx.post(f"{b}/v1/models/pumps/predictions", headers=h, content=b"{broken", timeout=60)  # an error path
         httpx.get(f"{b}/v1/models", headers={"authorization": f"Bearer {revoked}"}, timeout=60)
         created = httpx.post(f"{b}/v1/keys", headers={"authorization": f"Bearer {keys['admin']}"},
                              json={"scopes": ["predict"], "label": "made over HTTP"}, timeout=60)

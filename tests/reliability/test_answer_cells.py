@@ -37,14 +37,14 @@ def test_an_overflowing_prediction_is_null_with_a_warning_and_declared_nullable(
     with live_service(tmp_path, worker=False) as (base, store, _):
         rk.publish_demo(store, "pumps", seed=0)
         rows = [{"flow_lps": 1e308, "head_m": 35.0}, {"flow_lps": 70.0, "head_m": 35.0}]
-        r = httpx.post(f"{base}/v1/models/pumps/predict", json={"rows": rows, "interval": 0.9}, timeout=30)
+        r = httpx.post(f"{base}/v1/models/pumps/predictions", json={"rows": rows, "interval": 0.9}, timeout=30)
         assert r.status_code == 200, r.text
         first, second = r.json()["predictions"]
         assert first["value"] is None and first["interval"] == [None, None]
         assert any("not a finite number" in w and "overflowed" in w for w in first["warnings"]), first
         assert isinstance(second["value"], float) and not any("finite" in w for w in second["warnings"])
 
-        text = httpx.post(f"{base}/v1/models/pumps/predict?interval=0.9", timeout=30,
+        text = httpx.post(f"{base}/v1/models/pumps/predictions?interval=0.9", timeout=30,
                           content="flow_lps,head_m\n1e308,35\n70,35\n",
                           headers={"Content-Type": "text/csv", "Accept": "text/csv"}).text
         table = list(csv.reader(io.StringIO(text)))
@@ -65,7 +65,7 @@ def test_csv_answers_neutralize_formula_cells(rk, tmp_path):
         _zone_model(store, rk)
         hostile = '=HYPERLINK("http://example.invalid/x","open")'
         body = f'flow_lps,head_m,@zone\n70,35,north\n70,35,"{hostile.replace(chr(34), chr(34) * 2)}"\n-5,35,+east\n'
-        r = httpx.post(f"{base}/v1/models/zones/predict", content=body, timeout=30,
+        r = httpx.post(f"{base}/v1/models/zones/predictions", content=body, timeout=30,
                        headers={"Content-Type": "text/csv", "Accept": "text/csv"})
         assert r.status_code == 200, r.text
         table = list(csv.reader(io.StringIO(r.text)))

@@ -40,7 +40,7 @@ def test_a_version_larger_than_the_bound_is_served_but_not_kept(tmp_path, rk):
             answers = []
             for _ in range(3):
                 before = store.cache_stats()["misses"]
-                r = c.post("/v1/models/big/predict", json=row)
+                r = c.post("/v1/models/big/predictions", json=row)
                 assert r.status_code == 200, r.text
                 answers.append(r.json()["predictions"][0]["value"])
                 # loaded from the store on every request: neither cache kept it
@@ -49,9 +49,9 @@ def test_a_version_larger_than_the_bound_is_served_but_not_kept(tmp_path, rk):
             assert app.state.models.stats()["items"] == 0 and store.cache_stats()["items"] == 0
 
             # a small version is kept by both, and the bytes held stay under the bound
-            assert c.post("/v1/models/small/predict", json=row).status_code == 200
+            assert c.post("/v1/models/small/predictions", json=row).status_code == 200
             before = store.cache_stats()["misses"]
-            assert c.post("/v1/models/small/predict", json=row).status_code == 200
+            assert c.post("/v1/models/small/predictions", json=row).status_code == 200
             assert store.cache_stats()["misses"] == before  # served from the API's cache
             for stats in (app.state.models.stats(), store.cache_stats()):
                 assert stats["items"] == 1 and 0 < stats["bytes"] <= BOUND, stats

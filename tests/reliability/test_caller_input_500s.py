@@ -47,7 +47,7 @@ def test_versions_beyond_the_catalog_range_are_not_found_or_invalid(server, rk):
                                        ("GET", f"/v1/models/pumps/versions/{v}/plots/cv", None),
                                        ("GET", f"/v1/models/pumps/versions/{v}/plots/path", None),
                                        ("GET", f"/v1/models/pumps/versions/{v}/plots/residuals", None),
-                                       ("POST", f"/v1/models/pumps/versions/{v}/predict", row),
+                                       ("POST", f"/v1/models/pumps/versions/{v}/predictions", row),
                                        ("DELETE", f"/v1/models/pumps/versions/{v}", None)):
                 p = rk.assert_problem(c.request(method, path, json=body), 404, 422)
                 assert "version" in p["detail"], (method, path, p)
@@ -63,7 +63,7 @@ def test_versions_beyond_the_catalog_range_are_not_found_or_invalid(server, rk):
             assert page.status_code == 404 and page.headers["content-type"].startswith("text/html"), page.status_code
         # the server still answers, and the live version did not move
         assert c.get("/v1/models/pumps").json()["live_version"] == 1
-        assert c.post("/v1/models/pumps/versions/1/predict", json=row).status_code == 200
+        assert c.post("/v1/models/pumps/versions/1/predictions", json=row).status_code == 200
 
 
 def test_store_refuses_versions_beyond_the_catalog_range_as_not_found(tmp_path, rk):

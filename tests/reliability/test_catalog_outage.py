@@ -128,7 +128,7 @@ class Load:
             while not self._stop.is_set() and len(self.samples) < self.limit:
                 t0 = time.monotonic()
                 try:
-                    r = c.post(f"/v1/models/{NAME}/predict", json=ROW, headers=headers)
+                    r = c.post(f"/v1/models/{NAME}/predictions", json=ROW, headers=headers)
                     version = r.json()["model"]["version"] if r.status_code == 200 else None
                     if r.status_code != 200:
                         self.errors.append(f"{r.status_code} {r.text[:300]}")
@@ -173,7 +173,7 @@ def test_two_replicas_keep_predicting_through_a_postgresql_restart(postgres, tmp
     try:
         replicas = {"a": a, "b": b}
         for srv in replicas.values():  # the model loaded and the key checked on both before the outage
-            r = httpx.post(f"{srv.base}/v1/models/{NAME}/predict", json=ROW, timeout=60,
+            r = httpx.post(f"{srv.base}/v1/models/{NAME}/predictions", json=ROW, timeout=60,
                            headers={"Authorization": f"Bearer {predict}"})
             assert r.status_code == 200 and r.json()["model"]["version"] == v1
         expected = r.json()["predictions"]
@@ -241,17 +241,17 @@ def test_two_replicas_keep_predicting_through_a_postgresql_restart(postgres, tmp
         time.sleep(2.5)  # the replicas' live caches (1 s + the store's 1 s)
         views = []
         for srv in (a, b):
-            p = httpx.post(f"{srv.base}/v1/models/{NAME}/predict", json=ROW, headers=hp, timeout=30)
+            p = httpx.post(f"{srv.base}/v1/models/{NAME}/predictions", json=ROW, headers=hp, timeout=30)
             assert p.status_code == 200 and "tikhon-catalog" not in p.headers
             assert p.json()["model"]["version"] == 2
             versions = httpx.get(f"{srv.base}/v1/models/{NAME}/versions", headers=ha, timeout=30).json()
             views.append(versions)
-            pinned = httpx.post(f"{srv.base}/v1/models/{NAME}/versions/{v1}/predict", json=ROW, headers=hp, timeout=30)
+            pinned = httpx.post(f"{srv.base}/v1/models/{NAME}/versions/{v1}/predictions", json=ROW, headers=hp, timeout=30)
             assert pinned.json()["predictions"] == expected  # version 1 answers as before the outage
         assert views[0] == views[1]
         assert httpx.delete(f"{a.base}/v1/keys/{predict_id}", headers=ha, timeout=30).status_code in (200, 204)
         time.sleep(2.5)  # TIKHON_AUTH_CACHE_S (1 s) plus the store's one-second cache
-        refused = httpx.post(f"{b.base}/v1/models/{NAME}/predict", json=ROW, headers=hp, timeout=30)
+        refused = httpx.post(f"{b.base}/v1/models/{NAME}/predictions", json=ROW, headers=hp, timeout=30)
         assert refused.status_code == 401 and "tikhon-catalog" not in refused.headers
 
         # -- the worker's log: one error, a few summaries, one line when the catalog is back ---------------

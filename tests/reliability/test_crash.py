@@ -133,7 +133,7 @@ def check_store(settings: dict, base: str | None, rk, *, expect_jobs: set[str] |
             loaded = store.load(NAME, v)  # checksum and format verification on first load
             local = loaded.model.predict(probe)
             if base is not None:
-                got = httpx.post(f"{base}/v1/models/{NAME}/versions/{v}/predict", timeout=60,
+                got = httpx.post(f"{base}/v1/models/{NAME}/versions/{v}/predictions", timeout=60,
                                  json={"rows": rk.as_rows(probe)}).json()
                 assert got["model"]["version"] == v
                 assert [p["value"] for p in got["predictions"]] == local.tolist()  # bit for bit
@@ -269,7 +269,7 @@ def test_sigkill_api_process_during_a_publish(tmp_path, rk, step, full):
     port = rk.free_port()
     doomed = rk.ServerProcess({**settings, "port": port}, tmp_path / "doomed.log", prelude=PUBLISH_FAULT,
                               env={"RELIABILITY_FAULT_STEP": step}).wait_ready()
-    before = httpx.post(f"{doomed.base}/v1/models/{NAME}/predict", json=probe, timeout=60).json()
+    before = httpx.post(f"{doomed.base}/v1/models/{NAME}/predictions", json=probe, timeout=60).json()
     job_id = submit(doomed.base, seed=12, rk=rk, spec=rk.QUICK_SPEC, rows=600)
     doomed.proc.wait(300)
     doomed.stop()
@@ -277,7 +277,7 @@ def test_sigkill_api_process_during_a_publish(tmp_path, rk, step, full):
     mid = check_store(settings, None, rk, settled=False)  # between the crash and the restart (after the sweep)
     assert mid["versions"] == ([1, 2] if step == "committed" else [1]) and mid["live"] == 1, (step, mid)
     with rk.server_process(tmp_path, **settings) as server:
-        served = httpx.post(f"{server.base}/v1/models/{NAME}/predict", json=probe, timeout=60).json()
+        served = httpx.post(f"{server.base}/v1/models/{NAME}/predictions", json=probe, timeout=60).json()
         if served["model"]["version"] == 1:
             assert served == before
         final = wait_for(lambda: (j := job_of(server.base, job_id))["state"] in FINAL and j, "the job to end")
@@ -334,7 +334,7 @@ def test_disk_full_fails_the_job_cleanly_and_the_live_model_keeps_serving(tmp_pa
         store.close()
         probe = {"rows": [{"flow_lps": 55.5, "head_m": 31.25}, {"flow_lps": 80.0, "head_m": 40.0}]}
         with rk.server_process(tmp_path, **settings) as server:
-            before = httpx.post(f"{server.base}/v1/models/{NAME}/predict", json=probe, timeout=60).json()
+            before = httpx.post(f"{server.base}/v1/models/{NAME}/predictions", json=probe, timeout=60).json()
             # the submission itself on a full disk: refused with a storage problem, nothing staged
             filler = fill(disk, leave=4096)
             snap = rk.store_snapshot(settings["store"], rk.catalog_url_of(settings))
@@ -351,7 +351,7 @@ def test_disk_full_fails_the_job_cleanly_and_the_live_model_keeps_serving(tmp_pa
             assert final["state"] == "failed", final
             assert final["problem"]["type"] == "/problems/storage-failure", final["problem"]
             assert "nothing was published" in final["problem"]["detail"]
-            assert httpx.post(f"{server.base}/v1/models/{NAME}/predict", json=probe, timeout=60).json() == before
+            assert httpx.post(f"{server.base}/v1/models/{NAME}/predictions", json=probe, timeout=60).json() == before
             assert [v["version"] for v in httpx.get(f"{server.base}/v1/models/{NAME}/versions", timeout=60).json()["versions"]] == [1]
             ready = httpx.get(f"{server.base}/readyz", timeout=60)
             assert ready.status_code in (200, 503)  # a probe write may or may not fit in the last 4 KiB

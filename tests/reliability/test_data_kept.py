@@ -89,7 +89,7 @@ def test_a_lost_catalog_keeps_every_version_and_recover_brings_them_back(rk, tmp
         assert report["registered"] == [{"name": "pumps", "version": 1}, {"name": "pumps", "version": 2}]
         assert report["live"] == [{"name": "pumps", "version": 2}] and report["refused"] == []
         assert httpx.get(f"{srv.base}/readyz", timeout=30).status_code == 200
-        answer = httpx.post(f"{srv.base}/v1/models/pumps/predict", json={"rows": [{"flow_lps": 70, "head_m": 35}]},
+        answer = httpx.post(f"{srv.base}/v1/models/pumps/predictions", json={"rows": [{"flow_lps": 70, "head_m": 35}]},
                             headers={"Authorization": f"Bearer {secret}"}, timeout=30)
         assert answer.status_code == 200, answer.text
         assert answer.json()["model"]["version"] == 2

@@ -44,7 +44,7 @@ def srv(tmp_path_factory, rk):
     with rk.server_process(root, **{k: v for k, v in settings.items() if k not in ("store", "data_dir")},
                            store=settings["store"], data_dir=settings["data_dir"]) as server:
         probe = {"rows": [{"flow_lps": 55.5, "head_m": 31.25}]}
-        reference = httpx.post(f"{server.base}/v1/models/{NAME}/predict", json=probe, timeout=60).json()
+        reference = httpx.post(f"{server.base}/v1/models/{NAME}/predictions", json=probe, timeout=60).json()
         yield server, settings, probe, reference
 
 
@@ -56,7 +56,7 @@ def unchanged(srv, rk):
     yield server.base
     assert server.alive(), server.log_text()[-3000:]
     assert httpx.get(f"{server.base}/healthz", timeout=60).json() == {"status": "ok"}
-    again = httpx.post(f"{server.base}/v1/models/{NAME}/predict", json=probe, timeout=60)
+    again = httpx.post(f"{server.base}/v1/models/{NAME}/predictions", json=probe, timeout=60)
     assert again.status_code == 200 and again.json() == reference  # same version, same numbers, bit for bit
     after = rk.store_snapshot(settings["store"], rk.catalog_url_of(settings))
     assert after == before, "the refused request changed the store"
@@ -71,7 +71,7 @@ def train_raw(base, content, headers=J, name=NAME):
 
 
 def predict_raw(base, content, headers=J, name=NAME):
-    return httpx.post(f"{base}/v1/models/{name}/predict", content=content, headers=headers, timeout=300)
+    return httpx.post(f"{base}/v1/models/{name}/predictions", content=content, headers=headers, timeout=300)
 
 
 SPEC = {"target": "energy_kwh", "features": ["flow_lps", "head_m"], "bases": [{"kind": "linear"}],
@@ -132,11 +132,11 @@ def test_a_million_rows_in_one_prediction_request(unchanged, rk):
     ({"flow_lps": None, "head_m": 31.25}, "flow_lps"),
 ])
 def test_strings_and_other_non_numbers_where_numbers_belong(unchanged, rk, row, field):
-    p = rk.assert_problem(httpx.post(f"{unchanged}/v1/models/{NAME}/predict", json={"rows": [row]}, timeout=60), 422)
+    p = rk.assert_problem(httpx.post(f"{unchanged}/v1/models/{NAME}/predictions", json={"rows": [row]}, timeout=60), 422)
     assert field in p["detail"]
     # the same in a batch, in a row other than the first
     good = {"flow_lps": 40.0, "head_m": 30.0}
-    p = rk.assert_problem(httpx.post(f"{unchanged}/v1/models/{NAME}/predict", json={"rows": [good, good, row]}, timeout=60), 422)
+    p = rk.assert_problem(httpx.post(f"{unchanged}/v1/models/{NAME}/predictions", json={"rows": [good, good, row]}, timeout=60), 422)
     assert field in p["detail"]
 
 
@@ -174,7 +174,7 @@ def test_negative_zero_is_a_number_and_equals_zero(unchanged):
     and the answer is the one for +0.0 (not a 4xx: refusing a valid number would be the bug). The same
     request path must give the same bits; a CSV batch goes through the batch path, whose matrix products
     may round differently in the last place, so there the project's 1e-12 contract applies."""
-    pos = httpx.post(f"{unchanged}/v1/models/{NAME}/predict", json={"rows": [{"flow_lps": 0.0, "head_m": 0.0}]},
+    pos = httpx.post(f"{unchanged}/v1/models/{NAME}/predictions", json={"rows": [{"flow_lps": 0.0, "head_m": 0.0}]},
                      timeout=60)
     neg = predict_raw(unchanged, b'{"rows": [{"flow_lps": -0.0, "head_m": -0.0}]}')
     assert pos.status_code == neg.status_code == 200
@@ -193,7 +193,7 @@ def test_negative_zero_is_a_number_and_equals_zero(unchanged):
 
 def test_unicode_lookalike_column_name_is_named_as_missing(unchanged, rk):
     # "flоw_lps" with a Cyrillic о (U+043E): looks right, is another column
-    p = rk.assert_problem(httpx.post(f"{unchanged}/v1/models/{NAME}/predict",
+    p = rk.assert_problem(httpx.post(f"{unchanged}/v1/models/{NAME}/predictions",
                                      json={"rows": [{"fl\u043ew_lps": 55.5, "head_m": 31.25}]}, timeout=60), 422)
     assert "flow_lps" in p["detail"]
 
@@ -273,7 +273,7 @@ def test_source_paths_that_escape_or_do_not_exist(unchanged, rk, source, says):
 ])
 def test_model_names_that_try_path_traversal(unchanged, rk, path):
     for method, suffix, kw in (("POST", "/trainings", {"json": {"data": {"rows": ROWS}, "spec": SPEC}}),
-                               ("POST", "/predict", {"json": {"rows": [{"flow_lps": 1.0, "head_m": 2.0}]}}),
+                               ("POST", "/predictions", {"json": {"rows": [{"flow_lps": 1.0, "head_m": 2.0}]}}),
                                ("GET", "", {}), ("GET", "/versions", {}), ("PUT", "/live", {"json": {"version": 1}})):
         r = httpx.request(method, f"{unchanged}/v1/models/{path}{suffix}", timeout=60, **kw)
         p = rk.assert_problem(r, 404, 405, 422)

@@ -86,5 +86,5 @@ def test_a_version_that_fails_verification_cannot_go_live(rk, tmp_path, damage):
         assert body["errors"][0]["field"] == "version" and body["errors"][0]["value"] == 2
         assert store.live_version("pumps") == 1
         assert [h["to_version"] for h in store.history("pumps")] == [1]
-        served = httpx.post(f"{base}/v1/models/pumps/predict", json={"rows": [{"flow_lps": 70, "head_m": 35}]}, timeout=30)
+        served = httpx.post(f"{base}/v1/models/pumps/predictions", json={"rows": [{"flow_lps": 70, "head_m": 35}]}, timeout=30)
         assert served.status_code == 200 and served.json()["model"]["version"] == 1

@@ -19,10 +19,10 @@ import livesvc  # tests/livesvc.py
 def _send(base: str, rows: list[dict], single: int) -> None:
     """``single`` rows one request each (the queued hot path), the rest as one batch."""
     for row in rows[:single]:
-        r = httpx.post(f"{base}/v1/models/pumps/predict", json={"rows": [row]}, timeout=30)
+        r = httpx.post(f"{base}/v1/models/pumps/predictions", json={"rows": [row]}, timeout=30)
         assert r.status_code == 200, r.text
     if rows[single:]:
-        r = httpx.post(f"{base}/v1/models/pumps/predict", json={"rows": rows[single:]}, timeout=60)
+        r = httpx.post(f"{base}/v1/models/pumps/predictions", json={"rows": rows[single:]}, timeout=60)
         assert r.status_code == 200, r.text
 
 

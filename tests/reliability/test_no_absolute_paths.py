@@ -59,7 +59,7 @@ def test_store_paths_are_relative(server, rk):
     arrays = folder / "arrays.npz"  # (cv.npz, the CV table, is read only by /cv)
     arrays.write_bytes(arrays.read_bytes()[:-7] + b"garbage")  # same folder, wrong bytes: fails its checksum
     with httpx.Client(base_url=srv.base, timeout=60) as c:
-        r = c.post("/v1/models/damaged/versions/1/predict", json={"rows": [{"flow_lps": 50.0, "head_m": 30.0}]})
+        r = c.post("/v1/models/damaged/versions/1/predictions", json={"rows": [{"flow_lps": 50.0, "head_m": 30.0}]})
         p = rk.assert_problem(r, 500, 507)
         assert p["type"] == "/problems/integrity-failure", p
         assert not _leaks(r.text, settings), p["detail"]

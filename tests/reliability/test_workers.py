@@ -132,7 +132,7 @@ def test_live_switch_and_key_revocation_reach_every_process(rk, tmp_path, two_ve
     live_s, auth_s = 1.0, 1.0
     admin = {"Authorization": f"Bearer {two_versions['admin']}"}
     with supervised(rk, tmp_path, "--no-worker", live_cache_s=live_s, auth_cache_s=auth_s) as srv:
-        predict = lambda: httpx.post(f"{srv.base}/v1/models/pumps/predict", json=ROW, headers=admin, timeout=30)
+        predict = lambda: httpx.post(f"{srv.base}/v1/models/pumps/predictions", json=ROW, headers=admin, timeout=30)
         before = sweep(predict)
         assert len(before) == PROCESSES
         assert {r.json()["model"]["version"] for rs in before.values() for r in rs} == {1}
@@ -148,12 +148,12 @@ def test_live_switch_and_key_revocation_reach_every_process(rk, tmp_path, two_ve
         versions = {pid: sorted({r.json()["model"]["version"] for r in rs}) for pid, rs in after.items()}
         assert versions == {pid: [2] for pid in after}, versions
         # Every answer names version 2 and carries its numbers: the pinned route of version 2 agrees.
-        pinned = httpx.post(f"{srv.base}/v1/models/pumps/versions/2/predict", json=ROW, headers=admin, timeout=30)
+        pinned = httpx.post(f"{srv.base}/v1/models/pumps/versions/2/predictions", json=ROW, headers=admin, timeout=30)
         assert {r.json()["predictions"][0]["value"] for rs in after.values() for r in rs} == {
             pinned.json()["predictions"][0]["value"]}
 
         victim = {"Authorization": f"Bearer {two_versions['victim']}"}
-        as_victim = lambda: httpx.post(f"{srv.base}/v1/models/pumps/predict", json=ROW, headers=victim, timeout=30)
+        as_victim = lambda: httpx.post(f"{srv.base}/v1/models/pumps/predictions", json=ROW, headers=victim, timeout=30)
         assert {r.status_code for rs in sweep(as_victim).values() for r in rs} == {200}
         revoke = httpx.delete(f"{srv.base}/v1/keys/{two_versions['victim_id']}", headers=admin, timeout=30)
         assert revoke.status_code in (200, 204), revoke.text
@@ -168,10 +168,10 @@ def test_live_switch_and_key_revocation_reach_every_process(rk, tmp_path, two_ve
 def test_metrics_are_summed_over_processes(rk, tmp_path, two_versions):
     admin = {"Authorization": f"Bearer {two_versions['admin']}"}
     route = ("tikhon_http_requests_total",
-             (("method", "POST"), ("route", "/v1/models/{name}/predict"), ("status", "200")))
+             (("method", "POST"), ("route", "/v1/models/{name}/predictions"), ("status", "200")))
     rows = ("tikhon_predictions_total", (("model", "pumps"), ("version", "1")))
     with supervised(rk, tmp_path, "--no-worker") as srv:
-        answered = sweep(lambda: httpx.post(f"{srv.base}/v1/models/pumps/predict", json=ROW, headers=admin,
+        answered = sweep(lambda: httpx.post(f"{srv.base}/v1/models/pumps/predictions", json=ROW, headers=admin,
                                             timeout=30))
         sent = sum(len(v) for v in answered.values())
         assert len(answered) == PROCESSES and sent >= 2 * PROCESSES
@@ -298,7 +298,7 @@ def test_a_process_killed_under_load(rk, tmp_path, two_versions, sig):
     with supervised(rk, tmp_path, "--no-worker") as srv:
         srv.wait_for("API process ready", count=PROCESSES)
         victim = srv.slot_pid(1)
-        with Load(f"{srv.base}/v1/models/pumps/predict", admin, threads=threads) as load:
+        with Load(f"{srv.base}/v1/models/pumps/predictions", admin, threads=threads) as load:
             # Both processes answering, and some load behind us, before the signal.
             load.wait_until(lambda res: {p for _, k, p in res if k == "ok"} >= {victim, srv.slot_pid(0)}
                             and len(res) >= 200)
@@ -309,7 +309,7 @@ def test_a_process_killed_under_load(rk, tmp_path, two_versions, sig):
             assert replacement != victim
             # The clients' keep-alive connections stay where they are (the surviving process took the
             # reconnections); new connections reach the replacement too.
-            fresh = sweep(lambda: httpx.post(f"{srv.base}/v1/models/pumps/predict", json=ROW, headers=admin,
+            fresh = sweep(lambda: httpx.post(f"{srv.base}/v1/models/pumps/predictions", json=ROW, headers=admin,
                                              timeout=30))
             assert set(fresh) == {srv.slot_pid(0), replacement}
             assert {r.status_code for rs in fresh.values() for r in rs} == {200}
@@ -338,7 +338,7 @@ def test_sigterm_finishes_the_request_in_flight(rk, tmp_path, two_versions):
     try:
         srv.wait_for("serving")
         children = [srv.slot_pid(s) for s in range(PROCESSES)]
-        expected = httpx.post(f"{srv.base}/v1/models/pumps/predict", content=body, headers={
+        expected = httpx.post(f"{srv.base}/v1/models/pumps/predictions", content=body, headers={
             **admin, "content-type": "application/json"}, timeout=60).json()["predictions"]
         first_half_sent = threading.Event()
         go_on = threading.Event()
@@ -353,7 +353,7 @@ def test_sigterm_finishes_the_request_in_flight(rk, tmp_path, two_versions):
 
         def send():
             try:
-                answer["r"] = httpx.post(f"{srv.base}/v1/models/pumps/predict", content=chunks(), timeout=120,
+                answer["r"] = httpx.post(f"{srv.base}/v1/models/pumps/predictions", content=chunks(), timeout=120,
                                          headers={**admin, "content-type": "application/json"})
             except httpx.HTTPError as exc:
                 answer["error"] = exc

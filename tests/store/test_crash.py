@@ -28,7 +28,7 @@ def _assert_consistent(store: Store, name: str, *, loaded: set[int]) -> int:
     n = len(versions)
     assert versions == list(range(1, n + 1)), f"gap or duplicate in {versions}"
     if n:
-        assert store.get_model(name)["latest_version"] == n
+        assert store.get_model(name)["newest_version"] == n
     for v in versions:
         if v not in loaded:
             store.load(name, v)  # verifies checksums of manifest and arrays

@@ -22,7 +22,7 @@ def test_publish_numbers_versions_from_one_and_lists_them(store, kit):
         assert row["summary"] == {"summary": {"terms": 5, "seed": seed}}
     assert [v["version"] for v in store.list_versions("pump-7")] == [1, 2, 3]
     assert store.list_models() == [{
-        "name": "pump-7", "live_version": None, "latest_version": 3, "versions": 3,
+        "name": "pump-7", "live_version": None, "newest_version": 3, "versions": 3,
         "created_at": store.list_models()[0]["created_at"], "updated_at": store.list_models()[0]["updated_at"],
     }]
     assert store.get_model("pump-7")["versions"] == 3
@@ -112,7 +112,7 @@ def test_delete_is_refused_while_live_and_numbers_are_never_reused(store, kit):
         store.set_live("m", 3, actor="a", reason="r")
     assert store.publish("m", *kit.linear_artifact(seed=9))["version"] == 4
     assert [v["version"] for v in store.list_versions("m")] == [1, 2, 4]
-    assert store.get_model("m")["latest_version"] == 4
+    assert store.get_model("m")["newest_version"] == 4
 
 
 def test_delete_drops_the_cached_model(store, kit):

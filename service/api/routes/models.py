@@ -51,7 +51,7 @@ def version_metadata(name: str, version: int, manifest: dict[str, Any], row: dic
         "links": {
             "cv": f"/v1/models/{name}/versions/{version}/cv",
             "path": f"/v1/models/{name}/versions/{version}/path",
-            "predict": f"/v1/models/{name}/versions/{version}/predict",
+            "predictions": f"/v1/models/{name}/versions/{version}/predictions",
         },
     }
     return out
@@ -62,7 +62,7 @@ def list_models(request: Request) -> Response:
     return json_response({"models": _store(request).list_models()})
 
 
-@router.get("/models/{name}", summary="One model: live version, versions, latest jobs", **auth.READ)
+@router.get("/models/{name}", summary="One model: live version, versions, newest jobs", **auth.READ)
 def get_model(request: Request, name: str = NamePath) -> Response:
     validate_name(name)
     store = _store(request)
@@ -77,7 +77,7 @@ def get_model(request: Request, name: str = NamePath) -> Response:
         out["monitoring_warnings"] = monitor.live_warnings(request.app.state.monitor, name, live, manifest)
     out["links"] = {
         "versions": f"/v1/models/{name}/versions", "history": f"/v1/models/{name}/history",
-        "trainings": f"/v1/trainings?model={name}", "predict": f"/v1/models/{name}/predict",
+        "trainings": f"/v1/trainings?model={name}", "predictions": f"/v1/models/{name}/predictions",
         "inputs": f"/v1/models/{name}/inputs", "outcomes": f"/v1/models/{name}/outcomes",
     }
     return json_response(out)

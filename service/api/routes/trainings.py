@@ -32,6 +32,9 @@ _MULTIPART_SCHEMA = {
     },
 }
 
+# Marks a 202 that returns the job of an earlier submission with the same Idempotency-Key.
+REPLAYED = "Tikhon-Replayed"
+
 _SUBMIT_DOC = {
     **auth.TRAIN["openapi_extra"],
     "parameters": [{
@@ -43,7 +46,10 @@ _SUBMIT_DOC = {
         "multipart/form-data": {"schema": _MULTIPART_SCHEMA},
     }},
     "responses": {"202": {"description": "The job (new, or the first one with this Idempotency-Key).",
-                          "headers": {"Location": {"schema": {"type": "string"}}}}},
+                          "headers": {"Location": {"schema": {"type": "string"}},
+                                      REPLAYED: {"schema": {"type": "string", "enum": ["true"]},
+                                                 "description": "Present when this answer is the first job of "
+                                                 "a repeated Idempotency-Key (nothing new was started)."}}}},
 }
 
 
@@ -276,7 +282,7 @@ async def submit(request: Request, name: str = Path(..., description="Model name
     view = job_view(job)
     headers = {"Location": view["links"]["self"]}
     if not created:
-        headers["Idempotent-Replay"] = "true"
+        headers[REPLAYED] = "true"
     return json_response(view, status=202, headers=headers)
 
 

@@ -21,7 +21,7 @@ from fastapi.responses import Response
 from service.csvcells import number_cell, text_cell
 from service.api import auth, levels, tables
 from service.api.models import Served
-from service.api.render import media_type, parse_json
+from service.api.render import parse_json
 from service.api.problems import UnsupportedMediaType
 from service.api.stale import note_stale
 from service.api.schemas import PredictRequest, PredictResponse, schema_ref
@@ -29,7 +29,7 @@ from service.errors import InvalidData
 from service.store.names import validate_name
 from service.store.schema import VERSION_MAX
 
-router = APIRouter(prefix="/v1", tags=["predict"])
+router = APIRouter(prefix="/v1", tags=["predictions"])
 
 INLINE_ROWS = 256  # up to this many rows are computed on the event loop (well under a millisecond)
 
@@ -75,6 +75,8 @@ _PINNED_DOC = {**_DOC, "parameters": [_PARAMS["name"], _PARAMS["version"], _PARA
 
 
 def _query_interval(request: Request) -> float | None:
+    if not request.scope.get("query_string"):  # the usual case: no query string to parse
+        return None
     raw = request.query_params.get("interval")
     if raw is None:
         return None
@@ -96,7 +98,7 @@ def _version(raw: str) -> int:
     return int(raw)
 
 
-@router.post("/models/{name}/predict", summary="Predict with the live version", openapi_extra=_LIVE_DOC)
+@router.post("/models/{name}/predictions", summary="Predict with the live version", openapi_extra=_LIVE_DOC)
 async def predict_live(request: Request) -> Response:
     await auth.authorize(request)  # the key check every /v1 route has (see app.create_app)
     name = validate_name(request.path_params["name"])
@@ -111,7 +113,7 @@ async def predict_live(request: Request) -> Response:
     return await _predict(request, served, interval)
 
 
-@router.post("/models/{name}/versions/{version}/predict", summary="Predict with a pinned version", openapi_extra=_PINNED_DOC)
+@router.post("/models/{name}/versions/{version}/predictions", summary="Predict with a pinned version", openapi_extra=_PINNED_DOC)
 async def predict_version(request: Request) -> Response:
     await auth.authorize(request)  # the key check every /v1 route has (see app.create_app)
     name = validate_name(request.path_params["name"])
@@ -165,7 +167,8 @@ async def _predict(request: Request, served: Served, interval_q: float | None) -
     settings = request.app.state.settings
     limit = settings.max_rows_per_request
     max_label = settings.max_label_chars
-    mt = media_type(request)
+    content_type = auth.raw_header(request.scope, b"content-type") or ""
+    mt = content_type.split(";", 1)[0].strip().lower()  # as render.media_type
     raw = await request.body()
     if mt == "text/csv":
         if len(raw) > 65536:
@@ -193,7 +196,7 @@ async def _predict(request: Request, served: Served, interval_q: float | None) -
         detail = await to_thread.run_sync(_compute, served, cols, interval, settings.predict_memory_bytes)
     request.app.state.metrics.count_predictions(served.name, served.version, n)
     request.app.state.monitor.observe(served, cols, detail)  # an append; counted off the request path
-    accept = request.headers.get("accept", "")
+    accept = auth.raw_header(request.scope, b"accept") or ""
     if "text/csv" in accept or (mt == "text/csv" and "application/json" not in accept):
         text = _csv(detail, interval is not None) if n <= INLINE_ROWS else await to_thread.run_sync(_csv, detail, interval is not None)
         return Response(text, media_type="text/csv", headers={
@@ -204,6 +207,7 @@ async def _predict(request: Request, served: Served, interval_q: float | None) -
 
 
 _NUMPY = orjson.OPT_SERIALIZE_NUMPY
+SMALL_JSON_ROWS = 16  # up to this many rows the answer is written from Python objects (fewer calls than splicing)
 
 
 def _numbers(column) -> list[bytes]:
@@ -220,6 +224,13 @@ def _json(served: Served, detail: dict[str, Any], with_interval: bool) -> bytes:
     m = int(value.shape[0])
     if m == 0:
         return b'{"model":' + served.block_json + b',"predictions":[]}'
+    if m <= SMALL_JSON_ROWS:  # a few rows: one orjson call on plain objects writes the same bytes
+        if with_interval:
+            rows = [{"value": v, "interval": [a, b], "warnings": w} for v, a, b, w in zip(
+                value.tolist(), detail["lower"].tolist(), detail["upper"].tolist(), detail["warnings"])]
+        else:
+            rows = [{"value": v, "warnings": w} for v, w in zip(value.tolist(), detail["warnings"])]
+        return b'{"model":' + served.block_json + b',"predictions":' + orjson.dumps(rows) + b"}"
     if with_interval:
         pieces = [b'{"value":', None, b',"interval":[', None, b",", None, b'],"warnings":[]}', b","]
         columns = {1: _numbers(value), 3: _numbers(detail["lower"]), 5: _numbers(detail["upper"])}
