@@ -75,9 +75,11 @@ def _gram(A: np.ndarray) -> np.ndarray:
 
 
 def _solve_right(A: np.ndarray, S: np.ndarray) -> np.ndarray:
-    """``A S⁻¹`` for upper-triangular S (a triangular solve, BLAS-3), as a C-ordered array."""
+    """``A S⁻¹`` for upper-triangular S (a triangular solve, BLAS-3), in A's memory order."""
+    if A.flags.f_contiguous:
+        return _blas.dtrsm(1.0, S, A, side=1, lower=0, trans_a=0)
     # A (C order) is Aᵀ in Fortran order: solve Sᵀ Xᵀ = Aᵀ from the left
-    return _blas.dtrsm(1.0, S, A.T, side=0, lower=0, trans_a=1).T
+    return _blas.dtrsm(1.0, S, np.ascontiguousarray(A).T, side=0, lower=0, trans_a=1).T
 
 
 def cholesky_qr_r(A: np.ndarray) -> np.ndarray | None:
@@ -134,19 +136,28 @@ class Summary:
     n: int
 
     @staticmethod
-    def of(Phi: np.ndarray, y: np.ndarray, chunk_rows: int = CHUNK_ROWS, on_block=None) -> "Summary":
-        """``on_block(rows)``, if given, is called after each chunk of rows (progress of a long pass)."""
+    def of(Phi: np.ndarray, y: np.ndarray, chunk_rows: int = CHUNK_ROWS, on_block=None, threads: int = 1) -> "Summary":
+        """``on_block(rows)``, if given, is called after each chunk of rows (progress of a long pass), in
+        the calling thread. ``threads`` > 1 factors that many chunks at once (``parallel.ordered_map``;
+        the result is the same)."""
+        from .parallel import ordered_map
+
         n, p = Phi.shape
-        parts = []
-        for lo in range(0, n, chunk_rows):
+        order = "F" if p and Phi.strides[0] < Phi.strides[1] else "C"  # keep a column-major design's order
+
+        def chunk(lo: int) -> np.ndarray:
             hi = min(n, lo + chunk_rows)
-            A = np.empty((hi - lo, p + 2))
+            A = np.empty((hi - lo, p + 2), order=order)
             A[:, 0] = 1.0
             A[:, 1:-1] = Phi[lo:hi]
             A[:, -1] = y[lo:hi]
-            parts.append(qr_r(A))
+            return qr_r(A)
+
+        parts = []
+        for lo, R in zip(range(0, n, chunk_rows), ordered_map(chunk, range(0, n, chunk_rows), threads)):
+            parts.append(R)
             if on_block is not None:
-                on_block(hi - lo)
+                on_block(min(n, lo + chunk_rows) - lo)
         if not parts:
             return Summary(np.zeros((p + 2, p + 2)), 0)
         return Summary(merge(parts), n)
