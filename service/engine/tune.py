@@ -293,7 +293,9 @@ def tune(data: Any, spec: Any, *, progress: Callable[[int, int], None] | None = 
     field, value and fix.
     """
     spec = parse_spec(spec)
-    with watch_convergence() as unconverged:
+    # BLAS on one thread for the whole job: the row passes run on threads of their own (``parallel``),
+    # and the rest is small matrices, on which waiting BLAS threads cost more than they give
+    with watch_convergence() as unconverged, single_blas() if usable_cores() > 1 else nullcontext():
         result = _tune(data, spec, progress, should_stop, budget)
     result.warnings.extend(convergence_warnings(unconverged))
     return result
