@@ -4,9 +4,14 @@ Generates (once, seeded) a Parquet file of ``--rows`` rows × 4 numeric features
 pump-station scenario, then, each in a fresh process so peak memory is its own:
 - train: polynomial degrees 1–6 × 50 strengths × 5 folds, L2, streamed in batches (``execution.mode``
   streaming, hash folds), with the in-process executor or ``--dask local``;
-- floor: one streamed pass that only expands each degree's basis and accumulates ΦᵀΦ per basis setting.
+- floor: the least work any method must do: one streamed read of the file, the widest basis of the
+  nested family (degree 6; every lower degree is a leading block of it) expanded once per batch, and one
+  Gram matrix ``AᵀA`` of ``A = [1, Φ, y]`` accumulated over all rows, done as fast as the engine can
+  (column-major expansion in place, batches on every usable core with one BLAS thread each);
+- gemm: the machine's matrix-product rate (GFLOP/s, best of 3 products of 2,000 × 2,000 matrices), so
+  ``flop_ratio`` = training wall time / (the Gram's 2·n·m² flops at that rate).
 
-Last line: ``rows=<n> wall_s=<x> peak_rss_mb=<y> floor_ratio=<z>``.
+Last line: ``rows=<n> wall_s=<x> peak_rss_mb=<y> floor_ratio=<z> flop_ratio=<f>``.
 Run: ``python benchmarks/bench_scale.py [--rows 10000000] [--batch-rows 65536] [--dask local]``.
 """
 
@@ -53,36 +58,83 @@ def child_train(path: str, batch_rows: int, dask: str | None) -> dict:
             "cv": {"scheme": "kfold", "folds": 5, "seed": 0, "assignment": "hash"},
             "execution": {"mode": "streaming", "batch_rows": batch_rows}}
     ex = make_executor(dask)
+    split = _time_passes() if dask is None else {}
     t0 = time.perf_counter()
     schema, parts = open_source(Path(path))
     res = tune_partitions(parts, schema, spec, executor=ex)
     wall = time.perf_counter() - t0
     ex.close()
-    return {"wall_s": wall, "best": res.best["basis"], "strength": res.best["penalty"]["strength"],
+    return {"wall_s": wall, "passes": {k: round(v, 2) for k, v in split.items()}, "best": res.best["basis"], "strength": res.best["penalty"]["strength"],
             "cv_rmse": res.best["mean"], "peak_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}
+
+
+def _time_passes() -> dict[str, float]:
+    """Wall time spent in each pass of the streamed run (in-process executor only): the engine's pass
+    functions are wrapped by name, so the engine itself carries no timing code."""
+    from service.engine import streaming
+
+    spent: dict[str, float] = {}
+    for label, name in [("scan", "_scan_partition"), ("summaries", "_summarize"), ("score", "_score"),
+                        ("final", "_final_pass")]:
+        fn = getattr(streaming, name)
+
+        def timed(*a, _fn=fn, _label=label, **k):
+            t0 = time.perf_counter()
+            try:
+                return _fn(*a, **k)
+            finally:
+                spent[_label] = spent.get(_label, 0.0) + time.perf_counter() - t0
+
+        setattr(streaming, name, timed)
+    return spent
 
 
 def child_floor(path: str, batch_rows: int) -> dict:
     import pyarrow.parquet as pq
 
+    from contextlib import nullcontext
+
     from service.engine.basis import BasisSetting, polynomial_powers
+    from service.engine.parallel import ordered_map, single_blas, usable_cores
 
     f = pq.ParquetFile(path)
-    md = f.metadata
-    # the inputs' means and scales come from the file statistics-free way: a first cheap read is not
-    # part of the floor, so use fixed scales (the floor counts only expansion + ΦᵀΦ)
-    settings = [BasisSetting("polynomial", degree=d, powers=polynomial_powers(4, d)) for d in DEGREES]
-    grams = [np.zeros((s.powers.shape[0],) * 2) for s in settings]
-    t0 = time.perf_counter()
-    for batch in f.iter_batches(batch_size=batch_rows, columns=FEATURES + ["energy_kwh"]):
+    # the inputs' means and scales need a pass of their own in any method; the floor leaves it out and
+    # uses fixed scales (it counts one read, one expansion of the widest basis and one Gram)
+    top = BasisSetting("polynomial", degree=max(DEGREES), powers=polynomial_powers(4, max(DEGREES)))
+    m = top.powers.shape[0] + 2
+    threads = usable_cores()
+
+    def gram(batch) -> np.ndarray:  # [1, Φ, y] built column-major in place, one Gram (BLAS-3)
         X = np.column_stack([batch.column(i).to_numpy() for i in range(4)])
-        Xs = (X - 50.0) / 25.0
-        for s, G in zip(settings, grams):
-            Phi = s.expand(Xs)
-            G += Phi.T @ Phi
+        A = np.empty((X.shape[0], m), order="F")
+        A[:, 0] = 1.0
+        top.expand_into((X - 50.0) / 25.0, A[:, 1:-1])
+        A[:, -1] = batch.column(4).to_numpy()
+        return A.T @ A
+
+    G = np.zeros((m, m))
+    t0 = time.perf_counter()
+    # the same use of the cores as the engine: batches on every usable core, BLAS one thread each
+    with single_blas() if threads > 1 else nullcontext():
+        for part in ordered_map(gram, f.iter_batches(batch_size=batch_rows, columns=FEATURES + ["energy_kwh"]),
+                                threads):
+            G += part
     wall = time.perf_counter() - t0
-    del md
-    return {"wall_s": wall, "peak_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}
+    rows = f.metadata.num_rows
+    return {"wall_s": wall, "peak_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
+            "gram_flops": 2.0 * rows * m * m, "width": m}
+
+
+def gemm_rate(size: int = 2000, repeat: int = 3) -> float:
+    """The machine's matrix-product rate in flop/s (best of ``repeat`` products of size × size)."""
+    rng = np.random.default_rng(0)
+    a, b = rng.standard_normal((size, size)), rng.standard_normal((size, size))
+    best = float("inf")
+    for _ in range(repeat):
+        t0 = time.perf_counter()
+        a @ b
+        best = min(best, time.perf_counter() - t0)
+    return 2.0 * size ** 3 / best
 
 
 def main() -> None:
@@ -91,7 +143,7 @@ def main() -> None:
     ap.add_argument("--batch-rows", type=int, default=65_536)
     ap.add_argument("--dir", default="/tmp/tikhon-bench-scale")
     ap.add_argument("--dask", default=None, help='"local" for a LocalCluster, or a scheduler address')
-    ap.add_argument("--child", choices=["train", "floor"])
+    ap.add_argument("--child", choices=["train", "floor", "gemm"])
     args = ap.parse_args()
     path = Path(args.dir) / f"pumps-{args.rows}.parquet"
     if args.child == "train":
@@ -99,6 +151,9 @@ def main() -> None:
         return
     if args.child == "floor":
         print(json.dumps(child_floor(str(path), args.batch_rows)))
+        return
+    if args.child == "gemm":
+        print(json.dumps({"flops_per_s": gemm_rate()}))
         return
     path.parent.mkdir(parents=True, exist_ok=True)
     if not path.exists():
@@ -112,14 +167,20 @@ def main() -> None:
         out = subprocess.run(cmd, check=True, capture_output=True, text=True).stdout.strip().splitlines()[-1]
         return json.loads(out)
 
+    gemm = run("gemm")["flops_per_s"]
     floor = run("floor")
     train = run("train")
-    print(f"floor: one streamed pass of expansion + ΦᵀΦ for 6 degrees: {floor['wall_s']:.1f}s, "
+    gram_s = floor["gram_flops"] / gemm
+    print(f"gemm: {gemm / 1e9:.1f} GFLOP/s; the Gram of [1, Φ, y] ({floor['width']} columns) is "
+          f"{floor['gram_flops']:.3g} flops = {gram_s:.2f}s at that rate")
+    print(f"floor: one streamed read, degree {max(DEGREES)} expanded once, one Gram: {floor['wall_s']:.1f}s, "
           f"peak RSS {floor['peak_rss_mb']:.0f} MB")
     print(f"train: {train['wall_s']:.1f}s, best {train['best']} strength {train['strength']:.4g} "
           f"CV RMSE {train['cv_rmse']:.4f}, executor {'dask ' + args.dask if args.dask else 'in-process'}")
+    if train["passes"]:
+        print("train passes (s): " + " ".join(f"{k}={v}" for k, v in train["passes"].items()))
     print(f"rows={args.rows} wall_s={train['wall_s']:.1f} peak_rss_mb={train['peak_rss_mb']:.0f} "
-          f"floor_ratio={train['wall_s'] / floor['wall_s']:.2f}")
+          f"floor_ratio={train['wall_s'] / floor['wall_s']:.2f} flop_ratio={train['wall_s'] / gram_s:.2f}")
 
 
 if __name__ == "__main__":

@@ -111,6 +111,17 @@ class BasisSetting:
             return _monomials(Xs, self.powers, self.plan, self._degree_one)
         return _rbf(Xs, self.centers, self.width)
 
+    def expand_into(self, Xs: np.ndarray, out: np.ndarray) -> np.ndarray:
+        """The same columns as ``expand``, written into ``out`` (n, p), best a column-major (Fortran-order)
+        view: a pass over many rows builds its design in place this way, column by column (for a
+        polynomial, each column is its parent column times one input: one multiply per term per row, on
+        contiguous memory), with the same products as ``expand``, so the same values."""
+        if self.kind == "polynomial":
+            _monomials_into(Xs, self.powers, self.plan, self._degree_one, out)
+        else:
+            out[...] = self.expand(Xs)
+        return out
+
     @cached_property
     def plan(self):
         return monomial_plan(self.powers) if self.powers is not None else None
@@ -173,6 +184,17 @@ def _monomials(Xs: np.ndarray, powers: np.ndarray, plan=None, degree_one=None) -
     for cols, parents, var in (plan if plan is not None else monomial_plan(powers)):
         out[:, cols] = out[:, parents] * Xs[:, var]
     return out
+
+
+def _monomials_into(Xs: np.ndarray, powers: np.ndarray, plan, degree_one, out: np.ndarray) -> None:
+    """``_monomials`` column by column into ``out`` (fast when ``out``'s columns are contiguous)."""
+    X = np.asfortranarray(Xs, dtype=np.float64)
+    first, inputs = degree_one
+    for c, j in zip(first.tolist(), inputs.tolist()):
+        out[:, c] = X[:, j]
+    for cols, parents, var in plan:
+        for c, p, j in zip(cols.tolist(), parents.tolist(), var.tolist()):
+            np.multiply(out[:, p], X[:, j], out=out[:, c])
 
 
 ROW_CHUNK_CELLS = 1 << 22  # rows × centres per chunk: bounds the temporaries of sq_distances

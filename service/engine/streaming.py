@@ -21,6 +21,7 @@ row in the same fold; the CV table then matches the in-memory one to rounding.
 from __future__ import annotations
 
 import math
+from contextlib import nullcontext
 from dataclasses import dataclass, field
 from functools import partial
 from typing import Any, Callable, Iterator, Protocol, Sequence
@@ -33,6 +34,7 @@ from service.errors import InvalidData, InvalidSpec
 
 from .basis import KMEANS_SAMPLE, BasisSetting, Categories, InputScaler, kmeans_centers
 from .executors import SerialExecutor
+from .parallel import ordered_map, single_blas, usable_cores
 from .folds import hash_folds, key_hash
 from .model import MAX_INTERVAL_RESIDUALS, FittedModel, thin_residuals
 from .solvers import convergence_warnings, fit, watch_convergence
@@ -83,6 +85,7 @@ class _Ctx:
     sample_size: int = KMEANS_SAMPLE
     schema: dict[str, str] | None = None  # every column of the source: "number", "boolean" or "text"
     budget: Budget | None = None  # the scan refuses a categorical column above budget.max_levels
+    threads: int = 1  # row batches of one partition worked on at once (``parallel.ordered_map``)
 
 
 def _keys(ctx: _Ctx, batch: dict[str, np.ndarray], offset: int, rows: int) -> np.ndarray:
@@ -203,10 +206,33 @@ def _batches(m: _Model, part: Partition):
 
 
 def _group_design(setting: BasisSetting, nested: bool, Xs: np.ndarray, block: np.ndarray) -> np.ndarray:
-    if nested:  # one-hot columns first, so every lower degree is a leading block
-        return np.hstack([block, setting.expand(Xs)])
-    Phi = setting.expand(Xs)
-    return np.hstack([Phi, block]) if block.shape[1] else Phi
+    """The design of a batch, column-major, built in place: the basis expanded once (``expand_into``)
+    and the one-hot block copied beside it (first for a nested group, so every lower degree is a
+    leading block; last otherwise)."""
+    q, p = block.shape[1], setting.n_terms(Xs.shape[1])
+    D = np.empty((Xs.shape[0], q + p), order="F")
+    if nested:
+        setting.expand_into(Xs, D[:, q:])
+        D[:, :q] = block
+    else:
+        setting.expand_into(Xs, D[:, :p])
+        D[:, p:] = block
+    return D
+
+
+def _fold_blocks(m: _Model, setting: BasisSetting, nested: bool, item) -> tuple[list[Summary | None], int]:
+    """One batch: the design expanded once, then one summary per fold of the batch's rows."""
+    _, Xs, y, block, fold, _ = item
+    # rows grouped by fold (stable: each fold keeps its row order), so each fold is a row range of D
+    order = np.argsort(fold, kind="stable")
+    bounds = np.searchsorted(fold[order], np.arange(m.folds + 1))
+    D = _group_design(setting, nested, Xs[order], block[order])
+    y = y[order]
+    out: list[Summary | None] = []
+    for f in range(m.folds):
+        a, b = bounds[f], bounds[f + 1]
+        out.append(Summary.of(D[a:b], y[a:b]) if b > a else None)
+    return out, D.shape[1]
 
 
 def _summarize(m: _Model, groups: list[tuple[BasisSetting, bool]], task: tuple[Partition, int]
@@ -215,13 +241,10 @@ def _summarize(m: _Model, groups: list[tuple[BasisSetting, bool]], task: tuple[P
     setting, nested = groups[g]
     acc: list[list[Summary]] = [[] for _ in range(m.folds)]
     width = None
-    for _, Xs, y, block, fold, _ in _batches(m, part):
-        D = _group_design(setting, nested, Xs, block)
-        width = D.shape[1]
-        for f in range(m.folds):
-            rows = np.flatnonzero(fold == f)
-            if rows.size:
-                acc[f].append(Summary.of(D[rows], y[rows]))
+    for out, width in ordered_map(partial(_fold_blocks, m, setting, nested), _batches(m, part), m.ctx.threads):
+        for f, s in enumerate(out):
+            if s is not None:
+                acc[f].append(s)
                 if len(acc[f]) >= MERGE_EVERY:
                     acc[f] = [Summary.combine(acc[f])]
     if width is None:
@@ -274,6 +297,22 @@ class _Final:
     sample_obs: np.ndarray
 
 
+def _final_batch(m: _Model, setting: BasisSetting, fw: np.ndarray, fi: np.ndarray, mean: np.ndarray,
+                 scale: np.ndarray, F: np.ndarray, n: int, item):
+    """One batch of pass 3: (absolute out-of-fold residuals per fold, largest leverage, plot-sample hashes,
+    predictions, observations)."""
+    pos, Xs, y, block, fold, batch = item
+    D = _group_design(setting, False, Xs, block)
+    pred = fi[fold] + (D @ fw.T)[np.arange(y.size), fold]
+    r = np.abs(y - pred)
+    D -= mean  # (D − mean) / scale in place: the design is not needed any more
+    D /= scale
+    FZ = D @ F.T
+    lev = 1.0 / n + np.einsum("ij,ij->i", FZ, FZ)
+    h = key_hash(_keys(m.ctx, batch, pos, y.size), m.ctx.spec.cv.seed ^ PLOT_SALT)
+    return [r[fold == f] for f in range(m.folds)], float(lev.max()), h, pred, y
+
+
 def _final_pass(m: _Model, setting: BasisSetting, fw: np.ndarray, fi: np.ndarray, mean: np.ndarray,
                 scale: np.ndarray, F: np.ndarray, n: int, stride: int, part: Partition) -> _Final:
     """Out-of-fold residuals of one partition, sorted per fold and, when the whole source has more than
@@ -283,16 +322,11 @@ def _final_pass(m: _Model, setting: BasisSetting, fw: np.ndarray, fi: np.ndarray
     res = [[] for _ in range(m.folds)]
     max_lev = 0.0
     sh, sp, so = np.zeros(0, np.uint64), np.zeros(0), np.zeros(0)
-    for pos, Xs, y, block, fold, batch in _batches(m, part):
-        D = _group_design(setting, False, Xs, block)
-        pred = fi[fold] + np.einsum("ij,ij->i", D, fw[fold])
-        r = np.abs(y - pred)
+    work = partial(_final_batch, m, setting, fw, fi, mean, scale, F, n)
+    for per_fold, lev, h, pred, y in ordered_map(work, _batches(m, part), m.ctx.threads):
         for f in range(m.folds):
-            res[f].append(r[fold == f])
-        FZ = ((D - mean) / scale) @ F.T
-        lev = 1.0 / n + np.einsum("ij,ij->i", FZ, FZ)
-        max_lev = max(max_lev, float(lev.max()))
-        h = key_hash(_keys(m.ctx, batch, pos, y.size), m.ctx.spec.cv.seed ^ PLOT_SALT)
+            res[f].append(per_fold[f])
+        max_lev = max(max_lev, lev)
         sh, sp, so = np.concatenate([sh, h]), np.concatenate([sp, pred]), np.concatenate([so, y])
         keep = _bottom_k(sh, PLOT_SAMPLE)
         sh, sp, so = sh[keep], sp[keep], so[keep]
@@ -380,22 +414,31 @@ def _sum_arrays(a: np.ndarray, b: np.ndarray) -> np.ndarray:
 
 def tune_partitions(partitions: Sequence[Partition], schema: dict[str, str], spec: Any, *,
                     executor=None, progress: Callable[[int, int], None] | None = None,
-                    should_stop: Callable[[], bool] | None = None, budget: Budget | None = None) -> TuneResult:
-    """Tune from partitions read in batches. ``schema`` maps column name → "number", "boolean" or "text"."""
+                    should_stop: Callable[[], bool] | None = None, budget: Budget | None = None,
+                    threads: int | None = None) -> TuneResult:
+    """Tune from partitions read in batches. ``schema`` maps column name → "number", "boolean" or "text".
+    ``threads``: row batches worked on at once in this process (default: the usable cores with the
+    in-process executor, 1 on Dask, whose workers are the parallelism); with more than one, BLAS runs
+    one thread each (``parallel``). The result does not depend on it."""
     spec = parse_spec(spec)
-    with watch_convergence() as unconverged:
-        result = _tune_partitions(partitions, schema, spec, executor, progress, should_stop, budget)
+    executor = executor or SerialExecutor()
+    if threads is None:
+        threads = usable_cores() if isinstance(executor, SerialExecutor) else 1
+    with watch_convergence() as unconverged, (single_blas() if threads > 1 else nullcontext()):
+        result = _tune_partitions(partitions, schema, spec, executor, progress, should_stop, budget, threads)
     result.warnings.extend(convergence_warnings(unconverged))
     return result
 
 
-def _tune_partitions(partitions, schema, spec: TuneSpec, executor, progress, should_stop, budget) -> TuneResult:
+def _tune_partitions(partitions, schema, spec: TuneSpec, executor, progress, should_stop, budget,
+                     threads: int = 1) -> TuneResult:
     check_stream_spec(spec)
     if not partitions:
         raise InvalidData("the source has no partitions (no files or no rows)")
     features, columns = resolve_columns(spec, schema)
     budget = budget or Budget()
-    run = _Run(_Ctx(spec, features, columns, spec.execution.batch_rows, schema=dict(schema), budget=budget),
+    run = _Run(_Ctx(spec, features, columns, spec.execution.batch_rows, schema=dict(schema), budget=budget,
+                    threads=max(1, threads)),
                list(partitions),
                executor or SerialExecutor(), progress, should_stop)
     scan = run.map_reduce(partial(_scan_partition, run.ctx), run.parts, _merge_scan)

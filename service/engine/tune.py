@@ -10,6 +10,7 @@ when the metric is MAE, the per-row errors that a sum of squares cannot give.
 from __future__ import annotations
 
 import math
+from contextlib import nullcontext
 from dataclasses import dataclass
 from typing import Any, Callable
 
@@ -20,6 +21,7 @@ from service.errors import BudgetExceeded, Cancelled, InvalidData, InvalidSpec
 from .basis import (BasisSetting, Categories, InputScaler, check_rbf_width, n_polynomial_terms, polynomial_powers,
                     rbf_centers, sample_rows)
 from .folds import Plan, make_plan, order_key
+from .parallel import ordered_map, single_blas, usable_cores
 from .model import FittedModel, thin_residuals
 from .result import (TuneResult, build_model, check_spread, column_kind, fingerprint_columns,
                      fingerprint_of, finish, metric_value, refit_all_rows, score_splits, select, setting_df, table_rows)
@@ -326,7 +328,9 @@ def tune(data: Any, spec: Any, *, progress: Callable[[int, int], None] | None = 
     field, value and fix.
     """
     spec = parse_spec(spec)
-    with watch_convergence() as unconverged:
+    # BLAS on one thread for the whole job: the row passes run on threads of their own (``parallel``),
+    # and the rest is small matrices, on which waiting BLAS threads cost more than they give
+    with watch_convergence() as unconverged, single_blas() if usable_cores() > 1 else nullcontext():
         result = _tune(data, spec, progress, should_stop, budget, progress_span)
     result.warnings.extend(convergence_warnings(unconverged))
     return result
@@ -461,32 +465,44 @@ class _SharedSearch:
     tick: Callable[[float], None] | None = None  # progress inside one setting (fraction done), long jobs only
 
     def _summaries(self, D: np.ndarray, y: np.ndarray) -> list[Summary]:
-        """One summary per atom; with ``tick``, the first half of the setting's progress moves after
-        every row block (``Summary.of``'s chunks) of every atom."""
+        """One summary per atom, on every usable core (``parallel``: atoms on threads, or the row chunks
+        of each atom when progress is reported); with ``tick``, the first half of the setting's progress
+        moves after every row block (``Summary.of``'s chunks) of every atom."""
         tick = self.tick
         prep = self.prep
-        if tick is None:
-            return [Summary.of(D[idx], y[idx], weights=prep.rows_w(idx)) for idx in self.plan.atoms]
-        total = max(1, sum(len(idx) for idx in self.plan.atoms))
-        seen = [0]
+        threads = usable_cores()
+        with single_blas() if threads > 1 else nullcontext():
+            if tick is None:
+                return list(ordered_map(lambda idx: Summary.of(D[idx], y[idx], weights=prep.rows_w(idx)),
+                                        self.plan.atoms, threads))
+            total = max(1, sum(len(idx) for idx in self.plan.atoms))
+            seen = [0]
 
-        def block(rows: int) -> None:
-            seen[0] += rows
-            tick(0.5 * seen[0] / total)
+            def block(rows: int) -> None:
+                seen[0] += rows
+                tick(0.5 * seen[0] / total)
 
-        return [Summary.of(D[idx], y[idx], on_block=block, weights=prep.rows_w(idx)) for idx in self.plan.atoms]
+            return [Summary.of(D[idx], y[idx], on_block=block, threads=threads, weights=prep.rows_w(idx))
+                    for idx in self.plan.atoms]
+
+    def _nested_design(self) -> np.ndarray:
+        """[one-hot, Φ of the highest degree], column-major, the basis expanded once in place."""
+        q = self.prep.categories.width
+        D = np.empty((self.Xs.shape[0], q + self._nested_top.n_terms(self.Xs.shape[1])), order="F")
+        D[:, :q] = self.prep.cat_block
+        self._nested_top.expand_into(self.Xs, D[:, q:])
+        return D
 
     def _atoms(self, setting: BasisSetting) -> tuple[np.ndarray, list[Summary]]:
         """(design in the summaries' column order, summaries of each atom) for one setting."""
         y = self.prep.y
         if setting.kind in ("linear", "polynomial"):
             if self._nested is None:
-                top = self._nested_top
-                D = np.hstack([self.prep.cat_block, top.expand(self.Xs)])
+                D = self._nested_design()
                 self._nested = (D, self._summaries(D, y))
             D, atoms = self._nested
             if D is None:  # asked again after the design was freed (the refit): summaries only
-                D = np.hstack([self.prep.cat_block, self._nested_top.expand(self.Xs)])
+                D = self._nested_design()
             k = 1 + self.prep.categories.width + setting.n_terms(self.prep.X.shape[1])
             return D[:, :k - 1], [a.leading(k) for a in atoms]
         D = _design(setting, self.Xs, self.prep.cat_block)

@@ -1,9 +1,10 @@
 """The tuning engine checked against sources outside the project.
 
 Sources, each named again beside its check:
-- NIST Statistical Reference Datasets (StRD), linear regression: Longley, Wampler1, Wampler2 and their
-  certified values (itl.nist.gov/div898/strd/lls). The Longley data ships in
-  ``statsmodels.datasets.longley``; the Wampler data are defined by their certified polynomials.
+- NIST Statistical Reference Datasets (StRD), linear regression: Longley, Wampler1, Wampler2, Filip and
+  their certified values (itl.nist.gov/div898/strd/lls). The Longley data ships in
+  ``statsmodels.datasets.longley``; the Wampler data are defined by their certified polynomials; the
+  Filip data and certificate are transcribed below (see ``FILIP``) and cross-checked by an exact fit.
 - scikit-learn as an independent implementation (Ridge, ElasticNet, StandardScaler,
   PolynomialFeatures, GridSearchCV, KFold) on the diabetes data that ships with scikit-learn
   (Efron, Hastie, Johnstone & Tibshirani, "Least Angle Regression", Annals of Statistics, 2004).
@@ -78,6 +79,119 @@ def test_wampler_certified_fit(coefs):
     res = tune({"x": x, "y": y}, {"target": "y", "bases": [{"kind": "polynomial", "degrees": [5]}], **OLS})
     fitted = res.model.predict({"x": x})
     assert lre(fitted, y).min() >= 8, lre(fitted, y)
+
+
+# ---- NIST StRD Filip -------------------------------------------------------------------------------
+# NIST StRD "Filip" (Filippelli, NIST; 82 observations, polynomial of degree 10, the hardest of the linear
+# set): data (y, x) and certified coefficients B0..B10 as published on the NIST certificate
+# (itl.nist.gov/div898/strd/lls/data/Filip.shtml), transcribed from the public-domain copy in the test
+# file of Octave's optim package (P. Kienzle, wpolyfit tests). ``test_filip_transcription`` checks the
+# transcription: an exact (60-digit, mpmath) least-squares fit of these data reproduces the certificate.
+FILIP = np.array([
+    (0.8116, -6.860120914), (0.9072, -4.324130045), (0.9052, -4.358625055), (0.9039, -4.358426747),
+    (0.8053, -6.955852379), (0.8377, -6.661145254), (0.8667, -6.355462942), (0.8809, -6.118102026),
+    (0.7975, -7.115148017), (0.8162, -6.815308569), (0.8515, -6.519993057), (0.8766, -6.204119983),
+    (0.8885, -5.853871964), (0.8859, -6.109523091), (0.8959, -5.79832982), (0.8913, -5.482672118),
+    (0.8959, -5.171791386), (0.8971, -4.851705903), (0.9021, -4.517126416), (0.909, -4.143573228),
+    (0.9139, -3.709075441), (0.9199, -3.499489089), (0.8692, -6.300769497), (0.8872, -5.953504836),
+    (0.89, -5.642065153), (0.891, -5.031376979), (0.8977, -4.680685696), (0.9035, -4.329846955),
+    (0.9078, -3.928486195), (0.7675, -8.56735134), (0.7705, -8.363211311), (0.7713, -8.107682739),
+    (0.7736, -7.823908741), (0.7775, -7.522878745), (0.7841, -7.218819279), (0.7971, -6.920818754),
+    (0.8329, -6.628932138), (0.8641, -6.323946875), (0.8804, -5.991399828), (0.7668, -8.781464495),
+    (0.7633, -8.663140179), (0.7678, -8.473531488), (0.7697, -8.247337057), (0.77, -7.971428747),
+    (0.7749, -7.676129393), (0.7796, -7.352812702), (0.7897, -7.072065318), (0.8131, -6.774174009),
+    (0.8498, -6.478861916), (0.8741, -6.159517513), (0.8061, -6.835647144), (0.846, -6.53165267),
+    (0.8751, -6.224098421), (0.8856, -5.910094889), (0.8919, -5.598599459), (0.8934, -5.290645224),
+    (0.894, -4.974284616), (0.8957, -4.64454848), (0.9047, -4.290560426), (0.9129, -3.885055584),
+    (0.9209, -3.408378962), (0.9219, -3.13200249), (0.7739, -8.726767166), (0.7681, -8.66695597),
+    (0.7665, -8.511026475), (0.7703, -8.165388579), (0.7702, -7.886056648), (0.7761, -7.588043762),
+    (0.7809, -7.283412422), (0.7961, -6.995678626), (0.8253, -6.691862621), (0.8602, -6.392544977),
+    (0.8809, -6.067374056), (0.8301, -6.684029655), (0.8664, -6.378719832), (0.8834, -6.065855188),
+    (0.8898, -5.752272167), (0.8964, -5.132414673), (0.8963, -4.811352704), (0.9074, -4.098269308),
+    (0.9119, -3.66174277), (0.9228, -3.2644011),
+])
+FILIP_CERT = np.array([-1467.48961422980, -2772.17959193342, -2316.37108160893, -1127.97394098372,
+                       -354.478233703349, -75.1242017393757, -10.8753180355343, -1.06221498588947,
+                       -0.670191154593408e-01, -0.246781078275479e-02, -0.402962525080404e-04])  # NIST certificate
+
+
+def _filip_exact() -> np.ndarray:
+    """The Filip least-squares coefficients from the data in 60-digit arithmetic (normal equations are
+    harmless at that precision)."""
+    mpmath = pytest.importorskip("mpmath")
+    y, x = FILIP[:, 0], FILIP[:, 1]
+    with mpmath.workdps(60):
+        X = mpmath.matrix([[mpmath.mpf(float(v)) ** k for k in range(11)] for v in x])
+        Y = mpmath.matrix([mpmath.mpf(float(v)) for v in y])
+        beta = mpmath.lu_solve(X.T * X, X.T * Y)
+        return np.array([float(b) for b in beta])
+
+
+def test_filip_transcription():
+    # the exact fit of the transcribed data agrees with the NIST certificate to ≥ 12 digits on every
+    # coefficient (NIST certifies 15; a mistyped data value or digit would break this)
+    exact = _filip_exact()
+    assert lre(exact, FILIP_CERT).min() >= 12, lre(exact, FILIP_CERT)
+
+
+def test_filip_certified_coefficients():
+    # NIST StRD Filip certificate: LRE ≥ 7 on every coefficient, via the engine's own path (degree-10
+    # basis of the standardized input, summaries, solver); the coefficients of the raw powers of x are
+    # recovered from the standardized ones in exact arithmetic, so only the engine's error is measured
+    mpmath = pytest.importorskip("mpmath")
+    y, x = FILIP[:, 0], FILIP[:, 1]
+    res = tune({"x": x, "y": y}, {"target": "y", "bases": [{"kind": "polynomial", "degrees": [10]}], **OLS})
+    m = res.model
+    with mpmath.workdps(60):
+        mu, sd = mpmath.mpf(float(m.scaler.mean[0])), mpmath.mpf(float(m.scaler.scale[0]))
+        c = [mpmath.mpf(float(m.intercept))] + [mpmath.mpf(0)] * 10
+        for k in range(1, 11):  # Σ w_k ((x − μ)/σ)^k expanded in powers of x
+            w = mpmath.mpf(float(m.weights[k - 1]))
+            for j in range(k + 1):
+                c[j] += w / sd ** k * mpmath.binomial(k, j) * (-mu) ** (k - j)
+        got = np.array([float(v) for v in c])
+    assert lre(got, FILIP_CERT).min() >= 7, lre(got, FILIP_CERT)
+
+
+def _coefficients_from_r(R: np.ndarray) -> np.ndarray:
+    """Least-squares coefficients from the R factor of [X, y]: β = R₁₁⁻¹ r (common practice)."""
+    from scipy.linalg import solve_triangular
+
+    return solve_triangular(R[:-1, :-1], R[:-1, -1])
+
+
+@pytest.mark.parametrize("force_shift", [False, True], ids=["chosen", "shifted"])
+def test_cholesky_qr_r_on_filip_raw_powers(monkeypatch, force_shift):
+    # The R factor through Cholesky QR, on the raw (unscaled) powers x⁰..x¹⁰ of Filip with y: a design
+    # whose condition number is near 1/eps after column scaling. It must take a Cholesky path (not the
+    # Householder fallback) and still give LRE ≥ 7 on every NIST certified coefficient.
+    from service.engine import summaries
+
+    if force_shift:
+        monkeypatch.setattr(summaries, "CQR2_MAX_COND", 1.0)
+    y, x = FILIP[:, 0], FILIP[:, 1]
+    A = np.column_stack([x ** k for k in range(11)] + [y])
+    R = summaries.cholesky_qr_r(A)
+    assert R is not None
+    assert lre(_coefficients_from_r(R), FILIP_CERT).min() >= 7, lre(_coefficients_from_r(R), FILIP_CERT)
+    assert np.allclose(np.abs(np.diag(R)), np.abs(np.diag(summaries.householder_r(A))), rtol=1e-6)
+
+
+@pytest.mark.parametrize("force_shift", [False, True], ids=["chosen", "shifted"])
+def test_cholesky_qr_r_on_longley(monkeypatch, force_shift):
+    # NIST StRD Longley certificate through the Cholesky R factor of the raw design [1, X, y]
+    # (CholeskyQR2, and shifted CholeskyQR3 when forced): LRE ≥ 10 on every coefficient.
+    from service.engine import summaries
+
+    sm_longley = pytest.importorskip("statsmodels.datasets.longley")
+    df = sm_longley.load_pandas().data  # NIST StRD Longley, as shipped by statsmodels
+    names = ["GNPDEFL", "GNP", "UNEMP", "ARMED", "POP", "YEAR"]
+    if force_shift:
+        monkeypatch.setattr(summaries, "CQR2_MAX_COND", 1.0)
+    A = np.column_stack([np.ones(16)] + [df[c].to_numpy(float) for c in names] + [df["TOTEMP"].to_numpy(float)])
+    R = summaries.cholesky_qr_r(A)
+    assert R is not None
+    assert lre(_coefficients_from_r(R), LONGLEY_CERT).min() >= 10, lre(_coefficients_from_r(R), LONGLEY_CERT)
 
 
 # ---- Parity with scikit-learn's GridSearchCV -------------------------------------------------------

@@ -144,3 +144,17 @@ def test_streaming_budget_counts_one_batch_of_design_not_every_row():
     assert check_partitions(schema, spec, 10_000_000, budget)["widest_basis"] == 27
     with pytest.raises(BudgetExceeded, match="batch_rows"):
         check_partitions(schema, dict(spec, execution={"batch_rows": 100_000}), 10_000_000, budget)
+
+
+def test_row_threads_do_not_change_the_result(tmp_path):
+    # Row batches on two threads (BLAS held to one thread each) against one thread: the batches are merged
+    # in input order, so the CV tables, the chosen point and the predictions agree to rounding
+    # (the in-memory engine, checked against scikit-learn in test_reference.py, is the reference for both).
+    d = data()
+    schema, parts = open_source(write_folder(tmp_path, d, files=2, row_group=100))
+    one = tune_partitions(parts, schema, SPEC, threads=1)
+    two = tune_partitions(parts, schema, SPEC, threads=2)
+    assert_same(one, two)
+    rows = {k: v[:50] for k, v in d.items() if k != "y"}
+    np.testing.assert_allclose(two.model.predict(rows), one.model.predict(rows), rtol=1e-12)
+    assert one.summary["rows"] == two.summary["rows"] == len(d["y"])
