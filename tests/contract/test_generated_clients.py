@@ -9,9 +9,11 @@ would make them, type-checked and run.
   ``clients/tour.ts`` passes ``tsc --strict --noEmit``, is compiled, and runs under node.
 
 Neither tour casts (no ``Any``/``cast``/``type: ignore`` in Python, no ``any``/``unknown``/``as`` in
-TypeScript; checked on their sources). The tools come from ``pip install -e ".[test]"`` and from npm
-(versions pinned in ``clients/package.json``, installed into a cache folder); a test skips, naming why,
-only when its tool cannot be installed (no node or npm, or the npm registry unreachable).
+TypeScript; checked on their sources). mypy comes from ``pip install -e ".[test]"``; openapi-python-client
+is installed (pinned, ``PYTHON_GENERATOR``) into its own virtual environment in a cache folder, because it
+pins typer below the version the CLI uses; the npm tools (pinned in ``clients/package.json``) into a cache
+folder too. A test skips, naming why, only when its tool cannot be installed (no node or npm, or a
+registry unreachable).
 """
 
 from __future__ import annotations
@@ -30,6 +32,8 @@ import pytest
 import livesvc
 
 CLIENTS = Path(__file__).resolve().parent / "clients"
+PYTHON_GENERATOR = "openapi-python-client==0.29.1"
+CACHE = Path(os.environ.get("TIKHON_TEST_TOOLS_DIR", Path.home() / ".cache" / "tikhon-tests"))
 
 
 @pytest.fixture()
@@ -49,9 +53,7 @@ def _run(cmd: list[str], cwd: Path, timeout: float = 600, env: dict | None = Non
 
 def test_python_client_type_checks_and_runs(open_server, tmp_path):
     base, doc = open_server
-    generator = shutil.which("openapi-python-client") or str(Path(sys.executable).parent / "openapi-python-client")
-    if not Path(generator).exists():
-        pytest.skip("openapi-python-client is not installed: pip install -e '.[test]' installs it")
+    generator = _python_generator()
     pytest.importorskip("mypy", reason="mypy is not installed: pip install -e '.[test]' installs it")
     made = _run([generator, "generate", "--path", str(doc), "--meta", "none", "--output-path", "tikhon_api"], tmp_path)
     assert made.returncode == 0, made.stdout + made.stderr
@@ -83,13 +85,30 @@ def test_python_client_type_checks_and_runs(open_server, tmp_path):
     assert re.match(r"key=[0-9a-f]{12} scopes=\['admin'\]", lines[2])
 
 
+def _python_generator() -> str:
+    """openapi-python-client (PYTHON_GENERATOR) in its own virtual environment, made once in the cache."""
+    venv = CACHE / "openapi-python-client"
+    exe = venv / "bin" / "openapi-python-client"
+    stamp = venv / "installed.txt"
+    if exe.exists() and stamp.exists() and stamp.read_text() == PYTHON_GENERATOR:
+        return str(exe)
+    made = _run([sys.executable, "-m", "venv", "--clear", str(venv)], CACHE if CACHE.exists() else Path.cwd())
+    if made.returncode != 0:
+        pytest.skip(f"no virtual environment for openapi-python-client ({made.stderr.strip()[-300:]})")
+    done = _run([str(venv / "bin" / "python"), "-m", "pip", "install", "-q", PYTHON_GENERATOR], venv, timeout=900)
+    if done.returncode != 0 or not exe.exists():
+        pytest.skip(f"openapi-python-client could not be installed (pip: {done.stderr.strip()[-300:]})")
+    stamp.write_text(PYTHON_GENERATOR)
+    return str(exe)
+
+
 def _npm_tools() -> Path:
     """The pinned npm tools (clients/package.json), installed once into a cache folder."""
     npm, node = shutil.which("npm"), shutil.which("node")
     if not npm or not node:
         pytest.skip("node and npm are not installed (.ci/run installs the Debian packages nodejs and npm)")
     spec = (CLIENTS / "package.json").read_text()
-    home = Path(os.environ.get("TIKHON_TEST_NPM_DIR", Path.home() / ".cache" / "tikhon-tests" / "npm"))
+    home = Path(os.environ.get("TIKHON_TEST_NPM_DIR", CACHE / "npm"))
     home.mkdir(parents=True, exist_ok=True)
     if (home / "package.json").exists() and (home / "package.json").read_text() == spec \
             and (home / "node_modules" / ".bin" / "tsc").exists():
