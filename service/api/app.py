@@ -68,6 +68,10 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
             "extrapolation warnings. Errors are RFC 9457 problem details (application/problem+json)."
         ),
         openapi_url="/openapi.json",
+        # Operation ids are our own (each route names its operation_id; a route that does not gets the
+        # camelCase of its function name, never the framework's path-and-method mangle).
+        generate_unique_id_function=operation_id_of,
+        separate_input_output_schemas=False,
         docs_url=None,  # served by routes.docs from packaged files (no CDN)
         redoc_url=None,
         lifespan=lifespan,
@@ -130,42 +134,73 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
     return app
 
 
+def operation_id_of(route: Any) -> str:
+    """The fallback operation id of a route that names none: its function name in camelCase."""
+    head, *rest = route.name.split("_")
+    return head + "".join(part.capitalize() for part in rest)
+
+
 def _document_security(app: FastAPI) -> None:
-    """Add the bearer-key scheme to the OpenAPI components (routes already carry their requirements)."""
+    """Finish the OpenAPI document: the bearer-key scheme, the request and enum schemas the routes refer to
+    by name, the problem answers, and the key requirement made optional while the server is open.
+
+    Two documents are kept. Once an API key exists, every ``/v1`` operation (and ``/metrics``) requires the
+    bearer scheme with one of its scopes, as the server does. While no key exists every route is open (and
+    the server listens on loopback only), so the operations carry no requirement and a generated client
+    may call them without a token. In both, ``x-tikhon-scopes`` lists the scopes an operation accepts
+    once keys exist."""
     original = app.openapi
+    cache: dict[bool, dict] = {}
 
     def openapi() -> dict:
-        if app.openapi_schema:
-            return app.openapi_schema
+        open_now = not app.state.gate.closed and not _any_key(app)
+        if open_now in cache:
+            return cache[open_now]
         schema = original()
+        app.openapi_schema = None  # FastAPI caches its own part; each variant is built from a fresh copy
         components = schema.setdefault("components", {})
         components.setdefault("securitySchemes", {})[auth.SCHEME] = auth.SECURITY_SCHEME
         for key, value in component_schemas().items():
             components.setdefault("schemas", {}).setdefault(key, value)
         _document_problems(schema)
-        app.openapi_schema = schema
+        _name_parameter_enums(schema)
+        for item in schema.get("paths", {}).values():
+            for op in item.values():
+                if isinstance(op, dict) and op.get("security"):
+                    op["x-tikhon-scopes"] = [s for req in op["security"] for s in req.get(auth.SCHEME, [])]
+                    if open_now:
+                        del op["security"]
+        cache[open_now] = schema
         return schema
 
     app.openapi = openapi  # type: ignore[method-assign]
 
 
-# RFC 9457 section 3.1 members, plus the extensions this service adds (request_id, errors, limit...).
-PROBLEM_SCHEMA = {
-    "type": "object",
-    "description": "RFC 9457 problem details. Extension members (request_id, errors, limit, allowed, received, "
-    "checks) appear where they apply.",
-    "required": ["type", "title", "status", "detail"],
-    "properties": {
-        "type": {"type": "string", "format": "uri-reference", "description": "Problem type; GET it for a description."},
-        "title": {"type": "string"},
-        "status": {"type": "integer", "minimum": 400, "maximum": 599},
-        "detail": {"type": "string", "description": "What is wrong and how to fix it."},
-        "instance": {"type": "string", "format": "uri-reference"},
-        "request_id": {"type": "string"},
-        "errors": {"type": "array", "items": {"type": "object"}, "description": "Field-level problems."},
-    },
-    "additionalProperties": True,
-}
+def _any_key(app: FastAPI) -> bool:
+    try:
+        return bool(app.state.store.keys.any_active())
+    except Exception:  # the catalog is unavailable: document what a keyed server needs
+        return True
+
+
+def _name_parameter_enums(schema: dict) -> None:
+    """Parameters read as text by their routes (for their own error messages) refer to their named enum."""
+    named = {"format": "PlotFormat", "unseen_levels": "UnseenLevels"}
+    for item in schema.get("paths", {}).values():
+        for op in item.values():
+            for param in (op.get("parameters") or []) if isinstance(op, dict) else []:
+                name = named.get(param.get("name"))
+                if name and param.get("in") == "query":
+                    default = (param.get("schema") or {}).get("default")
+                    param["schema"] = {"$ref": f"#/components/schemas/{name}",
+                                       **({"default": default} if default is not None else {})}
+
+
+def _problem_schema() -> dict:
+    from service.api.answers import Problem
+
+    schema = Problem.model_json_schema(ref_template="#/components/schemas/{model}")
+    return schema
 
 
 def _document_problems(schema: dict) -> None:
@@ -173,7 +208,9 @@ def _document_problems(schema: dict) -> None:
     the range keys), and the 422 of request validation as the problem it is rather than FastAPI's default
     validation-error shape, which this service never sends (problems.install renders it as a problem)."""
     schemas = schema.setdefault("components", {}).setdefault("schemas", {})
-    schemas["Problem"] = PROBLEM_SCHEMA
+    problem = _problem_schema()
+    schemas.update(problem.pop("$defs", {}))
+    schemas["Problem"] = problem
     ref = {"$ref": "#/components/schemas/Problem"}
     content = {problems.PROBLEM_MEDIA_TYPE: {"schema": ref}}
     for item in schema.get("paths", {}).values():

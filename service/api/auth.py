@@ -36,8 +36,12 @@ SCOPES = ("predict", "train", "admin", "metrics")
 SECURITY_SCHEME = {
     "type": "http",
     "scheme": "bearer",
-    "description": "An API key made with `tikhon keys create --scope predict|train|admin|metrics`. When no key "
-    "exists the server only listens on loopback and needs none.",
+    "description": "An API key made with `tikhon keys create --scope predict|train|admin|metrics`, sent as "
+    "`Authorization: Bearer <key>`. While no key exists the server listens on loopback only and needs none: "
+    "its /openapi.json then declares no requirement on the operations (a generated client calls without a "
+    "token). Once a key exists the document requires this scheme, each operation with the scopes it accepts "
+    "(also listed in the operation's x-tikhon-scopes). Send no Authorization header at all rather than an "
+    "empty token.",
 }
 
 

@@ -7,14 +7,16 @@ below still describe every body in ``/openapi.json``.
 
 from __future__ import annotations
 
-from typing import Any, Literal
+from typing import Any
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
+from service.api.answers import BasisSetting, Metric, PenaltySetting, PlotFormat, Promote, Scope, UnseenLevels
+from service.engine.spec import TuneSpec
 from service.errors import InvalidRequest, choice_message
 from service.store.schema import VERSION_MAX
 
-_FORBID = ConfigDict(extra="forbid")
+_FORBID = ConfigDict(extra="forbid", use_enum_values=True)
 
 Value = float | str
 
@@ -43,12 +45,14 @@ class SourceData(BaseModel):
 class TrainingRequest(BaseModel):
     model_config = _FORBID
     data: RowsData | CsvData | SourceData = Field(..., description="Exactly one of rows, csv or source.")
+    # Read as a plain object here (the engine validates it with the data, naming each field); documented as
+    # the engine's TuneSpec, the model that validation uses.
     spec: dict[str, Any] | None = Field(
         None, description="The training spec (target, features, bases, penalty, cv, selection). Omitted: the spec "
         "of the model's live version is reused, so a scheduled retrain is one call."
     )
-    promote: Literal["always", "if_better", "never"] = Field(
-        "if_better", description="Whether the new version goes live: always; only if its CV error beats the live "
+    promote: Promote = Field(
+        Promote.if_better, description="Whether the new version goes live: always; only if its CV error beats the live "
         "version's error on the new data by at least min_improvement; or never."
     )
     min_improvement: float = Field(
@@ -70,6 +74,17 @@ class TrainingRequest(BaseModel):
         return value
 
 
+class TrainingUpload(BaseModel):
+    """A training submission as multipart/form-data: the table as a file, the rest as text fields."""
+    model_config = _FORBID
+    file: bytes = Field(..., description="CSV or Parquet training table.", json_schema_extra={"format": "binary"})
+    spec: str | None = Field(None, description="The training spec (TuneSpec) as JSON text, or as a second file. "
+                             "Omitted: the spec of the model's live version is reused.")
+    promote: Promote = Field(Promote.if_better, description="Whether the new version goes live.")
+    min_improvement: float = Field(0.0, ge=0, description="For if_better: the least improvement of the selection "
+                                   "metric the new version must show.")
+
+
 def parse_training_request(raw: Any) -> TrainingRequest:
     """Validate the JSON body of a training submission; field errors become one ``InvalidData``."""
     try:
@@ -80,7 +95,7 @@ def parse_training_request(raw: Any) -> TrainingRequest:
             loc = [str(p) for p in e["loc"] if p not in ("RowsData", "CsvData", "SourceData")]
             loc = [p for p in loc if not p.startswith(("function-", "union["))]
             item = {"field": ".".join(loc) or "body", "message": e["msg"].removeprefix("Value error, ")}
-            if e.get("type") == "literal_error":
+            if e.get("type") in ("literal_error", "enum"):
                 item["message"] = choice_message(e.get("input"), (e.get("ctx") or {}).get("expected", ""))
             if e.get("type") != "missing":
                 item["value"] = e.get("input")
@@ -107,8 +122,8 @@ class PredictRequest(BaseModel):
     interval: float | None = Field(
         None, gt=0, lt=1, description="Level of the CV+ prediction interval, e.g. 0.9. Omitted: no interval."
     )
-    unseen_levels: Literal["warn", "refuse"] = Field(
-        "warn", description="A category level not seen in training: 'warn' answers the row with the level's effect "
+    unseen_levels: UnseenLevels = Field(
+        UnseenLevels.warn, description="A category level not seen in training: 'warn' answers the row with the level's effect "
         "taken as zero and a warning listing the known levels; 'refuse' answers 422 naming the row and the known levels."
     )
 
@@ -125,18 +140,38 @@ class PredictedRow(BaseModel):
     warnings: list[str] = Field(default_factory=list, description="Extrapolation warnings (range, leverage, unseen category).")
 
 
+class ModelCv(BaseModel):
+    metric: Metric
+    mean: float | None = Field(..., description="Mean CV metric of the chosen point.")
+    folds: int | None = Field(..., description="Splits of the cross-validation.")
+
+
 class ModelBlock(BaseModel):
+    """The version that answered."""
     name: str
     version: int
     created_at: str
-    basis: dict[str, Any]
-    penalty: dict[str, Any]
-    cv: dict[str, Any]
+    basis: BasisSetting
+    penalty: PenaltySetting
+    cv: ModelCv
 
 
 class PredictResponse(BaseModel):
     model: ModelBlock
     predictions: list[PredictedRow]
+
+
+class KeyRequest(BaseModel):
+    model_config = _FORBID
+    scopes: list[str] = Field(..., min_length=1, description="One or more of predict, train, admin, metrics.")  # documented as Scope items (_REFS)
+    label: str = Field("", max_length=200, description="A note saying who or what uses the key.")
+
+
+class PruneRequest(BaseModel):
+    model_config = _FORBID
+    keep: int = Field(..., ge=0, description="How many of the newest versions to keep besides the live one.")
+    dry_run: bool = Field(False, description="Only say which versions would be deleted ('deleted' lists them); "
+                          "delete nothing.")
 
 
 class LiveRequest(BaseModel):
@@ -145,7 +180,8 @@ class LiveRequest(BaseModel):
     reason: str = Field(..., min_length=1, max_length=1000, description="Why the live version changes (kept in the history).")
 
 
-DOCUMENTED: tuple[type[BaseModel], ...] = (TrainingRequest, PredictRequest, PredictResponse, LiveRequest)
+DOCUMENTED: tuple[type[BaseModel], ...] = (TuneSpec, TrainingRequest, TrainingUpload, PredictRequest, PredictResponse, LiveRequest, KeyRequest,
+                                           PruneRequest)
 
 
 def schema_ref(model: type[BaseModel]) -> dict[str, Any]:
@@ -155,10 +191,28 @@ def schema_ref(model: type[BaseModel]) -> dict[str, Any]:
     return {"$ref": f"#/components/schemas/{model.__name__}"}
 
 
+# Members read loosely at run time (so their errors keep their own messages) but documented by a named
+# schema: TrainingRequest.spec is checked by the engine together with the data (TuneSpec), KeyRequest.scopes
+# by the key store (Scope).
+_REFS = {
+    ("TrainingRequest", "spec"): {"anyOf": [{"$ref": "#/components/schemas/TuneSpec"}, {"type": "null"}]},
+    ("KeyRequest", "scopes"): {"type": "array", "minItems": 1, "items": {"$ref": "#/components/schemas/Scope"}},
+}
+
+
+# Closed sets that parameters refer to by name (routes read them as text, with their own messages).
+ENUMS = (PlotFormat, Scope, UnseenLevels)
+
+
 def component_schemas() -> dict[str, Any]:
-    out: dict[str, Any] = {}
+    from pydantic import TypeAdapter
+
+    out: dict[str, Any] = {e.__name__: TypeAdapter(e).json_schema() for e in ENUMS}
     for model in DOCUMENTED:
         schema = model.model_json_schema(ref_template="#/components/schemas/{model}")
         out.update(schema.pop("$defs", {}))
         out[model.__name__] = schema
+    for (name, member), ref in _REFS.items():
+        prop = out[name]["properties"][member]
+        out[name]["properties"][member] = {**ref, **{k: prop[k] for k in ("description", "default") if k in prop}}
     return out

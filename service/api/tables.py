@@ -242,6 +242,13 @@ def from_csv(payload: bytes | str | Path, *, where: str = "csv", max_label: int 
             "line and the same number of fields on every line."
         ) from None
     source.close()
+    try:
+        table.column_names  # pyarrow decodes the header's names only now
+    except UnicodeDecodeError as exc:
+        raise InvalidData(
+            f"{where} has a header line that is not UTF-8 text ({exc.reason} at byte {exc.start}); send "
+            "comma-separated UTF-8 text with one header line."
+        ) from None
     if table.num_columns == 1:
         _check_delimiter(data, where)
     return from_arrow(table, where=where, max_label=max_label)

@@ -17,15 +17,36 @@ from service.errors import InvalidSpec, choice_message
 _STRICT = ConfigDict(extra="forbid", frozen=True)
 
 
+# Bounds of list items, for the JSON schema only: the validators below check them with messages that name
+# the value and the fix, which pydantic's item constraints would pre-empt.
+# (A default made by a factory is written into the schema here too; pydantic leaves it out.)
+def _items(default: Any, **bounds: Any) -> dict[str, Any]:
+    return {"items": bounds, "default": default}
+
+
+def _list_branch(default: Any, **bounds: Any):
+    def patch(schema: dict[str, Any]) -> None:
+        if default is not None:
+            schema["default"] = default
+        for branch in schema.get("anyOf", []):
+            if branch.get("type") == "array":
+                branch["items"] = bounds
+    return patch
+
+
 class LinearBasis(BaseModel):
+    """The inputs themselves (standardized), one term each."""
     model_config = _STRICT
-    kind: Literal["linear"] = "linear"
+    kind: Literal["linear"] = Field("linear", description="Basis kind: linear.")
 
 
 class PolynomialBasis(BaseModel):
+    """All products of the standardized inputs up to each degree tried."""
     model_config = _STRICT
-    kind: Literal["polynomial"] = "polynomial"
-    degrees: list[int] = Field(default_factory=lambda: [1, 2, 3], min_length=1)
+    kind: Literal["polynomial"] = Field("polynomial", description="Basis kind: polynomial.")
+    degrees: list[int] = Field(
+        default_factory=lambda: [1, 2, 3], min_length=1, json_schema_extra=_items([1, 2, 3], type="integer", minimum=1),
+        description="Degrees to try, each >= 1, no repeats; a degree includes all products of inputs up to it.")
 
     @field_validator("degrees")
     @classmethod
@@ -39,10 +60,13 @@ class PolynomialBasis(BaseModel):
 
 
 class RBFBasis(BaseModel):
+    """Gaussian radial basis functions around centres chosen from the rows."""
     model_config = _STRICT
-    kind: Literal["rbf"] = "rbf"
-    widths: list[float] = Field(default_factory=lambda: [0.5, 1.0, 2.0], min_length=1)
-    centers: int = Field(100, ge=1, le=20_000)
+    kind: Literal["rbf"] = Field("rbf", description="Basis kind: rbf.")
+    widths: list[float] = Field(
+        default_factory=lambda: [0.5, 1.0, 2.0], min_length=1, json_schema_extra=_items([0.5, 1.0, 2.0], type="number", exclusiveMinimum=0),
+        description="Gaussian widths to try, in units of standardized inputs; positive, finite, no repeats.")
+    centers: int = Field(100, ge=1, le=20_000, description="Number of centres (1-20 000).")
 
     @field_validator("widths")
     @classmethod
@@ -60,10 +84,11 @@ Basis = Annotated[Union[LinearBasis, PolynomialBasis, RBFBasis], Field(discrimin
 
 
 class StrengthRange(BaseModel):
+    """A log-spaced range of penalty strengths (as numpy.geomspace)."""
     model_config = _STRICT
-    min: float = Field(..., gt=0)
-    max: float = Field(..., gt=0)
-    count: int = Field(..., ge=1, le=10_000)
+    min: float = Field(..., gt=0, description="Smallest strength (> 0, finite).")
+    max: float = Field(..., gt=0, description="Largest strength (>= min, finite).")
+    count: int = Field(..., ge=1, le=10_000, description="Number of strengths (1-10 000).")
 
     @model_validator(mode="after")
     def _order(self) -> "StrengthRange":
@@ -75,10 +100,18 @@ class StrengthRange(BaseModel):
 
 
 class Penalty(BaseModel):
+    """The penalty and the strengths λ to try."""
     model_config = _STRICT
-    kind: Literal["l2", "l1", "elastic_net"] = "l2"
-    strengths: StrengthRange | list[float] = Field(default_factory=lambda: StrengthRange(min=1e-4, max=1e4, count=50))
-    l1_ratios: list[float] | None = None
+    kind: Literal["l2", "l1", "elastic_net"] = Field(
+        "l2", description="l2 (ridge), l1 (lasso) or elastic_net.")
+    strengths: StrengthRange | list[float] = Field(
+        default_factory=lambda: StrengthRange(min=1e-4, max=1e4, count=50),
+        json_schema_extra=_list_branch({"min": 1e-4, "max": 1e4, "count": 50}, type="number", minimum=0),
+        description="Penalty strengths λ: a log-spaced range, or an explicit list (each >= 0, no repeats; 0 only "
+        "for l2, which is ordinary least squares).")
+    l1_ratios: list[float] | None = Field(
+        None, json_schema_extra=_list_branch(None, type="number", exclusiveMinimum=0, maximum=1), description="Elastic net mixing ratios in (0, 1]; default [0.2, 0.5, 0.9] for elastic_net; not "
+        "allowed for l2.")
 
     @field_validator("strengths")
     @classmethod
@@ -134,13 +167,17 @@ class Penalty(BaseModel):
 
 
 class CrossValidation(BaseModel):
+    """How rows are split into folds."""
     model_config = _STRICT
-    scheme: Literal["kfold", "repeated_kfold", "grouped", "time_ordered", "loo"] = "kfold"
-    folds: int = Field(5, ge=2, le=1000)
-    repeats: int = Field(3, ge=1, le=100)
-    seed: int = Field(0, ge=0, le=2**32 - 1)
-    group_by: str | None = None
-    order_by: str | None = None
+    scheme: Literal["kfold", "repeated_kfold", "grouped", "time_ordered", "loo"] = Field(
+        "kfold", description="kfold, repeated_kfold, grouped (group_by), time_ordered (order_by) or loo "
+        "(exact leave-one-out, l2 only).")
+    folds: int = Field(5, ge=2, le=1000, description="Number of folds (2-1000).")
+    repeats: int = Field(3, ge=1, le=100, description="Repetitions for repeated_kfold (1-100).")
+    seed: int = Field(0, ge=0, le=2**32 - 1, description="Seed of the fold assignment: equal seeds give equal folds.")
+    group_by: str | None = Field(None, description="grouped: the column whose values never span two folds.")
+    order_by: str | None = Field(None, description="time_ordered: the column that orders rows in time (numbers, or "
+                                 "ISO-8601 dates and timestamps); each fold is validated on later rows only.")
     assignment: Literal["auto", "shuffle", "hash"] = Field(
         "auto", description="How kfold assigns rows: 'shuffle' is KFold(shuffle=True, random_state=seed); 'hash' "
         "puts a row in fold hash(row key, seed) mod folds, which a re-read of the same rows reproduces in any "
@@ -166,9 +203,12 @@ class Execution(BaseModel):
 
 
 class Selection(BaseModel):
+    """How the chosen point is picked from the CV table."""
     model_config = _STRICT
-    metric: Literal["rmse", "mae", "r2"] = "rmse"
-    rule: Literal["best", "one_standard_error"] = "best"
+    metric: Literal["rmse", "mae", "r2"] = Field("rmse", description="The CV metric: rmse, mae or r2.")
+    rule: Literal["best", "one_standard_error"] = Field(
+        "best", description="best (lowest mean CV error) or one_standard_error (among candidates within one "
+        "standard error of the best, the one with the smallest df; ESL 7.10).")
 
 
 class TuneSpec(BaseModel):
@@ -184,19 +224,26 @@ class TuneSpec(BaseModel):
     ``parse_spec``, which raises ``InvalidSpec`` naming each field.
     """
 
-    model_config = _STRICT
-    target: str = Field(..., min_length=1)
-    features: list[str] | None = None
-    categorical: list[str] = Field(default_factory=list)
-    units: dict[str, str] = Field(default_factory=dict, description="Optional units per column, used in plot labels.")
+    model_config = ConfigDict(extra="forbid", frozen=True, title="TuneSpec", json_schema_extra={
+        "description": "The training spec. Only target is required; every other member has a default."})
+    target: str = Field(..., min_length=1, description="The column to predict.")
+    features: list[str] | None = Field(
+        None, description="Numeric input columns; default: every numeric column but the target and the columns "
+        "with another role.")
+    categorical: list[str] = Field(default_factory=list, json_schema_extra={"default": []}, description="Category columns (text labels), one-hot "
+                                   "encoded next to the basis terms.")
+    units: dict[str, str] = Field(default_factory=dict, json_schema_extra={"default": {}}, description="Optional units per column, used in plot labels.")
     bases: list[Basis] = Field(
-        default_factory=lambda: [LinearBasis(), PolynomialBasis(degrees=[2, 3, 4])], min_length=1
+        default_factory=lambda: [LinearBasis(), PolynomialBasis(degrees=[2, 3, 4])], min_length=1,
+        json_schema_extra={"default": [{"kind": "linear"}, {"kind": "polynomial", "degrees": [2, 3, 4]}]},
+        description="The basis settings to try (at least one), chosen jointly with the penalty strength.",
     )
-    basis_fit: Literal["all_rows", "per_fold"] = "all_rows"
-    penalty: Penalty = Field(default_factory=Penalty)
-    cv: CrossValidation = Field(default_factory=CrossValidation)
-    selection: Selection = Field(default_factory=Selection)
-    execution: Execution = Field(default_factory=Execution)
+    basis_fit: Literal["all_rows", "per_fold"] = Field(
+        "all_rows", description="all_rows: scaling and RBF centres from all rows; per_fold: refit inside every fold.")
+    penalty: Penalty = Field(default_factory=Penalty, description="The penalty and its strengths.")
+    cv: CrossValidation = Field(default_factory=CrossValidation, description="The cross-validation scheme.")
+    selection: Selection = Field(default_factory=Selection, description="How the chosen point is picked.")
+    execution: Execution = Field(default_factory=Execution, description="In memory or streamed.")
     weight: str | None = Field(
         None, min_length=1, description="Column of non-negative row weights (weighted least squares, weighted input "
         "standardization, weighted CV metrics); a zero-weight row keeps its fold but contributes nothing.")

@@ -283,7 +283,9 @@ def test_format_values_are_documented(trained):
     doc = httpx.get(f"{base}/openapi.json").json()
     params = doc["paths"]["/v1/models/{name}/versions/{version}/plots/cv"]["get"]["parameters"]
     fmt = next(p for p in params if p["name"] == "format")
-    assert fmt["schema"]["enum"] == ["svg", "png"] and fmt["schema"]["default"] == "svg"
+    named = fmt["schema"]["$ref"].rsplit("/", 1)[1]  # one named enum shared by every figure route
+    assert named == "PlotFormat" and fmt["schema"]["default"] == "svg"
+    assert doc["components"]["schemas"][named]["enum"] == ["svg", "png"]
 
 
 def test_plot_cache_is_bounded():

@@ -19,33 +19,18 @@ from typing import Any
 from anyio import to_thread
 from fastapi import APIRouter, Path, Request
 from fastapi.responses import Response
-from pydantic import BaseModel, ConfigDict, Field, ValidationError
+from pydantic import BaseModel, ValidationError
 
-from service.api import auth
-from service.api.render import json_response, read_json
+from service.api import answers as A, auth
+from service.api.render import read_json
 from service.errors import InvalidData
+from service.api.schemas import KeyRequest, PruneRequest, schema_ref
 from service.store.names import validate_name
 
 router = APIRouter(prefix="/v1", tags=["admin"])
 
-_FORBID = ConfigDict(extra="forbid")
-
-
-class KeyRequest(BaseModel):
-    model_config = _FORBID
-    scopes: list[str] = Field(..., min_length=1, description="One or more of predict, train, admin, metrics.")
-    label: str = Field("", max_length=200, description="A note saying who or what uses the key.")
-
-
-class PruneRequest(BaseModel):
-    model_config = _FORBID
-    keep: int = Field(..., ge=0, description="How many of the newest versions to keep besides the live one.")
-    dry_run: bool = Field(False, description="Only say which versions would be deleted ('deleted' lists them); "
-                          "delete nothing.")
-
-
 def _body_doc(model: type[BaseModel]) -> dict[str, Any]:
-    return {"requestBody": {"required": True, "content": {"application/json": {"schema": model.model_json_schema()}}}}
+    return {"requestBody": {"required": True, "content": {"application/json": {"schema": schema_ref(model)}}}}
 
 
 def _parse(model: type[BaseModel], raw: Any) -> Any:
@@ -60,12 +45,14 @@ def _parse(model: type[BaseModel], raw: Any) -> Any:
                           "/openapi.json.", errors=items) from None
 
 
-@router.get("/keys", summary="API keys (never their secrets)", **auth.ADMIN)
+@router.get("/keys", summary="API keys (never their secrets)", operation_id="listKeys",
+            responses=A.document(A.ApiKeyList, "Every key, active or revoked."), **auth.ADMIN)
 def list_keys(request: Request) -> Response:
-    return json_response({"keys": request.app.state.store.keys.list()})
+    return A.reply(A.ApiKeyList, {"keys": request.app.state.store.keys.list()})
 
 
-@router.post("/keys", summary="Create an API key; its secret is shown once", status_code=201,
+@router.post("/keys", summary="Create an API key; its secret is shown once", status_code=201, operation_id="createKey",
+             responses=A.document(A.NewApiKey, "The new key with its secret.", 201),
              openapi_extra={**auth.ADMIN["openapi_extra"], **_body_doc(KeyRequest)})
 async def create_key(request: Request) -> Response:
     body = _parse(KeyRequest, await read_json(request))
@@ -79,17 +66,19 @@ async def create_key(request: Request) -> Response:
     out = await to_thread.run_sync(make)
     request.app.state.gate.forget()
     out["note"] = "The secret is shown only in this answer; store it now. Send it as 'Authorization: Bearer <secret>'."
-    return json_response(out, status=201, headers={"Location": f"/v1/keys/{out['key_id']}"})
+    return A.reply(A.NewApiKey, out, status=201, headers={"Location": f"/v1/keys/{out['key_id']}"})
 
 
-@router.delete("/keys/{key_id}", summary="Revoke an API key (idempotent); never the last admin key", **auth.ADMIN)
+@router.delete("/keys/{key_id}", summary="Revoke an API key (idempotent); never the last admin key", operation_id="revokeKey",
+               responses=A.document(A.ApiKey, "The key, revoked."), **auth.ADMIN)
 def revoke_key(request: Request, key_id: str = Path(..., max_length=64)) -> Response:
     entry = request.app.state.store.keys.revoke(key_id, keep_last_admin=True)
     request.app.state.gate.forget()
-    return json_response(entry)
+    return A.reply(A.ApiKey, entry)
 
 
 @router.post("/models/{name}/prune", summary="Delete all versions except the live one and the newest 'keep'",
+             operation_id="pruneVersions", responses=A.document(A.PruneResult, "What was (or would be) deleted."),
              openapi_extra={**auth.ADMIN["openapi_extra"], **_body_doc(PruneRequest)})
 async def prune(request: Request, name: str = Path(..., description="Model name.")) -> Response:
     validate_name(name)
@@ -105,4 +94,4 @@ async def prune(request: Request, name: str = Path(..., description="Model name.
     out = await to_thread.run_sync(run)
     for v in out["deleted"]:
         request.app.state.models.forget(name, v)
-    return json_response(out)
+    return A.reply(A.PruneResult, out)

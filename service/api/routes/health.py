@@ -8,23 +8,27 @@ a server that then listens on loopback only.
 from __future__ import annotations
 
 from fastapi import APIRouter, Depends, Request
-from fastapi.responses import HTMLResponse, JSONResponse, Response
+from fastapi.responses import HTMLResponse, Response
 from prometheus_client import CONTENT_TYPE_LATEST
 
-from service.api import auth, problems
+from service.api import answers as A, auth, problems
 from service.errors import NotFound
 
 router = APIRouter(tags=["health"])
 
 
-@router.get("/healthz", summary="The process is up")
-async def healthz() -> dict:
-    return {"status": "ok"}
+@router.get("/healthz", summary="The process is up", operation_id="getHealth",
+            responses=A.document(A.Health, "The process answers."))
+async def healthz() -> Response:
+    return A.reply(A.Health, {"status": "ok"})
 
 
 @router.get(
     "/readyz", summary="The catalog answers, the store folder is writable and every version folder is listed",
-    responses={503: {"description": "Not ready; the body says which check failed."}},
+    operation_id="getReadiness",
+    responses={**A.document(A.Readiness, "Ready."), 503: {
+        "description": "Not ready; the body (problem details with 'checks') says which check failed.",
+        "content": {problems.PROBLEM_MEDIA_TYPE: {"schema": {"$ref": "#/components/schemas/Problem"}}}}},
 )
 def readyz(request: Request):
     store = request.app.state.store
@@ -34,7 +38,7 @@ def readyz(request: Request):
         checks = {"failure": " ".join(str(exc).split())[:300] or type(exc).__name__}
     ready = all(v == "ok" for v in checks.values())
     if ready:
-        return {"status": "ready", "checks": checks}
+        return A.reply(A.Readiness, {"status": "ready", "checks": checks})
     failing = {k: v for k, v in checks.items() if v != "ok"}
     advice = "" if set(failing) == {"versions"} else (
         ". Check the catalog URL (TIKHON_DATABASE_URL) and the store folder (TIKHON_STORE) permissions")
@@ -47,17 +51,23 @@ def readyz(request: Request):
 
 
 @router.get("/metrics", summary="Prometheus text format (metrics or admin scope once keys exist)",
-            response_class=Response, dependencies=[Depends(auth.authorize)], **auth.METRICS)
+            response_class=Response, operation_id="getMetrics", responses={200: {
+                "description": "Prometheus text exposition format.",
+                "content": {"text/plain": {"schema": {"type": "string"}}}}}, dependencies=[Depends(auth.authorize)], **auth.METRICS)
 def metrics(request: Request) -> Response:
     return Response(request.app.state.metrics.render(), media_type=CONTENT_TYPE_LATEST)
 
 
-@router.get("/problems", summary="Every problem type the API answers with")
-async def problem_types() -> JSONResponse:
-    return JSONResponse({slug: {"type": f"/problems/{slug}", **info} for slug, info in problems.catalogue().items()})
+@router.get("/problems", summary="Every problem type the API answers with", operation_id="listProblemTypes",
+            responses=A.document(A.ProblemTypes, "Problem types by slug."))
+async def problem_types() -> Response:
+    return A.reply(A.ProblemTypes, {slug: {"type": f"/problems/{slug}", **info}
+                                    for slug, info in problems.catalogue().items()})
 
 
-@router.get("/problems/{slug}", summary="What one problem type means", response_class=HTMLResponse)
+@router.get("/problems/{slug}", summary="What one problem type means", response_class=HTMLResponse,
+            operation_id="getProblemType", responses={200: {"description": "An HTML page describing the type.",
+                                                            "content": {"text/html": {"schema": {"type": "string"}}}}})
 async def problem_type(slug: str) -> HTMLResponse:
     info = problems.catalogue().get(slug)
     if info is None:

@@ -10,8 +10,8 @@ import joblib
 from fastapi import APIRouter, Path, Query, Request
 from fastapi.responses import Response
 
-from service.api import auth, monitor
-from service.api.render import json_response, read_json
+from service.api import answers as A, auth, monitor
+from service.api.render import read_json
 from service.api.schemas import LiveRequest, schema_ref
 from service.engine.export import export_json, sklearn_pipeline
 from service.errors import Conflict, IntegrityFailure, InvalidData
@@ -57,12 +57,14 @@ def version_metadata(name: str, version: int, manifest: dict[str, Any], row: dic
     return out
 
 
-@router.get("/models", summary="List models with their live version", **auth.READ)
+@router.get("/models", summary="List models with their live version", operation_id="listModels",
+            responses=A.document(A.ModelList, "Every model with its live and latest version."), **auth.READ)
 def list_models(request: Request) -> Response:
-    return json_response({"models": _store(request).list_models()})
+    return A.reply(A.ModelList, {"models": _store(request).list_models()})
 
 
-@router.get("/models/{name}", summary="One model: live version, versions, newest jobs", **auth.READ)
+@router.get("/models/{name}", summary="One model: live version, versions, newest jobs", operation_id="getModel",
+            responses=A.document(A.ModelDetail, "The model, its versions and its live version's metadata."), **auth.READ)
 def get_model(request: Request, name: str = NamePath) -> Response:
     validate_name(name)
     store = _store(request)
@@ -80,18 +82,20 @@ def get_model(request: Request, name: str = NamePath) -> Response:
         "trainings": f"/v1/trainings?model={name}", "predictions": f"/v1/models/{name}/predictions",
         "inputs": f"/v1/models/{name}/inputs", "outcomes": f"/v1/models/{name}/outcomes",
     }
-    return json_response(out)
+    return A.reply(A.ModelDetail, out)
 
 
-@router.get("/models/{name}/versions", summary="The versions of a model, newest first", **auth.READ)
+@router.get("/models/{name}/versions", summary="The versions of a model, oldest first", operation_id="listVersions",
+            responses=A.document(A.VersionList, "The versions that exist (deleted ones are left out)."), **auth.READ)
 def list_versions(request: Request, name: str = NamePath) -> Response:
     validate_name(name)
     store = _store(request)
     versions = store.list_versions(name)
-    return json_response({"name": name, "live_version": store.live_version(name), "versions": versions})
+    return A.reply(A.VersionList, {"name": name, "live_version": store.live_version(name), "versions": versions})
 
 
-@router.get("/models/{name}/versions/{version}", summary="Full metadata of one version", **auth.READ)
+@router.get("/models/{name}/versions/{version}", summary="Full metadata of one version", operation_id="getVersion",
+            responses=A.document(A.VersionMetadata, "The version's manifest less its CV table and path."), **auth.READ)
 def get_version(request: Request, name: str = NamePath, version: int = VersionPath) -> Response:
     validate_name(name)
     store = _store(request)
@@ -99,17 +103,19 @@ def get_version(request: Request, name: str = NamePath, version: int = VersionPa
     row = store.get_version(name, version)
     out = version_metadata(name, version, manifest, row)
     out["live"] = bool(row.get("live"))
-    return json_response(out)
+    return A.reply(A.VersionMetadata, out)
 
 
 CV_PAGE_MAX = 10_000
 
 
 @router.get("/models/{name}/versions/{version}/cv", summary="The CV table: best row per basis setting, or pages of all rows",
+            operation_id="getCvTable", responses=A.document(A.CvTable, "Rows of the CV table and the chosen point."),
             **auth.READ)
 def get_cv(request: Request, name: str = NamePath, version: int = VersionPath,
-           view: Literal["best_per_basis", "all"] = Query(
-               "best_per_basis", description="best_per_basis: the best row of each basis setting (over strengths "
+           view: A.CvView = Query(
+               A.CvView.best_per_basis,
+               description="best_per_basis: the best row of each basis setting (over strengths "
                "and l1 ratios); all: every row, in pages of `limit` from `offset`."),
            offset: int = Query(0, ge=0, description="First row of the page (view=all)."),
            limit: int = Query(1_000, ge=1, le=CV_PAGE_MAX, description="Rows per page (view=all).")) -> Response:
@@ -144,22 +150,27 @@ def get_cv(request: Request, name: str = NamePath, version: int = VersionPath,
         out["offset"], out["limit"] = offset, limit
         out["table"] = artifact.cv_rows(columns, meta, slice(offset, stop)) if offset < total else []
         out["links"] = {"next": f"{base}?view=all&offset={stop}&limit={limit}" if stop < total else None}
-    return json_response(out)
+    return A.reply(A.CvTable, out)
 
 
-@router.get("/models/{name}/versions/{version}/path", summary="Regularization path of the chosen basis setting", **auth.READ)
+@router.get("/models/{name}/versions/{version}/path", summary="Regularization path of the chosen basis setting",
+            operation_id="getPath", responses=A.document(A.PathAnswer, "Coefficients against penalty strength."), **auth.READ)
 def get_path(request: Request, name: str = NamePath, version: int = VersionPath) -> Response:
     validate_name(name)
     store = _store(request)
     manifest = store.get_manifest(name, version, cv_table=False)
     body = _engine_body(manifest)
-    return json_response({"name": name, "version": version, "chosen": body.get("chosen"),
+    return A.reply(A.PathAnswer, {"name": name, "version": version, "chosen": body.get("chosen"),
                           "path": resolve_arrays(store, name, version, manifest, body.get("path"))})
 
 
 @router.get("/models/{name}/versions/{version}/export",
             summary="The model in a form that leaves the service: JSON to evaluate anywhere, or a scikit-learn pipeline",
-            responses={200: {"content": {"application/json": {}, "application/octet-stream": {}}}}, **auth.READ)
+            operation_id="exportVersion",
+            responses={200: {"description": "format=json: the export document; format=sklearn: a joblib file.",
+                             "model": A.ExportDocument,
+                             "content": {"application/octet-stream": {"schema": {"type": "string", "format": "binary"}}}}},
+            **auth.READ)
 def export_version(request: Request, name: str = NamePath, version: int = VersionPath,
                    format: Literal["json", "sklearn"] = Query(
                        "json", description="json: the model's formula as numbers (see the README's evaluator); "
@@ -172,7 +183,7 @@ def export_version(request: Request, name: str = NamePath, version: int = Versio
         body = export_json(loaded.model)
         body["source"] = {"model": name, "version": int(version), "manifest_sha256": loaded.checksum,
                           "created_at": loaded.created_at}
-        return json_response(body, headers={
+        return A.reply(A.ExportDocument, body, headers={
             "Content-Disposition": f'attachment; filename="{name}-v{int(version)}.json"'})
     buf = io.BytesIO()
     joblib.dump(sklearn_pipeline(loaded.model), buf)  # written here, never loaded by the service
@@ -181,7 +192,8 @@ def export_version(request: Request, name: str = NamePath, version: int = Versio
 
 
 @router.put(
-    "/models/{name}/live", summary="Set the live version (recorded in the history)",
+    "/models/{name}/live", summary="Set the live version (recorded in the history)", operation_id="setLive",
+    responses=A.document(A.LiveChange, "The change, or that the version was already live."),
     openapi_extra={**auth.ADMIN["openapi_extra"], "requestBody": {
         "required": True, "content": {"application/json": {"schema": schema_ref(LiveRequest)}}}},
 )
@@ -215,15 +227,16 @@ async def set_live(request: Request, name: str = NamePath) -> Response:
     out = {"name": name, "live_version": body.version, "change": result, "already_live": already}
     if already:
         out["detail"] = f"version {body.version} of {name!r} is already live; nothing changed and no history entry was added."
-    return json_response(out)
+    return A.reply(A.LiveChange, out)
 
 
-@router.get("/models/{name}/history", summary="Every change of the live version", **auth.READ)
+@router.get("/models/{name}/history", summary="Every change of the live version", operation_id="getHistory",
+            responses=A.document(A.History, "Every decision about the live version, oldest first."), **auth.READ)
 def get_history(request: Request, name: str = NamePath) -> Response:
     validate_name(name)
     store = _store(request)
     entries = [decision_view(h) for h in store.history(name)]
-    return json_response({"name": name, "history": entries})
+    return A.reply(A.History, {"name": name, "history": entries})
 
 
 def decision_view(entry: dict[str, Any]) -> dict[str, Any]:
@@ -238,7 +251,8 @@ def decision_view(entry: dict[str, Any]) -> dict[str, Any]:
             "decision": "went live" if went else "not made live"}
 
 
-@router.delete("/models/{name}/versions/{version}", summary="Delete a version that is not live", **auth.ADMIN)
+@router.delete("/models/{name}/versions/{version}", summary="Delete a version that is not live", operation_id="deleteVersion",
+               status_code=204, responses={204: {"description": "Deleted."}}, **auth.ADMIN)
 def delete_version(request: Request, name: str = NamePath, version: int = VersionPath) -> Response:
     validate_name(name)
     _store(request).delete_version(name, version)

@@ -13,8 +13,8 @@ from anyio import to_thread
 from fastapi import APIRouter, Path, Query, Request
 from fastapi.responses import Response
 
-from service.api import auth, monitor, tables
-from service.api.render import json_response, parse_json
+from service.api import answers as A, auth, monitor, tables
+from service.api.render import parse_json
 from service.errors import InvalidData
 from service.store.monitor import HOUR, bucket_of
 from service.store.names import validate_name
@@ -67,19 +67,24 @@ def _report(request: Request, name: str, version: int | None, since: str | None,
     return monitor.outcomes_report(name, v, body.get("chosen") or {}, counts, t0, t1)
 
 
-@router.get("/models/{name}/inputs", summary="Input drift: recent inputs against the training distribution", **auth.READ)
+@router.get("/models/{name}/inputs", summary="Input drift: recent inputs against the training distribution",
+            operation_id="getInputs", responses=A.document(A.InputsReport, "PSI per input, rows outside the training range."),
+            **auth.READ)
 def get_inputs(request: Request, name: str = NamePath, version: int | None = VersionQuery,
                since: str | None = SinceQuery, until: str | None = UntilQuery) -> Response:
-    return json_response(_report(request, name, version, since, until, "inputs"))
+    return A.reply(A.InputsReport, _report(request, name, version, since, until, "inputs"))
 
 
-@router.get("/models/{name}/outcomes", summary="Real-world error of scored outcomes against the CV error", **auth.READ)
+@router.get("/models/{name}/outcomes", summary="Real-world error of scored outcomes against the CV error",
+            operation_id="getOutcomes", responses=A.document(A.OutcomesReport, "RMSE, MAE and 0.9 coverage, overall and per hour."),
+            **auth.READ)
 def get_outcomes(request: Request, name: str = NamePath, version: int | None = VersionQuery,
                  since: str | None = SinceQuery, until: str | None = UntilQuery) -> Response:
-    return json_response(_report(request, name, version, since, until, "outcomes"))
+    return A.reply(A.OutcomesReport, _report(request, name, version, since, until, "outcomes"))
 
 
 @router.post("/models/{name}/outcomes", status_code=202, summary="Score a version on rows whose true values are known",
+             operation_id="addOutcomes", responses=A.document(A.OutcomesAccepted, "The rows were scored and counted.", 202),
              openapi_extra={**auth.PREDICT["openapi_extra"], "requestBody": {"required": True, "content": {"application/json": {"schema": {
                  "type": "object", "required": ["rows"], "additionalProperties": False,
                  "properties": {"rows": {"type": "array", "items": {"type": "object"},
@@ -123,14 +128,15 @@ async def post_outcomes(request: Request, name: str = NamePath) -> Response:
         return request.app.state.monitor.outcome(served, observed, detail)
 
     counts = await to_thread.run_sync(score)
-    return json_response({"model": name, "version": v, "accepted": counts["rows"],
-                          "skipped": len(body["rows"]) - counts["rows"]}, status=202)
+    return A.reply(A.OutcomesAccepted, {"model": name, "version": v, "accepted": counts["rows"],
+                                        "skipped": len(body["rows"]) - counts["rows"]}, status=202)
 
 
 # ---- figures (each answers its numbers as JSON under Accept: application/json) -------------------------
 _FIGURE_RESPONSES = {200: {"description": "The figure; with 'Accept: application/json' (and no 'format' parameter) "
-                           "the plotted numbers as JSON instead.",
-                           "content": {"image/svg+xml": {}, "image/png": {}, "application/json": {}}}}
+                           "the plotted numbers as JSON instead.", "model": A.MonitoringFigureData,
+                           "content": {"image/svg+xml": {"schema": {"type": "string", "format": "binary"}},
+                                       "image/png": {"schema": {"type": "string", "format": "binary"}}}}}
 
 
 def _figure(request: Request, name: str, version: int | None, since: str | None, until: str | None, kind: str,
@@ -146,7 +152,7 @@ def _figure(request: Request, name: str, version: int | None, since: str | None,
         keys = ("features",) if kind == "drift" else ("series", "outside_range_rows")
         data = {k: report.get(k) for k in ("model", "version", "from", "to", "rows") + keys}
     if wants_json(request):
-        return json_response(data, headers={"Cache-Control": "private, no-cache", "Vary": "Accept"})
+        return A.reply(A.MonitoringFigureData, data, headers={"Cache-Control": "private, no-cache", "Vary": "Accept"})
     fmt = check_format(fmt)
     draw = {"drift": monitor_plots.drift_figure, "outside": monitor_plots.outside_figure,
             "error": monitor_plots.error_figure}[kind]
@@ -157,24 +163,24 @@ def _figure(request: Request, name: str, version: int | None, since: str | None,
     return _image(request, png_or_svg, fmt, f'"{kind}-{v}-{report["to"]}"', "private, no-cache")
 
 
-FormatQuery = Query("svg", description="Image format: 'svg' (default) or 'png'.", json_schema_extra={"enum": ["svg", "png"]})
+from service.api.routes.plots import FormatQuery  # noqa: E402  (the PlotFormat parameter of every figure)
 
 
-@router.get("/models/{name}/plots/drift", summary="Figure: each input's training against recent shares, with PSI",
+@router.get("/models/{name}/plots/drift", operation_id="plotDrift", summary="Figure: each input's training against recent shares, with PSI",
             response_class=Response, responses=_FIGURE_RESPONSES, **auth.READ)
 def plot_drift(request: Request, name: str = NamePath, version: int | None = VersionQuery, since: str | None = SinceQuery,
                until: str | None = UntilQuery, format: str = FormatQuery) -> Response:
     return _figure(request, name, version, since, until, "drift", format)
 
 
-@router.get("/models/{name}/plots/outside-range", summary="Figure: share of rows outside the training range, per hour",
+@router.get("/models/{name}/plots/outside-range", operation_id="plotOutsideRange", summary="Figure: share of rows outside the training range, per hour",
             response_class=Response, responses=_FIGURE_RESPONSES, **auth.READ)
 def plot_outside(request: Request, name: str = NamePath, version: int | None = VersionQuery, since: str | None = SinceQuery,
                  until: str | None = UntilQuery, format: str = FormatQuery) -> Response:
     return _figure(request, name, version, since, until, "outside", format)
 
 
-@router.get("/models/{name}/plots/live-error", summary="Figure: real error of scored outcomes per hour against the CV band",
+@router.get("/models/{name}/plots/live-error", operation_id="plotLiveError", summary="Figure: real error of scored outcomes per hour against the CV band",
             response_class=Response, responses=_FIGURE_RESPONSES, **auth.READ)
 def plot_live_error(request: Request, name: str = NamePath, version: int | None = VersionQuery,
                     since: str | None = SinceQuery, until: str | None = UntilQuery, format: str = FormatQuery) -> Response:

@@ -16,8 +16,7 @@ from typing import Any, Callable
 from fastapi import APIRouter, Path, Query, Request
 from fastapi.responses import Response
 
-from service.api import auth, figure_data, plots
-from service.api.render import json_response
+from service.api import answers as A, auth, figure_data, plots
 from service.errors import InvalidData, NotFound
 from service.store.names import validate_name
 from service.store.schema import VERSION_MAX
@@ -26,12 +25,16 @@ router = APIRouter(prefix="/v1", tags=["plots"])
 
 NamePath = Path(..., description="Model name.")
 VersionPath = Path(..., ge=1, le=VERSION_MAX, description="Version number (1, 2, ...).")
+# Read as text (check_format names the allowed values in its own message); documented as the PlotFormat enum
+# (service.api.app replaces the parameter's schema by a reference to it).
 FormatQuery = Query("svg", description="Image format: 'svg' (default, text kept as text) or 'png'.",
                     json_schema_extra={"enum": list(plots.FORMATS)})
 
+_BINARY = {"type": "string", "format": "binary"}
 _IMAGE_RESPONSES = {
     200: {"description": "The figure; with 'Accept: application/json' (and no 'format' parameter) the plotted "
-          "series as JSON instead.", "content": {"image/svg+xml": {}, "image/png": {}, "application/json": {}}},
+          "series as JSON instead.", "model": A.FigureData,
+          "content": {"image/svg+xml": {"schema": _BINARY}, "image/png": {"schema": _BINARY}}},
     304: {"description": "Not modified (the ETag in If-None-Match still matches)."},
 }
 
@@ -146,7 +149,7 @@ def _version_data(request: Request, name: str, version: int, kind: str) -> Respo
             raise NotFound(f"version {version} of model {name!r} stores no out-of-fold predictions; retrain it to "
                            "get the residuals.")
         out = figure_data.residuals_data(name, version, body, arrays["oof_predicted"], arrays["oof_observed"])
-    return json_response(out, headers={"Cache-Control": "private, max-age=86400", "Vary": "Accept"})
+    return A.reply(A.FigureData, out, headers={"Cache-Control": "private, max-age=86400", "Vary": "Accept"})
 
 
 def _version_plot(request: Request, name: str, version: int, kind: str, fmt: str) -> Response:
@@ -189,6 +192,7 @@ def _version_plot(request: Request, name: str, version: int, kind: str, fmt: str
 
 
 @router.get("/models/{name}/versions/{version}/plots/cv", summary="Figure: CV error against penalty strength",
+            operation_id="plotCv",
             response_class=Response, responses=_IMAGE_RESPONSES, **auth.READ)
 def plot_cv(request: Request, name: str = NamePath, version: int = VersionPath, format: str = FormatQuery) -> Response:
     """One line per basis setting (and l1 ratio for the elastic net), ±1 standard error bands, the chosen
@@ -197,6 +201,7 @@ def plot_cv(request: Request, name: str = NamePath, version: int = VersionPath, 
 
 
 @router.get("/models/{name}/versions/{version}/plots/path", summary="Figure: regularization path of the chosen setting",
+            operation_id="plotPath",
             response_class=Response, responses=_IMAGE_RESPONSES, **auth.READ)
 def plot_path(request: Request, name: str = NamePath, version: int = VersionPath, format: str = FormatQuery) -> Response:
     """Coefficients of the standardized terms against penalty strength; the chosen strength is marked and the
@@ -205,6 +210,7 @@ def plot_path(request: Request, name: str = NamePath, version: int = VersionPath
 
 
 @router.get("/models/{name}/versions/{version}/plots/residuals", summary="Figure: out-of-fold residuals",
+            operation_id="plotResiduals",
             response_class=Response, responses=_IMAGE_RESPONSES, **auth.READ)
 def plot_residuals(request: Request, name: str = NamePath, version: int = VersionPath,
                    format: str = FormatQuery) -> Response:
@@ -213,6 +219,7 @@ def plot_residuals(request: Request, name: str = NamePath, version: int = Versio
 
 
 @router.get("/models/{name}/plots/history", summary="Figure: CV error and chosen settings of every version",
+            operation_id="plotHistory",
             response_class=Response, responses=_IMAGE_RESPONSES, **auth.READ)
 def plot_history(request: Request, name: str = NamePath, format: str = FormatQuery) -> Response:
     """Every version over time: the CV error of its chosen point (±1 SE) and its chosen strength and basis;
@@ -225,7 +232,7 @@ def plot_history(request: Request, name: str = NamePath, format: str = FormatQue
     live = next((v["version"] for v in versions if v.get("live")), None)
     promoted = sorted({h["to_version"] for h in history if h.get("to_version") is not None})
     if wants_json(request):
-        return json_response(figure_data.history_data(name, versions, live, promoted),
+        return A.reply(A.FigureData, figure_data.history_data(name, versions, live, promoted),
                              headers={"Cache-Control": "private, no-cache", "Vary": "Accept"})
     state = repr(([(v["version"], v.get("checksum")) for v in versions], live, promoted)).encode()
     digest = hashlib.sha256(state).hexdigest()[:24]

@@ -39,8 +39,8 @@ _DOC = {
         "required": True,
         "content": {
             "application/json": {"schema": schema_ref(PredictRequest)},
-            "text/csv": {"schema": {"type": "string", "description": "CSV with a header of the model's input columns; "
-                                    "the interval level goes in the 'interval' query parameter."}},
+            "text/csv": {"schema": {"type": "string", "format": "binary", "description": "CSV with a header of the "
+                                    "model's input columns; the interval level goes in the 'interval' query parameter."}},
         },
     },
     "responses": {
@@ -48,7 +48,7 @@ _DOC = {
             "description": "One prediction per input row, in order, and the version that produced them.",
             "content": {
                 "application/json": {"schema": schema_ref(PredictResponse)},
-                "text/csv": {"schema": {"type": "string", "description": "Columns value[,lower,upper],warnings; the "
+                "text/csv": {"schema": {"type": "string", "format": "binary", "description": "Columns value[,lower,upper],warnings; the "
                              "version is in the Tikhon-Model and Tikhon-Model-Version headers."}},
             },
         }
@@ -63,10 +63,11 @@ _PARAMS = {
                 "description": "Version number."},
     "interval": {"name": "interval", "in": "query", "required": False,
                  "schema": {"type": "number", "exclusiveMinimum": 0, "exclusiveMaximum": 1},
-                 "description": "Interval level for CSV bodies (JSON bodies use the 'interval' field)."},
+                 "description": "CSV form only: the interval level for a CSV body. A JSON body carries its level in "
+                 "its own 'interval' member (this parameter is read for a JSON body only when that member is absent)."},
     "unseen_levels": {"name": "unseen_levels", "in": "query", "required": False,
-                      "schema": {"type": "string", "enum": list(levels.MODES), "default": "warn"},
-                      "description": "For CSV bodies: 'warn' answers a category level not seen in training with a "
+                      "schema": {"$ref": "#/components/schemas/UnseenLevels"},
+                      "description": "CSV form only: 'warn' answers a category level not seen in training with a "
                       "warning, 'refuse' answers 422 (JSON bodies use the 'unseen_levels' field)."},
 }
 _LIVE_DOC = {**_DOC, "parameters": [_PARAMS["name"], _PARAMS["interval"], _PARAMS["unseen_levels"]]}
@@ -98,7 +99,8 @@ def _version(raw: str) -> int:
     return int(raw)
 
 
-@router.post("/models/{name}/predictions", summary="Predict with the live version", openapi_extra=_LIVE_DOC)
+@router.post("/models/{name}/predictions", summary="Predict with the live version", openapi_extra=_LIVE_DOC,
+             operation_id="predict")
 async def predict_live(request: Request) -> Response:
     await auth.authorize(request)  # the key check every /v1 route has (see app.create_app)
     name = validate_name(request.path_params["name"])
@@ -113,7 +115,8 @@ async def predict_live(request: Request) -> Response:
     return await _predict(request, served, interval)
 
 
-@router.post("/models/{name}/versions/{version}/predictions", summary="Predict with a pinned version", openapi_extra=_PINNED_DOC)
+@router.post("/models/{name}/versions/{version}/predictions", summary="Predict with a pinned version", openapi_extra=_PINNED_DOC,
+             operation_id="predictVersion")
 async def predict_version(request: Request) -> Response:
     await auth.authorize(request)  # the key check every /v1 route has (see app.create_app)
     name = validate_name(request.path_params["name"])

@@ -11,26 +11,16 @@ from anyio import to_thread
 from fastapi import APIRouter, Path, Query, Request
 from fastapi.responses import Response
 
-from service.api import auth, intake, problems, tables
+from service.api import answers as A, auth, intake, problems, tables
 from service.api.problems import MalformedBody, UnsupportedMediaType
-from service.api.render import json_response, media_type, parse_json
-from service.api.schemas import TrainingRequest, parse_training_request, schema_ref
+from service.api.render import media_type, parse_json
+from service.api.schemas import TrainingRequest, TrainingUpload, parse_training_request, schema_ref
 from service.errors import InvalidData, StorageFailure
 from service.store.jobs import SUBMITTER
 from service.store.names import validate_name
 
 router = APIRouter(prefix="/v1", tags=["trainings"])
 
-_MULTIPART_SCHEMA = {
-    "type": "object",
-    "required": ["file"],
-    "properties": {
-        "file": {"type": "string", "format": "binary", "description": "CSV or Parquet training table."},
-        "spec": {"type": "string", "description": "The training spec as JSON text (omitted: reuse the live version's)."},
-        "promote": {"type": "string", "enum": ["always", "if_better", "never"]},
-        "min_improvement": {"type": "number", "minimum": 0},
-    },
-}
 
 # Marks a 202 that returns the job of an earlier submission with the same Idempotency-Key.
 REPLAYED = "Tikhon-Replayed"
@@ -43,13 +33,14 @@ _SUBMIT_DOC = {
     }],
     "requestBody": {"required": True, "content": {
         "application/json": {"schema": schema_ref(TrainingRequest)},
-        "multipart/form-data": {"schema": _MULTIPART_SCHEMA},
+        "multipart/form-data": {"schema": schema_ref(TrainingUpload)},
     }},
     "responses": {"202": {"description": "The job (new, or the first one with this Idempotency-Key).",
                           "headers": {"Location": {"schema": {"type": "string"}},
                                       REPLAYED: {"schema": {"type": "string", "enum": ["true"]},
                                                  "description": "Present when this answer is the first job of "
                                                  "a repeated Idempotency-Key (nothing new was started)."}}}},
+    # the 202 body's schema comes from the route's ``responses`` (the Job model)
 }
 
 
@@ -170,7 +161,8 @@ async def _read_submission(request: Request, incoming: FsPath
                 fields["min_improvement"] = float(str(form["min_improvement"]))
             except ValueError:
                 raise InvalidData(f"min_improvement must be a number >= 0, got {form['min_improvement']!r}.",
-                                  errors=[{"field": "min_improvement", "value": str(form["min_improvement"])}]) from None
+                                  errors=[{"field": "min_improvement", "value": str(form["min_improvement"]),
+                                           "message": "expected a number >= 0"}]) from None
         parsed = parse_training_request(fields)
         target = incoming / f"{uuid.uuid4().hex}-upload"
         try:
@@ -215,7 +207,8 @@ async def _read_submission(request: Request, incoming: FsPath
     )
 
 
-@router.post("/models/{name}/trainings", summary="Submit a training job", status_code=202, openapi_extra=_SUBMIT_DOC)
+@router.post("/models/{name}/trainings", summary="Submit a training job", status_code=202, openapi_extra=_SUBMIT_DOC,
+             operation_id="submitTraining", responses=A.document(A.Job, "The job.", 202))
 async def submit(request: Request, name: str = Path(..., description="Model name.")) -> Response:
     validate_name(name)
     key = intake.check_idempotency_key(request.headers.get("idempotency-key"))
@@ -283,7 +276,7 @@ async def submit(request: Request, name: str = Path(..., description="Model name
     headers = {"Location": view["links"]["self"]}
     if not created:
         headers[REPLAYED] = "true"
-    return json_response(view, status=202, headers=headers)
+    return A.reply(A.Job, view, status=202, headers=headers)
 
 
 def _submitter(request: Request) -> str:
@@ -294,19 +287,22 @@ def _submitter(request: Request) -> str:
     return f"client:{request.client.host if request.client else 'unknown'}"
 
 
-@router.get("/trainings/{job_id}", summary="State, progress and outcome of a training job", **auth.READ)
+@router.get("/trainings/{job_id}", summary="State, progress and outcome of a training job", operation_id="getTraining",
+            responses=A.document(A.Job, "The job."), **auth.READ)
 def get_job(request: Request, job_id: str = Path(..., max_length=64)) -> Response:
-    return json_response(job_view(request.app.state.store.jobs.get(job_id)))
+    return A.reply(A.Job, job_view(request.app.state.store.jobs.get(job_id)))
 
 
-@router.get("/trainings", summary="Training jobs, newest first", **auth.READ)
+@router.get("/trainings", summary="Training jobs, newest first", operation_id="listTrainings",
+            responses=A.document(A.JobList, "The jobs."), **auth.READ)
 def list_jobs(request: Request, model: str | None = Query(None, description="Only jobs of this model.")) -> Response:
     if model is not None:
         validate_name(model)
     jobs = request.app.state.store.jobs.list(name=model)
-    return json_response({"trainings": [job_view(j) for j in jobs]})
+    return A.reply(A.JobList, {"trainings": [job_view(j) for j in jobs]})
 
 
-@router.delete("/trainings/{job_id}", summary="Cancel a queued or running job", **auth.TRAIN)
+@router.delete("/trainings/{job_id}", summary="Cancel a queued or running job", operation_id="cancelTraining",
+               responses=A.document(A.Job, "The job, cancelled (a running job stops within the grace period)."), **auth.TRAIN)
 def cancel_job(request: Request, job_id: str = Path(..., max_length=64)) -> Response:
-    return json_response(job_view(request.app.state.store.jobs.cancel(job_id)))
+    return A.reply(A.Job, job_view(request.app.state.store.jobs.cancel(job_id)))
