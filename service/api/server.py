@@ -85,7 +85,7 @@ def run(settings: Settings) -> None:
 
     With ``settings.workers`` above 1 (or 'auto' on a machine with several cores) the server is several
     processes on one socket under a supervisor (``service.api.supervisor``); with 1, this process."""
-    from service.api.logs import configure
+    from service.logs import configure
     from service.api.supervisor import process_count
 
     count = process_count(settings.workers)

@@ -108,7 +108,7 @@ def test_labels_under_the_cap_cost_per_label_not_per_longest_label():
     # 50,000 x 256 x 4 bytes = 51 MB per copy, in the JSON, CSV and training paths alike.
     import tracemalloc
 
-    from service.api import tables
+    from service import tables
     from service.engine.table import categorical_column
 
     n = 50_000

@@ -19,7 +19,8 @@ from fastapi import APIRouter, Request
 from fastapi.responses import Response
 
 from service.csvcells import number_cell, text_cell
-from service.api import auth, levels, tables
+from service import tables
+from service.api import auth, levels
 from service.api.models import Served
 from service.api.render import media_type, parse_json
 from service.api.problems import UnsupportedMediaType
