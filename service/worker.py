@@ -78,7 +78,7 @@ _SPAWN = mp.get_context("spawn")
 
 
 def _problem(err: BaseException) -> dict[str, Any]:
-    from service.api.problems import internal_error_body, problem_from_error
+    from service.problems import internal_error_body, problem_from_error
 
     if isinstance(err, TikhonError):
         return problem_from_error(err)

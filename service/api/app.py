@@ -15,7 +15,8 @@ from fastapi import Depends, FastAPI
 from fastapi.middleware.cors import CORSMiddleware
 
 from service import paths
-from service.api import auth, problems
+from service import problems
+from service.api import auth
 from service.api.metrics import ApiMetrics
 from service.api.middleware import BodyLimit, RequestContext
 from service.api.schemas import component_schemas

@@ -13,7 +13,7 @@ from fastapi import FastAPI, Request
 from pydantic import BaseModel
 
 from service import errors as E
-from service.api import problems
+from service import problems
 from service.api.middleware import BodyLimit, RequestContext
 from service.api.metrics import ApiMetrics
 

@@ -11,7 +11,8 @@ from fastapi import APIRouter, Depends, Request
 from fastapi.responses import HTMLResponse, JSONResponse, Response
 from prometheus_client import CONTENT_TYPE_LATEST
 
-from service.api import auth, problems
+from service import problems
+from service.api import auth
 from service.errors import NotFound
 
 router = APIRouter(tags=["health"])

@@ -69,7 +69,7 @@ def _guarded(request: Request, render) -> Response:
     try:
         return _html(render(signed_in))
     except TikhonError as exc:  # the same message and status as the JSON problem, as a page
-        from service.api.problems import status_for
+        from service.problems import status_for
 
         return _html(pages.error_page(exc.title, paths.redact(str(exc)), signed_in=signed_in), status_for(exc))
 

@@ -23,7 +23,7 @@ from service import tables
 from service.api import auth, levels
 from service.api.models import Served
 from service.api.render import media_type, parse_json
-from service.api.problems import UnsupportedMediaType
+from service.problems import UnsupportedMediaType
 from service.api.stale import note_stale
 from service.api.schemas import PredictRequest, PredictResponse, schema_ref
 from service.errors import InvalidData

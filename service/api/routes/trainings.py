@@ -11,8 +11,9 @@ from anyio import to_thread
 from fastapi import APIRouter, Path, Query, Request
 from fastapi.responses import Response
 
-from service.api import auth, intake, problems
-from service.api.problems import MalformedBody, UnsupportedMediaType
+from service import problems
+from service.api import auth, intake
+from service.problems import MalformedBody, UnsupportedMediaType
 from service.api.render import json_response, media_type, parse_json
 from service.api.schemas import TrainingRequest, parse_training_request, schema_ref
 from service.errors import InvalidData, StorageFailure
