@@ -16,6 +16,7 @@ from fastapi.middleware.cors import CORSMiddleware
 
 from service import paths
 from service import problems
+from service.api import exception_handlers
 from service.api import auth
 from service.api.metrics import ApiMetrics
 from service.api.middleware import BodyLimit, RequestContext
@@ -74,7 +75,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
     app.state.models = ModelCache(store, settings, metrics, last_known)
     metrics.watch_jobs(store.jobs.counts)
 
-    problems.install(app)
+    exception_handlers.install(app)
 
     # Every /v1 router is included with the key check; the routers carry the /v1 prefix themselves so
     # each route's template (used as the metrics label) is the full path. The prediction routes come first
@@ -148,7 +149,7 @@ PROBLEM_SCHEMA = {
 def _document_problems(schema: dict) -> None:
     """Document the error answers every operation can give: 4XX and 5XX problem details (OpenAPI 3.1 allows
     the range keys), and the 422 of request validation as the problem it is rather than FastAPI's default
-    validation-error shape, which this service never sends (problems.install renders it as a problem)."""
+    validation-error shape, which this service never sends (exception_handlers.install renders it as a problem)."""
     schemas = schema.setdefault("components", {}).setdefault("schemas", {})
     schemas["Problem"] = PROBLEM_SCHEMA
     ref = {"$ref": "#/components/schemas/Problem"}

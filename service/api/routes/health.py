@@ -12,7 +12,7 @@ from fastapi.responses import HTMLResponse, JSONResponse, Response
 from prometheus_client import CONTENT_TYPE_LATEST
 
 from service import problems
-from service.api import auth
+from service.api import auth, exception_handlers
 from service.errors import NotFound
 
 router = APIRouter(tags=["health"])
@@ -44,7 +44,7 @@ def readyz(request: Request):
         detail="The service cannot take work: " + "; ".join(failing.values()) + advice + ".",
         instance="/readyz", checks=checks,
     )
-    return problems.problem_response(body, {"Retry-After": str(problems.CATALOG_RETRY_AFTER_S)})
+    return exception_handlers.problem_response(body, {"Retry-After": str(problems.CATALOG_RETRY_AFTER_S)})
 
 
 @router.get("/metrics", summary="Prometheus text format (metrics or admin scope once keys exist)",
