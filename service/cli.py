@@ -164,9 +164,7 @@ def serve(
     settings = _settings(host=host, port=port, embedded_worker=False if no_worker else None, workers=workers)
     if demo:
         _seed_demo(settings, _opts(ctx).key)
-    from service.api.server import run
-
-    from service.api.supervisor import process_count
+    from service.api.server import process_count, run
 
     count = process_count(settings.workers)
     processes = f", {count} processes" if count > 1 else ""
@@ -235,7 +233,7 @@ def _seed_demo(settings, key: str | None) -> None:
         w = Worker(settings, store)
         runner = threading.Thread(target=_run_until, args=(w, store, job_id), daemon=True)
         runner.start()
-        job = _follow(lambda: _job_view(store.jobs.get(job_id)), f"demo {DEMO_MODEL}", poll=0.2)
+        job = _follow(lambda: _job_in_process(app_, key, job_id), f"demo {DEMO_MODEL}", poll=0.2)
         runner.join()
         if job["state"] != "succeeded":
             raise JobFailed(f"demo training job {job_id} {job['state']}: {_problem_text(job)}")
@@ -247,18 +245,23 @@ def _seed_demo(settings, key: str | None) -> None:
         store.close()
 
 
-def _submit_in_process(app_, key: str | None, body: dict) -> str:
-    """POST the training request to the app's own route, in-process (the same checks as over HTTP)."""
+def _in_process(app_, key: str | None, method: str, path: str, body: dict | None = None):
+    """Send one request to the app's own route, in-process (the same checks and views as over HTTP)."""
     import anyio
     import httpx
 
-    async def post() -> httpx.Response:
+    async def send() -> httpx.Response:
         headers = {"Authorization": f"Bearer {key}"} if key else {}
         transport = httpx.ASGITransport(app=app_, client=("127.0.0.1", 0))
         async with httpx.AsyncClient(transport=transport, base_url="http://127.0.0.1") as c:
-            return await c.post(f"/v1/models/{DEMO_MODEL}/trainings", json=body, headers=headers, timeout=120)
+            return await c.request(method, path, json=body, headers=headers, timeout=120)
 
-    response = anyio.run(post)
+    return anyio.run(send)
+
+
+def _submit_in_process(app_, key: str | None, body: dict) -> str:
+    """POST the training request to the app's own route, in-process."""
+    response = _in_process(app_, key, "POST", f"/v1/models/{DEMO_MODEL}/trainings", body)
     if response.status_code != 202:
         err = ServiceError.from_response(response)
         raise JobFailed(f"the demo training was refused: {err}" + (
@@ -266,16 +269,18 @@ def _submit_in_process(app_, key: str | None, body: dict) -> str:
     return response.json()["id"]
 
 
+def _job_in_process(app_, key: str | None, job_id: str) -> dict:
+    """The job as GET /v1/trainings/{id} shows it, read through the app's own route."""
+    response = _in_process(app_, key, "GET", f"/v1/trainings/{job_id}")
+    if response.status_code != 200:
+        raise JobFailed(f"the demo training job {job_id} could not be read: {ServiceError.from_response(response)}")
+    return response.json()
+
+
 def _run_until(w, store, job_id: str) -> None:
     while store.jobs.get(job_id)["state"] not in FINAL_STATES:
         if not w.run_once():
             time.sleep(0.2)
-
-
-def _job_view(job: dict) -> dict:
-    from service.api.routes.trainings import job_view
-
-    return job_view(job)
 
 
 # ----------------------------------------------------------------------------------------------------

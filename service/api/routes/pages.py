@@ -16,6 +16,7 @@ from fastapi.responses import HTMLResponse, RedirectResponse, Response
 
 from service import paths
 from service.api import auth, pages
+from service.api.views import job_view
 from service.errors import Forbidden, NotFound, TikhonError, Unauthorized
 from service.store.names import validate_name
 
@@ -107,8 +108,6 @@ def _deleted_versions(store, jobs: list[dict], shown: int = 15) -> set[tuple[str
 
 
 def _jobs(store, name: str | None) -> list[dict]:
-    from service.api.routes.trainings import job_view
-
     return [job_view(j) for j in store.jobs.list(name=name)]
 
 

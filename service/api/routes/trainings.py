@@ -11,11 +11,11 @@ from anyio import to_thread
 from fastapi import APIRouter, Path, Query, Request
 from fastapi.responses import Response
 
-from service import problems
 from service.api import auth, intake
 from service.problems import MalformedBody, UnsupportedMediaType
 from service.api.render import json_response, media_type, parse_json
 from service.api.schemas import TrainingRequest, parse_training_request, schema_ref
+from service.api.views import job_view
 from service.errors import InvalidData, StorageFailure
 from service.store.jobs import SUBMITTER
 from service.store.names import validate_name
@@ -46,34 +46,6 @@ _SUBMIT_DOC = {
     "responses": {"202": {"description": "The job (new, or the first one with this Idempotency-Key).",
                           "headers": {"Location": {"schema": {"type": "string"}}}}},
 }
-
-
-def job_view(job: dict[str, Any]) -> dict[str, Any]:
-    """The public shape of a job row from the catalog."""
-    jid = job["id"]
-    request = job.get("request") or {}
-    out = {
-        "id": jid,
-        "model": job.get("name"),
-        "state": job.get("state"),
-        "progress": job.get("progress") or {"done": 0, "total": None},
-        "attempts": job.get("attempts"),
-        "created_at": job.get("created_at"),
-        "started_at": job.get("started_at"),
-        "heartbeat_at": job.get("heartbeat_at"),
-        "finished_at": job.get("finished_at"),
-        "version": job.get("version"),
-        "promote": request.get("promote"),
-        "min_improvement": request.get("min_improvement"),
-        "data": request.get("data"),
-        "grid": request.get("grid"),
-        "decision": job.get("decision"),
-        "problem": problems.stored_problem(job.get("problem")),
-        "links": {"self": f"/v1/trainings/{jid}", "model": f"/v1/models/{job.get('name')}"},
-    }
-    if job.get("version") is not None:
-        out["links"]["version"] = f"/v1/models/{job.get('name')}/versions/{job['version']}"
-    return out
 
 
 OFF_LOOP_BYTES = 65_536  # a JSON body larger than this is parsed and validated in a worker thread
