@@ -149,21 +149,21 @@ def test_worker_loop_logs_an_outage_in_a_few_lines(tmp_path, lines):
     real = store.engine
     worker = Worker(settings, store, worker_id="w-outage")
     try:
-        store.engine = store.jobs._engine = dead
+        store.db.sql = dead  # the store, its jobs and keys share one catalog access
         thread = threading.Thread(target=worker.run_forever, daemon=True)
         thread.start()
         deadline = time.monotonic() + 60
         while worker.outage.failures < 8 and time.monotonic() < deadline:
             time.sleep(0.05)
         assert worker.outage.failures >= 8  # it kept retrying
-        store.engine = store.jobs._engine = real
+        store.db.sql = real
         while worker.outage.down and time.monotonic() < deadline:
             time.sleep(0.05)
         assert not worker.outage.down
         worker.stop()
         thread.join(30)
     finally:
-        store.engine = store.jobs._engine = real
+        store.db.sql = real
         store.close()
         dead.dispose()
     mine = [r for r in lines if getattr(r, "worker_id", None) == "w-outage" and r.levelno >= logging.WARNING]

@@ -92,8 +92,10 @@ from service.errors import (
 )
 from service.settings import Settings
 from service.store import artifact, layout
+from service.store.layout import JOBS_DIR, STAGING_DIR, TRASH_DIR
 from service.store.cache import LRUCache, footprint
 from service.store.catalog import (
+    CatalogAccess,
     create_catalog_engine,
     lock_name,
     migrate,
@@ -112,9 +114,6 @@ from service.store.util import as_utc, catalog_errors, iso, row_dict, utcnow
 
 log = logging.getLogger("tikhon.store")
 
-STAGING_DIR = ".staging"
-TRASH_DIR = ".trash"
-JOBS_DIR = "_jobs"
 
 
 def _fault_point(step: str) -> None:
@@ -165,10 +164,12 @@ class Store:
                 f"the store folder {self.root.name!r} cannot be created or written ({exc.strerror}); "
                 "set TIKHON_STORE to a writable folder."
             ) from None
-        self.engine = create_catalog_engine(normalize_url(settings.catalog_url()))
-        self.catalog = _catalog_label(self.engine, self.root)
+        sql = create_catalog_engine(normalize_url(settings.catalog_url()))
+        # what Jobs and Keys get of the store: the catalog database, its label, id and cache lifetime
+        self.db = CatalogAccess(sql, _catalog_label(sql, self.root), ttl_s=catalog_ttl_s)
+        self.catalog = self.db.label
         self.schema_revision = migrate(self.engine)
-        self.catalog_id = self._read_catalog_id()
+        self.catalog_id = self.db.catalog_id = self._read_catalog_id()
         self._catalog_file = _sqlite_file(self.engine)
         self._catalog_identity = _file_identity(self._catalog_file) if self._catalog_file else None
         if self._catalog_file is not None:
@@ -177,16 +178,20 @@ class Store:
         self.kept: list[str] = []  # other entries the sweep could not prove its own (kept)
         self._loader: ModelLoader = model_loader or _engine_loader
         self._cache = LRUCache(settings.cache_models, settings.cache_bytes)
-        self._ttl = float(catalog_ttl_s)
         self._lock = threading.Lock()
         self._rows: dict[tuple[str, int], tuple[dict, float]] = {}
         self._live: dict[str, tuple[int | None, float]] = {}
-        self.jobs = Jobs(self)
-        self.keys = Keys(self)
+        self.jobs = Jobs(self.db, self.root / JOBS_DIR)
+        self.keys = Keys(self.db)
         self.last_sweep = self.sweep()
 
     # ------------------------------------------------------------------------------------------------
     # lifecycle
+
+    @property
+    def engine(self):
+        """The SQLAlchemy engine of the catalog (``self.db.sql``)."""
+        return self.db.sql
 
     def close(self) -> None:
         self.engine.dispose()
@@ -457,7 +462,7 @@ class Store:
         return v
 
     def _fresh(self, stamp: float) -> bool:
-        return time.monotonic() - stamp < self._ttl
+        return self.db.fresh(stamp)
 
     def _version_row(self, name: str, version: int) -> dict[str, Any]:
         with self._lock:
