@@ -30,7 +30,7 @@ from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 from rich.table import Table
 
-from service.client import DEFAULT_URL, FINAL_STATES, Client, ServiceError
+from service.client import DEFAULT_URL, FINAL_STATES, Client, ClientProblem, InvalidArgument, ServiceError
 
 DEMO_MODEL = "pump-energy"
 DEMO_DIR = "demo"  # under TIKHON_DATA_DIR
@@ -1127,9 +1127,10 @@ def _human_help(command: Any) -> None:
 def _fail_service(exc: ServiceError, args: list[str]) -> int:
     """One line for a refused or failed call; a missing or wrong API key is explained in the CLI's own
     terms (--key / TIKHON_KEY), not as an HTTP header."""
-    if exc.status == 401 and "no active key exists" in (exc.detail or ""):
+    unauthorized = isinstance(exc, ClientProblem) and exc.status == 401
+    if unauthorized and "no active key exists" in (exc.detail or ""):
         return _fail(exc.detail, 2)  # the server has no key left at all: its own words say what to do (--local)
-    if exc.status == 401:
+    if unauthorized:
         given = bool(os.environ.get("TIKHON_KEY")) or any(a == "--key" or a.startswith("--key=") for a in args)
         if given:
             return _fail("the API key given with --key or TIKHON_KEY is unknown or revoked on this server; use an "
@@ -1137,8 +1138,8 @@ def _fail_service(exc: ServiceError, args: list[str]) -> int:
                          "--scope ...').", 2)
         return _fail("this server needs an API key: pass --key KEY or set TIKHON_KEY (an admin makes one with "
                      "'tikhon keys create --scope predict|train|admin').", 2)
-    usage = exc.is_client_error or exc.title == "Invalid argument"
-    return _fail(str(exc), 2 if usage else 1)
+    # a 4xx answer is bad usage (exit 2); no answer, a 5xx or a wait that gave up is a failure (exit 1)
+    return _fail(str(exc), 2 if isinstance(exc, ClientProblem) else 1)
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -1175,6 +1176,8 @@ def main(argv: list[str] | None = None) -> int:
         code = 3
     except ServiceError as exc:
         code = _fail_service(exc, args)
+    except InvalidArgument as exc:  # the client refused an argument before sending anything
+        code = _fail(str(exc), 2)
     except TikhonError as exc:  # serve / worker / keys --local: the service's own refusals
         from service.errors import Forbidden, InvalidData, InvalidName, InvalidSpec
 
