@@ -30,7 +30,7 @@ from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 from rich.table import Table
 
-from service.client import DEFAULT_URL, FINAL_STATES, Client, ClientProblem, InvalidArgument, ServiceError
+from service.client import DEFAULT_URL, FINAL_STATES, PLOT_KINDS, Client, ClientProblem, InvalidArgument, ServiceError
 
 DEMO_MODEL = "pump-energy"
 DEMO_DIR = "demo"  # under TIKHON_DATA_DIR
@@ -823,8 +823,8 @@ def plot(
 ) -> None:
     """Save a figure of a version (or the model's history) as SVG or PNG."""
     name, version = parse_ref(ref)
-    if kind not in ("cv", "path", "residuals", "history"):
-        raise UsageProblem(f"--kind {kind!r} is not offered; use cv, path, residuals or history.")
+    if kind not in (*PLOT_KINDS, "history"):
+        raise UsageProblem(f"--kind {kind!r} is not offered; use {', '.join(PLOT_KINDS)} or history.")
     fmt = (out.suffix.lower().lstrip(".") if out is not None else "svg") or "svg"
     if fmt not in ("svg", "png"):
         raise UsageProblem(f"--out {str(out)!r} must end in .svg or .png (the format follows the suffix).")
@@ -1190,10 +1190,6 @@ def main(argv: list[str] | None = None) -> int:
         code = _fail(f"unexpected {type(exc).__name__}: {exc}; run again with TIKHON_DEBUG=1 for the traceback and "
                      "report it", 1)
     return code
-
-
-def _console_script() -> None:  # pragma: no cover - thin wrapper
-    sys.exit(main())
 
 
 if __name__ == "__main__":

@@ -42,8 +42,10 @@ from typing import Any, Callable, Iterable, Mapping, Sequence, TypedDict
 
 import httpx
 
+from service.jobstates import FINAL_STATES
+
 __all__ = ["Client", "ServiceError", "ConnectionFailed", "AnswerTimeout", "ProblemAnswer", "ClientProblem",
-           "ServerProblem", "UnexpectedAnswer", "WaitTimeout", "InvalidArgument", "FINAL_STATES", "DEFAULT_URL", "Job", "Progress", "Prediction", "PredictAnswer",
+           "ServerProblem", "UnexpectedAnswer", "WaitTimeout", "InvalidArgument", "FINAL_STATES", "PLOT_KINDS", "DEFAULT_URL", "Job", "Progress", "Prediction", "PredictAnswer",
            "ModelBlock", "ApiKey"]
 
 
@@ -100,7 +102,7 @@ class ApiKey(TypedDict, total=False):
     secret: str  # only in the answer that created the key
 
 DEFAULT_URL = "http://127.0.0.1:8000"
-FINAL_STATES = ("succeeded", "failed", "cancelled")
+PLOT_KINDS = ("cv", "path", "residuals")  # the figures of one version (the model's history is plot_history)
 
 
 class ServiceError(Exception):
@@ -392,7 +394,7 @@ class Client:
     # -- figures --------------------------------------------------------------------------------------
     def plot(self, name: str, version: int, kind: str, format: str = "svg") -> bytes:
         """A figure of one version: ``kind`` is ``cv``, ``path`` or ``residuals``; ``format`` svg or png."""
-        methods = {"cv": self.plot_cv, "path": self.plot_path, "residuals": self.plot_residuals}
+        methods = dict(zip(PLOT_KINDS, (self.plot_cv, self.plot_path, self.plot_residuals)))
         if kind not in methods:
             raise InvalidArgument(f"plot kind {kind!r} is not offered; use one of {sorted(methods)}.")
         return methods[kind](name, version, format=format)

@@ -19,7 +19,7 @@ from urllib.parse import quote
 
 import jinja2
 
-from service.store import FINAL_STATES
+from service.jobstates import FINAL_STATES
 from service.api.plots import basis_label, chosen_se, chosen_text, engine_body, fmt_strength
 
 TEMPLATES = Path(__file__).resolve().parent / "templates"

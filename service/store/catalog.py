@@ -104,10 +104,6 @@ def create_catalog_engine(url: str) -> Engine:
     )
 
 
-def is_postgres(engine: Engine) -> bool:
-    return engine.dialect.name == "postgresql"
-
-
 @contextmanager
 def write_txn(engine: Engine) -> Iterator[Connection]:
     """A write transaction: ``BEGIN IMMEDIATE`` on SQLite, a plain transaction on PostgreSQL."""

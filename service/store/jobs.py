@@ -40,6 +40,7 @@ from typing import Any, Mapping
 from sqlalchemy import and_, insert, select, update
 from sqlalchemy.exc import IntegrityError
 
+from service.jobstates import FINAL_STATES, STATES
 from service.errors import Busy, Conflict, InvalidData, InvalidSpec, JobTaken, NotFound, StorageFailure
 from service.store import artifact, layout
 from service.store.catalog import CatalogAccess
@@ -48,8 +49,6 @@ from service.store.schema import jobs as jobs_t
 from service.store.schema import models as models_t
 from service.store.util import iso, row_dict, utcnow
 
-STATES = ("queued", "running", "succeeded", "failed", "cancelled")
-FINAL_STATES = frozenset({"succeeded", "failed", "cancelled"})
 IDEMPOTENCY_KEY_RULE = r"^[\x21-\x7e]{1,255}$"  # printable ASCII without spaces, as HTTP header values go
 _KEY_RE = re.compile(IDEMPOTENCY_KEY_RULE)
 _ID_RE = re.compile(r"^[0-9a-f]{32}$")

@@ -1050,10 +1050,10 @@ def unknown_model(conn: Any, name: str) -> NotFound:
 
 def _summary_of(body: Any) -> Any:
     """The small parts of the manifest body kept in the catalog row for listings: the engine's chosen
-    point and CV summary (``chosen``, ``cv_summary``) or a generic ``summary``."""
+    point and CV summary (``chosen``, ``cv_summary``)."""
     if not isinstance(body, Mapping):
         return None
-    summary = {k: body[k] for k in ("chosen", "cv_summary", "summary") if isinstance(body.get(k), Mapping)}
+    summary = {k: body[k] for k in ("chosen", "cv_summary") if isinstance(body.get(k), Mapping)}
     if summary and len(artifact.dump_json(summary, what="the summary")) <= 16384:
         return summary
     return None
