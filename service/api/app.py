@@ -40,7 +40,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
 
         store = Store(settings)
 
-    from service.api.models import ModelCache
+    from service.api.model_cache import ModelCache
     from service.api.routes import health, models, pages, plots, predict, trainings
 
     @asynccontextmanager

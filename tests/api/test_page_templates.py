@@ -13,7 +13,7 @@ import json
 from html.parser import HTMLParser
 from urllib.parse import quote
 
-from service.api import pages
+from service.api.rendering import pages
 
 HOSTILE = {
     "name": 'pump"><img src=x onerror=alert(1)>',

@@ -11,7 +11,7 @@ import statistics
 
 import httpx
 
-from service.api import plots
+from service.api.rendering import figures as plots
 
 
 def test_model_page_history_decisions_deleted_versions_and_labels(tmp_path, kit):

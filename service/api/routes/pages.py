@@ -15,14 +15,15 @@ from fastapi import APIRouter, Path, Query, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 
 from service import paths
-from service.api import auth, pages
+from service.api import auth
+from service.api.rendering import pages
 from service.api.views import job_view
 from service.errors import Forbidden, NotFound, TikhonError, Unauthorized
 from service.store.names import validate_name
 
 router = APIRouter(include_in_schema=False)
 
-WEB = FilePath(__file__).resolve().parent.parent / "web"
+WEB = FilePath(__file__).resolve().parent.parent / "rendering" / "web"
 ASSETS = {"tikhon.css": "text/css; charset=utf-8", "tikhon.js": "text/javascript; charset=utf-8"}
 # The scopes of the /v1 read routes the pages show (predict, train, admin).
 READ_SCOPES = frozenset(s for req in auth.READ["openapi_extra"]["security"] for s in req[auth.SCHEME])

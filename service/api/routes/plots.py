@@ -16,7 +16,9 @@ from typing import Any, Callable
 from fastapi import APIRouter, Path, Query, Request
 from fastapi.responses import Response
 
-from service.api import auth, figure_data, plots
+from service.api import auth
+from service.api.rendering import figure_data
+from service.api.rendering import figures as plots
 from service.api.render import json_response
 from service.errors import InvalidData, NotFound
 from service.store.names import validate_name

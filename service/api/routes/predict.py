@@ -21,7 +21,7 @@ from fastapi.responses import Response
 from service.csvcells import number_cell, text_cell
 from service import tables
 from service.api import auth, levels
-from service.api.models import Served
+from service.api.model_cache import Served
 from service.api.render import media_type, parse_json
 from service.problems import UnsupportedMediaType
 from service.api.stale import note_stale

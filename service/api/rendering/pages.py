@@ -20,7 +20,7 @@ from urllib.parse import quote
 import jinja2
 
 from service.jobstates import FINAL_STATES
-from service.api.plots import basis_label, chosen_se, chosen_text, engine_body, fmt_strength
+from service.api.rendering.figures import basis_label, chosen_se, chosen_text, engine_body, fmt_strength
 
 TEMPLATES = Path(__file__).resolve().parent / "templates"
 JOBS_SHOWN = 15  # rows of the jobs table (its data-limit; the page's script keeps the same count)
