@@ -1,4 +1,4 @@
-"""The read-only HTML overview: Jinja2 templates (``service/api/templates/``) filled with store data.
+"""The read-only HTML overview: Jinja2 templates (``service/api/rendering/templates/``) filled with store data.
 
 One template per page (``overview.html``, ``model.html``, ``login.html``, ``error.html``) extends the
 layout ``base.html``; ``macros.html`` holds the pieces two pages share (the jobs table, times, figures).

@@ -1,7 +1,7 @@
 """Figures of a version (CV error, regularization path, residuals) and of a model's history, as SVG or PNG.
 
 Thin routes: they read the verified manifest and arrays from the store and hand them to
-``service.api.plots``. Versions are immutable, so a rendered figure is kept in memory under
+``service.api.rendering.figures``. Versions are immutable, so a rendered figure is kept in memory under
 (name, version, manifest checksum, kind, format) and served again with an ``ETag``; the history figure
 is keyed by the model's versions, their checksums and its live-version history.
 """
