@@ -9,22 +9,17 @@ from fastapi.responses import Response
 
 from service.api import auth
 from service.api.render import json_response, read_json
+from service.api.dependencies import ModelName, StoreDep
 from service.api.schemas import LiveRequest, schema_ref
 from service.errors import Conflict, IntegrityFailure, InvalidData
-from service.store.names import validate_name
 from service.store.schema import VERSION_MAX
 
 router = APIRouter(prefix="/v1", tags=["models"])
 
-NamePath = Path(..., description="Model name: 1-63 of a-z 0-9 _ . - starting with a letter or digit.")
 VersionPath = Path(..., ge=1, le=VERSION_MAX, description="Version number (1, 2, ...).")
 
 # Large parts of the manifest have their own routes; the metadata route links to them instead.
 _SEPARATE = {"cv_table": "cv", "path": "path"}
-
-
-def _store(request: Request):
-    return request.app.state.store
 
 
 def _engine_body(manifest: dict[str, Any]) -> dict[str, Any]:
@@ -54,14 +49,13 @@ def version_metadata(name: str, version: int, manifest: dict[str, Any], row: dic
 
 
 @router.get("/models", summary="List models with their live version", **auth.READ)
-def list_models(request: Request) -> Response:
-    return json_response({"models": _store(request).list_models()})
+def list_models(request: Request, store: StoreDep) -> Response:
+    return json_response({"models": store.list_models()})
 
 
 @router.get("/models/{name}", summary="One model: live version, versions, latest jobs", **auth.READ)
-def get_model(request: Request, name: str = NamePath) -> Response:
-    validate_name(name)
-    store = _store(request)
+def get_model(request: Request, store: StoreDep, name: ModelName) -> Response:
+    store = store
     out = dict(store.get_model(name))
     versions = store.list_versions(name)
     live = out.get("live_version")
@@ -76,17 +70,15 @@ def get_model(request: Request, name: str = NamePath) -> Response:
 
 
 @router.get("/models/{name}/versions", summary="The versions of a model, newest first", **auth.READ)
-def list_versions(request: Request, name: str = NamePath) -> Response:
-    validate_name(name)
-    store = _store(request)
+def list_versions(request: Request, store: StoreDep, name: ModelName) -> Response:
+    store = store
     versions = store.list_versions(name)
     return json_response({"name": name, "live_version": store.live_version(name), "versions": versions})
 
 
 @router.get("/models/{name}/versions/{version}", summary="Full metadata of one version", **auth.READ)
-def get_version(request: Request, name: str = NamePath, version: int = VersionPath) -> Response:
-    validate_name(name)
-    store = _store(request)
+def get_version(request: Request, store: StoreDep, name: ModelName, version: int = VersionPath) -> Response:
+    store = store
     manifest = store.get_manifest(name, version, cv_table=False)
     row = store.get_version(name, version)
     out = version_metadata(name, version, manifest, row)
@@ -99,7 +91,7 @@ CV_PAGE_MAX = 10_000
 
 @router.get("/models/{name}/versions/{version}/cv", summary="The CV table: best row per basis setting, or pages of all rows",
             **auth.READ)
-def get_cv(request: Request, name: str = NamePath, version: int = VersionPath,
+def get_cv(request: Request, store: StoreDep, name: ModelName, version: int = VersionPath,
            view: Literal["best_per_basis", "all"] = Query(
                "best_per_basis", description="best_per_basis: the best row of each basis setting (over strengths "
                "and l1 ratios); all: every row, in pages of `limit` from `offset`."),
@@ -109,8 +101,7 @@ def get_cv(request: Request, name: str = NamePath, version: int = VersionPath,
 
     from service.store import artifact
 
-    validate_name(name)
-    store = _store(request)
+    store = store
     manifest = store.get_manifest(name, version, cv_table=False)
     body = _engine_body(manifest)
     columns, meta = store.cv_columns(name, version, manifest)
@@ -140,9 +131,8 @@ def get_cv(request: Request, name: str = NamePath, version: int = VersionPath,
 
 
 @router.get("/models/{name}/versions/{version}/path", summary="Regularization path of the chosen basis setting", **auth.READ)
-def get_path(request: Request, name: str = NamePath, version: int = VersionPath) -> Response:
-    validate_name(name)
-    store = _store(request)
+def get_path(request: Request, store: StoreDep, name: ModelName, version: int = VersionPath) -> Response:
+    store = store
     manifest = store.get_manifest(name, version, cv_table=False)
     body = _engine_body(manifest)
     return json_response({"name": name, "version": version, "chosen": body.get("chosen"),
@@ -154,8 +144,7 @@ def get_path(request: Request, name: str = NamePath, version: int = VersionPath)
     openapi_extra={**auth.ADMIN["openapi_extra"], "requestBody": {
         "required": True, "content": {"application/json": {"schema": schema_ref(LiveRequest)}}}},
 )
-async def set_live(request: Request, name: str = NamePath) -> Response:
-    validate_name(name)
+async def set_live(request: Request, store: StoreDep, name: ModelName) -> Response:
     raw = await read_json(request)
     try:
         body = LiveRequest.model_validate(raw)
@@ -163,7 +152,7 @@ async def set_live(request: Request, name: str = NamePath) -> Response:
         raise _invalid_body(exc, "LiveRequest") from None
     from anyio import to_thread
 
-    store = _store(request)
+    store = store
 
     def change() -> Any:
         try:
@@ -188,9 +177,8 @@ async def set_live(request: Request, name: str = NamePath) -> Response:
 
 
 @router.get("/models/{name}/history", summary="Every change of the live version", **auth.READ)
-def get_history(request: Request, name: str = NamePath) -> Response:
-    validate_name(name)
-    store = _store(request)
+def get_history(request: Request, store: StoreDep, name: ModelName) -> Response:
+    store = store
     entries = [decision_view(h) for h in store.history(name)]
     return json_response({"name": name, "history": entries})
 
@@ -208,9 +196,8 @@ def decision_view(entry: dict[str, Any]) -> dict[str, Any]:
 
 
 @router.delete("/models/{name}/versions/{version}", summary="Delete a version that is not live", **auth.ADMIN)
-def delete_version(request: Request, name: str = NamePath, version: int = VersionPath) -> Response:
-    validate_name(name)
-    _store(request).delete_version(name, version)
+def delete_version(request: Request, store: StoreDep, name: ModelName, version: int = VersionPath) -> Response:
+    store.delete_version(name, version)
     request.app.state.models.forget(name, version)
     return Response(status_code=204)
 

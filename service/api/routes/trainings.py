@@ -18,6 +18,7 @@ from service.api.schemas import TrainingRequest, parse_training_request, schema_
 from service.api.views import job_view
 from service.errors import InvalidData, StorageFailure
 from service.store.jobs import SUBMITTER
+from service.api.dependencies import ModelName, StoreDep
 from service.store.names import validate_name
 
 router = APIRouter(prefix="/v1", tags=["trainings"])
@@ -139,8 +140,7 @@ async def _read_submission(request: Request, incoming: FsPath
 
 
 @router.post("/models/{name}/trainings", summary="Submit a training job", status_code=202, openapi_extra=_SUBMIT_DOC)
-async def submit(request: Request, name: str = Path(..., description="Model name.")) -> Response:
-    validate_name(name)
+async def submit(request: Request, name: ModelName) -> Response:
     key = intake.check_idempotency_key(request.headers.get("idempotency-key"))
     app = request.app
     store, settings = app.state.store, app.state.settings
@@ -202,18 +202,18 @@ def _submitter(request: Request) -> str:
 
 
 @router.get("/trainings/{job_id}", summary="State, progress and outcome of a training job", **auth.READ)
-def get_job(request: Request, job_id: str = Path(..., max_length=64)) -> Response:
-    return json_response(job_view(request.app.state.store.jobs.get(job_id)))
+def get_job(request: Request, store: StoreDep, job_id: str = Path(..., max_length=64)) -> Response:
+    return json_response(job_view(store.jobs.get(job_id)))
 
 
 @router.get("/trainings", summary="Training jobs, newest first", **auth.READ)
-def list_jobs(request: Request, model: str | None = Query(None, description="Only jobs of this model.")) -> Response:
+def list_jobs(request: Request, store: StoreDep, model: str | None = Query(None, description="Only jobs of this model.")) -> Response:
     if model is not None:
         validate_name(model)
-    jobs = request.app.state.store.jobs.list(name=model)
+    jobs = store.jobs.list(name=model)
     return json_response({"trainings": [job_view(j) for j in jobs]})
 
 
 @router.delete("/trainings/{job_id}", summary="Cancel a queued or running job", **auth.TRAIN)
-def cancel_job(request: Request, job_id: str = Path(..., max_length=64)) -> Response:
-    return json_response(job_view(request.app.state.store.jobs.cancel(job_id)))
+def cancel_job(request: Request, store: StoreDep, job_id: str = Path(..., max_length=64)) -> Response:
+    return json_response(job_view(store.jobs.cancel(job_id)))
