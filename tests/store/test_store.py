@@ -91,7 +91,7 @@ def test_history_is_append_only_in_the_database(store, kit):
     store.set_live("m", 1, actor="a", reason="r")
     for statement in ("UPDATE history SET reason = 'rewritten'", "DELETE FROM history"):
         with pytest.raises(sa.exc.DatabaseError, match="append-only"):
-            with store.engine.begin() as conn:
+            with store.db.sql.begin() as conn:
                 conn.execute(sa.text(statement))
     assert store.history("m")[0]["reason"] == "r"
 
