@@ -99,7 +99,7 @@ def serve_bare(port: int) -> None:
     from fastapi import FastAPI, Request
     from fastapi.responses import Response
 
-    from service.api.logs import configure
+    from service.logs import configure
     from service.settings import Settings
 
     settings = Settings(port=port)

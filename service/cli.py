@@ -30,7 +30,7 @@ from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 from rich.table import Table
 
-from service.client import DEFAULT_URL, FINAL_STATES, Client, ServiceError
+from service.client import DEFAULT_URL, FINAL_STATES, PLOT_KINDS, Client, ClientProblem, InvalidArgument, ServiceError
 
 DEMO_MODEL = "pump-energy"
 DEMO_DIR = "demo"  # under TIKHON_DATA_DIR
@@ -164,9 +164,7 @@ def serve(
     settings = _settings(host=host, port=port, embedded_worker=False if no_worker else None, workers=workers)
     if demo:
         _seed_demo(settings, _opts(ctx).key)
-    from service.api.server import run
-
-    from service.api.supervisor import process_count
+    from service.api.server import process_count, run
 
     count = process_count(settings.workers)
     processes = f", {count} processes" if count > 1 else ""
@@ -235,7 +233,7 @@ def _seed_demo(settings, key: str | None) -> None:
         w = Worker(settings, store)
         runner = threading.Thread(target=_run_until, args=(w, store, job_id), daemon=True)
         runner.start()
-        job = _follow(lambda: _job_view(store.jobs.get(job_id)), f"demo {DEMO_MODEL}", poll=0.2)
+        job = _follow(lambda: _job_in_process(app_, key, job_id), f"demo {DEMO_MODEL}", poll=0.2)
         runner.join()
         if job["state"] != "succeeded":
             raise JobFailed(f"demo training job {job_id} {job['state']}: {_problem_text(job)}")
@@ -247,18 +245,23 @@ def _seed_demo(settings, key: str | None) -> None:
         store.close()
 
 
-def _submit_in_process(app_, key: str | None, body: dict) -> str:
-    """POST the training request to the app's own route, in-process (the same checks as over HTTP)."""
+def _in_process(app_, key: str | None, method: str, path: str, body: dict | None = None):
+    """Send one request to the app's own route, in-process (the same checks and views as over HTTP)."""
     import anyio
     import httpx
 
-    async def post() -> httpx.Response:
+    async def send() -> httpx.Response:
         headers = {"Authorization": f"Bearer {key}"} if key else {}
         transport = httpx.ASGITransport(app=app_, client=("127.0.0.1", 0))
         async with httpx.AsyncClient(transport=transport, base_url="http://127.0.0.1") as c:
-            return await c.post(f"/v1/models/{DEMO_MODEL}/trainings", json=body, headers=headers, timeout=120)
+            return await c.request(method, path, json=body, headers=headers, timeout=120)
 
-    response = anyio.run(post)
+    return anyio.run(send)
+
+
+def _submit_in_process(app_, key: str | None, body: dict) -> str:
+    """POST the training request to the app's own route, in-process."""
+    response = _in_process(app_, key, "POST", f"/v1/models/{DEMO_MODEL}/trainings", body)
     if response.status_code != 202:
         err = ServiceError.from_response(response)
         raise JobFailed(f"the demo training was refused: {err}" + (
@@ -266,16 +269,18 @@ def _submit_in_process(app_, key: str | None, body: dict) -> str:
     return response.json()["id"]
 
 
+def _job_in_process(app_, key: str | None, job_id: str) -> dict:
+    """The job as GET /v1/trainings/{id} shows it, read through the app's own route."""
+    response = _in_process(app_, key, "GET", f"/v1/trainings/{job_id}")
+    if response.status_code != 200:
+        raise JobFailed(f"the demo training job {job_id} could not be read: {ServiceError.from_response(response)}")
+    return response.json()
+
+
 def _run_until(w, store, job_id: str) -> None:
     while store.jobs.get(job_id)["state"] not in FINAL_STATES:
         if not w.run_once():
             time.sleep(0.2)
-
-
-def _job_view(job: dict) -> dict:
-    from service.api.routes.trainings import job_view
-
-    return job_view(job)
 
 
 # ----------------------------------------------------------------------------------------------------
@@ -823,8 +828,8 @@ def plot(
 ) -> None:
     """Save a figure of a version (or the model's history) as SVG or PNG."""
     name, version = parse_ref(ref)
-    if kind not in ("cv", "path", "residuals", "history"):
-        raise UsageProblem(f"--kind {kind!r} is not offered; use cv, path, residuals or history.")
+    if kind not in (*PLOT_KINDS, "history"):
+        raise UsageProblem(f"--kind {kind!r} is not offered; use {', '.join(PLOT_KINDS)} or history.")
     fmt = (out.suffix.lower().lstrip(".") if out is not None else "svg") or "svg"
     if fmt not in ("svg", "png"):
         raise UsageProblem(f"--out {str(out)!r} must end in .svg or .png (the format follows the suffix).")
@@ -1197,9 +1202,10 @@ def _human_help(command: Any) -> None:
 def _fail_service(exc: ServiceError, args: list[str]) -> int:
     """One line for a refused or failed call; a missing or wrong API key is explained in the CLI's own
     terms (--key / TIKHON_KEY), not as an HTTP header."""
-    if exc.status == 401 and "no active key exists" in (exc.detail or ""):
+    unauthorized = isinstance(exc, ClientProblem) and exc.status == 401
+    if unauthorized and "no active key exists" in (exc.detail or ""):
         return _fail(exc.detail, 2)  # the server has no key left at all: its own words say what to do (--local)
-    if exc.status == 401:
+    if unauthorized:
         given = bool(os.environ.get("TIKHON_KEY")) or any(a == "--key" or a.startswith("--key=") for a in args)
         if given:
             return _fail("the API key given with --key or TIKHON_KEY is unknown or revoked on this server; use an "
@@ -1207,8 +1213,8 @@ def _fail_service(exc: ServiceError, args: list[str]) -> int:
                          "--scope ...').", 2)
         return _fail("this server needs an API key: pass --key KEY or set TIKHON_KEY (an admin makes one with "
                      "'tikhon keys create --scope predict|train|admin').", 2)
-    usage = exc.is_client_error or exc.title == "Invalid argument"
-    return _fail(str(exc), 2 if usage else 1)
+    # a 4xx answer is bad usage (exit 2); no answer, a 5xx or a wait that gave up is a failure (exit 1)
+    return _fail(str(exc), 2 if isinstance(exc, ClientProblem) else 1)
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -1245,6 +1251,8 @@ def main(argv: list[str] | None = None) -> int:
         code = 3
     except ServiceError as exc:
         code = _fail_service(exc, args)
+    except InvalidArgument as exc:  # the client refused an argument before sending anything
+        code = _fail(str(exc), 2)
     except TikhonError as exc:  # serve / worker / keys --local: the service's own refusals
         from service.errors import Forbidden, InvalidData, InvalidName, InvalidSpec
 
@@ -1257,10 +1265,6 @@ def main(argv: list[str] | None = None) -> int:
         code = _fail(f"unexpected {type(exc).__name__}: {exc}; run again with TIKHON_DEBUG=1 for the traceback and "
                      "report it", 1)
     return code
-
-
-def _console_script() -> None:  # pragma: no cover - thin wrapper
-    sys.exit(main())
 
 
 if __name__ == "__main__":

@@ -12,10 +12,24 @@ Every method maps to one route of the OpenAPI document (``Client.routes()`` list
 checks it against a live server's ``/openapi.json``). Answers are the decoded JSON bodies (plain dicts
 and lists), bytes for figures, text for the metrics and CSV answers.
 
-Every failure is raised as one exception type, ``ServiceError``: an answer with an error status carries
-the RFC 9457 problem fields (``type``, ``title``, ``status``, ``detail``, ``errors``, ``instance``,
-``request_id``); a server that cannot be reached, or does not answer in time, gives a ``ServiceError``
-with ``status`` 0 and a ``detail`` that names the address and the fix.
+Exceptions (one tree; ``except ServiceError`` catches every failure of a call to the server)::
+
+    ServiceError                  a call failed; ``status``, ``title``, ``detail`` (one line), ``type``, ...
+    ├── ConnectionFailed          no answer came: nothing listens there, the name does not resolve, the
+    │   │                         connection broke (``status`` 0; ``detail`` names the address and the fix)
+    │   └── AnswerTimeout         the request went out but no answer came within the client timeout
+    ├── ProblemAnswer             the server answered with an error status; the RFC 9457 problem members
+    │   │                         (``type``, ``title``, ``status``, ``detail``, ``errors``, ``instance``,
+    │   │                         ``request_id``) are attributes, the whole body is ``body``
+    │   ├── ClientProblem         4xx: the request was wrong (bad input, a missing key or scope, a conflict);
+    │   │                         sending it again unchanged gives the same answer (429 says when to retry)
+    │   └── ServerProblem         5xx: the server failed or its catalog is unavailable; retry later
+    ├── UnexpectedAnswer          a success status with a body that is not what a Tikhon server sends
+    └── WaitTimeout               ``wait(timeout=...)`` gave up; the job goes on running on the server
+
+    ValueError                    a caller's mistake found before anything is sent (a file that does not
+    └── InvalidArgument           exist, two data arguments, a version that is not a whole number); it is
+                                  not a ServiceError: nothing went to the server
 """
 
 from __future__ import annotations
@@ -28,7 +42,10 @@ from typing import Any, Callable, Iterable, Mapping, Sequence, TypedDict
 
 import httpx
 
-__all__ = ["Client", "ServiceError", "FINAL_STATES", "DEFAULT_URL", "Job", "Progress", "Prediction", "PredictAnswer",
+from service.jobstates import FINAL_STATES
+
+__all__ = ["Client", "ServiceError", "ConnectionFailed", "AnswerTimeout", "ProblemAnswer", "ClientProblem",
+           "ServerProblem", "UnexpectedAnswer", "WaitTimeout", "InvalidArgument", "FINAL_STATES", "PLOT_KINDS", "DEFAULT_URL", "Job", "Progress", "Prediction", "PredictAnswer",
            "ModelBlock", "ApiKey"]
 
 
@@ -85,12 +102,13 @@ class ApiKey(TypedDict, total=False):
     secret: str  # only in the answer that created the key
 
 DEFAULT_URL = "http://127.0.0.1:8000"
-FINAL_STATES = ("succeeded", "failed", "cancelled")
+PLOT_KINDS = ("cv", "path", "residuals")  # the figures of one version (the model's history is plot_history)
 
 
 class ServiceError(Exception):
-    """One failed call. ``status`` is the HTTP status (0 when no answer came); the other attributes are
-    the RFC 9457 problem members of the answer (``errors`` lists field-level problems)."""
+    """A failed call (the root of the tree in the module docstring). ``status`` is the HTTP status (0 when
+    no answer came); the other attributes are the RFC 9457 problem members (``errors`` lists field-level
+    problems)."""
 
     def __init__(self, status: int, title: str, detail: str, *, type: str = "about:blank",
                  errors: list[dict[str, Any]] | None = None, instance: str | None = None,
@@ -109,29 +127,68 @@ class ServiceError(Exception):
         where = f"{self.status} {self.title}" if self.status else self.title
         return f"{self.detail} ({where})"
 
-    @property
-    def is_client_error(self) -> bool:
-        """True for 4xx answers: the request itself was wrong (bad usage), retrying will not help."""
-        return 400 <= self.status < 500
-
-    @classmethod
-    def from_response(cls, response: httpx.Response) -> "ServiceError":
+    @staticmethod
+    def from_response(response: httpx.Response) -> "ProblemAnswer":
+        """The exception for an answer with an error status: ``ClientProblem`` (4xx) or ``ServerProblem``
+        (5xx, and any other status), with the problem members of its body."""
         body: Any = None
         try:
             body = response.json()
         except ValueError:
             body = None
+        status = response.status_code
         if isinstance(body, dict) and ("detail" in body or "title" in body):
+            status = int(body.get("status") or status)
+            cls = ClientProblem if 400 <= status < 500 else ServerProblem
             return cls(
-                int(body.get("status") or response.status_code), str(body.get("title") or response.reason_phrase),
+                status, str(body.get("title") or response.reason_phrase),
                 str(body.get("detail") or body.get("title")), type=str(body.get("type") or "about:blank"),
                 errors=body.get("errors") if isinstance(body.get("errors"), list) else None,
                 instance=body.get("instance"), request_id=body.get("request_id"), body=body,
             )
         text = " ".join(response.text.split())[:300]
-        return cls(response.status_code, response.reason_phrase or "Error",
-                   f"{response.request.method} {response.request.url.path} answered {response.status_code} without a "
+        cls = ClientProblem if 400 <= status < 500 else ServerProblem
+        return cls(status, response.reason_phrase or "Error",
+                   f"{response.request.method} {response.request.url.path} answered {status} without a "
                    f"problem body: {text or '(empty)'}; check that the URL points at a Tikhon server.")
+
+
+class ConnectionFailed(ServiceError):
+    """No answer came from the server (``status`` 0)."""
+
+    def __init__(self, title: str, detail: str):
+        super().__init__(0, title, detail)
+
+
+class AnswerTimeout(ConnectionFailed):
+    """The request went out, and no answer came within the client's timeout."""
+
+
+class ProblemAnswer(ServiceError):
+    """The server answered with an error status and (normally) an RFC 9457 problem body."""
+
+
+class ClientProblem(ProblemAnswer):
+    """A 4xx answer: the request itself was wrong; retrying it unchanged will not help."""
+
+
+class ServerProblem(ProblemAnswer):
+    """A 5xx answer: the server failed or could not reach its catalog; a later retry may succeed."""
+
+
+class UnexpectedAnswer(ServiceError):
+    """A success status whose body is not what a Tikhon server sends (the URL points elsewhere)."""
+
+
+class WaitTimeout(ServiceError):
+    """``Client.wait`` gave up before the job ended (``status`` 0); the job is still on the server."""
+
+    def __init__(self, detail: str):
+        super().__init__(0, "Timeout", detail)
+
+
+class InvalidArgument(ValueError):
+    """A caller's mistake found before anything was sent; the message names the argument and the fix."""
 
 
 def _route(method: str, template: str) -> Callable[[Callable], Callable]:
@@ -159,7 +216,7 @@ def _rows_from_columns(columns: Mapping[str, Sequence[Any]]) -> list[dict[str, A
     names = list(columns)
     lengths = {len(columns[n]) for n in names}
     if len(lengths) > 1:
-        raise ServiceError(0, "Invalid argument", f"columns have different lengths {sorted(lengths)}; give every "
+        raise InvalidArgument(f"columns have different lengths {sorted(lengths)}; give every "
                            "column the same number of values.")
     values = [list(_plain(columns[n])) for n in names]
     return [dict(zip(names, row)) for row in zip(*values)]
@@ -175,7 +232,7 @@ def _one_of(what: str, **given: Any) -> tuple[str, Any]:
     if len(present) != 1:
         names = ", ".join(given)
         got = ", ".join(k for k, _ in present) or "none"
-        raise ServiceError(0, "Invalid argument", f"{what} needs exactly one of {names}; got {got}.")
+        raise InvalidArgument(f"{what} needs exactly one of {names}; got {got}.")
     return present[0]
 
 
@@ -187,7 +244,7 @@ class Client:
     def __init__(self, url: str = DEFAULT_URL, key: str | None = None, timeout: float = 60.0, **httpx_options: Any):
         self.url = str(url).rstrip("/")
         if not self.url.startswith(("http://", "https://")):
-            raise ServiceError(0, "Invalid argument", f"server URL {url!r} lacks its scheme; write it as "
+            raise InvalidArgument(f"server URL {url!r} lacks its scheme; write it as "
                                "http://host:port or https://host:port.")
         headers = {"User-Agent": "tikhon-client/1", "Accept": "application/json"}
         if key:
@@ -220,11 +277,11 @@ class Client:
         try:
             response = self._http.request(method, path, **kw)
         except httpx.TimeoutException:
-            raise ServiceError(0, "Timeout", f"{method} {self.url}{path} got no answer within the client timeout; "
-                               "raise the timeout (Client(timeout=...)) or check the server's load.") from None
+            raise AnswerTimeout("Timeout", f"{method} {self.url}{path} got no answer within the client timeout; "
+                                "raise the timeout (Client(timeout=...)) or check the server's load.") from None
         except httpx.TransportError as exc:
             reason = " ".join(str(exc).split()) or type(exc).__name__
-            raise ServiceError(0, "Unreachable", f"cannot reach the Tikhon server at {self.url} ({reason}); start it "
+            raise ConnectionFailed("Unreachable", f"cannot reach the Tikhon server at {self.url} ({reason}); start it "
                                "with 'tikhon serve' or point the client at the right address (--url / TIKHON_URL).") from None
         if response.status_code >= 400:
             raise ServiceError.from_response(response)
@@ -234,7 +291,7 @@ class Client:
             try:
                 return response.json()
             except ValueError:
-                raise ServiceError(response.status_code, "Unexpected answer",
+                raise UnexpectedAnswer(response.status_code, "Unexpected answer",
                                    f"{method} {path} answered with a body that is not JSON; check that {self.url} is a "
                                    "Tikhon server.") from None
         if expect == "text":
@@ -251,7 +308,7 @@ class Client:
 
     @_route("GET", "/readyz")
     def ready(self) -> dict[str, Any]:
-        """Readiness: the catalog answers and the store is writable. A 503 is raised as ``ServiceError``."""
+        """Readiness: the catalog answers and the store is writable. A 503 is raised as ``ServerProblem``."""
         return self._send("GET", "/readyz")
 
     @_route("GET", "/metrics")
@@ -382,9 +439,9 @@ class Client:
     # -- figures --------------------------------------------------------------------------------------
     def plot(self, name: str, version: int, kind: str, format: str = "svg") -> bytes:
         """A figure of one version: ``kind`` is ``cv``, ``path`` or ``residuals``; ``format`` svg or png."""
-        methods = {"cv": self.plot_cv, "path": self.plot_path, "residuals": self.plot_residuals}
+        methods = dict(zip(PLOT_KINDS, (self.plot_cv, self.plot_path, self.plot_residuals)))
         if kind not in methods:
-            raise ServiceError(0, "Invalid argument", f"plot kind {kind!r} is not offered; use one of {sorted(methods)}.")
+            raise InvalidArgument(f"plot kind {kind!r} is not offered; use one of {sorted(methods)}.")
         return methods[kind](name, version, format=format)
 
     @_route("GET", "/v1/models/{name}/versions/{version}/plots/cv")
@@ -464,7 +521,7 @@ class Client:
         if kind == "file":
             path = Path(value)
             if not path.is_file():
-                raise ServiceError(0, "Invalid argument", f"training data file {str(path)!r} does not exist; give the "
+                raise InvalidArgument(f"training data file {str(path)!r} does not exist; give the "
                                    "path of a CSV or Parquet file.")
             fields: dict[str, str] = {"promote": promote, "min_improvement": repr(float(min_improvement))}
             if spec is not None:
@@ -498,7 +555,7 @@ class Client:
 
     @_route("DELETE", "/v1/trainings/{job_id}")
     def cancel(self, job_id: str | Mapping[str, Any]) -> Job:
-        """Cancel a queued or running job (a finished job gives a 409 ``ServiceError``)."""
+        """Cancel a queued or running job (a finished job gives a 409 ``ClientProblem``)."""
         return self._send("DELETE", f"/v1/trainings/{_seg(_job_id(job_id))}")
 
     def wait(self, job: str | Mapping[str, Any], on_progress: Callable[[Job], None] | None = None, *,
@@ -507,7 +564,7 @@ class Client:
 
         ``on_progress(job)`` is called with every polled state (including the last). A failed job is
         returned, not raised: look at ``job["state"]`` and ``job["problem"]``. ``timeout`` (seconds,
-        default none) bounds the wait; when it passes, a ``ServiceError`` with status 0 says so and the
+        default none) bounds the wait; when it passes, ``WaitTimeout`` says so and the
         job keeps running on the server."""
         jid = _job_id(job)
         end = None if timeout is None else time.monotonic() + timeout
@@ -519,8 +576,8 @@ class Client:
             if state.get("state") in FINAL_STATES:
                 return state
             if end is not None and time.monotonic() > end:
-                raise ServiceError(0, "Timeout", f"training job {jid} did not end within {timeout:g} s (state "
-                                   f"{state.get('state')}); wait again later, or cancel it with cancel({jid!r}).")
+                raise WaitTimeout(f"training job {jid} did not end within {timeout:g} s (state "
+                                  f"{state.get('state')}); wait again later, or cancel it with cancel({jid!r}).")
             time.sleep(delay)
             delay = min(poll, delay * 1.5)
 
@@ -599,14 +656,14 @@ def _num(version: Any) -> int:
     """A version number: a whole number >= 1 (an int, or a string of digits such as "3")."""
     text = str(version).strip()
     if isinstance(version, bool) or not text.isdigit() or int(text) < 1:
-        raise ServiceError(0, "Invalid argument", f"version must be a whole number >= 1, got {version!r}.")
+        raise InvalidArgument(f"version must be a whole number >= 1, got {version!r}.")
     return int(text)
 
 
 def _job_id(job: str | Mapping[str, Any]) -> str:
     if isinstance(job, Mapping):
         if "id" not in job:
-            raise ServiceError(0, "Invalid argument", "the job mapping has no 'id'; pass the dict that train() "
+            raise InvalidArgument("the job mapping has no 'id'; pass the dict that train() "
                                "returned or the job id string.")
         return str(job["id"])
     return str(job)
@@ -615,17 +672,17 @@ def _job_id(job: str | Mapping[str, Any]) -> str:
 def _read_input_file(path: Path) -> tuple[str, Any]:
     """A local input file for predict: CSV text, or JSON (a list of rows or {"rows": [...]})."""
     if not path.is_file():
-        raise ServiceError(0, "Invalid argument", f"input file {str(path)!r} does not exist; give a CSV or JSON file.")
+        raise InvalidArgument(f"input file {str(path)!r} does not exist; give a CSV or JSON file.")
     text = path.read_text(encoding="utf-8")
     if path.suffix.lower() == ".json" or text.lstrip()[:1] in ("[", "{"):
         try:
             doc = json.loads(text)
         except ValueError as exc:
-            raise ServiceError(0, "Invalid argument", f"input file {str(path)!r} is not valid JSON ({exc}); give a list "
+            raise InvalidArgument(f"input file {str(path)!r} is not valid JSON ({exc}); give a list "
                                "of rows or {\"rows\": [...]}.") from None
         rows = doc.get("rows") if isinstance(doc, dict) else doc
         if not isinstance(rows, list):
-            raise ServiceError(0, "Invalid argument", f"input file {str(path)!r} holds no list of rows; give a list of "
+            raise InvalidArgument(f"input file {str(path)!r} holds no list of rows; give a list of "
                                "objects or {\"rows\": [...]}.")
         return "rows", rows
     return "csv", text

@@ -1,7 +1,7 @@
 """The one exception tree of Tikhon.
 
 Every layer raises these and nothing else for expected failures. The HTTP layer translates them to
-RFC 9457 problem details in one place (``service.api.problems``); the CLI prints ``str(err)`` on one
+RFC 9457 problem details in one place (``service.problems``); the CLI prints ``str(err)`` on one
 line. Messages follow one rule: name what is wrong (the field or parameter), the value received, and
 the fix.
 

@@ -6,7 +6,7 @@ how the machine is laid out). Two helpers, used wherever a message carries a pat
 
 * ``shown(path, root)`` formats one path the code knows, relative to ``root`` (``"pumps/2024-06.csv"``),
   or only its last component when it lies outside ``root``.
-* ``redact(text)`` is the safety net at the HTTP boundary (``service.api.problems``): every absolute
+* ``redact(text)`` is the safety net at the HTTP boundary (``service.problems``): every absolute
   form of a registered root inside free text (an OS or pyarrow message quoting a full path, say) becomes
   its label, ``<TIKHON_DATA_DIR>`` or ``<TIKHON_STORE>``. Roots are registered per process with
   ``register(settings)`` when an app or a worker starts; registering more roots only redacts more.

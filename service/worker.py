@@ -78,7 +78,7 @@ _SPAWN = mp.get_context("spawn")
 
 
 def _problem(err: BaseException) -> dict[str, Any]:
-    from service.api.problems import internal_error_body, problem_from_error
+    from service.problems import internal_error_body, problem_from_error
 
     if isinstance(err, TikhonError):
         return problem_from_error(err)
@@ -209,7 +209,7 @@ def _train(data_path: str | None, spec: dict, conn, progress, cancel, deadline: 
             finally:
                 executor.close()
         else:
-            from service.api.tables import read_staged
+            from service.tables import read_staged
             from service.engine import tune
 
             from service.engine.tune import Budget
@@ -281,7 +281,7 @@ def decide(store, name: str, request: dict, outcome: dict, data_path: str | None
             decision["comparison"] = ("live version's predictions on the new rows, scored per hash fold of the new "
                                       "job's spec and averaged; the new version's figure is its CV mean")
         else:
-            from service.api.tables import read_staged
+            from service.tables import read_staged
 
             cols = read_staged(data_path)
             live_score = score_on(live_model, cols, outcome["target"], metric, outcome.get("folds"))
@@ -710,7 +710,7 @@ class Worker:
 
 def run_worker(settings: Settings) -> None:
     """Entry point of ``tikhon worker``: a standalone worker until SIGTERM or SIGINT."""
-    from service.api.logs import configure
+    from service.logs import configure
     from service.store import Store
 
     configure(settings.log_level)

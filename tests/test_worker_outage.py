@@ -97,7 +97,7 @@ def test_requeue_period_bounds():
 
 
 def _age(store, job_id, seconds):
-    with store.engine.begin() as conn:
+    with store.db.sql.begin() as conn:
         conn.execute(sa.update(jobs_t).where(jobs_t.c.id == job_id).values(
             heartbeat_at=sa.func.coalesce(jobs_t.c.heartbeat_at, jobs_t.c.created_at)))
         hb = conn.execute(sa.select(jobs_t.c.heartbeat_at).where(jobs_t.c.id == job_id)).scalar()
@@ -146,24 +146,24 @@ def test_worker_loop_logs_an_outage_in_a_few_lines(tmp_path, lines):
         s.bind(("127.0.0.1", 0))
         port = s.getsockname()[1]
     dead = create_catalog_engine(f"postgresql+psycopg://nobody@127.0.0.1:{port}/tikhon")
-    real = store.engine
+    real = store.db.sql
     worker = Worker(settings, store, worker_id="w-outage")
     try:
-        store.engine = store.jobs._engine = dead
+        store.db.sql = dead  # the store, its jobs and keys share one catalog access
         thread = threading.Thread(target=worker.run_forever, daemon=True)
         thread.start()
         deadline = time.monotonic() + 60
         while worker.outage.failures < 8 and time.monotonic() < deadline:
             time.sleep(0.05)
         assert worker.outage.failures >= 8  # it kept retrying
-        store.engine = store.jobs._engine = real
+        store.db.sql = real
         while worker.outage.down and time.monotonic() < deadline:
             time.sleep(0.05)
         assert not worker.outage.down
         worker.stop()
         thread.join(30)
     finally:
-        store.engine = store.jobs._engine = real
+        store.db.sql = real
         store.close()
         dead.dispose()
     mine = [r for r in lines if getattr(r, "worker_id", None) == "w-outage" and r.levelno >= logging.WARNING]

@@ -16,7 +16,9 @@ from fastapi import Depends, FastAPI
 from fastapi.middleware.cors import CORSMiddleware
 
 from service import paths
-from service.api import auth, problems
+from service import problems
+from service.api import exception_handlers
+from service.api import auth
 from service.api.metrics import ApiMetrics
 from service.api.middleware import BodyLimit, RequestContext
 from service.api.schemas import component_schemas
@@ -46,7 +48,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
         store = Store(settings)
 
     from service.api.intake_process import IntakePool
-    from service.api.models import ModelCache
+    from service.api.model_cache import ModelCache
     from service.api.routes import health, models, pages, plots, predictions, trainings
 
     @asynccontextmanager
@@ -91,11 +93,11 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
     from service.api.monitor import Monitor
     from service.store.monitor import MonitorSums
 
-    app.state.monitor = Monitor(MonitorSums(store.engine), enabled=settings.monitor, flush_s=settings.monitor_flush_s,
+    app.state.monitor = Monitor(MonitorSums(store.db.sql), enabled=settings.monitor, flush_s=settings.monitor_flush_s,
                                 retention_days=settings.monitor_retention_days)
     metrics.watch_jobs(store.jobs.counts)
 
-    problems.install(app)
+    exception_handlers.install(app)
 
     # Every /v1 router is included with the key check; the routers carry the /v1 prefix themselves so
     # each route's template (used as the metrics label) is the full path. The prediction routes come first
@@ -206,7 +208,7 @@ def _problem_schema() -> dict:
 def _document_problems(schema: dict) -> None:
     """Document the error answers every operation can give: 4XX and 5XX problem details (OpenAPI 3.1 allows
     the range keys), and the 422 of request validation as the problem it is rather than FastAPI's default
-    validation-error shape, which this service never sends (problems.install renders it as a problem)."""
+    validation-error shape, which this service never sends (exception_handlers.install renders it as a problem)."""
     schemas = schema.setdefault("components", {}).setdefault("schemas", {})
     problem = _problem_schema()
     schemas.update(problem.pop("$defs", {}))

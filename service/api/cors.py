@@ -11,7 +11,8 @@ from __future__ import annotations
 
 from typing import Any
 
-from service.api.problems import problem_body, problem_response
+from service.api.exception_handlers import problem_response
+from service.problems import problem_body
 
 
 class PreflightGuard:

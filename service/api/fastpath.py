@@ -8,7 +8,7 @@ runs for these routes exactly as for every other one. For ``POST`` to a path tha
 routes matches (the route's own compiled pattern, tried in the router's order, and these routes come
 first in it), it sets what the router would set (``route``, ``path_params``, ``endpoint``) and calls the
 route's endpoint directly; an exception is answered by the handler the app registered for its type
-(``service.api.problems.install``), as FastAPI's exception middleware would. Anything else (another
+(``service.api.exception_handlers.install``), as FastAPI's exception middleware would. Anything else (another
 method, another path) goes on to FastAPI unchanged, so a ``GET`` still gets the router's 405 and the
 routes stay in ``/openapi.json`` as declared.
 

@@ -21,7 +21,7 @@ from typing import Any
 import numpy as np
 import orjson
 
-from service.api import tables
+from service import tables
 from service.errors import BudgetExceeded, InvalidData, InvalidSpec, NotFound
 from service.settings import Settings
 from service.store.jobs import IDEMPOTENCY_KEY_RULE

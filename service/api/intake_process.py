@@ -55,7 +55,8 @@ def read_json_body(body: bytes | str, limits: dict[str, Any], incoming: str) -> 
     Returns ``{"request": {spec, promote, min_improvement}, "data": ...}`` plus, for rows or CSV data,
     ``origin``, ``spec`` and ``counts`` (None when the request has no spec: the live spec is checked
     by the caller) and ``staged`` (the Parquet file's path); or ``error`` with ``deferred``."""
-    from service.api import intake, tables
+    from service import tables
+    from service.api import intake
     from service.api.routes.trainings import parse_training_body
 
     settings = types.SimpleNamespace(**limits)

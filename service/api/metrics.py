@@ -17,10 +17,11 @@ from typing import Any, Callable, Mapping
 from prometheus_client import CollectorRegistry, Counter, Histogram, generate_latest, values
 from prometheus_client.core import GaugeMetricFamily
 
+from service.jobstates import STATES
+
 # Latency buckets in seconds: dense below 50 ms where single-row predictions live.
 _BUCKETS = (0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0)
 
-JOB_STATES = ("queued", "running", "succeeded", "failed", "cancelled")
 
 
 class _JobStates:
@@ -38,7 +39,7 @@ class _JobStates:
             tally = self._count_jobs()
         except Exception:  # an unreachable catalog must not break the scrape; /readyz reports it
             return
-        for state in JOB_STATES:
+        for state in STATES:
             family.add_metric([state], tally.get(state, 0))
         yield family
 

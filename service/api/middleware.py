@@ -16,8 +16,8 @@ from typing import Any
 
 import orjson
 
-from service.api import logs
-from service.api.problems import PROBLEM_MEDIA_TYPE, internal_error_body, problem_body
+from service import logs
+from service.problems import PROBLEM_MEDIA_TYPE, internal_error_body, problem_body
 from service.api.stale import header_value
 
 log = logging.getLogger("tikhon.api")

@@ -8,7 +8,7 @@ import orjson
 from fastapi import Request
 from fastapi.responses import Response
 
-from service.api.problems import MalformedBody, UnsupportedMediaType
+from service.problems import MalformedBody, UnsupportedMediaType
 
 _OPTS = orjson.OPT_SERIALIZE_NUMPY | orjson.OPT_NON_STR_KEYS
 

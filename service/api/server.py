@@ -15,6 +15,7 @@ import socket
 
 import uvicorn
 
+from service.api.supervisor import process_count  # also what `tikhon serve` reports
 from service.errors import Forbidden
 from service.settings import Settings
 
@@ -85,8 +86,7 @@ def run(settings: Settings) -> None:
 
     With ``settings.workers`` above 1 (or 'auto' on a machine with several cores) the server is several
     processes on one socket under a supervisor (``service.api.supervisor``); with 1, this process."""
-    from service.api.logs import configure
-    from service.api.supervisor import process_count
+    from service.logs import configure
 
     count = process_count(settings.workers)
     if count > 1:

@@ -167,7 +167,7 @@ class Supervisor:
 
     # -- life cycle -----------------------------------------------------------------------------------
     def run(self) -> None:
-        from service.api.logs import configure
+        from service.logs import configure
         from service.api.server import check_bind
         from service.store import Store
 
@@ -316,7 +316,7 @@ def child_main() -> None:
     """Entry point of one API process (its configuration arrives as JSON on stdin)."""
     import uvicorn
 
-    from service.api.logs import configure
+    from service.logs import configure
     from service.api.server import build
 
     cfg = json.loads(sys.stdin.buffer.read())

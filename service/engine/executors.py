@@ -14,15 +14,6 @@ from typing import Any, Callable, Sequence
 from service.errors import Cancelled
 
 
-def _tree(values: list[Any], combine: Callable[[Any, Any], Any]) -> Any:
-    while len(values) > 1:
-        nxt = [combine(values[i], values[i + 1]) for i in range(0, len(values) - 1, 2)]
-        if len(values) % 2:
-            nxt.append(values[-1])
-        values = nxt
-    return values[0]
-
-
 class SerialExecutor:
     """Runs every task here, one after the other, keeping at most log2(tasks) partial results."""
 
@@ -30,7 +21,7 @@ class SerialExecutor:
 
     def map_reduce(self, fn: Callable[[Any], Any], items: Sequence[Any], combine: Callable[[Any, Any], Any], *,
                    on_done: Callable[[], None] | None = None, should_stop: Callable[[], bool] | None = None) -> Any:
-        # a binary counter of partial results: the same tree as _tree, built incrementally
+        # a binary counter of partial results: a balanced tree in partition order, built incrementally
         stack: list[tuple[int, Any]] = []
         for item in items:
             if should_stop and should_stop():

@@ -139,12 +139,6 @@ def _partition_plan(tests: list[np.ndarray], n: int) -> Plan:
     return Plan([np.sort(t) for t in tests], splits, assignment, list(range(k)), list(range(k)))
 
 
-def check_groups(values: np.ndarray, name: str) -> np.ndarray:
-    if len(values) == 0:
-        raise InvalidData(f"group column {name!r} is empty")
-    return values
-
-
 def order_key(raw: np.ndarray, name: str) -> np.ndarray:
     """Sort keys of a ``time_ordered`` scheme's ``order_by`` column: numbers as they are, timestamps and
     dates (datetime64, datetime/date objects, ISO-8601 text such as ``2024-03-01`` or

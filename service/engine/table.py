@@ -125,10 +125,6 @@ def _all_text(raw: np.ndarray) -> bool:
     return all(type(v) is str for v in raw)
 
 
-def numeric_names(cols: Columns) -> list[str]:
-    return [n for n, c in cols.items() if c.dtype.kind in "biuf"]
-
-
 def _to_float(v: Any) -> float:
     if isinstance(v, (bool, np.bool_)):
         raise TypeError("bool")

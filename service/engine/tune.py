@@ -395,7 +395,7 @@ def _tune(data, spec: TuneSpec, progress, should_stop, budget, span=None) -> Tun
     chosen = rows[picks[0]]
     s_idx = chosen["_setting"]
     model, full, oof_pred = search.refit(s_idx, settings[s_idx], chosen["strength"], chosen["l1_ratio"], strengths,
-                                         scaler, chosen)
+                                         scaler)
     return finish(spec, settings, rows, picks, model, full, n_rows=n, n_splits=search.n_splits,
                   folds=search.assignment, oof_predictions=oof_pred, oof_observed=prep.y,
                   fingerprint=fingerprint_of(fingerprint_columns(prep.cols, prep.used), n),
@@ -529,7 +529,7 @@ class _SharedSearch:
             self._nested = (None, self._nested[1])  # free the largest design once no nested setting is left
         yield values, df, None
 
-    def refit(self, s_idx, setting, strength, ratio, strengths, scaler, chosen):
+    def refit(self, s_idx, setting, strength, ratio, strengths, scaler):
         plan = self.plan
         y = self.prep.y
         Phi = _design(setting, self.Xs, self.prep.cat_block)
@@ -566,7 +566,6 @@ class _PerFoldSearch(_SharedSearch):
 
     def __init__(self, spec, prep, settings, strengths, ratios, plan):
         super().__init__(spec, prep, None, settings, strengths, ratios, plan)
-        self.oof: dict[int, np.ndarray] = {}
 
     def _rows(self, atom_ids: list[int]) -> np.ndarray:
         """Row indices of some atoms in their original order: k-means sees the training rows in the order
@@ -610,7 +609,7 @@ class _PerFoldSearch(_SharedSearch):
                         self.strengths, self.ratios)
         yield values, df, None
 
-    def refit(self, s_idx, setting, strength, ratio, strengths, scaler, chosen):
+    def refit(self, s_idx, setting, strength, ratio, strengths, scaler):
         y = self.prep.y
         n = y.size
         oof_pred = np.full(n, np.nan)
@@ -728,7 +727,7 @@ class _LooSearch:
                 out[i, l] = y[i] - (yk.mean() + (Z[i] - mu) @ beta)
         return out
 
-    def refit(self, s_idx, setting, strength, ratio, strengths, scaler, chosen):
+    def refit(self, s_idx, setting, strength, ratio, strengths, scaler):
         y = self.prep.y
         Phi = _design(setting, self.Xs, self.prep.cat_block)
         loo = self.loo[s_idx][:, int(np.flatnonzero(strengths == strength)[0])]

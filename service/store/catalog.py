@@ -19,7 +19,8 @@ processes opening a fresh catalog at once do not race. Both backends have transa
 from __future__ import annotations
 
 import hashlib
-from contextlib import contextmanager
+import time
+from contextlib import AbstractContextManager, contextmanager
 from pathlib import Path
 from typing import Iterator
 
@@ -28,6 +29,7 @@ from sqlalchemy.engine import Connection, Engine, make_url
 from sqlalchemy.exc import ArgumentError, SQLAlchemyError
 
 from service.errors import StorageFailure
+from service.store.util import catalog_errors
 
 MIGRATIONS_DIR = Path(__file__).resolve().parent / "migrations"
 VERSION_TABLE = "tikhon_schema_version"
@@ -102,10 +104,6 @@ def create_catalog_engine(url: str) -> Engine:
     )
 
 
-def is_postgres(engine: Engine) -> bool:
-    return engine.dialect.name == "postgresql"
-
-
 @contextmanager
 def write_txn(engine: Engine) -> Iterator[Connection]:
     """A write transaction: ``BEGIN IMMEDIATE`` on SQLite, a plain transaction on PostgreSQL."""
@@ -120,6 +118,38 @@ def read_txn(engine: Engine) -> Iterator[Connection]:
     with engine.connect() as conn:
         with conn.begin():
             yield conn
+
+
+class CatalogAccess:
+    """What the parts of a store share of the catalog database, and nothing else of the ``Store``.
+
+    ``sql`` is the SQLAlchemy engine, ``label`` how messages name the catalog (never with a password),
+    ``catalog_id`` the id its migrations wrote (``None`` until read), ``ttl_s`` how long a process may
+    reuse a catalog answer it cached. ``Store`` makes one and hands it to ``Jobs`` and ``Keys``; a test
+    that swaps ``sql`` for a dead engine cuts all three off at once.
+    """
+
+    def __init__(self, sql: Engine, label: str, *, ttl_s: float, catalog_id: str | None = None):
+        self.sql = sql
+        self.label = label
+        self.ttl_s = float(ttl_s)
+        self.catalog_id = catalog_id
+
+    def read(self) -> AbstractContextManager[Connection]:
+        """A read transaction (``read_txn``)."""
+        return read_txn(self.sql)
+
+    def write(self) -> AbstractContextManager[Connection]:
+        """A write transaction (``write_txn``: ``BEGIN IMMEDIATE`` on SQLite)."""
+        return write_txn(self.sql)
+
+    def errors(self, what: str) -> AbstractContextManager[None]:
+        """Database errors while doing ``what`` become ``CatalogUnavailable`` / ``StorageFailure``."""
+        return catalog_errors(what, self.label)
+
+    def fresh(self, stamp: float) -> bool:
+        """Whether an answer cached at ``stamp`` (``time.monotonic()``) may still be used."""
+        return time.monotonic() - stamp < self.ttl_s
 
 
 def advisory_key(name: str) -> int:

@@ -35,24 +35,20 @@ import time
 import uuid
 from datetime import timedelta
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Mapping
+from typing import Any, Mapping
 
 from sqlalchemy import and_, insert, select, update
 from sqlalchemy.exc import IntegrityError
 
+from service.jobstates import FINAL_STATES, STATES
 from service.errors import Busy, Conflict, InvalidData, InvalidSpec, JobTaken, NotFound, StorageFailure
 from service.store import artifact, layout
-from service.store.catalog import read_txn, write_txn
+from service.store.catalog import CatalogAccess
 from service.store.names import validate_name
 from service.store.schema import jobs as jobs_t
 from service.store.schema import models as models_t
-from service.store.util import catalog_errors, iso, row_dict, utcnow
+from service.store.util import iso, row_dict, utcnow
 
-if TYPE_CHECKING:
-    from service.store.store import Store
-
-STATES = ("queued", "running", "succeeded", "failed", "cancelled")
-FINAL_STATES = frozenset({"succeeded", "failed", "cancelled"})
 IDEMPOTENCY_KEY_RULE = r"^[\x21-\x7e]{1,255}$"  # printable ASCII without spaces, as HTTP header values go
 _KEY_RE = re.compile(IDEMPOTENCY_KEY_RULE)
 _ID_RE = re.compile(r"^[0-9a-f]{32}$")
@@ -63,17 +59,15 @@ SUBMITTER = "submitted_by"  # request member naming who submitted (key id or cli
 
 
 class Jobs:
-    def __init__(self, store: "Store"):
-        self._store = store
-        self._engine = store.engine
-        self.folder = store.root / "_jobs"
+    """Training jobs in the catalog, and their data folders under ``<store>/_jobs`` (``folder``)."""
+
+    def __init__(self, db: CatalogAccess, folder: Path):
+        self._db = db
+        self.folder = Path(folder)
         self.incoming_dir = self.folder / ".incoming"
         self.incoming_dir.mkdir(parents=True, exist_ok=True)
 
     # ------------------------------------------------------------------------------------------------
-
-    def _errors(self, what: str):
-        return catalog_errors(what, self._store.catalog)
 
     @staticmethod
     def _out(r: Any) -> dict[str, Any]:
@@ -168,7 +162,7 @@ class Jobs:
             final_path = target_dir / source.name
             try:
                 target_dir.mkdir(parents=True)
-                layout.write_publishing_marker(target_dir, self._store.catalog_id, job_id)  # until the row commits
+                layout.write_publishing_marker(target_dir, self._db.catalog_id, job_id)  # until the row commits
                 shutil.move(str(source), str(final_path))
             except OSError as exc:  # full or read-only store: a storage problem (507), nothing half-moved
                 self._drop_folder(job_id)
@@ -179,9 +173,9 @@ class Jobs:
                 ) from None
         now = utcnow()
         try:
-            with self._errors(f"submitting a training job for {name!r}"):
+            with self._db.errors(f"submitting a training job for {name!r}"):
                 try:
-                    with write_txn(self._engine) as conn:
+                    with self._db.write() as conn:
                         if idempotency_key is not None:
                             existing = conn.execute(select(jobs_t).where(and_(
                                 jobs_t.c.model_name == name, jobs_t.c.idempotency_key == idempotency_key))).first()
@@ -238,11 +232,11 @@ class Jobs:
                        submitter_limit: int | None = None) -> None:
         """Raise ``Busy`` when a job submitted now would exceed the queue limits (a cheap early check;
         ``submit`` checks again in its own transaction)."""
-        with self._errors("counting queued training jobs"), read_txn(self._engine) as conn:
+        with self._db.errors("counting queued training jobs"), self._db.read() as conn:
             self._check_capacity(conn, queue_limit, submitter, submitter_limit)
 
     def _by_key(self, name: str, key: str) -> Any:
-        with self._errors("reading a training job"), read_txn(self._engine) as conn:
+        with self._db.errors("reading a training job"), self._db.read() as conn:
             return conn.execute(select(jobs_t).where(and_(
                 jobs_t.c.model_name == name, jobs_t.c.idempotency_key == key))).first()
 
@@ -257,7 +251,7 @@ class Jobs:
         return self._out(row), False
 
     def get(self, job_id: str) -> dict[str, Any]:
-        with self._errors("reading a training job"), read_txn(self._engine) as conn:
+        with self._db.errors("reading a training job"), self._db.read() as conn:
             return self._out(self._row(conn, job_id))
 
     def list(self, name: str | None = None, *, state: str | None = None, limit: int = 100) -> list[dict[str, Any]]:
@@ -270,14 +264,14 @@ class Jobs:
             if state not in STATES:
                 raise InvalidSpec(f"job state {state!r} is unknown; use one of {', '.join(STATES)}.")
             q = q.where(jobs_t.c.state == state)
-        with self._errors("listing training jobs"), read_txn(self._engine) as conn:
+        with self._db.errors("listing training jobs"), self._db.read() as conn:
             return [self._out(r) for r in conn.execute(q).all()]
 
     def counts(self) -> dict[str, int]:
         """How many jobs are in each state (all states present, zeros included), e.g. for metrics."""
         from sqlalchemy import func
 
-        with self._errors("counting training jobs"), read_txn(self._engine) as conn:
+        with self._db.errors("counting training jobs"), self._db.read() as conn:
             found = dict(conn.execute(select(jobs_t.c.state, func.count()).group_by(jobs_t.c.state)).all())
         return {state: int(found.get(state, 0)) for state in STATES}
 
@@ -287,7 +281,7 @@ class Jobs:
     def claim(self, worker_id: str) -> dict[str, Any] | None:
         """Take the oldest queued job for ``worker_id`` (state → running, attempts + 1), or None."""
         _check_worker(worker_id)
-        with self._errors("claiming a training job"), write_txn(self._engine) as conn:
+        with self._db.errors("claiming a training job"), self._db.write() as conn:
             q = (select(jobs_t.c.id).where(jobs_t.c.state == "queued")
                  .order_by(jobs_t.c.created_at, jobs_t.c.id).limit(1))
             if conn.dialect.name == "postgresql":
@@ -310,7 +304,7 @@ class Jobs:
             values["progress_done"] = done
         if total is not None:
             values["progress_total"] = total
-        with self._errors("recording a heartbeat"), write_txn(self._engine) as conn:
+        with self._db.errors("recording a heartbeat"), self._db.write() as conn:
             res = conn.execute(update(jobs_t).where(and_(
                 jobs_t.c.id == job_id, jobs_t.c.state == "running", jobs_t.c.worker_id == worker_id)).values(**values))
             if res.rowcount == 1:
@@ -341,7 +335,7 @@ class Jobs:
             if value is not None and (p := artifact._json_problem(value)) is not None:
                 raise InvalidSpec(f"the job's {label} cannot be stored as JSON: {p}.")
         now = utcnow()
-        with self._errors("finishing a training job"), write_txn(self._engine) as conn:
+        with self._db.errors("finishing a training job"), self._db.write() as conn:
             row = self._row(conn, job_id, lock=True)
             extra = {k: v for k, v in (("version", version), ("problem", problem), ("decision", decision))
                      if v is not None}
@@ -381,7 +375,7 @@ class Jobs:
 
     def cancel(self, job_id: str) -> dict[str, Any]:
         """Cancel a queued or running job (a running one stops at its worker's next heartbeat)."""
-        with self._errors("cancelling a training job"), write_txn(self._engine) as conn:
+        with self._db.errors("cancelling a training job"), self._db.write() as conn:
             row = self._row(conn, job_id, lock=True)
             if row.state in ("succeeded", "failed"):
                 raise Conflict(f"training job {job_id} already {row.state} at {iso(row.finished_at)}; "
@@ -405,10 +399,10 @@ class Jobs:
         if caller is not None:
             stale = and_(stale, jobs_t.c.worker_id != caller)
         # Every worker calls this every few seconds: look before taking the write lock (SQLite has one).
-        with self._errors("looking for stale training jobs"), read_txn(self._engine) as conn:
+        with self._db.errors("looking for stale training jobs"), self._db.read() as conn:
             if conn.execute(select(jobs_t.c.id).where(stale).limit(1)).first() is None:
                 return []
-        with self._errors("re-queueing stale training jobs"), write_txn(self._engine) as conn:
+        with self._db.errors("re-queueing stale training jobs"), self._db.write() as conn:
             q = select(jobs_t).where(stale)
             if conn.dialect.name == "postgresql":
                 q = q.with_for_update(skip_locked=True)
@@ -446,14 +440,14 @@ class Jobs:
         now = time.time()
         candidates = {p.name: p for p in self.folder.iterdir() if p.is_dir() and _ID_RE.fullmatch(p.name)}
         if candidates:
-            with self._errors("sweeping job folders"), read_txn(self._engine) as conn:
+            with self._db.errors("sweeping job folders"), self._db.read() as conn:
                 states = dict(conn.execute(select(jobs_t.c.id, jobs_t.c.state)
                                            .where(jobs_t.c.id.in_(list(candidates)))).all())
             for job_id, path in candidates.items():
                 st = states.get(job_id)
                 if st is None:
-                    if layout.marker_catalog(path, layout.PUBLISHING_MARKER) != self._store.catalog_id:
-                        self.kept_folders.append(f"_jobs/{job_id}")
+                    if layout.marker_catalog(path, layout.PUBLISHING_MARKER) != self._db.catalog_id:
+                        self.kept_folders.append(f"{layout.JOBS_DIR}/{job_id}")
                         continue
                     if now - _mtime(path) <= ORPHAN_FOLDER_AGE_S:
                         continue  # a submit in flight

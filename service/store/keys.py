@@ -18,17 +18,14 @@ import re
 import secrets
 import threading
 import time
-from typing import TYPE_CHECKING, Any, Iterable
+from typing import Any, Iterable
 
 from sqlalchemy import insert, select, update
 
 from service.errors import Conflict, InvalidSpec, NotFound
-from service.store.catalog import read_txn, write_txn
+from service.store.catalog import CatalogAccess
 from service.store.schema import api_keys as keys_t
-from service.store.util import catalog_errors, iso, utcnow
-
-if TYPE_CHECKING:
-    from service.store.store import Store
+from service.store.util import iso, utcnow
 
 SCOPES = ("predict", "train", "admin", "metrics")
 KEY_PREFIX = "tikhon_"
@@ -41,18 +38,11 @@ def _hash(secret: str) -> str:
 
 
 class Keys:
-    def __init__(self, store: "Store"):
-        self._store = store
-        self._engine = store.engine
+    def __init__(self, db: CatalogAccess):
+        self._db = db
         self._lock = threading.Lock()
         self._verified: dict[str, tuple[dict | None, float]] = {}
         self._any: tuple[bool, float] | None = None
-
-    def _errors(self, what: str):
-        return catalog_errors(what, self._store.catalog)
-
-    def _fresh(self, stamp: float) -> bool:
-        return time.monotonic() - stamp < self._store._ttl
 
     def create(self, scopes: Iterable[str], label: str) -> tuple[str, str]:
         """Create a key; return ``(key_id, secret)``. The secret is not stored and cannot be shown again."""
@@ -70,7 +60,7 @@ class Keys:
                               errors=[{"field": "label", "value": repr(label), "message": "at most 200 characters"}])
         key_id = secrets.token_hex(6)
         secret = f"{KEY_PREFIX}{key_id}_{secrets.token_urlsafe(32)}"
-        with self._errors("creating an API key"), write_txn(self._engine) as conn:
+        with self._db.errors("creating an API key"), self._db.write() as conn:
             conn.execute(insert(keys_t).values(key_id=key_id, secret_sha256=_hash(secret), scopes=scopes,
                                                label=label, created_at=utcnow(), revoked_at=None))
         with self._lock:
@@ -84,12 +74,12 @@ class Keys:
         digest = _hash(secret)
         with self._lock:
             hit = self._verified.get(digest)
-        if hit is not None and self._fresh(hit[1]):
+        if hit is not None and self._db.fresh(hit[1]):
             return hit[0]
         m = _KEY_RE.fullmatch(secret)
         row = None
         if m is not None:
-            with self._errors("verifying an API key"), read_txn(self._engine) as conn:
+            with self._db.errors("verifying an API key"), self._db.read() as conn:
                 row = conn.execute(select(keys_t).where(keys_t.c.key_id == m.group(1))).first()
         stored = row.secret_sha256 if row is not None else _DUMMY_HASH
         ok = hmac.compare_digest(digest, stored) and row is not None and row.revoked_at is None
@@ -102,7 +92,7 @@ class Keys:
         return out
 
     def list(self) -> list[dict[str, Any]]:
-        with self._errors("listing API keys"), read_txn(self._engine) as conn:
+        with self._db.errors("listing API keys"), self._db.read() as conn:
             rows = conn.execute(select(keys_t).order_by(keys_t.c.created_at, keys_t.c.key_id)).all()
         return [
             {"key_id": r.key_id, "scopes": list(r.scopes), "label": r.label, "created_at": iso(r.created_at),
@@ -117,7 +107,7 @@ class Keys:
         holding the admin scope, so no one can lock every operator out over the network. The active keys are
         read with ``FOR UPDATE`` on PostgreSQL (SQLite's write transaction is already exclusive), so two
         concurrent revocations of the last two admin keys cannot both pass the check."""
-        with self._errors("revoking an API key"), write_txn(self._engine) as conn:
+        with self._db.errors("revoking an API key"), self._db.write() as conn:
             row = conn.execute(select(keys_t).where(keys_t.c.key_id == str(key_id))).first()
             if row is None:
                 raise NotFound(f"API key {key_id!r} does not exist; `tikhon keys list` shows the key ids.")
@@ -141,9 +131,9 @@ class Keys:
     def any_active(self) -> bool:
         with self._lock:
             hit = self._any
-        if hit is not None and self._fresh(hit[1]):
+        if hit is not None and self._db.fresh(hit[1]):
             return hit[0]
-        with self._errors("reading API keys"), read_txn(self._engine) as conn:
+        with self._db.errors("reading API keys"), self._db.read() as conn:
             found = conn.execute(select(keys_t.c.key_id).where(keys_t.c.revoked_at.is_(None)).limit(1)).first()
         with self._lock:
             self._any = (found is not None, time.monotonic())

@@ -46,8 +46,14 @@ PUBLISHING_MARKER = ".publishing"
 DELETING_MARKER = ".deleting"
 HEX_TOKEN = re.compile(r"[0-9a-f]{32}")
 
+# The store's own top-level folders (model folders are named by the models): versions being written, versions
+# being removed, and training jobs' data (``<store>/_jobs/<id>/``). Named here only.
+STAGING_DIR = ".staging"
+TRASH_DIR = ".trash"
+JOBS_DIR = "_jobs"
+
 # Entries a store written before markers existed may hold at its top level (besides model folders).
-_KNOWN_TOP = frozenset({".staging", ".trash", "_jobs", "catalog.db", "catalog.db-wal", "catalog.db-shm",
+_KNOWN_TOP = frozenset({STAGING_DIR, TRASH_DIR, JOBS_DIR, "catalog.db", "catalog.db-wal", "catalog.db-shm",
                         "catalog.db-journal", "README.md"})
 
 

@@ -92,15 +92,15 @@ from service.errors import (
 )
 from service.settings import Settings
 from service.store import artifact, layout
+from service.store.layout import JOBS_DIR, STAGING_DIR, TRASH_DIR
 from service.store.cache import LRUCache, footprint
 from service.store.catalog import (
+    CatalogAccess,
     create_catalog_engine,
     lock_name,
     migrate,
     normalize_url,
-    read_txn,
     safe_url,
-    write_txn,
 )
 from service.store.names import validate_name
 from service.store.schema import catalog_info as catalog_info_t
@@ -108,13 +108,10 @@ from service.store.schema import history as history_t
 from service.store.schema import models as models_t
 from service.store.schema import VERSION_MAX
 from service.store.schema import versions as versions_t
-from service.store.util import as_utc, catalog_errors, iso, row_dict, utcnow
+from service.store.util import as_utc, iso, row_dict, utcnow
 
 log = logging.getLogger("tikhon.store")
 
-STAGING_DIR = ".staging"
-TRASH_DIR = ".trash"
-JOBS_DIR = "_jobs"
 
 
 def _fault_point(step: str) -> None:
@@ -165,31 +162,32 @@ class Store:
                 f"the store folder {self.root.name!r} cannot be created or written ({exc.strerror}); "
                 "set TIKHON_STORE to a writable folder."
             ) from None
-        self.engine = create_catalog_engine(normalize_url(settings.catalog_url()))
-        self.catalog = _catalog_label(self.engine, self.root)
-        self.schema_revision = migrate(self.engine)
-        self.catalog_id = self._read_catalog_id()
-        self._catalog_file = _sqlite_file(self.engine)
+        sql = create_catalog_engine(normalize_url(settings.catalog_url()))
+        # what Jobs and Keys get of the store: the catalog database, its label, id and cache lifetime
+        self.db = CatalogAccess(sql, _catalog_label(sql, self.root), ttl_s=catalog_ttl_s)
+        self.catalog = self.db.label
+        self.schema_revision = migrate(self.db.sql)
+        self.catalog_id = self.db.catalog_id = self._read_catalog_id()
+        self._catalog_file = _sqlite_file(self.db.sql)
         self._catalog_identity = _file_identity(self._catalog_file) if self._catalog_file else None
         if self._catalog_file is not None:
-            event.listen(self.engine, "begin", self._guard_catalog_file, insert=True)  # before BEGIN runs
+            event.listen(self.db.sql, "begin", self._guard_catalog_file, insert=True)  # before BEGIN runs
         self.unlisted: list[tuple[str, int]] = []  # version folders the catalog does not list (kept)
         self.kept: list[str] = []  # other entries the sweep could not prove its own (kept)
         self._loader: ModelLoader = model_loader or _engine_loader
         self._cache = LRUCache(settings.cache_models, settings.cache_bytes)
-        self._ttl = float(catalog_ttl_s)
         self._lock = threading.Lock()
         self._rows: dict[tuple[str, int], tuple[dict, float]] = {}
         self._live: dict[str, tuple[int | None, float]] = {}
-        self.jobs = Jobs(self)
-        self.keys = Keys(self)
+        self.jobs = Jobs(self.db, self.root / JOBS_DIR)
+        self.keys = Keys(self.db)
         self.last_sweep = self.sweep()
 
     # ------------------------------------------------------------------------------------------------
     # lifecycle
 
     def close(self) -> None:
-        self.engine.dispose()
+        self.db.sql.dispose()
 
     def __enter__(self) -> "Store":
         return self
@@ -222,7 +220,7 @@ class Store:
         return checks
 
     def _read_catalog_id(self) -> str:
-        with catalog_errors("reading the catalog's id", self.catalog), read_txn(self.engine) as conn:
+        with self.db.errors("reading the catalog's id"), self.db.read() as conn:
             value = conn.execute(select(catalog_info_t.c.value).where(catalog_info_t.c.key == "catalog_id")).scalar()
         if not value:
             raise StorageFailure(f"the catalog at {self.catalog} has no catalog id; it was not made by Tikhon's "
@@ -234,7 +232,7 @@ class Store:
         if self._catalog_file is not None:
             self._guard_catalog_file(None)
         try:
-            with catalog_errors("a readiness query", self.catalog), read_txn(self.engine) as conn:
+            with self.db.errors("a readiness query"), self.db.read() as conn:
                 value = conn.execute(select(catalog_info_t.c.value)
                                      .where(catalog_info_t.c.key == "catalog_id")).scalar()
         except StorageFailure as exc:
@@ -348,8 +346,7 @@ class Store:
                 _fault_point("staged")
                 renamed = False
                 try:
-                    with catalog_errors(f"publishing a version of {name!r}", self.catalog), \
-                            write_txn(self.engine) as conn:
+                    with self.db.errors(f"publishing a version of {name!r}"), self.db.write() as conn:
                         lock_name(conn, name)
                         if job_id is not None and holder is not None:
                             self.jobs.check_holder(conn, job_id, holder, name)
@@ -457,14 +454,14 @@ class Store:
         return v
 
     def _fresh(self, stamp: float) -> bool:
-        return time.monotonic() - stamp < self._ttl
+        return self.db.fresh(stamp)
 
     def _version_row(self, name: str, version: int) -> dict[str, Any]:
         with self._lock:
             hit = self._rows.get((name, version))
         if hit is not None and self._fresh(hit[1]):
             return hit[0]
-        with catalog_errors(f"reading version {version} of {name!r}", self.catalog), read_txn(self.engine) as conn:
+        with self.db.errors(f"reading version {version} of {name!r}"), self.db.read() as conn:
             row = conn.execute(select(versions_t).where(and_(
                 versions_t.c.model_name == name, versions_t.c.version == version))).first()
             last = None
@@ -531,7 +528,7 @@ class Store:
             hit = self._live.get(name)
         if hit is not None and self._fresh(hit[1]):
             return hit[0]
-        with catalog_errors(f"reading the live version of {name!r}", self.catalog), read_txn(self.engine) as conn:
+        with self.db.errors(f"reading the live version of {name!r}"), self.db.read() as conn:
             live = conn.execute(select(models_t.c.live_version).where(models_t.c.name == name)).scalar()
         with self._lock:
             self._live[name] = (live, time.monotonic())
@@ -553,7 +550,7 @@ class Store:
         )
         if name is not None:
             q = q.where(models_t.c.name == name)
-        with catalog_errors("listing models", self.catalog), read_txn(self.engine) as conn:
+        with self.db.errors("listing models"), self.db.read() as conn:
             rows = conn.execute(q).all()
         return [
             {
@@ -571,14 +568,14 @@ class Store:
         validate_name(name)
         found = self._models(name)
         if not found:
-            with catalog_errors(f"reading the model {name!r}", self.catalog), read_txn(self.engine) as conn:
+            with self.db.errors(f"reading the model {name!r}"), self.db.read() as conn:
                 raise unknown_model(conn, name)
         return found[0]
 
     def list_versions(self, name: str) -> list[dict[str, Any]]:
         """The versions of ``name`` that exist (deleted ones are left out), oldest first."""
         validate_name(name)
-        with catalog_errors(f"listing versions of {name!r}", self.catalog), read_txn(self.engine) as conn:
+        with self.db.errors(f"listing versions of {name!r}"), self.db.read() as conn:
             m = self._model_row(conn, name)
             rows = conn.execute(
                 select(versions_t)
@@ -657,7 +654,7 @@ class Store:
                               errors=[{"field": "reason", "value": repr(reason), "message": "must be a string"}])
         if details is not None:
             artifact.dump_json(details, what="the history details")
-        with catalog_errors(f"setting the live version of {name!r}", self.catalog), write_txn(self.engine) as conn:
+        with self.db.errors(f"setting the live version of {name!r}"), self.db.write() as conn:
             lock_name(conn, name)
             m = self._model_row(conn, name)
             row = conn.execute(select(versions_t.c.deleted_at).where(and_(
@@ -700,7 +697,7 @@ class Store:
     def history(self, name: str) -> list[dict[str, Any]]:
         """Every change of the live version of ``name``, oldest first."""
         validate_name(name)
-        with catalog_errors(f"reading the history of {name!r}", self.catalog), read_txn(self.engine) as conn:
+        with self.db.errors(f"reading the history of {name!r}"), self.db.read() as conn:
             self._model_row(conn, name)
             rows = conn.execute(select(history_t).where(history_t.c.model_name == name)
                                 .order_by(history_t.c.id)).all()
@@ -720,7 +717,7 @@ class Store:
         version = self._check_version(name, version)
         if details is not None:
             artifact.dump_json(details, what="the history details")
-        with catalog_errors(f"recording a decision for {name!r}", self.catalog), write_txn(self.engine) as conn:
+        with self.db.errors(f"recording a decision for {name!r}"), self.db.write() as conn:
             lock_name(conn, name)
             m = self._model_row(conn, name)
             now = utcnow()
@@ -763,7 +760,7 @@ class Store:
         return _prune_choice(keep)(live, alive)
 
     def _delete(self, name: str, choose: Callable[[int | None, list[int]], list[int]], *, explicit: int | None) -> list[int]:
-        with catalog_errors(f"deleting versions of {name!r}", self.catalog), write_txn(self.engine) as conn:
+        with self.db.errors(f"deleting versions of {name!r}"), self.db.write() as conn:
             lock_name(conn, name)
             m = self._model_row(conn, name)
             rows = conn.execute(select(versions_t.c.version, versions_t.c.deleted_at)
@@ -857,7 +854,7 @@ class Store:
                 continue
             name = entry.name
             folders = self._version_folders(name)
-            with catalog_errors(f"reading versions of {name!r}", self.catalog), read_txn(self.engine) as conn:
+            with self.db.errors(f"reading versions of {name!r}"), self.db.read() as conn:
                 known = {r.version: r.deleted_at for r in conn.execute(
                     select(versions_t.c.version, versions_t.c.deleted_at).where(versions_t.c.model_name == name))}
             found = []
@@ -872,7 +869,7 @@ class Store:
             if not found or dry_run:
                 out["registered"].extend({"name": name, "version": v} for v, _ in found)
                 continue
-            with catalog_errors(f"registering versions of {name!r}", self.catalog), write_txn(self.engine) as conn:
+            with self.db.errors(f"registering versions of {name!r}"), self.db.write() as conn:
                 lock_name(conn, name)
                 now = utcnow()
                 m = conn.execute(select(models_t.c.last_version).where(models_t.c.name == name)).first()
@@ -932,7 +929,7 @@ class Store:
         if not self.unlisted:
             return []
         names = sorted({n for n, _ in self.unlisted})
-        with catalog_errors("checking unlisted version folders", self.catalog), read_txn(self.engine) as conn:
+        with self.db.errors("checking unlisted version folders"), self.db.read() as conn:
             listed = set(conn.execute(select(versions_t.c.model_name, versions_t.c.version)
                                       .where(versions_t.c.model_name.in_(names))).tuples())
         still = [(n, v) for n, v in self.unlisted
@@ -989,7 +986,7 @@ class Store:
         folders = self._version_folders(name)
         if not folders:
             return 0, []
-        with catalog_errors(f"sweeping {name!r}", self.catalog), read_txn(self.engine) as conn:
+        with self.db.errors(f"sweeping {name!r}"), self.db.read() as conn:
             rows = conn.execute(select(versions_t.c.version, versions_t.c.deleted_at)
                                 .where(versions_t.c.model_name == name)).all()
         listed = {r.version for r in rows if r.deleted_at is None}
@@ -997,7 +994,7 @@ class Store:
             layout.clear_markers(folders[v])  # a publish that died after its commit, a delete that failed
         if set(folders) <= listed:
             return 0, []
-        with catalog_errors(f"sweeping {name!r}", self.catalog), write_txn(self.engine) as conn:
+        with self.db.errors(f"sweeping {name!r}"), self.db.write() as conn:
             lock_name(conn, name)
             rows = conn.execute(select(versions_t.c.version, versions_t.c.deleted_at)
                                 .where(versions_t.c.model_name == name)).all()
@@ -1045,10 +1042,10 @@ def unknown_model(conn: Any, name: str) -> NotFound:
 
 def _summary_of(body: Any) -> Any:
     """The small parts of the manifest body kept in the catalog row for listings: the engine's chosen
-    point and CV summary (``chosen``, ``cv_summary``) or a generic ``summary``."""
+    point and CV summary (``chosen``, ``cv_summary``)."""
     if not isinstance(body, Mapping):
         return None
-    summary = {k: body[k] for k in ("chosen", "cv_summary", "summary") if isinstance(body.get(k), Mapping)}
+    summary = {k: body[k] for k in ("chosen", "cv_summary") if isinstance(body.get(k), Mapping)}
     if summary and len(artifact.dump_json(summary, what="the summary")) <= 16384:
         return summary
     return None

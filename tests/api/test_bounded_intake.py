@@ -75,7 +75,7 @@ def test_an_upload_is_streamed_to_disk_and_read_from_the_file(svc, kit, monkeypa
 # the answers must be the same problem details as when the body is read in the API process.
 
 def _spy_rows(monkeypatch) -> list[int]:
-    from service.api import tables
+    from service import tables
 
     calls: list[int] = []
     real = tables.from_rows
@@ -95,7 +95,8 @@ def pair(tmp_path_factory, kit):
 def test_a_large_json_body_is_read_staged_and_checked_in_an_intake_process(pair, kit, monkeypatch):
     import numpy as np
 
-    from service.api import intake, tables
+    from service import tables
+    from service.api import intake
 
     (base, store, settings), _ = pair
     table = kit.pump_table(4_000, seed=4)

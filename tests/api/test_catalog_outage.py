@@ -225,7 +225,7 @@ def test_unreachable_catalog_is_503_but_a_full_disk_stays_507():
 
     from sqlalchemy.exc import OperationalError
 
-    from service.api.problems import status_for
+    from service.problems import status_for
     from service.store.util import catalog_errors
 
     def raised(orig):

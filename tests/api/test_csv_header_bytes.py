@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import pytest
 
-from service.api import tables
+from service import tables
 from service.errors import InvalidData
 
 

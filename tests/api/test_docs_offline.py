@@ -62,7 +62,7 @@ def test_docs_page_and_its_assets_come_from_this_server(tmp_path, kit):
 
 
 def test_json_logs_carry_no_terminal_colour_codes():
-    from service.api.logs import JsonFormatter
+    from service.logs import JsonFormatter
 
     record = logging.LogRecord("uvicorn.error", logging.INFO, __file__, 1, "Uvicorn running on %s (Press CTRL+C)",
                                ("\x1b[1mhttp://127.0.0.1:8000\x1b[0m",), None)

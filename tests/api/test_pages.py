@@ -107,9 +107,9 @@ def test_model_page_shows_choice_warnings_figures_and_history(open_service):
     assert imgs == [f"/v1/models/pump-page/versions/2/plots/{k}" for k in ("cv", "path", "residuals")] + [
         f"/v1/models/pump-page/plots/{k}?version=2" for k in ("drift", "outside-range", "live-error")] + [
         "/v1/models/pump-page/plots/history"]
-    assert manifest["warnings"] and all(html.escape(w) in r.text for w in manifest["warnings"])
-    # Promotions with their reasons, escaped: the markup in the reason is shown, never run.
-    assert html.escape(EVIL, quote=True) in r.text
+    assert manifest["warnings"] and all(w in html.unescape(r.text) for w in manifest["warnings"])
+    # Promotions with their reasons, escaped: the markup in the reason is shown as text, never run.
+    assert EVIL in html.unescape(r.text)
     assert "<script>alert" not in r.text
     assert "the model had no live version" in r.text  # the worker's reason for v1
 
@@ -127,7 +127,7 @@ def test_model_page_warns_about_an_edge_of_the_grid(open_service):
         page = httpx.get(f"{base}/models/pump-page?version={v}").text
         current = [a["href"] for t, a in parse(page).tags if t == "a" and a.get("aria-current") == "page"]
         assert current == [f"/models/pump-page?version={v}"]
-        assert [w for w in manifest["warnings"] if html.escape(w) in page] == manifest["warnings"]
+        assert [w for w in manifest["warnings"] if w in html.unescape(page)] == manifest["warnings"]
         if not manifest["warnings"]:
             assert "None: the chosen point lies inside the grid" in page
 
@@ -136,7 +136,7 @@ def test_unknown_model_or_version_is_an_html_404(open_service):
     base, _ = open_service
     r = httpx.get(f"{base}/models/no-such-pump")
     assert r.status_code == 404 and r.headers["content-type"].startswith("text/html")
-    assert "no model named &#x27;no-such-pump&#x27; exists" in r.text and "closest" not in r.text
+    assert "no model named 'no-such-pump' exists" in html.unescape(r.text) and "closest" not in r.text
     r = httpx.get(f"{base}/models/pump-page?version=9")
     assert r.status_code == 404 and "has no version 9; it has 1, 2" in r.text
     r = httpx.get(f"{base}/models/pump-page?version=two")

@@ -4,13 +4,14 @@ page's own terms, and history-figure ticks that all read the same way."""
 
 from __future__ import annotations
 
+import html
 import math
 import re
 import statistics
 
 import httpx
 
-from service.api import plots
+from service.api.rendering import figures as plots
 
 
 def test_model_page_history_decisions_deleted_versions_and_labels(tmp_path, kit):
@@ -32,7 +33,7 @@ def test_model_page_history_decisions_deleted_versions_and_labels(tmp_path, kit)
         # newest first: v2 was not made live (promote: never), v1 went live
         assert cells[1:4] == ["v2", "not made live", "v1 (unchanged)"]
         assert cells[7:10] == ["v1", "went live", "— → v1"]
-        assert "promote is &#x27;never&#x27;" in hist or "promote is 'never'" in hist
+        assert "promote is 'never'" in html.unescape(hist)
         assert "Promotions" not in page
         job_row = page[page.index(f'data-job="{ids[1]}"'):]
         job_row = job_row[:job_row.index("</tr>")]

@@ -16,7 +16,7 @@ import httpx
 import numpy as np
 import pytest
 
-from service.api import plots
+from service.api.rendering import figures as plots
 
 SVG_NS = "{http://www.w3.org/2000/svg}"
 UNITS = {"energy_kwh": "kWh", "flow_lps": "L/s", "head_m": "m"}

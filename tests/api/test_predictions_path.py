@@ -3,7 +3,7 @@ layer a caller sees: key checks and their problem details, request ids, the acce
 metrics by route template, CORS headers, the router's 405 for other methods and the OpenAPI document.
 
 The access log line is written without a ``LogRecord`` when logging is set up as ``tikhon serve`` sets it
-(``service.api.logs.line``); it is the line ``logging`` writes, field for field."""
+(``service.logs.line``); it is the line ``logging`` writes, field for field."""
 
 from __future__ import annotations
 
@@ -15,7 +15,7 @@ import httpx
 import numpy as np
 import pytest
 
-from service.api import logs
+from service import logs
 from service.engine import tune
 
 NAME = "pump-lean"
@@ -36,7 +36,7 @@ def lean(tmp_path_factory, kit):
 
 @pytest.fixture
 def access_lines():
-    """Capture the JSON log lines as ``tikhon serve`` configures them (service.api.logs.configure)."""
+    """Capture the JSON log lines as ``tikhon serve`` configures them (service.logs.configure)."""
     buf = io.StringIO()
     logs.configure("info", stream=buf)
     try:

@@ -13,7 +13,8 @@ from fastapi import FastAPI, Request
 from pydantic import BaseModel
 
 from service import errors as E
-from service.api import problems
+from service import problems
+from service.api import exception_handlers
 from service.api.middleware import BodyLimit, RequestContext
 from service.api.metrics import ApiMetrics
 
@@ -27,7 +28,7 @@ class Payload(BaseModel):
 
 def build_app() -> FastAPI:
     app = FastAPI()
-    problems.install(app)
+    exception_handlers.install(app)
 
     @app.post("/typed")
     async def typed(body: Payload):

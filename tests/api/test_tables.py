@@ -9,7 +9,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from service.api import tables as T
+from service import tables as T
 from service.errors import BudgetExceeded, InvalidData
 
 

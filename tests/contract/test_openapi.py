@@ -157,7 +157,8 @@ def _prop(doc, name: str, member: str) -> dict[str, Any]:
 
 
 def test_every_closed_set_is_an_enum_of_the_values_the_server_accepts(toured):
-    from service.api import auth, levels, plots
+    from service.api import auth, levels
+    from service.api.rendering import figures as plots
     from service.engine import spec as engine_spec
 
     _, _, doc, answers, _ = toured

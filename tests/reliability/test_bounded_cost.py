@@ -108,7 +108,7 @@ def test_labels_under_the_cap_cost_per_label_not_per_longest_label():
     # 50,000 x 256 x 4 bytes = 51 MB per copy, in the JSON, CSV and training paths alike.
     import tracemalloc
 
-    from service.api import tables
+    from service import tables
     from service.engine.table import categorical_column
 
     n = 50_000
@@ -483,7 +483,7 @@ def test_a_streamed_scan_stops_at_the_first_batch_past_the_level_limit(tmp_path,
 def test_a_streamed_job_uses_the_servers_level_limit(tmp_path, live_service):
     import time
 
-    from service.api.problems import problem_from_error
+    from service.problems import problem_from_error
     from service.engine import parse_spec
     from service.engine.tune import Budget, prepare
     from service.errors import BudgetExceeded

@@ -73,7 +73,7 @@ def test_recorded_job_problems_and_readiness_are_redacted(tmp_path):
     """A problem a worker recorded with a full path (from a library's message), and the readiness answer,
     pass through the same redaction at the HTTP boundary."""
     from service import paths
-    from service.api import problems
+    from service import problems
     from service.settings import Settings
 
     settings = Settings(store=tmp_path / "st", data_dir=tmp_path / "dt")

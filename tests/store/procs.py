@@ -41,7 +41,7 @@ def linear_loader(body: dict, arrays: dict) -> LinearModel:
 
 def linear_artifact(n_terms: int = 4, seed: int = 0, intercept: float = 0.5) -> tuple[dict, dict]:
     rng = np.random.default_rng(seed)
-    body = {"intercept": intercept, "summary": {"terms": n_terms, "seed": seed}, "spec": {"basis": "linear"}}
+    body = {"intercept": intercept, "cv_summary": {"terms": n_terms, "seed": seed}, "spec": {"basis": "linear"}}
     return body, {"coef": rng.normal(size=n_terms), "scale": np.ones(n_terms)}
 
 

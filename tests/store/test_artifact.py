@@ -21,7 +21,7 @@ def _folder(store, name, version):
 
 
 def _set_catalog_sha(store, name, version, sha):
-    with store.engine.begin() as conn:
+    with store.db.sql.begin() as conn:
         conn.execute(sa.update(versions_t).where(sa.and_(versions_t.c.model_name == name,
                                                          versions_t.c.version == version))
                      .values(manifest_sha256=sha))

@@ -13,7 +13,7 @@ from service.store.schema import jobs as jobs_t
 
 def _age_heartbeat(store, job_id, seconds):
     """Move a job's heartbeat into the past, as if its worker had gone silent that long ago."""
-    with store.engine.begin() as conn:
+    with store.db.sql.begin() as conn:
         hb = conn.execute(sa.select(jobs_t.c.heartbeat_at).where(jobs_t.c.id == job_id)).scalar()
         from datetime import timedelta
         conn.execute(sa.update(jobs_t).where(jobs_t.c.id == job_id).values(heartbeat_at=hb - timedelta(seconds=seconds)))
@@ -171,7 +171,7 @@ def test_unfinished_job_folder_survives_sweep_and_finished_one_does_not(store):
     folder = store.root / "_jobs" / job["id"]
     Store(store.settings).close()  # start-up sweep of another process
     assert folder.exists()
-    with store.engine.begin() as conn:  # a job that ended without its folder being removed (crash)
+    with store.db.sql.begin() as conn:  # a job that ended without its folder being removed (crash)
         conn.execute(sa.update(jobs_t).where(jobs_t.c.id == job["id"]).values(state="failed"))
     assert Store(store.settings).last_sweep["job_folders"] == 1
     assert not folder.exists()

@@ -34,7 +34,7 @@ def test_create_verify_revoke(store):
 
 def test_only_the_hash_is_stored(store):
     key_id, secret = store.keys.create(["admin"], "ops")
-    with store.engine.connect() as conn:
+    with store.db.sql.connect() as conn:
         row = conn.execute(sa.select(keys_t).where(keys_t.c.key_id == key_id)).one()
     assert row.secret_sha256 == hashlib.sha256(secret.encode()).hexdigest()
     assert secret.split("_", 2)[2] not in str(tuple(row))

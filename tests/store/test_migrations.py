@@ -19,17 +19,17 @@ def test_schema_head_constant_is_alembics_head():
 
 
 def test_migrated_schema_matches_the_code(store):
-    with store.engine.connect() as conn:
+    with store.db.sql.connect() as conn:
         ctx = MigrationContext.configure(conn, opts={"version_table": VERSION_TABLE, "compare_type": True})
         diff = compare_metadata(ctx, metadata)
     assert diff == []
-    with store.engine.connect() as conn:
+    with store.db.sql.connect() as conn:
         assert conn.execute(sa.text(f"SELECT version_num FROM {VERSION_TABLE}")).scalar() == head_revision()
 
 
 def test_downgrade_to_nothing_and_back(store, kit):
     store.publish("m", *kit.linear_artifact())
-    engine = store.engine
+    engine = store.db.sql
     with write_txn(engine) as conn:
         cfg = alembic_config()
         cfg.attributes["connection"] = conn
@@ -50,7 +50,7 @@ def test_downgrade_to_nothing_and_back(store, kit):
 
 
 def test_a_catalog_from_a_newer_release_is_refused(store):
-    with store.engine.begin() as conn:
+    with store.db.sql.begin() as conn:
         conn.execute(sa.text(f"UPDATE {VERSION_TABLE} SET version_num = '9999'"))
     store.close()
     with pytest.raises(StorageFailure, match="schema revision '9999'.*upgrade this one"):

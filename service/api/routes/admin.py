@@ -24,8 +24,8 @@ from pydantic import BaseModel, ValidationError
 from service.api import answers as A, auth
 from service.api.render import read_json
 from service.errors import InvalidData
+from service.api.dependencies import ModelName, StoreDep
 from service.api.schemas import KeyRequest, PruneRequest, schema_ref
-from service.store.names import validate_name
 
 router = APIRouter(prefix="/v1", tags=["admin"])
 
@@ -47,16 +47,15 @@ def _parse(model: type[BaseModel], raw: Any) -> Any:
 
 @router.get("/keys", summary="API keys (never their secrets)", operation_id="listKeys",
             responses=A.document(A.ApiKeyList, "Every key, active or revoked."), **auth.ADMIN)
-def list_keys(request: Request) -> Response:
-    return A.reply(A.ApiKeyList, {"keys": request.app.state.store.keys.list()})
+def list_keys(request: Request, store: StoreDep) -> Response:
+    return A.reply(A.ApiKeyList, {"keys": store.keys.list()})
 
 
 @router.post("/keys", summary="Create an API key; its secret is shown once", status_code=201, operation_id="createKey",
              responses=A.document(A.NewApiKey, "The new key with its secret.", 201),
              openapi_extra={**auth.ADMIN["openapi_extra"], **_body_doc(KeyRequest)})
-async def create_key(request: Request) -> Response:
+async def create_key(request: Request, store: StoreDep) -> Response:
     body = _parse(KeyRequest, await read_json(request))
-    store = request.app.state.store
 
     def make() -> dict[str, Any]:
         key_id, secret = store.keys.create(body.scopes, body.label)
@@ -71,8 +70,8 @@ async def create_key(request: Request) -> Response:
 
 @router.delete("/keys/{key_id}", summary="Revoke an API key (idempotent); never the last admin key", operation_id="revokeKey",
                responses=A.document(A.ApiKey, "The key, revoked."), **auth.ADMIN)
-def revoke_key(request: Request, key_id: str = Path(..., max_length=64)) -> Response:
-    entry = request.app.state.store.keys.revoke(key_id, keep_last_admin=True)
+def revoke_key(request: Request, store: StoreDep, key_id: str = Path(..., max_length=64)) -> Response:
+    entry = store.keys.revoke(key_id, keep_last_admin=True)
     request.app.state.gate.forget()
     return A.reply(A.ApiKey, entry)
 
@@ -80,10 +79,8 @@ def revoke_key(request: Request, key_id: str = Path(..., max_length=64)) -> Resp
 @router.post("/models/{name}/prune", summary="Delete all versions except the live one and the newest 'keep'",
              operation_id="pruneVersions", responses=A.document(A.PruneResult, "What was (or would be) deleted."),
              openapi_extra={**auth.ADMIN["openapi_extra"], **_body_doc(PruneRequest)})
-async def prune(request: Request, name: str = Path(..., description="Model name.")) -> Response:
-    validate_name(name)
+async def prune(request: Request, store: StoreDep, name: ModelName) -> Response:
     body = _parse(PruneRequest, await read_json(request))
-    store = request.app.state.store
 
     def run() -> dict[str, Any]:
         deleted = store.prune_plan(name, body.keep) if body.dry_run else store.prune(name, body.keep)

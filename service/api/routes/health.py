@@ -11,7 +11,8 @@ from fastapi import APIRouter, Depends, Request
 from fastapi.responses import HTMLResponse, Response
 from prometheus_client import CONTENT_TYPE_LATEST
 
-from service.api import answers as A, auth, problems
+from service import problems
+from service.api import answers as A, auth, exception_handlers
 from service.errors import NotFound
 
 router = APIRouter(tags=["health"])
@@ -47,7 +48,7 @@ def readyz(request: Request):
         detail="The service cannot take work: " + "; ".join(failing.values()) + advice + ".",
         instance="/readyz", checks=checks,
     )
-    return problems.problem_response(body, {"Retry-After": str(problems.CATALOG_RETRY_AFTER_S)})
+    return exception_handlers.problem_response(body, {"Retry-After": str(problems.CATALOG_RETRY_AFTER_S)})
 
 
 @router.get("/metrics", summary="Prometheus text format (metrics or admin scope once keys exist)",

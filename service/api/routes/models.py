@@ -12,23 +12,18 @@ from fastapi.responses import Response
 
 from service.api import answers as A, auth, monitor
 from service.api.render import read_json
+from service.api.dependencies import ModelName, StoreDep
 from service.api.schemas import LiveRequest, schema_ref
 from service.engine.export import export_json, sklearn_pipeline
 from service.errors import Conflict, IntegrityFailure, InvalidData
-from service.store.names import validate_name
 from service.store.schema import VERSION_MAX
 
 router = APIRouter(prefix="/v1", tags=["models"])
 
-NamePath = Path(..., description="Model name: 1-63 of a-z 0-9 _ . - starting with a letter or digit.")
 VersionPath = Path(..., ge=1, le=VERSION_MAX, description="Version number (1, 2, ...).")
 
 # Large parts of the manifest have their own routes; the metadata route links to them instead.
 _SEPARATE = {"cv_table": "cv", "path": "path"}
-
-
-def _store(request: Request):
-    return request.app.state.store
 
 
 def _engine_body(manifest: dict[str, Any]) -> dict[str, Any]:
@@ -58,16 +53,14 @@ def version_metadata(name: str, version: int, manifest: dict[str, Any], row: dic
 
 
 @router.get("/models", summary="List models with their live version", operation_id="listModels",
-            responses=A.document(A.ModelList, "Every model with its live and latest version."), **auth.READ)
-def list_models(request: Request) -> Response:
-    return A.reply(A.ModelList, {"models": _store(request).list_models()})
+            responses=A.document(A.ModelList, "Every model with its live and newest version."), **auth.READ)
+def list_models(request: Request, store: StoreDep) -> Response:
+    return A.reply(A.ModelList, {"models": store.list_models()})
 
 
 @router.get("/models/{name}", summary="One model: live version, versions, newest jobs", operation_id="getModel",
             responses=A.document(A.ModelDetail, "The model, its versions and its live version's metadata."), **auth.READ)
-def get_model(request: Request, name: str = NamePath) -> Response:
-    validate_name(name)
-    store = _store(request)
+def get_model(request: Request, store: StoreDep, name: ModelName) -> Response:
     out = dict(store.get_model(name))
     versions = store.list_versions(name)
     live = out.get("live_version")
@@ -87,18 +80,14 @@ def get_model(request: Request, name: str = NamePath) -> Response:
 
 @router.get("/models/{name}/versions", summary="The versions of a model, oldest first", operation_id="listVersions",
             responses=A.document(A.VersionList, "The versions that exist (deleted ones are left out)."), **auth.READ)
-def list_versions(request: Request, name: str = NamePath) -> Response:
-    validate_name(name)
-    store = _store(request)
+def list_versions(request: Request, store: StoreDep, name: ModelName) -> Response:
     versions = store.list_versions(name)
     return A.reply(A.VersionList, {"name": name, "live_version": store.live_version(name), "versions": versions})
 
 
 @router.get("/models/{name}/versions/{version}", summary="Full metadata of one version", operation_id="getVersion",
             responses=A.document(A.VersionMetadata, "The version's manifest less its CV table and path."), **auth.READ)
-def get_version(request: Request, name: str = NamePath, version: int = VersionPath) -> Response:
-    validate_name(name)
-    store = _store(request)
+def get_version(request: Request, store: StoreDep, name: ModelName, version: int = VersionPath) -> Response:
     manifest = store.get_manifest(name, version, cv_table=False)
     row = store.get_version(name, version)
     out = version_metadata(name, version, manifest, row)
@@ -112,7 +101,7 @@ CV_PAGE_MAX = 10_000
 @router.get("/models/{name}/versions/{version}/cv", summary="The CV table: best row per basis setting, or pages of all rows",
             operation_id="getCvTable", responses=A.document(A.CvTable, "Rows of the CV table and the chosen point."),
             **auth.READ)
-def get_cv(request: Request, name: str = NamePath, version: int = VersionPath,
+def get_cv(request: Request, store: StoreDep, name: ModelName, version: int = VersionPath,
            view: A.CvView = Query(
                A.CvView.best_per_basis,
                description="best_per_basis: the best row of each basis setting (over strengths "
@@ -123,8 +112,6 @@ def get_cv(request: Request, name: str = NamePath, version: int = VersionPath,
 
     from service.store import artifact
 
-    validate_name(name)
-    store = _store(request)
     manifest = store.get_manifest(name, version, cv_table=False)
     body = _engine_body(manifest)
     columns, meta = store.cv_columns(name, version, manifest)
@@ -155,9 +142,7 @@ def get_cv(request: Request, name: str = NamePath, version: int = VersionPath,
 
 @router.get("/models/{name}/versions/{version}/path", summary="Regularization path of the chosen basis setting",
             operation_id="getPath", responses=A.document(A.PathAnswer, "Coefficients against penalty strength."), **auth.READ)
-def get_path(request: Request, name: str = NamePath, version: int = VersionPath) -> Response:
-    validate_name(name)
-    store = _store(request)
+def get_path(request: Request, store: StoreDep, name: ModelName, version: int = VersionPath) -> Response:
     manifest = store.get_manifest(name, version, cv_table=False)
     body = _engine_body(manifest)
     return A.reply(A.PathAnswer, {"name": name, "version": version, "chosen": body.get("chosen"),
@@ -171,13 +156,11 @@ def get_path(request: Request, name: str = NamePath, version: int = VersionPath)
                              "model": A.ExportDocument,
                              "content": {"application/octet-stream": {"schema": {"type": "string", "format": "binary"}}}}},
             **auth.READ)
-def export_version(request: Request, name: str = NamePath, version: int = VersionPath,
+def export_version(request: Request, store: StoreDep, name: ModelName, version: int = VersionPath,
                    format: Literal["json", "sklearn"] = Query(
                        "json", description="json: the model's formula as numbers (see the README's evaluator); "
                                            "sklearn: a joblib file of a scikit-learn Pipeline (loading it runs code: "
                                            "load only exports from your own server).")) -> Response:
-    validate_name(name)
-    store = _store(request)
     loaded = store.load(name, version)  # verified against the catalog's checksums
     if format == "json":
         body = export_json(loaded.model)
@@ -197,8 +180,7 @@ def export_version(request: Request, name: str = NamePath, version: int = Versio
     openapi_extra={**auth.ADMIN["openapi_extra"], "requestBody": {
         "required": True, "content": {"application/json": {"schema": schema_ref(LiveRequest)}}}},
 )
-async def set_live(request: Request, name: str = NamePath) -> Response:
-    validate_name(name)
+async def set_live(request: Request, store: StoreDep, name: ModelName) -> Response:
     raw = await read_json(request)
     try:
         body = LiveRequest.model_validate(raw)
@@ -206,7 +188,6 @@ async def set_live(request: Request, name: str = NamePath) -> Response:
         raise _invalid_body(exc, "LiveRequest") from None
     from anyio import to_thread
 
-    store = _store(request)
 
     def change() -> Any:
         try:
@@ -232,9 +213,7 @@ async def set_live(request: Request, name: str = NamePath) -> Response:
 
 @router.get("/models/{name}/history", summary="Every change of the live version", operation_id="getHistory",
             responses=A.document(A.History, "Every decision about the live version, oldest first."), **auth.READ)
-def get_history(request: Request, name: str = NamePath) -> Response:
-    validate_name(name)
-    store = _store(request)
+def get_history(request: Request, store: StoreDep, name: ModelName) -> Response:
     entries = [decision_view(h) for h in store.history(name)]
     return A.reply(A.History, {"name": name, "history": entries})
 
@@ -253,9 +232,8 @@ def decision_view(entry: dict[str, Any]) -> dict[str, Any]:
 
 @router.delete("/models/{name}/versions/{version}", summary="Delete a version that is not live", operation_id="deleteVersion",
                status_code=204, responses={204: {"description": "Deleted."}}, **auth.ADMIN)
-def delete_version(request: Request, name: str = NamePath, version: int = VersionPath) -> Response:
-    validate_name(name)
-    _store(request).delete_version(name, version)
+def delete_version(request: Request, store: StoreDep, name: ModelName, version: int = VersionPath) -> Response:
+    store.delete_version(name, version)
     request.app.state.models.forget(name, version)
     return Response(status_code=204)
 

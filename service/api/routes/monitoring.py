@@ -17,12 +17,11 @@ from service.api import answers as A, auth, monitor, tables
 from service.api.render import parse_json
 from service.errors import InvalidData
 from service.store.monitor import HOUR, bucket_of
-from service.store.names import validate_name
+from service.api.dependencies import ModelName
 from service.store.schema import VERSION_MAX
 
 router = APIRouter(prefix="/v1", tags=["monitoring"])
 
-NamePath = Path(..., description="Model name.")
 VersionQuery = Query(None, ge=1, le=VERSION_MAX, description="Version to report on (default: the live version).")
 SinceQuery = Query(None, description="Start: an ISO 8601 time or a span back from now (90m, 36h, 7d). "
                    "Default: when the version was created.")
@@ -57,7 +56,6 @@ def _counts(request: Request, name: str, version: int, kind: str, t0: float, t1:
 def _report(request: Request, name: str, version: int | None, since: str | None, until: str | None,
             kind: str) -> dict[str, Any]:
     """The ``inputs`` or ``outcomes`` report of a version (default: live) over a window."""
-    validate_name(name)
     v = _version(request, name, version)
     t0, t1 = _window(request, name, v, since, until)
     body = request.app.state.store.get_manifest(name, v, cv_table=False).get("model") or {}
@@ -70,7 +68,7 @@ def _report(request: Request, name: str, version: int | None, since: str | None,
 @router.get("/models/{name}/inputs", summary="Input drift: recent inputs against the training distribution",
             operation_id="getInputs", responses=A.document(A.InputsReport, "PSI per input, rows outside the training range."),
             **auth.READ)
-def get_inputs(request: Request, name: str = NamePath, version: int | None = VersionQuery,
+def get_inputs(request: Request, name: ModelName, version: int | None = VersionQuery,
                since: str | None = SinceQuery, until: str | None = UntilQuery) -> Response:
     return A.reply(A.InputsReport, _report(request, name, version, since, until, "inputs"))
 
@@ -78,7 +76,7 @@ def get_inputs(request: Request, name: str = NamePath, version: int | None = Ver
 @router.get("/models/{name}/outcomes", summary="Real-world error of scored outcomes against the CV error",
             operation_id="getOutcomes", responses=A.document(A.OutcomesReport, "RMSE, MAE and 0.9 coverage, overall and per hour."),
             **auth.READ)
-def get_outcomes(request: Request, name: str = NamePath, version: int | None = VersionQuery,
+def get_outcomes(request: Request, name: ModelName, version: int | None = VersionQuery,
                  since: str | None = SinceQuery, until: str | None = UntilQuery) -> Response:
     return A.reply(A.OutcomesReport, _report(request, name, version, since, until, "outcomes"))
 
@@ -91,8 +89,7 @@ def get_outcomes(request: Request, name: str = NamePath, version: int | None = V
                                          "description": "Input rows with the target column's true value."},
                                 "version": {"type": "integer", "minimum": 1,
                                             "description": "Version to score (default: the live version)."}}}}}}})
-async def post_outcomes(request: Request, name: str = NamePath) -> Response:
-    validate_name(name)
+async def post_outcomes(request: Request, name: ModelName) -> Response:
     settings = request.app.state.settings
     raw = await request.body()
     body = parse_json(raw)
@@ -141,7 +138,8 @@ _FIGURE_RESPONSES = {200: {"description": "The figure; with 'Accept: application
 
 def _figure(request: Request, name: str, version: int | None, since: str | None, until: str | None, kind: str,
             fmt: str) -> Response:
-    from service.api import monitor_plots, plots
+    from service.api.rendering import figures as plots
+    from service.api.rendering import monitor_figures as monitor_plots
     from service.api.routes.plots import _image, _serialized, check_format, wants_json
 
     report = _report(request, name, version, since, until, "outcomes" if kind == "error" else "inputs")
@@ -168,20 +166,20 @@ from service.api.routes.plots import FormatQuery  # noqa: E402  (the PlotFormat 
 
 @router.get("/models/{name}/plots/drift", operation_id="plotDrift", summary="Figure: each input's training against recent shares, with PSI",
             response_class=Response, responses=_FIGURE_RESPONSES, **auth.READ)
-def plot_drift(request: Request, name: str = NamePath, version: int | None = VersionQuery, since: str | None = SinceQuery,
+def plot_drift(request: Request, name: ModelName, version: int | None = VersionQuery, since: str | None = SinceQuery,
                until: str | None = UntilQuery, format: str = FormatQuery) -> Response:
     return _figure(request, name, version, since, until, "drift", format)
 
 
 @router.get("/models/{name}/plots/outside-range", operation_id="plotOutsideRange", summary="Figure: share of rows outside the training range, per hour",
             response_class=Response, responses=_FIGURE_RESPONSES, **auth.READ)
-def plot_outside(request: Request, name: str = NamePath, version: int | None = VersionQuery, since: str | None = SinceQuery,
+def plot_outside(request: Request, name: ModelName, version: int | None = VersionQuery, since: str | None = SinceQuery,
                  until: str | None = UntilQuery, format: str = FormatQuery) -> Response:
     return _figure(request, name, version, since, until, "outside", format)
 
 
 @router.get("/models/{name}/plots/live-error", operation_id="plotLiveError", summary="Figure: real error of scored outcomes per hour against the CV band",
             response_class=Response, responses=_FIGURE_RESPONSES, **auth.READ)
-def plot_live_error(request: Request, name: str = NamePath, version: int | None = VersionQuery,
+def plot_live_error(request: Request, name: ModelName, version: int | None = VersionQuery,
                     since: str | None = SinceQuery, until: str | None = UntilQuery, format: str = FormatQuery) -> Response:
     return _figure(request, name, version, since, until, "error", format)

@@ -15,13 +15,15 @@ from fastapi import APIRouter, Path, Query, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 
 from service import paths
-from service.api import auth, pages
+from service.api import auth
+from service.api.rendering import pages
+from service.api.views import job_view
 from service.errors import Forbidden, NotFound, TikhonError, Unauthorized
 from service.store.names import validate_name
 
 router = APIRouter(include_in_schema=False)
 
-WEB = FilePath(__file__).resolve().parent.parent / "web"
+WEB = FilePath(__file__).resolve().parent.parent / "rendering" / "web"
 ASSETS = {"tikhon.css": "text/css; charset=utf-8", "tikhon.js": "text/javascript; charset=utf-8"}
 # The scopes of the /v1 read routes the pages show (predict, train, admin).
 READ_SCOPES = frozenset(s for req in auth.READ["openapi_extra"]["security"] for s in req[auth.SCHEME])
@@ -69,7 +71,7 @@ def _guarded(request: Request, render) -> Response:
     try:
         return _html(render(signed_in))
     except TikhonError as exc:  # the same message and status as the JSON problem, as a page
-        from service.api.problems import status_for
+        from service.problems import status_for
 
         return _html(pages.error_page(exc.title, paths.redact(str(exc)), signed_in=signed_in), status_for(exc))
 
@@ -107,8 +109,6 @@ def _deleted_versions(store, jobs: list[dict], shown: int = 15) -> set[tuple[str
 
 
 def _jobs(store, name: str | None) -> list[dict]:
-    from service.api.routes.trainings import job_view
-
     return [job_view(j) for j in store.jobs.list(name=name)]
 
 

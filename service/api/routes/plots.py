@@ -1,7 +1,7 @@
 """Figures of a version (CV error, regularization path, residuals) and of a model's history, as SVG or PNG.
 
 Thin routes: they read the verified manifest and arrays from the store and hand them to
-``service.api.plots``. Versions are immutable, so a rendered figure is kept in memory under
+``service.api.rendering.figures``. Versions are immutable, so a rendered figure is kept in memory under
 (name, version, manifest checksum, kind, format) and served again with an ``ETag``; the history figure
 is keyed by the model's versions, their checksums and its live-version history.
 """
@@ -16,14 +16,16 @@ from typing import Any, Callable
 from fastapi import APIRouter, Path, Query, Request
 from fastapi.responses import Response
 
-from service.api import answers as A, auth, figure_data, plots
+from service.api import answers as A, auth
+from service.api.rendering import figure_data
+from service.api.rendering import figures as plots
+from service.api.render import json_response
 from service.errors import InvalidData, NotFound
-from service.store.names import validate_name
+from service.api.dependencies import ModelName, StoreDep
 from service.store.schema import VERSION_MAX
 
 router = APIRouter(prefix="/v1", tags=["plots"])
 
-NamePath = Path(..., description="Model name.")
 VersionPath = Path(..., ge=1, le=VERSION_MAX, description="Version number (1, 2, ...).")
 # Read as text (check_format names the allowed values in its own message); documented as the PlotFormat enum
 # (service.api.app replaces the parameter's schema by a reference to it).
@@ -153,7 +155,6 @@ def _version_data(request: Request, name: str, version: int, kind: str) -> Respo
 
 
 def _version_plot(request: Request, name: str, version: int, kind: str, fmt: str) -> Response:
-    validate_name(name)
     if wants_json(request):
         return _version_data(request, name, version, kind)
     fmt = check_format(fmt)
@@ -194,7 +195,7 @@ def _version_plot(request: Request, name: str, version: int, kind: str, fmt: str
 @router.get("/models/{name}/versions/{version}/plots/cv", summary="Figure: CV error against penalty strength",
             operation_id="plotCv",
             response_class=Response, responses=_IMAGE_RESPONSES, **auth.READ)
-def plot_cv(request: Request, name: str = NamePath, version: int = VersionPath, format: str = FormatQuery) -> Response:
+def plot_cv(request: Request, name: ModelName, version: int = VersionPath, format: str = FormatQuery) -> Response:
     """One line per basis setting (and l1 ratio for the elastic net), ±1 standard error bands, the chosen
     point ringed and the one-standard-error choice marked when it differs."""
     return _version_plot(request, name, version, "cv", format)
@@ -203,7 +204,7 @@ def plot_cv(request: Request, name: str = NamePath, version: int = VersionPath, 
 @router.get("/models/{name}/versions/{version}/plots/path", summary="Figure: regularization path of the chosen setting",
             operation_id="plotPath",
             response_class=Response, responses=_IMAGE_RESPONSES, **auth.READ)
-def plot_path(request: Request, name: str = NamePath, version: int = VersionPath, format: str = FormatQuery) -> Response:
+def plot_path(request: Request, name: ModelName, version: int = VersionPath, format: str = FormatQuery) -> Response:
     """Coefficients of the standardized terms against penalty strength; the chosen strength is marked and the
     largest terms at it are named."""
     return _version_plot(request, name, version, "path", format)
@@ -212,7 +213,7 @@ def plot_path(request: Request, name: str = NamePath, version: int = VersionPath
 @router.get("/models/{name}/versions/{version}/plots/residuals", summary="Figure: out-of-fold residuals",
             operation_id="plotResiduals",
             response_class=Response, responses=_IMAGE_RESPONSES, **auth.READ)
-def plot_residuals(request: Request, name: str = NamePath, version: int = VersionPath,
+def plot_residuals(request: Request, name: ModelName, version: int = VersionPath,
                    format: str = FormatQuery) -> Response:
     """Out-of-fold predicted against observed, and residual against predicted with its mean per tenth."""
     return _version_plot(request, name, version, "residuals", format)
@@ -221,12 +222,10 @@ def plot_residuals(request: Request, name: str = NamePath, version: int = Versio
 @router.get("/models/{name}/plots/history", summary="Figure: CV error and chosen settings of every version",
             operation_id="plotHistory",
             response_class=Response, responses=_IMAGE_RESPONSES, **auth.READ)
-def plot_history(request: Request, name: str = NamePath, format: str = FormatQuery) -> Response:
+def plot_history(request: Request, store: StoreDep, name: ModelName, format: str = FormatQuery) -> Response:
     """Every version over time: the CV error of its chosen point (±1 SE) and its chosen strength and basis;
     the live version ringed, versions that were ever live filled."""
-    validate_name(name)
     fmt = check_format(format) if not wants_json(request) else "svg"
-    store = request.app.state.store
     versions = store.list_versions(name)  # NotFound for an unknown model
     history = store.history(name)
     live = next((v["version"] for v in versions if v.get("live")), None)

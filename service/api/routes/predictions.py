@@ -19,10 +19,11 @@ from fastapi import APIRouter, Request
 from fastapi.responses import Response
 
 from service.csvcells import number_cell, text_cell
-from service.api import auth, levels, tables
-from service.api.models import Served
-from service.api.render import parse_json
-from service.api.problems import UnsupportedMediaType
+from service import tables
+from service.api import auth, levels
+from service.api.model_cache import Served
+from service.api.render import media_type, parse_json
+from service.problems import UnsupportedMediaType
 from service.api.stale import note_stale
 from service.api.schemas import PredictRequest, PredictResponse, schema_ref
 from service.errors import InvalidData

@@ -11,12 +11,15 @@ from anyio import to_thread
 from fastapi import APIRouter, Path, Query, Request
 from fastapi.responses import Response
 
-from service.api import answers as A, auth, intake, problems, tables
-from service.api.problems import MalformedBody, UnsupportedMediaType
+from service import tables
+from service.api import answers as A, auth, intake
+from service.problems import MalformedBody, UnsupportedMediaType
 from service.api.render import media_type, parse_json
 from service.api.schemas import TrainingRequest, TrainingUpload, parse_training_request, schema_ref
+from service.api.views import job_view
 from service.errors import InvalidData, StorageFailure
 from service.store.jobs import SUBMITTER
+from service.api.dependencies import ModelName, StoreDep
 from service.store.names import validate_name
 
 router = APIRouter(prefix="/v1", tags=["trainings"])
@@ -42,34 +45,6 @@ _SUBMIT_DOC = {
                                                  "a repeated Idempotency-Key (nothing new was started)."}}}},
     # the 202 body's schema comes from the route's ``responses`` (the Job model)
 }
-
-
-def job_view(job: dict[str, Any]) -> dict[str, Any]:
-    """The public shape of a job row from the catalog."""
-    jid = job["id"]
-    request = job.get("request") or {}
-    out = {
-        "id": jid,
-        "model": job.get("name"),
-        "state": job.get("state"),
-        "progress": job.get("progress") or {"done": 0, "total": None},
-        "attempts": job.get("attempts"),
-        "created_at": job.get("created_at"),
-        "started_at": job.get("started_at"),
-        "heartbeat_at": job.get("heartbeat_at"),
-        "finished_at": job.get("finished_at"),
-        "version": job.get("version"),
-        "promote": request.get("promote"),
-        "min_improvement": request.get("min_improvement"),
-        "data": request.get("data"),
-        "grid": request.get("grid"),
-        "decision": job.get("decision"),
-        "problem": problems.stored_problem(job.get("problem")),
-        "links": {"self": f"/v1/trainings/{jid}", "model": f"/v1/models/{job.get('name')}"},
-    }
-    if job.get("version") is not None:
-        out["links"]["version"] = f"/v1/models/{job.get('name')}/versions/{job['version']}"
-    return out
 
 
 OFF_LOOP_BYTES = 65_536  # a JSON body larger than this is parsed and validated in a worker thread
@@ -209,8 +184,7 @@ async def _read_submission(request: Request, incoming: FsPath
 
 @router.post("/models/{name}/trainings", summary="Submit a training job", status_code=202, openapi_extra=_SUBMIT_DOC,
              operation_id="submitTraining", responses=A.document(A.Job, "The job.", 202))
-async def submit(request: Request, name: str = Path(..., description="Model name.")) -> Response:
-    validate_name(name)
+async def submit(request: Request, name: ModelName) -> Response:
     key = intake.check_idempotency_key(request.headers.get("idempotency-key"))
     app = request.app
     store, settings = app.state.store, app.state.settings
@@ -289,20 +263,20 @@ def _submitter(request: Request) -> str:
 
 @router.get("/trainings/{job_id}", summary="State, progress and outcome of a training job", operation_id="getTraining",
             responses=A.document(A.Job, "The job."), **auth.READ)
-def get_job(request: Request, job_id: str = Path(..., max_length=64)) -> Response:
-    return A.reply(A.Job, job_view(request.app.state.store.jobs.get(job_id)))
+def get_job(request: Request, store: StoreDep, job_id: str = Path(..., max_length=64)) -> Response:
+    return A.reply(A.Job, job_view(store.jobs.get(job_id)))
 
 
 @router.get("/trainings", summary="Training jobs, newest first", operation_id="listTrainings",
             responses=A.document(A.JobList, "The jobs."), **auth.READ)
-def list_jobs(request: Request, model: str | None = Query(None, description="Only jobs of this model.")) -> Response:
+def list_jobs(request: Request, store: StoreDep, model: str | None = Query(None, description="Only jobs of this model.")) -> Response:
     if model is not None:
         validate_name(model)
-    jobs = request.app.state.store.jobs.list(name=model)
+    jobs = store.jobs.list(name=model)
     return A.reply(A.JobList, {"trainings": [job_view(j) for j in jobs]})
 
 
 @router.delete("/trainings/{job_id}", summary="Cancel a queued or running job", operation_id="cancelTraining",
                responses=A.document(A.Job, "The job, cancelled (a running job stops within the grace period)."), **auth.TRAIN)
-def cancel_job(request: Request, job_id: str = Path(..., max_length=64)) -> Response:
-    return A.reply(A.Job, job_view(request.app.state.store.jobs.cancel(job_id)))
+def cancel_job(request: Request, store: StoreDep, job_id: str = Path(..., max_length=64)) -> Response:
+    return A.reply(A.Job, job_view(store.jobs.cancel(job_id)))

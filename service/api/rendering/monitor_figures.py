@@ -10,7 +10,7 @@ from typing import Any
 import numpy as np
 from matplotlib.figure import Figure
 
-from service.api.plots import DPI, INK, MUTED, PALETTE, PAPER, _new_figure, _note, _style
+from service.api.rendering.figures import DPI, INK, MUTED, PALETTE, PAPER, _new_figure, _note, _style
 
 ACCENT = PALETTE[0]
 

@@ -14,7 +14,7 @@ from typing import Any, Iterable, Sequence
 
 import numpy as np
 
-from service.api import plots
+from service.api.rendering import figures as plots
 
 SE_NOTE = ("se: the one-standard-error rule's standard error over the CV splits (sample standard deviation "
            "of the split errors / sqrt(splits))")

@@ -44,7 +44,6 @@ matplotlib.rcParams["svg.hashsalt"] = "tikhon"
 
 FORMATS = ("svg", "png")
 MEDIA_TYPES = {"svg": "image/svg+xml", "png": "image/png"}
-KINDS = ("cv", "path", "residuals", "history")
 
 # Okabe & Ito (2002) palette, reordered so the darker colours come first (their yellow is faint on a
 # pale background and comes last): blue, orange, bluish green, vermillion, reddish purple, sky blue,
@@ -107,8 +106,6 @@ def metric_label(metric: str | None, target: str | None, units: dict[str, str]) 
     unit = units.get(target or "")
     if metric in ("rmse", "mae"):
         return _with_unit(f"CV {metric.upper()}", unit)
-    if metric == "mse":
-        return _with_unit("CV MSE", f"{unit}²" if unit else None)
     return f"CV {metric.upper()}"
 
 
