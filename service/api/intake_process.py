@@ -94,9 +94,9 @@ def read_json_body(body: bytes | str, limits: dict[str, Any], incoming: str) -> 
 
 def _start(parent_pid: int) -> None:
     """Initializer of an intake process: die with the API process (an orphan would hold memory), and run
-    at the training processes' lower CPU priority (``worker.TRAINING_NICENESS``): on a small host it
+    at the training processes' lower CPU priority (``lifeline.TRAINING_NICENESS``): on a small host it
     shares the cores with the event loop, and reading a body can wait while predictions cannot."""
-    from service.worker import _die_with_parent, _lower_priority
+    from service.lifeline import die_with_parent as _die_with_parent, lower_priority as _lower_priority
 
     _die_with_parent(parent_pid)
     _lower_priority()
