@@ -44,7 +44,7 @@ PROBE = textwrap.dedent('''
         conn, cancel = Conn(), threading.Event()
         if stop:
             cancel.set()
-        worker._train(str(data), spec, conn, [0, 0], cancel, time.time() + 120)
+        worker._train(str(data), spec, conn, [0, 0, 0, 0], cancel, time.time() + 120)
         kind, payload = conn.sent[0][0], conn.sent[0][1]
         runs[label] = [kind, None if kind == "ok" else payload["type"], None if kind == "ok" else payload["status"]]
     web = sorted(m for m in sys.modules
