@@ -158,7 +158,7 @@ def _train(data_path: str | None, spec: dict, conn, progress, cancel, deadline: 
             from service.engine.streaming import tune_partitions
             from service.sources import open_source
 
-            schema, parts = open_source(stream)
+            schema, parts = open_source(stream, spec)
             executor = DaskExecutor(dask_scheduler, dask_workers) if dask_scheduler else SerialExecutor()
             try:
                 result = tune_partitions(parts, schema, spec, executor=executor, progress=on_progress,
@@ -233,7 +233,8 @@ def decide(store, name: str, request: dict, outcome: dict, data_path: str | None
             from service.engine.streaming import score_partitions
             from service.sources import open_source
 
-            live_score = score_partitions(live_model, open_source(request["stream"])[1], request["spec"], metric)
+            live_score = score_partitions(live_model, open_source(request["stream"], request["spec"])[1],
+                                          request["spec"], metric)
             decision["comparison"] = ("live version's predictions on the new rows, scored per hash fold of the new "
                                       "job's spec and averaged; the new version's figure is its CV mean")
         else:

@@ -92,12 +92,18 @@ def check_spec_size(spec_raw: Any, settings: Settings) -> None:
             limit="max_spec_bytes", allowed=settings.max_spec_bytes, received=size)
 
 
-def load_data(data: dict[str, Any] | None, settings: Settings, *, upload: tuple[bytes | Path, str | None] | None = None
-              ) -> tuple[tables.Table, dict[str, Any]]:
-    """(columns, a description of where they came from) for one of rows / csv / source / an upload."""
+def load_data(data: dict[str, Any] | None, settings: Settings, *, upload: tuple[bytes | Path, str | None] | None = None,
+              spec: Any = None) -> tuple[tables.Table, dict[str, Any]]:
+    """(columns, a description of where they came from) for one of rows / csv / source / an upload.
+
+    With the training ``spec`` (a ``TuneSpec``), CSV and Parquet are read by the one reader the streamed
+    path uses (``service.sources``): only the columns the spec uses, label columns as text, and a file's
+    rows counted (Parquet: from its footer) against ``max_training_rows`` before they are converted."""
+    cap = settings.max_training_rows
     if upload is not None:
         payload, filename = upload
-        cols = tables.from_file_bytes(payload, filename, where="the uploaded file", max_label=settings.max_label_chars)
+        cols = tables.from_file_bytes(payload, filename, where="the uploaded file", max_label=settings.max_label_chars,
+                                      spec=spec, max_rows=cap)
         origin = {"kind": "upload", "filename": filename}
     elif "rows" in data:
         rows = data["rows"]
@@ -106,11 +112,13 @@ def load_data(data: dict[str, Any] | None, settings: Settings, *, upload: tuple[
         cols = tables.from_rows(rows, where="data.rows", max_label=settings.max_label_chars)
         origin = {"kind": "rows"}
     elif "csv" in data:
-        cols = tables.from_csv(data["csv"], where="data.csv", max_label=settings.max_label_chars)
+        cols = tables.from_csv(data["csv"], where="data.csv", max_label=settings.max_label_chars, spec=spec,
+                               max_rows=cap)
         origin = {"kind": "csv"}
     else:
         path = tables.resolve_source(Path(settings.data_dir), data["source"])
-        cols = tables.read_source(path, where=f"data.source={data['source']!r}", max_label=settings.max_label_chars)
+        cols = tables.read_source(path, where=f"data.source={data['source']!r}", max_label=settings.max_label_chars,
+                                  spec=spec, max_rows=cap)
         origin = {"kind": "source", "source": data["source"]}
     check_column_names(list(cols), "the training data")
     n = len(next(iter(cols.values())))
@@ -149,8 +157,9 @@ def validate_stream(path: Path, spec_raw: dict[str, Any], settings: Settings, so
     from service.sources import open_source
 
     spec = parse_spec(spec_raw)
-    schema, parts = open_source(path)
+    schema, parts = open_source(path, spec)
     check_column_names(list(schema), f"data.source={source!r}")
+    _first_block(parts, schema, spec)
     rows = sum(getattr(p, "rows", 0) or 0 for p in parts)
     if not rows:  # CSV: estimate from the size and the first lines
         with open(path, "rb") as fh:
@@ -163,6 +172,25 @@ def validate_stream(path: Path, spec_raw: dict[str, Any], settings: Settings, so
               "columns": list(schema), "bytes": sum(f.stat().st_size for f in files if f.is_file()),
               "modified": max(f.stat().st_mtime for f in files if f.is_file())}
     return spec.model_dump(mode="json"), counts, origin
+
+
+FIRST_BLOCK_ROWS = 16_384
+
+
+def _first_block(parts: list, schema: dict[str, str], spec) -> None:
+    """Read the first block of a streamed source through the one reader at submission (bounded: one CSV
+    block or ``FIRST_BLOCK_ROWS`` Parquet rows of the used columns), so a malformed cell, an empty label
+    or a missing key there is refused with a 422 as in memory, not as a failed job."""
+    from service.engine.streaming import check_batch
+    from service.engine.tune import resolve_columns
+
+    _, used = resolve_columns(spec, schema)
+    for part in parts:
+        if getattr(part, "rows", 1):
+            batch = next(iter(part.read(used, FIRST_BLOCK_ROWS)), None)
+            if batch is not None:
+                check_batch(schema, spec, batch, part.offset)
+            return
 
 
 def live_spec(store, name: str) -> dict[str, Any]:
@@ -240,3 +268,10 @@ def discard(path: Path) -> None:
 def stage(store, cols: tables.Table) -> Path:
     """Write the validated table under the store's job area; the job's folder takes it over on submit."""
     return tables.stage(cols, Path(store.jobs.incoming_dir) / f"{uuid.uuid4().hex}-{DATA_FILE}")
+
+
+def parse(spec_raw: Any):
+    """The ``TuneSpec`` of a request's spec (``InvalidSpec`` when it is not one)."""
+    from service.engine import parse_spec
+
+    return parse_spec(spec_raw)

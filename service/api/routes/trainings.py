@@ -190,7 +190,7 @@ async def submit(request: Request, name: str = Path(..., description="Model name
                 SUBMITTER: submitter,
             }
             return store.jobs.submit(name, job_request, idempotency_key=key, **limits)
-        cols, origin = intake.load_data(data, settings, upload=upload)
+        cols, origin = intake.load_data(data, settings, upload=upload, spec=intake.parse(spec_raw))
         if isinstance(data, dict):
             data.pop("rows", None)  # the row objects are columns now: free them before validating and staging
         spec, counts = intake.validate(cols, spec_raw, settings)
