@@ -53,15 +53,18 @@ def arrow_kind(t) -> str:
 
 
 def text_roles(spec) -> set[str]:
-    """Columns the spec reads as labels: always text, never converted to numbers (``zip`` 01 ≠ 1)."""
+    """Columns the spec reads as labels: always text, never converted to numbers (``zip`` 01 ≠ 1). ``spec``
+    may also be the set of a model's categorical inputs (prediction tables)."""
     if spec is None:
         return set()
+    if isinstance(spec, (set, frozenset, list, tuple)):
+        return set(spec)
     return {c for c in (*spec.categorical, spec.cv.group_by) if c}
 
 
 def number_roles(spec) -> set[str]:
     """Columns the spec reads as numbers: the target and listed features."""
-    if spec is None:
+    if spec is None or not hasattr(spec, "target"):
         return set()
     return {spec.target, *(spec.features or ())}
 

@@ -144,3 +144,17 @@ def test_streaming_budget_counts_one_batch_of_design_not_every_row():
     assert check_partitions(schema, spec, 10_000_000, budget)["widest_basis"] == 27
     with pytest.raises(BudgetExceeded, match="batch_rows"):
         check_partitions(schema, dict(spec, execution={"batch_rows": 100_000}), 10_000_000, budget)
+
+
+def test_row_key_hash_does_not_depend_on_the_storage_type():
+    """A row key read as float64 (a CSV in memory) or int64 (elsewhere) or as a Python int lands in the same fold:
+    the hash is of a canonical form (integer-valued numbers as integers). Non-integers keep their float64 bits
+    and text its UTF-8 bytes, so 7.5 and "7" stay distinct keys (common practice for stable hashing)."""
+    from service.engine.folds import hash_folds, key_hash
+
+    ints = np.arange(-50, 5000, 7, dtype=np.int64)
+    np.testing.assert_array_equal(key_hash(ints.astype(np.float64), 3), key_hash(ints, 3))
+    np.testing.assert_array_equal(hash_folds(ints.astype(np.float64), 3, 5), hash_folds(ints, 3, 5))
+    assert key_hash(np.array([7.5]), 3)[0] != key_hash(np.array([7]), 3)[0]
+    assert key_hash(np.array(["7"], dtype=object), 3)[0] != key_hash(np.array([7]), 3)[0]
+    assert key_hash(np.array([-0.0]), 3)[0] == key_hash(np.array([0]), 3)[0]
