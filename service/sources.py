@@ -78,8 +78,8 @@ def unsupported(where: str, name: str, t, role: str | None = None) -> InvalidDat
         msg = (f"{where} column {name!r}{used} holds bytes that are not UTF-8 text (e.g. Latin-1 'caf\\xe9'); "
                "save the file as UTF-8")
     elif pt.is_null(t):
-        msg = (f"{where} column {name!r}{used} has no values (every cell is empty); fill it in, or leave it out "
-               "of the spec")
+        msg = (f"{where} column {name!r}{used} has only missing values (every cell is empty); fill them in, or "
+               "leave the column out")
     elif arrow_kind(t) == BOOLEAN:
         msg = (f"{where} column {name!r}{used} holds true/false values; encode it as 0/1 numbers or list it under "
                "'categorical'")

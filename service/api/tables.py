@@ -181,7 +181,8 @@ def _used(spec: Any, types: dict[str, Any], where: str, sample=None) -> list[str
     if spec is None or not hasattr(spec, "cv"):
         return list(types)
     schema = {n: sources.arrow_kind(t) for n, t in types.items()}
-    return sources.check_used(schema, types, spec, where, sample)[1]
+    used = set(sources.check_used(schema, types, spec, where, sample)[1])
+    return [n for n in types if n in used]  # in the file's order
 
 
 def from_csv(payload: bytes | str | Path, *, where: str = "csv", max_label: int | None = MAX_LABEL_CHARS,

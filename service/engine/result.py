@@ -73,8 +73,8 @@ def column_kind(values_or_dtype: Any) -> str:
 
     The rule for every front end: numbers are features and targets; text is read only as categorical
     levels (or group / order / key columns); booleans are neither numbers nor default features: a
-    boolean column must be encoded as 0/1 numbers or listed under ``categorical`` (levels "True" and
-    "False"), the same answer the HTTP tables give."""
+    boolean column must be encoded as 0/1 numbers or listed under ``categorical`` (levels "true" and
+    "false", the JSON and CSV spelling), the same answer on every path."""
     kind = np.dtype(getattr(values_or_dtype, "dtype", values_or_dtype)).kind
     if kind in "iuf":
         return "number"
