@@ -73,8 +73,9 @@ class Settings(BaseSettings):
 
     # scale: out-of-core and distributed training
     streaming_threshold_bytes: int = Field(
-        512 * 2**20, ge=0, description="A 'source' file (or folder) larger than this is trained out of core, in row "
-        "batches, unless the spec's execution.mode says otherwise.")
+        512 * 2**20, ge=0, description="A 'source' file whose table would take more than this in memory (rows x "
+        "columns x 8 bytes, rows from the Parquet footer or estimated from a CSV's size), or a folder, is trained "
+        "out of core, in row batches, unless the spec's execution.mode says otherwise.")
     max_source_files: int = Field(
         10_000, ge=1, description="Most Parquet files in one folder 'source' (the list is fixed and stored with the "
         "job at submission).")

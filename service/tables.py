@@ -13,7 +13,6 @@ checksummable, and it executes nothing when read.
 from __future__ import annotations
 
 import errno
-import io
 import math
 import os
 from pathlib import Path, PurePosixPath
@@ -21,11 +20,9 @@ from typing import Any
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.compute as pc
-import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
-from service import paths
+from service import paths, sources
 from service.errors import BudgetExceeded, InvalidData, StorageFailure
 
 Table = dict[str, np.ndarray]
@@ -62,10 +59,10 @@ def _rows_list(ids: list[int]) -> str:
     return shown + (f" (and {len(ids) - 5} more)" if len(ids) > 5 else "")
 
 
-def check_row_limit(n: int, limit: int, setting: str, where: str) -> None:
+def check_row_limit(n: int, limit: int, setting: str, where: str, at_least: bool = False) -> None:
     if n > limit:
         raise BudgetExceeded(
-            f"{where} holds {n} rows, above the limit {setting}={limit}; split the request into batches of at most "
+            f"{where} holds {'at least ' if at_least else ''}{n} rows, above the limit {setting}={limit}; split the request into batches of at most "
             f"{limit} rows, or raise TIKHON_{setting.upper()} on the server.",
             limit=setting, allowed=limit, received=n,
         )
@@ -96,6 +93,8 @@ def from_rows(rows: Any, *, where: str = "rows", max_label: int | None = MAX_LAB
                 if t is float and not math.isfinite(v):
                     _bad_value(where, name, 0, v)
                 cols[name] = np.array([v], dtype=np.float64)
+            elif t is bool:  # kept as booleans: the engine's one rule decides (not a number; labels if categorical)
+                cols[name] = np.array([v], dtype=bool)
             elif t is str:
                 if max_label is not None and len(v) > max_label:
                     _label_too_long(where, name, 0, len(v), max_label)
@@ -150,6 +149,8 @@ def _column_from_values(name: str, vals: list, where: str, max_label: int | None
         return arr
     if kinds == {str}:
         return text_column(name, vals, where, max_label)
+    if kinds == {bool}:  # the engine's one rule decides (not a number; labels "true"/"false" if categorical)
+        return np.asarray(vals, dtype=bool)
     for i, v in enumerate(vals):
         if type(v) not in (int, float, str) or (type(v) is float and not math.isfinite(v)):
             _bad_value(where, name, i, v)
@@ -162,96 +163,61 @@ def _column_from_values(name: str, vals: list, where: str, max_label: int | None
     )
 
 
-def from_arrow(table: pa.Table, *, where: str, max_label: int | None = MAX_LABEL_CHARS) -> Table:
-    """An Arrow table (from CSV or Parquet) -> columns, refusing nulls, NaN/inf and unsupported types."""
+def from_arrow(table: pa.Table, *, where: str, max_label: int | None = MAX_LABEL_CHARS, spec: Any = None) -> Table:
+    """An Arrow table (from CSV or Parquet) -> columns by the one rule (``service.sources.arrow_columns``):
+    nulls, NaN/inf and types read nowhere are refused. With a training ``spec``, only the columns it uses
+    are read (unused columns of any type are ignored, as when the source is streamed)."""
     if table.num_rows == 0:
         raise InvalidData(f"{where} has a header but no rows; send at least one row.")
     names = table.column_names
     dup = sorted({n for n in names if names.count(n) > 1})
     if dup:
         raise InvalidData(f"{where} repeats the column name(s) {dup}; every column needs a distinct name.")
-    out: Table = {}
-    for name in names:
-        col = table.column(name)
-        if col.null_count:
-            nulls = np.flatnonzero(col.is_null().to_numpy(zero_copy_only=False)).tolist()
-            raise InvalidData(
-                f"{where} column {name!r} has missing values (empty, NA or NaN) at row(s) {_rows_list(nulls)} "
-                "(rows counted from 0 after the header); fill them in or drop those rows.",
-                errors=[{"field": name, "message": "missing values", "value": nulls[:20]}],
-            )
-        t = col.type
-        if pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_decimal(t):
-            arr = np.asarray(col.to_numpy(zero_copy_only=False), dtype=np.float64)
-            bad = np.flatnonzero(~np.isfinite(arr)).tolist()
-            if bad:
-                raise InvalidData(
-                    f"{where} column {name!r} holds non-finite values (inf or NaN) at row(s) {_rows_list(bad)}; "
-                    "send finite numbers or drop those rows.",
-                    errors=[{"field": name, "message": "non-finite values", "value": bad[:20]}],
-                )
-            out[name] = arr
-        elif pa.types.is_string(t) or pa.types.is_large_string(t) or pa.types.is_dictionary(t):
-            text = col.cast(pa.string())
-            if max_label is not None:
-                lengths = pc.utf8_length(text)
-                longest = pc.max(lengths).as_py() or 0
-                if longest > max_label:
-                    row = int(np.flatnonzero(np.asarray(lengths.to_numpy(zero_copy_only=False)) > max_label)[0])
-                    _label_too_long(where, name, row, int(lengths[row].as_py()), max_label)
-            out[name] = text.to_numpy(zero_copy_only=False).astype(object, copy=False)
-        elif pa.types.is_boolean(t):
-            raise InvalidData(
-                f"{where} column {name!r} holds true/false values; encode it as 0/1 numbers or as category labels."
-            )
-        else:
-            raise InvalidData(
-                f"{where} column {name!r} has the type {t}, which the service does not read; "
-                "send numbers or text labels (dates as numbers, e.g. days since a fixed day)."
-            )
-    return out
+    columns = _used(spec, {f.name: f.type for f in table.schema}, where)
+    return sources.arrow_columns(table, columns, where=where, text=sources.text_roles(spec), max_label=max_label)
 
 
-def from_csv(payload: bytes | str | Path, *, where: str = "csv", max_label: int | None = MAX_LABEL_CHARS) -> Table:
-    """CSV text, bytes, or a file (read by pyarrow from disk, never held in memory whole)."""
+def _used(spec: Any, types: dict[str, Any], where: str, sample=None) -> list[str]:
+    if spec is None or not hasattr(spec, "cv"):
+        return list(types)
+    schema = {n: sources.arrow_kind(t) for n, t in types.items()}
+    used = set(sources.check_used(schema, types, spec, where, sample)[1])
+    return [n for n in types if n in used]  # in the file's order
+
+
+def from_csv(payload: bytes | str | Path, *, where: str = "csv", max_label: int | None = MAX_LABEL_CHARS,
+             spec: Any = None, max_rows: int | None = None, setting: str = "max_training_rows") -> Table:
+    """CSV text, bytes, or a file (read by pyarrow from disk in blocks, never held in memory whole), typed by
+    the one CSV rule (``service.sources.csv_types``: the spec's label columns as text, numeric columns as
+    float64, malformed cells refused by column, row and value). Reading stops as soon as the rows pass
+    ``max_rows``."""
     if isinstance(payload, Path):
         with open(payload, "rb") as fh:
             data = fh.read(1 << 16)  # the head: enough to tell an empty file and to read the header line
-        empty = not data.strip()
-        source: Any = None
+        opener = lambda: pa.OSFile(str(payload), "rb")  # noqa: E731 (no compression guessed from the name)
     else:
         data = payload.encode() if isinstance(payload, str) else payload
-        empty = not data.strip()
-        source = io.BytesIO(data)
-    if empty:
+        opener = lambda: pa.BufferReader(data)  # noqa: E731
+    if not data.strip():
         raise InvalidData(f"{where} is empty; send a header line and at least one row.")
-    if source is None:
-        source = pa.OSFile(str(payload), "rb")  # no compression guessed from the file name
-    try:
-        table = pacsv.read_csv(
-            source,
-            read_options=pacsv.ReadOptions(use_threads=False),
-            convert_options=pacsv.ConvertOptions(strings_can_be_null=True),
-        )
-    except (pa.ArrowInvalid, pa.ArrowTypeError, UnicodeDecodeError) as exc:
-        source.close()
-        reason = " ".join(str(exc).split())
+    if data[:2] != b"\x1f\x8b":
         _check_delimiter(data, where)
-        raise InvalidData(
-            f"{where} could not be parsed as CSV ({reason[:300]}); send comma-separated UTF-8 text with one header "
-            "line and the same number of fields on every line."
-        ) from None
-    source.close()
-    try:
-        table.column_names  # pyarrow decodes the header's names only now
-    except UnicodeDecodeError as exc:
-        raise InvalidData(
-            f"{where} has a header line that is not UTF-8 text ({exc.reason} at byte {exc.start}); send "
-            "comma-separated UTF-8 text with one header line."
-        ) from None
-    if table.num_columns == 1:
-        _check_delimiter(data, where)
-    return from_arrow(table, where=where, max_label=max_label)
+    schema, types = sources.csv_head(opener, spec, where)
+    columns = _used(spec, types, where)
+    if spec is None:
+        bad = [c for c in columns if schema[c] in (sources.OTHER, sources.TIME)]
+        if bad:
+            raise sources.unsupported(where, bad[0], types[bad[0]])
+    parts: dict[str, list[np.ndarray]] = {c: [] for c in columns}
+    rows = 0
+    for pos, cols in sources.csv_batches(opener, types, columns, where=where, text=sources.text_roles(spec),
+                                         max_label=max_label):
+        rows = pos + len(next(iter(cols.values()))) if cols else pos
+        if max_rows is not None:
+            check_row_limit(rows, max_rows, setting, where, at_least=True)
+        for c, v in cols.items():
+            parts[c].append(v)
+    return {c: (np.concatenate(v) if len(v) != 1 else v[0]) for c, v in parts.items()}
 
 
 _OTHER_DELIMITERS = {";": "semicolon (;)", "\t": "tab", "|": "vertical bar (|)"}
@@ -275,30 +241,42 @@ def _check_delimiter(data: bytes, where: str) -> None:
 
 
 
-def from_parquet(payload: bytes | Path, *, where: str, max_label: int | None = MAX_LABEL_CHARS) -> Table:
+def from_parquet(payload: bytes | Path, *, where: str, max_label: int | None = MAX_LABEL_CHARS, spec: Any = None,
+                 max_rows: int | None = None, setting: str = "max_training_rows") -> Table:
+    """A Parquet file: its footer is read first, so a file holding more than ``max_rows`` rows is refused
+    before any row is decompressed; with a ``spec``, only the columns it uses are read."""
     try:
         source = pa.BufferReader(payload) if isinstance(payload, (bytes, bytearray)) else str(payload)
-        table = pq.read_table(source)
+        with pq.ParquetFile(source) as f:
+            if max_rows is not None:
+                check_row_limit(f.metadata.num_rows, max_rows, setting, where)
+            types = {fld.name: fld.type for fld in f.schema_arrow}
+            names = list(types)
+            dup = sorted({n for n in names if names.count(n) > 1})
+            if dup:
+                raise InvalidData(f"{where} repeats the column name(s) {dup}; every column needs a distinct name.")
+            if f.metadata.num_rows == 0:
+                raise InvalidData(f"{where} has a header but no rows; send at least one row.")
+            columns = _used(spec, types, where, sources.parquet_sample(f))
+            table = f.read(columns=columns)
     except (pa.ArrowException, OSError) as exc:
         reason = " ".join(str(exc).split())
         raise InvalidData(f"{where} could not be read as Parquet ({reason[:300]}); send a valid Parquet file or CSV.") from None
-    return from_arrow(table, where=where, max_label=max_label)
+    return from_arrow(table, where=where, max_label=max_label, spec=spec)
 
 
-def from_file_bytes(payload: bytes | Path, filename: str | None, *, where: str, max_label: int | None = MAX_LABEL_CHARS) -> Table:
+def from_file_bytes(payload: bytes | Path, filename: str | None, *, where: str, max_label: int | None = MAX_LABEL_CHARS,
+                    spec: Any = None, max_rows: int | None = None) -> Table:
     """An uploaded file (its bytes, or the file it was saved to): Parquet when it starts with the Parquet
     magic bytes, else CSV."""
     if isinstance(payload, Path):
         with open(payload, "rb") as fh:
             head = fh.read(8)
-        _refuse_compressed(head, where)
-        if head[:4] == b"PAR1":
-            return from_parquet(payload, where=where, max_label=max_label)
-        return from_csv(payload, where=where, max_label=max_label)
-    _refuse_compressed(payload[:8], where)
-    if payload[:4] == b"PAR1":
-        return from_parquet(payload, where=where, max_label=max_label)
-    return from_csv(payload, where=where, max_label=max_label)
+    else:
+        head = payload[:8]
+    _refuse_compressed(head, where)
+    read = from_parquet if head[:4] == b"PAR1" else from_csv
+    return read(payload, where=where, max_label=max_label, spec=spec, max_rows=max_rows)
 
 
 def _refuse_compressed(head: bytes, where: str) -> None:
@@ -385,9 +363,10 @@ def _unreachable(root: Path, source: str, exc: BaseException, *, where: str, hin
                        errors=[{"field": where, "value": shown, "message": short}])
 
 
-def read_source(path: Path, *, where: str = "data.source", max_label: int | None = MAX_LABEL_CHARS) -> Table:
+def read_source(path: Path, *, where: str = "data.source", max_label: int | None = MAX_LABEL_CHARS, spec: Any = None,
+                max_rows: int | None = None) -> Table:
     if path.suffix.lower() in (".parquet", ".pq"):
-        return from_parquet(path, where=where, max_label=max_label)
+        return from_parquet(path, where=where, max_label=max_label, spec=spec, max_rows=max_rows)
     try:
         with open(path, "rb") as fh:
             head = fh.read(8)
@@ -396,8 +375,8 @@ def read_source(path: Path, *, where: str = "data.source", max_label: int | None
                           "permissions in the data folder (TIKHON_DATA_DIR).") from None
     _refuse_compressed(head, where)
     if head[:4] == b"PAR1":
-        return from_parquet(path, where=where, max_label=max_label)
-    return from_csv(Path(path), where=where, max_label=max_label)
+        return from_parquet(path, where=where, max_label=max_label, spec=spec, max_rows=max_rows)
+    return from_csv(Path(path), where=where, max_label=max_label, spec=spec, max_rows=max_rows)
 
 
 def to_arrow(table: Table) -> pa.Table:

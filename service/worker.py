@@ -40,6 +40,7 @@ Promotion (``promote`` in the request):
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 import math
 import multiprocessing as mp
@@ -103,7 +104,7 @@ def paced(shown: int, done: int, span_end: int) -> int:
     return shown + 1 if shown + 1 < span_end else shown
 
 
-def stream_partitions(request: dict, data_dir) -> tuple[dict[str, str], list] | None:
+def stream_partitions(request: dict, data_dir, spec=None) -> tuple[dict[str, str], list] | None:
     """(schema, partitions) of a streamed job: exactly the files fixed at submission (``request["files"]``),
     each re-checked when opened (``service.filelist``); a job queued by an older version names only its
     source path (``stream``) and is listed now. None for a job whose data was staged."""
@@ -111,9 +112,9 @@ def stream_partitions(request: dict, data_dir) -> tuple[dict[str, str], list] | 
     from service.sources import open_files, open_source
 
     if request.get("files"):
-        return open_files(refs_from_job(data_dir, request["files"]))
+        return open_files(refs_from_job(data_dir, request["files"]), spec)
     if request.get("stream"):
-        return open_source(request["stream"])
+        return open_source(request["stream"], spec)
     return None
 
 
@@ -142,9 +143,10 @@ def _train(data_path: str | None, spec: dict, conn, progress, cancel, deadline: 
             from service.engine.tune import Budget
             from service.sources import CsvPart
 
-            schema, parts = stream_partitions(stream, data_dir)
+            schema, parts = stream_partitions(stream, data_dir, spec)
             # a CSV's whole content is hashed once here; every pass then re-hashes what it parses
-            parts = [CsvPart(p.ref.with_content_digest(), p.offset) if isinstance(p, CsvPart) else p for p in parts]
+            parts = [dataclasses.replace(p, ref=p.ref.with_content_digest()) if isinstance(p, CsvPart) else p
+                     for p in parts]
             if dask_scheduler == "local":
                 # The worker starts this process as a daemon (so it ends with the worker), and a daemonic
                 # process may not start children; a LocalCluster's worker processes are children. Clearing
@@ -227,7 +229,8 @@ def decide(store, name: str, request: dict, outcome: dict, data_path: str | None
         if request.get("files") or request.get("stream"):  # out of core: the live model on the streamed rows
             from service.engine.streaming import score_partitions
 
-            live_score = score_partitions(live_model, stream_partitions(request, data_dir)[1], request["spec"], metric)
+            live_score = score_partitions(live_model, stream_partitions(request, data_dir, request["spec"])[1],
+                                          request["spec"], metric)
             decision["comparison"] = ("live version's predictions on the new rows, scored per hash fold of the new "
                                       "job's spec and averaged; the new version's figure is its CV mean")
         else:

@@ -94,12 +94,18 @@ def check_spec_size(spec_raw: Any, settings: Settings) -> None:
             limit="max_spec_bytes", allowed=settings.max_spec_bytes, received=size)
 
 
-def load_data(data: dict[str, Any] | None, settings: Settings, *, upload: tuple[bytes | Path, str | None] | None = None
-              ) -> tuple[tables.Table, dict[str, Any]]:
-    """(columns, a description of where they came from) for one of rows / csv / source / an upload."""
+def load_data(data: dict[str, Any] | None, settings: Settings, *, upload: tuple[bytes | Path, str | None] | None = None,
+              spec: Any = None) -> tuple[tables.Table, dict[str, Any]]:
+    """(columns, a description of where they came from) for one of rows / csv / source / an upload.
+
+    With the training ``spec`` (a ``TuneSpec``), CSV and Parquet are read by the one reader the streamed
+    path uses (``service.sources``): only the columns the spec uses, label columns as text, and a file's
+    rows counted (Parquet: from its footer) against ``max_training_rows`` before they are converted."""
+    cap = settings.max_training_rows
     if upload is not None:
         payload, filename = upload
-        cols = tables.from_file_bytes(payload, filename, where="the uploaded file", max_label=settings.max_label_chars)
+        cols = tables.from_file_bytes(payload, filename, where="the uploaded file", max_label=settings.max_label_chars,
+                                      spec=spec, max_rows=cap)
         origin = {"kind": "upload", "filename": filename}
     elif "rows" in data:
         rows = data["rows"]
@@ -108,11 +114,13 @@ def load_data(data: dict[str, Any] | None, settings: Settings, *, upload: tuple[
         cols = tables.from_rows(rows, where="data.rows", max_label=settings.max_label_chars)
         origin = {"kind": "rows"}
     elif "csv" in data:
-        cols = tables.from_csv(data["csv"], where="data.csv", max_label=settings.max_label_chars)
+        cols = tables.from_csv(data["csv"], where="data.csv", max_label=settings.max_label_chars, spec=spec,
+                               max_rows=cap)
         origin = {"kind": "csv"}
     else:
         path = tables.resolve_source(Path(settings.data_dir), data["source"])
-        cols = tables.read_source(path, where=f"data.source={data['source']!r}", max_label=settings.max_label_chars)
+        cols = tables.read_source(path, where=f"data.source={data['source']!r}", max_label=settings.max_label_chars,
+                                  spec=spec, max_rows=cap)
         origin = {"kind": "source", "source": data["source"]}
     check_column_names(list(cols), "the training data")
     n = len(next(iter(cols.values())))
@@ -126,13 +134,14 @@ def stream_source(data: dict[str, Any] | None, spec_raw: dict[str, Any] | None, 
     """The resolved path when a ``source`` job is to be trained out of core, else None.
 
     Out of core when the spec says ``execution.mode: streaming``, or says ``auto`` (the default) and the
-    source is a folder of Parquet files or larger than ``streaming_threshold_bytes``."""
+    source is a folder of Parquet files or its table would take more than ``streaming_threshold_bytes`` in
+    memory: rows × columns × 8 bytes, the rows from the Parquet footer (a small, highly compressed file
+    can hold many rows) or, for CSV, estimated from the file size (``table_bytes``). Nothing is parsed."""
     if not data or "source" not in data:
         return None
     path = tables.resolve_source(Path(settings.data_dir), data["source"], allow_dir=True)
     mode = ((spec_raw or {}).get("execution") or {}).get("mode", "auto") if isinstance(spec_raw, dict) else "auto"
-    size = 0 if path.is_dir() else path.stat().st_size  # a folder always streams
-    if mode == "streaming" or (mode == "auto" and (path.is_dir() or size > settings.streaming_threshold_bytes)):
+    if mode == "streaming" or (mode == "auto" and (path.is_dir() or table_bytes(path) > settings.streaming_threshold_bytes)):
         return path
     if path.is_dir():
         raise InvalidData(
@@ -144,6 +153,28 @@ def stream_source(data: dict[str, Any] | None, spec_raw: dict[str, Any] | None, 
 
 SHOWN_FILES = 100  # files listed in a job's ``data.files`` (all of them are stored with the job)
 CSV_SCAN_BYTES = 8 << 20  # bytes of a streamed CSV read at submission to check the target's cells
+
+
+def table_bytes(path: Path) -> int:
+    """The memory a source file's table would take as float64 columns, from metadata only: a Parquet file's
+    footer (rows × columns × 8); for CSV, rows estimated from the size and the mean length of the lines in
+    its first 64 KiB, times the header's columns × 8. A file that is neither (or unreadable) counts by its
+    size; reading it says why."""
+    try:
+        with open(path, "rb") as fh:
+            head = fh.read(1 << 16)
+        if head[:4] == b"PAR1":
+            import pyarrow.parquet as pq
+
+            md = pq.read_metadata(str(path))
+            return int(md.num_rows) * max(1, md.num_columns) * 8
+        lines = head.split(b"\n")
+        columns = lines[0].count(b",") + 1
+        full = max(1, len(lines) - 1)  # complete lines in the head
+        per_line = max(1.0, (len(head) - len(lines[-1])) / full)
+        return int(path.stat().st_size / per_line) * columns * 8
+    except Exception:  # noqa: BLE001 (the reader refuses it with a clear message later)
+        return path.stat().st_size
 
 
 def validate_stream(path: Path, spec_raw: dict[str, Any], settings: Settings, source: str
@@ -161,8 +192,9 @@ def validate_stream(path: Path, spec_raw: dict[str, Any], settings: Settings, so
     where = f"data.source={source!r}"
     spec = parse_spec(spec_raw)
     refs = list_source(settings.data_dir, path, where=where, max_files=settings.max_source_files)
-    schema, _ = open_files(refs)  # opens every file: a damaged footer or mixed columns are refused now
+    schema, parts = open_files(refs, spec)  # opens every file: a damaged footer or mixed columns are refused now
     check_column_names(list(schema), where)
+    _first_block(parts, schema, spec)
     exact = all(r.kind == "parquet" for r in refs)
     rows = sum(r.rows or 0 for r in refs) if exact else _csv_rows_estimate(refs[0].path)
     counted = rows
@@ -301,6 +333,25 @@ def _scan_csv(ref, spec, where: str, estimate: int) -> int | None:
     return len(cells)
 
 
+FIRST_BLOCK_ROWS = 16_384
+
+
+def _first_block(parts: list, schema: dict[str, str], spec) -> None:
+    """Read the first block of a streamed source through the one reader at submission (bounded: one CSV
+    block or ``FIRST_BLOCK_ROWS`` Parquet rows of the used columns), so a malformed cell, an empty label
+    or a missing key there is refused with a 422 as in memory, not as a failed job."""
+    from service.engine.streaming import check_batch
+    from service.engine.tune import resolve_columns
+
+    _, used = resolve_columns(spec, schema)
+    for part in parts:
+        if getattr(part, "rows", 1):
+            batch = next(iter(part.read(used, FIRST_BLOCK_ROWS)), None)
+            if batch is not None:
+                check_batch(schema, spec, batch, part.offset)
+            return
+
+
 def live_spec(store, name: str) -> dict[str, Any]:
     """The spec of the model's live version (a retrain without a spec reuses it)."""
     try:
@@ -381,3 +432,10 @@ def discard(path: Path) -> None:
 def stage(store, cols: tables.Table) -> Path:
     """Write the validated table under the store's job area; the job's folder takes it over on submit."""
     return tables.stage(cols, Path(store.jobs.incoming_dir) / f"{uuid.uuid4().hex}-{DATA_FILE}")
+
+
+def parse(spec_raw: Any):
+    """The ``TuneSpec`` of a request's spec (``InvalidSpec`` when it is not one)."""
+    from service.engine import parse_spec
+
+    return parse_spec(spec_raw)

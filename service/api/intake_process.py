@@ -79,7 +79,7 @@ def read_json_body(body: bytes | str, limits: dict[str, Any], incoming: str) -> 
     kind = "rows" if "rows" in data else "csv"
     out: dict[str, Any] = {"request": request, "data": {"kind": kind}}
     try:
-        cols, origin = intake.load_data(data, settings)
+        cols, origin = intake.load_data(data, settings, spec=intake.parse(parsed.spec))
         data.clear()  # the row objects are columns now
         spec = counts = None
         if parsed.spec is not None:

@@ -50,12 +50,18 @@ def splitmix64(x: np.ndarray) -> np.ndarray:
 
 
 def key_hash(keys: np.ndarray, seed: int) -> np.ndarray:
-    """Stable 64-bit hash of row keys (integers, floats or text) mixed with the seed."""
+    """Stable 64-bit hash of row keys mixed with the seed, of a canonical form of each key, so the storage
+    type does not matter: an integer-valued number hashes as that integer (7, 7.0 and an int64 7 alike:
+    a CSV key is float64 in memory and may be int64 elsewhere), any other number as its float64 bits
+    (-0.0 as 0.0), text as BLAKE2b-64 of its UTF-8 bytes."""
     keys = np.asarray(keys)
     if keys.dtype.kind in "iub":
         u = keys.astype(np.int64).view(np.uint64)
     elif keys.dtype.kind == "f":
-        u = (keys.astype(np.float64) + 0.0).view(np.uint64)  # + 0.0 folds -0.0 into 0.0
+        f = keys.astype(np.float64) + 0.0  # + 0.0 folds -0.0 into 0.0
+        whole = np.isfinite(f) & (np.floor(f) == f) & (np.abs(f) < 2.0 ** 63)
+        u = f.view(np.uint64).copy()
+        u[whole] = f[whole].astype(np.int64).view(np.uint64)
     else:
         import hashlib
 

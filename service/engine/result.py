@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import math
 import platform
+import re
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -73,14 +74,58 @@ def column_kind(values_or_dtype: Any) -> str:
 
     The rule for every front end: numbers are features and targets; text is read only as categorical
     levels (or group / order / key columns); booleans are neither numbers nor default features: a
-    boolean column must be encoded as 0/1 numbers or listed under ``categorical`` (levels "True" and
-    "False"), the same answer the HTTP tables give."""
+    boolean column must be encoded as 0/1 numbers or listed under ``categorical`` (levels "true" and
+    "false", the JSON and CSV spelling), the same answer on every path."""
     kind = np.dtype(getattr(values_or_dtype, "dtype", values_or_dtype)).kind
     if kind in "iuf":
         return "number"
     if kind == "b":
         return "boolean"
     return "text"
+
+
+# A text column that no role of the spec claims is left out of the default features. When its cells are
+# mostly numbers that is a silent loss of a feature (one "1,234" made a CSV column text), so such a column
+# is refused, naming its first cell that is not a plain number: the same rule on every path (JSON rows and
+# Parquet here; a CSV's columns are typed by the same test in ``service.sources.csv_types``).
+TEXT_SAMPLE = 16_384  # the first cells of a column the rule looks at (bounded, and the same in memory and streamed)
+_NUMBER_LIKE = re.compile(r"\s*[+-]?(?:(?=\d)[\d,_' ]*(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?\s*|\s*[+-]?0[xX][0-9a-fA-F]+\s*")
+_PLAIN_NUMBER = re.compile(r"\s*[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?\s*")
+MOSTLY = 0.5
+
+
+def check_numeric_text(name: str, values: Any, where: str = "the data", offset: int = 0) -> None:
+    """Refuse a text column (of no role) whose first ``TEXT_SAMPLE`` non-empty cells are more than half
+    number-like (``1.5``, ``1,234``, ``0x1A``), naming the first cell that is not a plain number (or the
+    first cell, when all are numbers stored as text)."""
+    cells = [(i, v) for i, v in enumerate(list(values)[:TEXT_SAMPLE]) if isinstance(v, str) and v.strip()]
+    if not cells:
+        return
+    like = sum(1 for _, v in cells if _NUMBER_LIKE.fullmatch(v))
+    if like <= MOSTLY * len(cells):
+        return
+    bad = next(((i, v) for i, v in cells if not _PLAIN_NUMBER.fullmatch(v)), None)
+    fix = ("write plain numbers (digits and one '.' as decimal point: 1234.5, not '1,234.5' nor hex such as '0x1A') "
+           "as numbers, not text; or list the column under 'categorical' if it holds labels, or name the features "
+           "in the spec to leave it out")
+    if bad is None:
+        i, v = cells[0]
+        msg = (f"{where} column {name!r} holds numbers stored as text (row {i + offset}: {v!r:.40}), so it would be "
+               f"left out of the default features; {fix}")
+    else:
+        i, v = bad
+        msg = (f"{where} column {name!r} holds {v!r:.40} at row {i + offset}, which is not a number, while most of its "
+               f"cells are numbers; {fix}")
+    raise InvalidData(msg, errors=[{"field": name, "row": (bad or cells[0])[0] + offset, "value": (bad or cells[0])[1],
+                                    "message": "not a number"}])
+
+
+def unclaimed_text(spec: TuneSpec, schema: dict[str, str]) -> list[str]:
+    """Text columns that ``check_numeric_text`` looks at: no role in the spec, and the features not listed."""
+    if spec.features is not None:
+        return []
+    roles = {spec.target, *spec.categorical, spec.cv.group_by, spec.cv.order_by, spec.cv.row_key}
+    return [c for c, kind in schema.items() if kind == "text" and c not in roles]
 
 
 # ---- column checks shared by both front ends ---------------------------------------------------------
@@ -295,8 +340,20 @@ def fingerprint_of(lanes: dict[str, np.ndarray], rows: int) -> dict[str, Any]:
     return {"sha256": h.hexdigest(), "rows": int(rows), "columns": len(lanes), "method": FINGERPRINT_METHOD}
 
 
-def fingerprint_columns(cols: dict[str, np.ndarray], names: list[str], offset: int = 0) -> dict[str, np.ndarray]:
-    return {name: column_lanes(cols[name], offset) for name in names}
+def fingerprint_columns(cols: dict[str, np.ndarray], names: list[str], offset: int = 0,
+                        labels: Any = ()) -> dict[str, np.ndarray]:
+    """Lanes of the columns ``names``; a column in ``labels`` (categorical, cv.group_by) by its level texts
+    (``table.categorical_column``), so a label column gives one fingerprint whether it was stored as
+    numbers (JSON ``7``) or as text (a CSV cell ``7``, read as text because the column is categorical)."""
+    from .table import categorical_column
+
+    return {name: column_lanes(categorical_column(cols, name, offset) if name in labels else cols[name], offset)
+            for name in names}
+
+
+def label_columns(spec: TuneSpec) -> set[str]:
+    """The columns a spec reads as labels: categorical inputs and the cv.group_by column."""
+    return {c for c in (*spec.categorical, spec.cv.group_by) if c}
 
 
 # ---- the refit and the result ------------------------------------------------------------------------

@@ -41,9 +41,9 @@ from .solvers import convergence_warnings, fit, watch_convergence
 from .spec import TuneSpec, parse_spec
 from .summaries import Summary
 from .advice import data_warnings
-from .table import categorical_column, numeric_column
+from .table import categorical_column, key_column, numeric_column
 from .result import (PLOT_SAMPLE, TuneResult, add_lanes, build_model, check_spread, fingerprint_columns,
-                     fingerprint_of, finish, metric_value, refit_all_rows, score_splits, select, setting_df,
+                     fingerprint_of, label_columns, finish, metric_value, refit_all_rows, score_splits, select, setting_df,
                      table_rows)
 from .tune import Budget, basis_settings, check_budget, check_levels, resolve_columns
 
@@ -90,7 +90,7 @@ class _Ctx:
 
 def _keys(ctx: _Ctx, batch: dict[str, np.ndarray], offset: int, rows: int) -> np.ndarray:
     if ctx.spec.cv.row_key:
-        return batch[ctx.spec.cv.row_key]
+        return key_column(batch, ctx.spec.cv.row_key, offset)
     return np.arange(offset, offset + rows)
 
 
@@ -130,7 +130,7 @@ def _scan_partition(ctx: _Ctx, part: Partition) -> Scan:
         b = y.size
         if b == 0:
             continue
-        lanes = add_lanes(lanes, fingerprint_columns(batch, ctx.columns, pos))
+        lanes = add_lanes(lanes, fingerprint_columns(batch, ctx.columns, pos, label_columns(ctx.spec)))
         bm = X.mean(axis=0)
         bm2 = ((X - bm) ** 2).sum(axis=0)
         delta = bm - mean
@@ -372,6 +372,18 @@ def check_partitions(schema: dict[str, str], spec: Any, n_rows: int, budget: Bud
     check_stream_spec(spec)
     features, _ = resolve_columns(spec, schema)
     return check_budget(spec, max(1, n_rows), len(features), budget, rows_in_memory=spec.execution.batch_rows)
+
+
+def check_batch(schema: dict[str, str], spec: Any, batch: dict[str, np.ndarray], offset: int = 0) -> None:
+    """The checks the scan applies to every batch (numbers, labels, row keys), on one batch: the service runs
+    them on a streamed source's first block at submission, so a refusal there is a 422 as in memory."""
+    spec = parse_spec(spec)
+    features, columns = resolve_columns(spec, schema)
+    ctx = _Ctx(spec, features, columns, spec.execution.batch_rows, schema=dict(schema))
+    _numeric_block(ctx, batch, offset)
+    for name in label_columns(spec):
+        categorical_column(batch, name, offset)
+    _keys(ctx, batch, offset, len(batch[spec.target]))
 
 
 def score_partitions(model: FittedModel, partitions: Sequence[Partition], spec: Any, metric: str,

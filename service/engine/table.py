@@ -110,15 +110,36 @@ def categorical_column(cols: Columns, name: str, offset: int = 0) -> np.ndarray:
             raise InvalidData(f"categorical column {name!r} holds missing values at rows {bad}; fill them in",
                               errors=[{"field": name, "rows": bad, "message": "missing"}])
     if raw.dtype.kind == "O" and _all_text(raw):
-        return raw  # already Python strings (the API's text columns): no copy, no fixed width
-    # An object array of Python strings, never fixed-width unicode: one long label would widen every row.
-    out = np.empty(raw.size, dtype=object)
-    out[:] = [_level(v) for v in raw]
-    missing = [i + offset for i, v in enumerate(out) if v is None][:5]
+        out = raw  # already Python strings (the API's text columns): no copy, no fixed width
+    else:
+        # An object array of Python strings, never fixed-width unicode: one long label would widen every row.
+        out = np.empty(raw.size, dtype=object)
+        out[:] = [_level(v) for v in raw]
+    # An empty (or blank) label is a missing value, as an empty CSV cell is: refused on every path.
+    missing = [i + offset for i, v in enumerate(out) if v is None or not v.strip()][:5]
     if missing:
-        raise InvalidData(f"categorical column {name!r} holds missing values at rows {missing}; fill them in",
+        raise InvalidData(f"categorical column {name!r} holds missing values (empty or blank labels) at rows {missing}; "
+                          "fill them in or drop those rows",
                           errors=[{"field": name, "rows": missing, "message": "missing"}])
     return out
+
+
+def key_column(cols: Columns, name: str, offset: int = 0) -> np.ndarray:
+    """The ``cv.row_key`` column, refusing missing keys (NaN, None, NaT) with their first rows (counted from
+    ``offset``): a missing key has no fold of its own, in memory or streamed."""
+    raw = cols[name]
+    if raw.dtype.kind == "f":
+        missing = np.flatnonzero(~np.isfinite(raw))
+    elif raw.dtype.kind in "OM":
+        missing = np.flatnonzero([_level(v) is None for v in raw]) if raw.dtype.kind == "O" else np.flatnonzero(np.isnat(raw))
+    else:
+        return raw
+    if missing.size:
+        rows = (missing[:5] + offset).tolist()
+        raise InvalidData(f"cv.row_key column {name!r} holds missing keys at rows {rows}; give every row a key, or "
+                          "drop the row_key setting (folds then follow row positions)",
+                          errors=[{"field": name, "rows": rows, "message": "missing key"}])
+    return raw
 
 
 def _all_text(raw: np.ndarray) -> bool:
@@ -169,6 +190,8 @@ def _level(v: Any) -> str | None:
     NA and NaT, numpy's NaT. A missing value is never learned as a level named 'nan' or '<NA>'."""
     if v is None or type(v).__name__ in ("NAType", "NaTType"):
         return None
+    if isinstance(v, (bool, np.bool_)):  # JSON's spelling, as a CSV or Parquet boolean read as a label
+        return "true" if v else "false"
     if isinstance(v, (float, np.floating)):
         if not np.isfinite(v):
             return None

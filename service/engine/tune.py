@@ -23,13 +23,13 @@ from .basis import (BasisSetting, Categories, InputScaler, check_rbf_width, n_po
 from .folds import Plan, make_plan, order_key
 from .parallel import ordered_map, single_blas, usable_cores
 from .model import FittedModel, thin_residuals
-from .result import (TuneResult, build_model, check_spread, column_kind, fingerprint_columns,
-                     fingerprint_of, finish, metric_value, refit_all_rows, score_splits, select, setting_df, table_rows)
+from .result import (TuneResult, build_model, check_numeric_text, check_spread, column_kind, fingerprint_columns,
+                     fingerprint_of, label_columns, unclaimed_text, finish, metric_value, refit_all_rows, score_splits, select, setting_df, table_rows)
 from .solvers import Fit, convergence_warnings, fit, watch_convergence
 from .spec import TuneSpec, parse_spec
 from .summaries import Summary
 from .advice import data_warnings
-from .table import as_columns, categorical_column, numeric_column
+from .table import as_columns, categorical_column, key_column, numeric_column
 
 LEVERAGE_ONE = 1e-10  # a row with hᵢᵢ ≥ 1 − this has leverage 1: its leave-one-out error needs a refit
 MAX_LOO_REFIT_FLOPS = 2e10
@@ -102,6 +102,8 @@ def prepare(data: Any, spec: TuneSpec, budget: Budget | None = None) -> Prepared
         raise InvalidData("the data has no rows; send at least a few rows per fold")
     schema = {c: column_kind(v) for c, v in cols.items()}
     features, used = resolve_columns(spec, schema)
+    for c in unclaimed_text(spec, schema):
+        check_numeric_text(c, cols[c])
     y = numeric_column(cols, spec.target, "target")
     if np.ptp(y) == 0:
         raise InvalidData(f"target column {spec.target!r} is constant ({y[0]:g}); there is nothing to learn — "
@@ -120,7 +122,7 @@ def prepare(data: Any, spec: TuneSpec, budget: Budget | None = None) -> Prepared
         groups = categorical_column(cols, spec.cv.group_by)
     if spec.cv.scheme == "time_ordered":
         order = order_key(cols[spec.cv.order_by], spec.cv.order_by)
-    keys = cols[spec.cv.row_key] if spec.cv.row_key else None
+    keys = key_column(cols, spec.cv.row_key) if spec.cv.row_key else None
     w = row_weights(cols, spec.weight) if spec.weight else None
     return Prepared(cols, features, X, y, categories, cat_block, groups, order, used, keys, w)
 
@@ -398,7 +400,7 @@ def _tune(data, spec: TuneSpec, progress, should_stop, budget, span=None) -> Tun
                                          scaler)
     return finish(spec, settings, rows, picks, model, full, n_rows=n, n_splits=search.n_splits,
                   folds=search.assignment, oof_predictions=oof_pred, oof_observed=prep.y,
-                  fingerprint=fingerprint_of(fingerprint_columns(prep.cols, prep.used), n),
+                  fingerprint=fingerprint_of(fingerprint_columns(prep.cols, prep.used, 0, label_columns(spec)), n),
                   warnings=search.warnings + data_warnings(
                       spec, {c: column_kind(v) for c, v in prep.cols.items()}, prep.used, int(n), search.n_splits,
                       len(model.term_names)),

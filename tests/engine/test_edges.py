@@ -136,7 +136,7 @@ def test_missing_category_is_refused_with_column_and_row(missing):
     site[[5, 11]] = pd.NA if missing == "pd.NA" else missing
     data["site"] = site
     # common practice: a missing value is not a level; it is refused like a numeric NaN
-    with pytest.raises(InvalidData, match=r"'site' holds missing values at rows \[5, 11\]"):
+    with pytest.raises(InvalidData, match=r"'site' holds missing values .empty or blank labels. at rows \[5, 11\]"):
         tune(data, {"target": "y", "features": ["x0"], "categorical": ["site"], "cv": {"folds": 3}})
 
 

@@ -175,10 +175,12 @@ async def _predict(request: Request, served: Served, interval_q: float | None) -
     mt = content_type.split(";", 1)[0].strip().lower()  # as render.media_type
     raw = await request.body()
     if mt == "text/csv":
+        labels = set(served.model.categories.names)  # read as text: a level "01" is not the number 1
         if len(raw) > 65536:
-            cols = await to_thread.run_sync(functools.partial(tables.from_csv, raw, where="body", max_label=max_label))
+            cols = await to_thread.run_sync(functools.partial(tables.from_csv, raw, where="body", max_label=max_label,
+                                                              spec=labels))
         else:
-            cols = tables.from_csv(raw, where="body", max_label=max_label)
+            cols = tables.from_csv(raw, where="body", max_label=max_label, spec=labels)
         n = len(next(iter(cols.values())))
         tables.check_row_limit(n, limit, "max_rows_per_request", "the CSV body")
         interval = interval_q

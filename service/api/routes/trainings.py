@@ -219,7 +219,7 @@ async def submit(request: Request, name: ModelName) -> Response:
                     intake.discard(path)
                     raise
         else:
-            cols, origin = intake.load_data(data, settings, upload=upload)
+            cols, origin = intake.load_data(data, settings, upload=upload, spec=intake.parse(spec_raw))
             if isinstance(data, dict):
                 data.pop("rows", None)  # the row objects are columns now: free them before validating and staging
             spec, counts = intake.validate(cols, spec_raw, settings)
