@@ -13,7 +13,8 @@ from anyio import to_thread
 from fastapi import APIRouter, Path, Query, Request
 from fastapi.responses import Response
 
-from service.api import answers as A, auth, monitor, tables
+from service import tables
+from service.api import answers as A, auth, monitor
 from service.api.render import parse_json
 from service.errors import InvalidData
 from service.store.monitor import HOUR, bucket_of
