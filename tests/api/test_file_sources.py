@@ -374,7 +374,7 @@ def test_what_the_metadata_shows_is_refused_before_a_job_is_queued(tmp_path, kit
         # a CSV read whole at submission (under 8 MiB): its row count and row_key are exact too
         (d / "header.csv").write_text("flow_lps,head_m,energy_kwh\n")
         r = submit(base, "header.csv", streaming)
-        assert r.status_code == 422 and "holds no rows (counted in the CSV file" in r.json()["detail"], r.text
+        assert r.status_code == 422 and "has a header but no rows" in r.json()["detail"], r.text  # the one CSV reader's words
         (d / "sites.csv").write_text("flow_lps,head_m,energy_kwh,site\n" + "".join(
             f"{a},{b},{c},7\n" for a, b, c in zip(*(v.tolist() for v in cols.values()))))
         r = submit(base, "sites.csv", dict(streaming, cv={"scheme": "kfold", "row_key": "site"}))
