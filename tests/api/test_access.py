@@ -18,6 +18,7 @@ from service.errors import Forbidden
 EXPECTED = {
     ("POST", "/v1/models/{name}/predictions"): {"predict", "admin"},
     ("POST", "/v1/models/{name}/versions/{version}/predictions"): {"predict", "admin"},
+    ("POST", "/v1/models/{name}/outcomes"): {"predict", "admin"},  # scoring rows is a prediction
     ("POST", "/v1/models/{name}/trainings"): {"train", "admin"},
     ("DELETE", "/v1/trainings/{job_id}"): {"train", "admin"},
     ("PUT", "/v1/models/{name}/live"): {"admin"},
