@@ -179,7 +179,10 @@ def demo(fresh):
     env = {**env, "TIKHON_PORT": str(port)}
     log = src.parent / "serve.log"
     with open(log, "wb") as out:
-        proc = subprocess.Popen(["bash", "-c", setup_commands()[0]], cwd=src, env=env, stdout=out,
+        # The README's command, unchanged, after a watchdog that ends the whole group (the server and its
+        # training processes) if this test process dies without stopping them (a SIGKILLed test run).
+        watchdog = f"( while kill -0 {os.getpid()} 2>/dev/null; do sleep 2; done; kill -KILL -- -$$ ) & "
+        proc = subprocess.Popen(["bash", "-c", watchdog + setup_commands()[0]], cwd=src, env=env, stdout=out,
                                 stderr=subprocess.STDOUT, start_new_session=True)
     try:
         # Wait for readiness: the install, the demo training and the start-up. A bound on waiting for
