@@ -93,7 +93,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
     from service.api.monitor import Monitor
     from service.store.monitor import MonitorSums
 
-    app.state.monitor = Monitor(MonitorSums(store.db.sql), enabled=settings.monitor, flush_s=settings.monitor_flush_s,
+    app.state.monitor = Monitor(MonitorSums(store.db), enabled=settings.monitor, flush_s=settings.monitor_flush_s,
                                 retention_days=settings.monitor_retention_days)
     metrics.watch_jobs(store.jobs.counts)
 

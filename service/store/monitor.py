@@ -15,9 +15,7 @@ from __future__ import annotations
 from typing import Any, Iterable
 
 from sqlalchemy import and_, delete, insert, select, update
-from sqlalchemy.engine import Engine
 
-from service.store.catalog import read_txn, write_txn
 from service.store.schema import monitor_sums as sums_t
 from service.store.util import utcnow
 
@@ -49,14 +47,14 @@ def add_counts(a: Any, b: Any) -> Any:
 class MonitorSums:
     """Reads and writes ``monitor_sums`` rows (see the module docstring)."""
 
-    def __init__(self, engine: Engine):
-        self._engine = engine
+    def __init__(self, db):
+        self._db = db  # the store's CatalogAccess: its engine is read at every call
 
     def put(self, replica: str, entries: Iterable[tuple[str, int, int, str, dict[str, Any]]]) -> int:
         """Write this replica's cumulative counts: ``(model, version, bucket, kind, counts)`` each."""
         n = 0
         now = utcnow()
-        with write_txn(self._engine) as conn:
+        with self._db.write() as conn:
             for model, version, bucket, kind, counts in entries:
                 key = and_(sums_t.c.model == model, sums_t.c.version == int(version), sums_t.c.bucket == int(bucket),
                            sums_t.c.kind == kind, sums_t.c.replica == replica)
@@ -69,7 +67,7 @@ class MonitorSums:
 
     def read(self, model: str, version: int, kind: str, since: int, until: int) -> dict[int, dict[str, Any]]:
         """Counts per hour bucket in [since, until], summed over replicas."""
-        with read_txn(self._engine) as conn:
+        with self._db.read() as conn:
             rows = conn.execute(
                 select(sums_t.c.bucket, sums_t.c.counts)
                 .where(sums_t.c.model == model, sums_t.c.version == int(version), sums_t.c.kind == kind,
@@ -83,11 +81,11 @@ class MonitorSums:
 
     def versions(self, model: str) -> list[int]:
         """Versions of a model with any monitoring rows."""
-        with read_txn(self._engine) as conn:
+        with self._db.read() as conn:
             return sorted({int(v) for (v,) in conn.execute(
                 select(sums_t.c.version).where(sums_t.c.model == model).distinct())})
 
     def prune(self, before: int) -> int:
         """Delete every row of a bucket that starts before ``before`` (retention)."""
-        with write_txn(self._engine) as conn:
+        with self._db.write() as conn:
             return int(conn.execute(delete(sums_t).where(sums_t.c.bucket < int(before))).rowcount or 0)

@@ -34,7 +34,7 @@ def catalog_down(store):
     from service.store.catalog import create_catalog_engine
 
     dead = create_catalog_engine(f"postgresql+psycopg://nobody@127.0.0.1:{_closed_port()}/tikhon")
-    holders = [(store, "engine"), (store.keys, "_engine"), (store.jobs, "_engine")]
+    holders = [(store.db, "sql")]  # shared by the store, its jobs and keys, and the monitoring counts
     saved = [getattr(o, a) for o, a in holders]
     for o, a in holders:
         setattr(o, a, dead)
