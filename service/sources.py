@@ -256,6 +256,7 @@ def csv_head(opener, spec, where: str) -> tuple[dict[str, str], dict[str, Any]]:
             reader = pcsv.open_csv(src, read_options=opts, convert_options=pcsv.ConvertOptions(
                 strings_can_be_null=True))
             names = reader.schema.names
+            check_column_names(names, "the training data" if spec is not None else where)
             _unique_where(names, where)
             reader.close()
             src = _reopen(src, opener)
@@ -291,6 +292,17 @@ def _reopen(src, opener):
     with contextlib.suppress(Exception):
         src.close()
     return opener()
+
+
+def check_column_names(names: list[Any], where: str) -> None:
+    """Refuse a blank column name: specs, predictions and answers name columns, and a blank one can
+    neither be named nor told apart from another."""
+    for i, name in enumerate(names):
+        if not isinstance(name, str) or not name.strip():
+            raise InvalidData(
+                f"column {i + 1} of {where} has an empty name ({name!r}); give every column a name in the header, "
+                "or drop the column.",
+                errors=[{"field": f"columns[{i}]", "value": name, "message": "a column needs a non-empty name"}])
 
 
 def _unique_where(names: list[str], where: str) -> None:

@@ -22,6 +22,7 @@ import numpy as np
 import orjson
 
 from service import tables
+from service.sources import check_column_names
 from service.errors import BudgetExceeded, InvalidData, InvalidSpec, NotFound
 from service.settings import Settings
 from service.store.jobs import IDEMPOTENCY_KEY_RULE
@@ -44,18 +45,6 @@ def table_sha256(cols: tables.Table) -> str:
             h.update(np.ascontiguousarray(arr, dtype="<f8").tobytes())
         h.update(b"\x1e")
     return h.hexdigest()
-
-
-def check_column_names(names: list[Any], where: str) -> None:
-    """Refuse a blank column name: specs, predictions and answers name columns, and a blank one can
-    neither be named nor told apart from another."""
-    for i, name in enumerate(names):
-        if not isinstance(name, str) or not name.strip():
-            raise InvalidData(
-                f"column {i + 1} of {where} has an empty name ({name!r}); give every column a name in the header, "
-                "or drop the column.",
-                errors=[{"field": f"columns[{i}]", "value": name, "message": "a column needs a non-empty name"}])
-
 
 
 def check_spec_size(spec_raw: Any, settings: Settings) -> None:
