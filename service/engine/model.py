@@ -176,13 +176,7 @@ class FittedModel:
         if _nrows(cols) <= SMALL_ROWS and self.basis.kind != "rbf":
             return self._detail_small(cols, interval)
         Phi, X, unseen = self.design(cols)
-        value = self.intercept + Phi @ self.weights
-        Zs = (Phi - self.column_mean) / self.column_scale
-        FZ = Zs @ self.leverage_factor.T if self.leverage_factor.size else np.zeros((Phi.shape[0], 0))
-        lev = 1.0 / self.n_train + np.einsum("ij,ij->i", FZ, FZ)
-        lower = upper = None
-        if interval is not None:
-            lower, upper = self._interval(Phi, value, 1.0 - interval)
+        value, lev, lower, upper = self._numbers(Phi, interval)
         warnings = self._warnings(X, unseen, lev, cols)
         for i in np.flatnonzero(~np.isfinite(value)):  # overflow: say so rather than answer a bare null
             warnings[i].append(
@@ -251,8 +245,8 @@ class FittedModel:
         Phi = np.array(out, dtype=np.float64).reshape(m, total)
         return Phi, rows, unseen
 
-    def _detail_small(self, cols: dict[str, np.ndarray], interval: float | None) -> dict[str, Any]:
-        Phi, rows, unseen = self._design_small(cols)
+    def _numbers(self, Phi: np.ndarray, interval: float | None):
+        """(values, leverages, lower, upper bounds or None) of the raw design rows ``Phi`` (m, p)."""
         value = self.intercept + Phi @ self.weights
         Zs = (Phi - self.column_mean) / self.column_scale
         FZ = Zs @ self.leverage_factor.T if self.leverage_factor.size else np.zeros((Phi.shape[0], 0))
@@ -260,6 +254,11 @@ class FittedModel:
         lower = upper = None
         if interval is not None:
             lower, upper = self._interval(Phi, value, 1.0 - interval)
+        return value, lev, lower, upper
+
+    def _detail_small(self, cols: dict[str, np.ndarray], interval: float | None) -> dict[str, Any]:
+        Phi, rows, unseen = self._design_small(cols)
+        value, lev, lower, upper = self._numbers(Phi, interval)
         values = value.tolist()
         levs = lev.tolist()
         _, _, _, _, _, _, _, _, lo, hi = self._small_plan
