@@ -13,6 +13,7 @@ checksummable, and it executes nothing when read.
 from __future__ import annotations
 
 import errno
+import json
 import math
 import os
 from pathlib import Path, PurePosixPath
@@ -26,6 +27,22 @@ from service import paths, sources
 from service.errors import BudgetExceeded, InvalidData, StorageFailure
 
 Table = dict[str, np.ndarray]
+UNUSED_TEXT_KEY = b"tikhon.unused_text"  # staged Parquet metadata: the source's text columns the spec left out
+
+
+class Columns(dict):
+    """A table read for a spec: only the columns it uses, and in ``unused_text`` the names of the text columns
+    it left out (never read: the engine only says they were not used, ``engine.advice.data_warnings``)."""
+
+    unused_text: tuple[str, ...] = ()
+
+
+def _with_unused(cols: Table, types: dict[str, Any], columns: list[str], spec: Any) -> Table:
+    if spec is None or not hasattr(spec, "cv"):
+        return cols
+    out = Columns(cols)
+    out.unused_text = tuple(n for n, t in types.items() if n not in columns and sources.arrow_kind(t) == sources.TEXT)
+    return out
 
 _NUMBER = (int, float)
 
@@ -217,7 +234,8 @@ def from_csv(payload: bytes | str | Path, *, where: str = "csv", max_label: int 
             check_row_limit(rows, max_rows, setting, where, at_least=True)
         for c, v in cols.items():
             parts[c].append(v)
-    return {c: (np.concatenate(v) if len(v) != 1 else v[0]) for c, v in parts.items()}
+    return _with_unused({c: (np.concatenate(v) if len(v) != 1 else v[0]) for c, v in parts.items()}, types, columns,
+                        spec)
 
 
 _OTHER_DELIMITERS = {";": "semicolon (;)", "\t": "tab", "|": "vertical bar (|)"}
@@ -262,7 +280,7 @@ def from_parquet(payload: bytes | Path, *, where: str, max_label: int | None = M
     except (pa.ArrowException, OSError) as exc:
         reason = " ".join(str(exc).split())
         raise InvalidData(f"{where} could not be read as Parquet ({reason[:300]}); send a valid Parquet file or CSV.") from None
-    return from_arrow(table, where=where, max_label=max_label, spec=spec)
+    return _with_unused(from_arrow(table, where=where, max_label=max_label, spec=spec), types, columns, spec)
 
 
 def from_file_bytes(payload: bytes | Path, filename: str | None, *, where: str, max_label: int | None = MAX_LABEL_CHARS,
@@ -380,7 +398,9 @@ def read_source(path: Path, *, where: str = "data.source", max_label: int | None
 
 
 def to_arrow(table: Table) -> pa.Table:
-    return pa.table({k: pa.array(v) for k, v in table.items()})
+    out = pa.table({k: pa.array(v) for k, v in table.items()})
+    unused = getattr(table, "unused_text", ())
+    return out.replace_schema_metadata({UNUSED_TEXT_KEY: json.dumps(list(unused)).encode()}) if unused else out
 
 
 def stage(table: Table, path: Path) -> Path:
@@ -407,4 +427,9 @@ def stage(table: Table, path: Path) -> Path:
 
 def read_staged(path: Path) -> Table:
     # checked when the job was accepted; a job staged before a lower cap still trains
-    return from_parquet(Path(path), where="staged training data", max_label=None)
+    cols = from_parquet(Path(path), where="staged training data", max_label=None)
+    meta = pq.read_schema(str(path)).metadata or {}
+    if UNUSED_TEXT_KEY in meta:
+        cols = Columns(cols)
+        cols.unused_text = tuple(json.loads(meta[UNUSED_TEXT_KEY]))
+    return cols

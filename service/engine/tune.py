@@ -402,7 +402,9 @@ def _tune(data, spec: TuneSpec, progress, should_stop, budget, span=None) -> Tun
                   folds=search.assignment, oof_predictions=oof_pred, oof_observed=prep.y,
                   fingerprint=fingerprint_of(fingerprint_columns(prep.cols, prep.used, 0, label_columns(spec)), n),
                   warnings=search.warnings + data_warnings(
-                      spec, {c: column_kind(v) for c, v in prep.cols.items()}, prep.used, int(n), search.n_splits,
+                      spec, {c: column_kind(v) for c, v in prep.cols.items()}
+                      | {c: "text" for c in getattr(data, "unused_text", ())},  # left out unread by the reader
+                      prep.used, int(n), search.n_splits,
                       len(model.term_names)),
                   drift_inputs=(prep.X, _level_counts(prep)))
 
