@@ -17,25 +17,12 @@ import httpx
 import numpy as np
 import pytest
 
+from procmem import peak_growth  # tests/procmem.py (tests/ is on pytest's pythonpath)
+
 MiB = 2**20
 CAT = "stations"
 WIDE = "wide"
 WIDE_FEATURES = [f"x{i}" for i in range(8)]  # 8 inputs at polynomial degree 4: 494 basis terms
-
-
-def _status(pid: int, field: str) -> int:
-    for line in Path(f"/proc/{pid}/status").read_text().splitlines():
-        if line.startswith(field + ":"):
-            return int(line.split()[1]) * 1024
-    raise RuntimeError(f"no {field} in /proc/{pid}/status")
-
-
-def peak_growth(pid: int, request) -> tuple[int, httpx.Response]:
-    """(peak resident memory above the level before ``request()``, its response)."""
-    Path(f"/proc/{pid}/clear_refs").write_text("5")  # reset VmHWM to the current RSS (proc(5))
-    before = _status(pid, "VmRSS")
-    response = request()
-    return _status(pid, "VmHWM") - before, response
 
 
 def _wide_rows(n: int, seed: int) -> dict[str, np.ndarray]:

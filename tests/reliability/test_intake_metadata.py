@@ -19,23 +19,11 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
+from procmem import peak_growth  # tests/procmem.py (tests/ is on pytest's pythonpath)
+
 MiB = 2**20
 ROWS = 12_000_000  # above max_training_rows (5,000,000): 12 M rows x 3 float64 columns = 275 MiB as a table
 BOUND = 64 * MiB  # what the API process may grow by while answering (the file itself is well under 1 MiB)
-
-
-def _status(pid: int, field: str) -> int:
-    for line in Path(f"/proc/{pid}/status").read_text().splitlines():
-        if line.startswith(field + ":"):
-            return int(line.split()[1]) * 1024
-    raise RuntimeError(f"no {field} in /proc/{pid}/status")
-
-
-def peak_growth(pid: int, request) -> tuple[int, httpx.Response]:
-    Path(f"/proc/{pid}/clear_refs").write_text("5")  # reset VmHWM to the current RSS (proc(5))
-    before = _status(pid, "VmRSS")
-    response = request()
-    return _status(pid, "VmHWM") - before, response
 
 
 @pytest.fixture(scope="module")
