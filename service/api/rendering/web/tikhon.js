@@ -85,7 +85,9 @@
     var status = section.querySelector("[data-status]");
     var notice = section.querySelector("[data-notice]");
     var watching = {};  // ids of jobs seen queued or running while this page is open
+    var known = {};  // ids of jobs already listed when the page was rendered, or announced since
     Array.prototype.forEach.call(tbody.querySelectorAll("tr[data-job]"), function (tr) {
+      known[tr.getAttribute("data-job")] = true;
       if (!FINAL[tr.getAttribute("data-state")]) watching[tr.getAttribute("data-job")] = true;
     });
     var failures = 0;
@@ -105,9 +107,12 @@
       var empty = section.querySelector("[data-empty]");
       if (empty) empty.hidden = jobs.length > 0;
       jobs.forEach(function (j) {
-        if (!FINAL[j.state]) { watching[j.id] = true; return; }
-        if (!watching[j.id]) return;
+        if (!FINAL[j.state]) { watching[j.id] = true; known[j.id] = true; return; }
+        // a job that ended while this page was open: seen running, or new since the page was rendered (a
+        // short job can start and finish between two checks while the page checks rarely)
+        if (!watching[j.id] && known[j.id]) return;
         delete watching[j.id];
+        known[j.id] = true;
         if (j.state === "succeeded" && j.version && notice) announce(j);
       });
     }
