@@ -53,10 +53,9 @@ def drift_figure(report: dict[str, Any]) -> Figure:
 
 def outside_figure(report: dict[str, Any]) -> Figure:
     fig, ax = _new_figure(7.0, 3.0)
-    series = [s for s in report.get("series") or [] if s.get("rows")]
+    series, t = _hours(report)
     _style(ax, title="Rows with an input outside the training range, per hour")
     if series:
-        t = [datetime.fromisoformat(s["from"].replace("Z", "+00:00")) for s in series]
         ax.plot(t, [100.0 * (s["outside_range"] or 0.0) for s in series], marker="o", color=ACCENT)
         fig.autofmt_xdate()
     else:
@@ -69,10 +68,9 @@ def outside_figure(report: dict[str, Any]) -> Figure:
 def error_figure(report: dict[str, Any]) -> Figure:
     fig, ax = _new_figure(7.0, 3.0)
     cv = report.get("cv") or {}
-    series = [s for s in report.get("series") or [] if s.get("rows")]
+    series, t = _hours(report)
     _style(ax, title="Real error of scored outcomes per hour, against the CV error")
     if series:
-        t = [datetime.fromisoformat(s["from"].replace("Z", "+00:00")) for s in series]
         ax.plot(t, [s["rmse"] for s in series], marker="o", color=ACCENT, label="live RMSE")
         if cv.get("mean") is not None:
             mean, std = float(cv["mean"]), float(cv.get("std") or 0.0)
@@ -85,3 +83,9 @@ def error_figure(report: dict[str, Any]) -> Figure:
     ax.set_ylabel("RMSE")
     _note(fig, f"{report['model']} v{report['version']}: {report['rows']} scored rows.")
     return fig
+
+
+def _hours(report: dict[str, Any]) -> tuple[list[dict[str, Any]], list[datetime]]:
+    """The report's hours that hold rows, and their start times."""
+    series = [s for s in report.get("series") or [] if s.get("rows")]
+    return series, [datetime.fromisoformat(s["from"].replace("Z", "+00:00")) for s in series]

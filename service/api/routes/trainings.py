@@ -81,14 +81,19 @@ async def _spool(request: Request, incoming: FsPath) -> FsPath:
                 out.write(chunk)
     except OSError as exc:  # a full or read-only store: a storage problem (507), never a 500
         _discard(target)
-        raise StorageFailure(
-            f"the request body could not be staged in the store folder (TIKHON_STORE) "
-            f"({exc.strerror or type(exc).__name__}); nothing was stored and no job was created. Check that "
-            "the store folder is writable and has free space, then submit again.") from None
+        raise _not_staged("the request body", exc) from None
     except BaseException:  # the body limit, a client that went away
         _discard(target)
         raise
     return target
+
+
+def _not_staged(what: str, exc: OSError) -> StorageFailure:
+    """A full or read-only store while staging ``what``: a storage problem (507), never a 500."""
+    return StorageFailure(
+        f"{what} could not be staged in the store folder (TIKHON_STORE) ({exc.strerror or type(exc).__name__}); "
+        "nothing was stored and no job was created. Check that the store folder is writable and has free space, "
+        "then submit again.")
 
 
 def _discard(path: FsPath) -> None:
@@ -144,10 +149,7 @@ async def _read_submission(request: Request, incoming: FsPath
             await to_thread.run_sync(_save_upload, upload.file, target)
         except OSError as exc:  # a full or read-only store: a storage problem (507), never a 500
             _discard(target)
-            raise StorageFailure(
-                f"the uploaded file could not be staged in the store folder (TIKHON_STORE) "
-                f"({exc.strerror or type(exc).__name__}); nothing was stored and no job was created. Check that "
-                "the store folder is writable and has free space, then submit again.") from None
+            raise _not_staged("the uploaded file", exc) from None
         except BaseException:
             _discard(target)
             raise
