@@ -14,13 +14,16 @@ station as a category) and ``wide`` (6 inputs at polynomial degree 4, 209 basis 
    20,000 rows; a flood of small training submissions (until the queue limit answers 429); a 37 MB JSON
    training body. Each answer's status is tallied (refusals are expected: 413, 422, 429).
 3. The server's peak resident memory is ``VmHWM`` from ``/proc/PID/status`` at the end (the peak over
-   the process's whole life, start-up and quiet phase included).
+   the process's whole life, start-up and quiet phase included): ``hostile_peak_rss_mb`` is the API
+   process's; ``family_peak_rss_mb`` adds the processes it started (the intake process reading large
+   JSON training bodies, the prediction process answering large batches, multiprocessing's tracker).
 
 wrk reports latency percentiles of completed requests (closed loop: ``--connections`` requests in flight).
 Request counts are bounded by the durations; only loopback addresses are used. The wrk client uses one
 thread; the hostile senders build their bodies once, before the run.
 
-Last line: ``hostile_peak_rss_mb=<m> predict_p99_ms_under_pressure=<p> predict_p99_ms_quiet=<q>``.
+Last line: ``hostile_peak_rss_mb=<m> predict_p99_ms_under_pressure=<p> predict_p99_ms_quiet=<q>
+family_peak_rss_mb=<all processes>``.
 """
 
 from __future__ import annotations
@@ -142,6 +145,17 @@ def peak_rss(pid: int) -> int:
     raise RuntimeError("no VmHWM")
 
 
+def family(pid: int) -> list[int]:
+    """``pid`` and its descendants (the intake and prediction processes it spawned)."""
+    out, todo = [], [pid]
+    while todo:
+        p = todo.pop()
+        out.append(p)
+        for task in Path(f"/proc/{p}/task").glob("*/children"):
+            todo += [int(c) for c in task.read_text().split()]
+    return out
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--quiet-s", type=float, default=15.0)
@@ -195,7 +209,13 @@ def main(argv: list[str] | None = None) -> int:
             stop.set()
             for t in threads:
                 t.join(timeout=300)
-            peak = peak_rss(proc.pid)
+            peaks = {}
+            for pid in family(proc.pid):
+                try:
+                    peaks[pid] = peak_rss(pid)
+                except (OSError, RuntimeError):  # ended meanwhile
+                    pass
+            peak = peaks.get(proc.pid, 0)
             alive = proc.poll() is None and httpx.get(f"{base}/healthz", timeout=60).status_code == 200
         finally:
             proc.terminate()
@@ -205,9 +225,12 @@ def main(argv: list[str] | None = None) -> int:
                 proc.kill()
     for (label, status), count in sorted(tally.items(), key=lambda kv: (kv[0][0], str(kv[0][1]))):
         print(f"hostile {label:22s} status {status}: {count}")
+    print("peak resident memory: " + ", ".join(f"{'API process' if pid == proc.pid else f'child {pid}'} "
+                                               f"{v / 2**20:.0f} MB" for pid, v in peaks.items())
+         )
     print(f"server alive after the run: {alive}; load average now {os.getloadavg()[0]:.1f} on {os.cpu_count()} CPUs")
     print(f"hostile_peak_rss_mb={peak / 2**20:.0f} predict_p99_ms_under_pressure={pressure:.2f} "
-          f"predict_p99_ms_quiet={quiet:.2f}")
+          f"predict_p99_ms_quiet={quiet:.2f} family_peak_rss_mb={sum(peaks.values()) / 2**20:.0f}")
     return 0
 
 

@@ -92,7 +92,7 @@ class Busy(TikhonError):
     ``retry_after`` (seconds) travels in ``extra``."""
 
     slug = "busy"
-    title = "Too many queued jobs"
+    title = "At capacity for now"
 
 
 class InvalidName(TikhonError):

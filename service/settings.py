@@ -42,6 +42,12 @@ class Settings(BaseSettings):
         2**20, ge=0, description="A JSON training body larger than this is parsed, checked and staged in a separate "
         "intake process, so building its row objects never holds the API process's interpreter lock.")
     intake_processes: int = Field(1, ge=1, description="Intake processes per API process (started on first use).")
+    predict_process_bytes: int = Field(
+        256 * 2**10, ge=0, description="A prediction body larger than this is answered in a separate prediction process "
+        "at a lower CPU priority, so large batches never hold the API process's interpreter lock while single rows wait.")
+    predict_processes: int = Field(
+        1, ge=0, description="Prediction processes per API process (started on first use; 0 answers every request in the "
+        "API process).")
     max_rows_per_request: int = Field(100_000, ge=1, description="Most rows in one predict request.")
     max_training_rows: int = Field(5_000_000, ge=1, description="Most rows in one in-memory training job.")
     max_training_seconds: float = Field(3600.0, gt=0, description="Wall-time limit of one training job.")

@@ -49,6 +49,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
 
     from service.api.intake_process import IntakePool
     from service.api.model_cache import ModelCache
+    from service.api.predict_lane import PredictLane
     from service.api.routes import health, models, pages, plots, predictions, trainings
 
     @asynccontextmanager
@@ -57,6 +58,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
         yield
         app.state.monitor.close()  # writes the last counts
         app.state.intake.close()
+        app.state.predict_lane.close()
         for fn in on_shutdown or ():
             fn()
 
@@ -84,6 +86,8 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
     paths.register(settings)  # problem details name these folders' paths relative to them, never absolute
     app.state.store = store
     app.state.intake = IntakePool(settings.intake_processes)  # large JSON training bodies are read there
+    app.state.predict_lane = PredictLane(settings.predict_processes, settings.predict_process_bytes,
+                                         cache_models=settings.cache_models, cache_bytes=settings.cache_bytes)
     app.state.metrics = metrics
     # The catalog's last answers (keys, live versions), served for up to stale_ok_s while it is unavailable.
     last_known = LastKnown(settings.stale_ok_s, CatalogWatch())

@@ -37,9 +37,24 @@ class Served:
     inputs: list[str] = field(default_factory=list)
     block_json: bytes = b""
     nbytes: int = 0  # the loaded version's size in memory (service.store.cache.footprint)
+    folder: str = ""  # the version's folder and its manifest's SHA-256: where a prediction process loads it
+    checksum: str = ""
 
     def __post_init__(self) -> None:
         self.block_json = orjson.dumps(self.block)
+
+
+def served_from(name: str, version: int, model: Any, manifest: dict[str, Any], *, folder: str = "",
+                checksum: str = "", nbytes: int = 0) -> Served:
+    """A loaded version ready to serve (the API process's cache and the prediction processes build it alike)."""
+    served = Served(
+        name=name, version=int(version), model=model, manifest=manifest,
+        block=model_block(name, version, manifest, model),
+        inputs=list(model.features) + list(getattr(model.categories, "names", [])),
+        nbytes=int(nbytes or 0), folder=folder, checksum=checksum,
+    )
+    served.nbytes += len(served.block_json)
+    return served
 
 
 def model_block(name: str, version: int, manifest: dict[str, Any], model: Any) -> dict[str, Any]:
@@ -112,15 +127,9 @@ class ModelCache:
         if self._metrics is not None:
             self._metrics.cache_misses.inc()
         loaded = self._store.load(name, version)
-        manifest = loaded.manifest
-        model = loaded.model
-        served = Served(
-            name=name, version=int(version), model=model, manifest=manifest,
-            block=model_block(name, version, manifest, model),
-            inputs=list(model.features) + list(getattr(model.categories, "names", [])),
-            nbytes=int(getattr(loaded, "nbytes", 0) or 0),
-        )
-        served.nbytes += len(served.block_json)
+        served = served_from(name, version, loaded.model, loaded.manifest, nbytes=getattr(loaded, "nbytes", 0),
+                             folder=str(self._store.version_folder(name, version)),
+                             checksum=getattr(loaded, "checksum", ""))
         self._served.put((name, int(version)), served, served.nbytes)  # not kept when larger than the bound
         return served
 

@@ -108,12 +108,14 @@ class Monitor:
             cols = {e["name"]: np.concatenate([np.asarray(c[e["name"]]) for _, c, _, _ in items]) for e in names}
             value = np.concatenate([v for _, _, v, _ in items])
             lev = np.concatenate([lv for _, _, _, lv in items])
-            try:
-                counts = drift.count_inputs(served.model, ref, cols, value, lev)
-            except Exception as exc:  # never fail a prediction or the flusher over monitoring
-                log.warning("monitoring could not count %d rows of %s v%s: %s", value.size, name, version, exc)
-                continue
-            self._add((name, version, bucket, "inputs"), counts)
+            counts = _count_inputs(served, ref, cols, value, lev)
+            if counts is not None:
+                self._add((name, version, bucket, "inputs"), counts)
+
+    def add_inputs(self, served: Any, counts: dict[str, Any] | None) -> None:
+        """Counts of served rows made elsewhere (``input_counts`` in a prediction process), added as if observed here."""
+        if self.enabled and counts is not None:
+            self._add((served.name, int(served.version), bucket_of(time.time()), "inputs"), counts)
 
     def outcome(self, served: Any, observed: np.ndarray, detail: dict[str, Any]) -> dict[str, Any]:
         counts = drift.count_outcomes(observed, detail["value"], detail.get("lower"), detail.get("upper"))
@@ -150,6 +152,23 @@ class Monitor:
                 self._last_prune = now
                 self.sums.prune(bucket_of(now - self.retention_s))
             return n
+
+
+def input_counts(served: Any, cols: dict[str, np.ndarray], detail: dict[str, Any]) -> dict[str, Any] | None:
+    """The monitoring counts of one request's rows (None for a version without training bins)."""
+    ref = _reference(served)
+    if ref is None:
+        return None
+    return _count_inputs(served, ref, cols, detail["value"], detail["leverage"])
+
+
+def _count_inputs(served: Any, ref: dict[str, Any], cols: dict[str, np.ndarray], value: np.ndarray,
+                  lev: np.ndarray) -> dict[str, Any] | None:
+    try:
+        return drift.count_inputs(served.model, ref, cols, value, lev)
+    except Exception as exc:  # never fail a prediction or the flusher over monitoring
+        log.warning("monitoring could not count %d rows of %s v%s: %s", value.size, served.name, served.version, exc)
+        return None
 
 
 def _reference(served: Any) -> dict[str, Any] | None:

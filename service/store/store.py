@@ -268,6 +268,10 @@ class Store:
     def _version_dir(self, name: str, version: int) -> Path:
         return self.root / name / str(version)
 
+    def version_folder(self, name: str, version: int) -> Path:
+        """The folder holding one version's files (what a prediction process reads, ``service.api.predict_lane``)."""
+        return self._version_dir(validate_name(name), version)
+
     def _discard(self, path: Path) -> Path | None:
         """Move ``path`` out of sight into .trash atomically; return where it went (None if gone)."""
         dest = self.root / TRASH_DIR / uuid.uuid4().hex

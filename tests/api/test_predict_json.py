@@ -13,8 +13,8 @@ import numpy as np
 import pytest
 from sklearn.datasets import load_diabetes
 
-import service.api.routes.predictions as predictions_module
-from service.api.routes.predictions import _json
+import service.api.predict_io as predictions_module
+from service.api.predict_io import json_answer as _json
 from service.engine import tune
 
 SERVED = SimpleNamespace(block_json=b'{"name":"m","version":3}')

@@ -7,23 +7,15 @@ numpy on precomputed basis arrays); larger batches go to a worker thread so the 
 
 from __future__ import annotations
 
-import csv
 import functools
-import io
-import math
 from typing import Any
 
-import orjson
 from anyio import to_thread
 from fastapi import APIRouter, Request
 from fastapi.responses import Response
 
-from service.csvcells import number_cell, text_cell
-from service import tables
-from service.api import auth, levels
+from service.api import auth, levels, predict_io
 from service.api.model_cache import Served
-from service.api.render import media_type, parse_json
-from service.problems import UnsupportedMediaType
 from service.api.stale import note_stale
 from service.api.schemas import PredictRequest, PredictResponse, schema_ref
 from service.errors import InvalidData
@@ -86,7 +78,7 @@ def _query_interval(request: Request) -> float | None:
         value = float(raw)
     except ValueError:
         value = raw
-    return _check_interval(value, "query.interval")
+    return predict_io.check_interval(value, "query.interval")
 
 
 def _version(raw: str) -> int:
@@ -128,147 +120,34 @@ async def predict_version(request: Request) -> Response:
     return await _predict(request, served, interval)
 
 
-def _check_interval(value: Any, field: str) -> float | None:
-    if value is None:
-        return None
-    if type(value) not in (int, float) or not math.isfinite(value) or not 0 < value < 1:
-        raise InvalidData(
-            f"{field} must be a number strictly between 0 and 1 (the interval level, e.g. 0.9), got {value!r}.",
-            errors=[{"field": field, "value": value, "message": "expected 0 < interval < 1"}],
-        )
-    return float(value)
-
-
-def _parse_json_body(raw: bytes, limit: int, interval_q: float | None, max_label: int | None = tables.MAX_LABEL_CHARS
-                     ) -> tuple[dict, float | None, int, str]:
-    body = parse_json(raw)
-    if not isinstance(body, dict):
-        raise InvalidData(
-            f"the body must be a JSON object {{\"rows\": [...], \"interval\": 0.9}}, got a {type(body).__name__}.",
-            errors=[{"field": "body", "message": "expected an object"}],
-        )
-    extra = sorted(set(body) - {"rows", "interval", "unseen_levels"})
-    if extra:
-        raise InvalidData(
-            f"unknown field(s) {extra} in the body; only 'rows', 'interval' and 'unseen_levels' are read.",
-            errors=[{"field": k, "message": "unknown field"} for k in extra],
-        )
-    if "rows" not in body:
-        raise InvalidData("the body lacks 'rows', the list of input rows.", errors=[{"field": "rows", "message": "missing"}])
-    interval = _check_interval(body.get("interval"), "interval") if "interval" in body else interval_q
-    rows = body["rows"]
-    if isinstance(rows, list):
-        tables.check_row_limit(len(rows), limit, "max_rows_per_request", "rows")
-    cols = tables.from_rows(rows, where="rows", max_label=max_label)
-    return cols, interval, len(rows), levels.mode(body.get("unseen_levels"), "unseen_levels")
-
-
-def _compute(served: Served, cols: dict, interval: float | None, memory_bytes: int) -> dict[str, Any]:
-    return served.model.predict_detail(cols, interval=interval, memory_bytes=memory_bytes)
+def _compute(served: Served, cols: dict, interval: float | None, unseen: str, ask: predict_io.Ask,
+             limits: dict[str, Any], monitor: Any) -> tuple[int, bytes | str, str, dict]:
+    """Everything after reading the body: unseen levels, the numbers, monitoring's append, the answer."""
+    if unseen == "refuse" and served.model.categories.names:
+        levels.refuse_unseen(served.model, cols)
+    detail = served.model.predict_detail(cols, interval=interval, memory_bytes=limits["predict_memory_bytes"])
+    monitor.observe(served, cols, detail)  # an append (counted off the request path), or counted here when large
+    return (int(detail["value"].shape[0]), *predict_io.answer(served, detail, interval, ask))
 
 
 async def _predict(request: Request, served: Served, interval_q: float | None) -> Response:
-    settings = request.app.state.settings
-    limit = settings.max_rows_per_request
-    max_label = settings.max_label_chars
+    state = request.app.state
     content_type = auth.raw_header(request.scope, b"content-type") or ""
     mt = content_type.split(";", 1)[0].strip().lower()  # as render.media_type
+    ask = predict_io.Ask(mt, auth.raw_header(request.scope, b"accept") or "", interval_q,
+                         request.query_params.get("unseen_levels") if mt == "text/csv" else None)
     raw = await request.body()
-    if mt == "text/csv":
-        labels = set(served.model.categories.names)  # read as text: a level "01" is not the number 1
+    if state.predict_lane.takes(len(raw)):  # a large body: answered in a lower-priority process
+        n, payload, media, headers, counts = await state.predict_lane.answer(
+            served, raw, ask, predict_io.limits_of(state.settings), state.monitor.enabled)
+        state.monitor.add_inputs(served, counts)
+    else:
+        limits = predict_io.limits_of(state.settings)
         if len(raw) > 65536:
-            cols = await to_thread.run_sync(functools.partial(tables.from_csv, raw, where="body", max_label=max_label,
-                                                              spec=labels))
+            cols, interval, n, unseen = await to_thread.run_sync(predict_io.read, served, raw, ask, limits)
         else:
-            cols = tables.from_csv(raw, where="body", max_label=max_label, spec=labels)
-        n = len(next(iter(cols.values())))
-        tables.check_row_limit(n, limit, "max_rows_per_request", "the CSV body")
-        interval = interval_q
-        unseen = levels.mode(request.query_params.get("unseen_levels"), "query.unseen_levels")
-    elif mt in ("", "application/json") or mt.endswith("+json"):
-        if len(raw) > 65536:
-            cols, interval, n, unseen = await to_thread.run_sync(_parse_json_body, raw, limit, interval_q, max_label)
-        else:
-            cols, interval, n, unseen = _parse_json_body(raw, limit, interval_q, max_label)
-    else:
-        raise UnsupportedMediaType(
-            f"Content-Type {mt!r} is not read here; send application/json ({{\"rows\": [...]}}) or text/csv."
-        )
-    if unseen == "refuse" and served.model.categories.names:
-        levels.refuse_unseen(served.model, cols)
-    if n <= INLINE_ROWS:
-        detail = _compute(served, cols, interval, settings.predict_memory_bytes)
-    else:
-        detail = await to_thread.run_sync(_compute, served, cols, interval, settings.predict_memory_bytes)
-    request.app.state.metrics.count_predictions(served.name, served.version, n)
-    request.app.state.monitor.observe(served, cols, detail)  # an append; counted off the request path
-    accept = auth.raw_header(request.scope, b"accept") or ""
-    if "text/csv" in accept or (mt == "text/csv" and "application/json" not in accept):
-        text = _csv(detail, interval is not None) if n <= INLINE_ROWS else await to_thread.run_sync(_csv, detail, interval is not None)
-        return Response(text, media_type="text/csv", headers={
-            "Tikhon-Model": served.name, "Tikhon-Model-Version": str(served.version)})
-    payload = _json(served, detail, interval is not None) if n <= INLINE_ROWS else await to_thread.run_sync(
-        _json, served, detail, interval is not None)
-    return Response(payload, media_type="application/json")
-
-
-_NUMPY = orjson.OPT_SERIALIZE_NUMPY
-SMALL_JSON_ROWS = 16  # up to this many rows the answer is written from Python objects (fewer calls than splicing)
-
-
-def _numbers(column) -> list[bytes]:
-    """A float column as JSON number texts (orjson writes numpy floats exactly as Python floats; a non-finite
-    value becomes null, as it would from a list of floats)."""
-    return orjson.dumps(column, option=_NUMPY)[1:-1].split(b",")
-
-
-def _json(served: Served, detail: dict[str, Any], with_interval: bool) -> bytes:
-    """``{"model": ..., "predictions": [{"value", ["interval",] "warnings"}, ...]}`` built from the column
-    arrays: each column is serialized once and the row objects are spliced from fixed pieces, so no dict or
-    float object is made per row; only rows that carry warnings are serialized one by one."""
-    value = detail["value"]
-    m = int(value.shape[0])
-    if m == 0:
-        return b'{"model":' + served.block_json + b',"predictions":[]}'
-    if m <= SMALL_JSON_ROWS:  # a few rows: one orjson call on plain objects writes the same bytes
-        if with_interval:
-            rows = [{"value": v, "interval": [a, b], "warnings": w} for v, a, b, w in zip(
-                value.tolist(), detail["lower"].tolist(), detail["upper"].tolist(), detail["warnings"])]
-        else:
-            rows = [{"value": v, "warnings": w} for v, w in zip(value.tolist(), detail["warnings"])]
-        return b'{"model":' + served.block_json + b',"predictions":' + orjson.dumps(rows) + b"}"
-    if with_interval:
-        pieces = [b'{"value":', None, b',"interval":[', None, b",", None, b'],"warnings":[]}', b","]
-        columns = {1: _numbers(value), 3: _numbers(detail["lower"]), 5: _numbers(detail["upper"])}
-    else:
-        pieces = [b'{"value":', None, b',"warnings":[]}', b","]
-        columns = {1: _numbers(value)}
-    width = len(pieces)
-    parts: list[bytes | None] = [None] * (width * m)
-    for k, piece in enumerate(pieces):
-        parts[k::width] = columns[k] if piece is None else [piece] * m
-    closing = width - 2  # the piece that ends a row object, holding its (empty) warnings
-    tail = pieces[closing][: -len(b'[]}')]
-    for i, w in enumerate(detail["warnings"]):
-        if w:
-            parts[i * width + closing] = tail + orjson.dumps(w) + b"}"
-    parts[-1] = b""  # no comma after the last row
-    return b'{"model":' + served.block_json + b',"predictions":[' + b"".join(parts) + b"]}"
-
-
-def _csv(detail: dict[str, Any], with_interval: bool) -> str:
-    """CSV answer; numbers are written with Python's shortest round-trip repr, so they parse back exactly
-    (a non-finite value as an empty cell); text cells are neutralized against formula injection."""
-    out = io.StringIO()
-    w = csv.writer(out, lineterminator="\n")
-    values = [number_cell(v) for v in detail["value"].tolist()]
-    warn = [text_cell("; ".join(ws)) for ws in detail["warnings"]]  # labels and names come from callers
-    if with_interval:
-        w.writerow(["value", "lower", "upper", "warnings"])
-        lower = [number_cell(v) for v in detail["lower"].tolist()]
-        upper = [number_cell(v) for v in detail["upper"].tolist()]
-        w.writerows(zip(values, lower, upper, warn))
-    else:
-        w.writerow(["value", "warnings"])
-        w.writerows(zip(values, warn))
-    return out.getvalue()
+            cols, interval, n, unseen = predict_io.read(served, raw, ask, limits)
+        job = functools.partial(_compute, served, cols, interval, unseen, ask, limits, state.monitor)
+        n, payload, media, headers = job() if n <= INLINE_ROWS else await to_thread.run_sync(job)
+    state.metrics.count_predictions(served.name, served.version, n)
+    return Response(payload, media_type=media, headers=headers or None)
