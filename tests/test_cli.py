@@ -14,6 +14,7 @@ import socket
 import statistics
 import subprocess
 import sys
+import time
 
 import numpy as np
 import pytest
@@ -300,7 +301,15 @@ def test_predict_show_promote_history_prune_and_keys(server, tmp_path):
     local = {"TIKHON_STORE": str(settings.store), "TIKHON_DATA_DIR": str(settings.data_dir)}
     r = cli(url, "keys", "revoke", "--local", entry["key_id"], env=local)
     assert r.returncode == 0 and "revoked" in r.stdout, r.stderr
-    r = cli(url, "--json", "models")
+    # A revocation made by another process reaches the server within TIKHON_AUTH_CACHE_S (0 here) plus the
+    # store's one-second catalog cache (README, Configuration): wait for it (a readiness wait, bounded).
+    deadline = time.monotonic() + 30
+    while True:
+        r = cli(url, "--json", "models")
+        if "no active key exists" in r.stderr or time.monotonic() > deadline:
+            break
+        assert r.returncode == 2 and "needs an API key" in r.stderr, r.stderr  # closed meanwhile, never open
+        time.sleep(0.5)
     assert r.returncode == 2 and "no active key exists" in r.stderr, r.stderr
 
 
