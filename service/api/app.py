@@ -49,6 +49,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
 
     from service.api.intake_process import IntakePool
     from service.api.model_cache import ModelCache
+    from service.api import predict_io
     from service.api.predict_lane import PredictLane
     from service.api.routes import health, models, pages, plots, predictions, trainings
 
@@ -86,6 +87,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
     paths.register(settings)  # problem details name these folders' paths relative to them, never absolute
     app.state.store = store
     app.state.intake = IntakePool(settings.intake_processes)  # large JSON training bodies are read there
+    app.state.predict_limits = predict_io.limits_of(settings)  # read once: settings do not change while serving
     app.state.predict_lane = PredictLane(settings.predict_processes, settings.predict_process_bytes,
                                          cache_models=settings.cache_models, cache_bytes=settings.cache_bytes)
     app.state.metrics = metrics

@@ -10,8 +10,7 @@ from __future__ import annotations
 import csv
 import io
 import math
-from dataclasses import dataclass
-from typing import Any
+from typing import Any, NamedTuple
 
 import orjson
 
@@ -30,8 +29,7 @@ def limits_of(settings: Any) -> dict[str, Any]:
     return {k: getattr(settings, k) for k in LIMITS}
 
 
-@dataclass(frozen=True)
-class Ask:
+class Ask(NamedTuple):
     """What a prediction request asks for besides its body: its media type (lower case, no parameters),
     its ``Accept`` header, the query's interval level and (CSV bodies) its ``unseen_levels``."""
 

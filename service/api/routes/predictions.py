@@ -7,7 +7,6 @@ numpy on precomputed basis arrays); larger batches go to a worker thread so the 
 
 from __future__ import annotations
 
-import functools
 from typing import Any
 
 from anyio import to_thread
@@ -139,15 +138,18 @@ async def _predict(request: Request, served: Served, interval_q: float | None) -
     raw = await request.body()
     if state.predict_lane.takes(len(raw)):  # a large body: answered in a lower-priority process
         n, payload, media, headers, counts = await state.predict_lane.answer(
-            served, raw, ask, predict_io.limits_of(state.settings), state.monitor.enabled)
+            served, raw, ask, state.predict_limits, state.monitor.enabled)
         state.monitor.add_inputs(served, counts)
     else:
-        limits = predict_io.limits_of(state.settings)
+        limits = state.predict_limits
         if len(raw) > 65536:
             cols, interval, n, unseen = await to_thread.run_sync(predict_io.read, served, raw, ask, limits)
         else:
             cols, interval, n, unseen = predict_io.read(served, raw, ask, limits)
-        job = functools.partial(_compute, served, cols, interval, unseen, ask, limits, state.monitor)
-        n, payload, media, headers = job() if n <= INLINE_ROWS else await to_thread.run_sync(job)
+        if n <= INLINE_ROWS:
+            n, payload, media, headers = _compute(served, cols, interval, unseen, ask, limits, state.monitor)
+        else:
+            n, payload, media, headers = await to_thread.run_sync(
+                _compute, served, cols, interval, unseen, ask, limits, state.monitor)
     state.metrics.count_predictions(served.name, served.version, n)
     return Response(payload, media_type=media, headers=headers or None)
