@@ -477,6 +477,9 @@ class TuneResult:
     fingerprint: dict[str, Any]
     summary: dict[str, Any] = field(default_factory=dict)
     drift: dict[str, Any] | None = None  # training distribution in bins (``drift.reference``)
+    # (meta, arrays) of the per-fold summaries a later continuation merges into (``continued.state_of``), or None
+    continuation: tuple[dict[str, Any], dict[str, np.ndarray]] | None = None
+    lineage: dict[str, Any] | None = None  # a continued version: old_weight, new rows, new data's fingerprint
 
     def to_artifact(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
         """(JSON-serializable manifest body, plain numeric arrays): all a stored version needs."""
@@ -513,6 +516,11 @@ class TuneResult:
         }
         if self.drift is not None:
             body["drift_reference"] = self.drift
+        if self.continuation is not None:
+            body["continuation"] = self.continuation[0]
+            arrays.update(self.continuation[1])
+        if self.lineage is not None:
+            body["lineage"] = dict(self.lineage)
         return body, arrays
 
 
