@@ -41,7 +41,7 @@ from typing import Any, Callable
 
 import numpy as np
 
-from service.errors import Cancelled, InvalidData, InvalidSpec
+from service.errors import CannotContinue, Cancelled, InvalidData, InvalidSpec
 
 from .basis import BasisSetting, Categories, InputScaler, polynomial_powers
 from .folds import hash_folds, uses_hash
@@ -54,13 +54,6 @@ from .summaries import Summary
 
 FORMAT = 1
 MAX_SUMMARY_BYTES = 64 * 2**20  # default bound of the stored summaries of one version (setting max_summary_bytes)
-
-
-class CannotContinue(InvalidSpec):
-    """A version that cannot be continued, or a continuation request it cannot take."""
-
-    slug = "cannot-continue"
-    title = "Version cannot be continued"
 
 
 # ---- which trainings can be continued ----------------------------------------------------------------------
@@ -143,30 +136,79 @@ def state_of(spec: TuneSpec, features: list[str], scaler: InputScaler, categorie
     return meta, arrays, []
 
 
+def check_parent(body: dict[str, Any], version_label: str = "the parent version") -> TuneSpec:
+    """The spec of a stored version (its engine ``body``) that can be continued; ``CannotContinue`` saying why
+    and what to do otherwise (checked at submission, before the new rows are staged)."""
+    meta = body.get("continuation")
+    spec_raw = body.get("spec")
+    if not isinstance(spec_raw, dict):
+        raise CannotContinue(f"{version_label} keeps no spec, so it cannot be continued; train from scratch "
+                             "with a spec.", errors=[{"field": "continue_from", "message": "no spec"}])
+    spec = parse_spec(spec_raw)
+    if meta is None:
+        reason = why_not(spec, streaming=(body.get("cv_summary") or {}).get("execution") == "streaming")
+        if reason is None:
+            reason = ("it keeps no per-fold summaries (trained before continued training existed, or its "
+                      "summaries were above max_summary_bytes)")
+        raise CannotContinue(
+            f"{version_label} cannot be continued: {reason}; train from scratch on all rows (old and new) with "
+            "cv.scheme kfold or grouped, cv.assignment 'hash' and selection.metric rmse or r2, and continue "
+            "from that version afterwards",
+            errors=[{"field": "continue_from", "message": reason}])
+    if int(meta.get("format", 0)) != FORMAT:
+        raise CannotContinue(f"{version_label} keeps summaries of format {meta.get('format')}, which this "
+                             f"release does not read (format {FORMAT}); train from scratch.",
+                             errors=[{"field": "continue_from", "message": "unknown summary format"}])
+    return spec
+
+
+def check_new_rows(body: dict[str, Any], data: Any, budget=None, version_label: str = "the parent version"
+                   ) -> dict[str, int]:
+    """Refuse, before a continuation is queued, new rows that it could not take (no rows, another column set,
+    unreadable values), as ``continue_tune`` would. Returns the grid counts (``check_budget``)."""
+    from .table import as_columns
+
+    spec = check_parent(body, version_label)
+    cols = as_columns(data)
+    features, _, X, _, _ = _new_columns(spec, list(body["continuation"]["features"]), cols, version_label)
+    from .tune import Budget, check_budget
+
+    q = sum(len(lv) for lv in body["continuation"]["categorical"]["levels"])
+    return check_budget(spec, X.shape[0], len(features), budget or Budget(), q)
+
+
+def _new_columns(spec: TuneSpec, expected: list[str], cols: dict[str, np.ndarray], version_label: str):
+    """(features, columns used, X (m, d), y (m,), schema) of the new rows, refusing another column set."""
+    from .table import numeric_column
+    from .tune import resolve_columns
+
+    m_rows = len(next(iter(cols.values()))) if cols else 0
+    if m_rows == 0:
+        raise InvalidData("the new data has no rows; a continuation needs at least one new row")
+    schema = {c: column_kind(v) for c, v in cols.items()}
+    try:
+        features, used = resolve_columns(spec, schema)
+    except InvalidSpec as err:
+        raise CannotContinue(f"the new rows lack a column of {version_label}'s spec: {err.detail}",
+                             errors=err.errors) from None
+    if features != expected:
+        raise CannotContinue(
+            f"the new rows' feature columns {features} differ from {version_label}'s {expected}: a continuation keeps "
+            "the parent's basis, so its columns must be the same; send exactly those columns (or train from scratch "
+            "to change the column set)",
+            errors=[{"field": "data", "value": features, "message": f"expected features {expected}"}])
+    y = numeric_column(cols, spec.target, "target")
+    X = np.column_stack([numeric_column(cols, f, "feature") for f in features]) if features else np.zeros((m_rows, 0))
+    return features, used, X, y, schema
+
+
 class _Stored:
     """A stored version's continuation state, rebuilt."""
 
     def __init__(self, body: dict[str, Any], arrays: dict[str, np.ndarray], version_label: str):
-        meta = body.get("continuation")
-        spec_raw = body.get("spec")
-        if not isinstance(spec_raw, dict):
-            raise CannotContinue(f"{version_label} keeps no spec, so it cannot be continued; train from scratch "
-                                 "with a spec.", errors=[{"field": "continue_from", "message": "no spec"}])
-        self.spec = parse_spec(spec_raw)
-        if meta is None:
-            reason = why_not(self.spec, streaming=(body.get("cv_summary") or {}).get("execution") == "streaming")
-            if reason is None:
-                reason = ("it keeps no per-fold summaries (trained before continued training existed, or its "
-                          "summaries were above max_summary_bytes)")
-            raise CannotContinue(
-                f"{version_label} cannot be continued: {reason}; train from scratch on all rows (old and new) with "
-                "cv.scheme kfold or grouped, cv.assignment 'hash' and selection.metric rmse or r2, and continue "
-                "from that version afterwards",
-                errors=[{"field": "continue_from", "message": reason}])
-        if int(meta.get("format", 0)) != FORMAT:
-            raise CannotContinue(f"{version_label} keeps summaries of format {meta.get('format')}, which this "
-                                 f"release does not read (format {FORMAT}); train from scratch.",
-                                 errors=[{"field": "continue_from", "message": "unknown summary format"}])
+        self.spec = check_parent(body, version_label)
+        self.label = version_label
+        meta = body["continuation"]
         self.meta = meta
         self.features = list(meta["features"])
         self.categories = Categories(list(meta["categorical"]["names"]), [list(l) for l in meta["categorical"]["levels"]])
@@ -229,28 +271,13 @@ def _continue(st: _Stored, body, arrays, data, old_weight, progress, should_stop
               ) -> TuneResult:
     from .advice import data_warnings
     from .table import as_columns, categorical_column, key_column, numeric_column
-    from .tune import check_budget, check_levels, resolve_columns, Budget
+    from .tune import check_budget, check_levels, Budget
 
     spec = st.spec
     cols = as_columns(data)
-    m_rows = len(next(iter(cols.values()))) if cols else 0
-    if m_rows == 0:
-        raise InvalidData("the new data has no rows; a continuation needs at least one new row")
-    schema = {c: column_kind(v) for c, v in cols.items()}
-    try:
-        features, used = resolve_columns(spec, schema)
-    except InvalidSpec as err:
-        raise CannotContinue(f"the new rows do not have the columns of {st.meta and 'the parent'} version: {err.detail}",
-                             errors=err.errors) from None
-    if features != st.features:
-        raise CannotContinue(
-            f"the new rows' feature columns {features} differ from the parent's {st.features}: a continuation keeps "
-            "the parent's basis, so its columns must be the same; send exactly those columns (or train from scratch "
-            "to change the column set)",
-            errors=[{"field": "data", "value": features, "message": f"expected features {st.features}"}])
+    features, used, X, y, schema = _new_columns(spec, st.features, cols, st.label)
+    m_rows = y.size
     budget = budget or Budget()
-    y = numeric_column(cols, spec.target, "target")
-    X = np.column_stack([numeric_column(cols, f, "feature") for f in features]) if features else np.zeros((m_rows, 0))
     cat_cols = [categorical_column(cols, c) for c in spec.categorical]
     for c, values in zip(spec.categorical, cat_cols):
         check_levels(c, len(set(values.tolist())), budget)
