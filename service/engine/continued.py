@@ -259,8 +259,14 @@ def continue_tune(body: dict[str, Any], arrays: dict[str, np.ndarray], data: Any
         raise InvalidData(f"old_weight must be in (0, 1], got {old_weight!r}; 1 keeps earlier rows at full weight, "
                           "0.8 lets each continuation weigh earlier rows 0.8 times as much",
                           errors=[{"field": "old_weight", "value": old_weight, "message": "must be in (0, 1]"}])
+    from contextlib import nullcontext
+
+    from .parallel import single_blas, usable_cores
+
     stored = _Stored(body, arrays, version_label)
-    with watch_convergence() as unconverged:
+    # BLAS on one thread, as in ``tune``: everything here is small matrices, on which waiting BLAS threads
+    # cost more than they give (the new rows' summaries run their chunks on threads of their own)
+    with watch_convergence() as unconverged, single_blas() if usable_cores() > 1 else nullcontext():
         result = _continue(stored, body, arrays, data, float(old_weight), progress, should_stop, budget,
                            max_summary_bytes)
     result.warnings.extend(convergence_warnings(unconverged))
@@ -270,6 +276,7 @@ def continue_tune(body: dict[str, Any], arrays: dict[str, np.ndarray], data: Any
 def _continue(st: _Stored, body, arrays, data, old_weight, progress, should_stop, budget, max_summary_bytes
               ) -> TuneResult:
     from .advice import data_warnings
+    from .parallel import usable_cores
     from .table import as_columns, categorical_column, key_column, numeric_column
     from .tune import check_budget, check_levels, Budget
 
@@ -347,7 +354,7 @@ def _continue(st: _Stored, body, arrays, data, old_weight, progress, should_stop
             idx = np.flatnonzero(fold == k)
             old = Summary(Rs[k] * scale_old, float(st.fold_rows[k]) * old_factor)
             if idx.size:
-                new = Summary.of(D[idx], y[idx], weights=None if w_new is None else w_new[idx])
+                new = Summary.of(D[idx], y[idx], weights=None if w_new is None else w_new[idx], threads=usable_cores())
                 atoms.append(Summary.combine([old, new]))
             else:
                 atoms.append(old)
