@@ -824,7 +824,13 @@ def show(
             f", levels {', '.join(map(str, levels))}" if levels else "")
         t.add_row(f"input {f.get('name')}", desc)
     fp = meta.get("data_fingerprint") or {}
-    t.add_row("training data", f"{fp.get('rows')} rows, sha256 {str(fp.get('sha256'))[:16]}…")
+    lineage = meta.get("lineage") or {}
+    if lineage.get("parent_version") is not None:
+        t.add_row("continued from", f"version {lineage['parent_version']}: {lineage.get('new_rows')} new rows merged "
+                  f"({lineage.get('rows')} in all), earlier rows weighted {lineage.get('old_weight'):g}")
+        t.add_row("new data", f"{fp.get('rows')} rows, sha256 {str(fp.get('sha256'))[:16]}…")
+    else:
+        t.add_row("training data", f"{fp.get('rows')} rows, sha256 {str(fp.get('sha256'))[:16]}…")
     t.add_row("created", str(meta.get("created_at")))
     t.add_row("job", str(meta.get("job_id")))
     sums = meta.get("checksums") or {}

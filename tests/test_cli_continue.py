@@ -52,3 +52,36 @@ def test_bad_continuation_flags_are_usage_errors(server, tmp_path):
     assert r.returncode == 2 and "(0, 1]" in r.stderr
     r = cli(url, "train", "pump-m", "--data", str(data), "--continue-from", "1", "--target", "energy_kwh")
     assert r.returncode == 2 and "keeps the continued version's spec" in r.stderr
+
+
+def test_the_readme_monthly_continuation_script_runs(server, tmp_path):
+    import os
+    import re
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    url, _, _ = server
+    text = (Path(__file__).resolve().parents[1] / "README.md").read_text(encoding="utf-8")
+    (script,) = [b for b in re.findall(r"```sh\n(.*?)```", text, re.S) if "cron.monthly/pump-energy" in b]
+    spec = tmp_path / "spec.json"
+    spec.write_text(json.dumps({"target": "energy_kwh", "bases": [{"kind": "linear"}],
+                                "cv": {"folds": 4, "assignment": "hash"}}))
+    first, month = tmp_path / "first.csv", tmp_path / "last-month.csv"
+    write_table(first, 200, seed=41)
+    write_table(month, 50, seed=42)
+    r = cli(url, "train", "pump-readme", "--data", str(first), "--spec", str(spec), "--promote", "always", "--wait")
+    assert r.returncode == 0, r.stderr
+    log = tmp_path / "retrain.log"
+    script = (script.replace("pump-energy", "pump-readme").replace("/srv/pumps/last-month.csv", str(month))
+              .replace("/var/log/tikhon-retrain.log", str(log)))
+    bindir = tmp_path / "bin"  # `tikhon` as the console script would run it, with this interpreter
+    bindir.mkdir()
+    (bindir / "tikhon").write_text(f"#!/bin/sh\nexec {sys.executable} -m service.cli \"$@\"\n")
+    (bindir / "tikhon").chmod(0o755)
+    env = dict(os.environ, TIKHON_URL=url, PATH=f"{bindir}:{os.environ['PATH']}")
+    env.pop("TIKHON_KEY", None)
+    run = subprocess.run(["sh", "-c", script], env=env, capture_output=True, text=True, timeout=300)
+    # 0: made live; 3: trained but not better than the live version on the new rows (the README's exit codes)
+    assert run.returncode in (0, 3), (run.stderr, log.read_text() if log.exists() else "")
+    assert "continued from version 1: 50 new rows merged (250 in all), earlier rows weighted 0.8" in log.read_text()

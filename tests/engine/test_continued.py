@@ -272,3 +272,28 @@ def test_a_streamed_version_continues_exactly(tmp_path):
     assert body["continuation"]["positions"] == 300
     cont = continue_tune(body, arrays, B)
     assert_same(cont, tune(d, spec, basis=fixed_basis(body, arrays)))
+
+
+def test_row_key_and_grouped_folds_follow_the_keys_not_the_order():
+    # with cv.row_key the new rows' folds come from their keys, so a full training on the rows in another
+    # order is the same training; with grouped, a new row of a known group joins that group's fold
+    spec = {"target": "y", "categorical": ["c"], "bases": [{"kind": "polynomial", "degrees": [1, 2]}],
+            "cv": {"folds": 5, "assignment": "hash", "row_key": "id"}}
+    A, B = rows(200, 30), rows(60, 31)
+    A["id"], B["id"] = np.arange(200) * 7.0, 5000 + np.arange(60.0)
+    body, arrays = tune(A, spec).to_artifact()
+    assert_same(continue_tune(body, arrays, B), tune(cat(B, A), spec, basis=fixed_basis(body, arrays)))
+    spec = {**spec, "cv": {"scheme": "grouped", "group_by": "g", "folds": 3, "assignment": "hash"}}
+    A["g"] = np.array([f"pump-{i % 7}" for i in range(200)], dtype=object)
+    B["g"] = np.array([f"pump-{i % 9}" for i in range(60)], dtype=object)  # two groups are new
+    body, arrays = tune(A, spec).to_artifact()
+    assert_same(continue_tune(body, arrays, B), tune(cat(A, B), spec, basis=fixed_basis(body, arrays)))
+
+
+def test_a_single_new_row_and_a_constant_new_target_continue():
+    body, arrays = tune(rows(150, 32), SPEC).to_artifact()
+    one = continue_tune(body, arrays, rows(1, 33))
+    assert one.summary["rows"] == 151 and np.isfinite(one.best["mean"])
+    B = rows(6, 34)
+    B["y"][:] = 3.0  # constant among the new rows only: still rows of a varying target overall
+    assert np.isfinite(continue_tune(body, arrays, B).best["mean"])
