@@ -80,7 +80,10 @@ def read_json_body(body: bytes | str, limits: dict[str, Any], incoming: str) -> 
     kind = "rows" if "rows" in data else "csv"
     out: dict[str, Any] = {"request": request, "data": {"kind": kind}}
     try:
-        cols, origin = intake.load_data(data, settings, spec=intake.parse(parsed.spec))
+        # without a spec (a retrain reusing the live spec, or a continuation) the route checks the staged
+        # columns against the spec it finds; the table is read without one here
+        cols, origin = intake.load_data(data, settings,
+                                        spec=intake.parse(parsed.spec) if parsed.spec is not None else None)
         data.clear()  # the row objects are columns now
         spec = counts = None
         if parsed.spec is not None:

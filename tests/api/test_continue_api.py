@@ -79,3 +79,28 @@ def test_refusals_are_problems_that_say_why(worker_service, kit):
                                                                   "continue_from": 1}, timeout=60)
     assert r.status_code == 422, r.text
     assert r.json()["type"] == "/problems/cannot-continue" and "head_m" in r.json()["detail"]
+
+
+def test_a_large_continuation_body_read_by_an_intake_process(tmp_path, kit):
+    # intake_process_bytes=0: every JSON body is parsed and staged in an intake process, whose summary
+    # must carry continue_from and old_weight back to the route
+    with kit.service(tmp_path / "svc", worker=True, intake_process_bytes=0) as (base, _, _):
+        tk = Client(base)
+        spec = {**kit.SPEC, "cv": HASH_SPEC_CV}
+        job = tk.wait(tk.train("pump-big", rows=kit.as_rows(kit.pump_table(300, seed=77)), spec=spec,
+                               promote="always"), timeout=300)
+        assert job["state"] == "succeeded", job
+        job = tk.wait(tk.train("pump-big", rows=kit.as_rows(kit.pump_table(50, seed=78)), continue_from=1,
+                               old_weight=0.5, promote="never"), timeout=300)
+        assert job["state"] == "succeeded", job
+        assert tk.version("pump-big", 2)["lineage"] == {**tk.version("pump-big", 2)["lineage"], "parent_version": 1,
+                                                         "old_weight": 0.5, "new_rows": 50, "rows": 350}
+        # a retrain reusing the live spec takes the same path (it failed with "the spec must be a JSON object")
+        job = tk.wait(tk.train("pump-big", rows=kit.as_rows(kit.pump_table(300, seed=80)), promote="never"),
+                      timeout=300)
+        assert job["state"] == "succeeded", job
+        other = kit.pump_table(20, seed=79)
+        del other["head_m"]
+        r = httpx.post(f"{base}/v1/models/pump-big/trainings", json={"data": {"rows": kit.as_rows(other)},
+                                                                     "continue_from": 2}, timeout=60)
+        assert r.status_code == 422 and r.json()["type"] == "/problems/cannot-continue", r.text
