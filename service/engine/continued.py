@@ -168,13 +168,23 @@ def check_new_rows(body: dict[str, Any], data: Any, budget=None, version_label: 
     unreadable values), as ``continue_tune`` would. Returns the grid counts (``check_budget``)."""
     from .table import as_columns
 
+    from .table import categorical_column, key_column
+    from .tune import Budget, check_budget, check_levels, row_weights
+
     spec = check_parent(body, version_label)
+    budget = budget or Budget()
     cols = as_columns(data)
     features, _, X, _, _ = _new_columns(spec, list(body["continuation"]["features"]), cols, version_label)
-    from .tune import Budget, check_budget
-
+    for c in spec.categorical:  # levels counted before any one-hot block, as a full training counts them
+        check_levels(c, len(set(categorical_column(cols, c).tolist())), budget)
+    if spec.cv.scheme == "grouped":
+        categorical_column(cols, spec.cv.group_by)
+    elif spec.cv.row_key:
+        key_column(cols, spec.cv.row_key)
+    if spec.weight:
+        row_weights(cols, spec.weight)
     q = sum(len(lv) for lv in body["continuation"]["categorical"]["levels"])
-    return check_budget(spec, X.shape[0], len(features), budget or Budget(), q)
+    return check_budget(spec, X.shape[0], len(features), budget, q)
 
 
 def _new_columns(spec: TuneSpec, expected: list[str], cols: dict[str, np.ndarray], version_label: str):

@@ -297,3 +297,22 @@ def test_a_single_new_row_and_a_constant_new_target_continue():
     B = rows(6, 34)
     B["y"][:] = 3.0  # constant among the new rows only: still rows of a varying target overall
     assert np.isfinite(continue_tune(body, arrays, B).best["mean"])
+
+
+def test_new_rows_are_checked_before_queueing_as_the_continuation_would_check_them(parent):
+    from service.engine.continued import check_new_rows
+    from service.engine.tune import Budget
+    from service.errors import BudgetExceeded, InvalidData
+
+    _, body, arrays = parent
+    assert check_new_rows(body, rows(30, 40))["basis_settings"] == 6
+    many = rows(3000, 41)
+    many["c"] = np.array([f"station-{i}" for i in range(3000)], dtype=object)  # hostile: a level per row
+    with pytest.raises(BudgetExceeded, match="max_levels"):
+        check_new_rows(body, many, Budget(max_levels=1000))
+    bad = rows(30, 42)
+    bad["y"][4] = np.inf
+    with pytest.raises(InvalidData, match="rows \\[4\\]"):
+        check_new_rows(body, bad)
+    with pytest.raises(CannotContinue, match="keeps no per-fold summaries"):
+        check_new_rows({k: v for k, v in body.items() if k != "continuation"}, rows(30, 43))
