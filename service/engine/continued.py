@@ -74,7 +74,15 @@ def why_not(spec: TuneSpec, streaming: bool = False) -> str | None:
 
 
 def packed_bytes(m: int, folds: int) -> int:
+    """Bytes stored for one summary group of m columns ([1, Φ, y]): the upper triangle of each fold's R."""
     return 8 * folds * m * (m + 1) // 2
+
+
+def too_large(size: int, limit: int) -> str:
+    """The warning of a version whose summaries are above ``max_summary_bytes`` (and are not kept)."""
+    return (f"this version keeps no per-fold summaries ({size:,} bytes, above the limit "
+            f"max_summary_bytes={limit:,}), so it cannot be continued with continue_from; "
+            "raise TIKHON_MAX_SUMMARY_BYTES or use fewer RBF centres to keep them")
 
 
 def _pack(Rs: list[np.ndarray]) -> np.ndarray:
@@ -108,9 +116,7 @@ def state_of(spec: TuneSpec, features: list[str], scaler: InputScaler, categorie
     K = spec.cv.folds
     size = sum(packed_bytes(a[0].R.shape[0], K) for _, _, _, a in groups)
     if size > limit:
-        return None, {}, [f"this version keeps no per-fold summaries ({size / 2**20:.1f} MiB, above the limit "
-                          f"max_summary_bytes={limit / 2**20:.1f} MiB), so it cannot be continued with continue_from; "
-                          "raise TIKHON_MAX_SUMMARY_BYTES or use fewer RBF centres to keep them"]
+        return None, {}, [too_large(size, limit)]
     arrays: dict[str, np.ndarray] = {"continuation_input_mean": np.asarray(scaler.mean, dtype=np.float64),
                                      "continuation_input_scale": np.asarray(scaler.scale, dtype=np.float64)}
     meta_groups = []
@@ -242,11 +248,8 @@ class _Stored:
         self.fold_rows = np.asarray(meta["fold_rows"], dtype=np.float64)
 
     def _setting_of(self, described: dict[str, Any], members: list[int]) -> BasisSetting:
-        for i in members:
-            if self.settings[i].describe() == described:
-                return self.settings[i]
-        d = len(self.features)  # the top of a nested group is always a member; kept for safety
-        return BasisSetting("polynomial", degree=int(described["degree"]), powers=polynomial_powers(d, int(described["degree"])))
+        """The group's widest setting: always one of its members (``state_of``)."""
+        return next(self.settings[i] for i in members if self.settings[i].describe() == described)
 
 
 def _design(setting: BasisSetting, Xs: np.ndarray, cat_block: np.ndarray, nested: bool) -> np.ndarray:

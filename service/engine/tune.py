@@ -29,6 +29,7 @@ from .solvers import Fit, convergence_warnings, fit, watch_convergence
 from .spec import TuneSpec, parse_spec
 from .summaries import Summary
 from .advice import data_warnings
+from . import continued
 from .table import as_columns, categorical_column, key_column, numeric_column
 
 LEVERAGE_ONE = 1e-10  # a row with hᵢᵢ ≥ 1 − this has leverage 1: its leave-one-out error needs a refit
@@ -366,6 +367,12 @@ def _tune(data, spec: TuneSpec, progress, should_stop, budget, span=None, basis=
     else:
         plan = make_plan(spec.cv, n, prep.groups, prep.order, prep.keys)
         search = _SharedSearch(spec, prep, Xs, settings, strengths, ratios, plan)
+        if continued.why_not(spec) is None:  # the nested group's share of the bound first, then RBF settings'
+            top = search._nested_top
+            nested = 0 if top is None else continued.packed_bytes(top.n_terms(d) + prep.categories.width + 2,
+                                                                     plan.n_splits)
+            search.kept_bytes = nested
+            search.keep_bytes = (budget or Budget()).max_summary_bytes
 
     # A long job reports progress inside each basis setting too (after each row block of each fold's
     # pass and after each split's fit): its units are then PROGRESS_STEPS sub-units of a (setting × split).
@@ -428,10 +435,11 @@ def _continuation_state(spec: TuneSpec, prep: Prepared, scaler: InputScaler, set
                         model: FittedModel, budget: Budget | None):
     """What the version keeps to be continued later (``continued.state_of``): the per-fold summaries of
     every summary group the search merged. Nothing for searches that have no shared per-fold summaries."""
-    from . import continued
-
     if type(search) is not _SharedSearch or continued.why_not(spec) is not None:
         return None, {}, []
+    limit = (budget or Budget()).max_summary_bytes
+    if search.keep_bytes is None or search.kept_bytes > limit:  # above the bound: nothing was kept
+        return None, {}, [continued.too_large(search.kept_bytes, limit)]
     groups = []
     if search._nested is not None:
         members = [i for i, s in enumerate(settings) if s.kind in ("linear", "polynomial")]
@@ -446,8 +454,7 @@ def _continuation_state(spec: TuneSpec, prep: Prepared, scaler: InputScaler, set
         weights = {"positive": positive, "raw_sum": float(raw.sum()), "factor": positive / float(raw.sum())}
     n = int(prep.y.size)
     return continued.state_of(spec, prep.features, scaler, prep.categories, settings, groups, rows=n, positions=n,
-                              ranges=model.ranges, weights=weights,
-                              limit=(budget or Budget()).max_summary_bytes)
+                              ranges=model.ranges, weights=weights, limit=limit)
 
 
 def _level_counts(prep: Prepared) -> list[np.ndarray]:
@@ -506,6 +513,8 @@ class _SharedSearch:
         self._nested_top = max(nested, key=lambda s: s.n_terms(d)) if nested else None
         self._nested: tuple[np.ndarray, list[Summary]] | None = None
         self.kept: dict[int, list[Summary]] = {}  # RBF settings' atom summaries (kept for continued training)
+        self.keep_bytes: int | None = None  # keep them up to this many stored bytes (None: keep none)
+        self.kept_bytes = 0  # stored bytes of the summary groups seen so far
         self.warnings: list[str] = []
 
     tick: Callable[[float], None] | None = None  # progress inside one setting (fraction done), long jobs only
@@ -556,8 +565,12 @@ class _SharedSearch:
 
     def evaluate(self, s_idx: int, setting: BasisSetting):
         D, atoms = self._atoms(setting)
-        if setting.kind == "rbf":
-            self.kept[s_idx] = atoms
+        if setting.kind == "rbf" and self.keep_bytes is not None:  # kept for continued training, within the bound
+            self.kept_bytes += continued.packed_bytes(atoms[0].R.shape[0], len(atoms))
+            if self.kept_bytes <= self.keep_bytes:
+                self.kept[s_idx] = atoms
+            else:  # above the bound: none will be stored, so none is held
+                self.kept.clear()
         y = self.prep.y
         mae_rows = None
         if self.spec.selection.metric == "mae":

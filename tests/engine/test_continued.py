@@ -148,6 +148,14 @@ def test_summaries_above_the_limit_are_not_kept_and_the_version_says_so():
     assert any("max_summary_bytes" in w for w in result.warnings)
     with pytest.raises(CannotContinue, match="keeps no per-fold summaries"):
         continue_tune(body, arrays, rows(10, 11))
+    # room for the nested group and one RBF setting: the second RBF setting passes the bound, and the search
+    # lets go of what it kept (it never holds more than the bound); the warning names the whole size
+    limit = packed_bytes(14, 5) + packed_bytes(20, 5)
+    result = tune(rows(200, 10), SPEC, budget=Budget(max_summary_bytes=limit))
+    assert result.continuation is None
+    whole = packed_bytes(14, 5) + 3 * packed_bytes(20, 5)
+    assert any(f"({whole:,} bytes, above the limit max_summary_bytes={limit:,})" in w for w in result.warnings)
+    assert tune(rows(200, 10), SPEC, budget=Budget(max_summary_bytes=limit + 2 * packed_bytes(20, 5))).continuation
 
 
 @pytest.mark.parametrize("cv, reason", [
