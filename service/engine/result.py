@@ -461,6 +461,12 @@ class TuneResult:
             their differences; m = n in memory (NaN for rows never validated), a seeded sample streamed.
         fingerprint: ``{sha256, rows, columns, method}`` of the training columns (``fingerprint_of``).
         summary: counts and settings of the run (metric, rule, scheme, splits, rows, candidates, ...).
+        drift: the training distribution in bins (``drift.reference``), or None.
+        continuation: (meta, arrays) of the per-fold summaries a later continued training merges into
+            (``continued.state_of``; ``to_artifact`` writes them as ``body["continuation"]`` and
+            ``continuation_*`` arrays), or None when the version cannot be continued.
+        lineage: for a continued version (``continued.continue_tune``): old_weight, new_rows, rows,
+            new_data_fingerprint (the worker adds parent_version); None otherwise.
     """
     spec: TuneSpec
     best: dict[str, Any]
