@@ -1198,7 +1198,8 @@ _METAVARS = {
     "interval": "LEVEL", "out": "FILE", "kind": "KIND", "keep": "COUNT", "scope": "predict|train|admin",
     "label": "TEXT", "reason": "TEXT", "url": "URL", "key": "KEY", "timeout": "SECONDS", "live": "newest|none",
     "host": "ADDRESS", "port": "PORT", "version": "VERSION", "name": "NAME", "names": "NAME", "job_id": "JOB",
-    "key_id": "KEY_ID", "ref": "NAME[@VERSION]", "workers": "COUNT",
+    "key_id": "KEY_ID", "ref": "NAME[@VERSION]", "workers": "COUNT", "continue_from": "VERSION",
+    "old_weight": "WEIGHT",
 }
 
 
