@@ -104,3 +104,22 @@ def test_a_large_continuation_body_read_by_an_intake_process(tmp_path, kit):
         r = httpx.post(f"{base}/v1/models/pump-big/trainings", json={"data": {"rows": kit.as_rows(other)},
                                                                      "continue_from": 2}, timeout=60)
         assert r.status_code == 422 and r.json()["type"] == "/problems/cannot-continue", r.text
+
+
+def test_a_parent_deleted_before_the_job_runs_fails_the_job_with_a_problem(tmp_path, kit):
+    from service.worker import Worker
+
+    with kit.service(tmp_path / "svc", worker=False) as (base, store, settings):
+        tk = Client(base)
+        spec = {**kit.SPEC, "cv": HASH_SPEC_CV}
+        worker = Worker(settings, store)
+        tk.train("pump-gone", rows=kit.as_rows(kit.pump_table(200, seed=81)), spec=spec, promote="never")
+        assert worker.run_once()
+        job = tk.train("pump-gone", rows=kit.as_rows(kit.pump_table(30, seed=82)), continue_from=1)
+        r = httpx.delete(f"{base}/v1/models/pump-gone/versions/1", timeout=60)  # not live: it may go
+        assert r.status_code == 204, r.text
+        assert worker.run_once()
+        job = tk.training(job["id"])
+        assert job["state"] == "failed" and job["version"] is None
+        assert job["problem"]["type"] == "/problems/not-found" and "version 1" in job["problem"]["detail"]
+        assert [v["version"] for v in tk.model("pump-gone")["versions"]] == []  # nothing was published
