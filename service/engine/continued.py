@@ -32,6 +32,7 @@ what is kept):
   rows' weight falls; ``tests/engine/test_continued.py`` measures the coverage.
 - The largest training leverage (the hidden-extrapolation threshold) is the larger of the new rows'
   leverages under the new fit and the parent's own threshold.
+- The drift reference keeps the parent's bins, with old and new rows counted in them (``merged_drift``).
 """
 
 from __future__ import annotations
@@ -445,6 +446,10 @@ def _continue(st: _Stored, body, arrays, data, old_weight, progress, should_stop
                     warnings=warnings + data_warnings(spec, schema, used, rows_total, K, len(model.term_names)),
                     summary_extra={"continued": True, "new_rows": m_rows},
                     drift_inputs=(X[kept_rows], level_counts))
+    merged = merged_drift(body.get("drift_reference"), old_weight * float(st.fold_rows.sum()), features,
+                          X[kept_rows], st.categories, [c[kept_rows] for c in cat_cols], oof[kept_rows])
+    if merged is not None:
+        result.drift = merged
     meta, state_arrays, state_warnings = state_of(
         spec, features, st.scaler, st.categories, st.settings,
         [(top, nested, members, atoms) for top, nested, members, atoms, _ in merged_groups],
@@ -455,6 +460,43 @@ def _continue(st: _Stored, body, arrays, data, old_weight, progress, should_stop
     result.lineage = {"old_weight": old_weight, "new_rows": m_rows, "rows": rows_total,
                       "new_data_fingerprint": fingerprint["sha256"]}
     return result
+
+
+def merged_drift(parent: dict[str, Any] | None, old_mass: float, features: list[str], X: np.ndarray,
+                 categories: Categories, cat_cols: list[np.ndarray], predictions: np.ndarray) -> dict[str, Any] | None:
+    """The drift reference of a continued version: the parent's bins (edges and levels kept), their shares
+    merged with the new rows' counts, the parent's shares weighing ``old_mass`` rows (its rows × old_weight)
+    and each new row one; a new row's unseen level goes to the levels-never-seen bin. None when the parent
+    has no reference of this format (the new rows' own reference is used then)."""
+    from . import drift
+
+    if not isinstance(parent, dict) or parent.get("format_version") != drift.REFERENCE_VERSION:
+        return None
+    m = X.shape[0]
+    total = old_mass + m
+
+    def mix(shares: list[float], counts: np.ndarray) -> list[float]:
+        return ((old_mass * np.asarray(shares, dtype=np.float64) + counts) / total).tolist()
+
+    numeric = []
+    by_name = {e["name"]: e for e in parent.get("numeric", [])}
+    for j, f in enumerate(features):
+        entry = by_name.get(f)
+        if entry is None:
+            return None
+        numeric.append({**entry, "training": mix(entry["training"], drift.numeric_counts(entry["edges"], X[:, j]))})
+    categorical = []
+    cats = {e["name"]: e for e in parent.get("categorical", [])}
+    for name, values in zip(categories.names, cat_cols):
+        entry = cats.get(name)
+        if entry is None:
+            return None
+        counts = drift.categorical_counts(entry["levels"], [str(v) for v in values.tolist()])
+        categorical.append({**entry, "training": mix(entry["training"], counts)})
+    pred = parent.get("prediction") or {"edges": [], "training": [1.0]}
+    p = predictions[np.isfinite(predictions)]
+    prediction = {**pred, "training": mix(pred["training"], drift.numeric_counts(pred["edges"], p) * (m / max(1, p.size)))}
+    return {**parent, "numeric": numeric, "categorical": categorical, "prediction": prediction}
 
 
 def merge_residuals(old: np.ndarray, old_fold: np.ndarray, old_each: float, new: np.ndarray, new_fold: np.ndarray,

@@ -324,3 +324,24 @@ def test_new_rows_are_checked_before_queueing_as_the_continuation_would_check_th
         check_new_rows(body, bad)
     with pytest.raises(CannotContinue, match="keeps no per-fold summaries"):
         check_new_rows({k: v for k, v in body.items() if k != "continuation"}, rows(30, 43))
+
+
+def test_the_drift_reference_counts_old_and_new_rows_in_the_parents_bins(parent):
+    from service.engine import drift
+
+    A, body, arrays = parent
+    B = rows(200, 50, lo=3, hi=13, levels=("a", "d"))
+    ref = continue_tune(body, arrays, B).drift
+    AB = cat(A, B)
+    for entry, parent_entry in zip(ref["numeric"], body["drift_reference"]["numeric"]):
+        assert entry["edges"] == parent_entry["edges"]  # the parent's bins
+        counts = drift.numeric_counts(entry["edges"], AB[entry["name"]])  # every row counted in them
+        np.testing.assert_allclose(entry["training"], counts / counts.sum(), rtol=1e-12)
+    (c,) = ref["categorical"]
+    counts = drift.categorical_counts(c["levels"], AB["c"].tolist())
+    np.testing.assert_allclose(c["training"], counts / counts.sum(), rtol=1e-12)
+    assert c["training"][-1] > 0  # level "d" is in the levels-never-seen bin
+    half = continue_tune(body, arrays, B, old_weight=0.5).drift["numeric"][0]["training"]
+    counts_a = drift.numeric_counts(ref["numeric"][0]["edges"], A["x1"])
+    counts_b = drift.numeric_counts(ref["numeric"][0]["edges"], B["x1"])
+    np.testing.assert_allclose(half, (0.5 * counts_a + counts_b) / (0.5 * 600 + 200), rtol=1e-12)
