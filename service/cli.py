@@ -354,8 +354,21 @@ def train(
     wait: Annotated[bool, typer.Option("--wait", help="Show progress until the job ends, then a summary.")] = False,
     idempotency_key: Annotated[Optional[str], typer.Option(help="Repeat-safe submission key (e.g. a date for a "
                                                            "nightly job).")] = None,
+    continue_from: Annotated[Optional[int], typer.Option("--continue-from", min=1, help="Continue this version of "
+                                                         "the model: --data holds only the NEW rows, merged into its "
+                                                         "per-fold summaries (its spec and basis are kept).")] = None,
+    old_weight: Annotated[Optional[float], typer.Option("--old-weight", help="With --continue-from: weight of "
+                                                        "every earlier row, in (0, 1] (default 1).")] = None,
 ) -> None:
     """Submit a training job; with --wait, follow it and summarize the chosen point and the CV curve."""
+    if old_weight is not None and continue_from is None:
+        raise UsageProblem("--old-weight applies to a continued training; give --continue-from VERSION too.")
+    if old_weight is not None and not (0 < old_weight <= 1):
+        raise UsageProblem(f"--old-weight {old_weight:g} is outside (0, 1]; e.g. 0.8 weighs earlier rows 0.8 times "
+                           "as much as the new ones.")
+    if continue_from is not None and (spec or target or basis or feature or categorical):
+        raise UsageProblem("--continue-from keeps the continued version's spec; leave out --spec, --target, --basis, "
+                           "--feature and --categorical.")
     if promote not in ("always", "if_better", "never"):
         raise UsageProblem(f"--promote {promote!r} is not offered; use always, if_better or never.")
     if (data is None) == (source is None):
@@ -381,7 +394,7 @@ def train(
     o = _opts(ctx)
     with _client(ctx) as tk:
         job = tk.train(name, file=data, source=source, spec=body, promote=promote, min_improvement=min_improvement,
-                       idempotency_key=idempotency_key)
+                       idempotency_key=idempotency_key, continue_from=continue_from, old_weight=old_weight)
         if not wait:
             if o.json:
                 _print_json(job)
@@ -499,9 +512,13 @@ def _finish_job(tk: Client, job: dict, o: _Options) -> None:
     cv = tk.cv(name, version)
     if o.json:
         _print_json({"job": job, "chosen": meta.get("chosen"), "cv_summary": meta.get("cv_summary"),
-                     "warnings": meta.get("warnings") or []})
+                     "warnings": meta.get("warnings") or [], **({"lineage": meta["lineage"]} if meta.get("lineage") else {})})
     else:
         _out.print(summary_table(job, meta))
+        lineage = meta.get("lineage") or {}
+        if lineage.get("parent_version") is not None:
+            _out.print(f"continued from version {lineage['parent_version']}: {lineage.get('new_rows')} new rows "
+                       f"merged ({lineage.get('rows')} in all), earlier rows weighted {lineage.get('old_weight'):g}")
         _out.print(cv_text_plot(cv.get("table") or [], meta.get("chosen") or {}))
         _print_warnings(meta)
     decision = job.get("decision") or {}
@@ -807,7 +824,13 @@ def show(
             f", levels {', '.join(map(str, levels))}" if levels else "")
         t.add_row(f"input {f.get('name')}", desc)
     fp = meta.get("data_fingerprint") or {}
-    t.add_row("training data", f"{fp.get('rows')} rows, sha256 {str(fp.get('sha256'))[:16]}…")
+    lineage = meta.get("lineage") or {}
+    if lineage.get("parent_version") is not None:
+        t.add_row("continued from", f"version {lineage['parent_version']}: {lineage.get('new_rows')} new rows merged "
+                  f"({lineage.get('rows')} in all), earlier rows weighted {lineage.get('old_weight'):g}")
+        t.add_row("new data", f"{fp.get('rows')} rows, sha256 {str(fp.get('sha256'))[:16]}…")
+    else:
+        t.add_row("training data", f"{fp.get('rows')} rows, sha256 {str(fp.get('sha256'))[:16]}…")
     t.add_row("created", str(meta.get("created_at")))
     t.add_row("job", str(meta.get("job_id")))
     sums = meta.get("checksums") or {}
@@ -1175,7 +1198,8 @@ _METAVARS = {
     "interval": "LEVEL", "out": "FILE", "kind": "KIND", "keep": "COUNT", "scope": "predict|train|admin",
     "label": "TEXT", "reason": "TEXT", "url": "URL", "key": "KEY", "timeout": "SECONDS", "live": "newest|none",
     "host": "ADDRESS", "port": "PORT", "version": "VERSION", "name": "NAME", "names": "NAME", "job_id": "JOB",
-    "key_id": "KEY_ID", "ref": "NAME[@VERSION]", "workers": "COUNT",
+    "key_id": "KEY_ID", "ref": "NAME[@VERSION]", "workers": "COUNT", "continue_from": "VERSION",
+    "old_weight": "WEIGHT",
 }
 
 

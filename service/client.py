@@ -503,7 +503,7 @@ class Client:
         self, name: str, *, file: str | os.PathLike | None = None, rows: Sequence[Mapping[str, Any]] | None = None,
         columns: Mapping[str, Sequence[Any]] | None = None, csv: str | None = None, source: str | None = None,
         spec: Mapping[str, Any] | None = None, promote: str = "if_better", min_improvement: float = 0.0,
-        idempotency_key: str | None = None,
+        idempotency_key: str | None = None, continue_from: int | None = None, old_weight: float | None = None,
     ) -> Job:
         """Submit a training job and return it (state ``queued``). Give the data as exactly one of:
 
@@ -514,7 +514,9 @@ class Client:
 
         ``spec`` omitted: the live version's spec is reused (a scheduled retrain). ``promote`` is
         ``if_better`` (default), ``always`` or ``never``. A repeated call with the same
-        ``idempotency_key`` returns the first job instead of starting another."""
+        ``idempotency_key`` returns the first job instead of starting another. ``continue_from``: a version
+        of the same model to continue (the data then holds only the new rows, and ``spec`` stays out);
+        ``old_weight`` (0 < w <= 1) multiplies the weight of every earlier row."""
         kind, value = _one_of("train()", file=file, rows=rows, columns=columns, csv=csv, source=source)
         headers = {"Idempotency-Key": idempotency_key} if idempotency_key else {}
         url = f"/v1/models/{_seg(name)}/trainings"
@@ -526,6 +528,10 @@ class Client:
             fields: dict[str, str] = {"promote": promote, "min_improvement": repr(float(min_improvement))}
             if spec is not None:
                 fields["spec"] = json.dumps(spec)
+            if continue_from is not None:
+                fields["continue_from"] = str(int(continue_from))
+            if old_weight is not None:
+                fields["old_weight"] = repr(float(old_weight))
             with open(path, "rb") as fh:
                 return self._send("POST", url, data=fields, files={"file": (path.name, fh)}, headers=headers)
         data: dict[str, Any]
@@ -538,6 +544,10 @@ class Client:
         body: dict[str, Any] = {"data": data, "promote": promote, "min_improvement": float(min_improvement)}
         if spec is not None:
             body["spec"] = dict(spec)
+        if continue_from is not None:
+            body["continue_from"] = int(continue_from)
+        if old_weight is not None:
+            body["old_weight"] = float(old_weight)
         return self._send("POST", url, json=body, headers=headers)
 
     submit = train

@@ -44,6 +44,14 @@ class InvalidSpec(TikhonError):
     title = "Invalid training spec"
 
 
+class CannotContinue(InvalidSpec):
+    """A continued training (``continue_from``) that the parent version or the new rows cannot give: the
+    version keeps no per-fold summaries, its scheme cannot take new rows, or the new rows' columns differ."""
+
+    slug = "cannot-continue"
+    title = "Version cannot be continued"
+
+
 class InvalidData(TikhonError):
     """The data cannot be used: unknown or missing columns, NaN/inf, wrong types, ragged CSV..."""
 

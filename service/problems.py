@@ -93,6 +93,11 @@ _FOR_PEOPLE: dict[str, str] = {
     "invalid-data": "The data cannot be used as sent: a column is missing or unknown, a value is not a number where "
                     "one is needed, a value is empty, NaN or infinite, or the CSV is not comma-separated. The detail "
                     "names the column, the first rows concerned and the fix.",
+    "cannot-continue": "A training request with continue_from names a version that cannot take new rows: it keeps no "
+                       "per-fold summaries (trained before continued training, or above max_summary_bytes), its "
+                       "cross-validation cannot place new rows in folds (loo, time_ordered, repeated_kfold, basis_fit "
+                       "per_fold, shuffle assignment, or the mae metric), or the new rows have other columns. The "
+                       "detail says which; train from scratch on all rows with cv.assignment 'hash', then continue.",
     "source-changed": "A file of the job's data source changed size, modification time or content, was deleted, "
                       "or was replaced by a symbolic link after the job was accepted. The job stopped and published "
                       "nothing; keep a source's files unchanged while its job runs (write new data to a new folder) "

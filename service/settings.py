@@ -71,6 +71,11 @@ class Settings(BaseSettings):
         "width × min(rows, width) for the pass over the rows, and per split min(rows, width)² × width plus "
         "strengths × min(rows, width) × width (× 50 sweeps for L1 penalties). Checked from the job's shape "
         "before the data is read further; the 422 names the costliest basis setting.")
+    max_summary_bytes: int = Field(
+        64 * 2**20, ge=0, description="Most bytes of per-fold summaries one version keeps for continued training "
+        "(`continue_from`): folds × (p+2)(p+3)/2 × 8 bytes per summary group (the nested linear/polynomial settings "
+        "share one, each RBF setting has its own; p counts basis terms and one-hot columns). A version above it keeps "
+        "none, says so in its warnings, and cannot be continued.")
     max_queued_jobs: int = Field(
         100, ge=1, description="Most training jobs queued at once; one more is refused with 429 and `Retry-After: 30` before its data "
         "is read.")

@@ -120,7 +120,8 @@ def stream_partitions(request: dict, data_dir, spec=None) -> tuple[dict[str, str
 
 def _train(data_path: str | None, spec: dict, conn, progress, cancel, deadline: float,
            stream: dict | None = None, dask_scheduler: str | None = None, dask_workers: int = 2,
-           limits: dict | None = None, parent_pid: int | None = None, data_dir: str | None = None) -> None:
+           limits: dict | None = None, parent_pid: int | None = None, data_dir: str | None = None,
+           continuation: dict | None = None) -> None:
     """Body of the training process: read the staged table (or stream the source), tune, send the
     artifact back through ``conn``."""
     if parent_pid is not None:
@@ -160,6 +161,17 @@ def _train(data_path: str | None, spec: dict, conn, progress, cancel, deadline: 
                                          should_stop=should_stop, budget=Budget(**(limits or {})))
             finally:
                 executor.close()
+        elif continuation is not None:  # only the new rows, merged into the parent's per-fold summaries
+            from service.tables import read_staged
+            from service.engine.continued import continue_tune
+            from service.engine.tune import Budget
+
+            budget = Budget(**(limits or {}))
+            result = continue_tune(continuation["body"], continuation["arrays"], read_staged(data_path),
+                                   old_weight=continuation["old_weight"], progress=on_progress,
+                                   should_stop=should_stop, budget=budget, version_label=continuation["label"],
+                                   max_summary_bytes=budget.max_summary_bytes)
+            result.lineage = {"parent_version": continuation["version"], **(result.lineage or {})}
         else:
             from service.tables import read_staged
             from service.engine import tune
@@ -442,6 +454,18 @@ class Worker:
             self._finish(jid, "failed", problem=_problem(TikhonError(
                 "the job has no staged data file; submit it again through POST /v1/models/{name}/trainings.")))
             return
+        continuation = None
+        if request.get("continue_from") is not None:  # the parent's body and arrays, verified by their checksums
+            version = int(request["continue_from"])
+            try:
+                body, arrays = self._retrying(f"reading version {version} of {name!r} for job {jid}",
+                                              lambda: self.store.load_parts(name, version))
+            except TikhonError as err:
+                self._finish(jid, "failed", problem=_problem(err))
+                return
+            continuation = {"body": body, "arrays": arrays, "version": version,
+                            "old_weight": float(request.get("old_weight") or 1.0),
+                            "label": f"version {version} of {name!r}"}
         parent_conn, child_conn = _SPAWN.Pipe(duplex=False)
         progress = _SPAWN.Array("q", 4, lock=False)  # done, total, and the span of the basis setting under way
         cancel = _SPAWN.Event()
@@ -451,7 +475,8 @@ class Worker:
             target=_train, args=(job.get("data_path"), request["spec"], child_conn, progress, cancel, deadline,
                                  stream, s.dask_scheduler, s.dask_local_workers,
                                  {"max_grid_fits": s.max_grid_fits, "max_levels": s.max_levels,
-                                  "max_job_cost": s.max_job_cost}, os.getpid(), str(s.data_dir)),
+                                  "max_job_cost": s.max_job_cost, "max_summary_bytes": s.max_summary_bytes},
+                                 os.getpid(), str(s.data_dir), continuation),
             name=f"tikhon-train-{jid[:8]}", daemon=True,
         )
         proc.start()

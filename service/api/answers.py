@@ -240,6 +240,12 @@ class VersionMetadata(BaseModel):
     model: dict[str, Any] | None = Field(None, description="The fitted model's description (basis, penalty, "
                                          "terms, intercept, ranges); its arrays are in the version's files.")
     warnings: list[str] | None = None
+    lineage: dict[str, Any] | None = Field(
+        None, description="A continued version (continue_from): parent_version, old_weight, new_rows, rows (all rows "
+        "merged so far) and new_data_fingerprint (SHA-256 of the new rows); absent for a version trained from scratch.")
+    continuation: dict[str, Any] | None = Field(
+        None, description="What the version keeps to be continued: folds, summary groups (columns each), rows, "
+        "positions and bytes of per-fold summaries; absent when it cannot be continued.")
     links: VersionLinks
     live: bool | None = Field(None, description="Whether this version is live (the version route only).")
 

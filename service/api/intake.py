@@ -360,6 +360,57 @@ def live_spec(store, name: str) -> dict[str, Any]:
     return spec
 
 
+def check_continuation(parsed: Any) -> dict[str, Any] | None:
+    """``{"continue_from", "old_weight"}`` of a continued-training request, None for any other; refuses
+    ``old_weight`` without ``continue_from`` and a spec beside it (the parent's spec is kept)."""
+    from service.errors import InvalidRequest
+
+    version, weight = getattr(parsed, "continue_from", None), getattr(parsed, "old_weight", None)
+    if version is None:
+        if weight is not None:
+            raise InvalidRequest(f"old_weight={weight:g} applies to a continued training only; send continue_from "
+                                 "(the version to continue) too, or leave old_weight out.",
+                                 errors=[{"field": "old_weight", "value": weight, "message": "needs continue_from"}])
+        return None
+    if parsed.spec is not None:
+        raise InvalidRequest(f"a continued training (continue_from={version}) keeps the spec of the version it "
+                             "continues; leave spec out, or train from scratch with a new spec and no continue_from.",
+                             errors=[{"field": "spec", "message": "not allowed with continue_from"}])
+    return {"continue_from": int(version), "old_weight": 1.0 if weight is None else float(weight)}
+
+
+def continuation_parent(store, name: str, version: int) -> dict[str, Any]:
+    """The engine body of the version a continuation starts from (the CV table left out), checked to be
+    continuable (``engine.continued.check_parent``: a problem saying why not and what to do)."""
+    from service.engine.continued import check_parent
+
+    manifest = store.get_manifest(name, version, cv_table=False)  # NotFound (404) for a missing version
+    body = dict(manifest.get("model") or {})
+    check_parent(body, f"version {version} of {name!r}")
+    body["_label"] = f"version {version} of {name!r}"
+    return body
+
+
+def continuation_streamed(settings: Settings) -> InvalidData:
+    from service.errors import InvalidRequest
+
+    return InvalidRequest(
+        "a continued training reads its new rows in memory, and this source would be read out of core (a folder, or "
+        f"a table above streaming_threshold_bytes={settings.streaming_threshold_bytes:,}); send the new rows as one "
+        "file below that size, or train from scratch out of core.",
+        errors=[{"field": "data.source", "message": "continued training reads the new rows in memory"}])
+
+
+def validate_new_rows(cols: tables.Table, parent: dict[str, Any], settings: Settings
+                      ) -> tuple[dict[str, Any], dict[str, int]]:
+    """The parent's spec and the grid counts for a continuation's new rows, refused as the engine would
+    refuse them (another column set, unreadable values, the budget)."""
+    from service.engine.continued import check_new_rows
+
+    counts = check_new_rows(parent, cols, _budget(settings), parent.get("_label", "the parent version"))
+    return parse(parent["spec"]).model_dump(mode="json"), counts
+
+
 def validate(cols: tables.Table, spec_raw: dict[str, Any], settings: Settings) -> tuple[dict[str, Any], dict[str, int]]:
     """Validate spec and data together exactly as the engine will; return the normalized spec and grid counts."""
     from service.engine import check_budget, parse_spec

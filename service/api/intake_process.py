@@ -52,7 +52,7 @@ def read_json_body(body: bytes | str, limits: dict[str, Any], incoming: str) -> 
     """The whole in-memory intake of one JSON training body (runs in an intake process, or inline).
     ``body``: the bytes, or the path of the file they were written to (read, then removed).
 
-    Returns ``{"request": {spec, promote, min_improvement}, "data": ...}`` plus, for rows or CSV data,
+    Returns ``{"request": {spec, promote, min_improvement, continue_from, old_weight}, "data": ...}`` plus, for rows or CSV data,
     ``origin``, ``spec`` and ``counts`` (None when the request has no spec: the live spec is checked
     by the caller) and ``staged`` (the Parquet file's path); or ``error`` with ``deferred``."""
     from service import tables
@@ -73,13 +73,17 @@ def read_json_body(body: bytes | str, limits: dict[str, Any], incoming: str) -> 
         intake.check_spec_size(parsed.spec, settings)
     except TikhonError as exc:
         return {"error": exc, "deferred": False}
-    request = {"spec": parsed.spec, "promote": parsed.promote, "min_improvement": parsed.min_improvement}
+    request = {"spec": parsed.spec, "promote": parsed.promote, "min_improvement": parsed.min_improvement,
+               "continue_from": parsed.continue_from, "old_weight": parsed.old_weight}
     if not isinstance(data, dict) or not ("rows" in data or "csv" in data):
         return {"request": request, "data": data}  # a source: the route reads it (or streams it) itself
     kind = "rows" if "rows" in data else "csv"
     out: dict[str, Any] = {"request": request, "data": {"kind": kind}}
     try:
-        cols, origin = intake.load_data(data, settings, spec=intake.parse(parsed.spec))
+        # without a spec (a retrain reusing the live spec, or a continuation) the route checks the staged
+        # columns against the spec it finds; the table is read without one here
+        cols, origin = intake.load_data(data, settings,
+                                        spec=intake.parse(parsed.spec) if parsed.spec is not None else None)
         data.clear()  # the row objects are columns now
         spec = counts = None
         if parsed.spec is not None:

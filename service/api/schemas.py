@@ -60,6 +60,13 @@ class TrainingRequest(BaseModel):
         description="For if_better: the least improvement of the selection metric (in its own units) the new "
         "version must show over the live one.",
     )
+    continue_from: int | None = Field(
+        None, ge=1, description="Continued training: a version of the same model whose spec, basis and per-fold "
+        "summaries are kept; `data` then holds only the NEW rows, merged into its summaries before the whole "
+        "strength × basis sweep runs again. Leave `spec` out (the version's own is used).")
+    old_weight: float | None = Field(
+        None, gt=0, le=1, allow_inf_nan=False, description="With continue_from: multiplies the weight of every "
+        "earlier row (default 1); 0.8 on every monthly continuation forgets old months exponentially.")
 
     @model_validator(mode="before")
     @classmethod
@@ -83,6 +90,9 @@ class TrainingUpload(BaseModel):
     promote: Promote = Field(Promote.if_better, description="Whether the new version goes live.")
     min_improvement: float = Field(0.0, ge=0, description="For if_better: the least improvement of the selection "
                                    "metric the new version must show.")
+    continue_from: int | None = Field(None, ge=1, description="Continued training from this version: the file holds "
+                                      "only the new rows (see TrainingRequest).")
+    old_weight: float | None = Field(None, gt=0, le=1, description="With continue_from: weight of every earlier row.")
 
 
 def parse_training_request(raw: Any) -> TrainingRequest:

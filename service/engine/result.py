@@ -461,6 +461,12 @@ class TuneResult:
             their differences; m = n in memory (NaN for rows never validated), a seeded sample streamed.
         fingerprint: ``{sha256, rows, columns, method}`` of the training columns (``fingerprint_of``).
         summary: counts and settings of the run (metric, rule, scheme, splits, rows, candidates, ...).
+        drift: the training distribution in bins (``drift.reference``), or None.
+        continuation: (meta, arrays) of the per-fold summaries a later continued training merges into
+            (``continued.state_of``; ``to_artifact`` writes them as ``body["continuation"]`` and
+            ``continuation_*`` arrays), or None when the version cannot be continued.
+        lineage: for a continued version (``continued.continue_tune``): old_weight, new_rows, rows,
+            new_data_fingerprint (the worker adds parent_version); None otherwise.
     """
     spec: TuneSpec
     best: dict[str, Any]
@@ -477,6 +483,9 @@ class TuneResult:
     fingerprint: dict[str, Any]
     summary: dict[str, Any] = field(default_factory=dict)
     drift: dict[str, Any] | None = None  # training distribution in bins (``drift.reference``)
+    # (meta, arrays) of the per-fold summaries a later continuation merges into (``continued.state_of``), or None
+    continuation: tuple[dict[str, Any], dict[str, np.ndarray]] | None = None
+    lineage: dict[str, Any] | None = None  # a continued version: old_weight, new rows, new data's fingerprint
 
     def to_artifact(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
         """(JSON-serializable manifest body, plain numeric arrays): all a stored version needs."""
@@ -513,6 +522,11 @@ class TuneResult:
         }
         if self.drift is not None:
             body["drift_reference"] = self.drift
+        if self.continuation is not None:
+            body["continuation"] = self.continuation[0]
+            arrays.update(self.continuation[1])
+        if self.lineage is not None:
+            body["lineage"] = dict(self.lineage)
         return body, arrays
 
 

@@ -464,7 +464,18 @@ def _tune_partitions(partitions, schema, spec: TuneSpec, executor, progress, sho
                           errors=[{"field": "cv.folds", "value": spec.cv.folds, "message": "empty fold"}])
     rows = _score(run, m, settings, groups, fold_summaries)
     picks = select(rows, settings, spec.selection.metric, spec.selection.rule)
-    return _refit(run, m, scan, settings, groups, fold_summaries, rows, picks)
+    result = _refit(run, m, scan, settings, groups, fold_summaries, rows, picks)
+    # the per-fold summaries a later continuation merges into (``continued.state_of``)
+    from . import continued
+
+    meta, state_arrays, state_warnings = continued.state_of(
+        spec, features, m.scaler, m.categories, settings,
+        [(top, nested, groups.members[g], fold_summaries[g]) for g, (top, nested) in enumerate(groups.items)],
+        rows=scan.n, positions=scan.n, ranges=result.model.ranges, weights=None, limit=budget.max_summary_bytes,
+        streaming=True)
+    result.continuation = (meta, state_arrays) if meta is not None else None
+    result.warnings.extend(state_warnings)
+    return result
 
 
 @dataclass

@@ -29,6 +29,7 @@ from .solvers import Fit, convergence_warnings, fit, watch_convergence
 from .spec import TuneSpec, parse_spec
 from .summaries import Summary
 from .advice import data_warnings
+from . import continued
 from .table import as_columns, categorical_column, key_column, numeric_column
 
 LEVERAGE_ONE = 1e-10  # a row with hᵢᵢ ≥ 1 − this has leverage 1: its leave-one-out error needs a refit
@@ -53,6 +54,7 @@ class Budget:
     max_design_cells: int = 400_000_000
     max_levels: int = 1_000  # distinct levels of one categorical column, counted before one-hot expansion
     max_job_cost: float = 2e11  # estimated floating-point operations of the whole job (``estimate_cost``)
+    max_summary_bytes: int = 64 * 2**20  # per-fold summaries a version keeps for continued training (``continued``)
 
 
 @dataclass
@@ -317,7 +319,7 @@ def check_budget(spec: Any, n_rows: int, n_features: int, budget: Budget | None 
 # ---------------------------------------------------------------------------------------------------
 def tune(data: Any, spec: Any, *, progress: Callable[[int, int], None] | None = None,
          should_stop: Callable[[], bool] | None = None, budget: Budget | None = None,
-         progress_span: Callable[[int, int], None] | None = None) -> TuneResult:
+         progress_span: Callable[[int, int], None] | None = None, basis=None) -> TuneResult:
     """Choose basis setting and penalty strength jointly by cross-validation, then refit on all rows.
 
     ``data``: dict name → 1-D array (n,), pandas DataFrame or pyarrow Table. ``spec``: dict or ``TuneSpec``.
@@ -325,7 +327,9 @@ def tune(data: Any, spec: Any, *, progress: Callable[[int, int], None] | None = 
     True raises ``Cancelled``; ``budget`` bounds the work (``Budget``). ``progress_span(start, end)``, if
     given, is called as each basis setting starts: progress stays in ``[start, end)`` until that setting
     is done (the worker moves its shown progress inside that span between the engine's reports); with it,
-    every job counts ``PACED_STEPS`` sub-units per unit. Returns a ``TuneResult``
+    every job counts ``PACED_STEPS`` sub-units per unit. ``basis``: a fixed basis definition (input scaling,
+    basis settings, categories: ``continued.fixed_basis`` of a stored version) used instead of one fit on
+    these rows (a continuation's from-scratch twin). Returns a ``TuneResult``
     (``service.engine.result``); bad data or specs raise ``InvalidData`` / ``InvalidSpec`` naming the
     field, value and fix.
     """
@@ -333,18 +337,25 @@ def tune(data: Any, spec: Any, *, progress: Callable[[int, int], None] | None = 
     # BLAS on one thread for the whole job: the row passes run on threads of their own (``parallel``),
     # and the rest is small matrices, on which waiting BLAS threads cost more than they give
     with watch_convergence() as unconverged, single_blas() if usable_cores() > 1 else nullcontext():
-        result = _tune(data, spec, progress, should_stop, budget, progress_span)
+        result = _tune(data, spec, progress, should_stop, budget, progress_span, basis)
     result.warnings.extend(convergence_warnings(unconverged))
     return result
 
 
-def _tune(data, spec: TuneSpec, progress, should_stop, budget, span=None) -> TuneResult:
+def _tune(data, spec: TuneSpec, progress, should_stop, budget, span=None, basis=None) -> TuneResult:
     prep = prepare(data, spec, budget)
     n, d = prep.X.shape
+    if basis is not None:  # a fixed basis: its scaling, settings and category levels (unseen levels encode as 0)
+        scaler, settings, categories = basis
+        cats = [categorical_column(prep.cols, c) for c in spec.categorical]
+        prep.categories = categories
+        prep.cat_block = categories.encode(cats)[0] if cats else np.zeros((n, 0))
     check_budget(spec, n, d, budget, prep.categories.width)
-    scaler = InputScaler.fit(prep.features, prep.X, prep.w)
+    if basis is None:
+        scaler = InputScaler.fit(prep.features, prep.X, prep.w)
     Xs = scaler.transform(prep.X)
-    settings = basis_settings(spec, Xs, prep.keys)
+    if basis is None:
+        settings = basis_settings(spec, Xs, prep.keys)
     strengths = spec.penalty.strength_grid()
     ratios = spec.penalty.ratio_grid()
 
@@ -356,6 +367,12 @@ def _tune(data, spec: TuneSpec, progress, should_stop, budget, span=None) -> Tun
     else:
         plan = make_plan(spec.cv, n, prep.groups, prep.order, prep.keys)
         search = _SharedSearch(spec, prep, Xs, settings, strengths, ratios, plan)
+        if continued.why_not(spec) is None:  # the nested group's share of the bound first, then RBF settings'
+            top = search._nested_top
+            nested = 0 if top is None else continued.packed_bytes(top.n_terms(d) + prep.categories.width + 2,
+                                                                     plan.n_splits)
+            search.kept_bytes = nested
+            search.keep_bytes = (budget or Budget()).max_summary_bytes
 
     # A long job reports progress inside each basis setting too (after each row block of each fold's
     # pass and after each split's fit): its units are then PROGRESS_STEPS sub-units of a (setting × split).
@@ -398,7 +415,8 @@ def _tune(data, spec: TuneSpec, progress, should_stop, budget, span=None) -> Tun
     s_idx = chosen["_setting"]
     model, full, oof_pred = search.refit(s_idx, settings[s_idx], chosen["strength"], chosen["l1_ratio"], strengths,
                                          scaler)
-    return finish(spec, settings, rows, picks, model, full, n_rows=n, n_splits=search.n_splits,
+    state = _continuation_state(spec, prep, scaler, settings, search, model, budget)
+    result = finish(spec, settings, rows, picks, model, full, n_rows=n, n_splits=search.n_splits,
                   folds=search.assignment, oof_predictions=oof_pred, oof_observed=prep.y,
                   fingerprint=fingerprint_of(fingerprint_columns(prep.cols, prep.used, 0, label_columns(spec)), n),
                   warnings=search.warnings + data_warnings(
@@ -407,6 +425,36 @@ def _tune(data, spec: TuneSpec, progress, should_stop, budget, span=None) -> Tun
                       prep.used, int(n), search.n_splits,
                       len(model.term_names)),
                   drift_inputs=(prep.X, _level_counts(prep)))
+    meta, state_arrays, state_warnings = state
+    result.continuation = (meta, state_arrays) if meta is not None else None
+    result.warnings.extend(state_warnings)
+    return result
+
+
+def _continuation_state(spec: TuneSpec, prep: Prepared, scaler: InputScaler, settings: list[BasisSetting], search,
+                        model: FittedModel, budget: Budget | None):
+    """What the version keeps to be continued later (``continued.state_of``): the per-fold summaries of
+    every summary group the search merged. Nothing for searches that have no shared per-fold summaries."""
+    if type(search) is not _SharedSearch or continued.why_not(spec) is not None:
+        return None, {}, []
+    limit = (budget or Budget()).max_summary_bytes
+    if search.keep_bytes is None or search.kept_bytes > limit:  # above the bound: nothing was kept
+        return None, {}, [continued.too_large(search.kept_bytes, limit)]
+    groups = []
+    if search._nested is not None:
+        members = [i for i, s in enumerate(settings) if s.kind in ("linear", "polynomial")]
+        groups.append((search._nested_top, True, members, search._nested[1]))
+    for i, s in enumerate(settings):
+        if s.kind == "rbf":
+            groups.append((s, False, [i], search.kept[i]))
+    weights = None
+    if prep.w is not None:
+        raw = numeric_column(prep.cols, spec.weight, "weight")
+        positive = float(np.count_nonzero(raw > 0))
+        weights = {"positive": positive, "raw_sum": float(raw.sum()), "factor": positive / float(raw.sum())}
+    n = int(prep.y.size)
+    return continued.state_of(spec, prep.features, scaler, prep.categories, settings, groups, rows=n, positions=n,
+                              ranges=model.ranges, weights=weights, limit=limit)
 
 
 def _level_counts(prep: Prepared) -> list[np.ndarray]:
@@ -464,6 +512,9 @@ class _SharedSearch:
         d = prep.X.shape[1]
         self._nested_top = max(nested, key=lambda s: s.n_terms(d)) if nested else None
         self._nested: tuple[np.ndarray, list[Summary]] | None = None
+        self.kept: dict[int, list[Summary]] = {}  # RBF settings' atom summaries (kept for continued training)
+        self.keep_bytes: int | None = None  # keep them up to this many stored bytes (None: keep none)
+        self.kept_bytes = 0  # stored bytes of the summary groups seen so far
         self.warnings: list[str] = []
 
     tick: Callable[[float], None] | None = None  # progress inside one setting (fraction done), long jobs only
@@ -514,6 +565,12 @@ class _SharedSearch:
 
     def evaluate(self, s_idx: int, setting: BasisSetting):
         D, atoms = self._atoms(setting)
+        if setting.kind == "rbf" and self.keep_bytes is not None:  # kept for continued training, within the bound
+            self.kept_bytes += continued.packed_bytes(atoms[0].R.shape[0], len(atoms))
+            if self.kept_bytes <= self.keep_bytes:
+                self.kept[s_idx] = atoms
+            else:  # above the bound: none will be stored, so none is held
+                self.kept.clear()
         y = self.prep.y
         mae_rows = None
         if self.spec.selection.metric == "mae":

@@ -515,6 +515,17 @@ class Store:
         self._cache.put(key, loaded, loaded.nbytes)
         return loaded
 
+    def load_parts(self, name: str, version: int) -> tuple[dict[str, Any], dict[str, Any]]:
+        """(engine body, every array) of one version, read from its files and verified by their checksums as
+        ``load`` does, but not rebuilt nor cached: what a continued training merges its new rows into."""
+        validate_name(name)
+        version = self._check_version(name, version)
+        row = self._version_row(name, version)
+        folder = self._version_dir(name, version)
+        manifest, _ = artifact.read_manifest(folder, expected_sha256=row["manifest_sha256"], name=name, version=version)
+        arrays, _ = artifact.read_arrays(folder, manifest, name=name, version=version)
+        return manifest["model"], dict(arrays)
+
     def verify(self, name: str, version: int) -> LoadedVersion:
         """Verify one version from its files as a first load does (checksums, format, members, rebuilt by
         the loader), whatever the cache holds. Raises ``IntegrityFailure`` naming the failed check."""

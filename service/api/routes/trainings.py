@@ -105,8 +105,21 @@ def _discard(path: FsPath) -> None:
 class _Fields:
     """The request fields an intake process sent back (``intake_process.read_json_body``)."""
 
-    def __init__(self, spec: dict[str, Any] | None, promote: str, min_improvement: float):
+    def __init__(self, spec: dict[str, Any] | None, promote: str, min_improvement: float,
+                 continue_from: int | None = None, old_weight: float | None = None):
         self.spec, self.promote, self.min_improvement = spec, promote, min_improvement
+        self.continue_from, self.old_weight = continue_from, old_weight
+
+
+def _form_number(form, field: str, kind: type, rule: str) -> Any:
+    """A numeric multipart field, or None when absent; refused naming the field and what it takes."""
+    if form.get(field) is None:
+        return None
+    try:
+        return kind(str(form[field]))
+    except ValueError:
+        raise InvalidData(f"{field} must be {rule}, got {form[field]!r}.",
+                          errors=[{"field": field, "value": str(form[field]), "message": f"expected {rule}"}]) from None
 
 
 async def _read_submission(request: Request, incoming: FsPath
@@ -121,9 +134,10 @@ async def _read_submission(request: Request, incoming: FsPath
         except Exception as exc:  # python-multipart raises several types for broken bodies
             raise MalformedBody(f"the multipart body could not be read ({exc}); send fields 'file' and optionally "
                                 "'spec', 'promote', 'min_improvement'.") from None
-        unknown = sorted(set(form.keys()) - {"file", "spec", "promote", "min_improvement"})
+        unknown = sorted(set(form.keys()) - {"file", "spec", "promote", "min_improvement", "continue_from", "old_weight"})
         if unknown:
-            raise InvalidData(f"unknown multipart field(s) {unknown}; the fields are file, spec, promote, min_improvement.",
+            raise InvalidData(f"unknown multipart field(s) {unknown}; the fields are file, spec, promote, min_improvement, "
+                              "continue_from, old_weight.",
                               errors=[{"field": k, "message": "unknown field"} for k in unknown])
         upload = form.get("file")
         if upload is None or isinstance(upload, str):
@@ -143,6 +157,11 @@ async def _read_submission(request: Request, incoming: FsPath
                 raise InvalidData(f"min_improvement must be a number >= 0, got {form['min_improvement']!r}.",
                                   errors=[{"field": "min_improvement", "value": str(form["min_improvement"]),
                                            "message": "expected a number >= 0"}]) from None
+        for field, kind, rule in (("continue_from", int, "a version number (an integer >= 1)"),
+                                  ("old_weight", float, "a number in (0, 1]")):
+            value = _form_number(form, field, kind, rule)
+            if value is not None:
+                fields[field] = value
         parsed = parse_training_request(fields)
         target = incoming / f"{uuid.uuid4().hex}-upload"
         try:
@@ -195,12 +214,21 @@ async def submit(request: Request, name: ModelName) -> Response:
     submitter = _submitter(request)
     limits = {"queue_limit": settings.max_queued_jobs, "submitter_limit": settings.max_queued_jobs_per_key}
 
+    continuing = intake.check_continuation(parsed)  # {"continue_from", "old_weight"} or None
+
     def accept() -> tuple[dict[str, Any], bool]:
         intake.check_spec_size(parsed.spec, settings)  # before any other work on the request
         if key is None:  # a full queue refuses before the data is read (checked again when the job is entered)
             store.jobs.check_capacity(submitter=submitter, **limits)
-        spec_raw = parsed.spec if parsed.spec is not None else intake.live_spec(store, name)
-        stream = intake.stream_source(data, spec_raw, settings) if upload is None else None
+        parent = None
+        if continuing is not None:  # the parent's spec, checked to be continuable before the rows are read
+            parent = intake.continuation_parent(store, name, continuing["continue_from"])
+            spec_raw = parent["spec"]
+        else:
+            spec_raw = parsed.spec if parsed.spec is not None else intake.live_spec(store, name)
+        stream = intake.stream_source(data, spec_raw if parent is None else {}, settings) if upload is None else None
+        if stream is not None and continuing is not None:
+            raise intake.continuation_streamed(settings)
         if stream is not None:  # out of core: the worker reads the source itself, in batches
             spec, counts, origin, files = intake.validate_stream(stream, spec_raw, settings, data["source"])
             job_request = {  # the worker reads exactly ``files`` (fixed here), each re-checked when opened
@@ -214,9 +242,12 @@ async def submit(request: Request, name: ModelName) -> Response:
             if read.get("error") is not None:
                 raise read["error"]
             path, origin, spec, counts = FsPath(read["staged"]), read["origin"], read["spec"], read["counts"]
-            if spec is None:  # a retrain reusing the live spec: check the staged columns against it here
+            if spec is None:  # a retrain reusing the live spec (or a continuation): check the staged columns here
                 try:
-                    spec, counts = intake.validate(tables.read_staged(path), spec_raw, settings)
+                    if parent is not None:
+                        spec, counts = intake.validate_new_rows(tables.read_staged(path), parent, settings)
+                    else:
+                        spec, counts = intake.validate(tables.read_staged(path), spec_raw, settings)
                 except BaseException:
                     intake.discard(path)
                     raise
@@ -224,12 +255,17 @@ async def submit(request: Request, name: ModelName) -> Response:
             cols, origin = intake.load_data(data, settings, upload=upload, spec=intake.parse(spec_raw))
             if isinstance(data, dict):
                 data.pop("rows", None)  # the row objects are columns now: free them before validating and staging
-            spec, counts = intake.validate(cols, spec_raw, settings)
+            if parent is not None:
+                spec, counts = intake.validate_new_rows(cols, parent, settings)
+            else:
+                spec, counts = intake.validate(cols, spec_raw, settings)
             path = intake.stage(store, cols)
         job_request = {
             "spec": spec, "promote": parsed.promote, "min_improvement": parsed.min_improvement,
-            "data": origin, "grid": counts, "spec_reused": parsed.spec is None, SUBMITTER: submitter,
+            "data": origin, "grid": counts, "spec_reused": parsed.spec is None and parent is None, SUBMITTER: submitter,
         }
+        if continuing is not None:
+            job_request.update(continuing)
         try:
             job, created = store.jobs.submit(name, job_request, data_path=str(path), idempotency_key=key, **limits)
         except BaseException:
