@@ -426,7 +426,7 @@ def finish(spec: TuneSpec, settings: list[BasisSetting], rows: list[dict[str, An
     model.cv = {"metric": metric, "mean": chosen["mean"], "std": chosen["std"], "folds": n_splits,
                 "scheme": spec.cv.scheme, "rule": rule}
     return TuneResult(
-        spec=spec, best=public(chosen_idx) | {"rule": rule}, one_standard_error=public(onese_idx),
+        spec=spec, chosen=public(chosen_idx) | {"rule": rule}, one_standard_error=public(onese_idx),
         best_mean=public(best_idx), cv_table=table, model=model, folds=folds,
         path=path_of(full, chosen["strength"], model.term_names),
         warnings=edge_warnings(settings, chosen, strengths) + table_warnings + list(warnings),
@@ -443,7 +443,7 @@ class TuneResult:
 
     Attributes (n = training rows, L = strengths, p = basis terms of the chosen setting):
         spec: the validated ``TuneSpec``.
-        best: the chosen candidate: ``{basis, penalty: {kind, strength, l1_ratio}, metric, mean, std,
+        chosen: the chosen candidate: ``{basis, penalty: {kind, strength, l1_ratio}, metric, mean, std,
             se, df, index, rule}`` (``index`` into ``cv_table``).
         one_standard_error: the candidate the one-standard-error rule picks (same keys, no ``rule``).
         best_mean: the candidate with the best mean CV metric (same keys).
@@ -463,7 +463,7 @@ class TuneResult:
         summary: counts and settings of the run (metric, rule, scheme, splits, rows, candidates, ...).
     """
     spec: TuneSpec
-    best: dict[str, Any]
+    chosen: dict[str, Any]
     one_standard_error: dict[str, Any]
     best_mean: dict[str, Any]
     cv_table: list[dict[str, Any]]
@@ -497,7 +497,7 @@ class TuneResult:
         body = {
             "spec": self.spec.model_dump(mode="json"),
             "model": meta,
-            "chosen": self.best,
+            "chosen": self.chosen,
             "best_mean": self.best_mean,
             "one_standard_error": self.one_standard_error,
             "cv_table": self.cv_table,

@@ -43,7 +43,7 @@ def test_train_poll_metadata_predict_matches_engine(worker_service, kit):
 
     # The same data and spec through the engine directly (the reference the issue names).
     reference = tune({k: v.copy() for k, v in cols.items()}, copy.deepcopy(kit.SPEC))
-    assert meta["chosen"]["basis"] == reference.best["basis"]
+    assert meta["chosen"]["basis"] == reference.chosen["basis"]
     fresh = kit.pump_table(50, seed=99)
     inputs = {k: fresh[k] for k in ("flow_lps", "head_m")}
     expected = reference.model.predict(inputs)
@@ -53,8 +53,8 @@ def test_train_poll_metadata_predict_matches_engine(worker_service, kit):
     got = np.array([row["value"] for row in body["predictions"]])
     np.testing.assert_allclose(got, expected, rtol=1e-12, atol=1e-12)
     assert body["model"]["name"] == "pump-a" and body["model"]["version"] == 1
-    assert body["model"]["basis"] == reference.best["basis"]
-    assert body["model"]["penalty"]["strength"] == reference.best["penalty"]["strength"]
+    assert body["model"]["basis"] == reference.chosen["basis"]
+    assert body["model"]["penalty"]["strength"] == reference.chosen["penalty"]["strength"]
     assert body["model"]["cv"] == {"metric": "rmse", "mean": reference.summary["mean"], "folds": 5}
     assert body["model"]["created_at"] == meta["created_at"]
 

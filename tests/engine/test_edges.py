@@ -191,8 +191,8 @@ def test_one_standard_error_rule_follows_esl_with_df_across_bases():
     assert best["se"] == pytest.approx(se, rel=1e-12)
     within = [r for r in table if r["mean"] <= best["mean"] + se]
     simplest = min(within, key=lambda r: (r["df"], -r["strength"]))
-    assert res.best["basis"] == simplest["basis"]
-    assert res.best["penalty"]["strength"] == simplest["strength"]
+    assert res.chosen["basis"] == simplest["basis"]
+    assert res.chosen["penalty"]["strength"] == simplest["strength"]
     # df of every row is ESL eq. 3.50 on all rows: tr[Z (ZᵀZ + λI)⁻¹ Zᵀ], written out here
     Z = StandardScaler().fit_transform(PolynomialFeatures(2, include_bias=False).fit_transform(standardized(X)))
     s2 = np.linalg.svd(Z, compute_uv=False) ** 2

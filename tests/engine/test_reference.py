@@ -240,8 +240,8 @@ def test_l2_cv_table_equals_gridsearchcv():
         assert row["std"] == pytest.approx(want.std(), rel=1e-6, abs=1e-9)
     assert worst <= 1e-9, worst
     best = gs.best_params_
-    assert res.best["basis"] == {"kind": "polynomial", "degree": best["poly__degree"]}
-    assert res.best["penalty"]["strength"] == pytest.approx(best["ridge__alpha"], rel=1e-12)
+    assert res.chosen["basis"] == {"kind": "polynomial", "degree": best["poly__degree"]}
+    assert res.chosen["penalty"]["strength"] == pytest.approx(best["ridge__alpha"], rel=1e-12)
     # the refit equals Pipeline.fit on all rows at the chosen point
     ref_pred = gs.best_estimator_.predict(_standardized(X))
     np.testing.assert_allclose(res.model.predict(data), ref_pred, rtol=1e-9)
@@ -269,9 +269,9 @@ def test_sparse_cv_table_equals_gridsearchcv(kind, ratios):
         want = ref[(row["basis"]["degree"], row["l1_ratio"], row["strength"])]
         np.testing.assert_allclose(row["folds"], want, rtol=1e-6)
     best = gs.best_params_
-    assert res.best["basis"]["degree"] == best["poly__degree"]
-    assert res.best["penalty"]["strength"] == best["enet__alpha"]
-    assert res.best["penalty"]["l1_ratio"] == best["enet__l1_ratio"]
+    assert res.chosen["basis"]["degree"] == best["poly__degree"]
+    assert res.chosen["penalty"]["strength"] == best["enet__alpha"]
+    assert res.chosen["penalty"]["l1_ratio"] == best["enet__l1_ratio"]
 
 
 def test_rbf_cv_table_equals_pipeline_on_the_same_centres():

@@ -44,8 +44,8 @@ def assert_same(a, b, tol=1e-12):
     for r1, r2 in zip(a.cv_table, b.cv_table):
         assert r1["basis"] == r2["basis"] and r1["strength"] == r2["strength"] and r1["l1_ratio"] == r2["l1_ratio"]
         np.testing.assert_allclose(r2["folds"], r1["folds"], rtol=tol)
-    assert a.best["basis"] == b.best["basis"]
-    assert a.best["penalty"] == b.best["penalty"]
+    assert a.chosen["basis"] == b.chosen["basis"]
+    assert a.chosen["penalty"] == b.chosen["penalty"]
 
 
 SPEC = {"target": "y", "features": ["x0", "x2", "x3", "x4"], "categorical": ["sex"],

@@ -40,7 +40,7 @@ def test_tune_publish_load_in_fresh_process_bit_for_bit(settings, kit, tmp_path,
     body, arrays = result.to_artifact()
     with Store(settings) as store:  # the engine's own loader
         row = store.publish("diabetes", body, arrays, job_id="0" * 32)
-        assert row["summary"]["chosen"] == json.loads(json.dumps(result.best))
+        assert row["summary"]["chosen"] == json.loads(json.dumps(result.chosen))
         in_process = store.load("diabetes", row["version"])
     # New rows: perturbed training rows, seeded, so the inputs differ from what was fitted.
     rng = np.random.default_rng(42)
