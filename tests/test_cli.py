@@ -159,7 +159,7 @@ def test_train_wait_shows_progress_then_the_chosen_point(server, tmp_path):
     # sqrt(splits) (Hastie, Tibshirani & Friedman, The Elements of Statistical Learning, 2nd ed., 7.10)
     with Client(url) as tk:
         table = tk.cv("pump-cli", 1)["table"]
-    folds = next(r["folds"] for r in table if r["basis"] == chosen["basis"]
+    folds = next(r["split_values"] for r in table if r["basis"] == chosen["basis"]
                  and r["strength"] == chosen["penalty"]["strength"])
     se = statistics.stdev(folds) / meta["cv_summary"]["splits"] ** 0.5
     assert f"{chosen['mean']:.6g} ± {se:.3g} (1 SE over {meta['cv_summary']['splits']} folds)" in summary

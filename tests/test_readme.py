@@ -217,7 +217,7 @@ def test_first_command_serves_the_demo_model_from_a_fresh_environment(demo):
     model = answer["model"]
     assert model["name"] == "pump-energy" and model["version"] == 1 and model["created_at"]
     assert model["basis"] == meta["chosen"]["basis"] and model["penalty"] == meta["chosen"]["penalty"]
-    assert model["cv"]["metric"] == "rmse" and model["cv"]["folds"] == 5
+    assert model["cv"]["metric"] == "rmse" and model["cv"]["splits"] == 5
     assert meta["job_id"] and meta["spec"]["target"] == "energy_kwh"  # trained by a job, not written directly
     inside, outside = answer["predictions"]
     lo, hi = inside["interval"]

@@ -354,7 +354,7 @@ def live_spec(store, name: str) -> dict[str, Any]:
             errors=[{"field": "spec", "message": "missing"}],
         )
     manifest = store.get_manifest(name, live, cv_table=False)
-    spec = (manifest.get("model") or {}).get("spec")
+    spec = (manifest.get("training") or {}).get("spec")
     if not isinstance(spec, dict):
         raise InvalidSpec(f"the live version {live} of {name!r} keeps no reusable spec; send a spec with the request.")
     return spec

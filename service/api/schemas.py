@@ -143,7 +143,7 @@ class PredictedRow(BaseModel):
 class ModelCv(BaseModel):
     metric: Metric
     mean: float | None = Field(..., description="Mean CV metric of the chosen point.")
-    folds: int | None = Field(..., description="Splits of the cross-validation.")
+    splits: int | None = Field(..., description="Splits of the cross-validation.")
 
 
 class ModelBlock(BaseModel):

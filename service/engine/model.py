@@ -61,7 +61,7 @@ class FittedModel:
             (split-conformal intervals: ``basis_fit: per_fold`` and ``loo``).
         residuals: (R,) sorted absolute out-of-fold residuals, concatenated by fold; residual_fold: (R,)
             their fold (-1 when split-conformal); residual_weight: how many residuals each kept one stands for.
-        cv: ``{"metric", "mean", "std", "folds", "scheme", "rule"}`` of the chosen candidate.
+        cv: ``{"metric", "mean", "std", "splits", "scheme", "rule"}`` of the chosen candidate.
         term_names: (p,) names of the design columns.
     """
 
@@ -84,7 +84,7 @@ class FittedModel:
     residuals: np.ndarray  # sorted out-of-fold absolute residuals (possibly thinned), concatenated by fold
     residual_fold: np.ndarray  # fold id of each residual (-1 when intervals are split-conformal)
     residual_weight: float = 1.0  # how many residuals each kept one stands for
-    cv: dict[str, Any] = field(default_factory=dict)  # {"metric", "mean", "std", "folds", "scheme", "rule"}
+    cv: dict[str, Any] = field(default_factory=dict)  # {"metric", "mean", "std", "splits", "scheme", "rule"}
     term_names: list[str] = field(default_factory=list)
 
     # ---- prediction -------------------------------------------------------------------------------

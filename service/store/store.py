@@ -496,7 +496,7 @@ class Store:
             folder, expected_sha256=row["manifest_sha256"], name=name, version=version)
         arrays, arrays_size = artifact.read_arrays(folder, manifest, name=name, version=version)
         try:
-            model = self._loader(manifest["model"], arrays)
+            model = self._loader(manifest["training"], arrays)
         except Exception as exc:
             raise IntegrityFailure(
                 f"model {name!r} version {version} passed its checksums but could not be rebuilt "
@@ -596,14 +596,14 @@ class Store:
         """The verified manifest of one version, read from disk (a fresh dict the caller may keep).
 
         With ``cv_table`` (the default) a CV table kept in ``cv.npz`` is read back into
-        ``model.cv_table`` as a list of rows, so the manifest looks as the engine wrote it; without it,
-        ``model.cv_table`` stays the small reference (what metadata routes should read)."""
+        ``training.cv_table`` as a list of rows, so the manifest looks as the engine wrote it; without it,
+        ``training.cv_table`` stays the small reference (what metadata routes should read)."""
         validate_name(name)
         version = self._check_version(name, version)
         row = self._version_row(name, version)
         folder = self._version_dir(name, version)
         manifest, _ = artifact.read_manifest(folder, expected_sha256=row["manifest_sha256"], name=name, version=version)
-        body = manifest.get("model")
+        body = manifest.get("training")
         if cv_table and isinstance(body, dict) and _is_cv_reference(body.get("cv_table")):
             columns, meta = self.cv_columns(name, version, manifest)
             body["cv_table"] = artifact.cv_rows(columns, meta, slice(None))
@@ -616,12 +616,12 @@ class Store:
         converted from it. A version without a CV table gives empty columns and ``meta["rows"] == 0``."""
         if manifest is None:
             manifest = self.get_manifest(name, version, cv_table=False)
-        body = manifest.get("model") if isinstance(manifest.get("model"), dict) else {}
+        body = manifest.get("training") if isinstance(manifest.get("training"), dict) else {}
         ref = body.get("cv_table")
         if _is_cv_reference(ref):
             columns, _ = artifact.read_arrays(self._version_dir(name, version), manifest, name=name,
                                               version=version, info=ref)
-            return columns, {"rows": int(ref["rows"]), "keys": list(ref["keys"]), "bases": list(ref["bases"])}
+            return artifact.upgrade_cv_columns(columns), {"rows": int(ref["rows"]), "keys": list(ref["keys"]), "bases": list(ref["bases"])}
         split = artifact.split_cv_table(ref)
         if split is None:
             return {"basis": np.zeros(0, dtype=np.int32)}, {"rows": 0, "keys": [], "bases": []}
@@ -908,7 +908,7 @@ class Store:
         manifest, manifest_size = artifact.read_manifest(folder, expected_sha256=sha, name=name, version=version)
         arrays, arrays_size = artifact.read_arrays(folder, manifest, name=name, version=version)
         try:
-            self._loader(manifest["model"], arrays)
+            self._loader(manifest["training"], arrays)
         except Exception as exc:
             raise IntegrityFailure(f"it passed its checksums but could not be rebuilt ({type(exc).__name__}: {exc})") from None
         try:
@@ -920,7 +920,7 @@ class Store:
             "model_name": name, "version": version, "created_at": created,
             "job_id": job_id if isinstance(job_id, str) and 0 < len(job_id) <= 64 else None,
             "manifest_sha256": sha, "arrays_sha256": manifest["arrays"]["sha256"],
-            "bytes": arrays_size + manifest_size, "summary": _summary_of(manifest.get("model")), "deleted_at": None,
+            "bytes": arrays_size + manifest_size, "summary": _summary_of(manifest.get("training")), "deleted_at": None,
         }
 
     def unlisted_versions(self) -> list[tuple[str, int]]:

@@ -55,7 +55,7 @@ def test_train_poll_metadata_predict_matches_engine(worker_service, kit):
     assert body["model"]["name"] == "pump-a" and body["model"]["version"] == 1
     assert body["model"]["basis"] == reference.chosen["basis"]
     assert body["model"]["penalty"]["strength"] == reference.chosen["penalty"]["strength"]
-    assert body["model"]["cv"] == {"metric": "rmse", "mean": reference.summary["mean"], "folds": 5}
+    assert body["model"]["cv"] == {"metric": "rmse", "mean": reference.summary["mean"], "splits": 5}
     assert body["model"]["created_at"] == meta["created_at"]
 
     # CSV in, CSV out gives the same numbers (written as shortest round-trip decimals).

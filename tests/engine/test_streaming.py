@@ -43,7 +43,7 @@ def assert_same(a, b, tol=1e-12):
     assert len(a.cv_table) == len(b.cv_table)
     for r1, r2 in zip(a.cv_table, b.cv_table):
         assert r1["basis"] == r2["basis"] and r1["strength"] == r2["strength"] and r1["l1_ratio"] == r2["l1_ratio"]
-        np.testing.assert_allclose(r2["folds"], r1["folds"], rtol=tol)
+        np.testing.assert_allclose(r2["split_values"], r1["split_values"], rtol=tol)
     assert a.chosen["basis"] == b.chosen["basis"]
     assert a.chosen["penalty"] == b.chosen["penalty"]
 

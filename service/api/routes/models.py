@@ -27,7 +27,7 @@ _SEPARATE = {"cv_table": "cv", "path": "path"}
 
 
 def _engine_body(manifest: dict[str, Any]) -> dict[str, Any]:
-    body = manifest.get("model")
+    body = manifest.get("training")
     return body if isinstance(body, dict) else manifest
 
 
