@@ -1104,7 +1104,7 @@ def store_recover(
         verb = "would register" if dry_run else "registered"
         done = ", ".join(f"{r['name']}/{r['version']}" for r in report["registered"]) or "nothing"
         _out.print(f"{verb} {len(report['registered'])} version(s): {done}")
-        for r in report["live"]:
+        for r in report["made_live"]:
             _out.print(f"{r['name']}: version {r['version']} is live")
         for r in report["refused"]:
             _err.print(f"refused {r['path']}: {r['reason']}")

@@ -104,6 +104,7 @@ def test_every_route_called_through_the_client(server, live_service, tmp_path):
         assert [m["name"] for m in tk.models()] == ["pump-c"]
         model = tk.model("pump-c")
         assert model["live_version"] == 1 and model["versions"] == [1, 2]
+        assert model["live_metadata"]["version"] == 1 and "live" not in model  # the live version's metadata; "live" is a boolean elsewhere
         assert [v["version"] for v in tk.versions("pump-c")] == [1, 2]
         meta = tk.version("pump-c", 1)
         assert meta["live"] is True and meta["spec"]["cv"]["seed"] == 3

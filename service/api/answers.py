@@ -280,7 +280,7 @@ class ModelDetail(BaseModel):
     updated_at: str | None
     monitoring_warnings: list[str] = Field(..., description="'retrain suggested' warnings of the live version over "
                                            "the last 7 days (input drift, live error); see /inputs and /outcomes.")
-    live: VersionMetadata | None = Field(None, description="The live version's metadata (absent: no live version).")
+    live_metadata: VersionMetadata | None = Field(None, description="The live version's metadata (absent: no live version).")
     links: ModelLinks
 
 

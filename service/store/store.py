@@ -841,10 +841,10 @@ class Store:
         (recorded in its history). Nothing is moved or removed.
 
         Returns ``{"registered": [{"name", "version"}], "refused": [{"path", "reason"}],
-        "live": [{"name", "version"}]}``."""
+        "made_live": [{"name", "version"}]}``."""
         if live not in ("none", "newest"):
             raise InvalidSpec(f"live must be 'none' or 'newest', received {live!r}.")
-        out: dict[str, list] = {"registered": [], "refused": [], "live": []}
+        out: dict[str, list] = {"registered": [], "refused": [], "made_live": []}
         for entry in sorted(self.root.iterdir()):
             if not entry.is_dir() or entry.is_symlink():
                 continue
@@ -896,7 +896,7 @@ class Store:
                     newest = max(r["version"] for r in out["registered"] if r["name"] == name)
                     self.set_live(name, newest, actor="tikhon store recover",
                                   reason="made live by `tikhon store recover --live newest` after the catalog was rebuilt")
-                    out["live"].append({"name": name, "version": newest})
+                    out["made_live"].append({"name": name, "version": newest})
         self.unlisted = [(n, v) for n, v in self.unlisted
                          if {"name": n, "version": v} not in out["registered"]] if not dry_run else self.unlisted
         return out

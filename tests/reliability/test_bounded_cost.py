@@ -319,7 +319,7 @@ def test_model_metadata_does_not_read_the_cv_table(big_cv):
     # the unbounded route parsed the whole manifest (the 60,000-row table) on every call
     assert grew < 20 * MiB, f"peak grew by {grew / MiB:.0f} MiB"
     assert r.status_code == 200
-    live = r.json()["live"]
+    live = r.json()["live_metadata"]
     assert live["chosen"] == result.chosen and "cv_table" not in live
     assert live["cv_summary"]["candidates"] == 60_000
 
