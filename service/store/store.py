@@ -1051,10 +1051,10 @@ def _summary_of(body: Any) -> Any:
     return None
 
 
-def _sqlite_file(engine: Any) -> Path | None:
-    if engine.dialect.name != "sqlite" or not engine.url.database:
+def _sqlite_file(sql: Any) -> Path | None:
+    if sql.dialect.name != "sqlite" or not sql.url.database:
         return None
-    return Path(engine.url.database).resolve()
+    return Path(sql.url.database).resolve()
 
 
 def _file_identity(path: Path | None) -> tuple[int, int, int] | None:
@@ -1066,12 +1066,12 @@ def _file_identity(path: Path | None) -> tuple[int, int, int] | None:
     return st.st_dev, st.st_ino, st.st_size
 
 
-def _catalog_label(engine: Any, root: Path) -> str:
+def _catalog_label(sql: Any, root: Path) -> str:
     """How messages name the catalog: a SQLite file relative to the store (no host paths in answers),
     a server URL without its password."""
-    db = _sqlite_file(engine)
+    db = _sqlite_file(sql)
     if db is None:
-        return safe_url(engine)
+        return safe_url(sql)
     inside = db.is_relative_to(root)
     return f"{db.relative_to(root).as_posix()} (SQLite, in the store folder)" if inside else f"{db.name} (SQLite)"
 

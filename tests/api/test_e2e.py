@@ -169,7 +169,7 @@ def test_cv_plus_coverage_and_warnings(worker_service, kit):
     assert kit.wait_job(base, job["id"])["state"] == "succeeded"
     fresh = kit.pump_table(2000, seed=12, noise=2.0)
     rows = kit.as_rows({k: fresh[k] for k in ("flow_lps", "head_m")})
-    r = httpx.post(f"{base}/v1/models/pump-cover/predictions", json={"rows": rows, "interval": 0.9}, timeout=60)
+    r = httpx.post(f"{base}/v1/models/pump-cover/predictions", json={"rows": rows, "interval_level": 0.9}, timeout=60)
     assert r.status_code == 200, r.text
     preds = r.json()["predictions"]
     lo = np.array([p["interval"][0] for p in preds])
@@ -184,7 +184,7 @@ def test_cv_plus_coverage_and_warnings(worker_service, kit):
     assert np.array_equal(flagged, outside)
 
     out = httpx.post(f"{base}/v1/models/pump-cover/predictions",
-                     json={"rows": [{"flow_lps": 140.0, "head_m": 30.0}], "interval": 0.9}).json()
+                     json={"rows": [{"flow_lps": 140.0, "head_m": 30.0}], "interval_level": 0.9}).json()
     warnings = out["predictions"][0]["warnings"]
     hi_flow = float(train["flow_lps"].max())
     assert any(w.startswith("flow_lps=140 is above the training range") and f"{hi_flow:.6g}" in w for w in warnings)

@@ -64,8 +64,8 @@ def test_in_memory_parquet_batches_and_dask_agree(tmp_path):
     assert_same(mem, ooc)
     q = {k: d[k][:20] for k in ["x0", "x2", "x3", "x4", "sex"]}
     np.testing.assert_allclose(ooc.model.predict(q), mem.model.predict(q), rtol=1e-12)
-    a = mem.model.predict_detail(q, interval=0.9)
-    b = ooc.model.predict_detail(q, interval=0.9)
+    a = mem.model.predict_detail(q, interval_level=0.9)
+    b = ooc.model.predict_detail(q, interval_level=0.9)
     np.testing.assert_allclose(b["lower"], a["lower"], rtol=1e-12)
     np.testing.assert_allclose(b["upper"], a["upper"], rtol=1e-12)
     assert ooc.model.max_leverage == pytest.approx(mem.model.max_leverage, rel=1e-10)

@@ -166,7 +166,7 @@ def test_parts_round_trip_and_prediction_detail():
     np.testing.assert_array_equal(model.predict(d), res.model.predict(d))
     q = {k: v[:3].copy() for k, v in d.items() if k != "y"}
     q["x0"][2] = 10.0  # far outside the training range
-    det = model.predict_detail(q, interval=0.9)
+    det = model.predict_detail(q, interval_level=0.9)
     assert det["warnings"][0] == [] and any("above the training range" in w for w in det["warnings"][2])
     assert all(det["lower"] < det["value"]) and all(det["value"] < det["upper"])
 
@@ -178,7 +178,7 @@ def test_cv_plus_interval_follows_its_definition():
     m = res.model
     feats = m.features
     q = {f: d[f][:4] for f in feats}
-    det = m.predict_detail(q, interval=0.8)
+    det = m.predict_detail(q, interval_level=0.8)
     Phi = np.column_stack([(d[f][:4] - mu) / s for f, mu, s in zip(feats, m.scaler.mean, m.scaler.scale)])
     n = d["y"].size
     R = np.abs(res.oof_residuals)

@@ -122,7 +122,7 @@ async def post_outcomes(request: Request, name: ModelName) -> Response:
     observed = numeric_column(cols, target, "target")
 
     def score() -> dict[str, Any]:
-        detail = served.model.predict_detail(cols, interval=0.9, memory_bytes=settings.predict_memory_bytes)
+        detail = served.model.predict_detail(cols, interval_level=0.9, memory_bytes=settings.predict_memory_bytes)
         return request.app.state.monitor.outcome(served, observed, detail)
 
     counts = await to_thread.run_sync(score)

@@ -41,7 +41,7 @@ _DOC = {
         "content": {
             "application/json": {"schema": schema_ref(PredictRequest)},
             "text/csv": {"schema": {"type": "string", "format": "binary", "description": "CSV with a header of the "
-                                    "model's input columns; the interval level goes in the 'interval' query parameter."}},
+                                    "model's input columns; the interval level goes in the 'interval_level' query parameter."}},
         },
     },
     "responses": {
@@ -62,31 +62,34 @@ _PARAMS = {
     "name": {"name": "name", "in": "path", "required": True, "schema": {"type": "string"}, "description": "Model name."},
     "version": {"name": "version", "in": "path", "required": True, "schema": {"type": "integer", "minimum": 1, "maximum": VERSION_MAX},
                 "description": "Version number."},
-    "interval": {"name": "interval", "in": "query", "required": False,
+    "interval_level": {"name": "interval_level", "in": "query", "required": False,
                  "schema": {"type": "number", "exclusiveMinimum": 0, "exclusiveMaximum": 1},
                  "description": "CSV form only: the interval level for a CSV body. A JSON body carries its level in "
-                 "its own 'interval' member (this parameter is read for a JSON body only when that member is absent)."},
+                 "its own 'interval_level' member (this parameter is read for a JSON body only when that member is absent)."},
     "unseen_levels": {"name": "unseen_levels", "in": "query", "required": False,
                       "schema": {"$ref": "#/components/schemas/UnseenLevels"},
                       "description": "CSV form only: 'warn' answers a category level not seen in training with a "
                       "warning, 'refuse' answers 422 (JSON bodies use the 'unseen_levels' field)."},
 }
-_LIVE_DOC = {**_DOC, "parameters": [_PARAMS["name"], _PARAMS["interval"], _PARAMS["unseen_levels"]]}
-_PINNED_DOC = {**_DOC, "parameters": [_PARAMS["name"], _PARAMS["version"], _PARAMS["interval"],
+_LIVE_DOC = {**_DOC, "parameters": [_PARAMS["name"], _PARAMS["interval_level"], _PARAMS["unseen_levels"]]}
+_PINNED_DOC = {**_DOC, "parameters": [_PARAMS["name"], _PARAMS["version"], _PARAMS["interval_level"],
                                      _PARAMS["unseen_levels"]]}
 
 
-def _query_interval(request: Request) -> float | None:
+def _query_interval_level(request: Request) -> float | None:
     if not request.scope.get("query_string"):  # the usual case: no query string to parse
         return None
-    raw = request.query_params.get("interval")
+    raw = request.query_params.get("interval_level")
     if raw is None:
+        if "interval" in request.query_params:  # the name before this release: refused, never ignored
+            raise InvalidData("query parameter 'interval' is now called 'interval_level'; send ?interval_level=0.9.",
+                              errors=[{"field": "query.interval", "message": "renamed to interval_level"}])
         return None
     try:
         value = float(raw)
     except ValueError:
         value = raw
-    return _check_interval(value, "query.interval")
+    return _check_interval_level(value, "query.interval_level")
 
 
 def _version(raw: str) -> int:
@@ -105,7 +108,7 @@ def _version(raw: str) -> int:
 async def predict_live(request: Request) -> Response:
     await auth.authorize(request)  # the key check every /v1 route has (see app.create_app)
     name = validate_name(request.path_params["name"])
-    interval = _query_interval(request)
+    interval_level = _query_interval_level(request)
     cache = request.app.state.models
     version = cache.cached_live(name)
     if version is None:
@@ -113,7 +116,7 @@ async def predict_live(request: Request) -> Response:
         if age is not None:
             note_stale(request, age)
     served = cache.cached(name, version) or await cache.lookups.run(("load", name, version), cache.load, name, version)
-    return await _predict(request, served, interval)
+    return await _predict(request, served, interval_level)
 
 
 @router.post("/models/{name}/versions/{version}/predictions", summary="Predict with a pinned version", openapi_extra=_PINNED_DOC,
@@ -122,52 +125,54 @@ async def predict_version(request: Request) -> Response:
     await auth.authorize(request)  # the key check every /v1 route has (see app.create_app)
     name = validate_name(request.path_params["name"])
     version = _version(request.path_params["version"])
-    interval = _query_interval(request)
+    interval_level = _query_interval_level(request)
     cache = request.app.state.models
     served = cache.cached(name, version) or await cache.lookups.run(("load", name, version), cache.load, name, version)
-    return await _predict(request, served, interval)
+    return await _predict(request, served, interval_level)
 
 
-def _check_interval(value: Any, field: str) -> float | None:
+def _check_interval_level(value: Any, field: str) -> float | None:
     if value is None:
         return None
     if type(value) not in (int, float) or not math.isfinite(value) or not 0 < value < 1:
         raise InvalidData(
             f"{field} must be a number strictly between 0 and 1 (the interval level, e.g. 0.9), got {value!r}.",
-            errors=[{"field": field, "value": value, "message": "expected 0 < interval < 1"}],
+            errors=[{"field": field, "value": value, "message": "expected 0 < interval_level < 1"}],
         )
     return float(value)
 
 
-def _parse_json_body(raw: bytes, limit: int, interval_q: float | None, max_label: int | None = tables.MAX_LABEL_CHARS
+def _parse_json_body(raw: bytes, limit: int, interval_level_q: float | None, max_label: int | None = tables.MAX_LABEL_CHARS
                      ) -> tuple[dict, float | None, int, str]:
     body = parse_json(raw)
     if not isinstance(body, dict):
         raise InvalidData(
-            f"the body must be a JSON object {{\"rows\": [...], \"interval\": 0.9}}, got a {type(body).__name__}.",
+            f"the body must be a JSON object {{\"rows\": [...], \"interval_level\": 0.9}}, got a {type(body).__name__}.",
             errors=[{"field": "body", "message": "expected an object"}],
         )
-    extra = sorted(set(body) - {"rows", "interval", "unseen_levels"})
+    extra = sorted(set(body) - {"rows", "interval_level", "unseen_levels"})
     if extra:
         raise InvalidData(
-            f"unknown field(s) {extra} in the body; only 'rows', 'interval' and 'unseen_levels' are read.",
+            f"unknown field(s) {extra} in the body; only 'rows', 'interval_level' and 'unseen_levels' are read"
+            + (" ('interval' is now called 'interval_level')." if "interval" in extra else "."),
             errors=[{"field": k, "message": "unknown field"} for k in extra],
         )
     if "rows" not in body:
         raise InvalidData("the body lacks 'rows', the list of input rows.", errors=[{"field": "rows", "message": "missing"}])
-    interval = _check_interval(body.get("interval"), "interval") if "interval" in body else interval_q
+    interval_level = (_check_interval_level(body.get("interval_level"), "interval_level") if "interval_level" in body
+                      else interval_level_q)
     rows = body["rows"]
     if isinstance(rows, list):
         tables.check_row_limit(len(rows), limit, "max_rows_per_request", "rows")
     cols = tables.from_rows(rows, where="rows", max_label=max_label)
-    return cols, interval, len(rows), levels.mode(body.get("unseen_levels"), "unseen_levels")
+    return cols, interval_level, len(rows), levels.mode(body.get("unseen_levels"), "unseen_levels")
 
 
-def _compute(served: Served, cols: dict, interval: float | None, memory_bytes: int) -> dict[str, Any]:
-    return served.model.predict_detail(cols, interval=interval, memory_bytes=memory_bytes)
+def _compute(served: Served, cols: dict, interval_level: float | None, memory_bytes: int) -> dict[str, Any]:
+    return served.model.predict_detail(cols, interval_level=interval_level, memory_bytes=memory_bytes)
 
 
-async def _predict(request: Request, served: Served, interval_q: float | None) -> Response:
+async def _predict(request: Request, served: Served, interval_level_q: float | None) -> Response:
     settings = request.app.state.settings
     limit = settings.max_rows_per_request
     max_label = settings.max_label_chars
@@ -183,13 +188,13 @@ async def _predict(request: Request, served: Served, interval_q: float | None) -
             cols = tables.from_csv(raw, where="body", max_label=max_label, spec=labels)
         n = len(next(iter(cols.values())))
         tables.check_row_limit(n, limit, "max_rows_per_request", "the CSV body")
-        interval = interval_q
+        interval_level = interval_level_q
         unseen = levels.mode(request.query_params.get("unseen_levels"), "query.unseen_levels")
     elif mt in ("", "application/json") or mt.endswith("+json"):
         if len(raw) > 65536:
-            cols, interval, n, unseen = await to_thread.run_sync(_parse_json_body, raw, limit, interval_q, max_label)
+            cols, interval_level, n, unseen = await to_thread.run_sync(_parse_json_body, raw, limit, interval_level_q, max_label)
         else:
-            cols, interval, n, unseen = _parse_json_body(raw, limit, interval_q, max_label)
+            cols, interval_level, n, unseen = _parse_json_body(raw, limit, interval_level_q, max_label)
     else:
         raise UnsupportedMediaType(
             f"Content-Type {mt!r} is not read here; send application/json ({{\"rows\": [...]}}) or text/csv."
@@ -197,18 +202,18 @@ async def _predict(request: Request, served: Served, interval_q: float | None) -
     if unseen == "refuse" and served.model.categories.names:
         levels.refuse_unseen(served.model, cols)
     if n <= INLINE_ROWS:
-        detail = _compute(served, cols, interval, settings.predict_memory_bytes)
+        detail = _compute(served, cols, interval_level, settings.predict_memory_bytes)
     else:
-        detail = await to_thread.run_sync(_compute, served, cols, interval, settings.predict_memory_bytes)
+        detail = await to_thread.run_sync(_compute, served, cols, interval_level, settings.predict_memory_bytes)
     request.app.state.metrics.count_predictions(served.name, served.version, n)
     request.app.state.monitor.observe(served, cols, detail)  # an append; counted off the request path
     accept = auth.raw_header(request.scope, b"accept") or ""
     if "text/csv" in accept or (mt == "text/csv" and "application/json" not in accept):
-        text = _csv(detail, interval is not None) if n <= INLINE_ROWS else await to_thread.run_sync(_csv, detail, interval is not None)
+        text = _csv(detail, interval_level is not None) if n <= INLINE_ROWS else await to_thread.run_sync(_csv, detail, interval_level is not None)
         return Response(text, media_type="text/csv", headers={
             "Tikhon-Model": served.name, "Tikhon-Model-Version": str(served.version)})
-    payload = _json(served, detail, interval is not None) if n <= INLINE_ROWS else await to_thread.run_sync(
-        _json, served, detail, interval is not None)
+    payload = _json(served, detail, interval_level is not None) if n <= INLINE_ROWS else await to_thread.run_sync(
+        _json, served, detail, interval_level is not None)
     return Response(payload, media_type="application/json")
 
 
