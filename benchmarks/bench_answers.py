@@ -18,7 +18,7 @@ from service.api.render import dumps
 def cv_page(rows: int) -> dict:
     table = [{"basis": {"kind": "polynomial", "degree": 1 + i % 6}, "strength": 1e-4 * 1.3 ** (i % 50),
               "l1_ratio": None, "mean": 1.0 + i * 1e-3, "std": 0.1, "se": 0.05, "df": 3.2,
-              "folds": [1.0, 2.0, 3.0, 4.0, 5.0]} for i in range(rows)]
+              "split_values": [1.0, 2.0, 3.0, 4.0, 5.0]} for i in range(rows)]
     return {"name": "pump-energy", "version": 1, "selection": {"metric": "rmse", "rule": "best"}, "chosen": None,
             "summary": None, "view": "all", "total": rows, "offset": 0, "limit": rows, "table": table,
             "links": {"next": None}}

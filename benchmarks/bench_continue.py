@@ -69,7 +69,7 @@ def main() -> None:
         cv_diff = float(np.max(np.abs(mc - mf) / np.abs(mf)))
         beta_diff = float(np.max(np.abs(cont_result.model.beta - ref.model.beta)) / max(1.0, np.abs(ref.model.beta).max()))
         b0_diff = abs(cont_result.model.intercept - ref.model.intercept) / max(1.0, abs(ref.model.intercept))
-        same = cont_result.best["index"] == ref.best["index"]
+        same = cont_result.chosen["index"] == ref.chosen["index"]
         print(f"exactness vs from scratch with the fixed basis: cv_mean_max_rel_diff={cv_diff:.2e} "
               f"coef_max_rel_diff={beta_diff:.2e} intercept_rel_diff={b0_diff:.2e} same_choice={same}")
     print(f"load average at end: {' '.join(f'{x:.2f}' for x in os.getloadavg())}")

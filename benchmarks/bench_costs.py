@@ -48,7 +48,7 @@ def main() -> None:
 
     model = tune(train, spec).model
     plain = _median_time(lambda: model.predict_detail(batch), args.repeat)
-    with_interval = _median_time(lambda: model.predict_detail(batch, interval=0.9), args.repeat)
+    with_interval = _median_time(lambda: model.predict_detail(batch, interval_level=0.9), args.repeat)
     print(f"predict_detail, {args.batch} rows: without interval {plain * 1000:.1f} ms, "
           f"with a 0.9 interval {with_interval * 1000:.1f} ms")
 

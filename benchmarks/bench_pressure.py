@@ -120,7 +120,7 @@ def hostile_requests() -> list[tuple[str, str, dict]]:
         ("long_label", "/v1/models/stations/predictions", {"content": long_label, "headers": csv_h}),
         ("new_level_every_row", "/v1/models/stations/trainings", {"json": {"data": {"csv": levels}, "spec": level_spec}}),
         ("big_json_body", "/v1/models/pumps/trainings", {"content": big_json, "headers": json_h}),
-        ("wide_batch", "/v1/models/wide/predictions?interval=0.9", {"content": wide_csv, "headers": csv_h}),
+        ("wide_batch", "/v1/models/wide/predictions?interval_level=0.9", {"content": wide_csv, "headers": csv_h}),
     ]
 
 

@@ -64,8 +64,8 @@ def child_train(path: str, batch_rows: int, dask: str | None) -> dict:
     res = tune_partitions(parts, schema, spec, executor=ex)
     wall = time.perf_counter() - t0
     ex.close()
-    return {"wall_s": wall, "passes": {k: round(v, 2) for k, v in split.items()}, "best": res.best["basis"], "strength": res.best["penalty"]["strength"],
-            "cv_rmse": res.best["mean"], "peak_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}
+    return {"wall_s": wall, "passes": {k: round(v, 2) for k, v in split.items()}, "chosen": res.chosen["basis"], "strength": res.chosen["penalty"]["strength"],
+            "cv_rmse": res.chosen["mean"], "peak_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}
 
 
 def _time_passes() -> dict[str, float]:
@@ -175,7 +175,7 @@ def main() -> None:
           f"{floor['gram_flops']:.3g} flops = {gram_s:.2f}s at that rate")
     print(f"floor: one streamed read, degree {max(DEGREES)} expanded once, one Gram: {floor['wall_s']:.1f}s, "
           f"peak RSS {floor['peak_rss_mb']:.0f} MB")
-    print(f"train: {train['wall_s']:.1f}s, best {train['best']} strength {train['strength']:.4g} "
+    print(f"train: {train['wall_s']:.1f}s, chosen {train['chosen']} strength {train['strength']:.4g} "
           f"CV RMSE {train['cv_rmse']:.4f}, executor {'dask ' + args.dask if args.dask else 'in-process'}")
     if train["passes"]:
         print("train passes (s): " + " ".join(f"{k}={v}" for k, v in train["passes"].items()))

@@ -18,7 +18,7 @@ On a shared machine the servers get only part of a core each; every run also pri
 second of server CPU time, which such contention disturbs much less than requests per second.
 
 Batches: ``wrk -t1 -c1`` posts a 10,000-row CSV body (``Accept: application/json``), without and with
-``?interval=0.9``; rows per second = requests per second × rows.
+``?interval_level=0.9``; rows per second = requests per second × rows.
 
 ``wrk`` is the Debian package ``wrk``; without it the script says how to install it and exits 2.
 ``--stack h11`` runs both servers on uvicorn's pure-Python stack (h11 parser, asyncio loop) instead of
@@ -272,7 +272,7 @@ def main() -> None:
             bare_url = f"http://127.0.0.1:{bare_port}/bare"
             check = httpx.post(our_url, content=one.read_bytes(), headers={"content-type": "application/json"}).json()
             assert check["model"]["version"] == 1 and len(check["predictions"]) == 1, check
-            check = httpx.post(our_url + "?interval=0.9", content=csv_body.read_bytes(), timeout=120,
+            check = httpx.post(our_url + "?interval_level=0.9", content=csv_body.read_bytes(), timeout=120,
                                headers={"content-type": "text/csv", "accept": "application/json"}).json()
             assert len(check["predictions"]) == a.batch_rows and check["predictions"][0]["interval"][0] is not None
             print(f"wrk -t{a.threads} -c{a.connections} -d{a.duration:g}s, one-row JSON body, {os.cpu_count()} cores, "
@@ -294,7 +294,7 @@ def main() -> None:
                 print("warning: wrk used nearly all of its threads' CPU; it may limit the figures (try --threads 2)")
 
             batch_rps = {}
-            for label, query in (("plain", ""), ("interval 0.9", "?interval=0.9")):
+            for label, query in (("plain", ""), ("interval 0.9", "?interval_level=0.9")):
                 r = run_wrk(our_url + query, csv_body, "text/csv", threads=1, connections=1, duration=a.batch_duration,
                             server_pid=procs[1].pid, script=script)
                 batch_rps[label] = r.rps * a.batch_rows

@@ -668,15 +668,15 @@ def predict(
     ctx: typer.Context,
     ref: Annotated[str, typer.Argument(metavar="NAME[@VERSION]", help="Model, optionally pinned to a version.")],
     data: Annotated[Path, typer.Option("--data", help="Input rows: a CSV file, or JSON (a list of rows or {\"rows\": [...]}).")],
-    interval: Annotated[Optional[float], typer.Option(help="Prediction interval level, e.g. 0.9.")] = None,
+    interval_level: Annotated[Optional[float], typer.Option(help="Prediction interval level, e.g. 0.9.")] = None,
     out: Annotated[Optional[Path], typer.Option(help="Write the predictions to this file (.csv or .json).")] = None,
     only_inputs: Annotated[bool, typer.Option("--only-inputs", help="Send only the model's input columns (drop the "
                                               "target and any other column of the file).")] = False,
 ) -> None:
     """Predict with the live version (or a pinned one): values, intervals, extrapolation warnings."""
     name, version = parse_ref(ref)
-    if interval is not None and not (0 < interval < 1):
-        raise UsageProblem(f"--interval {interval:g} is outside (0, 1); give a level such as 0.9.")
+    if interval_level is not None and not (0 < interval_level < 1):
+        raise UsageProblem(f"--interval-level {interval_level:g} is outside (0, 1); give a level such as 0.9.")
     if not data.is_file():
         raise UsageProblem(f"--data {str(data)!r} is not a file; give a CSV or JSON file of input rows.")
     if out is not None and out.suffix.lower() not in (".csv", ".json"):
@@ -688,13 +688,13 @@ def predict(
                 raise UsageProblem(f"model {name!r} has no live version; name one: {name}@VERSION.")
             inputs = [f["name"] for f in tk.version(name, pinned).get("feature_schema") or []]
             kind, payload = _only_columns(data, inputs)
-            answer = tk.predict(name, version=pinned, interval=interval, **{kind: payload})
+            answer = tk.predict(name, version=pinned, interval_level=interval_level, **{kind: payload})
         else:
-            answer = tk.predict(name, version=version, file=data, interval=interval)
+            answer = tk.predict(name, version=version, file=data, interval_level=interval_level)
     model = answer["model"]
     preds = answer["predictions"]
     if out is not None:
-        _write_predictions(out, answer, interval is not None)
+        _write_predictions(out, answer, interval_level is not None)
         _err.print(f"tikhon: wrote {len(preds)} predictions of {model['name']} version {model['version']} to {out}")
         return
     if _opts(ctx).json:
@@ -704,12 +704,12 @@ def predict(
               f"{_penalty_text(model.get('penalty'))}")
     t.add_column("row", justify="right")
     t.add_column("value", justify="right")
-    if interval is not None:
-        t.add_column(f"{interval:g} interval", justify="right")
+    if interval_level is not None:
+        t.add_column(f"{interval_level:g} interval", justify="right")
     t.add_column("warnings")
     for i, p in enumerate(preds):
         cells = [str(i), f"{p['value']:.6g}"]
-        if interval is not None:
+        if interval_level is not None:
             lo, hi = p.get("interval") or (None, None)
             cells.append(f"[{_num(lo)}, {_num(hi)}]")
         cells.append("; ".join(p.get("warnings") or []))
@@ -1127,7 +1127,7 @@ def store_recover(
         verb = "would register" if dry_run else "registered"
         done = ", ".join(f"{r['name']}/{r['version']}" for r in report["registered"]) or "nothing"
         _out.print(f"{verb} {len(report['registered'])} version(s): {done}")
-        for r in report["live"]:
+        for r in report["made_live"]:
             _out.print(f"{r['name']}: version {r['version']} is live")
         for r in report["refused"]:
             _err.print(f"refused {r['path']}: {r['reason']}")
@@ -1195,7 +1195,7 @@ def _globals_first(args: list[str]) -> list[str]:
 _METAVARS = {
     "data": "FILE", "source": "PATH", "target": "COLUMN", "spec": "FILE", "basis": "BASIS", "feature": "COLUMN",
     "categorical": "COLUMN", "promote": "always|if_better|never", "min_improvement": "NUMBER", "idempotency_key": "TEXT",
-    "interval": "LEVEL", "out": "FILE", "kind": "KIND", "keep": "COUNT", "scope": "predict|train|admin",
+    "interval_level": "LEVEL", "out": "FILE", "kind": "KIND", "keep": "COUNT", "scope": "predict|train|admin",
     "label": "TEXT", "reason": "TEXT", "url": "URL", "key": "KEY", "timeout": "SECONDS", "live": "newest|none",
     "host": "ADDRESS", "port": "PORT", "version": "VERSION", "name": "NAME", "names": "NAME", "job_id": "JOB",
     "key_id": "KEY_ID", "ref": "NAME[@VERSION]", "workers": "COUNT", "continue_from": "VERSION",

@@ -6,7 +6,7 @@
         job = tk.train("pump-energy", file="pumps.csv", spec={"target": "energy_kwh"})
         job = tk.wait(job, on_progress=lambda job: print(job["progress"]))
         answer = tk.predict("pump-energy", rows=[{"station": "mill-lane", "flow_lps": 70, "head_m": 35}],
-                            interval=0.9)
+                            interval_level=0.9)
 
 Every method maps to one route of the OpenAPI document (``Client.routes()`` lists the mapping; a test
 checks it against a live server's ``/openapi.json``). Answers are the decoded JSON bodies (plain dicts
@@ -596,43 +596,43 @@ class Client:
     def predict(
         self, name: str, *, rows: Sequence[Mapping[str, Any]] | None = None,
         columns: Mapping[str, Sequence[Any]] | None = None, csv: str | None = None,
-        file: str | os.PathLike | None = None, interval: float | None = None, version: int | None = None,
+        file: str | os.PathLike | None = None, interval_level: float | None = None, version: int | None = None,
         as_csv: bool = False,
     ) -> PredictAnswer | str:
         """Predict with the live version (or with ``version`` pinned). Inputs: exactly one of ``rows``,
-        ``columns``, ``csv`` text or a CSV/JSON ``file``. ``interval`` (e.g. 0.9) adds CV+ intervals.
+        ``columns``, ``csv`` text or a CSV/JSON ``file``. ``interval_level`` (e.g. 0.9) adds CV+ intervals.
 
         Returns the JSON answer ``{"model": {name, version, ...}, "predictions": [{value, interval,
         warnings}, ...]}``, or, with ``as_csv=True``, the CSV text ``value[,lower,upper],warnings``."""
         if version is not None:
             return self.predict_version(name, version, rows=rows, columns=columns, csv=csv, file=file,
-                                        interval=interval, as_csv=as_csv)
-        return self._predict(f"/v1/models/{_seg(name)}/predictions", rows, columns, csv, file, interval, as_csv)
+                                        interval_level=interval_level, as_csv=as_csv)
+        return self._predict(f"/v1/models/{_seg(name)}/predictions", rows, columns, csv, file, interval_level, as_csv)
 
     @_route("POST", "/v1/models/{name}/versions/{version}/predictions")
     def predict_version(
         self, name: str, version: int, *, rows: Sequence[Mapping[str, Any]] | None = None,
         columns: Mapping[str, Sequence[Any]] | None = None, csv: str | None = None,
-        file: str | os.PathLike | None = None, interval: float | None = None, as_csv: bool = False,
+        file: str | os.PathLike | None = None, interval_level: float | None = None, as_csv: bool = False,
     ) -> PredictAnswer | str:
         """Predict with one pinned version (see ``predict``)."""
         return self._predict(f"/v1/models/{_seg(name)}/versions/{_num(version)}/predictions",
-                             rows, columns, csv, file, interval, as_csv)
+                             rows, columns, csv, file, interval_level, as_csv)
 
-    def _predict(self, url: str, rows, columns, csv, file, interval, as_csv) -> PredictAnswer | str:
+    def _predict(self, url: str, rows, columns, csv, file, interval_level, as_csv) -> PredictAnswer | str:
         kind, value = _one_of("predict()", rows=rows, columns=columns, csv=csv, file=file)
         if kind == "file":
             kind, value = _read_input_file(Path(value))
         accept = "text/csv" if as_csv else "application/json"
         if kind == "csv":
-            params = {"interval": interval} if interval is not None else None
+            params = {"interval_level": interval_level} if interval_level is not None else None
             response = self._send("POST", url, content=value.encode("utf-8"), params=params, expect="response",
                                   headers={"Content-Type": "text/csv", "Accept": accept})
         else:
             data = [dict(r) for r in value] if kind == "rows" else _rows_from_columns(value)
             body: dict[str, Any] = {"rows": data}
-            if interval is not None:
-                body["interval"] = interval
+            if interval_level is not None:
+                body["interval_level"] = interval_level
             response = self._send("POST", url, json=body, expect="response", headers={"Accept": accept})
         return response.text if as_csv else response.json()
 

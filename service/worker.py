@@ -182,10 +182,10 @@ def _train(data_path: str | None, spec: dict, conn, progress, cancel, deadline: 
             result = tune(cols, spec, progress=on_progress, should_stop=should_stop, budget=Budget(**(limits or {})),
                           progress_span=on_span)
         body, arrays = result.to_artifact()
-        folds = np.asarray(result.folds)
+        fold_of_row = np.asarray(result.fold_of_row)
         conn.send(("ok", body, arrays, {
             "metric": result.summary.get("metric"), "cv_mean": float(result.summary.get("mean")),
-            "folds": folds if folds.ndim == 1 and folds.dtype.kind in "iu" else None,
+            "fold_of_row": fold_of_row if fold_of_row.ndim == 1 and fold_of_row.dtype.kind in "iu" else None,
             "target": result.spec.target,
         }))
     except Cancelled as err:
@@ -202,18 +202,18 @@ def _train(data_path: str | None, spec: dict, conn, progress, cancel, deadline: 
 # scoring the live version on the new data (if_better)
 
 
-def score_on(model: Any, cols: dict[str, np.ndarray], target: str, metric: str, folds: np.ndarray | None) -> float:
-    """``model``'s error on the rows of ``cols``: the metric per fold of ``folds``, averaged over folds
+def score_on(model: Any, cols: dict[str, np.ndarray], target: str, metric: str, fold_of_row: np.ndarray | None) -> float:
+    """``model``'s error on the rows of ``cols``: the metric per fold of ``fold_of_row``, averaged over folds
     (the aggregation of a CV mean); over all rows at once when no usable fold assignment is given."""
     from service.engine.result import metric_of_rows  # the engine's one metric function (no fallback)
 
     y = np.asarray(cols[target], dtype=np.float64)
     inputs = {k: v for k, v in cols.items() if k != target}
     pred = np.asarray(model.predict(inputs), dtype=np.float64)
-    if folds is not None and folds.shape == y.shape:
-        ids = np.unique(folds)
-        if 2 <= ids.size <= 100 and all((folds == k).sum() >= 2 for k in ids):
-            return float(np.mean([metric_of_rows(metric, y[folds == k], pred[folds == k]) for k in ids]))
+    if fold_of_row is not None and fold_of_row.shape == y.shape:
+        ids = np.unique(fold_of_row)
+        if 2 <= ids.size <= 100 and all((fold_of_row == k).sum() >= 2 for k in ids):
+            return float(np.mean([metric_of_rows(metric, y[fold_of_row == k], pred[fold_of_row == k]) for k in ids]))
     return metric_of_rows(metric, y, pred)
 
 
@@ -249,7 +249,7 @@ def decide(store, name: str, request: dict, outcome: dict, data_path: str | None
             from service.tables import read_staged
 
             cols = read_staged(data_path)
-            live_score = score_on(live_model, cols, outcome["target"], metric, outcome.get("folds"))
+            live_score = score_on(live_model, cols, outcome["target"], metric, outcome.get("fold_of_row"))
     except TikhonError as err:
         return False, {**decision, "went_live": False, "live_on_new_data": None,
                        "reason": f"the live version {live} cannot score the new data ({err}); the new version was "
@@ -644,9 +644,9 @@ class Worker:
                             "reason": f"{note}; " + ("it had already gone live" if went else
                                                      f"the newer version {live} is live and stays live")}
             else:
-                body = self.store.get_manifest(name, version, cv_table=False).get("model") or {}
+                body = self.store.get_manifest(name, version, cv_table=False).get("training") or {}
                 summary = body.get("cv_summary") or {}
-                outcome = {"metric": summary.get("metric"), "cv_mean": float(summary.get("mean")), "folds": None,
+                outcome = {"metric": summary.get("metric"), "cv_mean": float(summary.get("mean")), "fold_of_row": None,
                            "target": (body.get("spec") or {}).get("target")}
                 go_live, decision = decide(self.store, name, request, outcome, job.get("data_path"),
                                            self.settings.data_dir)

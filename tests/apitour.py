@@ -117,10 +117,10 @@ class Tour:
         c("GET", "/v1/models/{name}/plots/history", expect=200, path={"name": name},
           headers={"Accept": "application/json"})
         row = {"station": "mill-lane", "flow_lps": 70.0, "head_m": 35.0}
-        c("POST", PREDICT_LIVE, expect=200, path={"name": name}, json={"rows": [row], "interval": 0.9})
+        c("POST", PREDICT_LIVE, expect=200, path={"name": name}, json={"rows": [row], "interval_level": 0.9})
         c("POST", PREDICT_VERSION, expect=200, path={"name": name, "version": 2},
           json={"rows": [row, {**row, "flow_lps": 900.0, "station": "new-site"}]})
-        c("POST", PREDICT_LIVE, expect=200, path={"name": name}, params={"interval": 0.8},
+        c("POST", PREDICT_LIVE, expect=200, path={"name": name}, params={"interval_level": 0.8},
           content=table_csv({k: [v] for k, v in row.items()}), headers={"Content-Type": "text/csv"})
         c("POST", PREDICT_LIVE, expect=422, path={"name": name}, json={"rows": [{"flow_lps": 1.0}]})
         # after training: input drift of what was served, scored outcomes, their figures, and the export

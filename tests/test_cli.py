@@ -160,7 +160,7 @@ def test_train_wait_shows_progress_then_the_chosen_point(server, tmp_path):
     # sqrt(splits) (Hastie, Tibshirani & Friedman, The Elements of Statistical Learning, 2nd ed., 7.10)
     with Client(url) as tk:
         table = tk.cv("pump-cli", 1)["table"]
-    folds = next(r["folds"] for r in table if r["basis"] == chosen["basis"]
+    folds = next(r["split_values"] for r in table if r["basis"] == chosen["basis"]
                  and r["strength"] == chosen["penalty"]["strength"])
     se = statistics.stdev(folds) / meta["cv_summary"]["splits"] ** 0.5
     assert f"{chosen['mean']:.6g} ± {se:.3g} (1 SE over {meta['cv_summary']['splits']} folds)" in summary
@@ -236,10 +236,10 @@ def test_predict_show_promote_history_prune_and_keys(server, tmp_path):
     queries = tmp_path / "q.json"
     queries.write_text(json.dumps([{"flow_lps": 40.0, "head_m": 22.0}, {"flow_lps": 200.0, "head_m": 22.0}]))
     out_csv = tmp_path / "p.csv"
-    r = cli(url, "predict", "pump-ops@2", "--data", str(queries), "--interval", "0.9", "--out", str(out_csv))
+    r = cli(url, "predict", "pump-ops@2", "--data", str(queries), "--interval-level", "0.9", "--out", str(out_csv))
     assert r.returncode == 0, r.stderr
     with Client(url) as tk:
-        ref = tk.predict("pump-ops", version=2, file=queries, interval=0.9)
+        ref = tk.predict("pump-ops", version=2, file=queries, interval_level=0.9)
     lines = out_csv.read_text().splitlines()
     assert lines[0] == "model,version,value,lower,upper,warnings"
     for line, p in zip(lines[1:], ref["predictions"]):
@@ -256,7 +256,7 @@ def test_predict_show_promote_history_prune_and_keys(server, tmp_path):
     extra.write_text("site,flow_lps,head_m\nA7,40.0,22.0\nB2,200.0,22.0\n")
     r = cli(url, "predict", "pump-ops@2", "--data", str(extra))
     assert r.returncode == 2 and "site" in r.stderr and len(r.stderr.strip().splitlines()) == 1
-    r = cli(url, "--json", "predict", "pump-ops@2", "--data", str(extra), "--only-inputs", "--interval", "0.9")
+    r = cli(url, "--json", "predict", "pump-ops@2", "--data", str(extra), "--only-inputs", "--interval-level", "0.9")
     assert r.returncode == 0, r.stderr
     assert json.loads(r.stdout)["predictions"] == ref["predictions"]
 

@@ -95,7 +95,7 @@ def test_version_warnings_in_train_wait_and_show(server, tmp_path):
         meta = tk.version("pump-w", 1)
     # the one-standard-error rule's standard error (sample standard deviation of the split errors over
     # sqrt(5); Hastie, Tibshirani & Friedman, The Elements of Statistical Learning, 2nd ed., section 7.10)
-    folds = next(r["folds"] for r in tk_cv(url, "pump-w", 1) if r["basis"] == meta["chosen"]["basis"]
+    folds = next(r["split_values"] for r in tk_cv(url, "pump-w", 1) if r["basis"] == meta["chosen"]["basis"]
                  and r["strength"] == meta["chosen"]["penalty"]["strength"])
     se = statistics.stdev(folds) / 5 ** 0.5
     assert f"{meta['chosen']['mean']:.6g} ± {se:.3g} (1 SE over 5 folds)" in r.stdout

@@ -104,6 +104,7 @@ def test_every_route_called_through_the_client(server, live_service, tmp_path):
         assert [m["name"] for m in tk.models()] == ["pump-c"]
         model = tk.model("pump-c")
         assert model["live_version"] == 1 and model["versions"] == [1, 2]
+        assert model["live_metadata"]["version"] == 1 and "live" not in model  # the live version's metadata; "live" is a boolean elsewhere
         assert [v["version"] for v in tk.versions("pump-c")] == [1, 2]
         meta = tk.version("pump-c", 1)
         assert meta["live"] is True and meta["spec"]["cv"]["seed"] == 3
@@ -124,8 +125,8 @@ def test_every_route_called_through_the_client(server, live_service, tmp_path):
 
         # Live predictions with intervals: the client's answer is the server's answer, unchanged.
         query = [{"flow_lps": 50.0, "head_m": 30.0}, {"flow_lps": 90.5, "head_m": 12.25}]
-        answer = tk.predict("pump-c", rows=query, interval=0.9)
-        raw = httpx.post(f"{url}/v1/models/pump-c/predictions", json={"rows": query, "interval": 0.9}).json()
+        answer = tk.predict("pump-c", rows=query, interval_level=0.9)
+        raw = httpx.post(f"{url}/v1/models/pump-c/predictions", json={"rows": query, "interval_level": 0.9}).json()
         assert answer == raw
         assert answer["model"]["version"] == 1
         for p in answer["predictions"]:
@@ -276,7 +277,7 @@ def test_two_api_replicas_and_a_separate_worker_share_a_postgresql_catalog(live_
                 done = tb.wait(job["id"], poll=0.1)
                 assert done["state"] == "succeeded" and done["version"] == 1, done
                 rows = [{"flow_lps": 33.0, "head_m": 41.0}]
-                assert ta.predict("pump-rep", rows=rows, interval=0.8) == tb.predict("pump-rep", rows=rows, interval=0.8)
+                assert ta.predict("pump-rep", rows=rows, interval_level=0.8) == tb.predict("pump-rep", rows=rows, interval_level=0.8)
                 made = ta.create_key("admin", label="replica test")
                 # The key made through replica a comes to guard replica b once b's catalog cache (1 s)
                 # expires: wait for that (a bounded wait for an event, not a timed assertion).

@@ -212,12 +212,12 @@ def test_first_command_serves_the_demo_model_from_a_fresh_environment(demo):
     with Client(url) as tk:
         rows = [{"station": "mill-lane", "flow_lps": 70.0, "head_m": 35.0},
                 {"station": "mill-lane", "flow_lps": 400.0, "head_m": 35.0}]
-        answer = tk.predict("pump-energy", version=1, rows=rows, interval=0.9)
+        answer = tk.predict("pump-energy", version=1, rows=rows, interval_level=0.9)
         meta = tk.version("pump-energy", 1)
     model = answer["model"]
     assert model["name"] == "pump-energy" and model["version"] == 1 and model["created_at"]
     assert model["basis"] == meta["chosen"]["basis"] and model["penalty"] == meta["chosen"]["penalty"]
-    assert model["cv"]["metric"] == "rmse" and model["cv"]["folds"] == 5
+    assert model["cv"]["metric"] == "rmse" and model["cv"]["splits"] == 5
     assert meta["job_id"] and meta["spec"]["target"] == "energy_kwh"  # trained by a job, not written directly
     inside, outside = answer["predictions"]
     lo, hi = inside["interval"]

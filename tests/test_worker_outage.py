@@ -200,7 +200,7 @@ def test_a_trained_result_waits_for_the_catalog_instead_of_failing(tmp_path, lin
             return real(*a, **k)
 
         store.publish = publish
-        worker._publish(claimed, body, arrays, {"metric": "rmse", "cv_mean": 0.1, "folds": None, "target": "y"})
+        worker._publish(claimed, body, arrays, {"metric": "rmse", "cv_mean": 0.1, "fold_of_row": None, "target": "y"})
         done = store.jobs.get(job["id"])
         assert refusals[0] == 3
         assert done["state"] == "succeeded" and done["version"] == 1

@@ -286,7 +286,7 @@ class ModelDetail(BaseModel):
     updated_at: str | None
     monitoring_warnings: list[str] = Field(..., description="'retrain suggested' warnings of the live version over "
                                            "the last 7 days (input drift, live error); see /inputs and /outcomes.")
-    live: VersionMetadata | None = Field(None, description="The live version's metadata (absent: no live version).")
+    live_metadata: VersionMetadata | None = Field(None, description="The live version's metadata (absent: no live version).")
     links: ModelLinks
 
 
@@ -319,7 +319,7 @@ class VersionList(BaseModel):
 @with_config(_OPEN)
 class CvRow(TypedDict):
     """A row of the CV table: row (its number in the full table, best_per_basis view), basis, strength,
-    l1_ratio, mean, std, se, df, folds (the metric per split) and gcv (loo)."""
+    l1_ratio, mean, std, se, df, split_values (the metric per split) and gcv (loo)."""
     row: NotRequired[int | None]
     basis: BasisSetting
     strength: float | None
@@ -328,7 +328,7 @@ class CvRow(TypedDict):
     std: NotRequired[float | None]
     se: NotRequired[float | None]
     df: NotRequired[float | None]
-    folds: NotRequired[list[float | None] | None]
+    split_values: NotRequired[list[float | None] | None]
     gcv: NotRequired[float | None]
 
 

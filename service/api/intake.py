@@ -354,7 +354,7 @@ def live_spec(store, name: str) -> dict[str, Any]:
             errors=[{"field": "spec", "message": "missing"}],
         )
     manifest = store.get_manifest(name, live, cv_table=False)
-    spec = (manifest.get("model") or {}).get("spec")
+    spec = (manifest.get("training") or {}).get("spec")
     if not isinstance(spec, dict):
         raise InvalidSpec(f"the live version {live} of {name!r} keeps no reusable spec; send a spec with the request.")
     return spec
@@ -385,7 +385,7 @@ def continuation_parent(store, name: str, version: int) -> dict[str, Any]:
     from service.engine.continued import check_parent
 
     manifest = store.get_manifest(name, version, cv_table=False)  # NotFound (404) for a missing version
-    body = dict(manifest.get("model") or {})
+    body = dict(manifest.get("training") or {})
     check_parent(body, f"version {version} of {name!r}")
     body["_label"] = f"version {version} of {name!r}"
     return body

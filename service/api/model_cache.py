@@ -67,7 +67,7 @@ def model_block(name: str, version: int, manifest: dict[str, Any], model: Any) -
         "created_at": manifest.get("created_at"),
         "basis": desc.get("basis"),
         "penalty": desc.get("penalty"),
-        "cv": {"metric": cv.get("metric"), "mean": cv.get("mean"), "folds": cv.get("folds")},
+        "cv": {"metric": cv.get("metric"), "mean": cv.get("mean"), "splits": cv.get("splits")},
     }
 
 

@@ -183,7 +183,7 @@ def _count_inputs(served: Any, ref: dict[str, Any], cols: dict[str, np.ndarray],
 
 def _reference(served: Any) -> dict[str, Any] | None:
     manifest = getattr(served, "manifest", None) or {}
-    return (manifest.get("model") or {}).get("drift_reference")
+    return (manifest.get("training") or {}).get("drift_reference")
 
 
 # ---- reports ------------------------------------------------------------------------------------------
@@ -315,7 +315,7 @@ def _round(v: float | None) -> float | None:
 def live_warnings(mon: Monitor, name: str, version: int, manifest: dict[str, Any]) -> list[str]:
     """"Retrain suggested" warnings of a version over the last ``WARNING_WINDOW_S`` (for the model answer and
     page): an input whose PSI passes the act threshold, or a live RMSE above ``ERROR_FACTOR`` × the CV RMSE."""
-    body = manifest.get("model") or {}
+    body = manifest.get("training") or {}
     ref = body.get("drift_reference")
     until = time.time()
     since = until - WARNING_WINDOW_S

@@ -31,47 +31,49 @@ def limits_of(settings: Any) -> dict[str, Any]:
 
 class Ask(NamedTuple):
     """What a prediction request asks for besides its body: its media type (lower case, no parameters),
-    its ``Accept`` header, the query's interval level and (CSV bodies) its ``unseen_levels``."""
+    its ``Accept`` header, the query's ``interval_level`` and (CSV bodies) its ``unseen_levels``."""
 
     media_type: str
     accept: str
-    interval: float | None
+    interval_level: float | None
     unseen_levels: str | None = None
 
 
-def check_interval(value: Any, field: str) -> float | None:
+def check_interval_level(value: Any, field: str) -> float | None:
     if value is None:
         return None
     if type(value) not in (int, float) or not math.isfinite(value) or not 0 < value < 1:
         raise InvalidData(
             f"{field} must be a number strictly between 0 and 1 (the interval level, e.g. 0.9), got {value!r}.",
-            errors=[{"field": field, "value": value, "message": "expected 0 < interval < 1"}],
+            errors=[{"field": field, "value": value, "message": "expected 0 < interval_level < 1"}],
         )
     return float(value)
 
 
-def parse_json_body(raw: bytes, limit: int, interval_q: float | None, max_label: int | None = tables.MAX_LABEL_CHARS
+def parse_json_body(raw: bytes, limit: int, interval_level_q: float | None, max_label: int | None = tables.MAX_LABEL_CHARS
                      ) -> tuple[dict, float | None, int, str]:
     body = parse_json(raw)
     if not isinstance(body, dict):
         raise InvalidData(
-            f"the body must be a JSON object {{\"rows\": [...], \"interval\": 0.9}}, got a {type(body).__name__}.",
+            f"the body must be a JSON object {{\"rows\": [...], \"interval_level\": 0.9}}, got a {type(body).__name__}.",
             errors=[{"field": "body", "message": "expected an object"}],
         )
-    extra = sorted(set(body) - {"rows", "interval", "unseen_levels"})
+    extra = sorted(set(body) - {"rows", "interval_level", "unseen_levels"})
     if extra:
         raise InvalidData(
-            f"unknown field(s) {extra} in the body; only 'rows', 'interval' and 'unseen_levels' are read.",
+            f"unknown field(s) {extra} in the body; only 'rows', 'interval_level' and 'unseen_levels' are read"
+            + (" ('interval' is now called 'interval_level')." if "interval" in extra else "."),
             errors=[{"field": k, "message": "unknown field"} for k in extra],
         )
     if "rows" not in body:
         raise InvalidData("the body lacks 'rows', the list of input rows.", errors=[{"field": "rows", "message": "missing"}])
-    interval = check_interval(body.get("interval"), "interval") if "interval" in body else interval_q
+    interval_level = (check_interval_level(body.get("interval_level"), "interval_level") if "interval_level" in body
+                      else interval_level_q)
     rows = body["rows"]
     if isinstance(rows, list):
         tables.check_row_limit(len(rows), limit, "max_rows_per_request", "rows")
     cols = tables.from_rows(rows, where="rows", max_label=max_label)
-    return cols, interval, len(rows), levels.mode(body.get("unseen_levels"), "unseen_levels")
+    return cols, interval_level, len(rows), levels.mode(body.get("unseen_levels"), "unseen_levels")
 
 
 def read(served: Any, raw: bytes, ask: Ask, limits: dict[str, Any]) -> tuple[dict, float | None, int, str]:
@@ -83,21 +85,21 @@ def read(served: Any, raw: bytes, ask: Ask, limits: dict[str, Any]) -> tuple[dic
         cols = tables.from_csv(raw, where="body", max_label=max_label, spec=labels)
         n = len(next(iter(cols.values())))
         tables.check_row_limit(n, limits["max_rows_per_request"], "max_rows_per_request", "the CSV body")
-        return cols, ask.interval, n, levels.mode(ask.unseen_levels, "query.unseen_levels")
+        return cols, ask.interval_level, n, levels.mode(ask.unseen_levels, "query.unseen_levels")
     if ask.media_type in ("", "application/json") or ask.media_type.endswith("+json"):
-        return parse_json_body(raw, limits["max_rows_per_request"], ask.interval, max_label)
+        return parse_json_body(raw, limits["max_rows_per_request"], ask.interval_level, max_label)
     raise UnsupportedMediaType(
         f"Content-Type {ask.media_type!r} is not read here; send application/json ({{\"rows\": [...]}}) or text/csv."
     )
 
 
-def answer(served: Any, detail: dict[str, Any], interval: float | None, ask: Ask) -> tuple[bytes | str, str, dict]:
+def answer(served: Any, detail: dict[str, Any], interval_level: float | None, ask: Ask) -> tuple[bytes | str, str, dict]:
     """The answer's body, media type and headers: CSV when the caller accepts it (or sent CSV and did not ask
     for JSON), else JSON."""
     if "text/csv" in ask.accept or (ask.media_type == "text/csv" and "application/json" not in ask.accept):
-        return csv_answer(detail, interval is not None), "text/csv", {
+        return csv_answer(detail, interval_level is not None), "text/csv", {
             "Tikhon-Model": served.name, "Tikhon-Model-Version": str(served.version)}
-    return json_answer(served, detail, interval is not None), "application/json", {}
+    return json_answer(served, detail, interval_level is not None), "application/json", {}
 
 
 _NUMPY = orjson.OPT_SERIALIZE_NUMPY

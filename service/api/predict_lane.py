@@ -68,7 +68,7 @@ def _served(name: str, version: int, folder: str, checksum: str) -> Any:
     where = Path(folder)
     manifest, manifest_size = artifact.read_manifest(where, expected_sha256=checksum, name=name, version=version)
     arrays, arrays_size = artifact.read_arrays(where, manifest, name=name, version=version)
-    model = load_model(manifest["model"], arrays)
+    model = load_model(manifest["training"], arrays)
     served = served_from(name, version, model, manifest, folder=folder, checksum=checksum,
                          nbytes=max(arrays_size + manifest_size, footprint((model, manifest))))
     if _CACHE is not None:
@@ -84,13 +84,13 @@ def answer_here(ref: tuple[str, int, str, str], raw: bytes, ask: Any, limits: di
     from service.api.monitor import input_counts
 
     served = _served(*ref)
-    cols, interval, n, unseen = predict_io.read(served, raw, ask, limits)
+    cols, interval_level, n, unseen = predict_io.read(served, raw, ask, limits)
     del raw
     if unseen == "refuse" and served.model.categories.names:
         levels.refuse_unseen(served.model, cols)
-    detail = served.model.predict_detail(cols, interval=interval, memory_bytes=limits["predict_memory_bytes"])
+    detail = served.model.predict_detail(cols, interval_level=interval_level, memory_bytes=limits["predict_memory_bytes"])
     counts = input_counts(served, cols, detail) if monitor else None
-    body, media, headers = predict_io.answer(served, detail, interval, ask)
+    body, media, headers = predict_io.answer(served, detail, interval_level, ask)
     return n, body, media, headers, counts
 
 

@@ -129,8 +129,9 @@ def parse_training_request(raw: Any) -> TrainingRequest:
 class PredictRequest(BaseModel):
     model_config = _FORBID
     rows: list[dict[str, Value]] = Field(..., description="Input rows: every input column of the model, nothing else.")
-    interval: float | None = Field(
-        None, gt=0, lt=1, description="Level of the CV+ prediction interval, e.g. 0.9. Omitted: no interval."
+    interval_level: float | None = Field(
+        None, gt=0, lt=1, description="Level of the CV+ prediction interval, e.g. 0.9 (each answer row's 'interval' "
+        "holds its bounds). Omitted: no interval."
     )
     unseen_levels: UnseenLevels = Field(
         UnseenLevels.warn, description="A category level not seen in training: 'warn' answers the row with the level's effect "
@@ -153,7 +154,7 @@ class PredictedRow(BaseModel):
 class ModelCv(BaseModel):
     metric: Metric
     mean: float | None = Field(..., description="Mean CV metric of the chosen point.")
-    folds: int | None = Field(..., description="Splits of the cross-validation.")
+    splits: int | None = Field(..., description="Splits of the cross-validation.")
 
 
 class ModelBlock(BaseModel):

@@ -441,7 +441,7 @@ def _continue(st: _Stored, body, arrays, data, old_weight, progress, should_stop
         level_counts.append(cat_block[:, off:off + len(lv)].sum(axis=0))
         off += len(lv)
     fingerprint = fingerprint_of(fingerprint_columns(cols, used, 0, label_columns(spec)), m_rows)
-    result = finish(spec, st.settings, rows, picks, model, full, n_rows=rows_total, n_splits=K, folds=fold,
+    result = finish(spec, st.settings, rows, picks, model, full, n_rows=rows_total, n_splits=K, fold_of_row=fold,
                     oof_predictions=oof, oof_observed=y, fingerprint=fingerprint,
                     warnings=warnings + data_warnings(spec, schema, used, rows_total, K, len(model.term_names)),
                     summary_extra={"continued": True, "new_rows": m_rows},

@@ -61,7 +61,7 @@ class FittedModel:
             (split-conformal intervals: ``basis_fit: per_fold`` and ``loo``).
         residuals: (R,) sorted absolute out-of-fold residuals, concatenated by fold; residual_fold: (R,)
             their fold (-1 when split-conformal); residual_weight: how many residuals each kept one stands for.
-        cv: ``{"metric", "mean", "std", "folds", "scheme", "rule"}`` of the chosen candidate.
+        cv: ``{"metric", "mean", "std", "splits", "scheme", "rule"}`` of the chosen candidate.
         term_names: (p,) names of the design columns.
     """
 
@@ -84,7 +84,7 @@ class FittedModel:
     residuals: np.ndarray  # sorted out-of-fold absolute residuals (possibly thinned), concatenated by fold
     residual_fold: np.ndarray  # fold id of each residual (-1 when intervals are split-conformal)
     residual_weight: float = 1.0  # how many residuals each kept one stands for
-    cv: dict[str, Any] = field(default_factory=dict)  # {"metric", "mean", "std", "folds", "scheme", "rule"}
+    cv: dict[str, Any] = field(default_factory=dict)  # {"metric", "mean", "std", "splits", "scheme", "rule"}
     term_names: list[str] = field(default_factory=list)
 
     # ---- prediction -------------------------------------------------------------------------------
@@ -117,40 +117,40 @@ class FittedModel:
             raise InvalidData(f"columns {extra} are not inputs of this model; remove them (inputs: {needed})",
                               errors=[{"field": c, "message": "unknown column"} for c in extra])
 
-    def chunk_rows(self, memory_bytes: int = PREDICT_MEMORY_BYTES, interval: bool = True) -> int:
+    def chunk_rows(self, memory_bytes: int = PREDICT_MEMORY_BYTES, with_interval: bool = True) -> int:
         """Rows predicted at once so that one chunk's arrays stay within ``memory_bytes``: per row, the
         basis design and its temporaries (about 5 × the width p), the leverage product (rank of the
         leverage factor), the fold predictions (2 × K folds), the inputs, and for CV+ intervals the
         row × residual blocks of the interval (2 × the residuals kept)."""
-        key = (memory_bytes, interval)
+        key = (memory_bytes, with_interval)
         hit = self._chunk_sizes.get(key)
         if hit is None:
-            hit = self._chunk_sizes[key] = self._chunk_rows(memory_bytes, interval)
+            hit = self._chunk_sizes[key] = self._chunk_rows(memory_bytes, with_interval)
         return hit
 
     @cached_property
     def _chunk_sizes(self) -> dict[tuple[int, bool], int]:
         return {}
 
-    def _chunk_rows(self, memory_bytes: int, interval: bool) -> int:
+    def _chunk_rows(self, memory_bytes: int, with_interval: bool) -> int:
         p = int(self.beta.size)
         r = int(self.leverage_factor.shape[0]) if self.leverage_factor.ndim == 2 else 0
         k = int(self.fold_weights.shape[0]) if self.fold_weights is not None else 0
         d = len(self.features)
-        per_row = 8 * (5 * p + r + 2 * k + 4 * d + 16 + (2 * int(self.residuals.size) if interval and k else 0))
+        per_row = 8 * (5 * p + r + 2 * k + 4 * d + 16 + (2 * int(self.residuals.size) if with_interval and k else 0))
         return max(1, memory_bytes // per_row)
 
     def predict(self, data: Any, memory_bytes: int = PREDICT_MEMORY_BYTES) -> np.ndarray:
         cols = as_columns(data)
         m = _nrows(cols)
-        step = self.chunk_rows(memory_bytes, interval=False)
+        step = self.chunk_rows(memory_bytes, with_interval=False)
         out = np.empty(m)
         for a in range(0, m, step):
             Phi, _, _ = self.design(_rows(cols, a, a + step) if m > step else cols)
             out[a:a + step] = self.intercept + Phi @ self.weights
         return out
 
-    def predict_detail(self, data: Any, interval: float | None = None, strict: bool = True,
+    def predict_detail(self, data: Any, interval_level: float | None = None, strict: bool = True,
                        memory_bytes: int = PREDICT_MEMORY_BYTES) -> dict[str, Any]:
         """Predictions with CV+ intervals, leverage and extrapolation warnings per row.
 
@@ -159,24 +159,24 @@ class FittedModel:
         cols = as_columns(data)
         if strict:
             self.check_columns(cols)
-        if interval is not None and not (0 < interval < 1):
-            raise InvalidData(f"interval must lie strictly between 0 and 1, got {interval}; e.g. 0.9 for 90%")
+        if interval_level is not None and not (0 < interval_level < 1):
+            raise InvalidData(f"interval_level must lie strictly between 0 and 1, got {interval_level}; e.g. 0.9 for 90%")
         m = _nrows(cols)
-        step = self.chunk_rows(memory_bytes, interval is not None)
+        step = self.chunk_rows(memory_bytes, interval_level is not None)
         if m <= step:
-            return self._detail(cols, interval)
-        parts = [self._detail(_rows(cols, a, a + step), interval) for a in range(0, m, step)]
+            return self._detail(cols, interval_level)
+        parts = [self._detail(_rows(cols, a, a + step), interval_level) for a in range(0, m, step)]
         out: dict[str, Any] = {}
         for key in ("value", "lower", "upper", "leverage"):
             out[key] = None if parts[0][key] is None else np.concatenate([q[key] for q in parts])
         out["warnings"] = [w for q in parts for w in q["warnings"]]
         return out
 
-    def _detail(self, cols: dict[str, np.ndarray], interval: float | None) -> dict[str, Any]:
+    def _detail(self, cols: dict[str, np.ndarray], interval_level: float | None) -> dict[str, Any]:
         if _nrows(cols) <= SMALL_ROWS and self.basis.kind != "rbf":
-            return self._detail_small(cols, interval)
+            return self._detail_small(cols, interval_level)
         Phi, X, unseen = self.design(cols)
-        value, lev, lower, upper = self._numbers(Phi, interval)
+        value, lev, lower, upper = self._numbers(Phi, interval_level)
         warnings = self._warnings(X, unseen, lev, cols)
         for i in np.flatnonzero(~np.isfinite(value)):  # overflow: say so rather than answer a bare null
             warnings[i].append(
@@ -245,20 +245,20 @@ class FittedModel:
         Phi = np.array(out, dtype=np.float64).reshape(m, total)
         return Phi, rows, unseen
 
-    def _numbers(self, Phi: np.ndarray, interval: float | None):
+    def _numbers(self, Phi: np.ndarray, interval_level: float | None):
         """(values, leverages, lower, upper bounds or None) of the raw design rows ``Phi`` (m, p)."""
         value = self.intercept + Phi @ self.weights
         Zs = (Phi - self.column_mean) / self.column_scale
         FZ = Zs @ self.leverage_factor.T if self.leverage_factor.size else np.zeros((Phi.shape[0], 0))
         lev = 1.0 / self.n_train + np.einsum("ij,ij->i", FZ, FZ)
         lower = upper = None
-        if interval is not None:
-            lower, upper = self._interval(Phi, value, 1.0 - interval)
+        if interval_level is not None:
+            lower, upper = self._interval(Phi, value, 1.0 - interval_level)
         return value, lev, lower, upper
 
-    def _detail_small(self, cols: dict[str, np.ndarray], interval: float | None) -> dict[str, Any]:
+    def _detail_small(self, cols: dict[str, np.ndarray], interval_level: float | None) -> dict[str, Any]:
         Phi, rows, unseen = self._design_small(cols)
-        value, lev, lower, upper = self._numbers(Phi, interval)
+        value, lev, lower, upper = self._numbers(Phi, interval_level)
         values = value.tolist()
         levs = lev.tolist()
         _, _, _, _, _, _, _, _, lo, hi = self._small_plan

@@ -186,8 +186,8 @@ def table_rows(s_idx: int, setting: BasisSetting, strengths: np.ndarray, ratios:
     each candidate fit on all rows. A row has ``mean``; ``std``, the population standard deviation over
     splits (as ``GridSearchCV``'s ``std_test_score``); ``se``, the standard error of the mean used by the
     one-standard-error rule, ``sd(ddof=1) / √splits`` (Hastie, Tibshirani & Friedman, ESL 2nd ed.,
-    §7.10); ``df``; and ``folds``, the per-split values. ``extra`` may carry per-candidate columns
-    (``gcv``) and, for the loo scheme, its own ``_std`` and ``_se`` (then ``folds`` is None).
+    §7.10); ``df``; and ``split_values``, the metric per split. ``extra`` may carry per-candidate columns
+    (``gcv``) and, for the loo scheme, its own ``_std`` and ``_se`` (then ``split_values`` is None).
     """
     rows = []
     extra = extra or {}
@@ -198,11 +198,11 @@ def table_rows(s_idx: int, setting: BasisSetting, strengths: np.ndarray, ratios:
             se = float(np.std(v, ddof=1) / math.sqrt(n_splits)) if n_splits > 1 else float("nan")
             row = {"basis": setting.describe(), "strength": float(lam), "l1_ratio": ratio,
                    "mean": float(np.mean(v)), "std": float(np.std(v)), "se": se,
-                   "df": float(df[r_i, l_i]), "folds": [float(x) for x in v]}
+                   "df": float(df[r_i, l_i]), "split_values": [float(x) for x in v]}
             if "_std" in extra:
                 row["std"] = float(extra["_std"][r_i, l_i])
                 row["se"] = float(extra["_se"][r_i, l_i])
-                row["folds"] = None
+                row["split_values"] = None
             for key, arr in extra.items():
                 if not key.startswith("_"):
                     row[key] = float(arr[r_i, l_i])
@@ -224,7 +224,7 @@ def finite_table(rows: list[dict[str, Any]]) -> tuple[list[dict[str, Any]], list
                 if k == "mean":
                     bad.append(f"{_label(r)} at strength {r['strength']:.4g}")
                 v = None
-            elif k == "folds" and v is not None:
+            elif k == "split_values" and v is not None:
                 v = [x if math.isfinite(x) else None for x in v]
             clean[k] = v
         out.append(clean)
@@ -400,7 +400,7 @@ def path_of(full: Fit, strength: float, names: list[str]) -> dict[str, Any]:
 
 
 def finish(spec: TuneSpec, settings: list[BasisSetting], rows: list[dict[str, Any]], picks: tuple[int, int, int],
-           model: FittedModel, full: Fit, *, n_rows: int, n_splits: int, folds: np.ndarray,
+           model: FittedModel, full: Fit, *, n_rows: int, n_splits: int, fold_of_row: np.ndarray,
            oof_predictions: np.ndarray, oof_observed: np.ndarray, fingerprint: dict[str, Any],
            warnings: list[str] = (), summary_extra: dict[str, Any] | None = None,
            drift_inputs: tuple[np.ndarray, list[np.ndarray]] | None = None) -> TuneResult:
@@ -423,11 +423,11 @@ def finish(spec: TuneSpec, settings: list[BasisSetting], rows: list[dict[str, An
                "mean": chosen["mean"], "std": chosen["std"], "rows": int(n_rows), "basis_settings": len(settings),
                "strengths": int(strengths.size), "l1_ratios": len(spec.penalty.ratio_grid()),
                "candidates": len(rows), "python": platform.python_version(), **(summary_extra or {})}
-    model.cv = {"metric": metric, "mean": chosen["mean"], "std": chosen["std"], "folds": n_splits,
+    model.cv = {"metric": metric, "mean": chosen["mean"], "std": chosen["std"], "splits": n_splits,
                 "scheme": spec.cv.scheme, "rule": rule}
     return TuneResult(
-        spec=spec, best=public(chosen_idx) | {"rule": rule}, one_standard_error=public(onese_idx),
-        best_mean=public(best_idx), cv_table=table, model=model, folds=folds,
+        spec=spec, chosen=public(chosen_idx) | {"rule": rule}, one_standard_error=public(onese_idx),
+        best_mean=public(best_idx), cv_table=table, model=model, fold_of_row=fold_of_row,
         path=path_of(full, chosen["strength"], model.term_names),
         warnings=edge_warnings(settings, chosen, strengths) + table_warnings + list(warnings),
         oof_predictions=oof_predictions, oof_observed=oof_observed, oof_residuals=oof_observed - oof_predictions,
@@ -443,16 +443,16 @@ class TuneResult:
 
     Attributes (n = training rows, L = strengths, p = basis terms of the chosen setting):
         spec: the validated ``TuneSpec``.
-        best: the chosen candidate: ``{basis, penalty: {kind, strength, l1_ratio}, metric, mean, std,
+        chosen: the chosen candidate: ``{basis, penalty: {kind, strength, l1_ratio}, metric, mean, std,
             se, df, index, rule}`` (``index`` into ``cv_table``).
         one_standard_error: the candidate the one-standard-error rule picks (same keys, no ``rule``).
         best_mean: the candidate with the best mean CV metric (same keys).
         cv_table: one dict per candidate (basis setting × l1 ratio × strength): ``basis``, ``strength``,
             ``l1_ratio``, ``mean``, ``std`` (population, over splits), ``se`` (ddof = 1, over √splits),
-            ``df`` (effective degrees of freedom, intercept excluded), ``folds`` (per-split values, or
+            ``df`` (effective degrees of freedom, intercept excluded), ``split_values`` (the metric per split, or
             None for loo, which adds ``gcv``). Non-finite figures are None.
         model: the ``FittedModel`` refit on all rows at the chosen candidate.
-        folds: (n,) int validation split of each row (kfold, grouped, time_ordered: -1 for rows never
+        fold_of_row: (n,) int validation split of each row (kfold, grouped, time_ordered: -1 for rows never
             validated), (repeats, n) for repeated_kfold, or (0,) when streamed.
         path: ``{strengths (L,), coefficients (L, p), terms (p,), chosen_strength, df (L,) or None}``
             of the chosen setting refit on all rows.
@@ -469,12 +469,12 @@ class TuneResult:
             new_data_fingerprint (the worker adds parent_version); None otherwise.
     """
     spec: TuneSpec
-    best: dict[str, Any]
+    chosen: dict[str, Any]
     one_standard_error: dict[str, Any]
     best_mean: dict[str, Any]
     cv_table: list[dict[str, Any]]
     model: FittedModel
-    folds: np.ndarray
+    fold_of_row: np.ndarray
     path: dict[str, Any]
     warnings: list[str]
     oof_predictions: np.ndarray
@@ -506,7 +506,7 @@ class TuneResult:
         body = {
             "spec": self.spec.model_dump(mode="json"),
             "model": meta,
-            "chosen": self.best,
+            "chosen": self.chosen,
             "best_mean": self.best_mean,
             "one_standard_error": self.one_standard_error,
             "cv_table": self.cv_table,

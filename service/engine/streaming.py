@@ -626,7 +626,7 @@ def _refit(run: _Run, m: _Model, scan: Scan, settings: list[BasisSetting], group
     model = build_model(spec, features, m.scaler, setting, m.categories, full, l_idx, ratio, F, ranges,
                         fin.max_leverage, (kept, kept_fold, float(stride)), fold_fits)
     return finish(spec, settings, rows, picks, model, full, n_rows=n, n_splits=m.folds,
-                  folds=np.zeros(0, dtype=np.int64), oof_predictions=fin.sample_pred, oof_observed=fin.sample_obs,
+                  fold_of_row=np.zeros(0, dtype=np.int64), oof_predictions=fin.sample_pred, oof_observed=fin.sample_obs,
                   fingerprint=fingerprint_of(scan.lanes, n),
                   warnings=data_warnings(spec, run.ctx.schema or {}, run.ctx.columns, int(n), m.folds, len(model.term_names)),
                   drift_inputs=(scan.sample_X, [np.array([scan.levels[j][lv] for lv in levels], dtype=np.float64)

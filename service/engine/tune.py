@@ -417,7 +417,7 @@ def _tune(data, spec: TuneSpec, progress, should_stop, budget, span=None, basis=
                                          scaler)
     state = _continuation_state(spec, prep, scaler, settings, search, model, budget)
     result = finish(spec, settings, rows, picks, model, full, n_rows=n, n_splits=search.n_splits,
-                  folds=search.assignment, oof_predictions=oof_pred, oof_observed=prep.y,
+                  fold_of_row=search.assignment, oof_predictions=oof_pred, oof_observed=prep.y,
                   fingerprint=fingerprint_of(fingerprint_columns(prep.cols, prep.used, 0, label_columns(spec)), n),
                   warnings=search.warnings + data_warnings(
                       spec, {c: column_kind(v) for c, v in prep.cols.items()}

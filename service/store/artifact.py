@@ -1,6 +1,6 @@
 """The on-disk format of one model version, and its verification.
 
-Layout (format version 2)::
+Layout (format version 3)::
 
     <store>/<model name>/<version>/manifest.json
     <store>/<model name>/<version>/arrays.npz
@@ -9,16 +9,17 @@ Layout (format version 2)::
 The manifest stays small and of bounded size (the chosen point, the summary, the schema); the CV
 table, which grows with basis settings × strengths × l1 ratios (800,000 rows is within the grid budget),
 lives in ``cv.npz``, one numeric column per field, and is read only by the routes that show it
-(``/cv`` pages through it). In the manifest, ``model.cv_table`` is then a reference::
+(``/cv`` pages through it). In the manifest, ``training.cv_table`` is then a reference::
 
     "cv_table": {"file": "cv.npz", "sha256": "<hex>", "bytes": 123, "members": {...}, "rows": 800000,
-                 "keys": ["basis", "strength", "l1_ratio", "mean", "std", "folds", ...],
+                 "keys": ["basis", "strength", "l1_ratio", "mean", "std", "split_values", ...],
                  "bases": [{"kind": "linear"}, {"kind": "polynomial", "degree": 2}, ...]}
 
-with members ``basis`` (int32 index into ``bases``), ``folds`` (rows × splits, when every row has a
+with members ``basis`` (int32 index into ``bases``), ``split_values`` (rows × splits, when every row has a
 per-split list) and one float64 column per other key (a JSON ``null`` is stored as NaN; strict JSON
 has no NaN, so the mapping is exact both ways). Format version 1 manifests (the CV table inline, no
-``cv.npz``) are still read.
+``cv.npz``) and format version 2 ones (``cv.npz``, older key names) are still read: ``read_manifest``
+gives them today's key names (``upgrade``), so no reader past this module sees an old name.
 
 ``arrays.npz`` is an uncompressed ZIP of ``.npy`` members, one per array, written with
 ``allow_pickle=False`` and with fixed member timestamps, so equal arrays give equal bytes (and an equal
@@ -43,8 +44,9 @@ read.
         "bytes": 123456,
         "members": {"coefficients": {"dtype": "<f8", "shape": [1000]}, ...}
       },
-      "model": { ... the engine's manifest body: spec, chosen point, basis, coefficients' meaning,
-                 CV table and summary, path, training ranges, residual quantiles, data fingerprint ... }
+      "training": { ... the engine's manifest body: spec, chosen point, the fitted ``model`` (basis,
+                    coefficients' meaning, training ranges), CV table and summary, path, residual
+                    quantiles, data fingerprint ... }
     }
 
 The catalog row of the version keeps the SHA-256 of the manifest file itself; since the manifest pins
@@ -74,8 +76,8 @@ import numpy as np
 from service.errors import IntegrityFailure
 
 FORMAT = "tikhon-model"
-FORMAT_VERSION = 2
-SUPPORTED_FORMAT_VERSIONS = (1, 2)
+FORMAT_VERSION = 3
+SUPPORTED_FORMAT_VERSIONS = (1, 2, 3)
 MANIFEST_FILE = "manifest.json"
 ARRAYS_FILE = "arrays.npz"
 CV_FILE = "cv.npz"
@@ -233,11 +235,11 @@ def split_cv_table(rows: Any) -> tuple[dict[str, np.ndarray], dict[str, Any]] | 
         if key == "basis":
             continue
         values = [r[key] for r in rows]
-        if key == "folds" and all(isinstance(v, list) for v in values):
+        if key == "split_values" and all(isinstance(v, list) for v in values):
             width = len(values[0])
             if any(len(v) != width for v in values) or not all(_number(x) for v in values for x in v):
                 return None
-            out["folds"] = np.array(values, dtype=np.float64).reshape(len(rows), width)
+            out["split_values"] = np.array(values, dtype=np.float64).reshape(len(rows), width)
         elif all(v is None or _number(v) for v in values):
             out[key] = np.array([np.nan if v is None else float(v) for v in values], dtype=np.float64)
         else:
@@ -255,7 +257,7 @@ def cv_rows(columns: Mapping[str, np.ndarray], meta: Mapping[str, Any], index: A
     """Rows ``index`` (a slice or integer array) of a CV table in column form, as row objects."""
     picked = {k: np.asarray(v[index]) for k, v in columns.items()}
     n = len(picked["basis"])
-    lists = {k: (v.tolist() if k == "folds" else [None if x != x else x for x in v.tolist()])
+    lists = {k: (v.tolist() if k == "split_values" else [None if x != x else x for x in v.tolist()])
              for k, v in picked.items() if k != "basis"}
     bases = meta["bases"]
     basis = [bases[i] for i in picked["basis"].tolist()]
@@ -267,7 +269,7 @@ def cv_rows(columns: Mapping[str, np.ndarray], meta: Mapping[str, Any], index: A
                 row[key] = dict(basis[i])
             elif key in lists:
                 row[key] = lists[key][i]
-            else:  # a key whose every value was null in a list form, e.g. loo's folds
+            else:  # a key whose every value was null in a list form, e.g. loo's split_values
                 row[key] = None
         out.append(row)
     return out
@@ -285,7 +287,7 @@ def build_manifest(
         "job_id": job_id,
         "libraries": library_versions(),
         "arrays": arrays_info,
-        "model": body,
+        "training": body,
     }
 
 
@@ -348,7 +350,49 @@ def read_manifest(folder: Path, *, expected_sha256: str, name: str, version: int
         if dtype.hasobject or dtype.kind not in ALLOWED_KINDS or dtype.fields is not None:
             raise _fail(where, f"array {member!r} is declared with dtype {decl['dtype']!r}, which would need "
                                "pickle or is not plain numeric; stored models never use pickle")
-    return manifest, len(data)
+    return upgrade(manifest), len(data)
+
+
+# Names a manifest of format version 1 or 2 used, and today's: the engine's body was "model" (so the
+# fitted model sat at manifest["model"]["model"]), the fitted model's count of CV splits "folds", and a CV
+# table row's metric per split "folds" (also the member of cv.npz, which keeps its stored name).
+_OLD_BODY, _OLD_SPLITS, _OLD_SPLIT_VALUES = "model", "folds", "folds"
+
+
+def upgrade(manifest: dict[str, Any]) -> dict[str, Any]:
+    """``manifest`` (read and checked) with today's key names: a format 1 or 2 manifest is renamed in
+    place (its bytes and checksums are untouched), a format 3 one is returned as it is."""
+    if manifest.get("format_version") not in (1, 2) or "training" in manifest:
+        return manifest
+    if _OLD_BODY in manifest:
+        manifest["training"] = manifest.pop(_OLD_BODY)
+    body = manifest.get("training")
+    if not isinstance(body, dict):
+        return manifest
+    model = body.get("model")
+    if isinstance(model, dict) and isinstance(model.get("cv"), dict):
+        model["cv"] = _renamed(model["cv"], _OLD_SPLITS, "splits")
+    table = body.get("cv_table")
+    if isinstance(table, list):
+        body["cv_table"] = [_renamed(r, _OLD_SPLIT_VALUES, "split_values") if isinstance(r, dict) else r for r in table]
+    elif isinstance(table, dict) and isinstance(table.get("keys"), list):
+        table["keys"] = ["split_values" if k == _OLD_SPLIT_VALUES else k for k in table["keys"]]
+    return manifest
+
+
+def upgrade_cv_columns(columns: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
+    """The columns of a ``cv.npz`` with today's names (a format 2 file holds the metric per split as
+    member ``folds``; ``upgrade`` renamed it in the manifest's list of keys)."""
+    if _OLD_SPLIT_VALUES in columns and "split_values" not in columns:
+        columns["split_values"] = columns.pop(_OLD_SPLIT_VALUES)
+    return columns
+
+
+def _renamed(d: dict[str, Any], old: str, new: str) -> dict[str, Any]:
+    """``d`` with key ``old`` called ``new``, in the same place among the keys."""
+    if old not in d or new in d:
+        return d
+    return {(new if k == old else k): v for k, v in d.items()}
 
 
 def read_arrays(folder: Path, manifest: dict[str, Any], *, name: str, version: int,

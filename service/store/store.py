@@ -500,7 +500,7 @@ class Store:
             folder, expected_sha256=row["manifest_sha256"], name=name, version=version)
         arrays, arrays_size = artifact.read_arrays(folder, manifest, name=name, version=version)
         try:
-            model = self._loader(manifest["model"], arrays)
+            model = self._loader(manifest["training"], arrays)
         except Exception as exc:
             raise IntegrityFailure(
                 f"model {name!r} version {version} passed its checksums but could not be rebuilt "
@@ -524,7 +524,7 @@ class Store:
         folder = self._version_dir(name, version)
         manifest, _ = artifact.read_manifest(folder, expected_sha256=row["manifest_sha256"], name=name, version=version)
         arrays, _ = artifact.read_arrays(folder, manifest, name=name, version=version)
-        return manifest["model"], dict(arrays)
+        return manifest["training"], dict(arrays)
 
     def verify(self, name: str, version: int) -> LoadedVersion:
         """Verify one version from its files as a first load does (checksums, format, members, rebuilt by
@@ -611,14 +611,14 @@ class Store:
         """The verified manifest of one version, read from disk (a fresh dict the caller may keep).
 
         With ``cv_table`` (the default) a CV table kept in ``cv.npz`` is read back into
-        ``model.cv_table`` as a list of rows, so the manifest looks as the engine wrote it; without it,
-        ``model.cv_table`` stays the small reference (what metadata routes should read)."""
+        ``training.cv_table`` as a list of rows, so the manifest looks as the engine wrote it; without it,
+        ``training.cv_table`` stays the small reference (what metadata routes should read)."""
         validate_name(name)
         version = self._check_version(name, version)
         row = self._version_row(name, version)
         folder = self._version_dir(name, version)
         manifest, _ = artifact.read_manifest(folder, expected_sha256=row["manifest_sha256"], name=name, version=version)
-        body = manifest.get("model")
+        body = manifest.get("training")
         if cv_table and isinstance(body, dict) and _is_cv_reference(body.get("cv_table")):
             columns, meta = self.cv_columns(name, version, manifest)
             body["cv_table"] = artifact.cv_rows(columns, meta, slice(None))
@@ -631,12 +631,12 @@ class Store:
         converted from it. A version without a CV table gives empty columns and ``meta["rows"] == 0``."""
         if manifest is None:
             manifest = self.get_manifest(name, version, cv_table=False)
-        body = manifest.get("model") if isinstance(manifest.get("model"), dict) else {}
+        body = manifest.get("training") if isinstance(manifest.get("training"), dict) else {}
         ref = body.get("cv_table")
         if _is_cv_reference(ref):
             columns, _ = artifact.read_arrays(self._version_dir(name, version), manifest, name=name,
                                               version=version, info=ref)
-            return columns, {"rows": int(ref["rows"]), "keys": list(ref["keys"]), "bases": list(ref["bases"])}
+            return artifact.upgrade_cv_columns(columns), {"rows": int(ref["rows"]), "keys": list(ref["keys"]), "bases": list(ref["bases"])}
         split = artifact.split_cv_table(ref)
         if split is None:
             return {"basis": np.zeros(0, dtype=np.int32)}, {"rows": 0, "keys": [], "bases": []}
@@ -856,10 +856,10 @@ class Store:
         (recorded in its history). Nothing is moved or removed.
 
         Returns ``{"registered": [{"name", "version"}], "refused": [{"path", "reason"}],
-        "live": [{"name", "version"}]}``."""
+        "made_live": [{"name", "version"}]}``."""
         if live not in ("none", "newest"):
             raise InvalidSpec(f"live must be 'none' or 'newest', received {live!r}.")
-        out: dict[str, list] = {"registered": [], "refused": [], "live": []}
+        out: dict[str, list] = {"registered": [], "refused": [], "made_live": []}
         for entry in sorted(self.root.iterdir()):
             if not entry.is_dir() or entry.is_symlink():
                 continue
@@ -911,7 +911,7 @@ class Store:
                     newest = max(r["version"] for r in out["registered"] if r["name"] == name)
                     self.set_live(name, newest, actor="tikhon store recover",
                                   reason="made live by `tikhon store recover --live newest` after the catalog was rebuilt")
-                    out["live"].append({"name": name, "version": newest})
+                    out["made_live"].append({"name": name, "version": newest})
         self.unlisted = [(n, v) for n, v in self.unlisted
                          if {"name": n, "version": v} not in out["registered"]] if not dry_run else self.unlisted
         return out
@@ -923,7 +923,7 @@ class Store:
         manifest, manifest_size = artifact.read_manifest(folder, expected_sha256=sha, name=name, version=version)
         arrays, arrays_size = artifact.read_arrays(folder, manifest, name=name, version=version)
         try:
-            self._loader(manifest["model"], arrays)
+            self._loader(manifest["training"], arrays)
         except Exception as exc:
             raise IntegrityFailure(f"it passed its checksums but could not be rebuilt ({type(exc).__name__}: {exc})") from None
         try:
@@ -935,7 +935,7 @@ class Store:
             "model_name": name, "version": version, "created_at": created,
             "job_id": job_id if isinstance(job_id, str) and 0 < len(job_id) <= 64 else None,
             "manifest_sha256": sha, "arrays_sha256": manifest["arrays"]["sha256"],
-            "bytes": arrays_size + manifest_size, "summary": _summary_of(manifest.get("model")), "deleted_at": None,
+            "bytes": arrays_size + manifest_size, "summary": _summary_of(manifest.get("training")), "deleted_at": None,
         }
 
     def unlisted_versions(self) -> list[tuple[str, int]]:
@@ -1066,10 +1066,10 @@ def _summary_of(body: Any) -> Any:
     return None
 
 
-def _sqlite_file(engine: Any) -> Path | None:
-    if engine.dialect.name != "sqlite" or not engine.url.database:
+def _sqlite_file(sql: Any) -> Path | None:
+    if sql.dialect.name != "sqlite" or not sql.url.database:
         return None
-    return Path(engine.url.database).resolve()
+    return Path(sql.url.database).resolve()
 
 
 def _file_identity(path: Path | None) -> tuple[int, int, int] | None:
@@ -1081,12 +1081,12 @@ def _file_identity(path: Path | None) -> tuple[int, int, int] | None:
     return st.st_dev, st.st_ino, st.st_size
 
 
-def _catalog_label(engine: Any, root: Path) -> str:
+def _catalog_label(sql: Any, root: Path) -> str:
     """How messages name the catalog: a SQLite file relative to the store (no host paths in answers),
     a server URL without its password."""
-    db = _sqlite_file(engine)
+    db = _sqlite_file(sql)
     if db is None:
-        return safe_url(engine)
+        return safe_url(sql)
     inside = db.is_relative_to(root)
     return f"{db.relative_to(root).as_posix()} (SQLite, in the store folder)" if inside else f"{db.name} (SQLite)"
 

@@ -37,7 +37,7 @@ def test_a_continuation_serves_the_engines_continued_model(worker_service, kit):
     parent = tune({k: v.copy() for k, v in old.items()}, spec)
     body, arrays = parent.to_artifact()
     ref = continue_tune(body, arrays, {k: v.copy() for k, v in new.items()}, old_weight=0.8)
-    assert v2["chosen"]["mean"] == ref.best["mean"]
+    assert v2["chosen"]["mean"] == ref.chosen["mean"]
     q = kit.pump_table(30, seed=73)
     rows = {k: q[k].tolist() for k in ("flow_lps", "head_m")}
     got = np.array([p["value"] for p in tk.predict("pump-cont", columns=rows)["predictions"]])

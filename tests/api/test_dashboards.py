@@ -43,9 +43,9 @@ def test_cv_figure_json_is_the_cv_table_grouped_by_setting(dash):
             assert mean == row["mean"]
             # one standard error over the 5 folds, the sample standard deviation (ddof=1) over sqrt(5):
             # Hastie, Tibshirani & Friedman, The Elements of Statistical Learning, 2nd ed., section 7.10
-            assert math.isclose(se, statistics.stdev(row["folds"]) / math.sqrt(5), rel_tol=1e-9)
+            assert math.isclose(se, statistics.stdev(row["split_values"]) / math.sqrt(5), rel_tol=1e-9)
             assert math.isclose(se, row["se"], rel_tol=1e-12)
-    assert data["chosen"]["penalty"]["strength"] == result.best["penalty"]["strength"]
+    assert data["chosen"]["penalty"]["strength"] == result.chosen["penalty"]["strength"]
     # An explicit image format still gets the image.
     img = httpx.get(f"{base}/v1/models/pump-dash/versions/1/plots/cv?format=svg", headers=J, timeout=120)
     assert img.headers["content-type"].startswith("image/svg+xml")

@@ -43,7 +43,7 @@ def test_train_poll_metadata_predict_matches_engine(worker_service, kit):
 
     # The same data and spec through the engine directly (the reference the issue names).
     reference = tune({k: v.copy() for k, v in cols.items()}, copy.deepcopy(kit.SPEC))
-    assert meta["chosen"]["basis"] == reference.best["basis"]
+    assert meta["chosen"]["basis"] == reference.chosen["basis"]
     fresh = kit.pump_table(50, seed=99)
     inputs = {k: fresh[k] for k in ("flow_lps", "head_m")}
     expected = reference.model.predict(inputs)
@@ -53,9 +53,9 @@ def test_train_poll_metadata_predict_matches_engine(worker_service, kit):
     got = np.array([row["value"] for row in body["predictions"]])
     np.testing.assert_allclose(got, expected, rtol=1e-12, atol=1e-12)
     assert body["model"]["name"] == "pump-a" and body["model"]["version"] == 1
-    assert body["model"]["basis"] == reference.best["basis"]
-    assert body["model"]["penalty"]["strength"] == reference.best["penalty"]["strength"]
-    assert body["model"]["cv"] == {"metric": "rmse", "mean": reference.summary["mean"], "folds": 5}
+    assert body["model"]["basis"] == reference.chosen["basis"]
+    assert body["model"]["penalty"]["strength"] == reference.chosen["penalty"]["strength"]
+    assert body["model"]["cv"] == {"metric": "rmse", "mean": reference.summary["mean"], "splits": 5}
     assert body["model"]["created_at"] == meta["created_at"]
 
     # CSV in, CSV out gives the same numbers (written as shortest round-trip decimals).
@@ -169,7 +169,7 @@ def test_cv_plus_coverage_and_warnings(worker_service, kit):
     assert kit.wait_job(base, job["id"])["state"] == "succeeded"
     fresh = kit.pump_table(2000, seed=12, noise=2.0)
     rows = kit.as_rows({k: fresh[k] for k in ("flow_lps", "head_m")})
-    r = httpx.post(f"{base}/v1/models/pump-cover/predictions", json={"rows": rows, "interval": 0.9}, timeout=60)
+    r = httpx.post(f"{base}/v1/models/pump-cover/predictions", json={"rows": rows, "interval_level": 0.9}, timeout=60)
     assert r.status_code == 200, r.text
     preds = r.json()["predictions"]
     lo = np.array([p["interval"][0] for p in preds])
@@ -184,7 +184,7 @@ def test_cv_plus_coverage_and_warnings(worker_service, kit):
     assert np.array_equal(flagged, outside)
 
     out = httpx.post(f"{base}/v1/models/pump-cover/predictions",
-                     json={"rows": [{"flow_lps": 140.0, "head_m": 30.0}], "interval": 0.9}).json()
+                     json={"rows": [{"flow_lps": 140.0, "head_m": 30.0}], "interval_level": 0.9}).json()
     warnings = out["predictions"][0]["warnings"]
     hi_flow = float(train["flow_lps"].max())
     assert any(w.startswith("flow_lps=140 is above the training range") and f"{hi_flow:.6g}" in w for w in warnings)

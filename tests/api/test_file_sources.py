@@ -57,7 +57,7 @@ def cv_rows(base, version=1):
 def assert_same_table(rows, reference):
     assert len(rows) == len(reference)
     for got, want in zip(rows, reference):
-        np.testing.assert_allclose(got["folds"], want["folds"], rtol=1e-10)
+        np.testing.assert_allclose(got["split_values"], want["split_values"], rtol=1e-10)
 
 
 # ---- item 1: Dask through the worker ------------------------------------------------------------------
@@ -171,7 +171,7 @@ def test_a_symlink_added_while_the_job_waits_is_not_read(tmp_path, kit):
         job = httpx.get(f"{base}/v1/trainings/{r.json()['id']}").json()
         assert job["state"] == "succeeded", job["problem"]
         manifest = store.get_manifest("pumps", 1, cv_table=False)
-        assert "elsewhere" not in str(manifest["model"])
+        assert "elsewhere" not in str(manifest["training"])
         # exactly the listed rows: the in-memory engine on the 400 rows gives the same table
         assert_same_table(cv_rows(base)["table"], tune(cols, spec).cv_table)
 

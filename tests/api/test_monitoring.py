@@ -84,7 +84,7 @@ def test_outcomes_report_the_real_error_computed_from_the_answers(served, kit):
     cv = tk.version("pump-scored", 1)["chosen"]
     offset = 5.0 * cv["mean"]  # several CV RMSEs off: a world that changed
     y = truth + offset
-    answer = tk.predict("pump-scored", columns=q_rows, interval=0.9)["predictions"]
+    answer = tk.predict("pump-scored", columns=q_rows, interval_level=0.9)["predictions"]
     value = np.array([p["value"] for p in answer])
     lo = np.array([p["interval"][0] for p in answer])
     hi = np.array([p["interval"][1] for p in answer])

@@ -46,7 +46,7 @@ def outcome(base: str, r: httpx.Response | None, kit) -> dict:
     meta = httpx.get(f"{base}/v1/models/{name}/versions/1").json()
     cv = httpx.get(f"{base}/v1/models/{name}/versions/1/cv?view=all").json()
     return {"verdict": "trained", "schema": meta["feature_schema"], "fingerprint": meta["data_fingerprint"]["sha256"],
-            "rows": meta["data_fingerprint"]["rows"], "folds": [row["folds"] for row in cv["table"]]}
+            "rows": meta["data_fingerprint"]["rows"], "split_values": [row["split_values"] for row in cv["table"]]}
 
 
 def every_path(svc, kit, spec, *, csv, rows, parquet, only=paths.PATHS) -> dict[str, dict]:
@@ -89,7 +89,7 @@ def test_the_same_rows_train_the_same_model_on_every_path(svc, kit):
         assert o["schema"] == first["schema"], path
         assert o["fingerprint"] == first["fingerprint"], path
         assert o["rows"] == N
-        np.testing.assert_allclose(o["folds"], first["folds"], rtol=1e-12, err_msg=path)
+        np.testing.assert_allclose(o["split_values"], first["split_values"], rtol=1e-12, err_msg=path)
 
 
 def test_the_fingerprint_does_not_depend_on_how_a_folder_is_cut(svc, kit):
@@ -206,4 +206,4 @@ def test_integers_then_decimals_after_the_first_block_train_in_memory_and_stream
     mem, streamed = got["csv_source_memory"], got["csv_source_streamed"]
     assert mem["verdict"] == "trained" and streamed["verdict"] == "trained", got
     assert mem["fingerprint"] == streamed["fingerprint"]
-    np.testing.assert_allclose(streamed["folds"], mem["folds"], rtol=1e-10)
+    np.testing.assert_allclose(streamed["split_values"], mem["split_values"], rtol=1e-10)

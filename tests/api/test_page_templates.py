@@ -52,7 +52,7 @@ def read(page: str) -> _Read:
 def _manifest(v: dict) -> dict:
     chosen = {"basis": {"kind": "linear"}, "penalty": {"kind": "l2", "strength": 0.1}, "mean": 1.5, "se": 0.1,
               "metric": "rmse", "rule": "best"}
-    return {"model": {
+    return {"training": {
         "cv_table": [], "chosen": chosen, "cv_summary": {"splits": 5, "scheme": "kfold", "rows": 50, "candidates": 3},
         "spec": {"target": "energy_kwh", "features": [v["feature"]], "categorical": [v["label"]],
                  "units": {"energy_kwh": v["unit"], v["feature"]: v["unit"]}, "penalty": {"strengths": [0.1, 1.0]}},
@@ -68,7 +68,7 @@ def _jobs(v: dict) -> list[dict]:
 
 
 def pages_of(v: dict) -> dict[str, str]:
-    chosen = _manifest(v)["model"]["chosen"]
+    chosen = _manifest(v)["training"]["chosen"]
     versions = [{"version": 1, "live": True, "created_at": "2026-12-01T10:00:00Z", "checksum": "ab" * 32,
                  "summary": {"chosen": chosen, "cv_summary": {"splits": 5}}}]
     history = [{"at": "2026-12-01T10:00:01Z", "from_version": None, "to_version": 1, "actor": v["label"],

@@ -87,7 +87,7 @@ def test_model_page_shows_choice_warnings_figures_and_history(open_service):
     base, store = open_service
     r = httpx.get(f"{base}/models/pump-page")
     assert r.status_code == 200
-    manifest = store.get_manifest("pump-page", 2)["model"]
+    manifest = store.get_manifest("pump-page", 2)["training"]
     chosen = manifest["chosen"]
     assert "live: v2" in r.text
     assert f"λ = {chosen['penalty']['strength']:.3g}" in r.text
@@ -116,14 +116,14 @@ def test_model_page_shows_choice_warnings_figures_and_history(open_service):
 
 def test_model_page_warns_about_an_edge_of_the_grid(open_service):
     base, store = open_service
-    edge = store.get_manifest("pump-page", 2)["model"]
+    edge = store.get_manifest("pump-page", 2)["training"]
     assert edge["chosen"]["penalty"]["strength"] == 100.0
     page = httpx.get(f"{base}/models/pump-page?version=2").text
     warn = page[page.index('id="warnings"'):page.index("</section>", page.index('id="warnings"'))]
     assert 'class="panel warn"' in page
     assert "the chosen strength 100 is the smallest in the grid; widen the grid downwards" in warn
     for v in (1, 2):
-        manifest = store.get_manifest("pump-page", v)["model"]
+        manifest = store.get_manifest("pump-page", v)["training"]
         page = httpx.get(f"{base}/models/pump-page?version={v}").text
         current = [a["href"] for t, a in parse(page).tags if t == "a" and a.get("aria-current") == "page"]
         assert current == [f"/models/pump-page?version={v}"]

@@ -43,11 +43,11 @@ def test_model_page_history_decisions_deleted_versions_and_labels(tmp_path, kit)
         assert "(since deleted)" in row[:row.index("</tr>")]
         assert "pump-hist@2" in overview  # data-deleted, for the script that redraws the table
         # ± is one standard error over the folds, and the label says so.
-        chosen = store.get_manifest("pump-hist", 1)["model"]["chosen"]
+        chosen = store.get_manifest("pump-hist", 1)["training"]["chosen"]
         # the one-standard-error rule's standard error: the sample standard deviation of the 5 split errors
         # over sqrt(5) (Hastie, Tibshirani & Friedman, The Elements of Statistical Learning, 2nd ed., 7.10)
         table = httpx.get(f"{base}/v1/models/pump-hist/versions/1/cv", params={"view": "all"}).json()["table"]
-        folds = next(r["folds"] for r in table if r["basis"] == chosen["basis"]
+        folds = next(r["split_values"] for r in table if r["basis"] == chosen["basis"]
                      and r["strength"] == chosen["penalty"]["strength"])
         se = statistics.stdev(folds) / 5 ** 0.5
         assert math.isclose(se, chosen["se"], rel_tol=1e-9)

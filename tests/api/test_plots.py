@@ -131,7 +131,7 @@ def test_cv_series_and_bands_match_the_table(trained):
         for r in rows:
             # the standard error the engine recorded for the row (the one its one-SE rule uses):
             # sample standard deviation (ddof = 1) of the split values over √splits (ESL §7.10)
-            se = np.std(r["folds"], ddof=1) / np.sqrt(len(r["folds"]))
+            se = np.std(r["split_values"], ddof=1) / np.sqrt(len(r["split_values"]))
             assert r["se"] == pytest.approx(se, rel=1e-12)
             ys = verts[np.isclose(verts[:, 0], r["strength"], rtol=1e-12), 1]
             np.testing.assert_allclose([ys.min(), ys.max()], [r["mean"] - se, r["mean"] + se], rtol=1e-9)

@@ -64,7 +64,7 @@ def test_json_answer_of_a_real_model_with_warnings():
                         "penalty": {"strengths": [1.0]}, "cv": {"folds": 5, "seed": 1}}).model
     q = {f"x{j}": X[:50, j].copy() for j in range(3)}
     q["x1"][[3, 40]] = [5.0, -5.0]  # far above and below the training range
-    detail = model.predict_detail(q, interval=0.9)
+    detail = model.predict_detail(q, interval_level=0.9)
     assert detail["warnings"][3] and detail["warnings"][40] and not detail["warnings"][0]
     body = json.loads(_json(SERVED, detail, True))
     assert body["predictions"] == expected(detail, True)

@@ -82,14 +82,14 @@ def test_a_large_csv_body_is_answered_by_the_lane_exactly_as_the_engine_computes
     q = query(3000, seed=11)
     body = as_csv(q)
     assert len(body) > LANE_BYTES
-    r = httpx.post(f"{base}/v1/models/lane-pumps/predictions?interval=0.9", content=body,
+    r = httpx.post(f"{base}/v1/models/lane-pumps/predictions?interval_level=0.9", content=body,
                    headers={"content-type": "text/csv"}, timeout=120)
     assert r.status_code == 200, r.text
     assert r.headers["Tikhon-Model"] == "lane-pumps" and r.headers["Tikhon-Model-Version"] == "1"
     pids = lane_pids(app)
     assert len(pids) == 1 and pids[0] != os.getpid()
     assert os.getpriority(os.PRIO_PROCESS, pids[0]) > os.getpriority(os.PRIO_PROCESS, os.getpid())
-    want = store.load("lane-pumps", 1).model.predict_detail(q, interval=0.9)  # the engine, in this process
+    want = store.load("lane-pumps", 1).model.predict_detail(q, interval_level=0.9)  # the engine, in this process
     got = list(csv.DictReader(io.StringIO(r.text)))
     assert len(got) == 3000
     assert [float(g["value"]) for g in got] == want["value"].tolist()
@@ -103,18 +103,18 @@ def test_a_large_json_body_gets_the_same_json_as_the_api_process_writes(lane_ser
     base, app, store = lane_service
     q = query(400, seed=12)
     rows = [dict(zip(q, vals)) for vals in zip(*(np.asarray(v).tolist() for v in q.values()))]
-    big = httpx.post(f"{base}/v1/models/lane-pumps/predictions", json={"rows": rows, "interval": 0.8}, timeout=120)
+    big = httpx.post(f"{base}/v1/models/lane-pumps/predictions", json={"rows": rows, "interval_level": 0.8}, timeout=120)
     assert big.status_code == 200, big.text
-    assert len(json.dumps({"rows": rows, "interval": 0.8})) > LANE_BYTES
+    assert len(json.dumps({"rows": rows, "interval_level": 0.8})) > LANE_BYTES
     # the same rows in bodies small enough for the API process, joined: the same row objects
     small = []
     for i in range(0, 400, 20):
-        r = httpx.post(f"{base}/v1/models/lane-pumps/predictions", json={"rows": rows[i:i + 20], "interval": 0.8})
+        r = httpx.post(f"{base}/v1/models/lane-pumps/predictions", json={"rows": rows[i:i + 20], "interval_level": 0.8})
         assert r.status_code == 200
         small += r.json()["predictions"]
     got = big.json()
     assert got["model"]["name"] == "lane-pumps" and got["model"]["version"] == 1
-    want = store.load("lane-pumps", 1).model.predict_detail(q, interval=0.8)
+    want = store.load("lane-pumps", 1).model.predict_detail(q, interval_level=0.8)
     assert [p["value"] for p in got["predictions"]] == want["value"].tolist()
     assert [p["interval"] for p in got["predictions"]] == np.column_stack([want["lower"], want["upper"]]).tolist()
     assert [p["warnings"] for p in got["predictions"]] == [p["warnings"] for p in small]

@@ -31,9 +31,9 @@ def named(tmp_path_factory, kit):
 
 def test_predictions_route_answers_as_the_engine_and_the_verb_path_is_gone(named):
     base, _, result = named
-    expected = result.model.predict_detail({k: np.array([r[k] for r in ROWS]) for k in ROWS[0]}, interval=0.9)
+    expected = result.model.predict_detail({k: np.array([r[k] for r in ROWS]) for k in ROWS[0]}, interval_level=0.9)
     for path in (LIVE, PINNED):
-        r = httpx.post(f"{base}{path}", json={"rows": ROWS, "interval": 0.9}, timeout=60)
+        r = httpx.post(f"{base}{path}", json={"rows": ROWS, "interval_level": 0.9}, timeout=60)
         assert r.status_code == 200, r.text
         got = r.json()
         assert got["model"]["version"] == 1

@@ -42,10 +42,10 @@ def test_folder_source_streams_and_matches_the_in_memory_result(tmp_path, kit):
         assert cv["summary"]["execution"] == "streaming"
         assert len(rows) == len(mem.cv_table)
         for got, want in zip(rows, mem.cv_table):
-            np.testing.assert_allclose(got["folds"], want["folds"], rtol=1e-12)
+            np.testing.assert_allclose(got["split_values"], want["split_values"], rtol=1e-12)
         q = {"flow_lps": [30.0, 80.0], "head_m": [20.0, 50.0]}
         pred = httpx.post(f"{base}/v1/models/pumps/predictions", json={"rows": kit.as_rows(
-            {k: np.array(v) for k, v in q.items()}), "interval": 0.9}).json()
+            {k: np.array(v) for k, v in q.items()}), "interval_level": 0.9}).json()
         np.testing.assert_allclose([p["value"] for p in pred["predictions"]],
                                    mem.model.predict({k: np.array(v) for k, v in q.items()}), rtol=1e-12)
         assert meta  # metadata of a streamed version reads like any other

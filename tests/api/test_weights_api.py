@@ -25,7 +25,7 @@ def test_weighted_training_serves_the_engines_weighted_model(worker_service, kit
     assert meta["spec"]["weight"] == "trust"
     assert "trust" not in [f["name"] for f in meta["feature_schema"]]  # a weight is never an input
     reference = tune({k: v.copy() for k, v in cols.items()}, copy.deepcopy(spec))
-    assert meta["chosen"]["mean"] == reference.best["mean"]
+    assert meta["chosen"]["mean"] == reference.chosen["mean"]
     q = kit.pump_table(40, seed=62)
     rows = {k: q[k].tolist() for k in ("flow_lps", "head_m")}
     got = np.array([p["value"] for p in tk.predict("pump-weighted", columns=rows)["predictions"]])

@@ -215,13 +215,17 @@ def test_problem_errors_declare_their_fields(toured):
     assert with_errors and all({"field", "message"} <= set(e) for b in with_errors for e in b["errors"])
 
 
-def test_the_interval_parameter_is_the_csv_forms(toured):
+def test_the_interval_level_parameter_is_the_csv_forms(toured):
     _, _, doc, _, _ = toured
     for path, method, op in _operations(doc):
         if op["operationId"] in ("predict", "predictVersion"):
-            param = next(p for p in op["parameters"] if p["name"] == "interval")
+            param = next(p for p in op["parameters"] if p["name"] == "interval_level")
             assert param["description"].startswith("CSV form only")
-            assert "interval" in _schema(doc, op["requestBody"]["content"]["application/json"]["schema"])["properties"]
+            request = _schema(doc, op["requestBody"]["content"]["application/json"]["schema"])["properties"]
+            assert "interval_level" in request and "interval" not in request  # the level asked for
+            answer = _schema(doc, op["responses"]["200"]["content"]["application/json"]["schema"])
+            row = _schema(doc, _schema(doc, answer["properties"]["predictions"])["items"])["properties"]
+            assert "interval" in row and "interval_level" not in row  # the bounds answered
             assert op["requestBody"]["content"]["text/csv"]["schema"]["format"] == "binary"
 
 

@@ -41,11 +41,11 @@ def assert_same(a, b, tol: float = TOL) -> None:
     ma = np.array([r["mean"] for r in a.cv_table])
     mb = np.array([r["mean"] for r in b.cv_table])
     assert np.max(np.abs(ma - mb) / np.abs(mb)) < tol
-    fa = np.array([r["folds"] for r in a.cv_table])
-    fb = np.array([r["folds"] for r in b.cv_table])
+    fa = np.array([r["split_values"] for r in a.cv_table])
+    fb = np.array([r["split_values"] for r in b.cv_table])
     assert np.max(np.abs(fa - fb) / np.abs(fb)) < tol
-    assert a.best["index"] == b.best["index"]
-    assert a.best["basis"] == b.best["basis"]
+    assert a.chosen["index"] == b.chosen["index"]
+    assert a.chosen["basis"] == b.chosen["basis"]
     scale = max(1.0, float(np.abs(b.model.beta).max()))
     assert np.max(np.abs(a.model.beta - b.model.beta)) < tol * scale
     assert abs(a.model.intercept - b.model.intercept) < tol * max(1.0, abs(b.model.intercept))
@@ -245,7 +245,7 @@ def test_cv_plus_coverage_after_continuation():
     for w in (1.0, 0.5):
         cont = continue_tune(body, arrays, rows(500, 21), old_weight=w)
         test = rows(6000, 22)
-        detail = cont.model.predict_detail({k: v for k, v in test.items() if k != "y"}, interval=0.9)
+        detail = cont.model.predict_detail({k: v for k, v in test.items() if k != "y"}, interval_level=0.9)
         covered = np.mean((test["y"] >= detail["lower"]) & (test["y"] <= detail["upper"]))
         # binomial standard error at 6,000 rows is 0.004; a ±0.025 band
         assert 0.875 <= covered <= 0.925, (w, covered)
@@ -301,10 +301,10 @@ def test_row_key_and_grouped_folds_follow_the_keys_not_the_order():
 def test_a_single_new_row_and_a_constant_new_target_continue():
     body, arrays = tune(rows(150, 32), SPEC).to_artifact()
     one = continue_tune(body, arrays, rows(1, 33))
-    assert one.summary["rows"] == 151 and np.isfinite(one.best["mean"])
+    assert one.summary["rows"] == 151 and np.isfinite(one.chosen["mean"])
     B = rows(6, 34)
     B["y"][:] = 3.0  # constant among the new rows only: still rows of a varying target overall
-    assert np.isfinite(continue_tune(body, arrays, B).best["mean"])
+    assert np.isfinite(continue_tune(body, arrays, B).chosen["mean"])
 
 
 def test_new_rows_are_checked_before_queueing_as_the_continuation_would_check_them(parent):

@@ -73,7 +73,7 @@ def test_rbf_cv_at_tiny_width_equals_scikit_learn_on_the_exact_basis():
     for row in res.cv_table:
         # scikit-learn reference: StandardScaler + Ridge on the exact basis, same KFold
         want = fold_rmse(Phi, y, splits, lambda: Pipeline([("s", StandardScaler()), ("r", Ridge(alpha=row["strength"]))]))
-        np.testing.assert_allclose(row["folds"], want, rtol=1e-9)
+        np.testing.assert_allclose(row["split_values"], want, rtol=1e-9)
 
 
 def test_rbf_width_whose_basis_is_the_identity_is_refused():
@@ -158,7 +158,7 @@ def test_time_ordered_accepts_iso_timestamps_and_orders_them_in_time():
     Xs = standardized(X[:, [0, 2]])
     splits = [(order[tr], order[te]) for tr, te in TimeSeriesSplit(n_splits=3).split(Xs)]  # scikit-learn splitter
     want = fold_rmse(Xs, y, splits, lambda: Pipeline([("s", StandardScaler()), ("r", Ridge(alpha=1.0))]))
-    np.testing.assert_allclose(res.cv_table[0]["folds"], want, rtol=1e-9)
+    np.testing.assert_allclose(res.cv_table[0]["split_values"], want, rtol=1e-9)
 
 
 @pytest.mark.parametrize("values,match", [
@@ -187,12 +187,12 @@ def test_one_standard_error_rule_follows_esl_with_df_across_bases():
     table = res.cv_table
     best = min(table, key=lambda r: r["mean"])
     # ESL §7.10: standard error = sample standard deviation (ddof = 1) of the split errors / √splits
-    se = np.std(best["folds"], ddof=1) / np.sqrt(5)
+    se = np.std(best["split_values"], ddof=1) / np.sqrt(5)
     assert best["se"] == pytest.approx(se, rel=1e-12)
     within = [r for r in table if r["mean"] <= best["mean"] + se]
     simplest = min(within, key=lambda r: (r["df"], -r["strength"]))
-    assert res.best["basis"] == simplest["basis"]
-    assert res.best["penalty"]["strength"] == simplest["strength"]
+    assert res.chosen["basis"] == simplest["basis"]
+    assert res.chosen["penalty"]["strength"] == simplest["strength"]
     # df of every row is ESL eq. 3.50 on all rows: tr[Z (ZᵀZ + λI)⁻¹ Zᵀ], written out here
     Z = StandardScaler().fit_transform(PolynomialFeatures(2, include_bias=False).fit_transform(standardized(X)))
     s2 = np.linalg.svd(Z, compute_uv=False) ** 2
@@ -238,7 +238,7 @@ def test_per_fold_rbf_equals_a_scikit_learn_pipeline():
     Xf = X[:, [0, 2, 3]]
     want = fold_rmse(Xf, y, KFold(4, shuffle=True, random_state=5).split(Xf), lambda: Pipeline([
         ("std", StandardScaler()), ("rbf", _KMeansRBF(12, 1.5, 5)), ("s", StandardScaler()), ("r", Ridge(alpha=0.3))]))
-    np.testing.assert_allclose(res.cv_table[0]["folds"], want, rtol=1e-8)
+    np.testing.assert_allclose(res.cv_table[0]["split_values"], want, rtol=1e-8)
 
 
 # ---- 8. sums of squares that overflow -----------------------------------------------------------------

@@ -88,7 +88,7 @@ def test_cv_plus_bounds_equal_the_brute_force_form(diabetes_model, window, monke
             np.testing.assert_allclose(lo, ref_lo, rtol=1e-12, atol=1e-12, err_msg=f"{label}, alpha {alpha}")
             np.testing.assert_allclose(hi, ref_hi, rtol=1e-12, atol=1e-12, err_msg=f"{label}, alpha {alpha}")
             checked += int(np.isfinite(lo).sum() + np.isfinite(hi).sum())
-        detail = m.predict_detail({c: Q[:5, j] for j, c in enumerate(cols)}, interval=0.8)
+        detail = m.predict_detail({c: Q[:5, j] for j, c in enumerate(cols)}, interval_level=0.8)
         ref_lo, ref_hi = brute_force_bounds(m, Phi[:5], 1.0 - 0.8)  # the level predict_detail uses
         np.testing.assert_allclose(detail["lower"], ref_lo, rtol=1e-12, atol=1e-12)
         np.testing.assert_allclose(detail["upper"], ref_hi, rtol=1e-12, atol=1e-12)

@@ -119,7 +119,7 @@ def test_both_front_ends_give_the_same_table_complexity_and_choice(tmp_path):
     for a, b in zip(mem.cv_table, streamed.cv_table):
         # the in-memory engine is the reference (itself checked against scikit-learn in test_reference.py)
         assert (a["basis"], a["strength"], a["l1_ratio"], a["df"]) == (b["basis"], b["strength"], b["l1_ratio"], b["df"])
-        np.testing.assert_allclose(b["folds"], a["folds"], rtol=1e-9)
+        np.testing.assert_allclose(b["split_values"], a["split_values"], rtol=1e-9)
         assert b["se"] == pytest.approx(a["se"], rel=1e-8)
-    assert mem.best == streamed.best | {"mean": mem.best["mean"], "std": mem.best["std"], "se": mem.best["se"]}
+    assert mem.chosen == streamed.chosen | {"mean": mem.chosen["mean"], "std": mem.chosen["std"], "se": mem.chosen["se"]}
     assert mem.fingerprint == streamed.fingerprint

@@ -234,14 +234,14 @@ def test_l2_cv_table_equals_gridsearchcv():
     worst = 0.0
     for row in res.cv_table:
         want = ref[(row["basis"]["degree"], None, pytest.approx(row["strength"], rel=1e-12).expected)]
-        got = np.array(row["folds"])
+        got = np.array(row["split_values"])
         worst = max(worst, float(np.max(np.abs(got - want) / np.abs(want))))
         assert row["mean"] == pytest.approx(want.mean(), rel=1e-9)
         assert row["std"] == pytest.approx(want.std(), rel=1e-6, abs=1e-9)
     assert worst <= 1e-9, worst
     best = gs.best_params_
-    assert res.best["basis"] == {"kind": "polynomial", "degree": best["poly__degree"]}
-    assert res.best["penalty"]["strength"] == pytest.approx(best["ridge__alpha"], rel=1e-12)
+    assert res.chosen["basis"] == {"kind": "polynomial", "degree": best["poly__degree"]}
+    assert res.chosen["penalty"]["strength"] == pytest.approx(best["ridge__alpha"], rel=1e-12)
     # the refit equals Pipeline.fit on all rows at the chosen point
     ref_pred = gs.best_estimator_.predict(_standardized(X))
     np.testing.assert_allclose(res.model.predict(data), ref_pred, rtol=1e-9)
@@ -267,11 +267,11 @@ def test_sparse_cv_table_equals_gridsearchcv(kind, ratios):
     assert len(res.cv_table) == len(ref)
     for row in res.cv_table:
         want = ref[(row["basis"]["degree"], row["l1_ratio"], row["strength"])]
-        np.testing.assert_allclose(row["folds"], want, rtol=1e-6)
+        np.testing.assert_allclose(row["split_values"], want, rtol=1e-6)
     best = gs.best_params_
-    assert res.best["basis"]["degree"] == best["poly__degree"]
-    assert res.best["penalty"]["strength"] == best["enet__alpha"]
-    assert res.best["penalty"]["l1_ratio"] == best["enet__l1_ratio"]
+    assert res.chosen["basis"]["degree"] == best["poly__degree"]
+    assert res.chosen["penalty"]["strength"] == best["enet__alpha"]
+    assert res.chosen["penalty"]["l1_ratio"] == best["enet__l1_ratio"]
 
 
 def test_rbf_cv_table_equals_pipeline_on_the_same_centres():
@@ -295,7 +295,7 @@ def test_rbf_cv_table_equals_pipeline_on_the_same_centres():
                 m = Pipeline([("s", StandardScaler()), ("r", Ridge(alpha=alpha))]).fit(Phi[tr], y[tr])
                 folds.append(np.sqrt(np.mean((y[te] - m.predict(Phi[te])) ** 2)))
             row = next(r for r in res.cv_table if r["basis"].get("width") == width and r["strength"] == alpha)
-            np.testing.assert_allclose(row["folds"], folds, rtol=1e-9)
+            np.testing.assert_allclose(row["split_values"], folds, rtol=1e-9)
 
 
 # ---- effective degrees of freedom and exact leave-one-out -------------------------------------------

@@ -45,14 +45,14 @@ def queries():
     yield "far", far
 
 
-@pytest.mark.parametrize("interval", [None, 0.9, 0.5])
-def test_few_rows_answer_as_the_vectorized_path_bit_for_bit(model, interval, monkeypatch):
+@pytest.mark.parametrize("interval_level", [None, 0.9, 0.5])
+def test_few_rows_answer_as_the_vectorized_path_bit_for_bit(model, interval_level, monkeypatch):
     for label, q in queries():
-        small = model.predict_detail(q, interval=interval)
+        small = model.predict_detail(q, interval_level=interval_level)
         with monkeypatch.context() as mp:
             mp.setattr(model_module, "SMALL_ROWS", -1)  # every call takes the vectorized path
             mp.setattr(model_module, "_DIRECT_VALUES", -1)  # and the windowed CV+ order statistic
-            ref = model.predict_detail(q, interval=interval)
+            ref = model.predict_detail(q, interval_level=interval_level)
         for key in ("value", "leverage", "lower", "upper"):
             if ref[key] is None:
                 assert small[key] is None, (label, key)

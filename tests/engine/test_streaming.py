@@ -43,9 +43,9 @@ def assert_same(a, b, tol=1e-12):
     assert len(a.cv_table) == len(b.cv_table)
     for r1, r2 in zip(a.cv_table, b.cv_table):
         assert r1["basis"] == r2["basis"] and r1["strength"] == r2["strength"] and r1["l1_ratio"] == r2["l1_ratio"]
-        np.testing.assert_allclose(r2["folds"], r1["folds"], rtol=tol)
-    assert a.best["basis"] == b.best["basis"]
-    assert a.best["penalty"] == b.best["penalty"]
+        np.testing.assert_allclose(r2["split_values"], r1["split_values"], rtol=tol)
+    assert a.chosen["basis"] == b.chosen["basis"]
+    assert a.chosen["penalty"] == b.chosen["penalty"]
 
 
 SPEC = {"target": "y", "features": ["x0", "x2", "x3", "x4"], "categorical": ["sex"],
@@ -64,8 +64,8 @@ def test_in_memory_parquet_batches_and_dask_agree(tmp_path):
     assert_same(mem, ooc)
     q = {k: d[k][:20] for k in ["x0", "x2", "x3", "x4", "sex"]}
     np.testing.assert_allclose(ooc.model.predict(q), mem.model.predict(q), rtol=1e-12)
-    a = mem.model.predict_detail(q, interval=0.9)
-    b = ooc.model.predict_detail(q, interval=0.9)
+    a = mem.model.predict_detail(q, interval_level=0.9)
+    b = ooc.model.predict_detail(q, interval_level=0.9)
     np.testing.assert_allclose(b["lower"], a["lower"], rtol=1e-12)
     np.testing.assert_allclose(b["upper"], a["upper"], rtol=1e-12)
     assert ooc.model.max_leverage == pytest.approx(mem.model.max_leverage, rel=1e-10)

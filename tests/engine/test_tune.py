@@ -80,7 +80,7 @@ def test_folds_are_exactly_kfold_shuffled():
     d = diabetes()
     res = tune(d, {"target": "y", **LIN, "penalty": {"strengths": [1.0]}, "cv": {"folds": 4, "seed": 11}})
     for j, (_, te) in enumerate(KFold(4, shuffle=True, random_state=11).split(d["y"])):
-        assert set(np.flatnonzero(res.folds == j)) == set(te)
+        assert set(np.flatnonzero(res.fold_of_row == j)) == set(te)
 
 
 @pytest.mark.parametrize("scheme", ["repeated_kfold", "grouped", "time_ordered"])
@@ -103,7 +103,7 @@ def test_other_schemes_match_scikit_learn_splitters(scheme):
     else:
         order = np.argsort(d["t"], kind="stable")
         splits = [(order[tr], order[te]) for tr, te in TimeSeriesSplit(n_splits=3).split(X)]
-    np.testing.assert_allclose(res.cv_table[0]["folds"], _fold_rmse(X, y, splits, 3.0), rtol=1e-9)
+    np.testing.assert_allclose(res.cv_table[0]["split_values"], _fold_rmse(X, y, splits, 3.0), rtol=1e-9)
 
 
 def test_per_fold_basis_fit_refits_scaling_inside_each_fold():
@@ -120,7 +120,7 @@ def test_per_fold_basis_fit_refits_scaling_inside_each_fold():
         m = make_pipeline(StandardScaler(), PolynomialFeatures(2, include_bias=False), StandardScaler(),
                           Ridge(alpha=0.3)).fit(X[tr], d["y"][tr])
         want.append(np.sqrt(np.mean((d["y"][te] - m.predict(X[te])) ** 2)))
-    np.testing.assert_allclose(res.cv_table[0]["folds"], want, rtol=1e-9)
+    np.testing.assert_allclose(res.cv_table[0]["split_values"], want, rtol=1e-9)
 
 
 def test_mae_and_r2_metrics_match_scikit_learn_scorers():
@@ -138,7 +138,7 @@ def test_mae_and_r2_metrics_match_scikit_learn_scorers():
             mu, sd = X[tr].mean(0), X[tr].std(0)
             m = Ridge(alpha=2.0).fit((X[tr] - mu) / sd, d["y"][tr])
             want.append(scorer(d["y"][te], m.predict((X[te] - mu) / sd)))
-        np.testing.assert_allclose(res.cv_table[0]["folds"], want, rtol=1e-9)
+        np.testing.assert_allclose(res.cv_table[0]["split_values"], want, rtol=1e-9)
 
 
 # ---- selection ----------------------------------------------------------------------------------------
@@ -166,7 +166,7 @@ def test_parts_round_trip_and_prediction_detail():
     np.testing.assert_array_equal(model.predict(d), res.model.predict(d))
     q = {k: v[:3].copy() for k, v in d.items() if k != "y"}
     q["x0"][2] = 10.0  # far outside the training range
-    det = model.predict_detail(q, interval=0.9)
+    det = model.predict_detail(q, interval_level=0.9)
     assert det["warnings"][0] == [] and any("above the training range" in w for w in det["warnings"][2])
     assert all(det["lower"] < det["value"]) and all(det["value"] < det["upper"])
 
@@ -178,14 +178,14 @@ def test_cv_plus_interval_follows_its_definition():
     m = res.model
     feats = m.features
     q = {f: d[f][:4] for f in feats}
-    det = m.predict_detail(q, interval=0.8)
+    det = m.predict_detail(q, interval_level=0.8)
     Phi = np.column_stack([(d[f][:4] - mu) / s for f, mu, s in zip(feats, m.scaler.mean, m.scaler.scale)])
     n = d["y"].size
     R = np.abs(res.oof_residuals)
     for i in range(4):
         mu_k = m.fold_intercepts + m.fold_weights @ Phi[i]
-        lo = np.sort(mu_k[res.folds] - R)[int(np.floor(0.2 * (n + 1))) - 1]
-        hi = np.sort(mu_k[res.folds] + R)[int(np.ceil(0.8 * (n + 1))) - 1]
+        lo = np.sort(mu_k[res.fold_of_row] - R)[int(np.floor(0.2 * (n + 1))) - 1]
+        hi = np.sort(mu_k[res.fold_of_row] + R)[int(np.ceil(0.8 * (n + 1))) - 1]
         assert det["lower"][i] == pytest.approx(lo, rel=1e-12)
         assert det["upper"][i] == pytest.approx(hi, rel=1e-12)
 

@@ -56,9 +56,9 @@ def test_integer_weights_equal_duplicated_rows():
     assert len(weighted.cv_table) == len(copied.cv_table) == 16
     for a, b in zip(weighted.cv_table, copied.cv_table):
         assert a["basis"] == b["basis"] and a["strength"] * factor == pytest.approx(b["strength"], rel=1e-12)
-        np.testing.assert_allclose(a["folds"], b["folds"], rtol=1e-9)
-    assert (weighted.best["basis"], weighted.best["index"]) == (copied.best["basis"], copied.best["index"])
-    assert weighted.best["mean"] == pytest.approx(copied.best["mean"], rel=1e-9)
+        np.testing.assert_allclose(a["split_values"], b["split_values"], rtol=1e-9)
+    assert (weighted.chosen["basis"], weighted.chosen["index"]) == (copied.chosen["basis"], copied.chosen["index"])
+    assert weighted.chosen["mean"] == pytest.approx(copied.chosen["mean"], rel=1e-9)
     np.testing.assert_allclose(weighted.model.scaler.mean, copied.model.scaler.mean, rtol=1e-12)
     np.testing.assert_allclose(weighted.model.scaler.scale, copied.model.scaler.scale, rtol=1e-12)
     q = table(X[:30], y[:30], names)
@@ -75,7 +75,7 @@ def test_uniform_weights_change_nothing():
     for c in (1.0, 3.5):
         w = tune(table(X, y, names, id=ids, w=np.full(y.size, c)), {**SPEC, "weight": "w"})
         for a, b in zip(w.cv_table, plain.cv_table):
-            np.testing.assert_allclose(a["folds"], b["folds"], rtol=1e-9)
+            np.testing.assert_allclose(a["split_values"], b["split_values"], rtol=1e-9)
         q = table(X[:20], y[:20], names)
         np.testing.assert_allclose(w.model.predict(q), plain.model.predict(q), rtol=1e-9)
 

@@ -37,14 +37,14 @@ def test_an_overflowing_prediction_is_null_with_a_warning_and_declared_nullable(
     with live_service(tmp_path, worker=False) as (base, store, _):
         rk.publish_demo(store, "pumps", seed=0)
         rows = [{"flow_lps": 1e308, "head_m": 35.0}, {"flow_lps": 70.0, "head_m": 35.0}]
-        r = httpx.post(f"{base}/v1/models/pumps/predictions", json={"rows": rows, "interval": 0.9}, timeout=30)
+        r = httpx.post(f"{base}/v1/models/pumps/predictions", json={"rows": rows, "interval_level": 0.9}, timeout=30)
         assert r.status_code == 200, r.text
         first, second = r.json()["predictions"]
         assert first["value"] is None and first["interval"] == [None, None]
         assert any("not a finite number" in w and "overflowed" in w for w in first["warnings"]), first
         assert isinstance(second["value"], float) and not any("finite" in w for w in second["warnings"])
 
-        text = httpx.post(f"{base}/v1/models/pumps/predictions?interval=0.9", timeout=30,
+        text = httpx.post(f"{base}/v1/models/pumps/predictions?interval_level=0.9", timeout=30,
                           content="flow_lps,head_m\n1e308,35\n70,35\n",
                           headers={"Content-Type": "text/csv", "Accept": "text/csv"}).text
         table = list(csv.reader(io.StringIO(text)))

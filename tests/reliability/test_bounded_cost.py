@@ -58,7 +58,7 @@ def srv(tmp_path_factory, rk):
         # warm up: the first request of each kind loads the model and imports what it needs
         httpx.post(f"{server.base}/v1/models/{CAT}/predictions", timeout=60,
                    json={"rows": [{"station": "mill-lane", "flow_lps": 70.0, "head_m": 35.0}] * 300})
-        httpx.post(f"{server.base}/v1/models/{WIDE}/predictions?interval=0.9", timeout=60,
+        httpx.post(f"{server.base}/v1/models/{WIDE}/predictions?interval_level=0.9", timeout=60,
                    content=_csv(_wide_rows(300, 5), WIDE_FEATURES), headers={"content-type": "text/csv"})
         yield server
 
@@ -147,7 +147,7 @@ def test_batch_prediction_on_a_wide_model_stays_within_the_memory_budget(srv):
     rows = _wide_rows(30_000, 6)
     body = _csv(rows, WIDE_FEATURES)
     grew, r = peak_growth(srv.pid, lambda: httpx.post(
-        f"{srv.base}/v1/models/{WIDE}/predictions?interval=0.9", content=body,
+        f"{srv.base}/v1/models/{WIDE}/predictions?interval_level=0.9", content=body,
         headers={"content-type": "text/csv", "accept": "application/json"}, timeout=300))
     assert grew < 160 * MiB, f"peak grew by {grew / MiB:.0f} MiB"
     assert r.status_code == 200, r.text[:500]
@@ -157,7 +157,7 @@ def test_batch_prediction_on_a_wide_model_stays_within_the_memory_budget(srv):
     # rounding: a matrix product may sum in another order for another block size)
     lines = body.split(b"\n")
     for block in (lines[1:101], lines[-101:-1]):
-        alone = httpx.post(f"{srv.base}/v1/models/{WIDE}/predictions?interval=0.9", content=b"\n".join([lines[0], *block]),
+        alone = httpx.post(f"{srv.base}/v1/models/{WIDE}/predictions?interval_level=0.9", content=b"\n".join([lines[0], *block]),
                            headers={"content-type": "text/csv", "accept": "application/json"}, timeout=60).json()
         first = 0 if block[0] == lines[1] else 30_000 - 100
         for a, b in zip(alone["predictions"], preds[first:first + 100]):
@@ -319,8 +319,8 @@ def test_model_metadata_does_not_read_the_cv_table(big_cv):
     # the unbounded route parsed the whole manifest (the 60,000-row table) on every call
     assert grew < 20 * MiB, f"peak grew by {grew / MiB:.0f} MiB"
     assert r.status_code == 200
-    live = r.json()["live"]
-    assert live["chosen"] == result.best and "cv_table" not in live
+    live = r.json()["live_metadata"]
+    assert live["chosen"] == result.chosen and "cv_table" not in live
     assert live["cv_summary"]["candidates"] == 60_000
 
 

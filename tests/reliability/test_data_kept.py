@@ -87,7 +87,7 @@ def test_a_lost_catalog_keeps_every_version_and_recover_brings_them_back(rk, tmp
         assert r.returncode == 0, r.stderr
         report = json.loads(r.stdout)
         assert report["registered"] == [{"name": "pumps", "version": 1}, {"name": "pumps", "version": 2}]
-        assert report["live"] == [{"name": "pumps", "version": 2}] and report["refused"] == []
+        assert report["made_live"] == [{"name": "pumps", "version": 2}] and report["refused"] == []
         assert httpx.get(f"{srv.base}/readyz", timeout=30).status_code == 200
         answer = httpx.post(f"{srv.base}/v1/models/pumps/predictions", json={"rows": [{"flow_lps": 70, "head_m": 35}]},
                             headers={"Authorization": f"Bearer {secret}"}, timeout=30)

@@ -27,7 +27,7 @@ def _send(base: str, rows: list[dict], single: int) -> None:
 
 
 def _expected_bins(store, rows: list[dict]) -> list[float]:
-    ref = store.get_manifest("pumps", 1, cv_table=False)["model"]["drift_reference"]
+    ref = store.get_manifest("pumps", 1, cv_table=False)["training"]["drift_reference"]
     edges = np.array(next(e for e in ref["numeric"] if e["name"] == "flow_lps")["edges"])
     x = np.array([r["flow_lps"] for r in rows])
     counts = np.zeros(edges.size + 1)

@@ -90,7 +90,7 @@ def test_manifest_records_what_the_format_promises(store, kit):
     assert manifest["format"] == "tikhon-model" and manifest["format_version"] == FORMAT_VERSION
     assert manifest["name"] == "m" and manifest["version"] == 1
     assert manifest["job_id"] == "0123456789abcdef0123456789abcdef"
-    assert manifest["model"] == body
+    assert manifest["training"] == body
     assert set(manifest["libraries"]) >= {"python", "numpy", "scikit-learn"}
     assert manifest["libraries"]["numpy"] == np.__version__
     assert manifest["arrays"]["sha256"] == artifact.sha256_file(_folder(store, "m", 1) / "arrays.npz")
@@ -129,7 +129,7 @@ def test_publish_refuses_manifest_bodies_that_are_not_strict_json(store, body, w
     if isinstance(body.get("x"), np.floating):
         # np.float64 subclasses float, so it is valid JSON: it must be stored, not refused.
         store.publish("m", body, {"coef": np.ones(1)})
-        assert store.get_manifest("m", 1)["model"]["x"] == 1.0
+        assert store.get_manifest("m", 1)["training"]["x"] == 1.0
         return
     with pytest.raises(IntegrityFailure) as info:
         store.publish("m", body, {"coef": np.ones(1)})
@@ -175,7 +175,7 @@ def test_unknown_format_version_is_refused(store, kit):
     body, arrays = kit.linear_artifact(3)
     store.publish("m", body, arrays)
     _rewrite_manifest(store, "m", 1, lambda m: m.update(format_version=FORMAT_VERSION + 1))
-    with pytest.raises(IntegrityFailure, match=r"format_version 3; this Tikhon reads 1, 2"):
+    with pytest.raises(IntegrityFailure, match=r"format_version 4; this Tikhon reads 1, 2, 3"):
         _fresh_store(store, kit).load("m", 1)
 
 

@@ -52,7 +52,7 @@ def test_eight_processes_publish_at_once(store, kit, tmp_path):
     seeds = set()
     for v in versions:
         loaded = store.load("shared", v["version"])
-        seeds.add(loaded.manifest["model"]["cv_summary"]["seed"])
+        seeds.add(loaded.manifest["training"]["cv_summary"]["seed"])
     assert seeds == set(range(N_PROCS))
     assert sorted(p.name for p in (store.root / "shared").iterdir()) == sorted(str(i) for i in range(1, 9))
 

@@ -61,7 +61,7 @@ def test_sigkill_at_each_step_of_publish(store, kit, step):
     expected = 2 if committed else 1
     assert _assert_consistent(restarted, "m", loaded=set()) == expected
     assert restarted.publish("m", *kit.linear_artifact(seed=2))["version"] == expected + 1
-    assert restarted.load("m", expected + 1).manifest["model"]["cv_summary"]["seed"] == 2
+    assert restarted.load("m", expected + 1).manifest["training"]["cv_summary"]["seed"] == 2
     restarted.close()
 
 
@@ -73,7 +73,7 @@ def test_next_publish_clears_an_orphan_without_a_restart(store, kit):
     row = store.publish("m", *kit.linear_artifact(seed=3))  # same process, no sweep in between
     assert row["version"] == 2
     assert (store.root / "m" / "2" / "manifest.json").read_bytes() != orphan
-    assert store.load("m", 2).manifest["model"]["cv_summary"]["seed"] == 3
+    assert store.load("m", 2).manifest["training"]["cv_summary"]["seed"] == 3
 
 
 def test_sigkill_at_random_moments_twenty_times(store, kit):

@@ -40,7 +40,7 @@ def test_load_predicts_what_was_published(store, kit):
     expected = X @ arrays["coef"] + -2.25
     assert loaded.model.predict(X).tobytes() == expected.tobytes()
     assert loaded.version == 1 and loaded.name == "m"
-    assert loaded.manifest["model"] == body
+    assert loaded.manifest["training"] == body
     assert loaded.checksum == store.get_version("m", 1)["checksum"]
 
 

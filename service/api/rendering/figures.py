@@ -135,8 +135,8 @@ def _note(fig: Figure, text: str) -> None:
 
 
 def engine_body(manifest: dict[str, Any]) -> dict[str, Any]:
-    """The engine's manifest body inside a stored manifest (the store keeps it under ``model``)."""
-    body = manifest.get("model")
+    """The engine's manifest body inside a stored manifest (the store keeps it under ``training``)."""
+    body = manifest.get("training")
     return body if isinstance(body, dict) and "cv_table" in body else manifest
 
 
@@ -191,7 +191,7 @@ def cv_series(body: dict[str, Any]) -> list[dict[str, Any]]:
     out = []
     for g in groups.values():
         rows = sorted(g["rows"], key=lambda r: float(r["strength"]))
-        splits = np.array([max(len(r.get("folds") or ()), 1) for r in rows], dtype=float)
+        splits = np.array([max(len(r.get("split_values") or ()), 1) for r in rows], dtype=float)
         mean = np.array([float(r["mean"]) if r.get("mean") is not None else np.nan for r in rows])
         std = np.array([float(r["std"]) if r.get("std") is not None else np.nan for r in rows])
         se = std / np.sqrt(splits)  # versions trained before rows carried "se"

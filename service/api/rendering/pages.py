@@ -106,7 +106,7 @@ def overview(models: list[dict[str, Any]], live_rows: dict[str, dict[str, Any] |
         summary = (live_rows.get(name) or {}).get("summary") or {}
         chosen = summary.get("chosen") or {}
         rows.append({
-            "name": name, "live": m.get("live_version"), "versions": m.get("versions"),
+            "name": name, "live_version": m.get("live_version"), "versions": m.get("versions"),
             "chosen": chosen_text(chosen) if chosen else "—",
             "metric": metric_text(chosen, (summary.get("cv_summary") or {}).get("splits")),
             "last": last_job.get(name), "active": active.get(name, 0),
@@ -171,7 +171,7 @@ def _history_row(h: dict[str, Any]) -> dict[str, Any]:
     else:
         version, decision, live = v(not_live), "not made live", f"{v(h.get('to_version'))} (unchanged)"
     return {"cls": "went-live" if not_live is None else "kept", "at": h.get("at"), "version": version,
-            "decision": decision, "live": live, "actor": h.get("actor"), "reason": h.get("reason")}
+            "decision": decision, "live_change": live, "actor": h.get("actor"), "reason": h.get("reason")}
 
 
 def model_page(name: str, model: dict[str, Any], versions: list[dict[str, Any]], history: list[dict[str, Any]],

@@ -27,7 +27,7 @@ _SEPARATE = {"cv_table": "cv", "path": "path"}
 
 
 def _engine_body(manifest: dict[str, Any]) -> dict[str, Any]:
-    body = manifest.get("model")
+    body = manifest.get("training")
     return body if isinstance(body, dict) else manifest
 
 
@@ -68,7 +68,7 @@ def get_model(request: Request, store: StoreDep, name: ModelName) -> Response:
     out["monitoring_warnings"] = []
     if live is not None:
         manifest = store.get_manifest(name, live, cv_table=False)
-        out["live"] = version_metadata(name, live, manifest)
+        out["live_metadata"] = version_metadata(name, live, manifest)
         out["monitoring_warnings"] = monitor.live_warnings(request.app.state.monitor, name, live, manifest)
     out["links"] = {
         "versions": f"/v1/models/{name}/versions", "history": f"/v1/models/{name}/history",

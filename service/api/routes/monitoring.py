@@ -59,7 +59,7 @@ def _report(request: Request, name: str, version: int | None, since: str | None,
     """The ``inputs`` or ``outcomes`` report of a version (default: live) over a window."""
     v = _version(request, name, version)
     t0, t1 = _window(request, name, v, since, until)
-    body = request.app.state.store.get_manifest(name, v, cv_table=False).get("model") or {}
+    body = request.app.state.store.get_manifest(name, v, cv_table=False).get("training") or {}
     counts = _counts(request, name, v, kind, t0, t1)
     if kind == "inputs":
         return monitor.inputs_report(name, v, body.get("drift_reference"), counts, t0, t1)
@@ -122,7 +122,7 @@ async def post_outcomes(request: Request, name: ModelName) -> Response:
     observed = numeric_column(cols, target, "target")
 
     def score() -> dict[str, Any]:
-        detail = served.model.predict_detail(cols, interval=0.9, memory_bytes=settings.predict_memory_bytes)
+        detail = served.model.predict_detail(cols, interval_level=0.9, memory_bytes=settings.predict_memory_bytes)
         return request.app.state.monitor.outcome(served, observed, detail)
 
     counts = await to_thread.run_sync(score)

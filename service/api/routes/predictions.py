@@ -32,7 +32,7 @@ _DOC = {
         "content": {
             "application/json": {"schema": schema_ref(PredictRequest)},
             "text/csv": {"schema": {"type": "string", "format": "binary", "description": "CSV with a header of the "
-                                    "model's input columns; the interval level goes in the 'interval' query parameter."}},
+                                    "model's input columns; the interval level goes in the 'interval_level' query parameter."}},
         },
     },
     "responses": {
@@ -53,31 +53,34 @@ _PARAMS = {
     "name": {"name": "name", "in": "path", "required": True, "schema": {"type": "string"}, "description": "Model name."},
     "version": {"name": "version", "in": "path", "required": True, "schema": {"type": "integer", "minimum": 1, "maximum": VERSION_MAX},
                 "description": "Version number."},
-    "interval": {"name": "interval", "in": "query", "required": False,
+    "interval_level": {"name": "interval_level", "in": "query", "required": False,
                  "schema": {"type": "number", "exclusiveMinimum": 0, "exclusiveMaximum": 1},
                  "description": "CSV form only: the interval level for a CSV body. A JSON body carries its level in "
-                 "its own 'interval' member (this parameter is read for a JSON body only when that member is absent)."},
+                 "its own 'interval_level' member (this parameter is read for a JSON body only when that member is absent)."},
     "unseen_levels": {"name": "unseen_levels", "in": "query", "required": False,
                       "schema": {"$ref": "#/components/schemas/UnseenLevels"},
                       "description": "CSV form only: 'warn' answers a category level not seen in training with a "
                       "warning, 'refuse' answers 422 (JSON bodies use the 'unseen_levels' field)."},
 }
-_LIVE_DOC = {**_DOC, "parameters": [_PARAMS["name"], _PARAMS["interval"], _PARAMS["unseen_levels"]]}
-_PINNED_DOC = {**_DOC, "parameters": [_PARAMS["name"], _PARAMS["version"], _PARAMS["interval"],
+_LIVE_DOC = {**_DOC, "parameters": [_PARAMS["name"], _PARAMS["interval_level"], _PARAMS["unseen_levels"]]}
+_PINNED_DOC = {**_DOC, "parameters": [_PARAMS["name"], _PARAMS["version"], _PARAMS["interval_level"],
                                      _PARAMS["unseen_levels"]]}
 
 
-def _query_interval(request: Request) -> float | None:
+def _query_interval_level(request: Request) -> float | None:
     if not request.scope.get("query_string"):  # the usual case: no query string to parse
         return None
-    raw = request.query_params.get("interval")
+    raw = request.query_params.get("interval_level")
     if raw is None:
+        if "interval" in request.query_params:  # the name before this release: refused, never ignored
+            raise InvalidData("query parameter 'interval' is now called 'interval_level'; send ?interval_level=0.9.",
+                              errors=[{"field": "query.interval", "message": "renamed to interval_level"}])
         return None
     try:
         value = float(raw)
     except ValueError:
         value = raw
-    return predict_io.check_interval(value, "query.interval")
+    return predict_io.check_interval_level(value, "query.interval_level")
 
 
 def _version(raw: str) -> int:
@@ -96,7 +99,7 @@ def _version(raw: str) -> int:
 async def predict_live(request: Request) -> Response:
     await auth.authorize(request)  # the key check every /v1 route has (see app.create_app)
     name = validate_name(request.path_params["name"])
-    interval = _query_interval(request)
+    interval_level = _query_interval_level(request)
     cache = request.app.state.models
     version = cache.cached_live(name)
     if version is None:
@@ -104,7 +107,7 @@ async def predict_live(request: Request) -> Response:
         if age is not None:
             note_stale(request, age)
     served = cache.cached(name, version) or await cache.lookups.run(("load", name, version), cache.load, name, version)
-    return await _predict(request, served, interval)
+    return await _predict(request, served, interval_level)
 
 
 @router.post("/models/{name}/versions/{version}/predictions", summary="Predict with a pinned version", openapi_extra=_PINNED_DOC,
@@ -113,27 +116,27 @@ async def predict_version(request: Request) -> Response:
     await auth.authorize(request)  # the key check every /v1 route has (see app.create_app)
     name = validate_name(request.path_params["name"])
     version = _version(request.path_params["version"])
-    interval = _query_interval(request)
+    interval_level = _query_interval_level(request)
     cache = request.app.state.models
     served = cache.cached(name, version) or await cache.lookups.run(("load", name, version), cache.load, name, version)
-    return await _predict(request, served, interval)
+    return await _predict(request, served, interval_level)
 
 
-def _compute(served: Served, cols: dict, interval: float | None, unseen: str, ask: predict_io.Ask,
+def _compute(served: Served, cols: dict, interval_level: float | None, unseen: str, ask: predict_io.Ask,
              limits: dict[str, Any], monitor: Any) -> tuple[int, bytes | str, str, dict]:
     """Everything after reading the body: unseen levels, the numbers, monitoring's append, the answer."""
     if unseen == "refuse" and served.model.categories.names:
         levels.refuse_unseen(served.model, cols)
-    detail = served.model.predict_detail(cols, interval=interval, memory_bytes=limits["predict_memory_bytes"])
+    detail = served.model.predict_detail(cols, interval_level=interval_level, memory_bytes=limits["predict_memory_bytes"])
     monitor.observe(served, cols, detail)  # an append (counted off the request path), or counted here when large
-    return (int(detail["value"].shape[0]), *predict_io.answer(served, detail, interval, ask))
+    return (int(detail["value"].shape[0]), *predict_io.answer(served, detail, interval_level, ask))
 
 
-async def _predict(request: Request, served: Served, interval_q: float | None) -> Response:
+async def _predict(request: Request, served: Served, interval_level_q: float | None) -> Response:
     state = request.app.state
     content_type = auth.raw_header(request.scope, b"content-type") or ""
     mt = content_type.split(";", 1)[0].strip().lower()  # as render.media_type
-    ask = predict_io.Ask(mt, auth.raw_header(request.scope, b"accept") or "", interval_q,
+    ask = predict_io.Ask(mt, auth.raw_header(request.scope, b"accept") or "", interval_level_q,
                          request.query_params.get("unseen_levels") if mt == "text/csv" else None)
     raw = await request.body()
     if state.predict_lane.takes(len(raw)):  # a large body: answered in a lower-priority process
@@ -143,13 +146,13 @@ async def _predict(request: Request, served: Served, interval_q: float | None) -
     else:
         limits = state.predict_limits
         if len(raw) > 65536:
-            cols, interval, n, unseen = await to_thread.run_sync(predict_io.read, served, raw, ask, limits)
+            cols, interval_level, n, unseen = await to_thread.run_sync(predict_io.read, served, raw, ask, limits)
         else:
-            cols, interval, n, unseen = predict_io.read(served, raw, ask, limits)
+            cols, interval_level, n, unseen = predict_io.read(served, raw, ask, limits)
         if n <= INLINE_ROWS:
-            n, payload, media, headers = _compute(served, cols, interval, unseen, ask, limits, state.monitor)
+            n, payload, media, headers = _compute(served, cols, interval_level, unseen, ask, limits, state.monitor)
         else:
             n, payload, media, headers = await to_thread.run_sync(
-                _compute, served, cols, interval, unseen, ask, limits, state.monitor)
+                _compute, served, cols, interval_level, unseen, ask, limits, state.monitor)
     state.metrics.count_predictions(served.name, served.version, n)
     return Response(payload, media_type=media, headers=headers or None)

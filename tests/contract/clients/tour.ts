@@ -66,7 +66,7 @@ async function tour(base: string, key: string | undefined, name: string): Promis
   const answer = ok(
     await client.POST(PREDICT, {
       params: { path: { name } },
-      body: { rows: [{ flow_lps: 70, head_m: 35 }], interval: 0.9 },
+      body: { rows: [{ flow_lps: 70, head_m: 35 }], interval_level: 0.9 },
     }),
     "predict",
   );

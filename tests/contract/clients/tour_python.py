@@ -92,7 +92,7 @@ def tour(client: AuthenticatedClient | Client, name: str) -> int:
     query = PredictRequestRowsItem()
     query["flow_lps"] = 70.0
     query["head_m"] = 35.0
-    answer = ok(predict.sync(name, client=client, body=PredictRequest(rows=[query], interval=0.9)))
+    answer = ok(predict.sync(name, client=client, body=PredictRequest(rows=[query], interval_level=0.9)))
     first = answer.predictions[0]
     value = first.value if isinstance(first.value, float) else float("nan")
 
