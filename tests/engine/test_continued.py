@@ -71,7 +71,7 @@ def test_continuing_equals_training_on_all_rows_with_the_fixed_basis(parent):
     assert cont.lineage["new_rows"] == 250 and cont.lineage["old_weight"] == 1.0
     assert cont.lineage["new_data_fingerprint"] == cont.fingerprint["sha256"]
     # each new row lands in its full-training fold: the position after the parent's rows, hashed
-    assert np.array_equal(cont.folds, full.folds[600:])
+    assert np.array_equal(cont.fold_of_row, full.fold_of_row[600:])
 
 
 def test_a_chain_of_continuations_equals_one_continuation(parent):
