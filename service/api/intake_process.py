@@ -92,6 +92,15 @@ def read_json_body(body: bytes | str, limits: dict[str, Any], incoming: str) -> 
     return out
 
 
+def validate_staged_file(path: str, spec_raw: Any, limits: dict[str, Any]) -> tuple[dict[str, Any], dict[str, int]]:
+    """A staged table checked against a spec the body did not carry (a retrain reusing the live version's
+    spec, known only after the body was read): ``validate`` on the table read back, in an intake process,
+    so the API process never holds the table."""
+    from service import tables
+
+    return tables.validate(tables.read_staged(Path(path)), spec_raw, types.SimpleNamespace(**limits))
+
+
 def _start(parent_pid: int) -> None:
     """Initializer of an intake process: die with the API process (an orphan would hold memory), and run
     at the training processes' lower CPU priority (``lifeline.TRAINING_NICENESS``): on a small host it
@@ -140,6 +149,16 @@ class IntakePool:
             raise
         finally:
             _discard_file(spooled)  # read and removed by the intake process, unless it never got to it
+
+    def validate_staged(self, path: Path, spec_raw: Any, settings: Any) -> tuple[dict[str, Any], dict[str, int]]:
+        """``validate_staged_file`` in an intake process, waited for (called from a worker thread); its
+        ``TikhonError`` is raised here as it was raised there."""
+        pool = self._executor()
+        try:
+            return pool.submit(validate_staged_file, str(path), spec_raw, limits_of(settings)).result()
+        except BrokenProcessPool:
+            self._drop(pool)
+            raise self._broken() from None
 
     @staticmethod
     def _broken() -> Busy:

@@ -11,7 +11,6 @@ from anyio import to_thread
 from fastapi import APIRouter, Path, Query, Request
 from fastapi.responses import Response
 
-from service import tables
 from service.api import answers as A, auth, intake
 from service.problems import MalformedBody, UnsupportedMediaType
 from service.api.render import media_type, parse_json
@@ -214,13 +213,23 @@ async def submit(request: Request, name: ModelName) -> Response:
             if read.get("error") is not None:
                 raise read["error"]
             path, origin, spec, counts = FsPath(read["staged"]), read["origin"], read["spec"], read["counts"]
-            if spec is None:  # a retrain reusing the live spec: check the staged columns against it here
+            if spec is None:  # a retrain reusing the live spec: the staged columns checked in the intake process
                 try:
-                    spec, counts = intake.validate(tables.read_staged(path), spec_raw, settings)
+                    spec, counts = app.state.intake.validate_staged(path, spec_raw, settings)
                 except BaseException:
                     intake.discard(path)
                     raise
         else:
+            big = _worker_reads(data, upload, settings)
+            if big is not None:  # larger than a few blocks: looked at here, read whole by the worker
+                raw, where, origin, files, path = big
+                spec, counts, seen, reading = intake.check_file(raw, spec_raw, settings, where)
+                job_request = {
+                    "spec": spec, "promote": parsed.promote, "min_improvement": parsed.min_improvement,
+                    "data": origin | seen, "grid": counts, "spec_reused": parsed.spec is None, "read": reading,
+                    **({"files": files} if files else {}), SUBMITTER: submitter,
+                }
+                return store.jobs.submit(name, job_request, data_path=path, idempotency_key=key, **limits)
             cols, origin = intake.load_data(data, settings, upload=upload, spec=intake.parse(spec_raw))
             if isinstance(data, dict):
                 data.pop("rows", None)  # the row objects are columns now: free them before validating and staging
@@ -253,6 +262,24 @@ async def submit(request: Request, name: ModelName) -> Response:
     if not created:
         headers[REPLAYED] = "true"
     return A.reply(A.Job, view, status=202, headers=headers)
+
+
+def _worker_reads(data: Any, upload: tuple[FsPath, str | None] | None, settings: Any):
+    """(opener, where, the job's ``data``, the fixed file list or None, the upload to stage or None) when the
+    training file is too large to be read whole in the API process (``intake.read_at_submission``): an upload
+    (staged as sent, in the job's folder) or an in-memory ``source`` file (fixed as a ``FileRef``). None for
+    JSON rows, CSV text and small files, which are read here."""
+    if upload is not None:
+        path, filename = upload
+        if intake.read_at_submission(path):
+            return None
+        return (lambda: open(path, "rb")), "the uploaded file", {"kind": "upload", "filename": filename}, None, str(path)
+    if not isinstance(data, dict) or "source" not in data:
+        return None
+    path, where, ref = intake.source_file(data, settings)
+    if intake.read_at_submission(path):
+        return None
+    return ref.open, where, {"kind": "source", "source": data["source"]}, [ref.to_json()], None
 
 
 def _submitter(request: Request) -> str:
