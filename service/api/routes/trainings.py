@@ -16,7 +16,7 @@ from service.problems import MalformedBody, UnsupportedMediaType
 from service.api.render import media_type, parse_json
 from service.api.schemas import TrainingRequest, TrainingUpload, parse_training_request, schema_ref
 from service.api.views import job_view
-from service.errors import InvalidData, StorageFailure
+from service.errors import Busy, InvalidData, StorageFailure, TikhonError
 from service.store.jobs import SUBMITTER
 from service.api.dependencies import ModelName, StoreDep
 from service.store.names import validate_name
@@ -108,7 +108,16 @@ class _Fields:
         self.spec, self.promote, self.min_improvement = spec, promote, min_improvement
 
 
-async def _read_submission(request: Request, incoming: FsPath
+def _live_spec_or_none(store, name: str) -> dict[str, Any] | None:
+    """The live version's spec, for an intake process to read a body that may carry none (the route asks again,
+    in its order, when the body indeed has no spec)."""
+    try:
+        return intake.live_spec(store, name)
+    except TikhonError:
+        return None
+
+
+async def _read_submission(request: Request, incoming: FsPath, name: str
                            ) -> tuple[Any, dict[str, Any], tuple[FsPath, str | None] | None, dict[str, Any] | None]:
     """(parsed request, its data member, the uploaded file saved under ``incoming`` or None, what an
     intake process read or None). Large JSON bodies are parsed and validated off the event loop, the
@@ -162,13 +171,15 @@ async def _read_submission(request: Request, incoming: FsPath
             # parsed, turned into columns, validated and staged in an intake process (the row objects
             # would hold this process's interpreter lock for seconds): the body goes to a file as it
             # arrives, and only a summary comes back
-            read = await request.app.state.intake.read_json(await _spool(request, incoming), settings, incoming)
+            live = await to_thread.run_sync(_live_spec_or_none, request.app.state.store, name)
+            read = await request.app.state.intake.read_json(await _spool(request, incoming), settings, incoming, live)
             if read.get("error") is not None and not read["deferred"]:
                 raise read["error"]
             return _Fields(**read["request"]), read["data"], None, read
         raw = await request.body()
         if len(raw) > settings.intake_process_bytes:  # a body sent without a length (chunked)
-            read = await request.app.state.intake.read_json(raw, settings, incoming)
+            live = await to_thread.run_sync(_live_spec_or_none, request.app.state.store, name)
+            read = await request.app.state.intake.read_json(raw, settings, incoming, live)
             del raw
             if read.get("error") is not None and not read["deferred"]:
                 raise read["error"]
@@ -189,7 +200,7 @@ async def submit(request: Request, name: ModelName) -> Response:
     key = intake.check_idempotency_key(request.headers.get("idempotency-key"))
     app = request.app
     store, settings = app.state.store, app.state.settings
-    parsed, data, upload, read = await _read_submission(request, FsPath(store.jobs.incoming_dir))
+    parsed, data, upload, read = await _read_submission(request, FsPath(store.jobs.incoming_dir), name)
 
     submitter = _submitter(request)
     limits = {"queue_limit": settings.max_queued_jobs, "submitter_limit": settings.max_queued_jobs_per_key}
@@ -208,12 +219,15 @@ async def submit(request: Request, name: ModelName) -> Response:
                 SUBMITTER: submitter,
             }
             return store.jobs.submit(name, job_request, idempotency_key=key, **limits)
+        if read is not None and read.get("unread"):  # no live spec when the body arrived; one now (a race)
+            raise Busy("the model's live version changed while this training body was read; nothing was stored "
+                       "and no job was created. Submit it again.", retry_after=1)
         if read is not None and ("staged" in read or read.get("error") is not None):
             # read and staged by an intake process; its data errors are raised here, in their order
             if read.get("error") is not None:
                 raise read["error"]
             path, origin, spec, counts = FsPath(read["staged"]), read["origin"], read["spec"], read["counts"]
-            if spec is None:  # a retrain reusing the live spec: the staged columns checked in the intake process
+            if read.get("checked_with", spec_raw) != spec_raw:  # the live spec changed since: check again there
                 try:
                     spec, counts = app.state.intake.validate_staged(path, spec_raw, settings)
                 except BaseException:
