@@ -269,7 +269,7 @@ def decide(store, name: str, request: dict, outcome: dict, data_path: str | None
             decision["comparison"] = ("live version's predictions on the new rows, scored per hash fold of the new "
                                       "job's spec and averaged; the new version's figure is its CV mean")
         else:
-            live_model = store.load(name, live).model  # the live version changed while the job trained
+            live_model = store.load(name, live).model  # not scored in training: live changed meanwhile, or a resume
             cols = job_table(request, data_path, data_dir)  # read as when the job trained
             live_score = score_on(live_model, cols, outcome["target"], metric, outcome.get("folds"))
     except TikhonError as err:
