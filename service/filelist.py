@@ -355,6 +355,12 @@ def _kind_of(path: Path, where: str) -> str:
                       errors=[{"field": where, "value": path.name, "message": "unknown file type"}])
 
 
+def ref_of(root: Any, path: Any, kind: str) -> FileRef:
+    """The entry of one file already resolved inside ``root`` (an in-memory job's source, whose kind the caller
+    decided from its first bytes rather than its name)."""
+    return _ref(os.path.realpath(os.fspath(root)), Path(os.path.realpath(os.fspath(path))), kind, ())
+
+
 def _ref(root: str, real: Path, kind: str, partition) -> FileRef:
     name = real.relative_to(root).as_posix()
     with open(real, "rb") as fh:

@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import errno
 import json
+from dataclasses import dataclass
 import math
 import os
 from pathlib import Path, PurePosixPath
@@ -212,6 +213,11 @@ def from_csv(payload: bytes | str | Path, *, where: str = "csv", max_label: int 
         with open(payload, "rb") as fh:
             data = fh.read(1 << 16)  # the head: enough to tell an empty file and to read the header line
         opener = lambda: pa.OSFile(str(payload), "rb")  # noqa: E731 (no compression guessed from the name)
+    elif callable(payload):  # opens the file (a source's checked FileRef.open)
+        raw = payload
+        with raw() as fh:
+            data = fh.read(1 << 16)
+        opener = lambda: pa.PythonFile(raw(), mode="r")  # noqa: E731
     else:
         data = payload.encode() if isinstance(payload, str) else payload
         opener = lambda: pa.BufferReader(data)  # noqa: E731
@@ -263,8 +269,10 @@ def from_parquet(payload: bytes | Path, *, where: str, max_label: int | None = M
                  max_rows: int | None = None, setting: str = "max_training_rows") -> Table:
     """A Parquet file: its footer is read first, so a file holding more than ``max_rows`` rows is refused
     before any row is decompressed; with a ``spec``, only the columns it uses are read."""
+    opened = payload() if callable(payload) else None
     try:
-        source = pa.BufferReader(payload) if isinstance(payload, (bytes, bytearray)) else str(payload)
+        source = opened if opened is not None else (
+            pa.BufferReader(payload) if isinstance(payload, (bytes, bytearray)) else str(payload))
         with pq.ParquetFile(source) as f:
             if max_rows is not None:
                 check_row_limit(f.metadata.num_rows, max_rows, setting, where)
@@ -280,6 +288,9 @@ def from_parquet(payload: bytes | Path, *, where: str, max_label: int | None = M
     except (pa.ArrowException, OSError) as exc:
         reason = " ".join(str(exc).split())
         raise InvalidData(f"{where} could not be read as Parquet ({reason[:300]}); send a valid Parquet file or CSV.") from None
+    finally:
+        if opened is not None:
+            opened.close()
     return _with_unused(from_arrow(table, where=where, max_label=max_label, spec=spec), types, columns, spec)
 
 
@@ -287,8 +298,8 @@ def from_file_bytes(payload: bytes | Path, filename: str | None, *, where: str, 
                     spec: Any = None, max_rows: int | None = None) -> Table:
     """An uploaded file (its bytes, or the file it was saved to): Parquet when it starts with the Parquet
     magic bytes, else CSV."""
-    if isinstance(payload, Path):
-        with open(payload, "rb") as fh:
+    if isinstance(payload, Path) or callable(payload):
+        with (open(payload, "rb") if isinstance(payload, Path) else payload()) as fh:
             head = fh.read(8)
     else:
         head = payload[:8]
@@ -395,6 +406,224 @@ def read_source(path: Path, *, where: str = "data.source", max_label: int | None
     if head[:4] == b"PAR1":
         return from_parquet(path, where=where, max_label=max_label, spec=spec, max_rows=max_rows)
     return from_csv(Path(path), where=where, max_label=max_label, spec=spec, max_rows=max_rows)
+
+
+# ---- a training file at submission: a bounded look (the API process) -------------------------------------
+# A file larger than a few blocks is not parsed whole where it is submitted: the API process reads its
+# metadata and a bounded head (``inspect_file``), and the worker's training process reads the whole table
+# (``read_for_job``) with the same reader and checks it with the same ``validate``, so a refusal found only
+# there is the job's stored problem with the same body the submission would have answered.
+
+FIRST_ROWS = 16_384  # rows of a Parquet file's first block checked at submission (a CSV: its first 1 MiB block)
+
+
+@dataclass
+class Inspection:
+    """What the bounded look at a training file found."""
+
+    rows: int  # exact: the Parquet footer, or the CSV counted up to the row limit
+    kinds: dict[str, str]  # every column -> "number" | "boolean" | "text" | "time" | "other"
+    columns: list[str]  # the columns the spec uses, in the file's order
+    head: Table  # the first block of those columns, converted by the one reader
+    whole: bool  # the head holds every row
+    parquet: bool
+    key_values: tuple | None = None  # Parquet: (min, max) of cv.row_key when every row group's statistics say so
+
+
+def inspect_file(raw, *, where: str, spec: Any, max_rows: int, max_label: int | None,
+                 setting: str = "max_training_rows") -> Inspection:
+    """Check a training file (``raw()`` opens it, binary) against the spec from its metadata and a bounded
+    head, in the words of the in-memory reader: compressed files, the header, the column types the spec
+    uses, the first block's cells (malformed numbers, missing cells, long labels) and the row count against
+    ``max_rows`` (Parquet: the footer; CSV: rows counted in 1 MiB blocks of one column, stopping past the
+    limit). Memory stays within a few blocks whatever the file's size."""
+    with raw() as fh:
+        head = fh.read(8)
+    _refuse_compressed(head, where)
+    if head[:4] == b"PAR1":
+        return _inspect_parquet(raw, where=where, spec=spec, max_rows=max_rows, max_label=max_label, setting=setting)
+    return _inspect_csv(raw, where=where, spec=spec, max_rows=max_rows, max_label=max_label, setting=setting)
+
+
+def _inspect_csv(raw, *, where, spec, max_rows, max_label, setting) -> Inspection:
+    with raw() as fh:
+        data = fh.read(1 << 16)
+    if not data.strip():
+        raise InvalidData(f"{where} is empty; send a header line and at least one row.")
+    _check_delimiter(data, where)
+    opener = lambda: pa.PythonFile(raw(), mode="r")  # noqa: E731
+    schema, types = sources.csv_head(opener, spec, where)
+    columns = _used(spec, types, where)
+    batches = sources.csv_batches(opener, types, columns, where=where, text=sources.text_roles(spec),
+                                  max_label=max_label)
+    try:
+        _, first = next(batches)
+    finally:
+        batches.close()
+    rows = count_csv_rows(opener, next(iter(types)), where, max_rows)
+    check_row_limit(rows, max_rows, setting, where, at_least=True)
+    n_first = len(next(iter(first.values()))) if first else 0
+    return Inspection(rows, schema, columns, first, n_first == rows, False)
+
+
+def count_csv_rows(opener, column: str, where: str, limit: int | None = None) -> int:
+    """Rows of a CSV file (after its header), read in the reader's 1 MiB blocks with one column kept as raw
+    bytes (nothing converted), stopping at the first block that passes ``limit``: the count where the
+    in-memory reader would have stopped. A line with another number of fields is refused as the reader
+    refuses it."""
+    import pyarrow.csv as pcsv
+
+    src = opener()
+    rows = 0
+    try:
+        reader = pcsv.open_csv(src, read_options=pcsv.ReadOptions(block_size=sources.CSV_TYPE_BLOCK, use_threads=False),
+                               convert_options=pcsv.ConvertOptions(include_columns=[column],
+                                                                   column_types={column: pa.binary()}))
+        for batch in reader:
+            rows += batch.num_rows
+            if limit is not None and rows > limit:
+                break
+    except (pa.ArrowInvalid, pa.ArrowTypeError) as exc:
+        raise InvalidData(f"{where} could not be read ({' '.join(str(exc).split())[:300]}); check that every row has "
+                          "the same number of fields and that numeric columns hold plain numbers.") from None
+    finally:
+        src.close()
+    return rows
+
+
+def _inspect_parquet(raw, *, where, spec, max_rows, max_label, setting) -> Inspection:
+    fh = raw()
+    try:
+        with pq.ParquetFile(fh) as f:
+            md = f.metadata
+            check_row_limit(md.num_rows, max_rows, setting, where)
+            types = {fld.name: fld.type for fld in f.schema_arrow}
+            names = list(types)
+            dup = sorted({n for n in names if names.count(n) > 1})
+            if dup:
+                raise InvalidData(f"{where} repeats the column name(s) {dup}; every column needs a distinct name.")
+            if md.num_rows == 0:
+                raise InvalidData(f"{where} has a header but no rows; send at least one row.")
+            columns = _used(spec, types, where, sources.parquet_sample(f))
+            batch = next(iter(f.iter_batches(batch_size=FIRST_ROWS, columns=columns)))
+            first = from_arrow(pa.Table.from_batches([batch]), where=where, max_label=max_label, spec=spec)
+            key = getattr(getattr(spec, "cv", None), "row_key", None)
+            stats = _constant_stats(md, key) if key in columns else None
+    except (pa.ArrowException, OSError) as exc:
+        reason = " ".join(str(exc).split())
+        raise InvalidData(f"{where} could not be read as Parquet ({reason[:300]}); send a valid Parquet file or CSV.") from None
+    finally:
+        fh.close()
+    kinds = {n: sources.arrow_kind(t) for n, t in types.items()}
+    return Inspection(int(md.num_rows), kinds, columns, first, batch.num_rows == md.num_rows, True, stats)
+
+
+def _constant_stats(md, column: str) -> tuple | None:
+    """(value,) when the footer's statistics show ``column`` holds one value in every row, else None."""
+    names = [md.schema.column(i).name for i in range(md.num_columns)]
+    if column not in names:
+        return None
+    j, seen = names.index(column), None
+    for g in range(md.num_row_groups):
+        rg = md.row_group(g)
+        if rg.num_rows == 0:
+            continue
+        st = rg.column(j).statistics
+        if st is None or not st.has_min_max or st.null_count != 0 or st.min != st.max:
+            return None
+        if seen is not None and seen[0] != st.min:
+            return None
+        seen = (st.min,)
+    return seen
+
+
+def read_for_job(read: dict[str, Any], raw, spec_raw: Any, limits: Any) -> Table:
+    """The whole table of an in-memory job whose file the API process only looked at (``inspect_file``), read in
+    the training process by the in-memory reader (``raw()`` opens the file) and checked by ``validate``:
+    what only the whole table shows (a malformed cell past the first block, a constant target, too many
+    levels, ...) fails the job with the problem the submission would have answered. ``read`` holds the
+    name the caller gave the file (``where``) and the limits at submission."""
+    from service.engine import parse_spec
+
+    cols = from_file_bytes(raw, None, where=read["where"], max_label=read.get("max_label"), spec=parse_spec(spec_raw),
+                           max_rows=read.get("max_rows"))
+    sources.check_column_names(list(cols), "the training data")
+    if limits is not None:  # None: read again to score the live version (if_better), checked when it trained
+        validate(cols, spec_raw, limits)
+    return cols
+
+
+# ---- checking a table against the spec (both processes) ------------------------------------------------
+
+def table_sha256(cols: Table) -> str:
+    """SHA-256 of a table in a canonical form (names, dtypes and little-endian values, in column order)."""
+    import hashlib
+
+    h = hashlib.sha256()
+    for name, arr in cols.items():
+        if arr.dtype.kind in "UO":
+            # text: the same bytes as when text columns were fixed-width "<U{longest}" arrays
+            width = max(1, max(map(len, arr.tolist()), default=1))
+            h.update(name.encode() + b"\x00" + f"<U{width}".encode() + b"\x00")
+            h.update("\x1f".join(arr.tolist()).encode())
+        else:
+            h.update(name.encode() + b"\x00" + arr.dtype.str.encode() + b"\x00")
+            h.update(np.ascontiguousarray(arr, dtype="<f8").tobytes())
+        h.update(b"\x1e")
+    return h.hexdigest()
+
+
+def budget_of(limits: Any):
+    """The engine's ``Budget`` from the server's limits (settings, or a namespace of their values)."""
+    from service.engine.tune import Budget
+
+    return Budget(max_grid_fits=limits.max_grid_fits, max_levels=limits.max_levels, max_job_cost=limits.max_job_cost)
+
+
+def constant_row_key(column: str, value: Any, where: str):
+    """The one refusal of a ``cv.row_key`` column holding a single value (memory and streamed paths)."""
+    from service.errors import InvalidSpec
+
+    if isinstance(value, np.generic):
+        value = value.item()
+    return InvalidSpec(
+        f"cv.row_key={column!r} has the same value ({value!r}) in every row of {where}; hash folds would put every "
+        "row in one fold: name a column that identifies rows, or leave row_key out to use row positions.",
+        errors=[{"field": "cv.row_key", "value": column, "message": "constant column"}])
+
+
+def more_folds_than_rows(folds: int, n: int):
+    from service.errors import InvalidSpec
+
+    return InvalidSpec(
+        f"cv.folds={folds} is more than the {n} rows of the data; use at most {n} folds or send more rows.",
+        errors=[{"field": "cv.folds", "value": folds, "message": "more folds than rows"}])
+
+
+def validate(cols: Table, spec_raw: Any, limits: Any) -> tuple[dict[str, Any], dict[str, int]]:
+    """Validate spec and data together exactly as the engine will; return the normalized spec and grid counts."""
+    from service.engine import check_budget, parse_spec
+    from service.engine.folds import uses_hash
+    from service.engine.tune import prepare
+
+    spec = parse_spec(spec_raw)
+    budget = budget_of(limits)
+    # The size checks first, from the shape alone (declared or numeric features, no one-hot columns yet);
+    # then the checks that read the data, then the size checks again with the category columns counted.
+    n_rows = len(next(iter(cols.values()))) if cols else 0
+    d_guess = len(spec.features) if spec.features is not None else sum(
+        1 for c, v in cols.items() if v.dtype.kind in "biuf" and c != spec.target)
+    check_budget(spec, n_rows, d_guess, budget)
+    prep = prepare(cols, spec, budget)
+    n, d = prep.X.shape
+    if spec.cv.scheme not in ("loo",) and spec.cv.folds > n:
+        raise more_folds_than_rows(spec.cv.folds, n)
+    counts = check_budget(spec, n, d, budget, prep.categories.width)
+    if prep.keys is not None and uses_hash(spec.cv) and spec.cv.scheme == "kfold" and n > 1:
+        keys = np.asarray(prep.keys)
+        if (keys[:1] == keys).all():
+            raise constant_row_key(spec.cv.row_key, keys[0], "the training data")
+    return spec.model_dump(mode="json"), counts
 
 
 def to_arrow(table: Table) -> pa.Table:

@@ -118,10 +118,32 @@ def stream_partitions(request: dict, data_dir, spec=None) -> tuple[dict[str, str
     return None
 
 
+def job_table(request: dict, data_path: str | None, data_dir, limits: dict | None = None) -> dict[str, np.ndarray]:
+    """The table of an in-memory job: a file the API process only looked at (``request["read"]``: an upload
+    staged as sent, or the ``source`` file fixed in ``request["files"]``), read whole here and checked as at
+    submission (``tables.read_for_job``); else the table the API process staged as Parquet."""
+    import types
+
+    from service import tables
+
+    if not request.get("read"):
+        return tables.read_staged(data_path)
+    if request.get("files"):
+        from service.filelist import refs_from_job
+
+        raw = refs_from_job(data_dir, request["files"])[0].open  # re-checked: the file as it was at submission
+    else:
+        def raw():
+            return open(data_path, "rb")
+    return tables.read_for_job(request["read"], raw, request["spec"],
+                               None if limits is None else types.SimpleNamespace(**limits))
+
+
 def _train(data_path: str | None, spec: dict, conn, progress, cancel, deadline: float,
            stream: dict | None = None, dask_scheduler: str | None = None, dask_workers: int = 2,
            limits: dict | None = None, parent_pid: int | None = None, data_dir: str | None = None,
-           continuation: dict | None = None) -> None:
+           continuation: dict | None = None, read: dict | None = None,
+           live: tuple[int, Any] | None = None) -> None:
     """Body of the training process: read the staged table (or stream the source), tune, send the
     artifact back through ``conn``."""
     if parent_pid is not None:
@@ -167,27 +189,38 @@ def _train(data_path: str | None, spec: dict, conn, progress, cancel, deadline: 
             from service.engine.tune import Budget
 
             budget = Budget(**(limits or {}))
-            result = continue_tune(continuation["body"], continuation["arrays"], read_staged(data_path),
+            cols = read_staged(data_path)  # the new rows only
+            result = continue_tune(continuation["body"], continuation["arrays"], cols,
                                    old_weight=continuation["old_weight"], progress=on_progress,
                                    should_stop=should_stop, budget=budget, version_label=continuation["label"],
                                    max_summary_bytes=budget.max_summary_bytes)
             result.lineage = {"parent_version": continuation["version"], **(result.lineage or {})}
         else:
-            from service.tables import read_staged
             from service.engine import tune
 
             from service.engine.tune import Budget
 
-            cols = read_staged(data_path)
+            cols = job_table({"spec": spec, **(read or {})}, data_path, data_dir, limits)
             result = tune(cols, spec, progress=on_progress, should_stop=should_stop, budget=Budget(**(limits or {})),
                           progress_span=on_span)
         body, arrays = result.to_artifact()
         fold_of_row = np.asarray(result.fold_of_row)
-        conn.send(("ok", body, arrays, {
-            "metric": result.summary.get("metric"), "cv_mean": float(result.summary.get("mean")),
-            "fold_of_row": fold_of_row if fold_of_row.ndim == 1 and fold_of_row.dtype.kind in "iu" else None,
-            "target": result.spec.target,
-        }))
+        if fold_of_row.ndim == 1 and fold_of_row.dtype.kind in "iu":  # sent to the worker: the smallest integer type
+            fold_of_row = (fold_of_row.astype(np.min_scalar_type(int(fold_of_row.max())))
+                           if fold_of_row.size and fold_of_row.min() >= 0 else fold_of_row)
+        else:
+            fold_of_row = None
+        outcome = {"metric": result.summary.get("metric"), "cv_mean": float(result.summary.get("mean")),
+                   "fold_of_row": fold_of_row, "target": result.spec.target}
+        if live is not None and stream is None:  # if_better: the live version scored here, on the rows read here
+            version, model = live
+            try:
+                outcome["live_scored"] = {"version": version, "score": score_on(
+                    model, cols, outcome["target"], outcome["metric"], fold_of_row)}
+            except TikhonError as err:
+                outcome["live_scored"] = {"version": version, "error": err}
+            del cols
+        conn.send(("ok", body, arrays, outcome))
     except Cancelled as err:
         conn.send(("cancelled", _problem(err)))
     except BaseException as err:  # everything goes back to the parent as a problem object
@@ -237,18 +270,21 @@ def decide(store, name: str, request: dict, outcome: dict, data_path: str | None
     decision["comparison"] = ("live version's predictions on the new rows, scored per fold of the new job's folds "
                               "and averaged; the new version's figure is its CV mean")
     try:
-        live_model = store.load(name, live).model
-        if request.get("files") or request.get("stream"):  # out of core: the live model on the streamed rows
+        scored = outcome.get("live_scored")
+        if scored is not None and scored.get("version") == live:  # scored by the training process
+            if "error" in scored:
+                raise scored["error"]
+            live_score = scored["score"]
+        elif (request.get("files") or request.get("stream")) and not request.get("read"):  # out of core: streamed rows
             from service.engine.streaming import score_partitions
 
-            live_score = score_partitions(live_model, stream_partitions(request, data_dir, request["spec"])[1],
+            live_score = score_partitions(store.load(name, live).model, stream_partitions(request, data_dir, request["spec"])[1],
                                           request["spec"], metric)
             decision["comparison"] = ("live version's predictions on the new rows, scored per hash fold of the new "
                                       "job's spec and averaged; the new version's figure is its CV mean")
         else:
-            from service.tables import read_staged
-
-            cols = read_staged(data_path)
+            live_model = store.load(name, live).model  # not scored in training: live changed meanwhile, or a resume
+            cols = job_table(request, data_path, data_dir)  # read as when the job trained
             live_score = score_on(live_model, cols, outcome["target"], metric, outcome.get("fold_of_row"))
     except TikhonError as err:
         return False, {**decision, "went_live": False, "live_on_new_data": None,
@@ -449,8 +485,9 @@ class Worker:
             if published is not None:
                 self._resume(job, published)
                 return
-        stream = {k: request[k] for k in ("files", "stream") if request.get(k)} or None
-        if not job.get("data_path") and not stream:
+        read = {k: request[k] for k in ("read", "files") if request.get(k)} if request.get("read") else None
+        stream = None if read else ({k: request[k] for k in ("files", "stream") if request.get(k)} or None)
+        if not job.get("data_path") and not stream and not (read and read.get("files")):
             self._finish(jid, "failed", problem=_problem(TikhonError(
                 "the job has no staged data file; submit it again through POST /v1/models/{name}/trainings.")))
             return
@@ -476,7 +513,8 @@ class Worker:
                                  stream, s.dask_scheduler, s.dask_local_workers,
                                  {"max_grid_fits": s.max_grid_fits, "max_levels": s.max_levels,
                                   "max_job_cost": s.max_job_cost, "max_summary_bytes": s.max_summary_bytes},
-                                 os.getpid(), str(s.data_dir), continuation),
+                                 os.getpid(), str(s.data_dir), continuation, read,
+                                 None if stream else self._live_model(name, request)),
             name=f"tikhon-train-{jid[:8]}", daemon=True,
         )
         proc.start()
@@ -564,6 +602,18 @@ class Worker:
         except TikhonError:
             pass
         self._publish(job, body, arrays, outcome)
+
+    def _live_model(self, name: str, request: dict[str, Any]) -> tuple[int, Any] | None:
+        """(version, model) of the live version when the job's promotion compares with it (``if_better``): the
+        training process scores it on the rows it read, so this process never reads them. None when there is
+        nothing to compare, or the model cannot be loaded (``decide`` then says why)."""
+        if request.get("promote", "if_better") != "if_better":
+            return None
+        try:
+            live = self.store.live_version(name)
+            return None if live is None else (live, self.store.load(name, live).model)
+        except TikhonError:
+            return None
 
     def _publish(self, job: dict[str, Any], body: dict, arrays: dict, outcome: dict) -> None:
         jid, name = job["id"], job["name"]

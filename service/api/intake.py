@@ -10,7 +10,6 @@ with, and ``check_budget``), so a job that is accepted here does not fail later 
 
 from __future__ import annotations
 
-import hashlib
 import math
 import os
 import re
@@ -18,7 +17,6 @@ import uuid
 from pathlib import Path
 from typing import Any
 
-import numpy as np
 import orjson
 
 from service import tables
@@ -31,20 +29,8 @@ DATA_FILE = "data.parquet"
 IDEMPOTENCY_KEY_MAX = 255
 
 
-def table_sha256(cols: tables.Table) -> str:
-    """SHA-256 of a table in a canonical form (names, dtypes and little-endian values, in column order)."""
-    h = hashlib.sha256()
-    for name, arr in cols.items():
-        if arr.dtype.kind in "UO":
-            # text: the same bytes as when text columns were fixed-width "<U{longest}" arrays
-            width = max(1, max(map(len, arr.tolist()), default=1))
-            h.update(name.encode() + b"\x00" + f"<U{width}".encode() + b"\x00")
-            h.update("\x1f".join(arr.tolist()).encode())
-        else:
-            h.update(name.encode() + b"\x00" + arr.dtype.str.encode() + b"\x00")
-            h.update(np.ascontiguousarray(arr, dtype="<f8").tobytes())
-        h.update(b"\x1e")
-    return h.hexdigest()
+table_sha256 = tables.table_sha256  # the one fingerprint of a table read at submission (service.tables)
+constant_row_key = tables.constant_row_key
 
 
 def check_spec_size(spec_raw: Any, settings: Settings) -> None:
@@ -268,16 +254,6 @@ def _check_row_key(refs, column: str, where: str) -> None:
         raise constant_row_key(column, seen[1], where)
 
 
-def constant_row_key(column: str, value: Any, where: str) -> InvalidSpec:
-    """The one refusal of a ``cv.row_key`` column holding a single value (memory and streamed paths)."""
-    if isinstance(value, np.generic):
-        value = value.item()
-    return InvalidSpec(
-        f"cv.row_key={column!r} has the same value ({value!r}) in every row of {where}; hash folds would put every "
-        "row in one fold: name a column that identifies rows, or leave row_key out to use row positions.",
-        errors=[{"field": "cv.row_key", "value": column, "message": "constant column"}])
-
-
 def _scan_csv(ref, spec, where: str, estimate: int) -> int | None:
     """Read the first ``CSV_SCAN_BYTES`` of a streamed CSV (the target and ``cv.row_key`` columns, as text):
     refuse the first target cell that is not a finite number (the job would fail on it after queueing),
@@ -339,6 +315,71 @@ def _first_block(parts: list, schema: dict[str, str], spec) -> None:
             if batch is not None:
                 check_batch(schema, spec, batch, part.offset)
             return
+
+
+# ---- a file larger than INLINE_FILE_BYTES: a bounded look here, the whole table in the worker ------------
+INLINE_FILE_BYTES = 1 << 20  # an upload or in-memory source this small is read whole at submission ...
+INLINE_TABLE_BYTES = 16 << 20  # ... when its table (rows x columns x 8, from the footer or estimated) is this small
+
+
+def read_at_submission(path: Path) -> bool:
+    """Whether a training file is read whole in the API process (as JSON bodies up to ``intake_process_bytes``
+    are): a file of at most ``INLINE_FILE_BYTES`` whose table takes at most ``INLINE_TABLE_BYTES``. A larger one
+    is only looked at here (``check_file``) and read by the worker's training process."""
+    return path.stat().st_size <= INLINE_FILE_BYTES and table_bytes(path) <= INLINE_TABLE_BYTES
+
+
+def source_file(data: dict[str, Any], settings: Settings):
+    """(path, where, FileRef) of an in-memory ``source`` file, fixed now: the worker reads exactly this file
+    and refuses it when it changed (``service.filelist``). Compressed and unreadable files are refused in the
+    in-memory reader's words."""
+    from service.filelist import compressed_refusal, compression_of, ref_of
+
+    where = f"data.source={data['source']!r}"
+    path = tables.resolve_source(Path(settings.data_dir), data["source"])
+    try:
+        with open(path, "rb") as fh:
+            head = fh.read(8)
+        fmt = compression_of(head)
+        if fmt:
+            raise compressed_refusal(where, fmt)
+        return path, where, ref_of(settings.data_dir, path, "parquet" if head[:4] == b"PAR1" else "csv")
+    except OSError as exc:
+        raise InvalidData(f"{where} cannot be read ({exc.strerror or type(exc).__name__}); check the file's "
+                          "permissions in the data folder (TIKHON_DATA_DIR).") from None
+
+
+def check_file(raw, spec_raw: dict[str, Any], settings: Settings, where: str
+               ) -> tuple[dict[str, Any], dict[str, int], dict[str, Any], dict[str, Any]]:
+    """The submission's checks of a training file the worker will read whole (``raw()`` opens it), in bounded
+    memory: ``tables.inspect_file`` (compression, header, column types, the first block's cells, the row count
+    against ``max_training_rows``), the first block through the scan's checks (empty labels, missing row
+    keys), and what the count and the spec decide (no rows, more folds than rows, the grid's size from the
+    shape, a ``cv.row_key`` that the Parquet statistics show is constant). Returns (spec, grid counts, the
+    job's ``data`` additions, the worker's reading instructions)."""
+    from service.engine import check_budget, parse_spec
+    from service.engine.folds import uses_hash
+    from service.engine.streaming import check_batch
+    from service.sources import BOOLEAN, NUMBER
+
+    spec = parse_spec(spec_raw)
+    budget = _budget(settings)
+    info = tables.inspect_file(raw, where=where, spec=spec, max_rows=settings.max_training_rows,
+                               max_label=settings.max_label_chars)
+    check_column_names(info.columns, "the training data")
+    check_batch(info.kinds, spec, info.head, 0)
+    n = info.rows
+    d_guess = len(spec.features) if spec.features is not None else sum(
+        1 for c in info.columns if info.kinds[c] in (NUMBER, BOOLEAN) and c != spec.target)
+    check_budget(spec, n, d_guess, budget)
+    if spec.cv.scheme != "loo" and spec.cv.folds > n:
+        raise tables.more_folds_than_rows(spec.cv.folds, n)
+    if (info.key_values is not None and uses_hash(spec.cv) and spec.cv.scheme == "kfold" and n > 1):
+        raise constant_row_key(spec.cv.row_key, info.key_values[0], "the training data")
+    counts = check_budget(spec, n, d_guess, budget)
+    seen = {"execution": "memory", "rows": n, "columns": info.columns}
+    reading = {"where": where, "max_rows": settings.max_training_rows, "max_label": settings.max_label_chars}
+    return spec.model_dump(mode="json"), counts, seen, reading
 
 
 def live_spec(store, name: str) -> dict[str, Any]:
@@ -412,39 +453,13 @@ def validate_new_rows(cols: tables.Table, parent: dict[str, Any], settings: Sett
 
 
 def validate(cols: tables.Table, spec_raw: dict[str, Any], settings: Settings) -> tuple[dict[str, Any], dict[str, int]]:
-    """Validate spec and data together exactly as the engine will; return the normalized spec and grid counts."""
-    from service.engine import check_budget, parse_spec
-    from service.engine.folds import uses_hash
-    from service.engine.tune import prepare
-
-    spec = parse_spec(spec_raw)
-    budget = _budget(settings)
-    # The size checks first, from the shape alone (declared or numeric features, no one-hot columns yet);
-    # then the checks that read the data, then the size checks again with the category columns counted.
-    n_rows = len(next(iter(cols.values()))) if cols else 0
-    d_guess = len(spec.features) if spec.features is not None else sum(
-        1 for c, v in cols.items() if v.dtype.kind in "biuf" and c != spec.target)
-    check_budget(spec, n_rows, d_guess, budget)
-    prep = prepare(cols, spec, budget)
-    n, d = prep.X.shape
-    if spec.cv.scheme not in ("loo",) and spec.cv.folds > n:
-        raise InvalidSpec(
-            f"cv.folds={spec.cv.folds} is more than the {n} rows of the data; use at most {n} folds or send more rows.",
-            errors=[{"field": "cv.folds", "value": spec.cv.folds, "message": "more folds than rows"}],
-        )
-    counts = check_budget(spec, n, d, budget, prep.categories.width)
-    if prep.keys is not None and uses_hash(spec.cv) and spec.cv.scheme == "kfold" and n > 1:
-        keys = np.asarray(prep.keys)
-        if (keys[:1] == keys).all():
-            raise constant_row_key(spec.cv.row_key, keys[0], "the training data")
-    return spec.model_dump(mode="json"), counts
+    """Validate spec and data together exactly as the engine will (``tables.validate``, which the worker's
+    training process runs too on a file it parses); return the normalized spec and grid counts."""
+    return tables.validate(cols, spec_raw, settings)
 
 
 def _budget(settings: Settings):
-    from service.engine.tune import Budget
-
-    return Budget(max_grid_fits=settings.max_grid_fits, max_levels=settings.max_levels,
-                  max_job_cost=settings.max_job_cost)
+    return tables.budget_of(settings)
 
 
 def check_idempotency_key(key: str | None) -> str | None:

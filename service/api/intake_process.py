@@ -48,13 +48,17 @@ def limits_of(settings: Any) -> dict[str, Any]:
     return {k: getattr(settings, k) for k in LIMITS}
 
 
-def read_json_body(body: bytes | str, limits: dict[str, Any], incoming: str) -> dict[str, Any]:
+def read_json_body(body: bytes | str, limits: dict[str, Any], incoming: str, live_spec: Any = None) -> dict[str, Any]:
     """The whole in-memory intake of one JSON training body (runs in an intake process, or inline).
     ``body``: the bytes, or the path of the file they were written to (read, then removed).
 
-    Returns ``{"request": {spec, promote, min_improvement, continue_from, old_weight}, "data": ...}`` plus, for rows or CSV data,
-    ``origin``, ``spec`` and ``counts`` (None when the request has no spec: the live spec is checked
-    by the caller) and ``staged`` (the Parquet file's path); or ``error`` with ``deferred``."""
+    Returns ``{"request": {spec, promote, min_improvement, continue_from, old_weight}, "data": ...}`` plus,
+    for rows or CSV data, ``origin``, ``spec`` and ``counts`` and ``staged`` (the Parquet file's path); or
+    ``error`` with ``deferred``. A body without a spec is read and checked with ``live_spec`` (the live
+    version's spec when the body arrived; ``checked_with`` says so, and the caller checks it is still the
+    live one); with none, its data are left unread (``unread``): the caller answers that there is no spec
+    to reuse. A continuation (``continue_from``) is read without a spec and staged unchecked (``spec`` and
+    ``counts`` None): the caller checks the new rows against the parent version it names."""
     from service import tables
     from service.api import intake
     from service.api.routes.trainings import parse_training_body
@@ -79,21 +83,34 @@ def read_json_body(body: bytes | str, limits: dict[str, Any], incoming: str) -> 
         return {"request": request, "data": data}  # a source: the route reads it (or streams it) itself
     kind = "rows" if "rows" in data else "csv"
     out: dict[str, Any] = {"request": request, "data": {"kind": kind}}
+    continuing = parsed.continue_from is not None
+    spec_raw = parsed.spec if parsed.spec is not None else live_spec
+    if spec_raw is None and not continuing:
+        out["unread"] = True
+        return out
+    if parsed.spec is None and not continuing:
+        out["checked_with"] = spec_raw
     try:
-        # without a spec (a retrain reusing the live spec, or a continuation) the route checks the staged
-        # columns against the spec it finds; the table is read without one here
-        cols, origin = intake.load_data(data, settings,
-                                        spec=intake.parse(parsed.spec) if parsed.spec is not None else None)
+        cols, origin = intake.load_data(data, settings, spec=None if continuing else intake.parse(spec_raw))
         data.clear()  # the row objects are columns now
         spec = counts = None
-        if parsed.spec is not None:
-            spec, counts = intake.validate(cols, parsed.spec, settings)
+        if not continuing:
+            spec, counts = intake.validate(cols, spec_raw, settings)
         path = tables.stage(cols, Path(incoming) / f"{os.urandom(16).hex()}-{intake.DATA_FILE}")
     except TikhonError as exc:
         out.update(error=exc, deferred=True)
         return out
     out.update(origin=origin, spec=spec, counts=counts, staged=str(path))
     return out
+
+
+def validate_staged_file(path: str, spec_raw: Any, limits: dict[str, Any]) -> tuple[dict[str, Any], dict[str, int]]:
+    """A staged table checked against a spec the body did not carry (a retrain reusing the live version's
+    spec, known only after the body was read): ``validate`` on the table read back, in an intake process,
+    so the API process never holds the table."""
+    from service import tables
+
+    return tables.validate(tables.read_staged(Path(path)), spec_raw, types.SimpleNamespace(**limits))
 
 
 def _start(parent_pid: int) -> None:
@@ -121,14 +138,16 @@ class IntakePool:
                                                  initargs=(os.getpid(),))
             return self._pool
 
-    async def read_json(self, body: bytes | Path, settings: Any, incoming: Path) -> dict[str, Any]:
+    async def read_json(self, body: bytes | Path, settings: Any, incoming: Path, live_spec: Any = None
+                        ) -> dict[str, Any]:
         """``read_json_body`` in an intake process, for the body's bytes or the file holding them (which
         is removed). A process that died (killed, out of memory) is replaced for the next body; this one
         is answered with a 429 problem to submit it again."""
         spooled = body if isinstance(body, Path) else None
         pool = self._executor()
         try:
-            future = pool.submit(read_json_body, str(body) if spooled else body, limits_of(settings), str(incoming))
+            future = pool.submit(read_json_body, str(body) if spooled else body, limits_of(settings), str(incoming),
+                                 live_spec)
         except BrokenProcessPool:
             self._drop(pool)
             _discard_file(spooled)
@@ -144,6 +163,16 @@ class IntakePool:
             raise
         finally:
             _discard_file(spooled)  # read and removed by the intake process, unless it never got to it
+
+    def validate_staged(self, path: Path, spec_raw: Any, settings: Any) -> tuple[dict[str, Any], dict[str, int]]:
+        """``validate_staged_file`` in an intake process, waited for (called from a worker thread); its
+        ``TikhonError`` is raised here as it was raised there."""
+        pool = self._executor()
+        try:
+            return pool.submit(validate_staged_file, str(path), spec_raw, limits_of(settings)).result()
+        except BrokenProcessPool:
+            self._drop(pool)
+            raise self._broken() from None
 
     @staticmethod
     def _broken() -> Busy:

@@ -200,3 +200,32 @@ def test_an_intake_process_that_dies_is_a_429_and_is_replaced(tmp_path, kit):
     finally:
         pool.close()
     assert list(incoming.iterdir()) == []
+
+
+def test_a_retrain_without_a_spec_is_checked_against_the_live_spec_in_the_intake_process(pair, kit, monkeypatch):
+    """A body without a spec reuses the live version's spec, known only after the body was read: the staged
+    table is checked against it in the intake process (the API process never reads the table back), with the
+    same answers as when the body is read in the API process."""
+    from service import tables
+    from service.engine import tune
+
+    body, arrays = tune(kit.pump_table(200, seed=9), SPEC).to_artifact()
+    (far, far_store, _), (near, near_store, _) = pair
+    for store in (far_store, near_store):
+        store.set_live("reuse", store.publish("reuse", body, arrays)["version"], actor="test", reason="fixture")
+    read_back: list[str] = []
+    real = tables.read_staged
+    monkeypatch.setattr(tables, "read_staged", lambda path: (read_back.append(str(path)), real(path))[1])
+    good = kit.as_rows(kit.pump_table(4_000, seed=10))
+    a = httpx.post(f"{far}/v1/models/reuse/trainings", json={"data": {"rows": good}}, timeout=120)
+    b = httpx.post(f"{near}/v1/models/reuse/trainings", json={"data": {"rows": good}}, timeout=120)
+    assert a.status_code == b.status_code == 202, (a.text, b.text)
+    assert read_back == []  # far: checked in the intake process; near: read in the API process, never staged back
+    assert far_store.jobs.get(a.json()["id"])["request"]["spec"] == near_store.jobs.get(b.json()["id"])["request"]["spec"]
+    assert a.json()["grid"] == b.json()["grid"] and a.json()["data"] == b.json()["data"]
+    lacking = [{"flow_lps": r["flow_lps"], "energy_kwh": r["energy_kwh"]} for r in good]  # no head_m (a feature)
+    a = httpx.post(f"{far}/v1/models/reuse/trainings", json={"data": {"rows": lacking}}, timeout=120)
+    b = httpx.post(f"{near}/v1/models/reuse/trainings", json={"data": {"rows": lacking}}, timeout=120)
+    assert a.status_code == b.status_code == 422, (a.text, b.text)
+    assert "head_m" in a.json()["detail"] and _without_ids(a.json()) == _without_ids(b.json())
+    assert list(far_store.jobs.incoming_dir.iterdir()) == []  # the refused table's staged file was removed

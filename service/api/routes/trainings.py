@@ -17,7 +17,7 @@ from service.problems import MalformedBody, UnsupportedMediaType
 from service.api.render import media_type, parse_json
 from service.api.schemas import TrainingRequest, TrainingUpload, parse_training_request, schema_ref
 from service.api.views import job_view
-from service.errors import InvalidData, StorageFailure
+from service.errors import Busy, InvalidData, StorageFailure, TikhonError
 from service.store.jobs import SUBMITTER
 from service.api.dependencies import ModelName, StoreDep
 from service.store.names import validate_name
@@ -122,7 +122,16 @@ def _form_number(form, field: str, kind: type, rule: str) -> Any:
                           errors=[{"field": field, "value": str(form[field]), "message": f"expected {rule}"}]) from None
 
 
-async def _read_submission(request: Request, incoming: FsPath
+def _live_spec_or_none(store, name: str) -> dict[str, Any] | None:
+    """The live version's spec, for an intake process to read a body that may carry none (the route asks again,
+    in its order, when the body indeed has no spec)."""
+    try:
+        return intake.live_spec(store, name)
+    except TikhonError:
+        return None
+
+
+async def _read_submission(request: Request, incoming: FsPath, name: str
                            ) -> tuple[Any, dict[str, Any], tuple[FsPath, str | None] | None, dict[str, Any] | None]:
     """(parsed request, its data member, the uploaded file saved under ``incoming`` or None, what an
     intake process read or None). Large JSON bodies are parsed and validated off the event loop, the
@@ -182,13 +191,15 @@ async def _read_submission(request: Request, incoming: FsPath
             # parsed, turned into columns, validated and staged in an intake process (the row objects
             # would hold this process's interpreter lock for seconds): the body goes to a file as it
             # arrives, and only a summary comes back
-            read = await request.app.state.intake.read_json(await _spool(request, incoming), settings, incoming)
+            live = await to_thread.run_sync(_live_spec_or_none, request.app.state.store, name)
+            read = await request.app.state.intake.read_json(await _spool(request, incoming), settings, incoming, live)
             if read.get("error") is not None and not read["deferred"]:
                 raise read["error"]
             return _Fields(**read["request"]), read["data"], None, read
         raw = await request.body()
         if len(raw) > settings.intake_process_bytes:  # a body sent without a length (chunked)
-            read = await request.app.state.intake.read_json(raw, settings, incoming)
+            live = await to_thread.run_sync(_live_spec_or_none, request.app.state.store, name)
+            read = await request.app.state.intake.read_json(raw, settings, incoming, live)
             del raw
             if read.get("error") is not None and not read["deferred"]:
                 raise read["error"]
@@ -209,7 +220,7 @@ async def submit(request: Request, name: ModelName) -> Response:
     key = intake.check_idempotency_key(request.headers.get("idempotency-key"))
     app = request.app
     store, settings = app.state.store, app.state.settings
-    parsed, data, upload, read = await _read_submission(request, FsPath(store.jobs.incoming_dir))
+    parsed, data, upload, read = await _read_submission(request, FsPath(store.jobs.incoming_dir), name)
 
     submitter = _submitter(request)
     limits = {"queue_limit": settings.max_queued_jobs, "submitter_limit": settings.max_queued_jobs_per_key}
@@ -237,21 +248,38 @@ async def submit(request: Request, name: ModelName) -> Response:
                 SUBMITTER: submitter,
             }
             return store.jobs.submit(name, job_request, idempotency_key=key, **limits)
+        if read is not None and read.get("unread"):  # no live spec when the body arrived; one now (a race)
+            raise Busy("the model's live version changed while this training body was read; nothing was stored "
+                       "and no job was created. Submit it again.", retry_after=1)
         if read is not None and ("staged" in read or read.get("error") is not None):
             # read and staged by an intake process; its data errors are raised here, in their order
             if read.get("error") is not None:
                 raise read["error"]
             path, origin, spec, counts = FsPath(read["staged"]), read["origin"], read["spec"], read["counts"]
-            if spec is None:  # a retrain reusing the live spec (or a continuation): check the staged columns here
+            if parent is not None:  # a continuation: its new rows are checked against the parent version here
                 try:
-                    if parent is not None:
-                        spec, counts = intake.validate_new_rows(tables.read_staged(path), parent, settings)
-                    else:
-                        spec, counts = intake.validate(tables.read_staged(path), spec_raw, settings)
+                    spec, counts = intake.validate_new_rows(tables.read_staged(path), parent, settings)
+                except BaseException:
+                    intake.discard(path)
+                    raise
+            elif read.get("checked_with", spec_raw) != spec_raw:  # the live spec changed since: check again there
+                try:
+                    spec, counts = app.state.intake.validate_staged(path, spec_raw, settings)
                 except BaseException:
                     intake.discard(path)
                     raise
         else:
+            # a continuation's new rows are read here, within the limits (the worker's whole-file read is for full trainings)
+            big = _worker_reads(data, upload, settings) if parent is None else None
+            if big is not None:  # larger than a few blocks: looked at here, read whole by the worker
+                raw, where, origin, files, path = big
+                spec, counts, seen, reading = intake.check_file(raw, spec_raw, settings, where)
+                job_request = {
+                    "spec": spec, "promote": parsed.promote, "min_improvement": parsed.min_improvement,
+                    "data": origin | seen, "grid": counts, "spec_reused": parsed.spec is None, "read": reading,
+                    **({"files": files} if files else {}), SUBMITTER: submitter,
+                }
+                return store.jobs.submit(name, job_request, data_path=path, idempotency_key=key, **limits)
             cols, origin = intake.load_data(data, settings, upload=upload, spec=intake.parse(spec_raw))
             if isinstance(data, dict):
                 data.pop("rows", None)  # the row objects are columns now: free them before validating and staging
@@ -289,6 +317,24 @@ async def submit(request: Request, name: ModelName) -> Response:
     if not created:
         headers[REPLAYED] = "true"
     return A.reply(A.Job, view, status=202, headers=headers)
+
+
+def _worker_reads(data: Any, upload: tuple[FsPath, str | None] | None, settings: Any):
+    """(opener, where, the job's ``data``, the fixed file list or None, the upload to stage or None) when the
+    training file is too large to be read whole in the API process (``intake.read_at_submission``): an upload
+    (staged as sent, in the job's folder) or an in-memory ``source`` file (fixed as a ``FileRef``). None for
+    JSON rows, CSV text and small files, which are read here."""
+    if upload is not None:
+        path, filename = upload
+        if intake.read_at_submission(path):
+            return None
+        return (lambda: open(path, "rb")), "the uploaded file", {"kind": "upload", "filename": filename}, None, str(path)
+    if not isinstance(data, dict) or "source" not in data:
+        return None
+    path, where, ref = intake.source_file(data, settings)
+    if intake.read_at_submission(path):
+        return None
+    return ref.open, where, {"kind": "source", "source": data["source"]}, [ref.to_json()], None
 
 
 def _submitter(request: Request) -> str:
