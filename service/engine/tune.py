@@ -25,7 +25,7 @@ from .parallel import ordered_map, single_blas, usable_cores
 from .model import FittedModel, thin_residuals
 from .result import (TuneResult, build_model, check_numeric_text, check_spread, column_kind, fingerprint_columns,
                      fingerprint_of, label_columns, unclaimed_text, finish, metric_value, refit_all_rows, score_splits, select, setting_df, table_rows)
-from .solvers import Fit, convergence_warnings, fit, watch_convergence
+from .solvers import Fit, convergence_warnings, fit, leverage_triangle, row_leverages, watch_convergence
 from .spec import TuneSpec, parse_spec
 from .summaries import Summary
 from .advice import data_warnings
@@ -432,8 +432,7 @@ def _model(prep: Prepared, spec: TuneSpec, scaler: InputScaler, setting: BasisSe
     """The model refit on all rows (``result.build_model``), with its training leverages from ``Phi``."""
     full, l_idx, F = refit_all_rows(full_summary, spec, strengths, strength, ratio)
     kept = slice(None) if prep.w is None else prep.w > 0  # zero-weight rows are not training data
-    FZ = ((Phi[kept] - full.mean) / full.scale) @ F.T
-    lev = 1.0 / full.n + np.einsum("ij,ij->i", FZ, FZ)
+    lev = row_leverages(np.asfortranarray(Phi[kept]), full.mean, leverage_triangle(F, full.scale), full.n)  # a copy
     finite = np.isfinite(oof_abs)
     if prep.w is not None:
         finite &= prep.w > 0  # intervals from the out-of-fold residuals of rows that weigh something
