@@ -45,7 +45,7 @@ from .summaries import Summary, absorb
 from .advice import data_warnings
 from .table import categorical_column, key_column, numeric_column
 from .result import (PLOT_SAMPLE, TuneResult, add_lanes, build_model, check_spread, fingerprint_columns,
-                     fingerprint_of, label_columns, finish, metric_value, refit_all_rows, score_splits, select, setting_df,
+                     fingerprint_of, label_columns, finish, metric_value, NestedSplits, refit_all_rows, score_splits, select, setting_df,
                      table_rows)
 from .tune import Budget, basis_settings, check_budget, check_levels, resolve_columns
 
@@ -621,9 +621,16 @@ def _score(run: _Run, m: _Model, settings: list[BasisSetting], groups: _Groups, 
     spec = run.ctx.spec
     strengths, ratios = spec.penalty.strength_grid(), spec.penalty.ratio_grid()
     values, weights = {}, {}
+    merged = [NestedSplits(fold_summaries[g]) for g in range(len(groups.items))]
+    combined = {}
     for i in range(len(settings)):
         atoms, k = groups.atoms(fold_summaries, i)
-        values[i], fits = score_splits(atoms, _splits(m.folds), spec, strengths, ratios)
+        g = groups.of[i]
+        if groups.items[g][1]:  # nested: leading blocks of the widest setting's merged atoms
+            combined[i] = partial(lambda ids, g, w: merged[g].of(ids, w), g=g, w=atoms[0].R.shape[0] - 1)
+        else:
+            combined[i] = partial(lambda ids, a: Summary.combine([a[j] for j in ids]), a=atoms)
+        values[i], fits = score_splits(atoms, _splits(m.folds), spec, strengths, ratios, combined=combined[i])
         weights[i] = (np.array([[f.weights for f in per] for per in fits]),
                       np.array([[f.intercept for f in per] for per in fits]), k)
     if spec.selection.metric == "mae":
@@ -633,7 +640,7 @@ def _score(run: _Run, m: _Model, settings: list[BasisSetting], groups: _Groups, 
                   for i in values}
     rows: list[dict[str, Any]] = []
     for i, s in enumerate(settings):
-        df = setting_df(Summary.combine(groups.atoms(fold_summaries, i)[0]), spec, strengths, ratios)
+        df = setting_df(combined[i](list(range(m.folds))), spec, strengths, ratios)
         rows.extend(table_rows(i, s, strengths, ratios, values[i], df))
     return rows
 
