@@ -86,12 +86,38 @@ def _gram(A: np.ndarray) -> np.ndarray:
     return A.T @ A  # numpy calls the symmetric rank-k update (syrk) for this form
 
 
+SOLVE_LEAF = 32  # columns up to which ``_solve_right`` calls dtrsm directly
+
+
 def _solve_right(A: np.ndarray, S: np.ndarray) -> np.ndarray:
     """``A S⁻¹`` for upper-triangular S (a triangular solve, BLAS-3), in A's memory order."""
     if A.flags.f_contiguous:
-        return _blas.dtrsm(1.0, S, A, side=1, lower=0, trans_a=0)
+        return _solve_blocked(np.array(A, dtype=np.float64, order="F"), np.asfortranarray(S))
     # A (C order) is Aᵀ in Fortran order: solve Sᵀ Xᵀ = Aᵀ from the left
     return _blas.dtrsm(1.0, S, np.ascontiguousarray(A).T, side=0, lower=0, trans_a=1).T
+
+
+def _solve_blocked(X: np.ndarray, S: np.ndarray) -> np.ndarray:
+    """``X S⁻¹`` in place for column-major X: the columns split in two, ``X₁ ← X₁ S₁₁⁻¹``, then
+    ``X₂ ← (X₂ − X₁ S₁₂) S₂₂⁻¹``, recursively, so most of the work is a matrix product (dgemm), which
+    OpenBLAS runs at about 1.5 times the speed of its dtrsm on these tall blocks; the same substitution,
+    ordered in blocks (common practice: how blocked BLAS-3 triangular solves are built)."""
+    m = S.shape[0]
+    if X.shape[0] == 0:
+        return X
+    if m <= SOLVE_LEAF:
+        out = _blas.dtrsm(1.0, S, X, side=1, lower=0, trans_a=0, overwrite_b=1)
+        if out is not X and not np.shares_memory(out, X):
+            X[...] = out
+        return X
+    h = m // 2
+    X1, X2 = X[:, :h], X[:, h:]
+    _solve_blocked(X1, np.asfortranarray(S[:h, :h]))
+    out = _blas.dgemm(-1.0, X1, np.asfortranarray(S[:h, h:]), beta=1.0, c=X2, overwrite_c=1)
+    if not np.shares_memory(out, X2):
+        X2[...] = out
+    _solve_blocked(X2, np.asfortranarray(S[h:, h:]))
+    return X
 
 
 def cholesky_qr_r(A: np.ndarray) -> np.ndarray | None:
