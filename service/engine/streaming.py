@@ -352,7 +352,7 @@ def _final_batch(m: _Model, setting: BasisSetting, fw: np.ndarray, fi: np.ndarra
     predictions, observations). ``T``: ``solvers.leverage_triangle`` of the refit's leverage factor."""
     pos, Xs, y, block, fold, batch = item
     D = _group_design(setting, False, Xs, block)
-    pred = fi[fold] + (D @ fw.T)[np.arange(y.size), fold]
+    pred = fi[fold] + (fw @ D.T)[fold, np.arange(y.size)]  # (K, rows): a few times faster than D @ fwᵀ
     r = np.abs(y - pred)
     lev = row_leverages(D, mean, T, n)  # D is not needed any more: overwritten
     h = key_hash(_keys(m.ctx, batch, pos, y.size), m.ctx.spec.cv.seed ^ PLOT_SALT)
