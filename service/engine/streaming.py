@@ -41,7 +41,7 @@ from .folds import hash_folds, key_hash
 from .model import MAX_INTERVAL_RESIDUALS, FittedModel, thin_residuals
 from .solvers import convergence_warnings, fit, leverage_triangle, row_leverages, watch_convergence
 from .spec import TuneSpec, parse_spec
-from .summaries import Summary, absorb
+from .summaries import CHUNK_ROWS, Summary, absorb
 from .advice import data_warnings
 from .table import categorical_column, key_column, numeric_column
 from .result import (PLOT_SAMPLE, TuneResult, add_lanes, build_model, check_spread, fingerprint_columns,
@@ -241,10 +241,16 @@ def _fold_design(setting: BasisSetting, nested: bool, Xs: np.ndarray, block: np.
 
 def _absorb_after(prev, setting: BasisSetting, nested: bool, Xs: np.ndarray, block: np.ndarray, y: np.ndarray):
     """One fold's rows of some batches: their design built, then absorbed into the fold's running R factor
-    once the fold's previous rows are (``prev``: that R, or the future that gives it)."""
-    A = _fold_design(setting, nested, Xs, block, y)
-    R = prev.result() if isinstance(prev, Future) else prev
-    return absorb(R, A)
+    once the fold's previous rows are (``prev``: that R, or the future that gives it), ``CHUNK_ROWS`` rows
+    at a time, so a large batch never makes a large design here."""
+    R = None
+    for lo in range(0, Xs.shape[0], CHUNK_ROWS):
+        hi = lo + CHUNK_ROWS
+        A = _fold_design(setting, nested, Xs[lo:hi], block[lo:hi], y[lo:hi])
+        if lo == 0:
+            R = prev.result() if isinstance(prev, Future) else prev
+        R = absorb(R, A)
+    return R
 
 
 def _summarize(m: _Model, groups: list[tuple[BasisSetting, bool]], task: tuple[Partition, int]
