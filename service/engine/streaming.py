@@ -488,7 +488,10 @@ def tune_partitions(partitions: Sequence[Partition], schema: dict[str, str], spe
     executor = executor or SerialExecutor()
     if threads is None:
         threads = usable_cores() if isinstance(executor, SerialExecutor) else 1
-    with watch_convergence() as unconverged, (single_blas() if threads > 1 else nullcontext()):
+    # BLAS on one thread whenever there is more than one core, as in memory (``tune``): the blocks of a
+    # pass are tall and narrow, on which waiting BLAS threads cost more than they give, even with the
+    # row batches on one thread (measured: a million rows took five times longer that way)
+    with watch_convergence() as unconverged, (single_blas() if usable_cores() > 1 else nullcontext()):
         result = _tune_partitions(partitions, schema, spec, executor, progress, should_stop, budget, threads)
     result.warnings.extend(convergence_warnings(unconverged))
     return result
