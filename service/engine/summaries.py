@@ -210,8 +210,9 @@ class Summary:
     def of(Phi: np.ndarray, y: np.ndarray, chunk_rows: int = CHUNK_ROWS, on_block=None, threads: int = 1,
            weights: np.ndarray | None = None) -> "Summary":
         """``on_block(rows)``, if given, is called after each chunk of rows (progress of a long pass), in
-        the calling thread. ``threads`` > 1 factors that many chunks at once (``parallel.ordered_map``;
-        the result is the same).
+        the calling thread. The chunks are absorbed (``absorb``) into the running R of ``SEGMENTS`` fixed
+        runs of chunks, merged at the end; ``threads`` > 1 works on the runs at once (the result is the
+        same).
 
         ``weights`` (n,), non-negative: the summary of the rows scaled by √w, ``[√w, √w Φ, √w y]``, whose
         ``RᵀR`` holds the weighted cross-products; ``n`` is then Σw, so every mean, scale, penalty and
