@@ -150,21 +150,26 @@ def setting_df(full: Summary, spec: TuneSpec, strengths: np.ndarray, ratios: lis
 
 
 def score_splits(atoms: list[Summary], splits: list[tuple[list[int], list[int]]], spec: TuneSpec,
-                 strengths: np.ndarray, ratios: list[float | None], mae_rows=None, tick=None
+                 strengths: np.ndarray, ratios: list[float | None], mae_rows=None, tick=None, combined=None
                  ) -> tuple[np.ndarray, list[list[Fit]]]:
     """Metric per (l1 ratio, strength, split) from atom summaries, and the fits of every split.
 
     RMSE and R² come from the validation atoms' summaries alone; MAE needs the rows, through
     ``mae_rows(test_ids, fit) -> (L,)`` (or NaN placeholders, filled later by a streaming pass).
-    ``tick(fraction)``, when given, is called after each split."""
+    ``tick(fraction)``, when given, is called after each split. ``combined(atom_ids)``, when given,
+    returns the summary of those atoms together (nested settings take it as a leading block of the
+    widest setting's, merged once: ``NestedSplits``); by default the atoms are merged here."""
     metric = spec.selection.metric
     values = np.empty((len(ratios), strengths.size, len(splits)))
     all_fits = []
+    if combined is None:
+        def combined(ids: list[int]) -> Summary:
+            return Summary.combine([atoms[i] for i in ids])
     for j, (train_ids, test_ids) in enumerate(splits):
-        train = Summary.combine([atoms[i] for i in train_ids])
+        train = combined(train_ids)
         fits = [fit(train, spec.penalty.kind, strengths, r) for r in ratios]
         all_fits.append(fits)
-        test = Summary.combine([atoms[i] for i in test_ids])
+        test = combined(test_ids)
         for r_i, f in enumerate(fits):
             if metric == "mae":
                 values[r_i, :, j] = mae_rows(test_ids, f) if mae_rows else np.nan
@@ -174,6 +179,23 @@ def score_splits(atoms: list[Summary], splits: list[tuple[list[int], list[int]]]
         if tick is not None:  # a long job's progress inside one basis setting: the share of splits done
             tick((j + 1) / len(splits))
     return values, all_fits
+
+
+class NestedSplits:
+    """Merged summaries of atom sets of the widest nested setting, each merged once: every lower degree
+    (and the linear basis) takes its leading block (``Summary.leading``, exact), so a grid of nested
+    settings merges each split's atoms once instead of once per setting."""
+
+    def __init__(self, atoms: list[Summary]):
+        self.atoms = atoms
+        self._merged: dict[tuple[int, ...], Summary] = {}
+
+    def of(self, ids: list[int], k: int) -> Summary:
+        """Summary of the atoms ``ids`` together, over the leading k columns of the widest design."""
+        key = tuple(ids)
+        if key not in self._merged:
+            self._merged[key] = Summary.combine([self.atoms[i] for i in ids])
+        return self._merged[key].leading(k)
 
 
 # ---- the CV table ------------------------------------------------------------------------------------

@@ -21,6 +21,8 @@ row in the same fold; the CV table then matches the in-memory one to rounding.
 from __future__ import annotations
 
 import math
+from collections import deque
+from concurrent.futures import Future, ThreadPoolExecutor
 from contextlib import nullcontext
 from dataclasses import dataclass, field
 from functools import partial
@@ -37,19 +39,19 @@ from .executors import SerialExecutor
 from .parallel import ordered_map, single_blas, usable_cores
 from .folds import hash_folds, key_hash
 from .model import MAX_INTERVAL_RESIDUALS, FittedModel, thin_residuals
-from .solvers import convergence_warnings, fit, watch_convergence
+from .solvers import convergence_warnings, fit, leverage_triangle, row_leverages, watch_convergence
 from .spec import TuneSpec, parse_spec
-from .summaries import Summary
+from .summaries import CHUNK_ROWS, Summary, absorb
 from .advice import data_warnings
 from .table import categorical_column, key_column, numeric_column
 from .result import (PLOT_SAMPLE, TuneResult, add_lanes, build_model, check_spread, fingerprint_columns,
-                     fingerprint_of, label_columns, finish, metric_value, refit_all_rows, score_splits, select, setting_df,
+                     fingerprint_of, label_columns, finish, metric_value, NestedSplits, refit_all_rows, score_splits, select, setting_df,
                      table_rows)
 from .tune import Budget, basis_settings, check_budget, check_levels, resolve_columns
 
 SAMPLE_SALT = 0x5A17
 PLOT_SALT = 0x9107
-MERGE_EVERY = 16
+FOLD_BLOCK_ROWS = 4_096  # rows of one fold gathered (across small batches) before its R factor absorbs them
 
 
 class Partition(Protocol):
@@ -220,38 +222,91 @@ def _group_design(setting: BasisSetting, nested: bool, Xs: np.ndarray, block: np
     return D
 
 
-def _fold_blocks(m: _Model, setting: BasisSetting, nested: bool, item) -> tuple[list[Summary | None], int]:
-    """One batch: the design expanded once, then one summary per fold of the batch's rows."""
-    _, Xs, y, block, fold, _ = item
-    # rows grouped by fold (stable: each fold keeps its row order), so each fold is a row range of D
-    order = np.argsort(fold, kind="stable")
-    bounds = np.searchsorted(fold[order], np.arange(m.folds + 1))
-    D = _group_design(setting, nested, Xs[order], block[order])
-    y = y[order]
-    out: list[Summary | None] = []
-    for f in range(m.folds):
-        a, b = bounds[f], bounds[f + 1]
-        out.append(Summary.of(D[a:b], y[a:b]) if b > a else None)
-    return out, D.shape[1]
+def _fold_design(setting: BasisSetting, nested: bool, Xs: np.ndarray, block: np.ndarray, y: np.ndarray
+                 ) -> np.ndarray:
+    """``[1, design, y]`` of some rows, column-major, built in place (the basis expanded once, see
+    ``_group_design``): the block a fold's running R factor absorbs."""
+    q, p = block.shape[1], setting.n_terms(Xs.shape[1])
+    A = np.empty((Xs.shape[0], q + p + 2), order="F")
+    A[:, 0] = 1.0
+    if nested:
+        setting.expand_into(Xs, A[:, 1 + q:1 + q + p])
+        A[:, 1:1 + q] = block
+    else:
+        setting.expand_into(Xs, A[:, 1:1 + p])
+        A[:, 1 + p:1 + p + q] = block
+    A[:, -1] = y
+    return A
+
+
+def _absorb_after(prev, setting: BasisSetting, nested: bool, Xs: np.ndarray, block: np.ndarray, y: np.ndarray):
+    """One fold's rows of some batches: their design built, then absorbed into the fold's running R factor
+    once the fold's previous rows are (``prev``: that R, or the future that gives it), ``CHUNK_ROWS`` rows
+    at a time, so a large batch never makes a large design here."""
+    R = None
+    for lo in range(0, Xs.shape[0], CHUNK_ROWS):
+        hi = lo + CHUNK_ROWS
+        A = _fold_design(setting, nested, Xs[lo:hi], block[lo:hi], y[lo:hi])
+        if lo == 0:
+            R = prev.result() if isinstance(prev, Future) else prev
+        R = absorb(R, A)
+    return R
 
 
 def _summarize(m: _Model, groups: list[tuple[BasisSetting, bool]], task: tuple[Partition, int]
                ) -> dict[int, list[Summary]]:
+    """The fold summaries of one partition for one basis group. Each fold's rows are added to the fold's
+    running R factor in row order (``summaries.absorb``: a triangular solve and one Gram matrix per block),
+    in blocks of at least ``FOLD_BLOCK_ROWS`` rows (a batch's rows of one fold, or several batches' when
+    batches are small). The folds' blocks run on ``ctx.threads`` threads, each fold's in order, so the
+    result does not depend on the thread count."""
     part, g = task
     setting, nested = groups[g]
-    acc: list[list[Summary]] = [[] for _ in range(m.folds)]
-    width = None
-    for out, width in ordered_map(partial(_fold_blocks, m, setting, nested), _batches(m, part), m.ctx.threads):
-        for f, s in enumerate(out):
-            if s is not None:
-                acc[f].append(s)
-                if len(acc[f]) >= MERGE_EVERY:
-                    acc[f] = [Summary.combine(acc[f])]
-    if width is None:
-        width = _group_design(setting, nested, np.zeros((1, len(m.ctx.features))),
-                              np.zeros((1, m.categories.width))).shape[1]
-    empty = Summary(np.zeros((width + 2, width + 2)), 0)
-    return {g: [Summary.combine(a) if a else empty for a in acc]}
+    K = m.folds
+    width = _group_design(setting, nested, np.zeros((1, len(m.ctx.features))),
+                          np.zeros((1, m.categories.width))).shape[1]
+    state: list = [None] * K  # per fold: its running R, or the future that gives it
+    rows = [0] * K
+    held: list[list[tuple[np.ndarray, np.ndarray, np.ndarray]]] = [[] for _ in range(K)]
+    held_rows = [0] * K
+    threads = m.ctx.threads
+    pool = ThreadPoolExecutor(max_workers=threads, thread_name_prefix="tikhon-folds") if threads > 1 else None
+    inflight: deque = deque()
+
+    def flush(f: int) -> None:
+        parts = held[f]
+        Xs, block, y = (parts[0] if len(parts) == 1 else
+                        tuple(np.concatenate([x[i] for x in parts]) for i in range(3)))
+        held[f], held_rows[f] = [], 0
+        if pool is None:
+            state[f] = _absorb_after(state[f], setting, nested, Xs, block, y)
+            return
+        state[f] = pool.submit(_absorb_after, state[f], setting, nested, Xs, block, y)
+        inflight.append(state[f])
+        while len(inflight) > 2 * threads + K:  # bounds the rows held by queued blocks
+            inflight.popleft().result()
+
+    try:
+        for _, Xs, y, block, fold, _ in _batches(m, part):
+            order = np.argsort(fold, kind="stable")  # each fold keeps its row order
+            bounds = np.searchsorted(fold[order], np.arange(K + 1))
+            for f in range(K):
+                idx = order[bounds[f]:bounds[f + 1]]
+                if idx.size:
+                    held[f].append((Xs[idx], block[idx], y[idx]))
+                    held_rows[f] += idx.size
+                    rows[f] += idx.size
+                    if held_rows[f] >= FOLD_BLOCK_ROWS:
+                        flush(f)
+        for f in range(K):
+            if held[f]:
+                flush(f)
+        factors = [s.result() if isinstance(s, Future) else s for s in state]
+    finally:
+        if pool is not None:
+            pool.shutdown(wait=True, cancel_futures=True)
+    empty = np.zeros((width + 2, width + 2))
+    return {g: [Summary(R, n) if R is not None else Summary(empty, 0) for R, n in zip(factors, rows)]}
 
 
 def _merge_summaries(a: dict[int, list[Summary]], b: dict[int, list[Summary]]) -> dict[int, list[Summary]]:
@@ -298,23 +353,20 @@ class _Final:
 
 
 def _final_batch(m: _Model, setting: BasisSetting, fw: np.ndarray, fi: np.ndarray, mean: np.ndarray,
-                 scale: np.ndarray, F: np.ndarray, n: int, item):
+                 T: np.ndarray, n: int, item):
     """One batch of pass 3: (absolute out-of-fold residuals per fold, largest leverage, plot-sample hashes,
-    predictions, observations)."""
+    predictions, observations). ``T``: ``solvers.leverage_triangle`` of the refit's leverage factor."""
     pos, Xs, y, block, fold, batch = item
     D = _group_design(setting, False, Xs, block)
-    pred = fi[fold] + (D @ fw.T)[np.arange(y.size), fold]
+    pred = fi[fold] + (fw @ D.T)[fold, np.arange(y.size)]  # (K, rows): a few times faster than D @ fwᵀ
     r = np.abs(y - pred)
-    D -= mean  # (D − mean) / scale in place: the design is not needed any more
-    D /= scale
-    FZ = D @ F.T
-    lev = 1.0 / n + np.einsum("ij,ij->i", FZ, FZ)
+    lev = row_leverages(D, mean, T, n)  # D is not needed any more: overwritten
     h = key_hash(_keys(m.ctx, batch, pos, y.size), m.ctx.spec.cv.seed ^ PLOT_SALT)
     return [r[fold == f] for f in range(m.folds)], float(lev.max()), h, pred, y
 
 
 def _final_pass(m: _Model, setting: BasisSetting, fw: np.ndarray, fi: np.ndarray, mean: np.ndarray,
-                scale: np.ndarray, F: np.ndarray, n: int, stride: int, part: Partition) -> _Final:
+                T: np.ndarray, n: int, stride: int, part: Partition) -> _Final:
     """Out-of-fold residuals of one partition, sorted per fold and, when the whole source has more than
     ``MAX_INTERVAL_RESIDUALS`` rows, thinned here to every ``stride``-th order statistic (each kept value
     then stands for ``stride`` residuals, as ``thin_residuals`` does), so only about that many values
@@ -322,7 +374,7 @@ def _final_pass(m: _Model, setting: BasisSetting, fw: np.ndarray, fi: np.ndarray
     res = [[] for _ in range(m.folds)]
     max_lev = 0.0
     sh, sp, so = np.zeros(0, np.uint64), np.zeros(0), np.zeros(0)
-    work = partial(_final_batch, m, setting, fw, fi, mean, scale, F, n)
+    work = partial(_final_batch, m, setting, fw, fi, mean, T, n)
     for per_fold, lev, h, pred, y in ordered_map(work, _batches(m, part), m.ctx.threads):
         for f in range(m.folds):
             res[f].append(per_fold[f])
@@ -436,7 +488,10 @@ def tune_partitions(partitions: Sequence[Partition], schema: dict[str, str], spe
     executor = executor or SerialExecutor()
     if threads is None:
         threads = usable_cores() if isinstance(executor, SerialExecutor) else 1
-    with watch_convergence() as unconverged, (single_blas() if threads > 1 else nullcontext()):
+    # BLAS on one thread whenever there is more than one core, as in memory (``tune``): the blocks of a
+    # pass are tall and narrow, on which waiting BLAS threads cost more than they give, even with the
+    # row batches on one thread (measured: a million rows took five times longer that way)
+    with watch_convergence() as unconverged, (single_blas() if usable_cores() > 1 else nullcontext()):
         result = _tune_partitions(partitions, schema, spec, executor, progress, should_stop, budget, threads)
     result.warnings.extend(convergence_warnings(unconverged))
     return result
@@ -586,9 +641,16 @@ def _score(run: _Run, m: _Model, settings: list[BasisSetting], groups: _Groups, 
     spec = run.ctx.spec
     strengths, ratios = spec.penalty.strength_grid(), spec.penalty.ratio_grid()
     values, weights = {}, {}
+    merged = [NestedSplits(fold_summaries[g]) for g in range(len(groups.items))]
+    combined = {}
     for i in range(len(settings)):
         atoms, k = groups.atoms(fold_summaries, i)
-        values[i], fits = score_splits(atoms, _splits(m.folds), spec, strengths, ratios)
+        g = groups.of[i]
+        if groups.items[g][1]:  # nested: leading blocks of the widest setting's merged atoms
+            combined[i] = partial(lambda ids, g, w: merged[g].of(ids, w), g=g, w=atoms[0].R.shape[0] - 1)
+        else:
+            combined[i] = partial(lambda ids, a: Summary.combine([a[j] for j in ids]), a=atoms)
+        values[i], fits = score_splits(atoms, _splits(m.folds), spec, strengths, ratios, combined=combined[i])
         weights[i] = (np.array([[f.weights for f in per] for per in fits]),
                       np.array([[f.intercept for f in per] for per in fits]), k)
     if spec.selection.metric == "mae":
@@ -598,7 +660,7 @@ def _score(run: _Run, m: _Model, settings: list[BasisSetting], groups: _Groups, 
                   for i in values}
     rows: list[dict[str, Any]] = []
     for i, s in enumerate(settings):
-        df = setting_df(Summary.combine(groups.atoms(fold_summaries, i)[0]), spec, strengths, ratios)
+        df = setting_df(combined[i](list(range(m.folds))), spec, strengths, ratios)
         rows.extend(table_rows(i, s, strengths, ratios, values[i], df))
     return rows
 
@@ -617,7 +679,8 @@ def _refit(run: _Run, m: _Model, scan: Scan, settings: list[BasisSetting], group
     fw = np.vstack([f.weights[0] for f in fold_fits])
     fi = np.array([f.intercept[0] for f in fold_fits])
     stride = max(1, math.ceil(n / MAX_INTERVAL_RESIDUALS))
-    fin = run.map_reduce(partial(_final_pass, m, setting, fw, fi, full.mean, full.scale, F, n, stride), run.parts,
+    T = leverage_triangle(F, full.scale)
+    fin = run.map_reduce(partial(_final_pass, m, setting, fw, fi, full.mean, T, n, stride), run.parts,
                          _merge_final)
     abs_res = np.concatenate(fin.residuals)
     res_fold = np.concatenate([np.full(r.size, f, dtype=np.int64) for f, r in enumerate(fin.residuals)])

@@ -24,8 +24,9 @@ from .folds import Plan, make_plan, order_key
 from .parallel import ordered_map, single_blas, usable_cores
 from .model import FittedModel, thin_residuals
 from .result import (TuneResult, build_model, check_numeric_text, check_spread, column_kind, fingerprint_columns,
-                     fingerprint_of, label_columns, unclaimed_text, finish, metric_value, refit_all_rows, score_splits, select, setting_df, table_rows)
-from .solvers import Fit, convergence_warnings, fit, watch_convergence
+                     fingerprint_of, label_columns, unclaimed_text, finish, metric_value, refit_all_rows, score_splits, select, setting_df, table_rows,
+                     NestedSplits)
+from .solvers import Fit, convergence_warnings, fit, leverage_triangle, row_leverages, watch_convergence
 from .spec import TuneSpec, parse_spec
 from .summaries import Summary
 from .advice import data_warnings
@@ -480,8 +481,7 @@ def _model(prep: Prepared, spec: TuneSpec, scaler: InputScaler, setting: BasisSe
     """The model refit on all rows (``result.build_model``), with its training leverages from ``Phi``."""
     full, l_idx, F = refit_all_rows(full_summary, spec, strengths, strength, ratio)
     kept = slice(None) if prep.w is None else prep.w > 0  # zero-weight rows are not training data
-    FZ = ((Phi[kept] - full.mean) / full.scale) @ F.T
-    lev = 1.0 / full.n + np.einsum("ij,ij->i", FZ, FZ)
+    lev = row_leverages(np.asfortranarray(Phi[kept]), full.mean, leverage_triangle(F, full.scale), full.n)  # a copy
     finite = np.isfinite(oof_abs)
     if prep.w is not None:
         finite &= prep.w > 0  # intervals from the out-of-fold residuals of rows that weigh something
@@ -515,6 +515,7 @@ class _SharedSearch:
         self.kept: dict[int, list[Summary]] = {}  # RBF settings' atom summaries (kept for continued training)
         self.keep_bytes: int | None = None  # keep them up to this many stored bytes (None: keep none)
         self.kept_bytes = 0  # stored bytes of the summary groups seen so far
+        self._merged: NestedSplits | None = None
         self.warnings: list[str] = []
 
     tick: Callable[[float], None] | None = None  # progress inside one setting (fraction done), long jobs only
@@ -555,6 +556,7 @@ class _SharedSearch:
             if self._nested is None:
                 D = self._nested_design()
                 self._nested = (D, self._summaries(D, y))
+                self._merged = NestedSplits(self._nested[1])
             D, atoms = self._nested
             if D is None:  # asked again after the design was freed (the refit): summaries only
                 D = self._nested_design()
@@ -562,6 +564,14 @@ class _SharedSearch:
             return D[:, :k - 1], [a.leading(k) for a in atoms]
         D = _design(setting, self.Xs, self.prep.cat_block)
         return D, self._summaries(D, y)
+
+    def _combined(self, setting: BasisSetting, atoms: list[Summary]):
+        """``combined(atom_ids)`` for ``score_splits``: a nested setting's merged atoms are leading blocks
+        of the widest setting's, merged once per atom set (``NestedSplits``)."""
+        if setting.kind not in ("linear", "polynomial"):
+            return lambda ids: Summary.combine([atoms[i] for i in ids])
+        k = atoms[0].R.shape[0] - 1
+        return lambda ids: self._merged.of(ids, k)
 
     def evaluate(self, s_idx: int, setting: BasisSetting):
         D, atoms = self._atoms(setting)
@@ -571,6 +581,7 @@ class _SharedSearch:
                 self.kept[s_idx] = atoms
             else:  # above the bound: none will be stored, so none is held
                 self.kept.clear()
+        combined = self._combined(setting, atoms)
         y = self.prep.y
         mae_rows = None
         if self.spec.selection.metric == "mae":
@@ -583,9 +594,8 @@ class _SharedSearch:
                 return metric_value("mae", float(w.sum()), sae=w @ err)
         tick = self.tick
         values, _ = score_splits(atoms, self.plan.splits, self.spec, self.strengths, self.ratios, mae_rows,
-                                 tick=None if tick is None else (lambda f: tick(0.5 + 0.5 * f)))
-        df = setting_df(Summary.combine([atoms[i] for i in self.plan.refit_atoms]), self.spec, self.strengths,
-                        self.ratios)
+                                 tick=None if tick is None else (lambda f: tick(0.5 + 0.5 * f)), combined=combined)
+        df = setting_df(combined(self.plan.refit_atoms), self.spec, self.strengths, self.ratios)
         if self._nested is not None and all(s.kind == "rbf" for s in self.settings[s_idx + 1:]):
             self._nested = (None, self._nested[1])  # free the largest design once no nested setting is left
         yield values, df, None

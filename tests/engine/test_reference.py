@@ -134,22 +134,28 @@ def test_filip_transcription():
     assert lre(exact, FILIP_CERT).min() >= 12, lre(exact, FILIP_CERT)
 
 
+def _raw_filip_coefficients(intercept: float, weights: np.ndarray, mu: float, sd: float) -> np.ndarray:
+    """Coefficients of the raw powers of x from those of the standardized powers ((x − μ)/σ)^k, expanded
+    in 60-digit arithmetic (so only the error of the given coefficients is measured)."""
+    mpmath = pytest.importorskip("mpmath")
+    with mpmath.workdps(60):
+        mu, sd = mpmath.mpf(float(mu)), mpmath.mpf(float(sd))
+        c = [mpmath.mpf(float(intercept))] + [mpmath.mpf(0)] * 10
+        for k in range(1, 11):
+            w = mpmath.mpf(float(weights[k - 1]))
+            for j in range(k + 1):
+                c[j] += w / sd ** k * mpmath.binomial(k, j) * (-mu) ** (k - j)
+        return np.array([float(v) for v in c])
+
+
 def test_filip_certified_coefficients():
     # NIST StRD Filip certificate: LRE ≥ 7 on every coefficient, via the engine's own path (degree-10
     # basis of the standardized input, summaries, solver); the coefficients of the raw powers of x are
     # recovered from the standardized ones in exact arithmetic, so only the engine's error is measured
-    mpmath = pytest.importorskip("mpmath")
     y, x = FILIP[:, 0], FILIP[:, 1]
     res = tune({"x": x, "y": y}, {"target": "y", "bases": [{"kind": "polynomial", "degrees": [10]}], **OLS})
     m = res.model
-    with mpmath.workdps(60):
-        mu, sd = mpmath.mpf(float(m.scaler.mean[0])), mpmath.mpf(float(m.scaler.scale[0]))
-        c = [mpmath.mpf(float(m.intercept))] + [mpmath.mpf(0)] * 10
-        for k in range(1, 11):  # Σ w_k ((x − μ)/σ)^k expanded in powers of x
-            w = mpmath.mpf(float(m.weights[k - 1]))
-            for j in range(k + 1):
-                c[j] += w / sd ** k * mpmath.binomial(k, j) * (-mu) ** (k - j)
-        got = np.array([float(v) for v in c])
+    got = _raw_filip_coefficients(m.intercept, m.weights, m.scaler.mean[0], m.scaler.scale[0])
     assert lre(got, FILIP_CERT).min() >= 7, lre(got, FILIP_CERT)
 
 
@@ -192,6 +198,48 @@ def test_cholesky_qr_r_on_longley(monkeypatch, force_shift):
     R = summaries.cholesky_qr_r(A)
     assert R is not None
     assert lre(_coefficients_from_r(R), LONGLEY_CERT).min() >= 10, lre(_coefficients_from_r(R), LONGLEY_CERT)
+
+
+def test_absorbed_blocks_on_filip(monkeypatch):
+    # NIST StRD Filip certificate, the R factor built as a long pass builds it: the 82 rows in blocks of
+    # 12, in file order, each block absorbed into the running R of the rows before it
+    # (``summaries.absorb``), on the degree-10 basis of the standardized input. The first blocks cover
+    # narrow ranges of x, so the next ones fall outside their span and are factored and merged instead;
+    # the later ones take the absorbing step (a triangular solve and one Cholesky step). LRE ≥ 7 on every
+    # certified coefficient either way.
+    from service.engine import summaries
+
+    taken = []
+    real = summaries._absorbed
+    monkeypatch.setattr(summaries, "_absorbed", lambda R, B: taken.append(real(R, B) is not None) or real(R, B))
+    y, x = FILIP[:, 0], FILIP[:, 1]
+    mu, sd = x.mean(), x.std()
+    z = (x - mu) / sd
+    A = np.column_stack([np.ones(x.size)] + [z ** k for k in range(1, 11)] + [y])
+    R = None
+    for lo in range(0, x.size, 12):
+        R = summaries.absorb(R, A[lo:lo + 12])
+    assert len(taken) == 6 and sum(taken) >= 4, taken
+    beta = _coefficients_from_r(R)
+    got = _raw_filip_coefficients(beta[0], beta[1:], mu, sd)
+    assert lre(got, FILIP_CERT).min() >= 7, lre(got, FILIP_CERT)
+
+
+def test_absorb_falls_back_where_the_running_r_cannot_serve():
+    # RᵀR = AᵀA for the stacked rows (common practice: the defining property of an R factor), on the two
+    # cases the absorbing step refuses: a running R that is singular (a repeated column) and a block far
+    # outside the span of the rows before it (‖B R⁻¹‖ large)
+    from service.engine import summaries
+
+    rng = np.random.default_rng(3)
+    X = rng.standard_normal((400, 4))
+    twin = np.column_stack([X, X[:, :1]])  # a column repeated: every R of it is singular
+    R = summaries.absorb(summaries.qr_r(twin[:200]), twin[200:])
+    np.testing.assert_allclose(R.T @ R, twin.T @ twin, rtol=1e-12, atol=1e-10 * np.abs(twin.T @ twin).max())
+    far = np.vstack([X[:200], 1e6 * X[200:]])
+    assert summaries._absorbed(summaries.qr_r(far[:200]), far[200:]) is None
+    R = summaries.absorb(summaries.qr_r(far[:200]), far[200:])
+    np.testing.assert_allclose(R.T @ R, far.T @ far, rtol=1e-12, atol=1e-12 * np.abs(far.T @ far).max())
 
 
 # ---- Parity with scikit-learn's GridSearchCV -------------------------------------------------------

@@ -170,3 +170,20 @@ def test_row_key_hash_does_not_depend_on_the_storage_type():
     assert key_hash(np.array([7.5]), 3)[0] != key_hash(np.array([7]), 3)[0]
     assert key_hash(np.array(["7"], dtype=object), 3)[0] != key_hash(np.array([7]), 3)[0]
     assert key_hash(np.array([-0.0]), 3)[0] == key_hash(np.array([0]), 3)[0]
+
+
+def test_batches_larger_than_a_summary_chunk(tmp_path):
+    # One 88,400-row batch: each fold's ~17,700 rows are more than a summary chunk (CHUNK_ROWS), so the
+    # streamed pass absorbs them into the fold's running R factor chunk by chunk, while the in-memory
+    # engine splits them its own way (Summary.of's segments): the same CV table to rounding.
+    from service.engine.summaries import CHUNK_ROWS
+
+    d = {k: np.tile(v, 200) for k, v in data().items()}  # the shipped rows, 200 times
+    spec = {"target": "y", "features": ["x0", "x2", "x3"], "categorical": ["sex"],
+            "bases": [{"kind": "linear"}, {"kind": "polynomial", "degrees": [2, 3]}],
+            "penalty": {"strengths": {"min": 1e-2, "max": 1e3, "count": 8}},
+            "cv": {"folds": 5, "seed": 4, "assignment": "hash"}, "execution": {"batch_rows": 100_000}}
+    assert len(d["y"]) / spec["cv"]["folds"] > CHUNK_ROWS
+    mem = tune(d, spec)
+    schema, parts = open_source(write_folder(tmp_path, d, files=1, row_group=100_000))
+    assert_same(mem, tune_partitions(parts, schema, spec))
