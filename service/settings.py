@@ -43,7 +43,7 @@ class Settings(BaseSettings):
         "intake process, so building its row objects never holds the API process's interpreter lock.")
     intake_processes: int = Field(1, ge=1, description="Intake processes per API process (started on first use).")
     predict_process_bytes: int = Field(
-        256 * 2**10, ge=0, description="A prediction body larger than this is answered in a separate prediction process "
+        2**20, ge=0, description="A prediction body larger than this is answered in a separate prediction process "
         "at a lower CPU priority, so large batches never hold the API process's interpreter lock while single rows wait.")
     predict_processes: int = Field(
         1, ge=0, description="Prediction processes per API process (started on first use; 0 answers every request in the "
