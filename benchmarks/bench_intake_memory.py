@@ -19,7 +19,6 @@ import argparse
 import io
 import json
 import os
-import socket
 import subprocess
 import sys
 import tempfile
@@ -77,26 +76,9 @@ def children(pid: int) -> list[int]:
 
 
 def start(code: Path, settings: dict[str, str], log: Path) -> tuple[subprocess.Popen, str]:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        port = s.getsockname()[1]
-    env = {k: v for k, v in os.environ.items() if not k.startswith("TIKHON_")}
-    env.update({f"TIKHON_{k.upper()}": v for k, v in settings.items()}, TIKHON_PORT=str(port),
-               PYTHONPATH=str(code))
-    proc = subprocess.Popen([sys.executable, "-c", "from service.settings import Settings\n"
-                             "from service.api.server import run\nrun(Settings())\n"], env=env, cwd=str(code),
-                            stdout=open(log, "ab"), stderr=subprocess.STDOUT, start_new_session=True)
-    base = f"http://127.0.0.1:{port}"
-    end = time.monotonic() + 90
-    while True:  # start-up wait
-        try:
-            if httpx.get(f"{base}/healthz", timeout=2).status_code == 200:
-                return proc, base
-        except httpx.TransportError:
-            pass
-        if proc.poll() is not None or time.monotonic() > end:
-            raise RuntimeError(f"server did not start, see {log}")
-        time.sleep(0.05)
+    from bench_soak import start_server  # benchmarks/ is on sys.path when a script there runs
+
+    return start_server(settings, log, code=code)
 
 
 def main(argv: list[str] | None = None) -> int:

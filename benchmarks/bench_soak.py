@@ -105,16 +105,18 @@ def prepare_store(root: Path) -> dict[str, str]:
     return settings
 
 
-def start_server(settings: dict[str, str], log_path: Path) -> tuple[subprocess.Popen, str]:
+def start_server(settings: dict[str, str], log_path: Path, code: Path = ROOT) -> tuple[subprocess.Popen, str]:
+    """``service.api.server.run`` of the checkout ``code`` (this one by default) with ``settings`` as TIKHON_
+    variables, on a free loopback port; returns the process and its base URL once ``/healthz`` answers."""
     port = free_port()
     env = {k: v for k, v in os.environ.items() if not k.startswith("TIKHON_")}
     env.update({f"TIKHON_{k.upper()}": v for k, v in settings.items()})
     env["TIKHON_PORT"] = str(port)
-    env["PYTHONPATH"] = str(ROOT) + os.pathsep + env.get("PYTHONPATH", "")
+    env["PYTHONPATH"] = str(code) + os.pathsep + env.get("PYTHONPATH", "")
     log = open(log_path, "ab")
     proc = subprocess.Popen([sys.executable, "-c", "from service.settings import Settings\n"
                              "from service.api.server import run\nrun(Settings())\n"],
-                            env=env, cwd=str(ROOT), stdout=log, stderr=subprocess.STDOUT, start_new_session=True)
+                            env=env, cwd=str(code), stdout=log, stderr=subprocess.STDOUT, start_new_session=True)
     base = f"http://127.0.0.1:{port}"
     end = time.monotonic() + 90
     while True:  # start-up wait

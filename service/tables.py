@@ -508,7 +508,7 @@ def _inspect_parquet(raw, *, where, spec, max_rows, max_label, setting) -> Inspe
             batch = next(iter(f.iter_batches(batch_size=FIRST_ROWS, columns=columns)))
             first = from_arrow(pa.Table.from_batches([batch]), where=where, max_label=max_label, spec=spec)
             key = getattr(getattr(spec, "cv", None), "row_key", None)
-            stats = _constant_stats(md, key) if key in columns else None
+            stats = constant_stats(md, key) if key in columns else None
     except (pa.ArrowException, OSError) as exc:
         reason = " ".join(str(exc).split())
         raise InvalidData(f"{where} could not be read as Parquet ({reason[:300]}); send a valid Parquet file or CSV.") from None
@@ -518,7 +518,7 @@ def _inspect_parquet(raw, *, where, spec, max_rows, max_label, setting) -> Inspe
     return Inspection(int(md.num_rows), kinds, columns, first, batch.num_rows == md.num_rows, True, stats)
 
 
-def _constant_stats(md, column: str) -> tuple | None:
+def constant_stats(md, column: str) -> tuple | None:
     """(value,) when the footer's statistics show ``column`` holds one value in every row, else None."""
     names = [md.schema.column(i).name for i in range(md.num_columns)]
     if column not in names:

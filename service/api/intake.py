@@ -236,20 +236,14 @@ def _check_row_key(refs, column: str, where: str) -> None:
             continue
         with ref.open() as fh:
             md = pq.ParquetFile(fh).metadata
-        names = [md.schema.column(i).name for i in range(md.num_columns)]
-        if column not in names:
+        if column not in [md.schema.column(i).name for i in range(md.num_columns)]:
             return  # the spec check names the missing column
-        j = names.index(column)
-        for g in range(md.num_row_groups):
-            rg = md.row_group(g)
-            if rg.num_rows == 0:
-                continue
-            st = rg.column(j).statistics
-            if st is None or not st.has_min_max or st.null_count != 0 or st.min != st.max:
-                return
-            if seen is not None and seen[1] != st.min:
-                return
-            seen = ("stats", st.min)
+        if md.num_rows == 0:
+            continue
+        one = tables.constant_stats(md, column)  # (value,) when every row group holds that one value
+        if one is None or (seen is not None and seen[1] != one[0]):
+            return
+        seen = ("stats", one[0])
     if seen is not None:
         raise constant_row_key(column, seen[1], where)
 

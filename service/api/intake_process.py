@@ -25,18 +25,15 @@ that no job takes over (a refusal, an idempotent replay, a client that went away
 from __future__ import annotations
 
 import asyncio
-import multiprocessing as mp
 import os
-import threading
 import types
-from concurrent.futures import ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
 from pathlib import Path
 from typing import Any
 
+from service.api.spawned import SpawnedPool
 from service.errors import Busy, TikhonError
 
-_SPAWN = mp.get_context("spawn")  # never fork a process that runs threads (the event loop's pool, uvicorn)
 
 # The settings the intake reads (``intake.load_data``, ``check_spec_size``, ``validate``); passed to the
 # intake process as a plain namespace of these values, not as the whole Settings object.
@@ -123,20 +120,14 @@ def _start(parent_pid: int) -> None:
     _lower_priority()
 
 
-class IntakePool:
+class IntakePool(SpawnedPool):
     """The API process's intake processes (``processes`` of them), started on first use."""
 
     def __init__(self, processes: int = 1):
-        self.processes = processes
-        self._pool: ProcessPoolExecutor | None = None
-        self._lock = threading.Lock()
+        super().__init__(processes)
 
-    def _executor(self) -> ProcessPoolExecutor:
-        with self._lock:
-            if self._pool is None:
-                self._pool = ProcessPoolExecutor(self.processes, mp_context=_SPAWN, initializer=_start,
-                                                 initargs=(os.getpid(),))
-            return self._pool
+    def _initializer(self):
+        return _start, (os.getpid(),)
 
     async def read_json(self, body: bytes | Path, settings: Any, incoming: Path, live_spec: Any = None
                         ) -> dict[str, Any]:
@@ -179,18 +170,6 @@ class IntakePool:
         return Busy("the process reading large training bodies ended before it finished this one (it was killed or "
                     "ran out of memory); nothing was stored and no job was created. Submit again, or send large "
                     "data as CSV or a Parquet upload (multipart field 'file').", retry_after=1)
-
-    def _drop(self, pool: ProcessPoolExecutor) -> None:
-        with self._lock:
-            if self._pool is pool:
-                self._pool = None
-        pool.shutdown(wait=False, cancel_futures=True)
-
-    def close(self) -> None:
-        with self._lock:
-            pool, self._pool = self._pool, None
-        if pool is not None:
-            pool.shutdown(wait=True, cancel_futures=True)
 
 
 def _discard_file(path: Path | None) -> None:

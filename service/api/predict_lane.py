@@ -26,17 +26,14 @@ replaced for the next request, and the request it held is answered 429 to be sen
 from __future__ import annotations
 
 import asyncio
-import multiprocessing as mp
 import os
-import threading
-from concurrent.futures import ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
 from pathlib import Path
 from typing import Any
 
+from service.api.spawned import SpawnedPool
 from service.errors import Busy
 
-_SPAWN = mp.get_context("spawn")  # never fork a process that runs threads (the event loop's pool, uvicorn)
 QUEUED_PER_PROCESS = 4
 
 # -- in the prediction process -----------------------------------------------------------------------
@@ -95,27 +92,21 @@ def answer_here(ref: tuple[str, int, str, str], raw: bytes, ask: Any, limits: di
 
 
 # -- in the API process ------------------------------------------------------------------------------
-class PredictLane:
+class PredictLane(SpawnedPool):
     """The API process's prediction processes: ``processes`` of them (0: none, every request is answered in
     the API process), for bodies larger than ``min_bytes``."""
 
     def __init__(self, processes: int, min_bytes: int, *, cache_models: int, cache_bytes: int):
-        self.processes = processes
+        super().__init__(processes)
         self.min_bytes = min_bytes
         self._cache = (cache_models, cache_bytes)
-        self._pool: ProcessPoolExecutor | None = None
-        self._lock = threading.Lock()
         self._held = 0  # requests waiting or running (event loop only)
+
+    def _initializer(self):
+        return _start, (os.getpid(), *self._cache)
 
     def takes(self, size: int) -> bool:
         return self.processes > 0 and size > self.min_bytes
-
-    def _executor(self) -> ProcessPoolExecutor:
-        with self._lock:
-            if self._pool is None:
-                self._pool = ProcessPoolExecutor(self.processes, mp_context=_SPAWN, initializer=_start,
-                                                 initargs=(os.getpid(), *self._cache))
-            return self._pool
 
     async def answer(self, served: Any, raw: bytes, ask: Any, limits: dict[str, Any],
                      monitor: bool) -> tuple[int, bytes | str, str, dict, dict | None]:
@@ -141,15 +132,3 @@ class PredictLane:
                            retry_after=1) from None
         finally:
             self._held -= 1
-
-    def _drop(self, pool: ProcessPoolExecutor) -> None:
-        with self._lock:
-            if self._pool is pool:
-                self._pool = None
-        pool.shutdown(wait=False, cancel_futures=True)
-
-    def close(self) -> None:
-        with self._lock:
-            pool, self._pool = self._pool, None
-        if pool is not None:
-            pool.shutdown(wait=True, cancel_futures=True)
