@@ -97,11 +97,21 @@ def _direct_handler(logger: logging.Logger, level: int) -> logging.StreamHandler
     return handler
 
 
+@functools.lru_cache(maxsize=64)
+def _fixed(level: int, name: str, msg: str) -> bytes:
+    """The part of a direct line after its time stamp: ``,"level":...,"logger":...,"msg":...`` (no brace)."""
+    return orjson.dumps({"level": logging.getLevelName(level).lower(), "logger": name, "msg": _plain(msg)})[1:-1]
+
+
 def line(logger: logging.Logger, level: int, msg: str, fields: dict) -> None:
     """``logger.log(level, msg, extra=fields)`` for the access log of every request, writing the same JSON
     line without building a ``LogRecord`` when the logger is set up as ``configure`` leaves it (one
     ``JsonFormatter`` stream handler, no filters); otherwise through ``logging`` as usual. ``fields``
-    holds plain values under names that are neither standard record attributes nor secret-like."""
+    holds plain values under names that are neither standard record attributes nor secret-like.
+
+    The line is written as bytes: the fixed part (level, logger, message) is serialized once per kind of
+    line, the fields in one ``orjson`` call, and the bytes go to the stream's binary buffer (the text layer
+    is flushed first, so lines written through ``logging`` keep their order), one ``write`` per line."""
     if not logger.isEnabledFor(level):
         return
     handler = _direct_handler(logger, level)
@@ -109,19 +119,21 @@ def line(logger: logging.Logger, level: int, msg: str, fields: dict) -> None:
         logger.log(level, msg, extra=fields)
         return
     created = time.time()
-    out = {
-        "ts": handler.formatter._timestamp(created, int((created - int(created)) * 1000)),
-        "level": logging.getLevelName(level).lower(),
-        "logger": logger.name,
-        "msg": _plain(msg),
-    }
-    for key, value in fields.items():
-        out[key] = _plain(value)
-    text = orjson.dumps(out, default=str).decode() + handler.terminator
+    stamp = handler.formatter._timestamp(created, int((created - int(created)) * 1000))
+    values = {k: (_ANSI.sub("", v) if v.__class__ is str and "\x1b" in v else v) for k, v in fields.items()}
+    body = orjson.dumps(values, default=str)
+    data = b"".join((b'{"ts":"', stamp.encode(), b'",', _fixed(level, logger.name, msg),
+                     b"," if len(body) > 2 else b"", body[1:], handler.terminator.encode()))
+    stream = handler.stream
     handler.acquire()
     try:
-        handler.stream.write(text)
-        handler.stream.flush()
+        raw = getattr(stream, "buffer", None)
+        if raw is None or getattr(stream, "encoding", "").lower().replace("-", "") not in ("utf8",):
+            stream.write(data.decode())
+        else:
+            stream.flush()  # anything the text layer holds goes first
+            raw.write(data)
+        stream.flush()
     except Exception:  # a closed or broken stream: let logging report it as it would for any record
         handler.release()
         logger.log(level, msg, extra=fields)

@@ -63,7 +63,7 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
         for fn in on_shutdown or ():
             fn()
 
-    app = FastAPI(
+    app = TikhonAPI(
         title="Tikhon",
         version=API_VERSION,
         summary="Tunes, versions and serves regularized regression models (ridge, lasso, elastic net).",
@@ -122,24 +122,48 @@ def create_app(settings: Settings, store: Any = None, *, on_shutdown=None, multi
     from service.api.routes import docs  # /docs with its assets served from the package
     app.include_router(docs.router)
 
-    # Starlette wraps in reverse order of addition: the last added is the outermost. The prediction routes
-    # are answered by the innermost of these (service.api.fastpath), inside every other one.
-    from service.api.fastpath import PredictionsFirst
-    app.add_middleware(PredictionsFirst, owner=app, router=predictions.router)
-    if settings.cors_origins:
-        app.add_middleware(
-            CORSMiddleware, allow_origins=list(settings.cors_origins), allow_methods=["GET", "POST", "PUT", "DELETE"],
-            allow_headers=["Authorization", "Content-Type", "Idempotency-Key", "X-Request-Id"],
-            expose_headers=["Location", "X-Request-Id", "Retry-After", "Tikhon-Catalog", "Tikhon-Replayed",
-                            "Tikhon-Model", "Tikhon-Model-Version"],
-        )
+    # Starlette wraps in reverse order of addition: the last added is the outermost.
+    cors = _cors_options(settings)
+    if cors:
+        app.add_middleware(CORSMiddleware, **cors)
     from service.api.cors import PreflightGuard  # an unlisted origin's preflight: a problem naming the setting
     app.add_middleware(PreflightGuard, allowed=list(settings.cors_origins))
     app.add_middleware(BodyLimit, limit=settings.max_body_bytes)
     app.add_middleware(RequestContext, metrics=metrics, process_header=process_header)
 
+    # The POST prediction routes are dispatched ahead of the framework's own stack (service.api.fastpath), through
+    # the same layers a POST meets there: request context, body limit and (when configured) CORS. The preflight
+    # guard answers OPTIONS only, so it has nothing to do for them.
+    from service.api.fastpath import PredictionsFirst
+
+    def prediction_layers(answer):
+        inner = CORSMiddleware(answer, **cors) if cors else answer
+        return RequestContext(BodyLimit(inner, limit=settings.max_body_bytes), metrics=metrics,
+                              process_header=process_header)
+
+    app.state.predictions_first = PredictionsFirst(owner=app, router=predictions.router, layers=prediction_layers)
+
     _document_security(app)
     return app
+
+
+def _cors_options(settings: Settings) -> dict[str, Any]:
+    """CORSMiddleware's options for the configured origins (empty: no CORS)."""
+    if not settings.cors_origins:
+        return {}
+    return dict(allow_origins=list(settings.cors_origins), allow_methods=["GET", "POST", "PUT", "DELETE"],
+                allow_headers=["Authorization", "Content-Type", "Idempotency-Key", "X-Request-Id"],
+                expose_headers=["Location", "X-Request-Id", "Retry-After", "Tikhon-Catalog", "Tikhon-Replayed",
+                                "Tikhon-Model", "Tikhon-Model-Version"])
+
+
+class TikhonAPI(FastAPI):
+    """FastAPI with the prediction routes' dispatcher (``state.predictions_first``) ahead of its middleware stack."""
+
+    def build_middleware_stack(self):
+        stack = super().build_middleware_stack()
+        first = getattr(self.state, "predictions_first", None)
+        return stack if first is None else first.ahead_of(stack)
 
 
 def operation_id_of(route: Any) -> str:

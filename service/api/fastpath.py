@@ -1,16 +1,17 @@
-"""The two prediction routes, dispatched ahead of FastAPI's router.
+"""The two prediction routes, dispatched ahead of the framework's middleware stack.
 
-A single-row prediction is a few hundred microseconds of work; walking FastAPI's exception and exit-stack
-middleware, the router's match over every route and the route's request handling (dependency solving,
-body checks) cost about as much again. ``PredictionsFirst`` is the innermost of the app's own middleware:
-everything outside it (request id, JSON log line, metrics, body limit, the CORS preflight guard and CORS)
-runs for these routes exactly as for every other one. For ``POST`` to a path that one of the prediction
-routes matches (the route's own compiled pattern, tried in the router's order, and these routes come
-first in it), it sets what the router would set (``route``, ``path_params``, ``endpoint``) and calls the
-route's endpoint directly; an exception is answered by the handler the app registered for its type
-(``service.api.exception_handlers.install``), as FastAPI's exception middleware would. Anything else (another
-method, another path) goes on to FastAPI unchanged, so a ``GET`` still gets the router's 405 and the
-routes stay in ``/openapi.json`` as declared.
+A single-row prediction is tens of microseconds of work; walking FastAPI's own layers (server-error,
+telemetry and body-size middleware, the exception middleware and exit stack), the router's match over
+every route and the route's request handling (dependency solving, body checks) cost about as much again.
+``PredictionsFirst`` sits ahead of the app's whole stack (``service.api.app.TikhonAPI``). For ``POST`` to a
+path that one of the prediction routes matches (the route's own compiled pattern, tried in the router's
+order, and these routes come first in it), it sets what the router would set (``route``, ``path_params``,
+``endpoint``) and calls the route's endpoint directly, through the layers a POST meets in the app's stack
+(``layers``: the request context with its id, JSON log line and metrics, the body limit and, when configured,
+CORS; ``service.api.app``); an exception is answered by the handler the app registered for its type
+(``service.api.exception_handlers.install``), as FastAPI's exception middleware would, and anything else by the
+request context's last-resort 500. Anything else (another method, another path) goes to the app's stack
+unchanged, so a ``GET`` still gets the router's 405 and the routes stay in ``/openapi.json`` as declared.
 
 The endpoints called here must do all their own checking (``auth.authorize`` first, then the path
 parameters): they are written that way (``service.api.routes.predictions``).
@@ -18,7 +19,7 @@ parameters): they are written that way (``service.api.routes.predictions``).
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Any, Awaitable, Callable
 
 from fastapi.routing import APIRoute
 from starlette.requests import Request
@@ -31,15 +32,40 @@ except ImportError:  # older Starlette matched scope["path"] itself
 
 
 class PredictionsFirst:
-    """ASGI middleware answering the POST routes of ``router`` (included first in the app ``owner``) without
-    going through ``owner``'s router."""
+    """Answers the POST routes of ``router`` (included first in the app ``owner``) through ``layers(answer)``
+    without going through ``owner``'s middleware stack or router; ``ahead_of(stack)`` is the ASGI app."""
 
-    def __init__(self, app: Any, *, owner: Any, router: Any) -> None:
-        self.app = app
+    def __init__(self, *, owner: Any, router: Any, layers: Callable[[Any], Any]) -> None:
         self._owner = owner
         self._router = router
+        self._layered = layers(self._answer)
         self._routes: list[tuple[Any, Any, dict]] | None = None
         self._handlers: dict | None = None
+
+    def ahead_of(self, stack: Any) -> Callable[[dict, Any, Any], Awaitable[None]]:
+        routes_first = self
+
+        async def app(scope: dict, receive: Any, send: Any) -> None:
+            if scope["type"] != "http" or scope["method"] != "POST":
+                await stack(scope, receive, send)
+                return
+            if routes_first._routes is None:
+                routes_first._resolve()
+            path = get_route_path(scope)
+            for route, pattern, convertors in routes_first._routes:
+                match = pattern.match(path)
+                if match is not None:
+                    break
+            else:
+                await stack(scope, receive, send)
+                return
+            scope["path_params"] = {k: convertors[k].convert(v) for k, v in match.groupdict().items()}
+            scope["route"] = route
+            scope["endpoint"] = route.endpoint
+            scope.setdefault("router", routes_first._owner.router)
+            await routes_first._layered(scope, receive, send)
+
+        return app
 
     def _resolve(self) -> None:
         """The router's POST routes with their patterns, and the app's exception handlers (read at the first
@@ -56,34 +82,17 @@ class PredictionsFirst:
         self._handlers = {k: v for k, v in self._owner.exception_handlers.items()
                           if isinstance(k, type) and k is not Exception}
 
-    async def __call__(self, scope: dict, receive: Any, send: Any) -> None:
-        if scope["type"] != "http" or scope["method"] != "POST":
-            await self.app(scope, receive, send)
-            return
-        if self._routes is None:
-            self._resolve()
-        path = get_route_path(scope)
-        for route, pattern, convertors in self._routes:
-            match = pattern.match(path)
-            if match is not None:
-                break
-        else:
-            await self.app(scope, receive, send)
-            return
-        scope["path_params"] = {k: convertors[k].convert(v) for k, v in match.groupdict().items()}
-        scope["route"] = route
-        scope["endpoint"] = route.endpoint
-        scope.setdefault("router", self._owner.router)
+    async def _answer(self, scope: dict, receive: Any, send: Any) -> None:
         request = Request(scope, receive, send)
         try:
-            response = await route.endpoint(request)
+            response = await scope["endpoint"](request)
         except Exception as exc:
             handler = None
             for cls in type(exc).__mro__:
                 handler = self._handlers.get(cls)
                 if handler is not None:
                     break
-            if handler is None:  # unexpected: the request context middleware answers 500 and logs it
+            if handler is None:  # unexpected: the request context answers 500 and logs it
                 raise
             response = await handler(request, exc)
         await response(scope, receive, send)

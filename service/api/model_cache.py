@@ -117,7 +117,7 @@ class ModelCache:
     def cached(self, name: str, version: int) -> Served | None:
         served = self._served.get((name, version))
         if served is not None and self._metrics is not None:
-            self._metrics.cache_hits.inc()
+            self._metrics.cache_hit()
         return served
 
     def load(self, name: str, version: int) -> Served:

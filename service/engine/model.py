@@ -250,7 +250,7 @@ class FittedModel:
         value = self.intercept + Phi @ self.weights
         Zs = (Phi - self.column_mean) / self.column_scale
         FZ = Zs @ self.leverage_factor.T if self.leverage_factor.size else np.zeros((Phi.shape[0], 0))
-        lev = 1.0 / self.n_train + np.einsum("ij,ij->i", FZ, FZ)
+        lev = 1.0 / self.n_train + _row_dots(FZ, FZ)
         lower = upper = None
         if interval_level is not None:
             lower, upper = self._interval(Phi, value, 1.0 - interval_level)
@@ -595,6 +595,17 @@ def thin_residuals(abs_res: np.ndarray, fold: np.ndarray, limit: int = MAX_INTER
         out_r.append(r)
         out_f.append(np.full(r.size, k, dtype=np.int64))
     return np.concatenate(out_r), np.concatenate(out_f), float(g)
+
+
+try:  # np.einsum without its Python wrapper: what np.einsum itself calls when optimize is off (the default)
+    from numpy._core.multiarray import c_einsum as _c_einsum
+except ImportError:  # numpy < 2
+    _c_einsum = np.einsum
+
+
+def _row_dots(A: np.ndarray, B: np.ndarray) -> np.ndarray:
+    """Σⱼ Aᵢⱼ Bᵢⱼ per row, exactly ``np.einsum("ij,ij->i", A, B)``."""
+    return _c_einsum("ij,ij->i", A, B)
 
 
 def _finite_floats(raw: np.ndarray | None) -> list[float] | None:

@@ -14,6 +14,14 @@ Columns = dict[str, np.ndarray]
 
 def as_columns(data: Any) -> Columns:
     """Return ``{name: 1-D array}``; refuse duplicate names and ragged lengths."""
+    if type(data) is dict:  # the usual case (a request's columns): already text names and 1-D arrays of one length
+        length = -1
+        for k, v in data.items():
+            if type(k) is not str or type(v) is not np.ndarray or v.ndim != 1 or (length >= 0 and v.shape[0] != length):
+                break
+            length = v.shape[0]
+        else:
+            return dict(data)
     names: list[str]
     if isinstance(data, Mapping):
         names = [str(k) for k in data.keys()]
