@@ -108,7 +108,8 @@ async def main_async(args) -> None:
     prepare_store(str(work / "store"))
     settings = Settings(store=str(work / "store"), data_dir=str(work / "data"))
     log = open(work / "server.log", "w")  # noqa: SIM115 — open for the run, as tikhon serve's stderr would be
-    configure(settings.log_level, stream=log)  # the JSON log lines tikhon serve writes to its stderr
+    hold = getattr(settings, "access_log_hold_s", None)  # as tikhon serve writes its log lines to stderr
+    configure(settings.log_level, stream=log, **({} if hold is None else {"hold_s": hold}))
     ours = create_app(settings)
     life: dict = {}
     await lifespan(ours, "startup", life)

@@ -10,9 +10,12 @@ from __future__ import annotations
 
 import functools
 import logging
+import os
 import re
 import sys
+import threading
 import time
+import weakref
 
 import orjson
 
@@ -59,7 +62,101 @@ class JsonFormatter(logging.Formatter):
         return orjson.dumps(out, default=str).decode()
 
 
-def configure(level: str = "info", stream=None) -> None:
+HOLD_BYTES = 64 * 1024  # held access lines are written at once when they reach this size
+
+
+class LineHandler(logging.StreamHandler):
+    """The JSON lines handler. With ``hold_s`` > 0, the access log's lines (``line``) are held and written
+    together: when ``hold_s`` seconds have passed since the first one held (a background thread), when they
+    reach ``HOLD_BYTES``, before any other record (so lines keep their order), and at ``flush`` (which
+    ``logging.shutdown`` calls when the process exits). A process killed outright loses what it held."""
+
+    def __init__(self, stream=None, hold_s: float = 0.0) -> None:
+        super().__init__(stream)
+        self.hold_s = float(hold_s)
+        self._held: list[bytes] = []
+        self._held_bytes = 0
+        self._due = threading.Event()
+        self._thread: threading.Thread | None = None
+        me = weakref.ref(self)  # a child never writes its parent's held lines
+        os.register_at_fork(after_in_child=lambda: (h := me()) is not None and h._forget())
+
+    def _forget(self) -> None:
+        self._held = []
+        self._held_bytes = 0
+        self._due = threading.Event()
+        self._thread = None
+
+    def hold(self, data: bytes) -> None:
+        """Hold one line (bytes ending with the terminator) for a later write."""
+        self.acquire()
+        try:
+            self._held.append(data)
+            self._held_bytes += len(data)
+            if self._held_bytes >= HOLD_BYTES:
+                self._write_held()
+            elif len(self._held) == 1:
+                if self._thread is None:
+                    self._thread = threading.Thread(target=self._run, name="tikhon-log", daemon=True)
+                    self._thread.start()
+                self._due.set()
+        finally:
+            self.release()
+
+    def _run(self) -> None:
+        due = self._due
+        while True:
+            due.wait()
+            time.sleep(self.hold_s)
+            self.acquire()
+            try:
+                due.clear()
+                self._write_held()
+            finally:
+                self.release()
+
+    def _write_held(self) -> None:
+        """Write the held lines (the handler's lock is held)."""
+        if not self._held:
+            return
+        data = b"".join(self._held)
+        self._held.clear()
+        self._held_bytes = 0
+        try:
+            write_bytes(self.stream, data)
+        except Exception:  # a closed or broken stream: reported as logging reports a record it cannot write
+            lost = data.count(b"\n")
+            self.handleError(logging.makeLogRecord({"msg": f"{lost} access log line(s) not written"}))
+
+    def emit(self, record: logging.LogRecord) -> None:
+        if self._held:  # called with the lock held (Handler.handle)
+            self._write_held()
+        super().emit(record)
+
+    def flush(self) -> None:
+        self.acquire()
+        try:
+            self._write_held()
+        finally:
+            self.release()
+        super().flush()
+
+
+def write_bytes(stream, data: bytes) -> None:
+    """Write UTF-8 ``data`` to a text ``stream`` and flush it: to its binary buffer when it has one and
+    encodes as UTF-8 (after flushing the text layer, so earlier text goes first), else as text."""
+    raw = getattr(stream, "buffer", None)
+    if raw is None or (getattr(stream, "encoding", "") or "").lower().replace("-", "").replace("_", "") != "utf8":
+        stream.write(data.decode())
+    else:
+        stream.flush()
+        raw.write(data)
+    stream.flush()
+
+
+def configure(level: str = "info", stream=None, *, hold_s: float = 0.0) -> None:
+    """JSON lines at ``level`` on ``stream`` (stderr) for Tikhon's and uvicorn's loggers. ``hold_s``: how long
+    the access log's lines may be held to be written together (``LineHandler``; settings.access_log_hold_s)."""
     # The JSON lines never carry the caller's file, line, thread or process (they are dropped as standard
     # attributes), so the logging module need not look them up for every record: these are the switches
     # its documentation gives for that ("Optimization" in the logging HOWTO).
@@ -67,10 +164,13 @@ def configure(level: str = "info", stream=None) -> None:
     logging.logThreads = False
     logging.logProcesses = False
     logging.logMultiprocessing = False
-    handler = logging.StreamHandler(stream or sys.stderr)
+    handler = LineHandler(stream or sys.stderr, hold_s=hold_s)
     handler.setFormatter(JsonFormatter())
     for name in ("tikhon", "uvicorn", "uvicorn.error"):
         logger = logging.getLogger(name)
+        for old in logger.handlers:  # lines an earlier configuration still holds are written, not dropped
+            if isinstance(old, LineHandler) and old is not handler:
+                old.flush()
         logger.handlers[:] = [handler]
         logger.propagate = False
         logger.setLevel(level.upper())
@@ -91,7 +191,7 @@ def _direct_handler(logger: logging.Logger, level: int) -> logging.StreamHandler
     if len(handlers) != 1:
         return None
     handler = handlers[0]
-    if (type(handler) is not logging.StreamHandler or type(handler.formatter) is not JsonFormatter or handler.filters
+    if (type(handler) not in (logging.StreamHandler, LineHandler) or type(handler.formatter) is not JsonFormatter or handler.filters
             or level < handler.level or logging.getLogRecordFactory() is not logging.LogRecord):
         return None
     return handler
@@ -109,9 +209,10 @@ def line(logger: logging.Logger, level: int, msg: str, fields: dict) -> None:
     ``JsonFormatter`` stream handler, no filters); otherwise through ``logging`` as usual. ``fields``
     holds plain values under names that are neither standard record attributes nor secret-like.
 
-    The line is written as bytes: the fixed part (level, logger, message) is serialized once per kind of
-    line, the fields in one ``orjson`` call, and the bytes go to the stream's binary buffer (the text layer
-    is flushed first, so lines written through ``logging`` keep their order), one ``write`` per line."""
+    The line is made as bytes: the fixed part (level, logger, message) is serialized once per kind of line
+    and the fields in one ``orjson`` call. It is held for a later write with others (``LineHandler`` with
+    ``hold_s`` > 0), or written at once to the stream's binary buffer (the text layer is flushed first, so
+    lines written through ``logging`` keep their order)."""
     if not logger.isEnabledFor(level):
         return
     handler = _direct_handler(logger, level)
@@ -124,16 +225,12 @@ def line(logger: logging.Logger, level: int, msg: str, fields: dict) -> None:
     body = orjson.dumps(values, default=str)
     data = b"".join((b'{"ts":"', stamp.encode(), b'",', _fixed(level, logger.name, msg),
                      b"," if len(body) > 2 else b"", body[1:], handler.terminator.encode()))
-    stream = handler.stream
+    if type(handler) is LineHandler and handler.hold_s > 0:
+        handler.hold(data)
+        return
     handler.acquire()
     try:
-        raw = getattr(stream, "buffer", None)
-        if raw is None or getattr(stream, "encoding", "").lower().replace("-", "") not in ("utf8",):
-            stream.write(data.decode())
-        else:
-            stream.flush()  # anything the text layer holds goes first
-            raw.write(data)
-        stream.flush()
+        write_bytes(handler.stream, data)
     except Exception:  # a closed or broken stream: let logging report it as it would for any record
         handler.release()
         logger.log(level, msg, extra=fields)

@@ -125,6 +125,10 @@ class Settings(BaseSettings):
         "`[\"https://dash.example\"]`); empty: none.")
     log_level: LogLevel = Field(
         "info", description="Log level of the JSON-lines log: debug, info, warning, error (any case).")
+    access_log_hold_s: float = Field(
+        0.05, ge=0, le=5, description="Access log lines (one per request) are written in batches at most this many "
+        "seconds apart, one write for many lines; 0 writes each line as its request ends. Other log lines are never "
+        "held and write the held ones first; a process killed outright loses at most this long's access lines.")
     server_http: Literal["auto", "h11", "httptools"] = Field(
         "auto", description="HTTP parser of the server: `auto` takes httptools (installed with Tikhon), `h11` the pure-Python "
         "parser."

@@ -95,7 +95,7 @@ def run(settings: Settings) -> None:
         Supervisor(settings, count).run()
         return
 
-    configure(settings.log_level)
+    configure(settings.log_level, hold_s=settings.access_log_hold_s)
     app, store, worker = build(settings)
     keys_exist = store.keys.any_active()
     check_bind(settings.host, keys_exist)

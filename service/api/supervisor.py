@@ -321,7 +321,7 @@ def child_main() -> None:
 
     cfg = json.loads(sys.stdin.buffer.read())
     settings = Settings(**cfg["settings"])
-    configure(settings.log_level)
+    configure(settings.log_level, hold_s=settings.access_log_hold_s)
     sock = socket.socket(fileno=cfg["fd"])
     ready_fd = cfg["ready_fd"]
 

@@ -113,3 +113,59 @@ def test_the_direct_log_line_is_the_logging_line():
         assert len(buf.getvalue().splitlines()) == 2
     finally:
         logs.configure("warning")
+
+
+def test_the_answer_is_starlettes_response():
+    # The prediction answer writes its header list itself; Starlette's Response is the reference.
+    from starlette.responses import Response
+
+    from service.api.routes.predictions import Answer
+
+    for payload, media, headers in [(b'{"model":{},"predictions":[]}', "application/json", {}),
+                                    ("value,warnings\n1.5,\n", "text/csv", {"Tikhon-Model": "p", "Tikhon-Model-Version": "3"})]:
+        ours, ref = Answer(payload, media, headers), Response(payload, media_type=media, headers=headers or None)
+        assert (ours.status_code, ours.body, ours.raw_headers) == (ref.status_code, ref.body, ref.raw_headers)
+
+
+def test_request_metrics_render_as_prometheus_clients_own():
+    # One process keeps the per-request counters as plain numbers (service.api.metrics._Tally); the text it
+    # renders must be what prometheus_client's Counter and Histogram give for the same observations, apart from
+    # the _created time stamps (when each label set was first seen).
+    import re
+
+    from prometheus_client import CollectorRegistry, Counter, Histogram, generate_latest
+
+    from service.api import metrics as metrics_module
+
+    ours = metrics_module.ApiMetrics()
+    registry = CollectorRegistry(auto_describe=True)
+    requests = Counter("tikhon_http_requests", metrics_module._HELP["requests"], ["route", "method", "status"], registry=registry)
+    latency = Histogram("tikhon_http_request_seconds", metrics_module._HELP["latency"], ["route", "method"],
+                        buckets=metrics_module._BUCKETS, registry=registry)
+    predictions = Counter("tikhon_predictions", metrics_module._HELP["predictions"], ["model", "version"], registry=registry)
+    hits = Counter("tikhon_model_cache_hits", metrics_module._HELP["cache_hits"], registry=registry)
+    seen = [("POST", "/v1/models/{name}/predictions", 200, s) for s in (0.0004, 0.0005, 0.001, 0.0011, 0.3, 12.0)]
+    seen += [("GET", "/v1/models", 404, 0.002), ("POST", "/v1/models/{name}/predictions", 422, 0.0)]
+    for method, route, status, s in seen:
+        ours.observe_request(method, route, status, s)
+        requests.labels(route, method, str(status)).inc()
+        latency.labels(route, method).observe(s)
+    for model, version, rows in [("pumps", 1, 3), ("pumps", 2, 10_000), ("pumps", 1, 1)]:
+        ours.count_predictions(model, version, rows)
+        predictions.labels(model, str(version)).inc(rows)
+    for _ in range(4):
+        ours.cache_hit()
+        hits.inc()
+
+    def comparable(text: bytes) -> list[str]:
+        lines = [x for x in text.decode().splitlines() if "_created" not in x]
+        return [re.sub(r"^(tikhon_http_request_seconds_sum\{[^}]*\}) (\S+)$", lambda m: f"{m[1]} {float(m[2]):.12g}", x)
+                for x in lines]
+
+    expected = comparable(generate_latest(registry))
+    got = [x for x in comparable(ours.render()) if not x.startswith(("tikhon_model_cache_misses", "tikhon_catalog_stale",
+                                                                       "# HELP tikhon_model_cache_misses", "# TYPE tikhon_model_cache_misses",
+                                                                       "# HELP tikhon_catalog_stale", "# TYPE tikhon_catalog_stale"))]
+    assert got == expected
+    created = [x for x in ours.render().decode().splitlines() if "_created{" in x or x.startswith("tikhon_model_cache_hits_created")]
+    assert len(created) == 3 + 2 + 2 + 1  # one per label set, as prometheus_client writes them
