@@ -117,7 +117,8 @@ class _TooLarge(Exception):
 class BodyLimit:
     """Refuses a request body larger than ``limit`` bytes with a 413 problem that names the limit.
 
-    A declared ``Content-Length`` above the limit is refused before anything is read. Otherwise the
+    A declared ``Content-Length`` above the limit is refused before anything is read; one within it (and no
+    ``Transfer-Encoding``) frames the body, which the server then reads to exactly that length. Otherwise the
     bytes are counted as they arrive; at the first byte past the limit reading stops, and whatever the
     application was about to answer is replaced by the 413 (a handler that swallowed the read error and
     answered 400 does not hide the real reason)."""
@@ -142,16 +143,24 @@ class BodyLimit:
         if scope["type"] != "http":
             await self.app(scope, receive, send)
             return
+        declared = None
+        chunked = False
         for k, v in scope.get("headers", ()):
-            if k == b"content-length":
+            if k == b"content-length" and declared is None:
                 try:
                     declared = int(v)
                 except ValueError:
-                    declared = None
-                if declared is not None and declared > self.limit:
+                    declared = -1
+                if declared > self.limit:
                     await _send_problem(send, self._problem(scope, declared))
                     return
-                break
+            elif k == b"transfer-encoding":
+                chunked = True
+        if declared is not None and declared >= 0 and not chunked:
+            # A body framed by its Content-Length is exactly that many bytes: the server reads no more as this
+            # request's body (RFC 9112, section 6.3), so a declared length within the limit needs no counting.
+            await self.app(scope, receive, send)
+            return
 
         count = [0]
         exceeded = [False]
