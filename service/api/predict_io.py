@@ -50,6 +50,9 @@ def check_interval_level(value: Any, field: str) -> float | None:
     return float(value)
 
 
+_BODY_FIELDS = frozenset({"rows", "interval_level", "unseen_levels"})
+
+
 def parse_json_body(raw: bytes, limit: int, interval_level_q: float | None, max_label: int | None = tables.MAX_LABEL_CHARS
                      ) -> tuple[dict, float | None, int, str]:
     body = parse_json(raw)
@@ -58,8 +61,9 @@ def parse_json_body(raw: bytes, limit: int, interval_level_q: float | None, max_
             f"the body must be a JSON object {{\"rows\": [...], \"interval_level\": 0.9}}, got a {type(body).__name__}.",
             errors=[{"field": "body", "message": "expected an object"}],
         )
-    extra = sorted(set(body) - {"rows", "interval_level", "unseen_levels"})
+    extra = body.keys() - _BODY_FIELDS
     if extra:
+        extra = sorted(extra)
         raise InvalidData(
             f"unknown field(s) {extra} in the body; only 'rows', 'interval_level' and 'unseen_levels' are read"
             + (" ('interval' is now called 'interval_level')." if "interval" in extra else "."),

@@ -106,7 +106,13 @@ class FittedModel:
             Phi = np.hstack([Phi, block])
         return Phi, X, unseen
 
+    @cached_property
+    def _inputs(self) -> frozenset[str]:
+        return frozenset([*self.features, *self.categories.names])
+
     def check_columns(self, cols: dict[str, np.ndarray]) -> None:
+        if cols.keys() == self._inputs:  # exactly the inputs (the usual request)
+            return
         needed = list(self.features) + list(self.categories.names)
         missing = [c for c in needed if c not in cols]
         if missing:
@@ -164,6 +170,8 @@ class FittedModel:
         m = _nrows(cols)
         step = self.chunk_rows(memory_bytes, interval_level is not None)
         if m <= step:
+            if m <= SMALL_ROWS and self.basis.kind != "rbf":  # what _detail would call
+                return self._detail_small(cols, interval_level)
             return self._detail(cols, interval_level)
         parts = [self._detail(_rows(cols, a, a + step), interval_level) for a in range(0, m, step)]
         out: dict[str, Any] = {}
