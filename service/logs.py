@@ -8,6 +8,7 @@ defence any field whose name mentions a key, secret, token or authorization is d
 
 from __future__ import annotations
 
+import asyncio
 import functools
 import logging
 import os
@@ -67,7 +68,9 @@ HOLD_BYTES = 64 * 1024  # held access lines are written at once when they reach 
 
 class LineHandler(logging.StreamHandler):
     """The JSON lines handler. With ``hold_s`` > 0, the access log's lines (``line``) are held and written
-    together: when ``hold_s`` seconds have passed since the first one held (a background thread), when they
+    together: when ``hold_s`` seconds have passed since the first one held (a timer of the event loop when the
+    line comes from its thread, as the request context's do, so no other thread competes for the interpreter
+    lock on every batch; else a background thread of the handler), when they
     reach ``HOLD_BYTES``, before any other record (so lines keep their order), and at ``flush`` (which
     ``logging.shutdown`` calls when the process exits). A process killed outright loses what it held."""
 
@@ -95,11 +98,18 @@ class LineHandler(logging.StreamHandler):
             self._held_bytes += len(data)
             if self._held_bytes >= HOLD_BYTES:
                 self._write_held()
-            elif len(self._held) == 1:
-                if self._thread is None:
-                    self._thread = threading.Thread(target=self._run, name="tikhon-log", daemon=True)
-                    self._thread.start()
-                self._due.set()
+            elif len(self._held) == 1:  # a new batch: its write is due hold_s from now
+                try:
+                    loop = asyncio.get_running_loop()
+                except RuntimeError:
+                    loop = None
+                if loop is not None:  # on the event loop's thread (the request context): a timer of the loop
+                    loop.call_later(self.hold_s, self.flush)
+                else:  # any other thread: the handler's own thread writes it
+                    if self._thread is None:
+                        self._thread = threading.Thread(target=self._run, name="tikhon-log", daemon=True)
+                        self._thread.start()
+                    self._due.set()
         finally:
             self.release()
 

@@ -113,3 +113,18 @@ def test_without_a_hold_each_line_is_written_at_once():
         assert [e["n"] for e in _lines(buf)] == [1]
     finally:
         logs.configure("warning")
+
+
+def test_lines_held_on_an_event_loop_are_written_by_its_timer(held):
+    import asyncio
+
+    async def serve():
+        for i in range(3):
+            logs.line(ACCESS, logging.INFO, "request", {"n": i})
+        assert held.getvalue() == ""
+        await asyncio.sleep(0.5)  # the hold is 0.2 s
+        return [e["n"] for e in _lines(held)]
+
+    assert asyncio.run(serve()) == [0, 1, 2]
+    (handler,) = logging.getLogger("tikhon").handlers
+    assert handler._thread is None  # no thread of its own was needed
