@@ -317,6 +317,30 @@ class FittedModel:
             hi = self._shifted_order_statistic(mu, k_hi)
         return lo, hi
 
+    def _tail_candidates(self, k: int) -> tuple[np.ndarray, np.ndarray, int]:
+        """The residuals among which the k-th smallest of {μ_f(i) + Rᵢ} lies, for any shifts μ, and its rank
+        among them: (fold of each, residual, rank). Within a fold the values rise with the residual (rounding
+        is monotone), so the k smallest of the union come from each fold's k smallest residuals, and the
+        k-th smallest is the (n − k + 1)-th largest, found among each fold's n − k + 1 largest. The values
+        ranked are the direct form's own, so the answer is the same; for the bounds of an interval (the tails)
+        there are fewer of them: 1,000 of 2,000 residuals for a 0.9 interval over 5 folds."""
+        hit = self._tails.get(k)
+        if hit is not None:
+            return hit
+        n = int(self.residuals.size)
+        take = min(k, n - k + 1)
+        parts = [(f, r[:take] if take == k else r[max(r.size - take, 0):]) for f, r in enumerate(self._fold_residuals)]
+        folds = np.concatenate([np.full(r.size, f, dtype=np.int64) for f, r in parts])
+        residuals = np.concatenate([r for _, r in parts])
+        rank = k if take == k else residuals.size - take + 1
+        if len(self._tails) < 64:  # a few interval levels are asked for; keep them
+            self._tails[k] = (folds, residuals, rank)
+        return folds, residuals, rank
+
+    @cached_property
+    def _tails(self) -> dict[int, tuple[np.ndarray, np.ndarray, int]]:
+        return {}
+
     @cached_property
     def _pooled_residuals(self) -> np.ndarray:
         return np.sort(self.residuals)
@@ -366,8 +390,9 @@ class FittedModel:
         mostly equal (an exact fit) stays as cheap. Rows with a non-finite shift take the direct form."""
         m, K = mu.shape
         if m * self.residuals.size <= _DIRECT_VALUES:  # a few rows: rank the values themselves (the direct form)
-            values = mu[:, self.residual_fold] + self.residuals
-            return np.partition(values, k - 1, axis=1)[:, k - 1]
+            folds, residuals, rank = self._tail_candidates(k)
+            values = mu[:, folds] + residuals
+            return np.partition(values, rank - 1, axis=1)[:, rank - 1]
         levels = self._fold_levels
         pooled = self._pooled_residuals
         out = np.empty(m)

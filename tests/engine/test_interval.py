@@ -131,3 +131,21 @@ def test_cv_plus_bounds_do_not_form_every_shifted_residual(diabetes_model):
     ref_lo, ref_hi = brute_force_bounds(m, Phi[:200], 0.1)
     np.testing.assert_allclose(lo[:200], ref_lo, rtol=1e-12, atol=1e-12)
     np.testing.assert_allclose(hi[:200], ref_hi, rtol=1e-12, atol=1e-12)
+
+
+def test_a_few_rows_rank_only_the_tails_and_equal_the_brute_force_form_bit_for_bit(diabetes_model):
+    # A few rows are ranked directly among each fold's k smallest (or n - k + 1 largest) shifted residuals
+    # (FittedModel._tail_candidates): the same floating-point values as the definition, so the same bits;
+    # the variants have unequal folds, folds smaller than the tail, empty folds, ties and thinned residuals.
+    model, X = diabetes_model
+    rng = np.random.default_rng(41)
+    cols = [f"x{j}" for j in range(4)]
+    Q = np.vstack([X[rng.integers(0, X.shape[0], 3)], X[rng.integers(0, X.shape[0], 2)] * 6.0])
+    for label, m in variants(model, rng):
+        Phi, _, _ = m.design({c: Q[:, j] for j, c in enumerate(cols)})
+        assert Phi.shape[0] * m.residuals.size <= model_module._DIRECT_VALUES  # the direct form is taken
+        value = m.intercept + Phi @ m.weights
+        for alpha in (0.01, 0.05, 0.1, 0.25, 0.5, 0.75):
+            lo, hi = m._interval(Phi, value, alpha)
+            ref_lo, ref_hi = brute_force_bounds(m, Phi, alpha)
+            assert lo.tobytes() == ref_lo.tobytes() and hi.tobytes() == ref_hi.tobytes(), (label, alpha)
