@@ -10,6 +10,8 @@ pump-station scenario, then, each in a fresh process so peak memory is its own:
   (column-major expansion in place, batches on every usable core with one BLAS thread each);
 - the train child keeps the scanned-column cache as a worker does (``service.scancache``, in a temporary
   folder beside the file; ``--scan-cache-bytes 0`` decodes the file on every pass instead);
+- reads: the CPU-seconds of one pass that only reads the rows: decoding the file, decoding it while writing
+  the cache (the scan), mapping the cache back (every later pass);
 - gemm: the machine's matrix-product rate (GFLOP/s, best of 3 products of 2,000 × 2,000 matrices), so
   ``flop_ratio`` = training wall time / (the Gram's 2·n·m² flops at that rate).
 
@@ -82,6 +84,36 @@ def child_train(path: str, batch_rows: int, dask: str | None, cache_bytes: int =
     return {"cache_reads": reads, "wall_s": wall, "cpu_s": cpu, "passes": {k: [round(v[0], 2), round(v[1], 2)] for k, v in split.items()},
             "chosen": res.chosen["basis"], "strength": res.chosen["penalty"]["strength"],
             "cv_rmse": res.chosen["mean"], "peak_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}
+
+
+def child_reads(path: str, batch_rows: int) -> dict:
+    """CPU-seconds of one pass that only reads the rows, three ways: decoding the file (what every pass did
+    without the cache), decoding it while writing the cache (the scan's share), and mapping the cache back
+    (every later pass)."""
+    import tempfile
+
+    from service.scancache import ScanCache
+    from service.sources import open_source
+
+    columns = FEATURES + ["energy_kwh"]
+    _, parts = open_source(Path(path))
+
+    def one_pass(ps) -> float:
+        c0 = time.process_time()
+        for p in ps:
+            for batch in p.read(columns, batch_rows):
+                for c in columns:  # touch every value, as a pass does
+                    batch[c].sum()
+        return time.process_time() - c0
+
+    one_pass(parts)  # warm: imports, the file in the page cache
+    out = {"source_cpu_s": one_pass(parts)}
+    with tempfile.TemporaryDirectory(dir=Path(path).parent) as scratch, ScanCache(Path(scratch), 2**40) as cache:
+        wrapped = cache.wrap(parts)
+        out["write_cpu_s"] = one_pass(wrapped)
+        out["mapped_cpu_s"] = one_pass(wrapped)
+        out["cache_mb"] = cache.used / 2**20
+    return out
 
 
 def _time_passes() -> dict[str, list[float]]:
@@ -163,7 +195,7 @@ def main() -> None:
     ap.add_argument("--dask", default=None, help='"local" for a LocalCluster, or a scheduler address')
     ap.add_argument("--scan-cache-bytes", type=int, default=2 * 2**30,
                     help="the scanned-column cache's limit (TIKHON_SCAN_CACHE_BYTES); 0: decode the file every pass")
-    ap.add_argument("--child", choices=["train", "floor", "gemm"])
+    ap.add_argument("--child", choices=["train", "floor", "gemm", "reads"])
     args = ap.parse_args()
     path = Path(args.dir) / f"pumps-{args.rows}.parquet"
     if args.child == "train":
@@ -171,6 +203,9 @@ def main() -> None:
         return
     if args.child == "floor":
         print(json.dumps(child_floor(str(path), args.batch_rows)))
+        return
+    if args.child == "reads":
+        print(json.dumps(child_reads(str(path), args.batch_rows)))
         return
     if args.child == "gemm":
         print(json.dumps({"flops_per_s": gemm_rate()}))
@@ -188,6 +223,7 @@ def main() -> None:
         out = subprocess.run(cmd, check=True, capture_output=True, text=True).stdout.strip().splitlines()[-1]
         return json.loads(out)
 
+    reads = run("reads")
     gemm = run("gemm")["flops_per_s"]
     floor = run("floor")
     train = run("train")
@@ -202,6 +238,8 @@ def main() -> None:
         print("train passes (wall s / CPU s): " + " ".join(f"{k}={w}/{c}" for k, (w, c) in train["passes"].items()))
     print("partition reads: " + " ".join(f"{k}={v}" for k, v in train["cache_reads"].items())
           + " (written: the scan, cached; mapped: from the cache; source: decoded again)")
+    print(f"one reading pass, CPU-s: decoding the file {reads['source_cpu_s']:.2f}, decoding and writing the cache "
+          f"{reads['write_cpu_s']:.2f}, mapping the cache back {reads['mapped_cpu_s']:.2f} ({reads['cache_mb']:.0f} MiB)")
     print(f"load average {' '.join(f'{v:.1f}' for v in os.getloadavg())}")
     print(f"rows={args.rows} wall_s={train['wall_s']:.1f} cpu_s={train['cpu_s']:.1f} peak_rss_mb={train['peak_rss_mb']:.0f} "
           f"floor_ratio={train['wall_s'] / floor['wall_s']:.2f} floor_cpu_ratio={train['cpu_s'] / floor['cpu_s']:.2f} "

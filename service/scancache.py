@@ -43,7 +43,9 @@ class _Entry:
 
 @dataclass
 class ScanCache:
-    """The cache of one training job: files in ``folder``, at most ``limit`` bytes in all."""
+    """The cache of one training job: files in ``folder``, at most ``limit`` bytes in all. ``reads`` counts
+    partition reads by where their rows came from: ``written`` (decoded and kept), ``mapped`` (the cache),
+    ``source`` (decoded again: past the limit, or not cacheable)."""
 
     folder: Path
     limit: int
@@ -222,7 +224,11 @@ class CachedPart:
                             with self.cache._lock:
                                 self.cache.full = True
                             drop()
-                    except (OSError, pa.ArrowException, TypeError, ValueError):
+                    except OSError:  # a full or failing disk: no later partition tries either
+                        with self.cache._lock:
+                            self.cache.full = True
+                        drop()
+                    except (pa.ArrowException, TypeError, ValueError):
                         drop()
                 yield batch
             done = True

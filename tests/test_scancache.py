@@ -147,3 +147,15 @@ def test_mapped_batches_are_the_scanned_ones_and_read_only(tmp_path):
         assert len(list(part.read(columns, 32))) > len(first)
         list(part.read(["x5"], 64))
         assert cache.reads["source"] == 2
+
+
+def test_a_scratch_folder_that_cannot_be_written_turns_the_cache_off(tmp_path):
+    d = data()
+    schema, parts = open_source(parquet_folder(tmp_path, d))
+    plain = tune_partitions(parts, schema, SPEC)
+    gone = tmp_path / "scratch-removed-meanwhile"  # as a full or failing disk: every write fails
+    with ScanCache(gone, 1 << 30) as cache:
+        cached = tune_partitions(cache.wrap(parts), schema, SPEC)
+        assert cache.full and cache.entries == {} and cache.reads["mapped"] == 0 and cache.reads["source"] > 0
+    assert not gone.exists()
+    assert_identical(plain, cached)
