@@ -5,7 +5,8 @@ summaries of every basis group, the last pass; MAE adds one). ``ScanCache.wrap``
 partitions that, on their first complete read (the scan), write every batch they yield, as converted by
 the one reader (``service.sources.arrow_columns``: numbers as float64, labels as text, ...), to an Arrow
 IPC file in the job's scratch folder (``service.store.scratch``), and on every later read map that file
-into memory and yield the same batches, with the same row boundaries and bit-identical values, instead
+into memory (one mapping per batch, so memory holds the batches in use, not the partition) and yield the
+same batches, with the same row boundaries and bit-identical values, instead
 of decoding Parquet or parsing CSV again. Numeric columns come back as read-only views of the mapped
 file (no copy); the engine only reads its batches.
 
@@ -172,13 +173,17 @@ class CachedPart:
     def _mapped(self, entry: _Entry, columns: list[str]) -> Iterator[dict[str, np.ndarray]]:
         import pyarrow as pa
 
-        source = pa.memory_map(str(entry.path), "r")
-        reader = pa.ipc.open_file(source)
+        reader = pa.ipc.open_file(pa.memory_map(str(entry.path), "r"))
         index = {name: i for i, name in enumerate(reader.schema.names)}
         dtypes = {name: np.dtype(reader.schema.metadata[f"dtype:{name}".encode()].decode()) for name in columns}
-        for i in range(reader.num_record_batches):
-            rb = reader.get_batch(i)
+        count = reader.num_record_batches
+        del reader
+        for i in range(count):
+            # a mapping per batch, released with the batch's arrays: the pages of the partition's earlier
+            # batches do not stay mapped (and counted in this process's memory) while it is read
+            rb = pa.ipc.open_file(pa.memory_map(str(entry.path), "r")).get_batch(i)
             yield {name: _to_numpy(rb.column(index[name]), dtypes[name]) for name in columns}
+            del rb
 
     def _write_through(self, columns: list[str], batch_rows: int) -> Iterator[dict[str, np.ndarray]]:
         import pyarrow as pa

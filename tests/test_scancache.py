@@ -159,3 +159,35 @@ def test_a_scratch_folder_that_cannot_be_written_turns_the_cache_off(tmp_path):
         assert cache.full and cache.entries == {} and cache.reads["mapped"] == 0 and cache.reads["source"] > 0
     assert not gone.exists()
     assert_identical(plain, cached)
+
+
+def test_a_mapped_read_holds_its_batches_not_the_partition(tmp_path):
+    """Reading a cached partition of 40 MB (1,000,000 rows × 5 float64 columns) in batches of 65,536 rows
+    keeps only the batches in use resident: the peak growth of this process (VmHWM after clear_refs,
+    proc(5)) stays far below the partition's size."""
+    import os
+
+    from procmem import peak_growth  # tests/procmem.py
+
+    rng = np.random.default_rng(0)
+    columns = ["a", "b", "c", "d", "y"]
+    pq.write_table(pa.table({c: rng.standard_normal(1_000_000) for c in columns}), tmp_path / "wide.parquet",
+                   row_group_size=1_000_000)
+    _, parts = open_source(tmp_path / "wide.parquet")
+    folder = tmp_path / "scratch"
+    folder.mkdir()
+    with ScanCache(folder, 1 << 30) as cache:
+        [part] = cache.wrap(parts)
+        for _ in part.read(columns, 65_536):
+            pass
+        assert cache.used > 40_000_000
+
+        def mapped_pass():
+            total = 0.0
+            for batch in part.read(columns, 65_536):
+                total += sum(float(batch[c].sum()) for c in columns)
+            return total
+
+        growth, _ = peak_growth(os.getpid(), mapped_pass)
+        assert cache.reads["mapped"] == 1
+        assert growth < 15_000_000, growth  # a few batches of 2.6 MB, never the partition's 40 MB
