@@ -181,13 +181,20 @@ def _train(data_path: str | None, spec: dict, conn, progress, cancel, deadline: 
                 mp.current_process().daemon = False
             executor = DaskExecutor(dask_scheduler, dask_workers) if dask_scheduler else SerialExecutor()
             cache = None
+            held = contextlib.ExitStack()
             if scratch is not None and not dask_scheduler:  # later passes read what the scan decoded
                 from pathlib import Path
 
                 from service.scancache import ScanCache
+                from service.store.scratch import share
 
-                cache = ScanCache(Path(scratch["folder"]), int(scratch["limit"]))
-                parts = cache.wrap(parts)
+                try:  # the folder stays busy while this process lives, even if its worker dies first
+                    folder = held.enter_context(share(Path(scratch["folder"])))
+                except OSError:
+                    folder = None
+                if folder is not None:
+                    cache = ScanCache(folder, int(scratch["limit"]))
+                    parts = cache.wrap(parts)
             try:  # the server's limits (max_levels: checked while the rows are scanned)
                 result = tune_partitions(parts, schema, spec, executor=executor, progress=on_progress,
                                          should_stop=should_stop, budget=Budget(**(limits or {})))
@@ -197,6 +204,7 @@ def _train(data_path: str | None, spec: dict, conn, progress, cancel, deadline: 
                     log.info("scanned-column cache", extra={"reads": dict(cache.reads), "cached_bytes": cache.used,
                                                             "limit_bytes": cache.limit})
                     cache.close()
+                held.close()
         elif continuation is not None:  # only the new rows, merged into the parent's per-fold summaries
             from service.tables import read_staged
             from service.engine.continued import continue_tune

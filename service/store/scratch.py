@@ -4,15 +4,16 @@ A training job that streams its source keeps the columns its first pass decoded 
 (``service.scancache``), so later passes read them instead of decoding the files again. A scratch
 folder is made by ``job_scratch`` like a staging folder (``service.store.store``):
 
-* ``<token>.lock`` (``token``: 32 hex digits) is created exclusively, locked with ``flock`` for as long
-  as the job runs, and holds ``SCRATCH_MARK`` and the job id;
+* ``<token>.lock`` (``token``: 32 hex digits) is created exclusively, holds ``SCRATCH_MARK`` and the job
+  id, and is locked with a shared ``flock`` for as long as the job runs, by the worker that made it and by
+  the training process that uses it (``share``): the folder is busy while either one lives;
 * ``<token>/`` is created next, and in it ``.tikhon-scratch`` holds ``SCRATCH_MARK`` and the token;
 * only files named like the cache names them (``CACHE_FILE``) are ever written in it.
 
 When the block ends (the job succeeded, failed, was cancelled or its process was killed) the folder is
 emptied of those files and removed with its lock. What a killed worker leaves behind is removed by
 ``sweep`` at the next start, and only when every proof holds: a lock file named by a token, holding the
-mark, not locked by a living process; a folder of the same token whose marker holds the mark and that
+mark, not locked by a living process (the sweep takes it exclusively, without waiting); a folder of the same token whose marker holds the mark and that
 token. Even then only files named like the cache's are removed, and the folder only when that leaves it
 empty (``rmdir``). Anything else (an unmarked folder, a foreign file, a symbolic link) is kept and
 reported, never followed or removed.
@@ -51,7 +52,7 @@ def job_scratch(store_root: Path, job_id: str) -> Iterator[Path]:
         token = uuid.uuid4().hex
         lock_path = root / f"{token}.lock"
         fd = os.open(lock_path, os.O_CREAT | os.O_EXCL | os.O_RDWR | os.O_NOFOLLOW, 0o644)
-        fcntl.flock(fd, fcntl.LOCK_EX)
+        fcntl.flock(fd, fcntl.LOCK_SH)
         os.write(fd, SCRATCH_MARK + job_id.encode("ascii", "replace")[:64] + b"\n")
         try:
             ours = os.fstat(fd).st_ino == os.stat(lock_path).st_ino
@@ -75,6 +76,21 @@ def job_scratch(store_root: Path, job_id: str) -> Iterator[Path]:
                 lock_path.unlink(missing_ok=True)
         except OSError:  # kept; the next start's sweep removes it (or reports what it cannot prove ours)
             pass
+        os.close(fd)
+
+
+@contextmanager
+def share(folder: Path) -> Iterator[Path]:
+    """Hold ``folder`` (made by ``job_scratch`` in another process) busy while the block runs: a shared
+    ``flock`` on its lock file, after checking the file holds the mark. Raises ``OSError`` otherwise."""
+    folder = Path(folder)
+    fd = os.open(folder.parent / f"{folder.name}.lock", os.O_RDONLY | os.O_NOFOLLOW)
+    try:
+        fcntl.flock(fd, fcntl.LOCK_SH)
+        if os.pread(fd, len(SCRATCH_MARK), 0) != SCRATCH_MARK or not folder.is_dir() or folder.is_symlink():
+            raise OSError(f"{folder.name} is not a scratch folder made for this job")
+        yield folder
+    finally:
         os.close(fd)
 
 

@@ -134,3 +134,63 @@ def test_no_scratch_without_a_limit_or_on_dask(tmp_path, kit):
             assert got["limit"] == 1 << 20 and Path(got["folder"]).parent == Path(store.root) / ".scratch"
             assert len(scratch_entries(store)) == 2  # the folder and its lock, held
         assert scratch_entries(store) == []
+
+
+LONG_SPEC_BASES = [{"kind": "rbf", "widths": [0.5, 1.0, 2.0, 4.0, 8.0, 16.0], "centers": 200}]
+
+
+def test_a_killed_training_process_leaves_no_scratch(tmp_path, kit):
+    import os
+    import signal
+
+    from service.worker import Worker
+
+    with kit.service(tmp_path, worker=False) as (base, store, settings):
+        write_parts(settings.data_dir / "june", kit.pump_table(120_000, seed=54), files=2)
+        r = submit(base, "june", spec_of(kit, bases=LONG_SPEC_BASES))
+        assert r.status_code == 202, r.text
+        worker = Worker(settings, store)
+        t = threading.Thread(target=worker.run_once, daemon=True)
+        t.start()
+        wait_for(lambda: [f for f in cached_files(store) if f.name.endswith(".arrow")], "a cache file")
+        os.kill(worker._proc.pid, signal.SIGKILL)  # as the kernel's OOM killer would
+        t.join(300)
+        job = httpx.get(f"{base}/v1/trainings/{r.json()['id']}").json()
+        assert job["state"] == "failed" and "ended without a result" in job["problem"]["detail"], job
+        assert scratch_entries(store) == []
+
+
+def test_a_killed_worker_leaves_a_scratch_that_the_next_start_removes(tmp_path, kit):
+    """`tikhon worker` killed with SIGKILL while its job runs: nothing cleans up then (its training process
+    dies with it); the store's start-up sweep in the next process removes the scratch folder, whose lock
+    no process holds any more."""
+    import os
+    import signal
+    import subprocess
+    import sys
+
+    from service.store import Store
+
+    with kit.service(tmp_path, worker=False) as (base, store, settings):
+        write_parts(settings.data_dir / "june", kit.pump_table(120_000, seed=55), files=2)
+        r = submit(base, "june", spec_of(kit, bases=LONG_SPEC_BASES))
+        assert r.status_code == 202, r.text
+        env = {k: v for k, v in os.environ.items() if not k.startswith("TIKHON_")}
+        env.update(TIKHON_STORE=str(settings.store), TIKHON_DATA_DIR=str(settings.data_dir),
+                   TIKHON_WORKER_POLL_S="0.05", TIKHON_WORKER_HEARTBEAT_S="0.2", TIKHON_LOG_LEVEL="warning",
+                   PYTHONPATH=str(Path(__file__).resolve().parents[2]) + os.pathsep + env.get("PYTHONPATH", ""))
+        proc = subprocess.Popen([sys.executable, "-m", "service.cli", "worker"], env=env,
+                                stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        try:
+            files = wait_for(lambda: [f for f in cached_files(store) if f.name.endswith(".arrow")], "a cache file")
+        finally:
+            proc.send_signal(signal.SIGKILL)
+            proc.wait(30)
+        folder = files[0].parent
+
+        def swept() -> bool:  # a process starting: its store sweeps (the folder is busy until the training dies)
+            with Store(store.settings) as again:
+                return again.last_sweep["scratch"] == 1 or not folder.exists()
+
+        wait_for(swept, "the training process to die with its worker and the sweep to remove its scratch")
+        assert scratch_entries(store) == []

@@ -13,7 +13,7 @@ import signal
 import uuid
 
 from service.store import Store
-from service.store.scratch import FOLDER_MARKER, SCRATCH_MARK, job_scratch, scratch_root
+from service.store.scratch import FOLDER_MARKER, SCRATCH_MARK, job_scratch, scratch_root, share
 
 
 def _reopen(store) -> Store:
@@ -57,17 +57,19 @@ def test_a_killed_jobs_scratch_is_swept_at_the_next_start(store):
     assert again.kept == []
 
 
-def _hold_scratch(root, ready, stop):
+def _hold_scratch(root, ready):
+    import time
+
     with job_scratch(root, "b" * 32) as folder:
         (folder / "part-0.arrow").write_bytes(b"cached")
         ready.set()
-        stop.wait(30)
+        time.sleep(120)  # until the test kills it (a process killed in Condition.wait would hang notify)
 
 
 def test_a_running_jobs_scratch_is_left_alone_and_a_sigkilled_ones_is_swept(store):
     ctx = mp.get_context("spawn")
-    ready, stop = ctx.Event(), ctx.Event()
-    proc = ctx.Process(target=_hold_scratch, args=(store.root, ready, stop))
+    ready = ctx.Event()
+    proc = ctx.Process(target=_hold_scratch, args=(store.root, ready))
     proc.start()
     try:
         assert ready.wait(60)
@@ -82,7 +84,8 @@ def test_a_running_jobs_scratch_is_left_alone_and_a_sigkilled_ones_is_swept(stor
         assert third.last_sweep["scratch"] == 1 and not folder.exists()
         assert list(scratch_root(store.root).iterdir()) == []
     finally:
-        stop.set()
+        if proc.is_alive():
+            proc.kill()
         proc.join(10)
 
 
@@ -135,3 +138,35 @@ def test_a_scratch_link_to_a_foreign_folder_is_never_followed(store, tmp_path):
     except OSError:
         pass
     assert sorted(p.name for p in foreign.iterdir()) == sorted([f"{token}.lock", token])
+
+
+def test_a_training_process_sharing_the_folder_keeps_it_busy_after_its_worker_died(store):
+    """The worker makes the folder and its training process shares it (``share``): killed, the worker
+    releases its lock, but the folder stays busy until the training process ends too."""
+    ctx = mp.get_context("spawn")
+    ready = ctx.Event()
+    proc = ctx.Process(target=_hold_scratch, args=(store.root, ready))
+    proc.start()
+    try:
+        assert ready.wait(60)
+        [folder] = [p for p in scratch_root(store.root).iterdir() if p.is_dir()]
+        with share(folder):
+            os.kill(proc.pid, signal.SIGKILL)
+            proc.join(10)
+            assert _reopen(store).last_sweep["scratch"] == 0 and (folder / "part-0.arrow").exists()
+        assert _reopen(store).last_sweep["scratch"] == 1 and not folder.exists()
+    finally:
+        if proc.is_alive():
+            proc.kill()
+        proc.join(10)
+
+
+def test_share_refuses_a_folder_without_our_marked_lock(tmp_path):
+    folder = tmp_path / ("a" * 32)
+    folder.mkdir()
+    (tmp_path / f"{folder.name}.lock").write_bytes(b"not ours\n")
+    try:
+        with share(folder):
+            raise AssertionError("shared a folder whose lock holds no mark")
+    except OSError:
+        pass
