@@ -189,7 +189,7 @@ def test_batches_larger_than_a_summary_chunk(tmp_path):
     assert_same(mem, tune_partitions(parts, schema, spec))
 
 
-def test_dask_workers_run_blas_on_one_thread():
+def test_dask_workers_run_blas_on_one_thread(monkeypatch):
     """Inside a task on a LocalCluster worker, BLAS runs on one thread (threadpoolctl reads the limit in
     effect from the loaded BLAS library itself), even under a Dask configuration that leaves the workers'
     BLAS threads free; a plain cluster under that configuration shows what the limit guards against."""
@@ -206,6 +206,9 @@ def test_dask_workers_run_blas_on_one_thread():
         return sorted({i["num_threads"] for i in threadpool_info() if i["user_api"] == "blas"})
 
     free = {"distributed.nanny.pre-spawn-environ": {}}  # no OPENBLAS_NUM_THREADS=1 from Dask's nanny
+    for name in ("OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS"):
+        # nor from this process's environment, where an earlier LocalCluster's nanny leaves them behind
+        monkeypatch.delenv(name, raising=False)
     with dask.config.set(free):
         ex = DaskExecutor("local", workers=1)
     try:
