@@ -8,6 +8,10 @@ pump-station scenario, then, each in a fresh process so peak memory is its own:
   nested family (degree 6; every lower degree is a leading block of it) expanded once per batch, and one
   Gram matrix ``AᵀA`` of ``A = [1, Φ, y]`` accumulated over all rows, done as fast as the engine can
   (column-major expansion in place, batches on every usable core with one BLAS thread each);
+- the train child keeps the scanned-column cache as a worker does (``service.scancache``, in a temporary
+  folder beside the file; ``--scan-cache-bytes 0`` decodes the file on every pass instead);
+- reads: the CPU-seconds of one pass that only reads the rows: decoding the file, decoding it while writing
+  the cache (the scan), mapping the cache back (every later pass);
 - gemm: the machine's matrix-product rate (GFLOP/s, best of 3 products of 2,000 × 2,000 matrices), so
   ``flop_ratio`` = training wall time / (the Gram's 2·n·m² flops at that rate).
 
@@ -15,7 +19,7 @@ On a shared machine the CPU-seconds (every thread of the process) are the steadi
 ``floor_cpu_ratio`` = training CPU-seconds / the floor's.
 
 Last line: ``rows=<n> wall_s=<x> cpu_s=<c> peak_rss_mb=<y> floor_ratio=<z> floor_cpu_ratio=<r> flop_ratio=<f>``.
-Run: ``python benchmarks/bench_scale.py [--rows 10000000] [--batch-rows 65536] [--dask local]``.
+Run: ``python benchmarks/bench_scale.py [--rows 10000000] [--batch-rows 65536] [--dask local] [--scan-cache-bytes 0]``.
 """
 
 from __future__ import annotations
@@ -51,10 +55,13 @@ def generate(path: Path, rows: int) -> None:
     os.replace(tmp, path)
 
 
-def child_train(path: str, batch_rows: int, dask: str | None) -> dict:
+def child_train(path: str, batch_rows: int, dask: str | None, cache_bytes: int = 2 * 2**30) -> dict:
+    import tempfile
+
     from service.engine.executors import make_executor
     from service.engine.streaming import tune_partitions
     from service.engine.tune import Budget
+    from service.scancache import ScanCache
     from service.sources import open_source
 
     spec = {"target": "energy_kwh", "features": FEATURES, "bases": [{"kind": "polynomial", "degrees": DEGREES}],
@@ -65,14 +72,48 @@ def child_train(path: str, batch_rows: int, dask: str | None) -> dict:
     split = _time_passes() if dask is None else {}
     t0, c0 = time.perf_counter(), time.process_time()
     schema, parts = open_source(Path(path))
-    # the default job-cost limit (TIKHON_MAX_JOB_COST, 2e11 flops) refuses 10 million rows of degree 6, as
-    # a server would until its operator raised it; the benchmark raises it the same way
-    res = tune_partitions(parts, schema, spec, executor=ex, budget=Budget(max_job_cost=1e14))
+    # as the worker does: the scanned-column cache in a scratch folder beside the data (not on Dask)
+    with tempfile.TemporaryDirectory(dir=Path(path).parent) as scratch, \
+            ScanCache(Path(scratch), cache_bytes if dask is None else 0) as cache:
+        # the default job-cost limit (TIKHON_MAX_JOB_COST, 2e11 flops) refuses 10 million rows of degree 6, as
+        # a server would until its operator raised it; the benchmark raises it the same way
+        res = tune_partitions(cache.wrap(parts), schema, spec, executor=ex, budget=Budget(max_job_cost=1e14))
+        reads = dict(cache.reads)
     wall, cpu = time.perf_counter() - t0, time.process_time() - c0
     ex.close()
-    return {"wall_s": wall, "cpu_s": cpu, "passes": {k: [round(v[0], 2), round(v[1], 2)] for k, v in split.items()},
+    return {"cache_reads": reads, "wall_s": wall, "cpu_s": cpu, "passes": {k: [round(v[0], 2), round(v[1], 2)] for k, v in split.items()},
             "chosen": res.chosen["basis"], "strength": res.chosen["penalty"]["strength"],
             "cv_rmse": res.chosen["mean"], "peak_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}
+
+
+def child_reads(path: str, batch_rows: int) -> dict:
+    """CPU-seconds of one pass that only reads the rows, three ways: decoding the file (what every pass did
+    without the cache), decoding it while writing the cache (the scan's share), and mapping the cache back
+    (every later pass)."""
+    import tempfile
+
+    from service.scancache import ScanCache
+    from service.sources import open_source
+
+    columns = FEATURES + ["energy_kwh"]
+    _, parts = open_source(Path(path))
+
+    def one_pass(ps) -> float:
+        c0 = time.process_time()
+        for p in ps:
+            for batch in p.read(columns, batch_rows):
+                for c in columns:  # touch every value, as a pass does
+                    batch[c].sum()
+        return time.process_time() - c0
+
+    one_pass(parts)  # warm: imports, the file in the page cache
+    out = {"source_cpu_s": one_pass(parts)}
+    with tempfile.TemporaryDirectory(dir=Path(path).parent) as scratch, ScanCache(Path(scratch), 2**40) as cache:
+        wrapped = cache.wrap(parts)
+        out["write_cpu_s"] = one_pass(wrapped)
+        out["mapped_cpu_s"] = one_pass(wrapped)
+        out["cache_mb"] = cache.used / 2**20
+    return out
 
 
 def _time_passes() -> dict[str, list[float]]:
@@ -152,14 +193,19 @@ def main() -> None:
     ap.add_argument("--batch-rows", type=int, default=65_536)
     ap.add_argument("--dir", default="/tmp/tikhon-bench-scale")
     ap.add_argument("--dask", default=None, help='"local" for a LocalCluster, or a scheduler address')
-    ap.add_argument("--child", choices=["train", "floor", "gemm"])
+    ap.add_argument("--scan-cache-bytes", type=int, default=2 * 2**30,
+                    help="the scanned-column cache's limit (TIKHON_SCAN_CACHE_BYTES); 0: decode the file every pass")
+    ap.add_argument("--child", choices=["train", "floor", "gemm", "reads"])
     args = ap.parse_args()
     path = Path(args.dir) / f"pumps-{args.rows}.parquet"
     if args.child == "train":
-        print(json.dumps(child_train(str(path), args.batch_rows, args.dask)))
+        print(json.dumps(child_train(str(path), args.batch_rows, args.dask, args.scan_cache_bytes)))
         return
     if args.child == "floor":
         print(json.dumps(child_floor(str(path), args.batch_rows)))
+        return
+    if args.child == "reads":
+        print(json.dumps(child_reads(str(path), args.batch_rows)))
         return
     if args.child == "gemm":
         print(json.dumps({"flops_per_s": gemm_rate()}))
@@ -172,10 +218,12 @@ def main() -> None:
 
     def run(kind: str) -> dict:
         cmd = [sys.executable, __file__, "--child", kind, "--rows", str(args.rows), "--batch-rows",
-               str(args.batch_rows), "--dir", args.dir] + (["--dask", args.dask] if args.dask and kind == "train" else [])
+               str(args.batch_rows), "--dir", args.dir, "--scan-cache-bytes", str(args.scan_cache_bytes)] + (
+            ["--dask", args.dask] if args.dask and kind == "train" else [])
         out = subprocess.run(cmd, check=True, capture_output=True, text=True).stdout.strip().splitlines()[-1]
         return json.loads(out)
 
+    reads = run("reads")
     gemm = run("gemm")["flops_per_s"]
     floor = run("floor")
     train = run("train")
@@ -188,6 +236,10 @@ def main() -> None:
           f"CV RMSE {train['cv_rmse']:.4f}, executor {'dask ' + args.dask if args.dask else 'in-process'}")
     if train["passes"]:
         print("train passes (wall s / CPU s): " + " ".join(f"{k}={w}/{c}" for k, (w, c) in train["passes"].items()))
+    print("partition reads: " + " ".join(f"{k}={v}" for k, v in train["cache_reads"].items())
+          + " (written: the scan, cached; mapped: from the cache; source: decoded again)")
+    print(f"one reading pass, CPU-s: decoding the file {reads['source_cpu_s']:.2f}, decoding and writing the cache "
+          f"{reads['write_cpu_s']:.2f}, mapping the cache back {reads['mapped_cpu_s']:.2f} ({reads['cache_mb']:.0f} MiB)")
     print(f"load average {' '.join(f'{v:.1f}' for v in os.getloadavg())}")
     print(f"rows={args.rows} wall_s={train['wall_s']:.1f} cpu_s={train['cpu_s']:.1f} peak_rss_mb={train['peak_rss_mb']:.0f} "
           f"floor_ratio={train['wall_s'] / floor['wall_s']:.2f} floor_cpu_ratio={train['cpu_s'] / floor['cpu_s']:.2f} "

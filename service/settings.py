@@ -90,6 +90,12 @@ class Settings(BaseSettings):
     max_source_files: int = Field(
         10_000, ge=1, description="Most Parquet files in one folder 'source' (the list is fixed and stored with the "
         "job at submission).")
+    scan_cache_bytes: int = Field(
+        2 * 2**30, ge=0, description="Most bytes of decoded columns one streamed training job keeps in its scratch "
+        "folder (`<store>/.scratch/`, Arrow IPC files read back memory-mapped), so the passes after the first read them "
+        "instead of decoding the source again; partitions past the limit are decoded again on every pass, and 0 turns "
+        "the cache off. Removed when the job ends. Not used with a Dask cluster, whose workers read their own "
+        "partitions.")
     dask_scheduler: str | None = Field(
         None, description="Run streamed training on a Dask cluster: a scheduler address (tcp://host:8786) or "
         "'local' for a LocalCluster on this machine. Unset: in the worker's own process.")

@@ -40,6 +40,7 @@ Promotion (``promote`` in the request):
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 import logging
 import math
@@ -143,9 +144,10 @@ def _train(data_path: str | None, spec: dict, conn, progress, cancel, deadline: 
            stream: dict | None = None, dask_scheduler: str | None = None, dask_workers: int = 2,
            limits: dict | None = None, parent_pid: int | None = None, data_dir: str | None = None,
            continuation: dict | None = None, read: dict | None = None,
-           live: tuple[int, Any] | None = None) -> None:
+           live: tuple[int, Any] | None = None, scratch: dict | None = None) -> None:
     """Body of the training process: read the staged table (or stream the source), tune, send the
-    artifact back through ``conn``."""
+    artifact back through ``conn``. ``scratch`` (a streamed job in this process): ``{"folder", "limit"}`` of
+    the scanned-column cache (``service.scancache``), whose files are removed here when the training ends."""
     if parent_pid is not None:
         die_with_parent(parent_pid)
     signal.signal(signal.SIGINT, signal.SIG_IGN)  # the parent decides when this process stops
@@ -178,11 +180,31 @@ def _train(data_path: str | None, spec: dict, conn, progress, cancel, deadline: 
                 # (distributed.process watches its parent through a pipe).
                 mp.current_process().daemon = False
             executor = DaskExecutor(dask_scheduler, dask_workers) if dask_scheduler else SerialExecutor()
+            cache = None
+            held = contextlib.ExitStack()
+            if scratch is not None and not dask_scheduler:  # later passes read what the scan decoded
+                from pathlib import Path
+
+                from service.scancache import ScanCache
+                from service.store.scratch import share
+
+                try:  # the folder stays busy while this process lives, even if its worker dies first
+                    folder = held.enter_context(share(Path(scratch["folder"])))
+                except OSError:
+                    folder = None
+                if folder is not None:
+                    cache = ScanCache(folder, int(scratch["limit"]))
+                    parts = cache.wrap(parts)
             try:  # the server's limits (max_levels: checked while the rows are scanned)
                 result = tune_partitions(parts, schema, spec, executor=executor, progress=on_progress,
                                          should_stop=should_stop, budget=Budget(**(limits or {})))
             finally:
                 executor.close()
+                if cache is not None:
+                    log.info("scanned-column cache", extra={"reads": dict(cache.reads), "cached_bytes": cache.used,
+                                                            "limit_bytes": cache.limit})
+                    cache.close()
+                held.close()
         elif continuation is not None:  # only the new rows, merged into the parent's per-fold summaries
             from service.tables import read_staged
             from service.engine.continued import continue_tune
@@ -508,16 +530,22 @@ class Worker:
         cancel = _SPAWN.Event()
         started = time.time()
         deadline = started + s.max_training_seconds
-        proc = _SPAWN.Process(
-            target=_train, args=(job.get("data_path"), request["spec"], child_conn, progress, cancel, deadline,
-                                 stream, s.dask_scheduler, s.dask_local_workers,
-                                 {"max_grid_fits": s.max_grid_fits, "max_levels": s.max_levels,
-                                  "max_job_cost": s.max_job_cost, "max_summary_bytes": s.max_summary_bytes},
-                                 os.getpid(), str(s.data_dir), continuation, read,
-                                 None if stream else self._live_model(name, request)),
-            name=f"tikhon-train-{jid[:8]}", daemon=True,
-        )
-        proc.start()
+        scratch_held = contextlib.ExitStack()  # the job's scratch folder, removed once its process has ended
+        try:
+            proc = _SPAWN.Process(
+                target=_train, args=(job.get("data_path"), request["spec"], child_conn, progress, cancel, deadline,
+                                     stream, s.dask_scheduler, s.dask_local_workers,
+                                     {"max_grid_fits": s.max_grid_fits, "max_levels": s.max_levels,
+                                      "max_job_cost": s.max_job_cost, "max_summary_bytes": s.max_summary_bytes},
+                                     os.getpid(), str(s.data_dir), continuation, read,
+                                     None if stream else self._live_model(name, request),
+                                     self._scratch(scratch_held, jid, stream)),
+                name=f"tikhon-train-{jid[:8]}", daemon=True,
+            )
+            proc.start()
+        except BaseException:
+            scratch_held.close()
+            raise
         child_conn.close()
         self._proc = proc
         message = None
@@ -570,6 +598,7 @@ class Worker:
                 proc.join(5)
             parent_conn.close()
             self._proc = None
+            scratch_held.close()
 
         if stop_reason in ("lost", "shutdown"):
             log.warning("job dropped", extra={"job_id": jid, "reason": stop_reason})
@@ -602,6 +631,25 @@ class Worker:
         except TikhonError:
             pass
         self._publish(job, body, arrays, outcome)
+
+    def _scratch(self, held: contextlib.ExitStack, jid: str, stream: dict | None) -> dict | None:
+        """The scanned-column cache of a streamed job trained in its own process: a scratch folder under the
+        store (``service.store.scratch``), held by ``held`` until the job's process has ended, and the byte
+        limit (``scan_cache_bytes``). None (no cache) for other jobs, on Dask, with the limit 0, or when the
+        folder cannot be made (a full or read-only store: the job then decodes its source on every pass)."""
+        s = self.settings
+        root = getattr(self.store, "root", None)
+        if stream is None or s.dask_scheduler or s.scan_cache_bytes <= 0 or root is None:
+            return None
+        from service.store.scratch import job_scratch
+
+        try:
+            folder = held.enter_context(job_scratch(root, jid))
+        except OSError as exc:
+            log.warning("no scanned-column cache: the job's scratch folder could not be made",
+                        extra={"job_id": jid, "reason": exc.strerror or type(exc).__name__})
+            return None
+        return {"folder": str(folder), "limit": s.scan_cache_bytes}
 
     def _live_model(self, name: str, request: dict[str, Any]) -> tuple[int, Any] | None:
         """(version, model) of the live version when the job's promotion compares with it (``if_better``): the

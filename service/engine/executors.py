@@ -5,6 +5,12 @@ then fold the results with ``combine`` as a balanced binary tree in item order. 
 shape depends only on the number of items, the result does not depend on which task finished first.
 On Dask, the tasks and the combines run on the cluster (only the final, small summary travels back);
 progress is reported as tasks complete, and a stop request cancels every outstanding future.
+
+BLAS runs on one thread per Dask worker thread (a worker plugin, ``threadpoolctl``), as it does per row
+thread in this process (``parallel``): a pass's blocks are tall and narrow, and BLAS threads beside the
+worker threads only oversubscribe the cores. Dask's nanny usually sets ``OPENBLAS_NUM_THREADS=1`` in a
+worker's environment too, but not for a worker started without one, nor under a configuration that
+changes ``distributed.nanny.pre-spawn-environ``; the plugin holds the limit either way.
 """
 
 from __future__ import annotations
@@ -60,6 +66,8 @@ class DaskExecutor:
         else:
             self.client = Client(address, timeout="10s")
         self.name = f"dask {address}"
+        self._plugin = _one_blas_thread()
+        self.client.register_plugin(self._plugin)  # every worker, and every worker that joins later
 
     def map_reduce(self, fn: Callable[[Any], Any], items: Sequence[Any], combine: Callable[[Any, Any], Any], *,
                    on_done: Callable[[], None] | None = None, should_stop: Callable[[], bool] | None = None) -> Any:
@@ -87,9 +95,35 @@ class DaskExecutor:
             raise
 
     def close(self) -> None:
+        if self._cluster is None:  # a shared cluster: its workers' BLAS limits go back to what they were
+            try:
+                self.client.unregister_worker_plugin(self._plugin.name)
+            except Exception:  # a cluster gone or unreachable by now: nothing left to restore
+                pass
         self.client.close()
         if self._cluster is not None:
             self._cluster.close()
+
+
+def _one_blas_thread():
+    """A Dask worker plugin that holds the worker process's BLAS and OpenMP pools to one thread (restored
+    when the plugin is removed or the worker closes)."""
+    from distributed import WorkerPlugin
+
+    class OneBlasThread(WorkerPlugin):
+        name = "tikhon-one-blas-thread"
+
+        def setup(self, worker) -> None:  # noqa: ARG002
+            from threadpoolctl import threadpool_limits
+
+            self._limits = threadpool_limits(limits=1)
+
+        def teardown(self, worker) -> None:  # noqa: ARG002
+            limits = getattr(self, "_limits", None)
+            if limits is not None:
+                limits.restore_original_limits()
+
+    return OneBlasThread()
 
 
 def make_executor(scheduler: str | None) -> SerialExecutor | DaskExecutor:

@@ -6,7 +6,7 @@ service opens a folder as its store only when
 
 * the folder is new or empty (the marker is written), or
 * it holds the marker, or
-* it holds nothing but what a Tikhon store holds (``.staging``, ``.trash``, ``_jobs``, the SQLite catalog
+* it holds nothing but what a Tikhon store holds (``.staging``, ``.trash``, ``.scratch``, ``_jobs``, the SQLite catalog
   files, this repository's ``README.md`` note, and model folders of version folders whose
   ``manifest.json`` says ``"format": "tikhon-model"``): a store written before markers existed; the
   marker is written then.
@@ -19,6 +19,9 @@ What the start-up sweep may remove is only what the service wrote and can prove 
 * a staging folder ``.staging/<token>/`` whose lock file ``<token>.lock`` holds ``STAGING_MARK`` and is
   not locked by a living process;
 * entries of ``.trash/`` named like the service names them (32 hex digits);
+* a training job's scratch folder ``.scratch/<token>/`` under the proofs of ``service.store.scratch`` (a
+  marked lock file no living process holds, a marker of the same token in the folder, and then only the
+  files the scanned-column cache names);
 * a version folder that holds a ``.publishing`` marker naming the catalog in use while that catalog
   has no row for it: a publish that crashed between its rename and its commit;
 * a version folder that holds a ``.deleting`` marker naming the catalog in use while that catalog
@@ -47,13 +50,15 @@ DELETING_MARKER = ".deleting"
 HEX_TOKEN = re.compile(r"[0-9a-f]{32}")
 
 # The store's own top-level folders (model folders are named by the models): versions being written, versions
-# being removed, and training jobs' data (``<store>/_jobs/<id>/``). Named here only.
+# being removed, training jobs' data (``<store>/_jobs/<id>/``) and training jobs' scratch folders (the
+# scanned-column cache of a streamed job, ``service.store.scratch``). Named here only.
 STAGING_DIR = ".staging"
 TRASH_DIR = ".trash"
 JOBS_DIR = "_jobs"
+SCRATCH_DIR = ".scratch"
 
 # Entries a store written before markers existed may hold at its top level (besides model folders).
-_KNOWN_TOP = frozenset({STAGING_DIR, TRASH_DIR, JOBS_DIR, "catalog.db", "catalog.db-wal", "catalog.db-shm",
+_KNOWN_TOP = frozenset({STAGING_DIR, TRASH_DIR, JOBS_DIR, SCRATCH_DIR, "catalog.db", "catalog.db-wal", "catalog.db-shm",
                         "catalog.db-journal", "README.md"})
 
 

@@ -44,8 +44,9 @@ only what this service wrote and can prove unfinished: staging folders whose mar
 longer held (flock is released when its process dies), ``.trash`` entries of its own naming, version
 folders with a ``.publishing`` marker naming *this* catalog and no row (a publish that crashed between
 rename and commit; checked under the per-name lock, so a publish in flight elsewhere is never touched),
-version folders with a ``.deleting`` marker naming this catalog and a tombstone row, and job data folders
-of jobs this catalog lists as finished. Every other version folder without a catalog row is kept,
+version folders with a ``.deleting`` marker naming this catalog and a tombstone row, job data folders
+of jobs this catalog lists as finished, and scratch folders of training processes that are gone
+(``service.store.scratch``: a marked lock file no process holds, and only the cache's own files). Every other version folder without a catalog row is kept,
 logged and reported by ``ping()`` (readiness) until ``recover()`` registers it: an empty, lost or wrong
 catalog never costs a stored version. In step 3 above, a folder already at the target number is
 discarded only under the same proof; otherwise the publish is refused (``Conflict``) and the folder kept.
@@ -91,7 +92,7 @@ from service.errors import (
     TikhonError,
 )
 from service.settings import Settings
-from service.store import artifact, layout
+from service.store import artifact, layout, scratch
 from service.store.layout import JOBS_DIR, STAGING_DIR, TRASH_DIR
 from service.store.cache import LRUCache, footprint
 from service.store.catalog import (
@@ -835,6 +836,7 @@ class Store:
             counts["trash"] += 1
         counts["job_folders"] = self.jobs.sweep_folders()
         kept.extend(self.jobs.kept_folders)
+        counts["scratch"] = scratch.sweep(self.root, kept)
         counts["unlisted_versions"] = len(unlisted)
         counts["kept"] = len(kept)
         self.unlisted, self.kept = sorted(unlisted), kept

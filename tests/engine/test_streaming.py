@@ -187,3 +187,36 @@ def test_batches_larger_than_a_summary_chunk(tmp_path):
     mem = tune(d, spec)
     schema, parts = open_source(write_folder(tmp_path, d, files=1, row_group=100_000))
     assert_same(mem, tune_partitions(parts, schema, spec))
+
+
+def test_dask_workers_run_blas_on_one_thread(monkeypatch):
+    """Inside a task on a LocalCluster worker, BLAS runs on one thread (threadpoolctl reads the limit in
+    effect from the loaded BLAS library itself), even under a Dask configuration that leaves the workers'
+    BLAS threads free; a plain cluster under that configuration shows what the limit guards against."""
+    pytest.importorskip("distributed")
+    import dask
+    from distributed import Client, LocalCluster
+
+    from service.engine.executors import DaskExecutor
+    from service.engine.parallel import usable_cores
+
+    def blas_threads(_):
+        from threadpoolctl import threadpool_info
+
+        return sorted({i["num_threads"] for i in threadpool_info() if i["user_api"] == "blas"})
+
+    free = {"distributed.nanny.pre-spawn-environ": {}}  # no OPENBLAS_NUM_THREADS=1 from Dask's nanny
+    for name in ("OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS"):
+        # nor from this process's environment, where an earlier LocalCluster's nanny leaves them behind
+        monkeypatch.delenv(name, raising=False)
+    with dask.config.set(free):
+        ex = DaskExecutor("local", workers=1)
+    try:
+        assert ex.map_reduce(blas_threads, [0, 1], lambda a, b: sorted(set(a + b))) == [1]
+    finally:
+        ex.close()
+    if usable_cores() > 1:
+        with dask.config.set(free), LocalCluster(n_workers=1, threads_per_worker=1, processes=True,
+                                                 dashboard_address=None, silence_logs=40) as cluster, \
+                Client(cluster) as client:
+            assert max(client.submit(blas_threads, 0, pure=False).result()) > 1
