@@ -39,7 +39,7 @@ def main() -> None:
     rng = np.random.default_rng(7)
     station = rng.integers(0, args.levels, args.rows)
     y = y + rng.normal(0.0, 0.5, args.levels)[station]  # each invented station's own offset
-    data = {**{n: X[:, j] for j, n in enumerate(names)}, "station": np.array([f"S{v:04d}" for v in station]),
+    data = {**{n: X[:, j] for j, n in enumerate(names)}, "station": np.array([f"S{v:04d}" for v in station], dtype=object),
             "energy_kwh": y}
     spec = {"target": "energy_kwh", "features": names, "categorical": ["station"],
             "bases": [{"kind": "polynomial", "degrees": [1, 2, 3]}],

@@ -470,9 +470,13 @@ def _level_counts(prep: Prepared) -> list[np.ndarray]:
 
 # ---------------------------------------------------------------------------------------------------
 def _design(setting: BasisSetting, Xs: np.ndarray, cat_block: np.ndarray) -> np.ndarray:
-    Phi = setting.expand(Xs)
-    if cat_block.shape[1]:
-        Phi = np.hstack([Phi, cat_block])
+    """[Φ, one-hot]: with one-hot columns, built column-major in place (no stacked copy)."""
+    if not cat_block.shape[1]:
+        return setting.expand(Xs)
+    p = setting.n_terms(Xs.shape[1])
+    Phi = np.empty((Xs.shape[0], p + cat_block.shape[1]), order="F")
+    setting.expand_into(Xs, Phi[:, :p])
+    Phi[:, p:] = cat_block
     return Phi
 
 
