@@ -673,15 +673,21 @@ class _SharedSearch:
                 atoms = [a.permuted(order) for a in atoms]
         else:
             atoms = [Summary.of(Phi[idx], y[idx], weights=self.prep.rows_w(idx)) for idx in plan.atoms]
-        full_summary = Summary.combine([atoms[i] for i in plan.refit_atoms])
+
+        def combined(ids: list[int]) -> Summary:
+            if nested and not self.prep.categories.width and self._merged is not None:
+                # the atom sets the scoring merged at the widest setting: their leading block (``NestedSplits``)
+                return self._merged.of(ids, 1 + setting.n_terms(self.prep.X.shape[1]))
+            return Summary.combine([atoms[i] for i in ids])
+
+        full_summary = combined(plan.refit_atoms)
         n = y.size
         oof_pred = np.full(n, np.nan)
         oof_fold = np.full(n, -1, dtype=np.int64)
         fold_fits = []
         for j in plan.interval_splits:
             train_ids, test_ids = plan.splits[j]
-            f = fit(Summary.combine([atoms[i] for i in train_ids]), self.spec.penalty.kind,
-                    np.array([strength]), ratio)
+            f = fit(combined(train_ids), self.spec.penalty.kind, np.array([strength]), ratio)
             fold_fits.append(f)
         if fold_fits:  # every fold's predictions of every row in one product, each row keeping its own fold's
             P = Phi @ np.vstack([f.weights[0] for f in fold_fits]).T
