@@ -372,6 +372,7 @@ class Summary:
         K[np.arange(levels), 1 + np.arange(levels)] = root
         K[:levels, 1 + levels:] = root[:, None] * means
         K[levels:, 1 + levels:] = inner.R[:, 1:]
+        K = K[np.concatenate([seen, np.ones(p + 2, dtype=bool)])]  # a level without rows here gives a zero row
         total = n if weights is None else float(np.sum(w))
         return Summary(householder_r(K), total), inner.R
 

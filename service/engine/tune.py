@@ -547,8 +547,11 @@ class _SharedSearch:
 
             # the nested design has its one-hot block first
             codes = self._group_codes(D) if nested and ONE_HOT_AS_LEVEL_SUMS else None
+            q1 = len(self.prep.categories.levels[0]) if codes is not None else 0
+            if codes is not None and min(len(idx) for idx in atoms) < q1:
+                codes = None  # more levels than rows in an atom: the small (levels + p)² factorization would
+                # cost more than factoring the rows with their one-hot columns
             if codes is not None:  # the first categorical column's one-hot block as level sums
-                q1 = len(self.prep.categories.levels[0])
 
                 def grouped(idx, pre, row_threads=1):
                     return Summary.of_grouped(codes[idx], q1, D[idx, q1:], y[idx], weights=prep.rows_w(idx),
