@@ -469,6 +469,17 @@ def _level_counts(prep: Prepared) -> list[np.ndarray]:
 
 
 # ---------------------------------------------------------------------------------------------------
+def _gather(D: np.ndarray, rows: np.ndarray, start: int = 0) -> np.ndarray:
+    """``D[rows, start:]``, column-major when D is: column by column (each a contiguous read; ``rows``
+    ascending), where numpy's row gather of a column-major D would give a row-major copy, strided reads."""
+    if not D.flags.f_contiguous:
+        return D[rows, start:]
+    out = np.empty((rows.size, D.shape[1] - start), order="F")
+    for j in range(start, D.shape[1]):
+        np.take(D[:, j], rows, out=out[:, j - start])
+    return out
+
+
 def _design(setting: BasisSetting, Xs: np.ndarray, cat_block: np.ndarray) -> np.ndarray:
     """[Φ, one-hot]: with one-hot columns, built column-major in place (no stacked copy)."""
     if not cat_block.shape[1]:
@@ -554,7 +565,8 @@ class _SharedSearch:
             if codes is not None:  # the first categorical column's one-hot block as level sums
 
                 def grouped(idx, pre, row_threads=1):
-                    return Summary.of_grouped(codes[idx], q1, D[idx, q1:], y[idx], weights=prep.rows_w(idx),
+                    idx = np.sort(idx)
+                    return Summary.of_grouped(codes[idx], q1, _gather(D, idx, q1), y[idx], weights=prep.rows_w(idx),
                                               precondition=pre, threads=row_threads)
 
                 first, pre = grouped(atoms[0], None, threads)
@@ -570,14 +582,15 @@ class _SharedSearch:
             # the first atom factored on its own (its row chunks on every core), the others with its R as
             # their first step: a sibling's rows explore the same directions (``summaries.preconditioned_r``,
             # 2·n·m² flops instead of 5)
-            first = Summary.of(D[atoms[0]], y[atoms[0]], on_block=block, threads=threads,
+            atoms = [np.sort(idx) for idx in atoms]  # a summary does not depend on its rows' order
+            first = Summary.of(_gather(D, atoms[0]), y[atoms[0]], on_block=block, threads=threads,
                                weights=prep.rows_w(atoms[0]))
             pre = first.R if first.n > 0 else None
             if tick is None:
                 return [first] + list(ordered_map(
-                    lambda idx: Summary.of(D[idx], y[idx], weights=prep.rows_w(idx), precondition=pre),
+                    lambda idx: Summary.of(_gather(D, idx), y[idx], weights=prep.rows_w(idx), precondition=pre),
                     atoms[1:], threads))
-            return [first] + [Summary.of(D[idx], y[idx], on_block=block, threads=threads, weights=prep.rows_w(idx),
+            return [first] + [Summary.of(_gather(D, idx), y[idx], on_block=block, threads=threads, weights=prep.rows_w(idx),
                                          precondition=pre) for idx in atoms[1:]]
 
     def _group_codes(self, D: np.ndarray) -> np.ndarray | None:
