@@ -65,8 +65,12 @@ def key_hash(keys: np.ndarray, seed: int) -> np.ndarray:
     else:
         import hashlib
 
-        u = np.fromiter((int.from_bytes(hashlib.blake2b(str(v).encode("utf-8"), digest_size=8).digest(), "little")
-                         for v in keys), dtype=np.uint64, count=len(keys))
+        # each distinct text hashed once (a label column repeats a few levels over many rows)
+        index: dict[str, int] = {}
+        codes = np.fromiter((index.setdefault(str(v), len(index)) for v in keys), dtype=np.int64, count=len(keys))
+        hashes = np.fromiter((int.from_bytes(hashlib.blake2b(t.encode("utf-8"), digest_size=8).digest(), "little")
+                              for t in index), dtype=np.uint64, count=len(index))
+        u = hashes[codes]
     return splitmix64(u ^ splitmix64(np.array([seed], dtype=np.uint64))[0])
 
 

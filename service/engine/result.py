@@ -23,7 +23,7 @@ from service.errors import InvalidData
 from . import drift
 from .basis import BasisSetting, Categories, InputScaler
 from .model import FittedModel
-from .solvers import Fit, centred_scaled, fit, leverage_factor
+from .solvers import Fit, centred_scaled, fit, l2_df, leverage_factor
 from .spec import TuneSpec
 from .summaries import Summary
 
@@ -146,6 +146,8 @@ def check_spread(name: str, role: str, lo: float, hi: float, n: int) -> None:
 # ---- scoring from fold summaries ---------------------------------------------------------------------
 def setting_df(full: Summary, spec: TuneSpec, strengths: np.ndarray, ratios: list[float | None]) -> np.ndarray:
     """(n_ratios, L) complexity of every candidate of one basis setting, fit on all rows (``Fit.df``)."""
+    if spec.penalty.kind == "l2":  # the effective degrees of freedom need the singular values only
+        return np.array([l2_df(full, strengths) for _ in ratios])
     return np.array([fit(full, spec.penalty.kind, strengths, r).df() for r in ratios])
 
 
@@ -385,7 +387,9 @@ def refit_all_rows(full_summary: Summary, spec: TuneSpec, strengths: np.ndarray,
     ``h(z) = 1/n + ‖F z‖²``) from the summary of every row."""
     full = fit(full_summary, spec.penalty.kind, strengths, ratio)
     l_idx = int(np.flatnonzero(strengths == strength)[0])
-    F = leverage_factor(centred_scaled(full_summary)[0], strength, spec.penalty.kind, ratio, full.n, full.beta[l_idx])
+    svd = (full.singular, full.right) if full.singular is not None else None  # L2: the fit's own SVD of Z
+    F = leverage_factor(centred_scaled(full_summary)[0], strength, spec.penalty.kind, ratio, full.n, full.beta[l_idx],
+                        svd)
     return full, l_idx, F
 
 

@@ -51,6 +51,8 @@ CHUNK_ROWS = 16_384
 CQR2_MAX_COND = 1e5  # estimated condition (1-norm) of the column-scaled block up to which CholeskyQR2 is used
 ABSORB_MAX_W2 = 1e4  # ‖B R⁻¹‖_F² up to which a block B is absorbed into the running R (``absorb``)
 ABSORB_MIN_RCOND = 1e3 * np.finfo(float).eps  # a running R less well conditioned (column-scaled) is not used
+PRECOND_ONE_STEP = 1e3  # estimated κ(S) of a preconditioned block up to which one Cholesky step is kept (``preconditioned_r``)
+TPQRT_BLOCK = 32  # block size of ``dtpqrt`` in ``merge``
 SEGMENTS = 2  # row segments of a long ``Summary.of``, each absorbed in order, merged at the end
 _U = np.finfo(float).eps / 2  # unit roundoff
 
@@ -169,14 +171,55 @@ def absorb(R: np.ndarray | None, B: np.ndarray) -> np.ndarray:
     return S if S is not None else merge([R, qr_r(B)])
 
 
-def _absorbed(R: np.ndarray, B: np.ndarray) -> np.ndarray | None:
-    m = R.shape[0]
+def _usable(R: np.ndarray) -> bool:
+    """Whether R is finite and, column-scaled to a unit diagonal, not singular to working precision (its
+    1-norm condition estimate), so that ``B R⁻¹`` is worth computing."""
     d = np.abs(np.diag(R))
     if not np.all(d > 0) or not np.all(np.isfinite(d)):
-        return None
-    # the running R column-scaled to a unit diagonal: its 1-norm condition estimate says if it is usable
+        return False
     rcond, info = _lapack.dtrcon(np.asfortranarray(R / d[None, :]), norm="1", uplo="U", diag="N")
-    if info != 0 or not rcond >= ABSORB_MIN_RCOND:
+    return info == 0 and rcond >= ABSORB_MIN_RCOND
+
+
+def preconditioned_r(P: np.ndarray, B: np.ndarray) -> np.ndarray | None:
+    """R factor of a tall block B (n ≥ m) whose first Cholesky QR step is replaced by ``P``, the R factor
+    of other rows drawn like B's (a sibling fold), or None when that does not pay (then ``qr_r``).
+
+    With W = B P⁻¹ (one triangular solve), ``B = W P``, and W is well conditioned whenever B's rows
+    explore the same directions as P's, whatever the condition of B: CholeskyQR of W, ``WᵀW = SᵀS``, then
+    gives the R factor ``S P``. This is CholeskyQR2's second step with P as its first factor (Yamamoto,
+    Nakatsukasa, Yanagisawa & Fukaya, ETNA 44 (2015)): the residual ``B − Q S P`` is at rounding level and
+    ``QᵀQ`` departs from I by about κ(W)² u, so ``‖R v‖ = ‖B v‖ (1 + O(κ(W)² u))`` in every direction v.
+    One step is kept while the 1-norm estimate of κ(S) is at most ``PRECOND_ONE_STEP`` (κ(W)² u ≤ 1e-12);
+    up to ``CQR2_MAX_COND`` a second Cholesky QR step of ``W S⁻¹`` follows (CholeskyQR2 of W); beyond,
+    None. Cost: 2·n·m² flops (one solve, one Gram), against 5·n·m² for shifted CholeskyQR3 of B."""
+    n, m = B.shape
+    if n < m or P.shape != (m, m) or not _usable(P):
+        return None
+    P = np.asfortranarray(P, dtype=np.float64)
+    W = _solve_right(np.asarray(B, dtype=np.float64), P)
+    G = _gram(W)
+    if not np.isfinite(float(np.trace(G))):
+        return None
+    S = _chol(G)
+    if S is None:
+        return None
+    rcond, info = _lapack.dtrcon(S, norm="1", uplo="U", diag="N")
+    if info != 0 or not rcond * CQR2_MAX_COND >= 1.0:
+        return None
+    if rcond * PRECOND_ONE_STEP < 1.0:
+        S2 = _chol(_gram(_solve_right(W, np.asfortranarray(S))))
+        if S2 is None:
+            return None
+        S = S2 @ S
+    out = np.triu(_blas.dtrmm(1.0, np.asfortranarray(S), P, side=0, lower=0))  # S P, both upper triangular
+    return out if np.all(np.isfinite(out)) else None
+
+
+def _absorbed(R: np.ndarray, B: np.ndarray) -> np.ndarray | None:
+    m = R.shape[0]
+    # the running R column-scaled to a unit diagonal: its 1-norm condition estimate says if it is usable
+    if not _usable(R):
         return None
     W = _solve_right(np.asarray(B, dtype=np.float64), np.asfortranarray(R))
     G = _gram(W)
@@ -191,10 +234,30 @@ def _absorbed(R: np.ndarray, B: np.ndarray) -> np.ndarray | None:
 
 
 def merge(factors: list[np.ndarray]) -> np.ndarray:
-    """R factor of the union of the row blocks whose R factors are given."""
+    """R factor of the union of the row blocks whose R factors are given.
+
+    Square factors are merged pairwise by LAPACK's triangular-pentagonal Householder QR (``dtpqrt``: the
+    QR of ``[R₁; R₂]`` that touches only the upper triangle of R₂, about m³ flops instead of the 8·m³ of
+    a Cholesky QR of the stacked 2m × m matrix); Householder QR of the stack is backward stable, so the
+    merged R is as accurate as the factors. Anything else is stacked and factored (``qr_r``)."""
     factors = [f for f in factors if f is not None]
     if len(factors) == 1:
         return factors[0]
+    m = factors[0].shape[1]
+    if all(f.shape == (m, m) for f in factors) and m:
+        R = np.array(factors[0], dtype=np.float64, order="F")
+        for F in factors[1:]:
+            F = np.asarray(F, dtype=np.float64)
+            upper = not np.any(np.tril(F, -1))
+            a, _, _, info = _lapack.dtpqrt(m if upper else 0, min(m, TPQRT_BLOCK), R,
+                                           np.array(F, order="F"), overwrite_a=1, overwrite_b=1)
+            if info != 0:
+                return qr_r(np.vstack(factors))
+            R = a
+        R = np.triu(R)
+        neg = np.diag(R) < 0
+        R[neg] *= -1.0  # the signs of R's rows are free (module docstring): a positive diagonal, as Cholesky QR gives
+        return R
     return qr_r(np.vstack(factors))
 
 
@@ -208,7 +271,7 @@ class Summary:
 
     @staticmethod
     def of(Phi: np.ndarray, y: np.ndarray, chunk_rows: int = CHUNK_ROWS, on_block=None, threads: int = 1,
-           weights: np.ndarray | None = None) -> "Summary":
+           weights: np.ndarray | None = None, precondition: np.ndarray | None = None) -> "Summary":
         """``on_block(rows)``, if given, is called after each chunk of rows (progress of a long pass), in
         the calling thread. The chunks are absorbed (``absorb``) into the running R of ``SEGMENTS`` fixed
         runs of chunks, merged at the end; ``threads`` > 1 works on the runs at once (the result is the
@@ -216,7 +279,10 @@ class Summary:
 
         ``weights`` (n,), non-negative: the summary of the rows scaled by √w, ``[√w, √w Φ, √w y]``, whose
         ``RᵀR`` holds the weighted cross-products; ``n`` is then Σw, so every mean, scale, penalty and
-        metric computed from it is the weighted one (weighted least squares; a zero weight drops the row)."""
+        metric computed from it is the weighted one (weighted least squares; a zero weight drops the row).
+
+        ``precondition``: the R factor of other rows like these (a sibling fold's summary), used as the
+        first step of each run's first chunk (``preconditioned_r``) instead of factoring it from scratch."""
         from .parallel import ordered_map
 
         n, p = Phi.shape
@@ -244,7 +310,9 @@ class Summary:
         def factor(run: np.ndarray) -> np.ndarray:
             R = None
             for lo in run.tolist():
-                R = absorb(R, block(lo))
+                B = block(lo)
+                first = None if R is not None or precondition is None else preconditioned_r(precondition, B)
+                R = first if first is not None else absorb(R, B)
                 done.append(min(n, lo + chunk_rows) - lo)
             return R
 
@@ -259,6 +327,54 @@ class Summary:
             parts = _with_progress(factor, runs, threads, done, on_block)
         total = n if root is None else float(np.sum(np.asarray(weights, dtype=np.float64)))
         return Summary(merge(parts), total)
+
+    @staticmethod
+    def of_grouped(codes: np.ndarray, levels: int, Phi: np.ndarray, y: np.ndarray,
+                   weights: np.ndarray | None = None, precondition: np.ndarray | None = None,
+                   threads: int = 1) -> tuple["Summary", np.ndarray]:
+        """Summary of ``[1, E, Φ, y]`` where E (n × levels) is the one-hot block of ``codes`` (n,) (every
+        code in ``[0, levels)``), without E in any row-level factorization; also the R factor of the inner
+        ``[1, Φ_c, y_c]`` (a ``precondition`` for sibling atoms' inner factors).
+
+        E's columns have disjoint supports, so they are orthogonal, and with c_g the (weighted) row count
+        of level g and M the per-level means of ``[Φ, y]``, ``[Φ, y] = E M + [Φ_c, y_c]`` where the
+        level-centred ``[Φ_c, y_c]`` is orthogonal to E. Hence, exactly,
+        ``AᵀA = KᵀK`` for the small matrix K whose rows are, per level, ``√c_g · [1, e_g, M_g]`` and, below
+        them, ``[0, 0, R_c]`` with R_c the inner R factor of the centred block (``of``, so Cholesky QR with
+        its guards, or Householder QR); R is then the R factor of K (Householder QR of a (levels + p + 2)-
+        square matrix: the intercept column is the sum of E's, so K is rank deficient, which Householder
+        QR takes in its stride, and nothing downstream depends on which of the R factors with ``RᵀR = KᵀK``
+        it is: module docstring). Accuracy: the per-level sums (a sparse product, ``Eᵀ [Φ, y]``) and the
+        centring have the rounding of a mean, a backward error of order u·|x| in each row, as in the
+        centring any QR of ``[1, Φ, y]`` performs; no Gram matrix of the rows is formed, so the condition
+        number is not squared. Cost: the row-level factorization has p + 2 columns instead of
+        levels + p + 2 (its flops fall by ((levels + p + 2) / (p + 2))²)."""
+        from scipy import sparse
+
+        n, p = Phi.shape
+        codes = np.asarray(codes, dtype=np.int64)
+        w = np.ones(n) if weights is None else np.asarray(weights, dtype=np.float64)
+        Et = sparse.csr_matrix((w, (codes, np.arange(n))), shape=(levels, n))  # Eᵀ diag(w)
+        N = np.empty((n, p + 1), order="F")
+        N[:, :p] = Phi
+        N[:, p] = y
+        count = np.asarray(Et.sum(axis=1)).ravel()  # Σ w per level
+        sums = np.asarray(Et @ N)
+        seen = count > 0
+        means = np.zeros_like(sums)
+        means[seen] = sums[seen] / count[seen, None]
+        N -= means[codes]
+        inner = Summary.of(N[:, :p], N[:, p], weights=weights, precondition=precondition, threads=threads)
+        m = 1 + levels + p + 1
+        K = np.zeros((levels + p + 2, m))
+        root = np.sqrt(count)
+        K[:levels, 0] = root
+        K[np.arange(levels), 1 + np.arange(levels)] = root
+        K[:levels, 1 + levels:] = root[:, None] * means
+        K[levels:, 1 + levels:] = inner.R[:, 1:]
+        K = K[np.concatenate([seen, np.ones(p + 2, dtype=bool)])]  # a level without rows here gives a zero row
+        total = n if weights is None else float(np.sum(w))
+        return Summary(householder_r(K), total), inner.R
 
     @staticmethod
     def combine(items: list["Summary"]) -> "Summary":

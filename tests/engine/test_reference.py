@@ -242,6 +242,68 @@ def test_absorb_falls_back_where_the_running_r_cannot_serve():
     np.testing.assert_allclose(R.T @ R, far.T @ far, rtol=1e-12, atol=1e-12 * np.abs(far.T @ far).max())
 
 
+def _filip_standardized_design():
+    y, x = FILIP[:, 0], FILIP[:, 1]
+    mu, sd = x.mean(), x.std()
+    z = (x - mu) / sd
+    return np.column_stack([np.ones(x.size)] + [z ** k for k in range(1, 11)] + [y]), mu, sd
+
+
+def test_preconditioned_sibling_and_triangular_merges_on_filip(monkeypatch):
+    # NIST StRD Filip certificate (LRE ≥ 7 on every coefficient), the R factor built as the in-memory search
+    # builds its fold summaries: the rows in three interleaved atoms (as folds draw them), the first
+    # factored on its own, the others with its R as their first step (``summaries.preconditioned_r``), then
+    # merged by triangular-pentagonal Householder QR (``summaries.merge``, LAPACK dtpqrt)
+    from service.engine import summaries
+
+    A, mu, sd = _filip_standardized_design()
+    first = summaries.qr_r(A[0::3])
+    taken = [summaries.preconditioned_r(first, A[k::3]) for k in (1, 2)]
+    assert all(r is not None for r in taken)
+    R = summaries.merge([first, *taken])
+    beta = _coefficients_from_r(R)
+    got = _raw_filip_coefficients(beta[0], beta[1:], mu, sd)
+    assert lre(got, FILIP_CERT).min() >= 7, lre(got, FILIP_CERT)
+    # and with the second Cholesky step forced (CholeskyQR2 of B P⁻¹)
+    monkeypatch.setattr(summaries, "PRECOND_ONE_STEP", 1.0)
+    R = summaries.merge([first, *[summaries.preconditioned_r(first, A[k::3]) for k in (1, 2)]])
+    beta = _coefficients_from_r(R)
+    assert lre(_raw_filip_coefficients(beta[0], beta[1:], mu, sd), FILIP_CERT).min() >= 7
+
+
+def test_triangular_merge_on_longley():
+    # NIST StRD Longley certificate (LRE ≥ 10 on every coefficient): the raw design [1, X, y] in two halves,
+    # each factored by Householder QR, merged by ``summaries.merge`` (dtpqrt on the two triangles)
+    from service.engine import summaries
+
+    sm_longley = pytest.importorskip("statsmodels.datasets.longley")
+    df = sm_longley.load_pandas().data  # NIST StRD Longley, as shipped by statsmodels
+    names = ["GNPDEFL", "GNP", "UNEMP", "ARMED", "POP", "YEAR"]
+    A = np.column_stack([np.ones(16)] + [df[c].to_numpy(float) for c in names] + [df["TOTEMP"].to_numpy(float)])
+    R = summaries.merge([summaries.householder_r(A[0::2]), summaries.householder_r(A[1::2])])
+    assert np.all(np.diag(R) > 0)
+    assert lre(_coefficients_from_r(R), LONGLEY_CERT).min() >= 10, lre(_coefficients_from_r(R), LONGLEY_CERT)
+
+
+def test_preconditioned_r_refuses_what_it_cannot_serve():
+    # RᵀR = BᵀB (common practice: the defining property of an R factor) where the sibling's R serves; None
+    # where it cannot: a singular P, a block exploring a direction P's rows hardly do, fewer rows than columns
+    from service.engine import summaries
+
+    rng = np.random.default_rng(5)
+    X = rng.standard_normal((600, 5)) @ rng.standard_normal((5, 5))
+    P = summaries.qr_r(X[:300])
+    R = summaries.preconditioned_r(P, 1e6 * X[300:])  # a scale changes no direction
+    G = (1e6 * X[300:]).T @ (1e6 * X[300:])
+    np.testing.assert_allclose(R.T @ R, G, rtol=1e-12, atol=1e-12 * np.abs(G).max())
+    twin = np.column_stack([X[:, :4], X[:, :1]])
+    assert summaries.preconditioned_r(summaries.householder_r(twin[:300]), twin[300:]) is None
+    narrow = X[:300].copy()
+    narrow[:, 3] = 1e-7 * narrow[:, 3] + narrow[:, 2]
+    assert summaries.preconditioned_r(summaries.qr_r(narrow), X[300:]) is None
+    assert summaries.preconditioned_r(P, X[300:303]) is None
+
+
 # ---- Parity with scikit-learn's GridSearchCV -------------------------------------------------------
 def _diabetes():
     X, y = load_diabetes(return_X_y=True)  # ships with scikit-learn (Efron et al., 2004)
