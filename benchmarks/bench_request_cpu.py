@@ -36,25 +36,10 @@ if "--code" in sys.argv:  # the service package of another checkout (a before/af
     sys.path.insert(0, str(Path(sys.argv[sys.argv.index("--code") + 1]).resolve()))
 sys.path.insert(1 if "--code" in sys.argv else 0, str(ROOT))
 
-from benchmarks.bench_serving import MODEL, prepare_store  # noqa: E402
+from benchmarks.bench_serving import MODEL, bare_app, prepare_store  # noqa: E402
 
 BODY = b'{"rows":[{"flow_lps":60.0,"head_m":30.0}]}'
 BODY_INTERVAL = b'{"rows":[{"flow_lps":60.0,"head_m":30.0}],"interval_level":0.9}'
-
-
-def bare_app():
-    from fastapi import FastAPI, Request
-    from fastapi.responses import Response
-
-    app = FastAPI()
-    constant = b'{"status":"ok","value":1.0}'
-
-    @app.post("/bare")
-    async def bare(request: Request):
-        await request.body()
-        return Response(constant, media_type="application/json")
-
-    return app
 
 
 def scope_of(path: str, body: bytes) -> dict:

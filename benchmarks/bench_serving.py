@@ -96,8 +96,6 @@ def prepare_store(store_dir: str) -> None:
 
 def serve_bare(port: int) -> None:
     import uvicorn
-    from fastapi import FastAPI, Request
-    from fastapi.responses import Response
 
     from service.logs import configure
     from service.settings import Settings
@@ -110,6 +108,14 @@ def serve_bare(port: int) -> None:
         options = dict(host=settings.host, port=settings.port, log_config=None, access_log=False,
                        log_level=settings.log_level.lower(), server_header=False)
     configure(settings.log_level)
+    uvicorn.run(bare_app(), **options)
+
+
+def bare_app():
+    """The reference: a FastAPI app with one POST route that reads the body and answers a constant JSON object."""
+    from fastapi import FastAPI, Request
+    from fastapi.responses import Response
+
     app = FastAPI()
     constant = b'{"status":"ok","value":1.0}'
 
@@ -118,7 +124,7 @@ def serve_bare(port: int) -> None:
         await request.body()
         return Response(constant, media_type="application/json")
 
-    uvicorn.run(app, **options)
+    return app
 
 
 # ----------------------------------------------------------------------------------------------------

@@ -32,9 +32,11 @@ Everything else that the catalog does not list is kept and reported.
 
 from __future__ import annotations
 
+import fcntl
 import json
 import os
 import re
+import uuid
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any
@@ -192,3 +194,24 @@ def clear_markers(folder: Path) -> None:
             (folder / marker).unlink()
         except FileNotFoundError:
             pass
+
+
+def new_held_lock(folder: Path, content: bytes, mode: int) -> tuple[str, int, Path]:
+    """A new lock file ``<token>.lock`` in ``folder``, made exclusively (never through a link), locked with
+    ``fcntl.flock(mode)`` (``LOCK_EX`` or ``LOCK_SH``) and starting with ``content``, the mark that proves to a
+    later sweep that the folder named by the token is Tikhon's. Returns (token, open descriptor, path); the
+    caller closes the descriptor to release it. A lock file a sweeper took for a dead one between its creation
+    and the ``flock`` is left to it, and another token is drawn."""
+    while True:
+        token = uuid.uuid4().hex
+        path = folder / f"{token}.lock"
+        fd = os.open(path, os.O_CREAT | os.O_EXCL | os.O_RDWR | os.O_NOFOLLOW, 0o644)
+        fcntl.flock(fd, mode)
+        os.write(fd, content)
+        try:
+            ours = os.fstat(fd).st_ino == os.stat(path).st_ino
+        except FileNotFoundError:  # a sweeper took it for a dead one between create and flock
+            ours = False
+        if ours:
+            return token, fd, path
+        os.close(fd)

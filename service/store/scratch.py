@@ -24,7 +24,6 @@ from __future__ import annotations
 import fcntl
 import os
 import re
-import uuid
 from contextlib import contextmanager
 from pathlib import Path
 from typing import Iterator
@@ -48,19 +47,8 @@ def job_scratch(store_root: Path, job_id: str) -> Iterator[Path]:
     if root.is_symlink():
         raise OSError(f"{layout.SCRATCH_DIR} in the store is a symbolic link; scratch folders are not made there")
     root.mkdir(exist_ok=True)
-    while True:
-        token = uuid.uuid4().hex
-        lock_path = root / f"{token}.lock"
-        fd = os.open(lock_path, os.O_CREAT | os.O_EXCL | os.O_RDWR | os.O_NOFOLLOW, 0o644)
-        fcntl.flock(fd, fcntl.LOCK_SH)
-        os.write(fd, SCRATCH_MARK + job_id.encode("ascii", "replace")[:64] + b"\n")
-        try:
-            ours = os.fstat(fd).st_ino == os.stat(lock_path).st_ino
-        except FileNotFoundError:  # a sweeper took it for a dead one between create and flock
-            ours = False
-        if ours:
-            break
-        os.close(fd)
+    token, fd, lock_path = layout.new_held_lock(root, SCRATCH_MARK + job_id.encode("ascii", "replace")[:64] + b"\n",
+                                                fcntl.LOCK_SH)
     folder = root / token
     try:
         try:

@@ -292,19 +292,8 @@ class Store:
     def _staging(self) -> Iterator[Path]:
         """A fresh staging folder, held by a flock on its marked lock file until the block ends."""
         staging_root = self.root / STAGING_DIR
-        while True:
-            token = uuid.uuid4().hex
-            lock_path = staging_root / f"{token}.lock"
-            fd = os.open(lock_path, os.O_CREAT | os.O_EXCL | os.O_RDWR, 0o644)
-            fcntl.flock(fd, fcntl.LOCK_EX)
-            os.write(fd, layout.STAGING_MARK)  # proves to a later sweep that this staging folder is ours
-            try:
-                ours = os.fstat(fd).st_ino == os.stat(lock_path).st_ino
-            except FileNotFoundError:  # a sweeper took it for a dead one between create and flock
-                ours = False
-            if ours:
-                break
-            os.close(fd)
+        # the mark proves to a later sweep that this staging folder is ours
+        token, fd, lock_path = layout.new_held_lock(staging_root, layout.STAGING_MARK, fcntl.LOCK_EX)
         folder = staging_root / token
         try:
             folder.mkdir()
