@@ -104,7 +104,7 @@ class LineHandler(logging.StreamHandler):
                 except RuntimeError:
                     loop = None
                 if loop is not None:  # on the event loop's thread (the request context): a timer of the loop
-                    loop.call_later(self.hold_s, self.flush)
+                    loop.call_later(self.hold_s, self.write_held)
                 else:  # any other thread: the handler's own thread writes it
                     if self._thread is None:
                         self._thread = threading.Thread(target=self._run, name="tikhon-log", daemon=True)
@@ -118,12 +118,16 @@ class LineHandler(logging.StreamHandler):
         while True:
             due.wait()
             time.sleep(self.hold_s)
-            self.acquire()
-            try:
-                due.clear()
-                self._write_held()
-            finally:
-                self.release()
+            due.clear()
+            self.write_held()
+
+    def write_held(self) -> None:
+        """Write the held lines now (a stream that fails is reported through ``handleError``; nothing raises)."""
+        self.acquire()
+        try:
+            self._write_held()
+        finally:
+            self.release()
 
     def _write_held(self) -> None:
         """Write the held lines (the handler's lock is held)."""
@@ -144,11 +148,7 @@ class LineHandler(logging.StreamHandler):
         super().emit(record)
 
     def flush(self) -> None:
-        self.acquire()
-        try:
-            self._write_held()
-        finally:
-            self.release()
+        self.write_held()
         super().flush()
 
 
@@ -180,7 +180,7 @@ def configure(level: str = "info", stream=None, *, hold_s: float = 0.0) -> None:
         logger = logging.getLogger(name)
         for old in logger.handlers:  # lines an earlier configuration still holds are written, not dropped
             if isinstance(old, LineHandler) and old is not handler:
-                old.flush()
+                old.write_held()
         logger.handlers[:] = [handler]
         logger.propagate = False
         logger.setLevel(level.upper())

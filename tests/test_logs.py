@@ -128,3 +128,18 @@ def test_lines_held_on_an_event_loop_are_written_by_its_timer(held):
     assert asyncio.run(serve()) == [0, 1, 2]
     (handler,) = logging.getLogger("tikhon").handlers
     assert handler._thread is None  # no thread of its own was needed
+
+
+def test_a_new_configuration_after_the_old_stream_was_closed_does_not_raise(tmp_path, capsys):
+    f = open(tmp_path / "old.log", "w")
+    logs.configure("info", stream=f, hold_s=5)
+    try:
+        logs.line(ACCESS, logging.INFO, "request", {"n": 1})
+        f.close()  # the old stream is gone with a line still held
+        buf = io.StringIO()
+        logs.configure("info", stream=buf)  # reported as logging reports a record it cannot write; no exception
+        logs.line(ACCESS, logging.INFO, "request", {"n": 2})
+        assert [e["n"] for e in _lines(buf)] == [2]
+        assert "access log line(s) not written" in capsys.readouterr().err
+    finally:
+        logs.configure("warning")
