@@ -1,7 +1,8 @@
 """The app factory: ``create_app(settings, store=None) -> FastAPI``.
 
 Nothing here reads the environment or opens anything at import time. ``create_app`` wires the
-problem mapping, the middleware (request context outermost, then the body limit, then CORS), the
+problem mapping, the middleware (request context outermost, then the body limit, then CORS; the POST
+prediction routes are dispatched ahead of the framework's stack through the same layers, ``TikhonAPI``), the
 open routes (health, metrics, problem-type documentation) and the ``/v1`` routers, each of which is
 guarded by the key check in ``service.api.auth``.
 """
