@@ -32,11 +32,12 @@ import time
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+
+from benchmarks.bench_serving import MODEL, bare_app, prepare_store  # noqa: E402  (imports no service module)
+
 if "--code" in sys.argv:  # the service package of another checkout (a before/after comparison)
     sys.path.insert(0, str(Path(sys.argv[sys.argv.index("--code") + 1]).resolve()))
-sys.path.insert(1 if "--code" in sys.argv else 0, str(ROOT))
-
-from benchmarks.bench_serving import MODEL, bare_app, prepare_store  # noqa: E402
 
 BODY = b'{"rows":[{"flow_lps":60.0,"head_m":30.0}]}'
 BODY_INTERVAL = b'{"rows":[{"flow_lps":60.0,"head_m":30.0}],"interval_level":0.9}'
