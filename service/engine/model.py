@@ -18,8 +18,8 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from functools import cached_property
-from typing import Any
+from functools import cached_property, lru_cache
+from typing import Any, Callable
 
 import numpy as np
 
@@ -34,6 +34,7 @@ _WINDOW = 64  # CV+ bounds: bisect until a row's bracket holds at most this many
 _SNAP_VALUES = 2**18  # CV+ bounds: candidate values sorted at once (rows × window widths)
 SMALL_ROWS = 16  # at most this many rows (polynomial or linear basis) take the few-rows path (``_detail_small``)
 _DIRECT_VALUES = 1 << 15  # CV+ bounds: rows × residuals up to this are ranked directly (one partition per row)
+_NARROW = 160  # p × (r + 1) up to this: leverages are summed in tree order, and a few rows stay on Python floats
 
 
 @dataclass
@@ -143,7 +144,8 @@ class FittedModel:
         r = int(self.leverage_factor.shape[0]) if self.leverage_factor.ndim == 2 else 0
         k = int(self.fold_weights.shape[0]) if self.fold_weights is not None else 0
         d = len(self.features)
-        per_row = 8 * (5 * p + r + 2 * k + 4 * d + 16 + (2 * int(self.residuals.size) if with_interval and k else 0))
+        narrow = 2 * r * p if self._narrow else 0  # the (r, p) products of a row's leverage and their first sums
+        per_row = 8 * (5 * p + r + narrow + 2 * k + 4 * d + 16 + (2 * int(self.residuals.size) if with_interval and k else 0))
         return max(1, memory_bytes // per_row)
 
     def predict(self, data: Any, memory_bytes: int = PREDICT_MEMORY_BYTES) -> np.ndarray:
@@ -153,7 +155,7 @@ class FittedModel:
         out = np.empty(m)
         for a in range(0, m, step):
             Phi, _, _ = self.design(_rows(cols, a, a + step) if m > step else cols)
-            out[a:a + step] = self.intercept + Phi @ self.weights
+            out[a:a + step] = self._values(Phi)
         return out
 
     def predict_detail(self, data: Any, interval_level: float | None = None, strict: bool = True,
@@ -220,9 +222,9 @@ class FittedModel:
             off += len(lvs)
         return mean, scale, first, steps, width, positions, offsets, off, self._lo.tolist(), self._hi.tolist()
 
-    def _design_small(self, cols: dict[str, np.ndarray]) -> tuple[np.ndarray, list[list[float]], list[list[bool]]]:
-        """``design`` for a few rows (polynomial or linear basis): (Φ (m, p), the numeric inputs per row, the
-        unseen-level flags per categorical column and row)."""
+    def _design_rows(self, cols: dict[str, np.ndarray]) -> tuple[list[list[float]], list[list[float]], list[list[bool]]]:
+        """``design`` for a few rows (polynomial or linear basis) on Python floats: (the design rows (m lists of
+        p), the numeric inputs per row, the unseen-level flags per categorical column and row)."""
         mean, scale, first, steps, width, positions, offsets, total, _, _ = self._small_plan
         inputs = [_finite_floats(cols.get(f)) or numeric_column(cols, f, "input").tolist() for f in self.features]
         m = _nrows(cols)
@@ -250,25 +252,75 @@ class FittedModel:
                     out[i][off + k] = 1.0
                 flags.append(k < 0)
             unseen.append(flags)
-        Phi = np.array(out, dtype=np.float64).reshape(m, total)
-        return Phi, rows, unseen
+        return out, rows, unseen
+
+    def _design_small(self, cols: dict[str, np.ndarray]) -> tuple[np.ndarray, list[list[float]], list[list[bool]]]:
+        """``design`` for a few rows (polynomial or linear basis): (Φ (m, p), the numeric inputs per row, the
+        unseen-level flags per categorical column and row)."""
+        out, rows, unseen = self._design_rows(cols)
+        return np.array(out, dtype=np.float64).reshape(len(rows), self._small_plan[7]), rows, unseen
+
+    def _values(self, Phi: np.ndarray) -> np.ndarray:
+        """Predictions of the raw design rows ``Phi`` (m, p): the intercept plus the products Φᵢⱼ·wⱼ summed in
+        ``_row_sums``' fixed order, so a row's value is the same bits alone or in any batch, on any CPU."""
+        return self.intercept + _row_sums(Phi * self.weights)
+
+    @cached_property
+    def _narrow(self) -> bool:
+        """Whether leverages are summed in ``_row_sums``' order from the factor's products (a small factor: p × (r + 1)
+        ≤ ``_NARROW``) rather than by a matrix product; then a few rows are computed on Python floats end to end."""
+        F = self.leverage_factor
+        p = int(self.column_mean.size)
+        return (F.ndim == 2 and F.shape[1] == p and p * (F.shape[0] + 1) <= _NARROW
+                and bool(np.all(np.isfinite(self.column_scale)) and np.all(self.column_scale != 0)))
+
+    def _leverages(self, Phi: np.ndarray) -> np.ndarray:
+        """Leverage 1/n + ‖F zᵢ‖² of each raw design row (zᵢ: the row centred and scaled)."""
+        F = self.leverage_factor
+        if not F.size:
+            return np.full(Phi.shape[0], 1.0 / self.n_train)
+        Zs = (Phi - self.column_mean) / self.column_scale
+        if self._narrow:  # (m, r, p) products, summed in tree order: _leverage_rows gives the same bits
+            FZ = _row_sums(Zs[:, None, :] * F[None, :, :])
+            return 1.0 / self.n_train + _row_sums(FZ * FZ)
+        FZ = Zs @ F.T
+        return 1.0 / self.n_train + _row_dots(FZ, FZ)
+
+    @cached_property
+    def _row_numbers(self) -> Callable[[list[float]], tuple[float, float]]:
+        """A narrow model's (value, leverage) of one design row on Python floats (``_row_program``)."""
+        F = self.leverage_factor
+        return _row_program(int(self.column_mean.size), int(F.shape[0]) if F.size else 0)(
+            self.weights.tolist(), float(self.intercept), self.column_mean.tolist(), self.column_scale.tolist(),
+            F.tolist() if F.size else [], 1.0 / self.n_train)
 
     def _numbers(self, Phi: np.ndarray, interval_level: float | None):
         """(values, leverages, lower, upper bounds or None) of the raw design rows ``Phi`` (m, p)."""
-        value = self.intercept + Phi @ self.weights
-        Zs = (Phi - self.column_mean) / self.column_scale
-        FZ = Zs @ self.leverage_factor.T if self.leverage_factor.size else np.zeros((Phi.shape[0], 0))
-        lev = 1.0 / self.n_train + _row_dots(FZ, FZ)
+        value = self._values(Phi)
+        lev = self._leverages(Phi)
         lower = upper = None
         if interval_level is not None:
             lower, upper = self._interval(Phi, value, 1.0 - interval_level)
         return value, lev, lower, upper
 
     def _detail_small(self, cols: dict[str, np.ndarray], interval_level: float | None) -> dict[str, Any]:
-        Phi, rows, unseen = self._design_small(cols)
-        value, lev, lower, upper = self._numbers(Phi, interval_level)
-        values = value.tolist()
-        levs = lev.tolist()
+        design_rows, rows, unseen = self._design_rows(cols)
+        if self._narrow:
+            numbers = self._row_numbers
+            values, levs = [], []
+            for phi in design_rows:
+                v, h = numbers(phi)
+                values.append(v)
+                levs.append(h)
+            value, lev = np.array(values, dtype=np.float64), np.array(levs, dtype=np.float64)
+            lower = upper = None
+            if interval_level is not None:
+                Phi = np.array(design_rows, dtype=np.float64).reshape(len(rows), self._small_plan[7])
+                lower, upper = self._interval(Phi, value, 1.0 - interval_level)
+        else:
+            Phi = np.array(design_rows, dtype=np.float64).reshape(len(rows), self._small_plan[7])
+            value, lev, lower, upper = self._numbers(Phi, interval_level)
+            values, levs = value.tolist(), lev.tolist()
         _, _, _, _, _, _, _, _, lo, hi = self._small_plan
         limit = self.max_leverage * (1 + 1e-9)
         warnings: list[list[str]] = []
@@ -285,7 +337,7 @@ class FittedModel:
                     w.append(f"{name}={level_as_sent(cols[name][i])} was not seen in training; its effect is taken "
                              f"as zero (known levels: {known_levels(levels)})")
             if levs[i] > limit:
-                w.append(f"leverage {lev[i]:.3g} exceeds the largest training leverage {self.max_leverage:.3g}: "
+                w.append(f"leverage {levs[i]:.3g} exceeds the largest training leverage {self.max_leverage:.3g}: "
                          "the input combination lies outside the data the model has seen")
             if not math.isfinite(values[i]):
                 w.append(
@@ -639,6 +691,69 @@ except ImportError:  # numpy < 2
 def _row_dots(A: np.ndarray, B: np.ndarray) -> np.ndarray:
     """Σⱼ Aᵢⱼ Bᵢⱼ per row, exactly ``np.einsum("ij,ij->i", A, B)``."""
     return _c_einsum("ij,ij->i", A, B)
+
+
+def _row_sums(S: np.ndarray) -> np.ndarray:
+    """Σⱼ Sᵢⱼ over the last axis in one fixed order: adjacent terms summed in pairs, level by level, an odd last
+    term carried up unchanged (a balanced pairwise tree; error at most ⌈log₂ p⌉·ε·Σⱼ|Sᵢⱼ|). Each step is one
+    IEEE 754 addition per element, so ``_row_program``'s arithmetic on a row's Python floats gives the same bits, and a row's sum
+    depends on nothing else: not the other rows of the batch, the BLAS library or the CPU's vector width."""
+    p = S.shape[-1]
+    if p == 0:
+        return np.zeros(S.shape[:-1])
+    while p > 1:
+        h = p // 2
+        T = S[..., 0:2 * h:2] + S[..., 1:2 * h:2]
+        if p % 2:
+            T = np.concatenate((T, S[..., p - 1:]), axis=-1)
+        S, p = T, h + p % 2
+    return S[..., 0]
+
+
+def _tree_text(terms: list[str]) -> str:
+    """``_row_sums``' order written out: the sum of ``terms`` (Python expressions) as a parenthesized tree."""
+    if not terms:
+        return "0.0"
+    while len(terms) > 1:
+        pairs = [f"({a} + {b})" for a, b in zip(terms[0::2], terms[1::2])]
+        if len(terms) % 2:
+            pairs.append(terms[-1])
+        terms = pairs
+    return terms[0]
+
+
+@lru_cache(maxsize=64)
+def _row_program(p: int, r: int) -> Callable[..., Callable[[list[float]], tuple[float, float]]]:
+    """For a design of p columns and a leverage factor of r rows: a function of the model's numbers (weights,
+    intercept, column mean and scale, factor rows, 1/n) returning ``row(phi) -> (value, leverage)`` for one
+    design row of Python floats, written as straight-line arithmetic: every product, quotient and sum of
+    ``_values`` and ``_leverages`` in the same order, so the same bits (IEEE 754 rounds each operation alike in
+    CPython and in numpy's element-wise loops; CPython neither reorders nor fuses them).
+
+    The text compiled here is made only of generated names (``x3``, ``f2_3``) and operators, from the two
+    integers; the model's numbers are passed in as values and never written into it."""
+    xs = [f"x{j}" for j in range(p)]
+    lines = ["def bind(w, intercept, mean, scale, F, inv_n):"]
+    if p:
+        lines += [f"    {', '.join(f'w{j}' for j in range(p))}, = w",
+                  f"    {', '.join(f'm{j}' for j in range(p))}, = mean",
+                  f"    {', '.join(f's{j}' for j in range(p))}, = scale"]
+    for k in range(r):
+        lines.append(f"    {', '.join(f'f{k}_{j}' for j in range(p))}, = F[{k}]")
+    lines.append("    def row(phi):")
+    if p:
+        lines.append(f"        {', '.join(xs)}, = phi")
+    lines.append(f"        value = intercept + {_tree_text([f'x{j} * w{j}' for j in range(p)])}")
+    if r:
+        lines += [f"        z{j} = (x{j} - m{j}) / s{j}" for j in range(p)]
+        lines += [f"        t{k} = {_tree_text([f'z{j} * f{k}_{j}' for j in range(p)])}" for k in range(r)]
+        lines.append(f"        return value, inv_n + {_tree_text([f't{k} * t{k}' for k in range(r)])}")
+    else:
+        lines.append("        return value, inv_n")
+    lines.append("    return row")
+    namespace: dict[str, Any] = {}
+    exec(compile("\n".join(lines), f"<row program p={p} r={r}>", "exec"), namespace)  # noqa: S102 (generated, see above)
+    return namespace["bind"]
 
 
 def _finite_floats(raw: np.ndarray | None) -> list[float] | None:

@@ -1,9 +1,12 @@
-"""A few rows take ``FittedModel._detail_small`` (Python floats for the element-wise steps, numpy for the
-products): its answers are those of the vectorized path bit for bit (values, leverages, CV+ bounds and every
-warning), and its design matrix is scikit-learn's polynomial features of the standardized inputs."""
+"""A few rows take ``FittedModel._detail_small`` (Python floats for the element-wise steps; for a narrow model
+the sums too, numpy's products otherwise): its answers are those of the vectorized path bit for bit (values,
+leverages, CV+ bounds and every warning), and its design matrix is scikit-learn's polynomial features of the
+standardized inputs. Values (and a narrow model's leverages) are summed in one fixed tree order, so a row gets
+the same bits alone or in any batch."""
 
 from __future__ import annotations
 
+import math
 import numpy as np
 import pytest
 from sklearn.datasets import load_diabetes
@@ -20,11 +23,16 @@ def _data(n: int = 300):
     return {"age": X[:, 0], "bmi": X[:, 2], "bp": X[:, 3], "zone": zone, "y": y}
 
 
-@pytest.fixture(scope="module", params=["polynomial", "linear"])
+BASES = {"polynomial": [{"kind": "polynomial", "degrees": [3]}],  # p = 19 + 3 levels: numpy's products
+         "quadratic": [{"kind": "polynomial", "degrees": [2]}],  # p = 9 + 3: narrow, Python floats throughout
+         "linear": [{"kind": "linear"}]}  # p = 3 + 3: narrow
+
+
+@pytest.fixture(scope="module", params=list(BASES))
 def model(request):
-    bases = [{"kind": "polynomial", "degrees": [3]}] if request.param == "polynomial" else [{"kind": "linear"}]
-    res = tune(_data(), {"target": "y", "bases": bases, "categorical": ["zone"],
+    res = tune(_data(), {"target": "y", "bases": BASES[request.param], "categorical": ["zone"],
                          "penalty": {"strengths": [0.01]}, "cv": {"folds": 5, "seed": 3}})
+    assert res.model._narrow == (request.param != "polynomial")  # both routes are covered
     return res.model
 
 
@@ -74,6 +82,55 @@ def test_few_rows_design_is_scikit_learns_polynomial_features(model):
     # scikit-learn as an independent implementation: population-SD standardization, then (polynomial basis)
     # the monomials up to degree 3 in PolynomialFeatures' column order, then one-hot levels in sorted order
     Z = StandardScaler().fit(X).transform(X[:4])
-    poly = PolynomialFeatures(3, include_bias=False).fit_transform(Z) if model.basis.kind == "polynomial" else Z
+    degree = model.basis.degree if model.basis.kind == "polynomial" else 1
+    poly = PolynomialFeatures(degree, include_bias=False).fit_transform(Z)
     onehot = (d["zone"][:4, None] == np.array(["east", "north", "south"])[None, :]).astype(float)
     np.testing.assert_allclose(Phi, np.hstack([poly, onehot]), rtol=1e-12, atol=1e-12)
+
+
+def test_a_row_gets_the_same_bits_alone_and_in_any_batch(model):
+    d = _data()
+    q = {k: v[:40] for k, v in d.items() if k != "y"}
+    whole = model.predict_detail(q)
+    plain = model.predict(q)
+    assert plain.tobytes() == whole["value"].tobytes()  # predict and predict_detail: one computation
+    for size, start in ((1, 7), (2, 0), (5, 13), (16, 24), (17, 3), (33, 7)):  # few-rows and vectorized paths
+        part = model.predict_detail({k: v[start:start + size] for k, v in q.items()})
+        assert part["value"].tobytes() == whole["value"][start:start + size].tobytes(), size
+        if model._narrow:  # a wide model's leverage goes through a matrix product, whose rounding may vary
+            assert part["leverage"].tobytes() == whole["leverage"][start:start + size].tobytes(), size
+        else:
+            np.testing.assert_allclose(part["leverage"], whole["leverage"][start:start + size], rtol=1e-13)
+    # the same numbers as the matrix-product form they replace, to rounding (common practice: a sum's
+    # order changes only its last bits)
+    Phi, _, _ = model.design(q)
+    np.testing.assert_allclose(whole["value"], model.intercept + Phi @ model.weights, rtol=1e-13)
+    Zs = (Phi - model.column_mean) / model.column_scale
+    FZ = Zs @ model.leverage_factor.T
+    np.testing.assert_allclose(whole["leverage"], 1.0 / model.n_train + (FZ * FZ).sum(axis=1), rtol=1e-12)
+
+
+def test_tree_sums_meet_the_pairwise_error_bound_and_python_gives_the_same_bits():
+    rng = np.random.default_rng(11)
+    for p in [1, 2, 3, 5, 8, 13, 31, 64, 100]:
+        S = rng.normal(size=(50, p)) * 10.0 ** rng.integers(-8, 9, size=(50, p))
+        got = model_module._row_sums(S)
+        w = rng.normal(size=p)
+        bind = model_module._row_program(p, 0)(w.tolist(), 0.5, [0.0] * p, [1.0] * p, [], 0.25)
+        ref_rows = model_module._row_sums(S * w)
+        for i in range(S.shape[0]):
+            # math.fsum is the correctly rounded sum; pairwise summation's bound is ⌈log₂ p⌉·u·Σ|xᵢ| to first
+            # order (Higham, "Accuracy and Stability of Numerical Algorithms", 2nd ed., 2002, section 4.2)
+            exact = math.fsum(S[i].tolist())
+            bound = max(1, math.ceil(math.log2(p))) * 2.0 ** -53 * float(np.abs(S[i]).sum()) * (1 + 1e-12)
+            assert abs(float(got[i]) - exact) <= bound, (p, i)
+            value, lev = bind(S[i].tolist())
+            assert value == 0.5 + float(ref_rows[i]) and lev == 0.25, (p, i)
+    # IEEE specials pass through both alike
+    S = np.array([[np.inf, 1.0, -np.inf], [1e308, 1e308, -1e308], [-0.0, -0.0, -0.0]])
+    bind = model_module._row_program(3, 0)([1.0] * 3, 0.0, [0.0] * 3, [1.0] * 3, [], 0.0)
+    for i in range(3):
+        with np.errstate(over="ignore", invalid="ignore"):
+            a = float(0.0 + model_module._row_sums(S[i:i + 1])[0])
+        b = bind(S[i].tolist())[0]
+        assert (math.isnan(a) and math.isnan(b)) or (a == b and math.copysign(1, a) == math.copysign(1, b)), i
