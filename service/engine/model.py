@@ -35,6 +35,7 @@ _SNAP_VALUES = 2**18  # CV+ bounds: candidate values sorted at once (rows × win
 SMALL_ROWS = 16  # at most this many rows (polynomial or linear basis) take the few-rows path (``_detail_small``)
 _DIRECT_VALUES = 1 << 15  # CV+ bounds: rows × residuals up to this are ranked directly (one partition per row)
 _NARROW = 160  # p × (r + 1) up to this: leverages are summed in tree order, and a few rows stay on Python floats
+_NARROW_BLOCK = 1 << 15  # products held at once by a narrow model's leverages (256 KiB)
 
 
 @dataclass
@@ -144,8 +145,7 @@ class FittedModel:
         r = int(self.leverage_factor.shape[0]) if self.leverage_factor.ndim == 2 else 0
         k = int(self.fold_weights.shape[0]) if self.fold_weights is not None else 0
         d = len(self.features)
-        narrow = 2 * r * p if self._narrow else 0  # the (r, p) products of a row's leverage and their first sums
-        per_row = 8 * (5 * p + r + narrow + 2 * k + 4 * d + 16 + (2 * int(self.residuals.size) if with_interval and k else 0))
+        per_row = 8 * (5 * p + r + 2 * k + 4 * d + 16 + (2 * int(self.residuals.size) if with_interval and k else 0))
         return max(1, memory_bytes // per_row)
 
     def predict(self, data: Any, memory_bytes: int = PREDICT_MEMORY_BYTES) -> np.ndarray:
@@ -262,12 +262,12 @@ class FittedModel:
 
     def _values(self, Phi: np.ndarray) -> np.ndarray:
         """Predictions of the raw design rows ``Phi`` (m, p): the intercept plus the products Φᵢⱼ·wⱼ summed in
-        ``_row_sums``' fixed order, so a row's value is the same bits alone or in any batch, on any CPU."""
-        return self.intercept + _row_sums(Phi * self.weights)
+        ``_tree_sums``' fixed order, so a row's value is the same bits alone or in any batch, on any CPU."""
+        return self.intercept + _tree_sums(np.multiply(Phi.T, self.weights[:, None], order="C"))
 
     @cached_property
     def _narrow(self) -> bool:
-        """Whether leverages are summed in ``_row_sums``' order from the factor's products (a small factor: p × (r + 1)
+        """Whether leverages are summed in ``_tree_sums``' order from the factor's products (a small factor: p × (r + 1)
         ≤ ``_NARROW``) rather than by a matrix product; then a few rows are computed on Python floats end to end."""
         F = self.leverage_factor
         p = int(self.column_mean.size)
@@ -279,10 +279,17 @@ class FittedModel:
         F = self.leverage_factor
         if not F.size:
             return np.full(Phi.shape[0], 1.0 / self.n_train)
+        if self._narrow:  # the (p, r, rows) products zₗ·Fⱼₗ summed over l in tree order, then the squares over j
+            m = Phi.shape[0]
+            out = np.empty(m)
+            step = max(1, _NARROW_BLOCK // F.size)  # rows at a time: the temporaries stay in cache, off the page allocator
+            for a in range(0, m, step):
+                Zt = np.subtract(Phi[a:a + step].T, self.column_mean[:, None], order="C")
+                Zt /= self.column_scale[:, None]
+                FZ = _tree_sums(Zt[:, None, :] * F.T[:, :, None])
+                np.add(1.0 / self.n_train, _tree_sums(FZ * FZ), out=out[a:a + step])
+            return out
         Zs = (Phi - self.column_mean) / self.column_scale
-        if self._narrow:  # (m, r, p) products, summed in tree order: _leverage_rows gives the same bits
-            FZ = _row_sums(Zs[:, None, :] * F[None, :, :])
-            return 1.0 / self.n_train + _row_sums(FZ * FZ)
         FZ = Zs @ F.T
         return 1.0 / self.n_train + _row_dots(FZ, FZ)
 
@@ -693,25 +700,27 @@ def _row_dots(A: np.ndarray, B: np.ndarray) -> np.ndarray:
     return _c_einsum("ij,ij->i", A, B)
 
 
-def _row_sums(S: np.ndarray) -> np.ndarray:
-    """Σⱼ Sᵢⱼ over the last axis in one fixed order: adjacent terms summed in pairs, level by level, an odd last
-    term carried up unchanged (a balanced pairwise tree; error at most ⌈log₂ p⌉·ε·Σⱼ|Sᵢⱼ|). Each step is one
-    IEEE 754 addition per element, so ``_row_program``'s arithmetic on a row's Python floats gives the same bits, and a row's sum
-    depends on nothing else: not the other rows of the batch, the BLAS library or the CPU's vector width."""
-    p = S.shape[-1]
+def _tree_sums(S: np.ndarray) -> np.ndarray:
+    """Σⱼ Sⱼ… over the first axis (S: (p, …) → (…)) in one fixed order: adjacent terms summed in pairs, level by
+    level, an odd last term carried up unchanged (a balanced pairwise tree; error at most ⌈log₂ p⌉·ε·Σⱼ|Sⱼ|).
+    Each step is one IEEE 754 addition per element, so ``_row_program``'s arithmetic on a row's Python floats
+    gives the same bits, and a row's sum depends on nothing else: not the other rows of the batch, the BLAS
+    library or the CPU's vector width. The summed axis comes first so that each step adds long contiguous runs."""
+    p = S.shape[0]
     if p == 0:
-        return np.zeros(S.shape[:-1])
+        return np.zeros(S.shape[1:])
     while p > 1:
-        h = p // 2
-        T = S[..., 0:2 * h:2] + S[..., 1:2 * h:2]
-        if p % 2:
-            T = np.concatenate((T, S[..., p - 1:]), axis=-1)
-        S, p = T, h + p % 2
-    return S[..., 0]
+        h, odd = p // 2, p % 2
+        T = np.empty((h + odd, *S.shape[1:]))
+        np.add(S[0:2 * h:2], S[1:2 * h:2], out=T[:h])
+        if odd:
+            T[h] = S[p - 1]
+        S, p = T, h + odd
+    return S[0]
 
 
 def _tree_text(terms: list[str]) -> str:
-    """``_row_sums``' order written out: the sum of ``terms`` (Python expressions) as a parenthesized tree."""
+    """``_tree_sums``' order written out: the sum of ``terms`` (Python expressions) as a parenthesized tree."""
     if not terms:
         return "0.0"
     while len(terms) > 1:

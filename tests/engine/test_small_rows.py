@@ -114,10 +114,10 @@ def test_tree_sums_meet_the_pairwise_error_bound_and_python_gives_the_same_bits(
     rng = np.random.default_rng(11)
     for p in [1, 2, 3, 5, 8, 13, 31, 64, 100]:
         S = rng.normal(size=(50, p)) * 10.0 ** rng.integers(-8, 9, size=(50, p))
-        got = model_module._row_sums(S)
+        got = model_module._tree_sums(S.T)
         w = rng.normal(size=p)
         bind = model_module._row_program(p, 0)(w.tolist(), 0.5, [0.0] * p, [1.0] * p, [], 0.25)
-        ref_rows = model_module._row_sums(S * w)
+        ref_rows = model_module._tree_sums((S * w).T)
         for i in range(S.shape[0]):
             # math.fsum is the correctly rounded sum; pairwise summation's bound is ⌈log₂ p⌉·u·Σ|xᵢ| to first
             # order (Higham, "Accuracy and Stability of Numerical Algorithms", 2nd ed., 2002, section 4.2)
@@ -131,6 +131,6 @@ def test_tree_sums_meet_the_pairwise_error_bound_and_python_gives_the_same_bits(
     bind = model_module._row_program(3, 0)([1.0] * 3, 0.0, [0.0] * 3, [1.0] * 3, [], 0.0)
     for i in range(3):
         with np.errstate(over="ignore", invalid="ignore"):
-            a = float(0.0 + model_module._row_sums(S[i:i + 1])[0])
+            a = float(0.0 + model_module._tree_sums(S[i:i + 1].T)[0])
         b = bind(S[i].tolist())[0]
         assert (math.isnan(a) and math.isnan(b)) or (a == b and math.copysign(1, a) == math.copysign(1, b)), i
