@@ -68,11 +68,15 @@ def test_few_rows_answer_as_the_vectorized_path_bit_for_bit(model, interval_leve
         for key in ("value", "leverage", "lower", "upper"):
             if ref[key] is None:
                 assert small[key] is None, (label, key)
-            else:  # bit for bit, except a NaN's sign, which nothing reads (an answer writes any NaN as null)
+            elif label == "overflow" and key in ("lower", "upper"):
+                # the two CV+ routes (direct ranking, bisection) give NaN bounds of either sign where the fold
+                # predictions overflow; nothing reads a NaN's sign (an answer writes any NaN as null)
                 a, b = small[key].copy(), ref[key].copy()
                 assert np.array_equal(np.isnan(a), np.isnan(b)), (label, key, a, b)
                 a[np.isnan(a)] = b[np.isnan(b)] = np.nan
                 assert a.tobytes() == b.tobytes(), (label, key, small[key], ref[key])
+            else:
+                assert small[key].tobytes() == ref[key].tobytes(), (label, key, small[key], ref[key])
         assert small["warnings"] == ref["warnings"], label
     outside = model.predict_detail(dict(queries())["outside"])["warnings"]
     assert any("above the training range" in w for w in outside[0])
