@@ -200,11 +200,30 @@ def new_held_lock(folder: Path, content: bytes, mode: int) -> tuple[str, int, Pa
     """A new lock file ``<token>.lock`` in ``folder``, made exclusively (never through a link), locked with
     ``fcntl.flock(mode)`` (``LOCK_EX`` or ``LOCK_SH``) and starting with ``content``, the mark that proves to a
     later sweep that the folder named by the token is Tikhon's. Returns (token, open descriptor, path); the
-    caller closes the descriptor to release it. A lock file a sweeper took for a dead one between its creation
-    and the ``flock`` is left to it, and another token is drawn."""
+    caller closes the descriptor to release it.
+
+    Where the file system offers ``O_TMPFILE`` (Linux ext4, xfs, btrfs, tmpfs), the file is written, marked and
+    locked while it has no name and then linked in: a process killed at any moment leaves either no file or a
+    marked one, never an empty ``<token>.lock`` that a sweep would have to keep. Elsewhere the file is created
+    by name, and a kill between its creation and its mark leaves an unmarked file that the sweep keeps and
+    reports. A lock file a sweeper took for a dead one between its creation and the ``flock`` is left to it,
+    and another token is drawn."""
     while True:
         token = uuid.uuid4().hex
         path = folder / f"{token}.lock"
+        fd = _unnamed_held(folder, content, mode)
+        if fd is not None:
+            try:
+                # linkat(AT_SYMLINK_FOLLOW) on /proc/self/fd names the open file; EEXIST if the name is taken
+                os.link(f"/proc/self/fd/{fd}", path)
+            except FileExistsError:
+                os.close(fd)
+                continue
+            except OSError:  # /proc not mounted, or linking refused: create by name below
+                os.close(fd)
+                _TMPFILE_OK[0] = False
+            else:
+                return token, fd, path
         fd = os.open(path, os.O_CREAT | os.O_EXCL | os.O_RDWR | os.O_NOFOLLOW, 0o644)
         fcntl.flock(fd, mode)
         os.write(fd, content)
@@ -215,3 +234,29 @@ def new_held_lock(folder: Path, content: bytes, mode: int) -> tuple[str, int, Pa
         if ours:
             return token, fd, path
         os.close(fd)
+
+
+# Whether O_TMPFILE with a link through /proc worked; set to False at the first refusal so that a file system
+# without it costs one failed call per process, not one per lock.
+_TMPFILE_OK = [hasattr(os, "O_TMPFILE")]
+
+
+def _unnamed_held(folder: Path, content: bytes, mode: int) -> int | None:
+    """An unnamed file in ``folder`` (``O_TMPFILE``), locked with ``flock(mode)`` and holding ``content``;
+    None where the file system or platform does not offer one."""
+    if not _TMPFILE_OK[0]:
+        return None
+    try:
+        fd = os.open(folder, os.O_TMPFILE | os.O_RDWR, 0o644)
+    except OSError as exc:
+        if isinstance(exc, FileNotFoundError) and not folder.is_dir():
+            raise
+        _TMPFILE_OK[0] = False  # EOPNOTSUPP, EISDIR (kernels before 3.11), EINVAL: not offered here
+        return None
+    try:
+        fcntl.flock(fd, mode)
+        os.write(fd, content)
+    except BaseException:
+        os.close(fd)
+        raise
+    return fd
