@@ -972,6 +972,8 @@ class Store:
                     os.close(fd)
             elif entry.name.startswith("ping-") and layout.HEX_TOKEN.fullmatch(entry.name[5:]) and entry.is_file():
                 entry.unlink(missing_ok=True)  # a readiness probe whose process died between write and unlink
+            elif not os.path.lexists(entry):
+                continue  # a staging folder this sweep removed with its lock file, listed before that
             elif not (layout.HEX_TOKEN.fullmatch(token) and (staging_root / f"{token}.lock").exists()):
                 kept.append(f"{STAGING_DIR}/{entry.name}")
         return removed
