@@ -32,6 +32,8 @@ Everything else that the catalog does not list is kept and reported.
 
 from __future__ import annotations
 
+import ctypes
+import errno
 import fcntl
 import json
 import os
@@ -213,17 +215,12 @@ def new_held_lock(folder: Path, content: bytes, mode: int) -> tuple[str, int, Pa
         path = folder / f"{token}.lock"
         fd = _unnamed_held(folder, content, mode)
         if fd is not None:
-            try:
-                # linkat(AT_SYMLINK_FOLLOW) on /proc/self/fd names the open file; EEXIST if the name is taken
-                os.link(f"/proc/self/fd/{fd}", path)
-            except FileExistsError:
-                os.close(fd)
-                continue
-            except OSError:  # /proc not mounted, or linking refused: create by name below
-                os.close(fd)
-                _TMPFILE_OK[0] = False
-            else:
+            linked = _link_unnamed(fd, path)
+            if linked:
                 return token, fd, path
+            os.close(fd)
+            if linked is None:
+                continue  # the name is taken: draw another token
         fd = os.open(path, os.O_CREAT | os.O_EXCL | os.O_RDWR | os.O_NOFOLLOW, 0o644)
         fcntl.flock(fd, mode)
         os.write(fd, content)
@@ -236,9 +233,41 @@ def new_held_lock(folder: Path, content: bytes, mode: int) -> tuple[str, int, Pa
         os.close(fd)
 
 
-# Whether O_TMPFILE with a link through /proc worked; set to False at the first refusal so that a file system
-# without it costs one failed call per process, not one per lock.
-_TMPFILE_OK = [hasattr(os, "O_TMPFILE")]
+# Whether unnamed files (O_TMPFILE) can be made and linked here; set to False at the first refusal, so that a file
+# system without them costs one failed call per process, not one per lock.
+try:
+    _LIBC = ctypes.CDLL(None, use_errno=True)
+    _TMPFILE_OK = [hasattr(os, "O_TMPFILE") and hasattr(_LIBC, "linkat")]
+except OSError:  # no C library to load (not a glibc or musl system)
+    _TMPFILE_OK = [False]
+
+
+_AT_FDCWD = -100
+_AT_SYMLINK_FOLLOW = 0x400
+_AT_EMPTY_PATH = 0x1000
+
+
+def _link_unnamed(fd: int, path: Path) -> bool | None:
+    """Give the unnamed file open as ``fd`` the name ``path`` with ``linkat(2)``, which never replaces an
+    existing name. True when linked; None when ``path`` exists; False when this system refuses to link an
+    unnamed file (then ``_TMPFILE_OK`` is cleared and files are created by name).
+
+    ``linkat(fd, "", AT_FDCWD, path, AT_EMPTY_PATH)`` is tried first, then ``/proc/self/fd/<fd>`` with
+    ``AT_SYMLINK_FOLLOW`` (the form open(2) documents for ``O_TMPFILE``; ``AT_EMPTY_PATH`` needed
+    ``CAP_DAC_READ_SEARCH`` on older kernels). ``os.link`` with its defaults calls link(2) in CPython 3.11, which
+    links the ``/proc`` symbolic link itself and fails with EXDEV (seen on this project's machines), hence the
+    C call."""
+    target = os.fsencode(path)
+    for source, flags in ((b"", _AT_EMPTY_PATH), (f"/proc/self/fd/{fd}".encode(), _AT_SYMLINK_FOLLOW)):
+        if _LIBC.linkat(fd if not source else _AT_FDCWD, source, _AT_FDCWD, target, flags) == 0:
+            return True
+        err = ctypes.get_errno()
+        if err == errno.EEXIST:
+            return None
+        if err not in (errno.EPERM, errno.ENOENT, errno.EINVAL, errno.EXDEV, errno.EACCES, errno.EOPNOTSUPP):
+            raise OSError(err, os.strerror(err), str(path))
+    _TMPFILE_OK[0] = False
+    return False
 
 
 def _unnamed_held(folder: Path, content: bytes, mode: int) -> int | None:

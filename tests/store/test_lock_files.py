@@ -32,7 +32,10 @@ _CHILD = textwrap.dedent("""
     elif step == "write":
         os.write = die
     elif step == "link":
-        os.link = die
+        class _Dying:
+            def linkat(self, *a):
+                die()
+        layout._LIBC = _Dying()
     layout.new_held_lock(folder, layout.STAGING_MARK, fcntl.LOCK_EX)
     print("survived")
 """)
@@ -76,6 +79,7 @@ def test_the_linked_lock_file_is_marked_and_held(store):
     token, fd, path = layout.new_held_lock(staging, layout.STAGING_MARK, fcntl.LOCK_EX)
     try:
         assert path == staging / f"{token}.lock" and path.read_bytes() == layout.STAGING_MARK
+        assert layout._TMPFILE_OK[0]  # made unnamed and linked, not by name after a refusal
         assert os.fstat(fd).st_ino == os.stat(path).st_ino
         other = os.open(path, os.O_RDWR)
         try:
@@ -116,3 +120,31 @@ def test_a_dead_publishs_staging_is_removed_and_not_reported_in_either_listing_o
     again.close()
     assert again.last_sweep["staging"] == 1 and again.kept == []
     assert list(real(staging)) == []
+
+
+def test_a_system_that_refuses_to_link_unnamed_files_gets_lock_files_made_by_name(store, monkeypatch):
+    import ctypes
+    import errno
+
+    class Refusing:  # linkat(2) failing with EPERM, as AT_EMPTY_PATH without CAP_DAC_READ_SEARCH on older kernels
+        calls = 0
+
+        def linkat(self, *args):
+            Refusing.calls += 1
+            ctypes.set_errno(errno.EPERM)
+            return -1
+
+    monkeypatch.setattr(layout, "_LIBC", Refusing())
+    monkeypatch.setattr(layout, "_TMPFILE_OK", [True])
+    staging = store.root / layout.STAGING_DIR
+    token, fd, path = layout.new_held_lock(staging, layout.STAGING_MARK, fcntl.LOCK_EX)
+    try:
+        assert path.read_bytes() == layout.STAGING_MARK and layout._TMPFILE_OK == [False]
+        assert Refusing.calls == 2  # both forms tried once, then never again in this process
+        path2 = layout.new_held_lock(staging, layout.STAGING_MARK, fcntl.LOCK_EX)
+        os.close(path2[1])
+        path2[2].unlink()
+        assert Refusing.calls == 2 and sorted(p.name for p in staging.iterdir()) == [path.name]
+    finally:
+        path.unlink()
+        os.close(fd)
