@@ -249,8 +249,8 @@ _AT_EMPTY_PATH = 0x1000
 
 def _link_unnamed(fd: int, path: Path) -> bool | None:
     """Give the unnamed file open as ``fd`` the name ``path`` with ``linkat(2)``, which never replaces an
-    existing name. True when linked; None when ``path`` exists; False when this system refuses to link an
-    unnamed file (then ``_TMPFILE_OK`` is cleared and files are created by name).
+    existing name. True when linked; None when ``path`` exists; False otherwise: the file is then created by
+    name, and where the refusal says linking unnamed files is not offered here, ``_TMPFILE_OK`` is cleared.
 
     ``linkat(fd, "", AT_FDCWD, path, AT_EMPTY_PATH)`` is tried first, then ``/proc/self/fd/<fd>`` with
     ``AT_SYMLINK_FOLLOW`` (the form open(2) documents for ``O_TMPFILE``; ``AT_EMPTY_PATH`` needed
@@ -258,16 +258,23 @@ def _link_unnamed(fd: int, path: Path) -> bool | None:
     links the ``/proc`` symbolic link itself and fails with EXDEV (seen on this project's machines), hence the
     C call."""
     target = os.fsencode(path)
+    refused = True
     for source, flags in ((b"", _AT_EMPTY_PATH), (f"/proc/self/fd/{fd}".encode(), _AT_SYMLINK_FOLLOW)):
         if _LIBC.linkat(fd if not source else _AT_FDCWD, source, _AT_FDCWD, target, flags) == 0:
             return True
         err = ctypes.get_errno()
         if err == errno.EEXIST:
             return None
-        if err not in (errno.EPERM, errno.ENOENT, errno.EINVAL, errno.EXDEV, errno.EACCES, errno.EOPNOTSUPP):
-            raise OSError(err, os.strerror(err), str(path))
-    _TMPFILE_OK[0] = False
+        refused = refused and err in _NOT_OFFERED
+    if refused:
+        _TMPFILE_OK[0] = False
+    # any other failure (a full disk, an I/O error) is left to the creation by name, which reports it
     return False
+
+
+# what linkat(2) answers where linking an unnamed file is not offered (rather than failing this time)
+_NOT_OFFERED = frozenset({errno.EPERM, errno.EACCES, errno.ENOENT, errno.EINVAL, errno.EXDEV, errno.EOPNOTSUPP,
+                          errno.ENOSYS})
 
 
 def _unnamed_held(folder: Path, content: bytes, mode: int) -> int | None:

@@ -148,3 +148,23 @@ def test_a_system_that_refuses_to_link_unnamed_files_gets_lock_files_made_by_nam
     finally:
         path.unlink()
         os.close(fd)
+
+
+def test_a_link_failing_for_a_passing_reason_falls_back_this_time_only(store, monkeypatch):
+    import ctypes
+    import errno
+
+    class Full:  # linkat(2) failing with ENOSPC (a full directory): not a lack of support
+        def linkat(self, *args):
+            ctypes.set_errno(errno.ENOSPC)
+            return -1
+
+    monkeypatch.setattr(layout, "_LIBC", Full())
+    monkeypatch.setattr(layout, "_TMPFILE_OK", [True])
+    staging = store.root / layout.STAGING_DIR
+    token, fd, path = layout.new_held_lock(staging, layout.STAGING_MARK, fcntl.LOCK_EX)
+    try:
+        assert path.read_bytes() == layout.STAGING_MARK and layout._TMPFILE_OK == [True]
+    finally:
+        path.unlink()
+        os.close(fd)
