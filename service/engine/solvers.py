@@ -371,11 +371,11 @@ def leverage_triangle(F: np.ndarray, scale: np.ndarray) -> np.ndarray:
 def row_leverages(D: np.ndarray, mean: np.ndarray, T: np.ndarray, n: float) -> np.ndarray:
     """``1/n + ‖T (xᵢ − mean)‖²`` for every row xᵢ of the design D (n_rows × p), T from
     ``leverage_triangle``. D is overwritten (centred, then multiplied by Tᵀ in place when column-major)."""
-    from scipy.linalg import blas
+    from .blas3 import trmm_right_upper_t
 
     D -= mean
     if D.flags.f_contiguous and D.shape[0]:
-        FZ = blas.dtrmm(1.0, np.asfortranarray(T), D, side=1, lower=0, trans_a=1, overwrite_b=1)
+        FZ = trmm_right_upper_t(np.asfortranarray(T), D)  # in place, without holding the GIL
     else:
         FZ = D @ T.T
     FZ *= FZ

@@ -47,6 +47,8 @@ from scipy.linalg import blas as _blas
 from scipy.linalg import lapack as _lapack
 from scipy.linalg import qr as _scipy_qr
 
+from . import blas3
+
 CHUNK_ROWS = 16_384
 CQR2_MAX_COND = 1e5  # estimated condition (1-norm) of the column-scaled block up to which CholeskyQR2 is used
 ABSORB_MAX_W2 = 1e4  # ‖B R⁻¹‖_F² up to which a block B is absorbed into the running R (``absorb``)
@@ -108,16 +110,11 @@ def _solve_blocked(X: np.ndarray, S: np.ndarray) -> np.ndarray:
     if X.shape[0] == 0:
         return X
     if m <= SOLVE_LEAF:
-        out = _blas.dtrsm(1.0, S, X, side=1, lower=0, trans_a=0, overwrite_b=1)
-        if out is not X and not np.shares_memory(out, X):
-            X[...] = out
-        return X
+        return blas3.trsm_right_upper(S, X)  # in place, without holding the GIL (``blas3``)
     h = m // 2
     X1, X2 = X[:, :h], X[:, h:]
     _solve_blocked(X1, np.asfortranarray(S[:h, :h]))
-    out = _blas.dgemm(-1.0, X1, np.asfortranarray(S[:h, h:]), beta=1.0, c=X2, overwrite_c=1)
-    if not np.shares_memory(out, X2):
-        X2[...] = out
+    blas3.gemm_subtract(X1, np.asfortranarray(S[:h, h:]), X2)
     _solve_blocked(X2, np.asfortranarray(S[h:, h:]))
     return X
 
