@@ -117,7 +117,38 @@ def _bottom_k(h: np.ndarray, k: int) -> np.ndarray:
     return np.argpartition(h, k - 1)[:k]
 
 
+def _scan_batch(ctx: _Ctx, item: tuple[dict[str, np.ndarray], int]):
+    """What the scan needs of one batch (``item``: the batch and the position of its first row), computed on
+    a worker thread: its checked columns, their fingerprint lanes, per-column mean, sum of squared
+    deviations and range, categorical values, groups and sample hashes. ``_scan_partition`` adds them up in
+    batch order, so the scan's result does not depend on the threads."""
+    batch, pos = item
+    X, y = _numeric_block(ctx, batch, pos)
+    b = y.size
+    if b == 0:
+        return None
+    lanes = fingerprint_columns(batch, ctx.columns, pos, label_columns(ctx.spec))
+    bm = X.mean(axis=0)
+    bm2 = ((X - bm) ** 2).sum(axis=0)
+    ranges = (X.min(axis=0), X.max(axis=0)) if X.shape[1] else None
+    cats = [categorical_column(batch, name, pos).tolist() for name in ctx.spec.categorical]
+    groups = categorical_column(batch, ctx.spec.cv.group_by, pos).tolist() if ctx.spec.cv.group_by else None
+    h = key_hash(_keys(ctx, batch, pos, b), ctx.spec.cv.seed ^ SAMPLE_SALT)
+    return X, y, lanes, bm, bm2, ranges, cats, groups, h
+
+
+def _positioned(ctx: _Ctx, part: Partition) -> Iterator[tuple[dict[str, np.ndarray], int]]:
+    pos = part.offset
+    for batch in part.read(ctx.columns, ctx.batch_rows):
+        yield batch, pos
+        pos += len(batch[ctx.spec.target])
+
+
 def _scan_partition(ctx: _Ctx, part: Partition) -> Scan:
+    """The scan of one partition: its batches worked on ``ctx.threads`` at a time (``_scan_batch``) and
+    added up here in their order: running means and sums of squares by Chan, Golub & LeVeque's pairwise
+    update, ranges, level counts (the level limit checked after each batch, so the error names the rows
+    read so far), groups, and the seeded sample of rows kept by smallest hash."""
     d = len(ctx.features)
     n, mean, m2 = 0, np.zeros(d), np.zeros(d)
     lo, hi = np.full(d, np.inf), np.full(d, -np.inf)
@@ -127,29 +158,26 @@ def _scan_partition(ctx: _Ctx, part: Partition) -> Scan:
     sh, sp, sx = np.zeros(0, np.uint64), np.zeros(0, np.int64), np.zeros((0, d))
     lanes: dict[str, np.ndarray] = {}
     pos = part.offset
-    for batch in part.read(ctx.columns, ctx.batch_rows):
-        X, y = _numeric_block(ctx, batch, pos)
-        b = y.size
-        if b == 0:
+    for got in ordered_map(partial(_scan_batch, ctx), _positioned(ctx, part), ctx.threads):
+        if got is None:
             continue
-        lanes = add_lanes(lanes, fingerprint_columns(batch, ctx.columns, pos, label_columns(ctx.spec)))
-        bm = X.mean(axis=0)
-        bm2 = ((X - bm) ** 2).sum(axis=0)
+        X, y, batch_lanes, bm, bm2, ranges, cats, batch_groups, h = got
+        b = y.size
+        lanes = add_lanes(lanes, batch_lanes)
         delta = bm - mean
         tot = n + b
         mean = mean + delta * (b / tot)  # Chan, Golub & LeVeque (1979) pairwise update
         m2 = m2 + bm2 + delta ** 2 * (n * b / tot)
         n = tot
-        if d:
-            lo, hi = np.minimum(lo, X.min(axis=0)), np.maximum(hi, X.max(axis=0))
+        if ranges is not None:
+            lo, hi = np.minimum(lo, ranges[0]), np.maximum(hi, ranges[1])
         y_lo, y_hi = min(y_lo, float(y.min())), max(y_hi, float(y.max()))
-        for s, name in zip(levels, ctx.spec.categorical):
-            s.update(categorical_column(batch, name, pos).tolist())
+        for s, name, values in zip(levels, ctx.spec.categorical, cats):
+            s.update(values)
             if ctx.budget is not None:  # stop at the first batch past the limit: the sets stay small
                 check_levels(name, len(s), ctx.budget, rows_read=pos + b - part.offset)
-        if ctx.spec.cv.group_by:
-            groups.update(categorical_column(batch, ctx.spec.cv.group_by, pos).tolist())
-        h = key_hash(_keys(ctx, batch, pos, b), ctx.spec.cv.seed ^ SAMPLE_SALT)
+        if batch_groups is not None:
+            groups.update(batch_groups)
         sh = np.concatenate([sh, h])
         sp = np.concatenate([sp, np.arange(pos, pos + b)])
         sx = np.vstack([sx, X])
