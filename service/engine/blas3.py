@@ -81,36 +81,32 @@ def _d(v: float):
     return ctypes.byref(ctypes.c_double(v))
 
 
+def _right_upper(what: str, routine, wrapper, trans: bytes, T: np.ndarray, X: np.ndarray) -> np.ndarray:
+    """``X ← X op(T)`` in place by a right-side triangular BLAS routine (T upper, not unit), or by SciPy's
+    wrapper ``wrapper`` (with the same arguments) where ``routine`` cannot take the arrays."""
+    if T.shape != (X.shape[1],) * 2:
+        _fit(what, T.shape, X.shape)
+    ldx, ldt = _ld(X), _ld(T)
+    if not AVAILABLE or ldx is None or ldt is None or not X.flags.writeable:
+        out = wrapper(1.0, np.asfortranarray(T), X, side=1, lower=0, trans_a=int(trans == b"T"), overwrite_b=1)
+        if out is not X and not np.shares_memory(out, X):
+            X[...] = out
+        return X
+    if X.size:
+        routine(b"R", b"U", trans, b"N", _i(X.shape[0]), _i(X.shape[1]), _d(1.0), _ptr(T), _i(ldt), _ptr(X), _i(ldx))
+    return X
+
+
 def trmm_right_upper_t(T: np.ndarray, D: np.ndarray) -> np.ndarray:
     """``D ← D Tᵀ`` in place, T upper triangular (p × p), D (rows × p); returns D. The same as
     ``scipy.linalg.blas.dtrmm(1.0, T, D, side=1, lower=0, trans_a=1, overwrite_b=1)``."""
-    if T.shape != (D.shape[1],) * 2:
-        _fit("trmm_right_upper_t", T.shape, D.shape)
-    ldd, ldt = _ld(D), _ld(T)
-    if not AVAILABLE or ldd is None or ldt is None or not D.flags.writeable:
-        out = _blas.dtrmm(1.0, np.asfortranarray(T), D, side=1, lower=0, trans_a=1, overwrite_b=1)
-        if out is not D and not np.shares_memory(out, D):
-            D[...] = out
-        return D
-    if D.size:
-        _DTRMM(b"R", b"U", b"T", b"N", _i(D.shape[0]), _i(D.shape[1]), _d(1.0), _ptr(T), _i(ldt), _ptr(D), _i(ldd))
-    return D
+    return _right_upper("trmm_right_upper_t", _DTRMM if AVAILABLE else None, _blas.dtrmm, b"T", T, D)
 
 
 def trsm_right_upper(S: np.ndarray, X: np.ndarray) -> np.ndarray:
     """``X ← X S⁻¹`` in place, S upper triangular (p × p), X (rows × p); returns X. The same as
     ``scipy.linalg.blas.dtrsm(1.0, S, X, side=1, lower=0, trans_a=0, overwrite_b=1)``."""
-    if S.shape != (X.shape[1],) * 2:
-        _fit("trsm_right_upper", S.shape, X.shape)
-    ldx, lds = _ld(X), _ld(S)
-    if not AVAILABLE or ldx is None or lds is None or not X.flags.writeable:
-        out = _blas.dtrsm(1.0, np.asfortranarray(S), X, side=1, lower=0, trans_a=0, overwrite_b=1)
-        if out is not X and not np.shares_memory(out, X):
-            X[...] = out
-        return X
-    if X.size:
-        _DTRSM(b"R", b"U", b"N", b"N", _i(X.shape[0]), _i(X.shape[1]), _d(1.0), _ptr(S), _i(lds), _ptr(X), _i(ldx))
-    return X
+    return _right_upper("trsm_right_upper", _DTRSM if AVAILABLE else None, _blas.dtrsm, b"N", S, X)
 
 
 def gemm_subtract(A: np.ndarray, B: np.ndarray, C: np.ndarray) -> np.ndarray:

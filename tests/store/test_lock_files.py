@@ -122,49 +122,53 @@ def test_a_dead_publishs_staging_is_removed_and_not_reported_in_either_listing_o
     assert list(real(staging)) == []
 
 
+class _FailingLink:
+    """A C library whose linkat(2) fails with ``err`` and counts its calls."""
+
+    def __init__(self, err: int):
+        self.err, self.calls = err, 0
+
+    def linkat(self, *args):
+        import ctypes
+
+        self.calls += 1
+        ctypes.set_errno(self.err)
+        return -1
+
+
+def _lock_with_failing_link(store, monkeypatch, err: int):
+    libc = _FailingLink(err)
+    monkeypatch.setattr(layout, "_LIBC", libc)
+    monkeypatch.setattr(layout, "_TMPFILE_OK", [True])
+    return libc, store.root / layout.STAGING_DIR
+
+
 def test_a_system_that_refuses_to_link_unnamed_files_gets_lock_files_made_by_name(store, monkeypatch):
-    import ctypes
     import errno
 
-    class Refusing:  # linkat(2) failing with EPERM, as AT_EMPTY_PATH without CAP_DAC_READ_SEARCH on older kernels
-        calls = 0
-
-        def linkat(self, *args):
-            Refusing.calls += 1
-            ctypes.set_errno(errno.EPERM)
-            return -1
-
-    monkeypatch.setattr(layout, "_LIBC", Refusing())
-    monkeypatch.setattr(layout, "_TMPFILE_OK", [True])
-    staging = store.root / layout.STAGING_DIR
+    # EPERM: what AT_EMPTY_PATH without CAP_DAC_READ_SEARCH gets on older kernels
+    libc, staging = _lock_with_failing_link(store, monkeypatch, errno.EPERM)
     token, fd, path = layout.new_held_lock(staging, layout.STAGING_MARK, fcntl.LOCK_EX)
     try:
         assert path.read_bytes() == layout.STAGING_MARK and layout._TMPFILE_OK == [False]
-        assert Refusing.calls == 2  # both forms tried once, then never again in this process
+        assert libc.calls == 2  # both forms tried once, then never again in this process
         path2 = layout.new_held_lock(staging, layout.STAGING_MARK, fcntl.LOCK_EX)
         os.close(path2[1])
         path2[2].unlink()
-        assert Refusing.calls == 2 and sorted(p.name for p in staging.iterdir()) == [path.name]
+        assert libc.calls == 2 and sorted(p.name for p in staging.iterdir()) == [path.name]
     finally:
         path.unlink()
         os.close(fd)
 
 
 def test_a_link_failing_for_a_passing_reason_falls_back_this_time_only(store, monkeypatch):
-    import ctypes
     import errno
 
-    class Full:  # linkat(2) failing with ENOSPC (a full directory): not a lack of support
-        def linkat(self, *args):
-            ctypes.set_errno(errno.ENOSPC)
-            return -1
-
-    monkeypatch.setattr(layout, "_LIBC", Full())
-    monkeypatch.setattr(layout, "_TMPFILE_OK", [True])
-    staging = store.root / layout.STAGING_DIR
+    # ENOSPC (a full directory): not a lack of support, so unnamed files are tried again next time
+    libc, staging = _lock_with_failing_link(store, monkeypatch, errno.ENOSPC)
     token, fd, path = layout.new_held_lock(staging, layout.STAGING_MARK, fcntl.LOCK_EX)
     try:
-        assert path.read_bytes() == layout.STAGING_MARK and layout._TMPFILE_OK == [True]
+        assert path.read_bytes() == layout.STAGING_MARK and layout._TMPFILE_OK == [True] and libc.calls == 2
     finally:
         path.unlink()
         os.close(fd)
