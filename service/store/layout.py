@@ -285,10 +285,9 @@ def _unnamed_held(folder: Path, content: bytes, mode: int) -> int | None:
     try:
         fd = os.open(folder, os.O_TMPFILE | os.O_RDWR, 0o644)
     except OSError as exc:
-        if isinstance(exc, FileNotFoundError) and not folder.is_dir():
-            raise
-        _TMPFILE_OK[0] = False  # EOPNOTSUPP, EISDIR (kernels before 3.11), EINVAL: not offered here
-        return None
+        if exc.errno in (errno.EOPNOTSUPP, errno.EISDIR, errno.EINVAL, errno.ENOSYS):
+            _TMPFILE_OK[0] = False  # not offered by this file system or kernel (EISDIR: kernels before 3.11)
+        return None  # anything else (a missing folder, a full disk) is met again, and reported, by name
     try:
         fcntl.flock(fd, mode)
         os.write(fd, content)
