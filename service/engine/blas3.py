@@ -50,6 +50,7 @@ try:
     _DGEMM = _capsule_function("dgemm", [_PC, _PC, _PI, _PI, _PI, _PD, _PD, _PI, _PD, _PI, _PD, _PD, _PI])
     AVAILABLE = True
 except (AttributeError, KeyError, OSError, ImportError, ValueError):  # pragma: no cover (not CPython)
+    _DTRMM = _DTRSM = _DGEMM = None
     AVAILABLE = False
 
 
@@ -100,13 +101,13 @@ def _right_upper(what: str, routine, wrapper, trans: bytes, T: np.ndarray, X: np
 def trmm_right_upper_t(T: np.ndarray, D: np.ndarray) -> np.ndarray:
     """``D ← D Tᵀ`` in place, T upper triangular (p × p), D (rows × p); returns D. The same as
     ``scipy.linalg.blas.dtrmm(1.0, T, D, side=1, lower=0, trans_a=1, overwrite_b=1)``."""
-    return _right_upper("trmm_right_upper_t", _DTRMM if AVAILABLE else None, _blas.dtrmm, b"T", T, D)
+    return _right_upper("trmm_right_upper_t", _DTRMM, _blas.dtrmm, b"T", T, D)
 
 
 def trsm_right_upper(S: np.ndarray, X: np.ndarray) -> np.ndarray:
     """``X ← X S⁻¹`` in place, S upper triangular (p × p), X (rows × p); returns X. The same as
     ``scipy.linalg.blas.dtrsm(1.0, S, X, side=1, lower=0, trans_a=0, overwrite_b=1)``."""
-    return _right_upper("trsm_right_upper", _DTRSM if AVAILABLE else None, _blas.dtrsm, b"N", S, X)
+    return _right_upper("trsm_right_upper", _DTRSM, _blas.dtrsm, b"N", S, X)
 
 
 def gemm_subtract(A: np.ndarray, B: np.ndarray, C: np.ndarray) -> np.ndarray:
