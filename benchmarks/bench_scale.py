@@ -183,8 +183,8 @@ def conditioning(f, top, rows: int = 200_000) -> dict:
     unit variance (what the penalty sees), on the file's first ``rows`` rows, from the singular values of a
     Householder R factor (accurate whatever κ is). A summary made of one Gram matrix AᵀA loses about u·κ²
     of relative accuracy in Z's weakest direction (common practice: the normal equations square the condition
-    number; Golub & Van Loan, *Matrix Computations*, §5.3), which is what the least-work floor would cost in
-    accuracy if a method stopped there."""
+    number; Golub & Van Loan, *Matrix Computations*, §5.3, the section number from memory), which is what the
+    least-work floor would cost in accuracy if a method stopped there."""
     from service.engine.summaries import householder_r
 
     batch = next(f.iter_batches(batch_size=rows, columns=FEATURES))

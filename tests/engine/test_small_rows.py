@@ -131,7 +131,8 @@ def test_tree_sums_meet_the_pairwise_error_bound_and_python_gives_the_same_bits(
         ref_rows = model_module._tree_sums((S * w).T)
         for i in range(S.shape[0]):
             # math.fsum is the correctly rounded sum; pairwise summation's bound is ⌈log₂ p⌉·u·Σ|xᵢ| to first
-            # order (Higham, "Accuracy and Stability of Numerical Algorithms", 2nd ed., 2002, section 4.2)
+            # order (Higham, "Accuracy and Stability of Numerical Algorithms", 2nd ed., 2002, section 4.2;
+            # the section number from memory)
             exact = math.fsum(S[i].tolist())
             bound = max(1, math.ceil(math.log2(p))) * 2.0 ** -53 * float(np.abs(S[i]).sum()) * (1 + 1e-12)
             assert abs(float(got[i]) - exact) <= bound, (p, i)
