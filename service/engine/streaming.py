@@ -41,6 +41,8 @@ from .folds import hash_folds, key_hash
 from .model import MAX_INTERVAL_RESIDUALS, FittedModel, thin_residuals
 from .solvers import convergence_warnings, fit, leverage_triangle, row_leverages, watch_convergence
 from .spec import TuneSpec, parse_spec
+from . import blas3, orthobasis
+from .orthobasis import SCREEN_MAX_SHARE, LeverageScreen, OrthoBasis
 from .summaries import CHUNK_ROWS, Summary, absorb
 from .advice import data_warnings
 from .table import categorical_column, key_column, numeric_column
@@ -52,6 +54,7 @@ from .tune import Budget, basis_settings, check_budget, check_levels, resolve_co
 SAMPLE_SALT = 0x5A17
 PLOT_SALT = 0x9107
 FOLD_BLOCK_ROWS = 4_096  # rows of one fold gathered (across small batches) before its R factor absorbs them
+GRAM_MIN_ROWS = 100_000  # rows from which a nested polynomial group is summarized by Gram matrices (``orthobasis``)
 
 
 class Partition(Protocol):
@@ -281,8 +284,87 @@ def _absorb_after(prev, setting: BasisSetting, nested: bool, Xs: np.ndarray, blo
     return R
 
 
-def _summarize(m: _Model, groups: list[tuple[BasisSetting, bool]], task: tuple[Partition, int]
-               ) -> dict[int, list[Summary]]:
+def _summarize(m: _Model, groups: list[tuple[BasisSetting, bool]], plans: list[OrthoBasis | None],
+               task: tuple[Partition, int]) -> dict[int, list[Summary]]:
+    """The fold summaries of one partition for one basis group: from one Gram matrix per fold of a
+    well-conditioned basis with the group's span where the group has one (``plans[g]``, see ``orthobasis``)
+    and its Gram matrices are accurate enough, else the exact way (``_summarize_exact``), which then reads the
+    partition again."""
+    plan = plans[task[1]]
+    if plan is not None:
+        out = _summarize_gram(m, plan, task)
+        if out is not None:
+            return out
+    return _summarize_exact(m, groups, task)
+
+
+def _fold_blocks(m: _Model, part: Partition) -> Iterator[tuple[int, np.ndarray, np.ndarray, np.ndarray]]:
+    """(fold, standardized inputs, one-hot block, target) of one fold's rows, at least ``FOLD_BLOCK_ROWS`` of
+    them (a batch's rows of the fold, or several batches' when batches are small), each fold's in row order;
+    the last, shorter blocks at the end."""
+    K = m.folds
+    held: list[list[tuple[np.ndarray, np.ndarray, np.ndarray]]] = [[] for _ in range(K)]
+    held_rows = [0] * K
+
+    def take(f: int):
+        parts = held[f]
+        out = (parts[0] if len(parts) == 1 else tuple(np.concatenate([x[i] for x in parts]) for i in range(3)))
+        held[f], held_rows[f] = [], 0
+        return (f, *out)
+
+    for _, Xs, y, block, fold, _ in _batches(m, part):
+        order = np.argsort(fold, kind="stable")  # each fold keeps its row order
+        bounds = np.searchsorted(fold[order], np.arange(K + 1))
+        for f in range(K):
+            idx = order[bounds[f]:bounds[f + 1]]
+            if idx.size:
+                held[f].append((Xs[idx], block[idx], y[idx]))
+                held_rows[f] += idx.size
+                if held_rows[f] >= FOLD_BLOCK_ROWS:
+                    yield take(f)
+    for f in range(K):
+        if held[f]:
+            yield take(f)
+
+
+def _fold_gram(plan: OrthoBasis, item) -> tuple[int, np.ndarray, int]:
+    """(fold, Gram matrix of ``[1, Ψ, y]``, rows) of one fold block (``_fold_blocks``; no one-hot columns
+    here), ``CHUNK_ROWS`` rows at a time."""
+    f, Xs, _, y = item
+    G = np.zeros((plan.width, plan.width))
+    for lo in range(0, Xs.shape[0], CHUNK_ROWS):
+        A = plan.design(Xs[lo:lo + CHUNK_ROWS], y[lo:lo + CHUNK_ROWS])
+        G += A.T @ A  # numpy calls the symmetric rank-k update (syrk) for this form, without the GIL
+    return f, G, Xs.shape[0]
+
+
+def _summarize_gram(m: _Model, plan: OrthoBasis, task: tuple[Partition, int]) -> dict[int, list[Summary]] | None:
+    """The fold summaries of one partition for a nested polynomial group without one-hot columns, each from
+    the Gram matrix of ``[1, Ψ, y]`` over the fold's rows (``orthobasis``): one expansion and one Gram per
+    block, as the least-work floor of ``bench_scale`` does. The blocks run on ``ctx.threads`` threads and
+    their Gram matrices are added up in block order, so the result does not depend on the thread count.
+    None when a fold's Gram matrix is not accurate enough (``OrthoBasis.r_factor``)."""
+    part, g = task
+    K = m.folds
+    grams = [np.zeros((plan.width, plan.width)) for _ in range(K)]
+    rows = [0] * K
+    for f, G, n in ordered_map(partial(_fold_gram, plan), _fold_blocks(m, part), m.ctx.threads):
+        grams[f] += G
+        rows[f] += n
+    out = []
+    for G, n in zip(grams, rows):
+        if n == 0:
+            out.append(Summary(np.zeros((plan.width, plan.width)), 0))
+            continue
+        R = plan.r_factor(G)
+        if R is None:
+            return None
+        out.append(Summary(R, n))
+    return {g: out}
+
+
+def _summarize_exact(m: _Model, groups: list[tuple[BasisSetting, bool]], task: tuple[Partition, int]
+                     ) -> dict[int, list[Summary]]:
     """The fold summaries of one partition for one basis group. Each fold's rows are added to the fold's
     running R factor in row order (``summaries.absorb``: a triangular solve and one Gram matrix per block),
     in blocks of at least ``FOLD_BLOCK_ROWS`` rows (a batch's rows of one fold, or several batches' when
@@ -295,40 +377,19 @@ def _summarize(m: _Model, groups: list[tuple[BasisSetting, bool]], task: tuple[P
                           np.zeros((1, m.categories.width))).shape[1]
     state: list = [None] * K  # per fold: its running R, or the future that gives it
     rows = [0] * K
-    held: list[list[tuple[np.ndarray, np.ndarray, np.ndarray]]] = [[] for _ in range(K)]
-    held_rows = [0] * K
     threads = m.ctx.threads
     pool = ThreadPoolExecutor(max_workers=threads, thread_name_prefix="tikhon-folds") if threads > 1 else None
     inflight: deque = deque()
-
-    def flush(f: int) -> None:
-        parts = held[f]
-        Xs, block, y = (parts[0] if len(parts) == 1 else
-                        tuple(np.concatenate([x[i] for x in parts]) for i in range(3)))
-        held[f], held_rows[f] = [], 0
-        if pool is None:
-            state[f] = _absorb_after(state[f], setting, nested, Xs, block, y)
-            return
-        state[f] = pool.submit(_absorb_after, state[f], setting, nested, Xs, block, y)
-        inflight.append(state[f])
-        while len(inflight) > 2 * threads + K:  # bounds the rows held by queued blocks
-            inflight.popleft().result()
-
     try:
-        for _, Xs, y, block, fold, _ in _batches(m, part):
-            order = np.argsort(fold, kind="stable")  # each fold keeps its row order
-            bounds = np.searchsorted(fold[order], np.arange(K + 1))
-            for f in range(K):
-                idx = order[bounds[f]:bounds[f + 1]]
-                if idx.size:
-                    held[f].append((Xs[idx], block[idx], y[idx]))
-                    held_rows[f] += idx.size
-                    rows[f] += idx.size
-                    if held_rows[f] >= FOLD_BLOCK_ROWS:
-                        flush(f)
-        for f in range(K):
-            if held[f]:
-                flush(f)
+        for f, Xs, block, y in _fold_blocks(m, part):
+            rows[f] += y.size
+            if pool is None:
+                state[f] = _absorb_after(state[f], setting, nested, Xs, block, y)
+                continue
+            state[f] = pool.submit(_absorb_after, state[f], setting, nested, Xs, block, y)
+            inflight.append(state[f])
+            while len(inflight) > 2 * threads + K:  # bounds the rows held by queued blocks
+                inflight.popleft().result()
         factors = [s.result() if isinstance(s, Future) else s for s in state]
     finally:
         if pool is not None:
@@ -381,20 +442,41 @@ class _Final:
 
 
 def _final_batch(m: _Model, setting: BasisSetting, fw: np.ndarray, fi: np.ndarray, mean: np.ndarray,
-                 T: np.ndarray, n: int, item):
+                 T: np.ndarray, n: int, screen: LeverageScreen | None, item):
     """One batch of pass 3: (absolute out-of-fold residuals per fold, largest leverage, plot-sample hashes,
-    predictions, observations). ``T``: ``solvers.leverage_triangle`` of the refit's leverage factor."""
+    predictions, observations). ``T``: ``solvers.leverage_triangle`` of the refit's leverage factor;
+    ``screen``: which rows can hold the largest leverage (``orthobasis.LeverageScreen``), or None for all."""
     pos, Xs, y, block, fold, batch = item
-    D = _group_design(setting, False, Xs, block)
-    pred = fi[fold] + (fw @ D.T)[fold, np.arange(y.size)]  # (K, rows): a few times faster than D @ fwᵀ
+    pred = np.empty(y.size)
+    fw_t = np.asfortranarray(fw.T)
+    lev = 0.0 if screen is None else screen.floor
+    # ``CHUNK_ROWS`` rows at a time: a design of a whole large batch is a fresh memory map of its own on every
+    # batch (above the C library's threshold), whose first touch, page by page, cost more than the arithmetic
+    for lo in range(0, y.size, CHUNK_ROWS):
+        part = slice(lo, lo + CHUNK_ROWS)
+        f = fold[part]
+        at = np.arange(f.size)
+        if screen is None:
+            D = _group_design(setting, False, Xs[part], block[part])
+            pred[part] = fi[f] + blas3.matmul(D, fw_t)[at, f]  # (rows, K): numpy's D @ fwᵀ is slower
+            lev = max(lev, float(row_leverages(D, mean, T, n).max()))  # D is not needed any more: overwritten
+            continue
+        # the screen's basis gives the predictions and which rows can hold the largest leverage; only those
+        # rows' monomials are expanded (all of them when the screen keeps too many to be worth it)
+        rows, P = screen.rows(Xs[part])
+        pred[part] = fi[f] + P[at, f]
+        if rows.size > SCREEN_MAX_SHARE * f.size:
+            rows = at
+        if rows.size:
+            D = _group_design(setting, False, Xs[part][rows], block[part][rows])
+            lev = max(lev, float(row_leverages(D, mean, T, n).max()))
     r = np.abs(y - pred)
-    lev = row_leverages(D, mean, T, n)  # D is not needed any more: overwritten
     h = key_hash(_keys(m.ctx, batch, pos, y.size), m.ctx.spec.cv.seed ^ PLOT_SALT)
-    return [r[fold == f] for f in range(m.folds)], float(lev.max()), h, pred, y
+    return [r[fold == f] for f in range(m.folds)], lev, h, pred, y
 
 
 def _final_pass(m: _Model, setting: BasisSetting, fw: np.ndarray, fi: np.ndarray, mean: np.ndarray,
-                T: np.ndarray, n: int, stride: int, part: Partition) -> _Final:
+                T: np.ndarray, n: int, stride: int, screen: LeverageScreen | None, part: Partition) -> _Final:
     """Out-of-fold residuals of one partition, sorted per fold and, when the whole source has more than
     ``MAX_INTERVAL_RESIDUALS`` rows, thinned here to every ``stride``-th order statistic (each kept value
     then stands for ``stride`` residuals, as ``thin_residuals`` does), so only about that many values
@@ -402,7 +484,7 @@ def _final_pass(m: _Model, setting: BasisSetting, fw: np.ndarray, fi: np.ndarray
     res = [[] for _ in range(m.folds)]
     max_lev = 0.0
     sh, sp, so = np.zeros(0, np.uint64), np.zeros(0), np.zeros(0)
-    work = partial(_final_batch, m, setting, fw, fi, mean, T, n)
+    work = partial(_final_batch, m, setting, fw, fi, mean, T, n, screen)
     for per_fold, lev, h, pred, y in ordered_map(work, _batches(m, part), m.ctx.threads):
         for f in range(m.folds):
             res[f].append(per_fold[f])
@@ -415,6 +497,23 @@ def _final_pass(m: _Model, setting: BasisSetting, fw: np.ndarray, fi: np.ndarray
         r = np.sort(np.concatenate(x)) if x else np.zeros(0)
         kept.append(r[stride // 2::stride] if stride > 1 else r)
     return _Final(kept, max_lev, sh, sp, so)
+
+
+def _leverage_screen(m: _Model, scan: Scan, setting: BasisSetting, mean: np.ndarray, T: np.ndarray,
+                     fw: np.ndarray) -> LeverageScreen | None:
+    """The screen of pass 3 for a polynomial model of degree 2 or more without one-hot columns, on sources of
+    at least ``GRAM_MIN_ROWS`` rows, with its floor: the largest exact leverage over the scan's sample of
+    rows (training rows: a lower bound of the largest over all); else None (every row's leverage)."""
+    if (setting.kind != "polynomial" or (setting.degree or 0) < 2 or m.categories.width
+            or scan.n < GRAM_MIN_ROWS):
+        return None
+    sample = m.scaler.transform(scan.sample_X)
+    basis = orthobasis.build(setting.powers, sample)
+    if basis is None:
+        return None
+    D = _group_design(setting, False, sample, np.zeros((sample.shape[0], 0)))
+    floor = float(row_leverages(D, mean, T, scan.n).max())
+    return LeverageScreen.of(basis, mean, T, scan.n, floor, fw)
 
 
 def _merge_final(a: _Final, b: _Final) -> _Final:
@@ -540,7 +639,8 @@ def _tune_partitions(partitions, schema, spec: TuneSpec, executor, progress, sho
     m, settings = _setup(run, scan, budget)
     groups = _Groups(settings, len(features), m.categories.width)
     tasks = [(p, g) for g in range(len(groups.items)) for p in run.parts]
-    fold_summaries = run.map_reduce(partial(_summarize, m, groups.items), tasks, _merge_summaries)
+    plans = _gram_plans(m, scan, groups)
+    fold_summaries = run.map_reduce(partial(_summarize, m, groups.items, plans), tasks, _merge_summaries)
     empty = [f for f, s in enumerate(fold_summaries[0]) if s.n == 0]
     if empty:
         raise InvalidSpec(f"hash assignment left fold {empty[0]} empty; use fewer folds or more rows/groups",
@@ -622,6 +722,18 @@ def _setup(run: _Run, scan: Scan, budget: Budget | None) -> tuple[_Model, list[B
 
     settings = basis_settings(spec, np.zeros((0, len(features))), centers_from=centers_from, sample=sample_Xs)
     return _Model(run.ctx, scaler, categories, K), settings
+
+
+def _gram_plans(m: _Model, scan: Scan, groups: "_Groups") -> list[OrthoBasis | None]:
+    """Per basis group, the well-conditioned basis its fold summaries are made from by Gram matrices
+    (``orthobasis``), or None for the exact way: only nested polynomial groups of degree 2 or more without
+    one-hot columns, on sources of at least ``GRAM_MIN_ROWS`` rows (below, the exact way costs little)."""
+    out: list[OrthoBasis | None] = []
+    for setting, nested in groups.items:
+        use = (nested and setting.kind == "polynomial" and (setting.degree or 0) >= 2
+               and m.categories.width == 0 and scan.n >= GRAM_MIN_ROWS)
+        out.append(orthobasis.build(setting.powers, m.scaler.transform(scan.sample_X)) if use else None)
+    return out
 
 
 class _Groups:
@@ -708,7 +820,8 @@ def _refit(run: _Run, m: _Model, scan: Scan, settings: list[BasisSetting], group
     fi = np.array([f.intercept[0] for f in fold_fits])
     stride = max(1, math.ceil(n / MAX_INTERVAL_RESIDUALS))
     T = leverage_triangle(F, full.scale)
-    fin = run.map_reduce(partial(_final_pass, m, setting, fw, fi, full.mean, T, n, stride), run.parts,
+    screen = _leverage_screen(m, scan, setting, full.mean, T, fw)
+    fin = run.map_reduce(partial(_final_pass, m, setting, fw, fi, full.mean, T, n, stride, screen), run.parts,
                          _merge_final)
     abs_res = np.concatenate(fin.residuals)
     res_fold = np.concatenate([np.full(r.size, f, dtype=np.int64) for f, r in enumerate(fin.residuals)])

@@ -47,6 +47,20 @@ def test_gemm_on_column_slices_gives_scipys_bits():
     assert np.array_equal(got, want) and np.array_equal(got[:, :105], X[:, :105])
 
 
+@pytest.mark.parametrize("rows,k,cols", [(16384, 210, 16), (37, 5, 3), (0, 4, 2), (6, 1, 1)])
+def test_matmul_gives_scipys_bits(rows, k, cols):
+    # how ``orthobasis.LeverageScreen`` and pass 3 call it: a tall column-major block by a few columns
+    rng = np.random.default_rng(rows + k)
+    A = np.asfortranarray(rng.standard_normal((rows, k)))
+    B = np.asfortranarray(rng.standard_normal((k, cols)))
+    got = blas3.matmul(A, B)
+    assert got.shape == (rows, cols) and got.flags.f_contiguous
+    assert np.array_equal(got, blas.dgemm(1.0, A, B))
+    np.testing.assert_allclose(got, A @ B, rtol=1e-12, atol=1e-12 * max(1, k))  # numpy: the same product
+    C = np.ascontiguousarray(A)  # row-major: through SciPy's wrapper, the same values
+    assert np.array_equal(blas3.matmul(C, B), blas.dgemm(1.0, C, B))
+
+
 def test_arrays_it_cannot_pass_go_through_scipy_and_give_the_same_values():
     rng = np.random.default_rng(11)
     T = _upper(rng, 6)
