@@ -148,6 +148,7 @@ def child_floor(path: str, batch_rows: int) -> dict:
 
     from service.engine.basis import BasisSetting, polynomial_powers
     from service.engine.parallel import ordered_map, single_blas, usable_cores
+    from service.engine.summaries import CHUNK_ROWS
 
     f = pq.ParquetFile(path)
     # the inputs' means and scales need a pass of their own in any method; the floor leaves it out and
@@ -157,12 +158,18 @@ def child_floor(path: str, batch_rows: int) -> dict:
     threads = usable_cores()
 
     def gram(batch) -> np.ndarray:  # [1, Φ, y] built column-major in place, one Gram (BLAS-3)
-        X = np.column_stack([batch.column(i).to_numpy() for i in range(4)])
-        A = np.empty((X.shape[0], m), order="F")
-        A[:, 0] = 1.0
-        top.expand_into((X - 50.0) / 25.0, A[:, 1:-1])
-        A[:, -1] = batch.column(4).to_numpy()
-        return A.T @ A
+        X = (np.column_stack([batch.column(i).to_numpy() for i in range(4)]) - 50.0) / 25.0
+        y = batch.column(4).to_numpy()
+        G = np.zeros((m, m))
+        # CHUNK_ROWS rows at a time, as the engine's passes do: a design of a whole 65,536-row batch is a fresh
+        # memory map on every batch, whose page faults cost more than the arithmetic
+        for lo in range(0, X.shape[0], CHUNK_ROWS):
+            A = np.empty((min(CHUNK_ROWS, X.shape[0] - lo), m), order="F")
+            A[:, 0] = 1.0
+            top.expand_into(X[lo:lo + CHUNK_ROWS], A[:, 1:-1])
+            A[:, -1] = y[lo:lo + CHUNK_ROWS]
+            G += A.T @ A
+        return G
 
     G = np.zeros((m, m))
     t0, c0 = time.perf_counter(), time.process_time()

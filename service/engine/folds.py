@@ -42,11 +42,21 @@ _GOLDEN = np.uint64(0x9E3779B97F4A7C15)
 
 
 def splitmix64(x: np.ndarray) -> np.ndarray:
+    """SplitMix64's output for each state x (Steele, Lea & Flood, "Fast splittable pseudorandom number
+    generators", OOPSLA 2014): ``z = x + γ``, then three xor-shift-multiply rounds, in place on one copy
+    with one scratch array (the same bits as the textbook expression, with a third of its temporaries)."""
     with np.errstate(over="ignore"):
-        z = x.astype(np.uint64) + _GOLDEN
-        z = (z ^ (z >> np.uint64(30))) * _M1
-        z = (z ^ (z >> np.uint64(27))) * _M2
-        return z ^ (z >> np.uint64(31))
+        z = np.array(x, dtype=np.uint64)  # a copy
+        z += _GOLDEN
+        t = z >> np.uint64(30)
+        z ^= t
+        z *= _M1
+        np.right_shift(z, np.uint64(27), out=t)
+        z ^= t
+        z *= _M2
+        np.right_shift(z, np.uint64(31), out=t)
+        z ^= t
+        return z
 
 
 def key_hash(keys: np.ndarray, seed: int) -> np.ndarray:

@@ -325,10 +325,21 @@ FINGERPRINT_METHOD = ("per column: 4 lanes of Σ splitmix64(value ⊕ splitmix64
                       "column names with their lanes and the row count")
 
 
-def column_lanes(values: np.ndarray, offset: int) -> np.ndarray:
+def lane_keys(offset: int, rows: int) -> np.ndarray:
+    """(4, rows) ``splitmix64(4·row + lane)`` of the rows at positions ``offset`` … ``offset + rows − 1``: what
+    every column's lanes mix their values with (``column_lanes``), computed once for all columns."""
+    from .folds import splitmix64
+
+    pos = np.arange(offset, offset + rows, dtype=np.uint64) * np.uint64(4)
+    with np.errstate(over="ignore"):
+        return np.stack([splitmix64(pos + np.uint64(k)) for k in range(4)])
+
+
+def column_lanes(values: np.ndarray, offset: int, keys: np.ndarray | None = None) -> np.ndarray:
     """(4,) uint64 lanes of one column's rows, the first at position ``offset`` in the whole source. Lanes
     of consecutive row blocks add (mod 2⁶⁴), so the fingerprint does not depend on how the rows were cut
-    into partitions or batches, while moving a value to another row changes it."""
+    into partitions or batches, while moving a value to another row changes it. ``keys``: ``lane_keys`` of
+    these rows, when already made for another column."""
     from .folds import key_hash, splitmix64
 
     values = np.asarray(values)
@@ -336,11 +347,11 @@ def column_lanes(values: np.ndarray, offset: int) -> np.ndarray:
         u = (values.astype(np.float64) + 0.0).view(np.uint64)  # + 0.0 folds -0.0 into 0.0
     else:
         u = key_hash(np.asarray([str(v) for v in values.tolist()], dtype=object), 0)
-    pos = np.arange(offset, offset + u.size, dtype=np.uint64) * np.uint64(4)
+    keys = lane_keys(offset, u.size) if keys is None else keys
     out = np.zeros(4, dtype=np.uint64)
     with np.errstate(over="ignore"):
         for k in range(4):
-            out[k] = np.sum(splitmix64(u ^ splitmix64(pos + np.uint64(k))), dtype=np.uint64)
+            out[k] = np.sum(splitmix64(u ^ keys[k]), dtype=np.uint64)
     return out
 
 
@@ -371,7 +382,9 @@ def fingerprint_columns(cols: dict[str, np.ndarray], names: list[str], offset: i
     numbers (JSON ``7``) or as text (a CSV cell ``7``, read as text because the column is categorical)."""
     from .table import categorical_column
 
-    return {name: column_lanes(categorical_column(cols, name, offset) if name in labels else cols[name], offset)
+    keys = lane_keys(offset, len(cols[names[0]])) if names else None  # the same for every column
+    return {name: column_lanes(categorical_column(cols, name, offset) if name in labels else cols[name], offset,
+                               keys)
             for name in names}
 
 
