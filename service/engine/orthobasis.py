@@ -50,7 +50,7 @@ import numpy as np
 from scipy.linalg import lapack as _lapack
 
 from . import blas3
-from .summaries import householder_r
+from .summaries import CHUNK_ROWS, householder_r
 
 ORTHO_MAX_COND = 1e3  # κ₂ of the column-scaled [1, Ψ, y] of a fold up to which its Gram matrix is used
 MIN_SAMPLE_PER_TERM = 20  # sample rows per column of [1, Ψ] needed to build the basis
@@ -240,10 +240,13 @@ def build(powers: np.ndarray, sample: np.ndarray) -> OrthoBasis | None:
         steps.append((i, index[tuple(int(v) for v in parent)] - 1, u))
     basis = OrthoBasis(powers, W, a, b, N, tuple(steps))
     # the sample's own conditioning, without the target: refuse early what the Gram would refuse anyway
-    S = np.empty((sample.shape[0], m0), order="F")
-    S[:, 0] = 1.0
-    basis.expand_into(sample, S[:, 1:])
-    G = S.T @ S
+    # (its Gram matrix made CHUNK_ROWS rows at a time, so the sample's design is never whole in memory)
+    G = np.zeros((m0, m0))
+    for lo in range(0, sample.shape[0], CHUNK_ROWS):
+        S = np.empty((min(CHUNK_ROWS, sample.shape[0] - lo), m0), order="F")
+        S[:, 0] = 1.0
+        basis.expand_into(sample[lo:lo + CHUNK_ROWS], S[:, 1:])
+        G += S.T @ S
     s = 1.0 / np.sqrt(np.diag(G))
     Rs, info = _lapack.dpotrf(G * np.outer(s, s), lower=0, clean=1)  # κ ≤ 500 here: a Gram is accurate enough
     if info != 0:

@@ -55,6 +55,7 @@ SAMPLE_SALT = 0x5A17
 PLOT_SALT = 0x9107
 FOLD_BLOCK_ROWS = 4_096  # rows of one fold gathered (across small batches) before its R factor absorbs them
 GRAM_MIN_ROWS = 100_000  # rows from which a nested polynomial group is summarized by Gram matrices (``orthobasis``)
+GRAM_HOLD_ROWS = 65_536  # rows of a partition kept by its Gram pass, to summarize them the exact way if it must
 
 
 class Partition(Protocol):
@@ -288,14 +289,16 @@ def _summarize(m: _Model, groups: list[tuple[BasisSetting, bool]], plans: list[O
                task: tuple[Partition, int]) -> dict[int, list[Summary]]:
     """The fold summaries of one partition for one basis group: from one Gram matrix per fold of a
     well-conditioned basis with the group's span where the group has one (``plans[g]``, see ``orthobasis``)
-    and its Gram matrices are accurate enough, else the exact way (``_summarize_exact``), which then reads the
-    partition again."""
-    plan = plans[task[1]]
+    and its Gram matrices are accurate enough, else the exact way (``_absorbed_folds``): from the rows the
+    Gram pass kept when the partition is small (up to ``GRAM_HOLD_ROWS`` rows), else by reading it again."""
+    part, g = task
+    setting, nested = groups[g]
+    plan = plans[g]
     if plan is not None:
-        out = _summarize_gram(m, plan, task)
+        out = _summarize_gram(m, setting, nested, plan, part)
         if out is not None:
-            return out
-    return _summarize_exact(m, groups, task)
+            return {g: out}
+    return {g: _absorbed_folds(m, setting, nested, _fold_blocks(m, part))}
 
 
 def _fold_blocks(m: _Model, part: Partition) -> Iterator[tuple[int, np.ndarray, np.ndarray, np.ndarray]]:
@@ -338,40 +341,49 @@ def _fold_gram(plan: OrthoBasis, item) -> tuple[int, np.ndarray, int]:
     return f, G, Xs.shape[0]
 
 
-def _summarize_gram(m: _Model, plan: OrthoBasis, task: tuple[Partition, int]) -> dict[int, list[Summary]] | None:
+def _summarize_gram(m: _Model, setting: BasisSetting, nested: bool, plan: OrthoBasis, part: Partition
+                    ) -> list[Summary] | None:
     """The fold summaries of one partition for a nested polynomial group without one-hot columns, each from
     the Gram matrix of ``[1, Ψ, y]`` over the fold's rows (``orthobasis``): one expansion and one Gram per
     block, as the least-work floor of ``bench_scale`` does. The blocks run on ``ctx.threads`` threads and
     their Gram matrices are added up in block order, so the result does not depend on the thread count.
-    None when a fold's Gram matrix is not accurate enough (``OrthoBasis.r_factor``)."""
-    part, g = task
+    When a fold's Gram matrix is not accurate enough (``OrthoBasis.r_factor``; a fold with fewer rows than
+    columns, or a target the basis fits almost exactly): the exact summaries of the rows kept on the way if
+    the partition had at most ``GRAM_HOLD_ROWS`` rows (a source of many small partitions then reads each once),
+    else None."""
     K = m.folds
     grams = [np.zeros((plan.width, plan.width)) for _ in range(K)]
     rows = [0] * K
-    for f, G, n in ordered_map(partial(_fold_gram, plan), _fold_blocks(m, part), m.ctx.threads):
+    held: list | None = []
+    held_rows = 0
+
+    def keep(blocks):
+        nonlocal held, held_rows
+        for item in blocks:
+            if held is not None:
+                held.append(item)
+                held_rows += item[3].size
+                if held_rows > GRAM_HOLD_ROWS:
+                    held = None
+            yield item
+
+    for f, G, n in ordered_map(partial(_fold_gram, plan), keep(_fold_blocks(m, part)), m.ctx.threads):
         grams[f] += G
         rows[f] += n
     out = []
     for G, n in zip(grams, rows):
-        if n == 0:
-            out.append(Summary(np.zeros((plan.width, plan.width)), 0))
-            continue
-        R = plan.r_factor(G)
+        R = plan.r_factor(G) if n else np.zeros((plan.width, plan.width))
         if R is None:
-            return None
+            return None if held is None else _absorbed_folds(m, setting, nested, iter(held))
         out.append(Summary(R, n))
-    return {g: out}
+    return out
 
 
-def _summarize_exact(m: _Model, groups: list[tuple[BasisSetting, bool]], task: tuple[Partition, int]
-                     ) -> dict[int, list[Summary]]:
-    """The fold summaries of one partition for one basis group. Each fold's rows are added to the fold's
-    running R factor in row order (``summaries.absorb``: a triangular solve and one Gram matrix per block),
-    in blocks of at least ``FOLD_BLOCK_ROWS`` rows (a batch's rows of one fold, or several batches' when
-    batches are small). The folds' blocks run on ``ctx.threads`` threads, each fold's in order, so the
-    result does not depend on the thread count."""
-    part, g = task
-    setting, nested = groups[g]
+def _absorbed_folds(m: _Model, setting: BasisSetting, nested: bool, blocks) -> list[Summary]:
+    """The fold summaries of the fold blocks ``blocks`` (``_fold_blocks``) the exact way. Each fold's rows are
+    added to the fold's running R factor in row order (``summaries.absorb``: a triangular solve and one Gram
+    matrix per block). The folds' blocks run on ``ctx.threads`` threads, each fold's in order, so the result
+    does not depend on the thread count."""
     K = m.folds
     width = _group_design(setting, nested, np.zeros((1, len(m.ctx.features))),
                           np.zeros((1, m.categories.width))).shape[1]
@@ -381,7 +393,7 @@ def _summarize_exact(m: _Model, groups: list[tuple[BasisSetting, bool]], task: t
     pool = ThreadPoolExecutor(max_workers=threads, thread_name_prefix="tikhon-folds") if threads > 1 else None
     inflight: deque = deque()
     try:
-        for f, Xs, block, y in _fold_blocks(m, part):
+        for f, Xs, block, y in blocks:
             rows[f] += y.size
             if pool is None:
                 state[f] = _absorb_after(state[f], setting, nested, Xs, block, y)
@@ -395,7 +407,7 @@ def _summarize_exact(m: _Model, groups: list[tuple[BasisSetting, bool]], task: t
         if pool is not None:
             pool.shutdown(wait=True, cancel_futures=True)
     empty = np.zeros((width + 2, width + 2))
-    return {g: [Summary(R, n) if R is not None else Summary(empty, 0) for R, n in zip(factors, rows)]}
+    return [Summary(R, n) if R is not None else Summary(empty, 0) for R, n in zip(factors, rows)]
 
 
 def _merge_summaries(a: dict[int, list[Summary]], b: dict[int, list[Summary]]) -> dict[int, list[Summary]]:
@@ -511,8 +523,11 @@ def _leverage_screen(m: _Model, scan: Scan, setting: BasisSetting, mean: np.ndar
     basis = orthobasis.build(setting.powers, sample)
     if basis is None:
         return None
-    D = _group_design(setting, False, sample, np.zeros((sample.shape[0], 0)))
-    floor = float(row_leverages(D, mean, T, scan.n).max())
+    floor = 0.0
+    for lo in range(0, sample.shape[0], CHUNK_ROWS):  # the sample's design a chunk at a time, as in pass 3
+        rows = sample[lo:lo + CHUNK_ROWS]
+        D = _group_design(setting, False, rows, np.zeros((rows.shape[0], 0)))
+        floor = max(floor, float(row_leverages(D, mean, T, scan.n).max()))
     return LeverageScreen.of(basis, mean, T, scan.n, floor, fw)
 
 

@@ -157,19 +157,24 @@ def source(tmp_path, repeat=4):
 
 
 def spy(monkeypatch):
-    calls = {"exact": 0, "screen": []}
-    exact, screen = streaming._summarize_exact, streaming._leverage_screen
+    calls = {"exact": 0, "reads": 0, "screen": []}
+    exact, screen, blocks = streaming._absorbed_folds, streaming._leverage_screen, streaming._fold_blocks
 
     def counted(*a, **k):
         calls["exact"] += 1
         return exact(*a, **k)
+
+    def read(*a, **k):
+        calls["reads"] += 1
+        return blocks(*a, **k)
 
     def kept(*a, **k):
         out = screen(*a, **k)
         calls["screen"].append(out)
         return out
 
-    monkeypatch.setattr(streaming, "_summarize_exact", counted)
+    monkeypatch.setattr(streaming, "_absorbed_folds", counted)
+    monkeypatch.setattr(streaming, "_fold_blocks", read)
     monkeypatch.setattr(streaming, "_leverage_screen", kept)
     return calls
 
@@ -207,8 +212,45 @@ def test_a_target_the_basis_fits_exactly_takes_the_exact_way(tmp_path, monkeypat
     monkeypatch.setattr(streaming, "GRAM_MIN_ROWS", 0)
     calls = spy(monkeypatch)
     fast = tune_partitions(parts, schema, SPEC)
-    assert calls["exact"] >= 1  # the Gram matrices were refused, the rows summarized again the exact way
+    # the Gram matrices were refused and the rows summarized the exact way from the rows the Gram pass kept
+    # (1,768 rows, under GRAM_HOLD_ROWS): the partition read once
+    assert calls["exact"] == 1 and calls["reads"] == 1
     mem = tune(d, SPEC)
     assert fast.chosen["basis"] == mem.chosen["basis"]
     rows = {k: v[:40] for k, v in d.items() if k != "y"}
     np.testing.assert_allclose(fast.model.predict(rows), mem.model.predict(rows), rtol=1e-9, atol=1e-9)
+    # a partition larger than what the Gram pass keeps is read again, with the same result
+    monkeypatch.setattr(streaming, "GRAM_HOLD_ROWS", 100)
+    calls.update(exact=0, reads=0)
+    again = tune_partitions(parts, schema, SPEC)
+    assert calls["exact"] == 1 and calls["reads"] == 2
+    (b1, a1), (b2, a2) = fast.to_artifact(), again.to_artifact()
+    assert b1 == b2 and all(np.array_equal(a1[k], a2[k]) for k in a1)
+
+
+def test_dask_workers_summarize_by_gram_matrices_too(tmp_path, monkeypatch):
+    # The basis and the screen are made on the driver and travel with the tasks: three partitions on a
+    # LocalCluster give the in-process answer (the same partitions, merged the same way) to rounding.
+    pytest.importorskip("distributed")
+    from service.engine.executors import DaskExecutor
+
+    d, _, _ = source(tmp_path)
+    folder = tmp_path / "parts"
+    folder.mkdir()
+    for i, (lo, hi) in enumerate([(0, 600), (600, 1200), (1200, len(d["y"]))]):
+        pq.write_table(pa.table({k: v[lo:hi] for k, v in d.items()}), folder / f"part-{i}.parquet")
+    schema, parts = open_source(folder)
+    monkeypatch.setattr(streaming, "GRAM_MIN_ROWS", 0)
+    calls = spy(monkeypatch)
+    here = tune_partitions(parts, schema, SPEC)
+    assert calls["exact"] == 0 and calls["screen"][0] is not None
+    ex = DaskExecutor("local", workers=2)
+    try:
+        there = tune_partitions(parts, schema, SPEC, executor=ex)
+    finally:
+        ex.close()
+    assert there.summary["executor"].startswith("dask")
+    for a, b in zip(here.cv_table, there.cv_table):
+        np.testing.assert_allclose(b["split_values"], a["split_values"], rtol=1e-12)
+    assert there.chosen == here.chosen
+    assert there.model.max_leverage == pytest.approx(here.model.max_leverage, rel=1e-12)
