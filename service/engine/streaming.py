@@ -520,7 +520,7 @@ def _leverage_screen(m: _Model, scan: Scan, setting: BasisSetting, mean: np.ndar
     if (setting.kind != "polynomial" or (setting.degree or 0) < 2 or m.categories.width
             or scan.n < GRAM_MIN_ROWS):
         return None
-    sample = m.scaler.transform(scan.sample_X)
+    sample = _sample(m, scan)
     basis = orthobasis.build(setting.powers, sample)
     if basis is None:
         return None
@@ -740,6 +740,12 @@ def _setup(run: _Run, scan: Scan, budget: Budget | None) -> tuple[_Model, list[B
     return _Model(run.ctx, scaler, categories, K), settings
 
 
+def _sample(m: _Model, scan: Scan) -> np.ndarray:
+    """The scan's sample of rows, standardized, in row order (so whatever order the partitions' scans were
+    merged in, the sums made over it are the same)."""
+    return m.scaler.transform(scan.sample_X[np.argsort(scan.sample_pos, kind="stable")])
+
+
 def _gram_plans(m: _Model, scan: Scan, groups: "_Groups") -> list[OrthoBasis | None]:
     """Per basis group, the well-conditioned basis its fold summaries are made from by Gram matrices
     (``orthobasis``), or None for the exact way: only nested polynomial groups of degree 2 or more without
@@ -748,7 +754,7 @@ def _gram_plans(m: _Model, scan: Scan, groups: "_Groups") -> list[OrthoBasis | N
     for setting, nested in groups.items:
         use = (nested and setting.kind == "polynomial" and (setting.degree or 0) >= 2
                and m.categories.width == 0 and scan.n >= GRAM_MIN_ROWS)
-        out.append(orthobasis.build(setting.powers, m.scaler.transform(scan.sample_X)) if use else None)
+        out.append(orthobasis.build(setting.powers, _sample(m, scan)) if use else None)
     return out
 
 
