@@ -203,11 +203,11 @@ def build(powers: np.ndarray, sample: np.ndarray) -> OrthoBasis | None:
     m0 = p + 1
     allp = np.zeros((m0, d), dtype=np.int64)
     allp[1:] = powers
-    shift = np.full((d, m0), -1)
-    for i, r in enumerate(allp):
-        for k in range(d):
-            up = tuple(int(v) + (t == k) for t, v in enumerate(r))
-            shift[k, i] = index.get(up, -1)
+    # shift[k, i]: the index of exponent i plus one unit of input k (−1 past degree D), looked up by the
+    # exponent rows' bytes
+    by_bytes = {r.tobytes(): i for i, r in enumerate(allp)}
+    ups = allp[None, :, :] + np.eye(d, dtype=np.int64)[:, None, :]  # (d, m0, d)
+    shift = np.array([[by_bytes.get(u.tobytes(), -1) for u in row] for row in ups], dtype=np.int64).reshape(d, m0)
     # z-coefficients of every x-monomial: x^α = x^(α − e_j) · Σ_k W⁻¹[k, j] z_k, parents first (by degree)
     Zc = np.zeros((m0, m0))
     Zc[0, 0] = 1.0
