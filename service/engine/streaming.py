@@ -508,7 +508,7 @@ def _final_pass(m: _Model, setting: BasisSetting, fw: np.ndarray, fi: np.ndarray
         r = np.sort(np.concatenate(x)) if x else np.zeros(0)
         return r[stride // 2::stride] if stride > 1 else r
 
-    kept = list(ordered_map(thinned, res, m.ctx.threads))  # the folds' sorts on the cores (numpy's sort releases the GIL)
+    kept = list(ordered_map(thinned, res, m.ctx.threads))  # the folds' sorts on the cores (sort drops the GIL)
     return _Final(kept, max_lev, sh, sp, so)
 
 
