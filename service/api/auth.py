@@ -176,22 +176,26 @@ class KeyGate:
         cache did), else the age in seconds of the stale answers the decision rests on."""
         accepted = frozenset(accepted)
         any_active, age = self._any_active(allow_stale)
-        if not any_active:
-            if not self._closed:
-                return None, age
+        if not any_active and not self._closed:
+            return None, age
+        secret = _bearer(header)
+        found = None
+        if secret is not None:
+            # looked up even while "no active key" is cached: a key made since (on the server's machine, to
+            # reopen a closed server) works at once, not after the cache's seconds
+            found, key_age = self._scopes_of(secret, allow_stale)
+            if key_age is not None:
+                age = max(age or 0.0, key_age)
+        if not any_active and found is None:
             raise Unauthorized(
                 "This server requires API keys but no active key exists any more (all were revoked or the catalog "
                 "lost them); make one on the server's machine with 'tikhon keys create --local --scope admin'."
             )
-        secret = _bearer(header)
         if secret is None:
             raise Unauthorized(
                 "This route needs an API key: send 'Authorization: Bearer <key>' with a key holding one of the "
                 f"scopes {sorted(accepted)}; an operator makes one with 'tikhon keys create --scope ...'."
             )
-        found, key_age = self._scopes_of(secret, allow_stale)
-        if key_age is not None:
-            age = max(age or 0.0, key_age)
         if found is None:
             raise Unauthorized(
                 "The API key in the Authorization header is unknown or revoked; use an active key "

@@ -102,3 +102,36 @@ def test_no_key_means_loopback_only():
     check_bind("0.0.0.0", keys_exist=True)
     with pytest.raises(Forbidden, match="no API key exists"):
         check_bind("0.0.0.0", keys_exist=False)
+
+
+def test_a_key_made_while_none_is_cached_works_at_once():
+    """A server closed to keyless calls caches "no active key exists" for its cache seconds; a key made on the
+    machine in that time (``tikhon keys create --local``, the documented way back in) opens the routes to that
+    key at once, and to nothing else. (Found by the reliability suite: the re-opened server answered 401 for up
+    to a second.) The policy: fail closed, a verified key proves a key exists (common practice)."""
+    from service.api.auth import KeyGate
+    from service.errors import Unauthorized
+
+    class Keys:
+        def __init__(self):
+            self.rows: dict[str, dict] = {}
+
+        def any_active(self) -> bool:
+            return bool(self.rows)
+
+        def verify(self, secret: str):
+            return self.rows.get(secret)
+
+    keys = Keys()
+    gate = KeyGate(keys, ttl_s=3600.0)  # a cache far longer than the test
+    gate.close()
+    with pytest.raises(Unauthorized, match="no active key exists"):
+        gate.check("Bearer early", ["admin"])  # "no key" is now cached, and "early" is unknown
+    keys.rows["fresh"] = {"scopes": ["admin"], "key_id": "k-fresh"}
+    assert gate.check("Bearer fresh", ["admin"]) == "k-fresh"
+    for header in (None, "Bearer other"):
+        with pytest.raises(Unauthorized, match="no active key exists"):
+            gate.check(header, ["admin"])
+    keys.rows["scraper"] = {"scopes": ["metrics"], "key_id": "k-metrics"}
+    with pytest.raises(Forbidden):
+        gate.check("Bearer scraper", ["admin"])
