@@ -63,8 +63,8 @@ class OrthoBasis:
     once), the map N back to the monomials, and how to expand Ψ (see the module docstring).
 
     whiten: (d × d) W; a, b: (d × D) recurrence coefficients a_k and (d × (D + 1)) norms b_k (b[:, 0] unused);
-    N: (p + 2) × (p + 2) with ``[1, Φ, y] = [1, Ψ, y] N``; steps: per column of Ψ, (parent column or −1, index
-    of its univariate factor in the table ``univariate`` returns), in an order where parents come first."""
+    N: (p + 2) × (p + 2) with ``[1, Φ, y] = [1, Ψ, y] N``; steps: per column of Ψ, (that column, its parent
+    column or −1, the index of its univariate factor in the table ``univariate`` returns), parents first."""
 
     powers: np.ndarray
     whiten: np.ndarray
