@@ -513,15 +513,16 @@ def _final_pass(m: _Model, setting: BasisSetting, fw: np.ndarray, fi: np.ndarray
 
 
 def _leverage_screen(m: _Model, scan: Scan, setting: BasisSetting, mean: np.ndarray, T: np.ndarray,
-                     fw: np.ndarray) -> LeverageScreen | None:
+                     fw: np.ndarray, basis: OrthoBasis | None = None) -> LeverageScreen | None:
     """The screen of pass 3 for a polynomial model of degree 2 or more without one-hot columns, on sources of
     at least ``GRAM_MIN_ROWS`` rows, with its floor: the largest exact leverage over the scan's sample of
-    rows (training rows: a lower bound of the largest over all); else None (every row's leverage)."""
+    rows (training rows: a lower bound of the largest over all); else None (every row's leverage).
+    ``basis``: the model's own ``OrthoBasis`` when one was already built, else it is built here."""
     if (setting.kind != "polynomial" or (setting.degree or 0) < 2 or m.categories.width
             or scan.n < GRAM_MIN_ROWS):
         return None
-    sample = _sample(m, scan)
-    basis = orthobasis.build(setting.powers, sample)
+    sample = _sample(m.scaler, scan)
+    basis = basis if basis is not None else orthobasis.build(setting.powers, sample)
     if basis is None:
         return None
     floor = 0.0
@@ -663,7 +664,7 @@ def _tune_partitions(partitions, schema, spec: TuneSpec, executor, progress, sho
                           errors=[{"field": "cv.folds", "value": spec.cv.folds, "message": "empty fold"}])
     rows = _score(run, m, settings, groups, fold_summaries)
     picks = select(rows, settings, spec.selection.metric, spec.selection.rule)
-    result = _refit(run, m, scan, settings, groups, fold_summaries, rows, picks)
+    result = _refit(run, m, scan, settings, groups, fold_summaries, rows, picks, plans)
     # the per-fold summaries a later continuation merges into (``continued.state_of``)
     from . import continued
 
@@ -729,7 +730,7 @@ def _setup(run: _Run, scan: Scan, budget: Budget | None) -> tuple[_Model, list[B
     check_budget(spec, n, len(features), budget, categories.width, rows_in_memory=spec.execution.batch_rows)
     std = np.sqrt(scan.m2 / n)
     scaler = InputScaler(features, scan.mean, np.where(std > 0, std, 1.0))
-    sample_Xs = scaler.transform(scan.sample_X[np.argsort(scan.sample_pos)])
+    sample_Xs = _sample(scaler, scan)
 
     def centers_from(count: int) -> np.ndarray:
         if count >= n:
@@ -740,10 +741,10 @@ def _setup(run: _Run, scan: Scan, budget: Budget | None) -> tuple[_Model, list[B
     return _Model(run.ctx, scaler, categories, K), settings
 
 
-def _sample(m: _Model, scan: Scan) -> np.ndarray:
+def _sample(scaler: InputScaler, scan: Scan) -> np.ndarray:
     """The scan's sample of rows, standardized, in row order (so whatever order the partitions' scans were
-    merged in, the sums made over it are the same)."""
-    return m.scaler.transform(scan.sample_X[np.argsort(scan.sample_pos, kind="stable")])
+    merged in, what is made from it is the same)."""
+    return scaler.transform(scan.sample_X[np.argsort(scan.sample_pos, kind="stable")])
 
 
 def _gram_plans(m: _Model, scan: Scan, groups: "_Groups") -> list[OrthoBasis | None]:
@@ -754,7 +755,7 @@ def _gram_plans(m: _Model, scan: Scan, groups: "_Groups") -> list[OrthoBasis | N
     for setting, nested in groups.items:
         use = (nested and setting.kind == "polynomial" and (setting.degree or 0) >= 2
                and m.categories.width == 0 and scan.n >= GRAM_MIN_ROWS)
-        out.append(orthobasis.build(setting.powers, _sample(m, scan)) if use else None)
+        out.append(orthobasis.build(setting.powers, _sample(m.scaler, scan)) if use else None)
     return out
 
 
@@ -828,8 +829,9 @@ def _score(run: _Run, m: _Model, settings: list[BasisSetting], groups: _Groups, 
 
 
 def _refit(run: _Run, m: _Model, scan: Scan, settings: list[BasisSetting], groups: _Groups, fold_summaries,
-           rows: list[dict[str, Any]], picks: tuple[int, int, int]) -> TuneResult:
-    """The chosen setting refit from its fold summaries, then pass 3 over the rows, then the result."""
+           rows: list[dict[str, Any]], picks: tuple[int, int, int], plans: list[OrthoBasis | None]) -> TuneResult:
+    """The chosen setting refit from its fold summaries, then pass 3 over the rows, then the result
+    (``plans``: the summaries' bases, ``_gram_plans``)."""
     spec, features = run.ctx.spec, run.ctx.features
     chosen = rows[picks[0]]
     s_idx, strength, ratio = chosen["_setting"], chosen["strength"], chosen["l1_ratio"]
@@ -842,7 +844,9 @@ def _refit(run: _Run, m: _Model, scan: Scan, settings: list[BasisSetting], group
     fi = np.array([f.intercept[0] for f in fold_fits])
     stride = max(1, math.ceil(n / MAX_INTERVAL_RESIDUALS))
     T = leverage_triangle(F, full.scale)
-    screen = _leverage_screen(m, scan, setting, full.mean, T, fw)
+    plan = plans[groups.of[s_idx]]  # the summaries' basis serves the screen when the model is its top degree
+    screen = _leverage_screen(m, scan, setting, full.mean, T, fw,
+                              plan if plan is not None and np.array_equal(plan.powers, setting.powers) else None)
     fin = run.map_reduce(partial(_final_pass, m, setting, fw, fi, full.mean, T, n, stride, screen), run.parts,
                          _merge_final)
     abs_res = np.concatenate(fin.residuals)
