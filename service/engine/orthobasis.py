@@ -198,30 +198,33 @@ def build(powers: np.ndarray, sample: np.ndarray) -> OrthoBasis | None:
         if rec is None:
             return None
         a[j], b[j] = rec
-    # index of every exponent of total degree ≤ D: 0 the constant, 1 + i the basis's column i
-    index = {(0,) * d: 0, **{tuple(int(v) for v in r): 1 + i for i, r in enumerate(powers)}}
+    # every exponent of total degree ≤ D: row 0 the constant, row 1 + i the basis's column i, looked up by bytes
     m0 = p + 1
     allp = np.zeros((m0, d), dtype=np.int64)
     allp[1:] = powers
-    # shift[k, i]: the index of exponent i plus one unit of input k (−1 past degree D), looked up by the
-    # exponent rows' bytes
-    by_bytes = {r.tobytes(): i for i, r in enumerate(allp)}
+    index = {r.tobytes(): i for i, r in enumerate(allp)}
+    # shift[k, i]: the index of exponent i plus one unit of input k (−1 past degree D)
     ups = allp[None, :, :] + np.eye(d, dtype=np.int64)[:, None, :]  # (d, m0, d)
-    shift = np.array([[by_bytes.get(u.tobytes(), -1) for u in row] for row in ups], dtype=np.int64).reshape(d, m0)
-    # z-coefficients of every x-monomial: x^α = x^(α − e_j) · Σ_k W⁻¹[k, j] z_k, parents first (by degree)
+    shift = np.array([[index.get(u.tobytes(), -1) for u in row] for row in ups], dtype=np.int64).reshape(d, m0)
+    # parents first (by degree), for each column of the basis: its last input j with a nonzero exponent,
+    # - the z-coefficients of its x-monomial: x^α = x^(α − e_j) · Σ_k W⁻¹[k, j] z_k;
+    # - its step in Ψ's expansion: ψ_α = ψ_(α with α_j = 0) · p_{j,α_j}(z_j)
     Zc = np.zeros((m0, m0))
     Zc[0, 0] = 1.0
+    steps = []
     for i in sorted(range(p), key=lambda i: int(powers[i].sum())):
         r = powers[i]
         j = int(np.flatnonzero(r)[-1])
-        parent = r.copy()
-        parent[j] -= 1
-        src = Zc[:, index[tuple(int(v) for v in parent)]]
+        less, without = r.copy(), r.copy()
+        less[j] -= 1
+        without[j] = 0
+        src = Zc[:, index[less.tobytes()]]
         col = np.zeros(m0)
         nz = np.flatnonzero(src)
         for k in range(d):
             col[shift[k, nz]] += W_inv[k, j] * src[nz]  # degree < D before the product: every shift exists
         Zc[:, 1 + i] = col
+        steps.append((i, index[without.tobytes()] - 1, j * (D + 1) + int(r[j])))
     # Ψ-coefficients of every z-monomial: z^β = Π_j Σ_l C_j[l, β_j] p_{j,l}
     Cz = np.ones((m0, m0))
     for j in range(d):
@@ -230,14 +233,6 @@ def build(powers: np.ndarray, sample: np.ndarray) -> OrthoBasis | None:
     N = np.zeros((m0 + 1, m0 + 1))
     N[:m0, :m0] = Cz @ Zc
     N[m0, m0] = 1.0
-    steps = []
-    for i in sorted(range(p), key=lambda i: int(powers[i].sum())):
-        r = powers[i]
-        j = int(np.flatnonzero(r)[-1])
-        parent = r.copy()
-        parent[j] = 0
-        u = j * (D + 1) + int(r[j])
-        steps.append((i, index[tuple(int(v) for v in parent)] - 1, u))
     basis = OrthoBasis(powers, W, a, b, N, tuple(steps))
     # the sample's own conditioning, without the target: refuse early what the Gram would refuse anyway
     # (its Gram matrix made CHUNK_ROWS rows at a time, so the sample's design is never whole in memory)
