@@ -13,6 +13,8 @@ and therefore its result, does not depend on the number of threads or their timi
 from __future__ import annotations
 
 import os
+import sys
+import threading
 from collections import deque
 from concurrent.futures import ThreadPoolExecutor
 from contextlib import contextmanager
@@ -27,12 +29,27 @@ def usable_cores() -> int:
         return max(1, os.cpu_count() or 1)
 
 
+_CONTROLLER: tuple[int, Any] | None = None  # (len(sys.modules) when made, threadpoolctl.ThreadpoolController)
+_CONTROLLER_LOCK = threading.Lock()
+
+
+def _controller():
+    """One ``ThreadpoolController`` for the process, made again only after a module was imported since (a new
+    native library comes with an import): making one scans every loaded library (about 2 ms), which a job
+    that limits BLAS around each of its steps would otherwise pay at every step."""
+    global _CONTROLLER
+    from threadpoolctl import ThreadpoolController
+
+    with _CONTROLLER_LOCK:
+        if _CONTROLLER is None or _CONTROLLER[0] != len(sys.modules):
+            _CONTROLLER = (len(sys.modules), ThreadpoolController())
+        return _CONTROLLER[1]
+
+
 @contextmanager
 def single_blas():
     """BLAS and OpenMP pools limited to one thread while the block runs (process-wide)."""
-    from threadpoolctl import threadpool_limits
-
-    with threadpool_limits(limits=1):
+    with _controller().limit(limits=1):
         yield
 
 
