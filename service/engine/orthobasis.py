@@ -33,10 +33,10 @@ expects (nested degrees stay leading blocks).
 
 **Accuracy and the guard.** R_Ψ comes from the Cholesky factor of the fold's Gram matrix of ``[1, Ψ, y]``,
 whose relative accuracy in any direction v, ``‖R_Ψ v‖ = ‖[1, Ψ, y] v‖ (1 + δ)``, has |δ| of order u·κ², κ the
-condition number of ``[1, Ψ, y]`` with its columns scaled to unit norm. ``r_factor`` computes κ exactly (the
-singular values of the m × m factor) and refuses the Gram (returns None) when κ exceeds ``ORTHO_MAX_COND``
-(1e3: |δ| up to about 1e-10 in the weakest direction only): the caller then summarizes those rows the exact
-way (``summaries.absorb``). The target's column is part of κ: a target that the basis fits almost exactly
+condition number of ``[1, Ψ, y]`` with its columns scaled to unit norm. ``r_factor`` computes κ (from the
+eigenvalues of the m × m Gram matrix, to about 1e-8 relative at the limit) and refuses the Gram (returns None)
+when κ exceeds ``ORTHO_MAX_COND`` (1e3: |δ| up to about 1e-10 in the weakest direction only): the caller then
+summarizes those rows the exact way (``summaries.absorb``). The target's column is part of κ: a target that the basis fits almost exactly
 (R² → 1) makes ``[1, Ψ, y]`` ill conditioned and takes the exact way. ``build`` refuses up front (None) when
 the sample's own κ([1, Ψ]) exceeds half the limit, when the inputs are collinear on the sample, or when an
 input has too few distinct values for the degree (its orthogonal polynomials stop before D).
@@ -119,6 +119,18 @@ class OrthoBasis:
         A[:, -1] = y
         return A
 
+    def gram(self, Xs: np.ndarray, y: np.ndarray, root_w: np.ndarray | None = None) -> np.ndarray:
+        """(m × m) Gram matrix of ``[1, Ψ, y]`` over the rows ``Xs`` (n × d, standardized), ``y`` (n,), each row
+        scaled by ``root_w`` (n,) when given (the square roots of the row weights, as ``Summary.of``), made
+        ``CHUNK_ROWS`` rows at a time so the design is never whole in memory."""
+        G = np.zeros((self.width, self.width))
+        for lo in range(0, Xs.shape[0], CHUNK_ROWS):
+            A = self.design(Xs[lo:lo + CHUNK_ROWS], y[lo:lo + CHUNK_ROWS])
+            if root_w is not None:
+                A *= root_w[lo:lo + CHUNK_ROWS, None]
+            G += A.T @ A  # numpy calls the symmetric rank-k update (syrk) for this form, without the GIL
+        return G
+
     def r_factor(self, G: np.ndarray) -> np.ndarray | None:
         """R factor of ``[1, Φ, y]`` (monomials, m × m, positive diagonal) from ``G``, the Gram matrix of
         ``[1, Ψ, y]`` over the same rows; None when G is not accurate enough for it (see the module
@@ -128,11 +140,14 @@ class OrthoBasis:
         if G.shape != (self.width,) * 2 or not np.all(np.isfinite(G)) or not np.all(diag > 0):
             return None
         s = np.exp2(-np.round(np.log2(np.sqrt(diag))))  # powers of two: the scaling is exact
-        Rs, info = _lapack.dpotrf(G * np.outer(s, s), lower=0, clean=1)
+        Gs = G * np.outer(s, s)
+        Rs, info = _lapack.dpotrf(Gs, lower=0, clean=1)
         if info != 0 or not np.all(np.diag(Rs) > 0):
             return None
-        sv = np.linalg.svd(Rs, compute_uv=False)
-        if not sv[-1] > 0 or sv[0] / sv[-1] > ORTHO_MAX_COND:
+        # κ₂ of the scaled [1, Ψ, y] from the eigenvalues of its Gram matrix (κ², each known to about m·u·κ² ≤
+        # 1e-8 relative below the limit: exact enough to decide, at about half the cost of R's singular values)
+        ev = np.linalg.eigvalsh(Gs)
+        if not ev[0] > 0 or ev[-1] / ev[0] > ORTHO_MAX_COND ** 2:
             return None
         R = householder_r((Rs / s[None, :]) @ self.N)
         R[np.diag(R) < 0] *= -1.0  # the signs of R's rows are free (``summaries``): a positive diagonal
@@ -170,9 +185,11 @@ def _monomials_in_p(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     return C
 
 
-def build(powers: np.ndarray, sample: np.ndarray) -> OrthoBasis | None:
+def build(powers: np.ndarray, sample: np.ndarray, *, check: bool = True) -> OrthoBasis | None:
     """Ψ for the polynomial basis ``powers`` (p × d) from ``sample`` (rows × d, standardized inputs), or None
-    when this basis or sample does not allow it (see the module docstring)."""
+    when this basis or sample does not allow it (see the module docstring). ``check=False`` leaves out the
+    sample's own κ([1, Ψ]) (a Gram matrix of the whole sample): for a caller whose sample is all its rows,
+    the folds' own guards (``r_factor``) then decide at the cost of that one Gram pass."""
     from .basis import polynomial_powers
 
     powers = np.asarray(powers, dtype=np.int64)
@@ -198,33 +215,46 @@ def build(powers: np.ndarray, sample: np.ndarray) -> OrthoBasis | None:
         if rec is None:
             return None
         a[j], b[j] = rec
-    # every exponent of total degree ≤ D: row 0 the constant, row 1 + i the basis's column i, looked up by bytes
+    # every exponent of total degree ≤ D: row 0 the constant, row 1 + i the basis's column i, found by an
+    # integer code (base D + 1: every exponent looked up here is at most D)
     m0 = p + 1
     allp = np.zeros((m0, d), dtype=np.int64)
     allp[1:] = powers
-    index = {r.tobytes(): i for i, r in enumerate(allp)}
-    # shift[k, i]: the index of exponent i plus one unit of input k (−1 past degree D)
-    ups = allp[None, :, :] + np.eye(d, dtype=np.int64)[:, None, :]  # (d, m0, d)
-    shift = np.array([[index.get(u.tobytes(), -1) for u in row] for row in ups], dtype=np.int64).reshape(d, m0)
+    if float(D + 1) ** d < 2.0 ** 62:
+        place = (D + 1) ** np.arange(d, dtype=np.int64)
+        code = allp @ place
+        by_code = np.argsort(code)
+
+        def lookup(rows: np.ndarray) -> np.ndarray:
+            return by_code[np.searchsorted(code, rows @ place, sorter=by_code)]
+    else:  # the code would overflow int64: by the exponents' bytes
+        index = {r.tobytes(): i for i, r in enumerate(allp)}
+
+        def lookup(rows: np.ndarray) -> np.ndarray:
+            return np.array([index[np.ascontiguousarray(r).tobytes()] for r in rows], dtype=np.int64)
+
+    # shift[k, i]: the row of exponent i plus one unit of input k (−1 past degree D)
+    total = allp.sum(axis=1)
+    shift = np.full((d, m0), -1, dtype=np.int64)
+    low = np.flatnonzero(total < D)  # the rows a factor can raise
+    for k in range(d):
+        shift[k, low] = lookup(allp[low] + np.eye(d, dtype=np.int64)[k])
     # parents first (by degree), for each column of the basis: its last input j with a nonzero exponent,
     # - the z-coefficients of its x-monomial: x^α = x^(α − e_j) · Σ_k W⁻¹[k, j] z_k;
     # - its step in Ψ's expansion: ψ_α = ψ_(α with α_j = 0) · p_{j,α_j}(z_j)
+    last = d - 1 - np.argmax(powers[:, ::-1] > 0, axis=1)  # per column, its last input with a nonzero exponent
+    one = np.eye(d, dtype=np.int64)[last]
+    less = lookup(powers - one)  # row of x^(α − e_j)
+    without = lookup(powers - one * powers[np.arange(p), last][:, None])  # row of α with α_j = 0
+    degree = powers.sum(axis=1)
     Zc = np.zeros((m0, m0))
     Zc[0, 0] = 1.0
-    steps = []
-    for i in sorted(range(p), key=lambda i: int(powers[i].sum())):
-        r = powers[i]
-        j = int(np.flatnonzero(r)[-1])
-        less, without = r.copy(), r.copy()
-        less[j] -= 1
-        without[j] = 0
-        src = Zc[:, index[less.tobytes()]]
-        col = np.zeros(m0)
-        nz = np.flatnonzero(src)
-        for k in range(d):
-            col[shift[k, nz]] += W_inv[k, j] * src[nz]  # degree < D before the product: every shift exists
-        Zc[:, 1 + i] = col
-        steps.append((i, index[without.tobytes()] - 1, j * (D + 1) + int(r[j])))
+    for level in range(1, D + 1):  # a level's parents are all in the level before: one step per level
+        cols = np.flatnonzero(degree == level)
+        for k in range(d):  # in input order, as the sums of one column: the same bits as column by column
+            Zc[shift[k, low][:, None], 1 + cols] += W_inv[k, last[cols]][None, :] * Zc[low][:, less[cols]]
+    order = sorted(range(p), key=lambda i: int(degree[i]))
+    steps = [(i, int(without[i]) - 1, int(last[i]) * (D + 1) + int(powers[i, last[i]])) for i in order]
     # Ψ-coefficients of every z-monomial: z^β = Π_j Σ_l C_j[l, β_j] p_{j,l}
     Cz = np.ones((m0, m0))
     for j in range(d):
@@ -234,6 +264,8 @@ def build(powers: np.ndarray, sample: np.ndarray) -> OrthoBasis | None:
     N[:m0, :m0] = Cz @ Zc
     N[m0, m0] = 1.0
     basis = OrthoBasis(powers, W, a, b, N, tuple(steps))
+    if not check:
+        return basis
     # the sample's own conditioning, without the target: refuse early what the Gram would refuse anyway
     # (its Gram matrix made CHUNK_ROWS rows at a time, so the sample's design is never whole in memory)
     G = np.zeros((m0, m0))
