@@ -23,7 +23,8 @@ from service.errors import InvalidData
 from . import drift
 from .basis import BasisSetting, Categories, InputScaler
 from .model import FittedModel
-from .solvers import Fit, centred_scaled, fit, l2_df, leverage_factor
+from .parallel import ordered_map
+from .solvers import Fit, centred_scaled, fit, l2_df, leverage_factor, report_convergence, watch_convergence
 from .spec import TuneSpec
 from .summaries import Summary
 
@@ -152,32 +153,43 @@ def setting_df(full: Summary, spec: TuneSpec, strengths: np.ndarray, ratios: lis
 
 
 def score_splits(atoms: list[Summary], splits: list[tuple[list[int], list[int]]], spec: TuneSpec,
-                 strengths: np.ndarray, ratios: list[float | None], mae_rows=None, tick=None, combined=None
-                 ) -> tuple[np.ndarray, list[list[Fit]]]:
+                 strengths: np.ndarray, ratios: list[float | None], mae_rows=None, tick=None, combined=None,
+                 threads: int = 1) -> tuple[np.ndarray, list[list[Fit]]]:
     """Metric per (l1 ratio, strength, split) from atom summaries, and the fits of every split.
 
     RMSE and R² come from the validation atoms' summaries alone; MAE needs the rows, through
     ``mae_rows(test_ids, fit) -> (L,)`` (or NaN placeholders, filled later by a streaming pass).
     ``tick(fraction)``, when given, is called after each split. ``combined(atom_ids)``, when given,
     returns the summary of those atoms together (nested settings take it as a leading block of the
-    widest setting's, merged once: ``NestedSplits``); by default the atoms are merged here."""
+    widest setting's, merged once: ``NestedSplits``); by default the atoms are merged here. ``threads`` > 1
+    scores that many splits at once (each split's arithmetic is its own, so the result is the same; BLAS
+    should then be on one thread, ``parallel.single_blas``)."""
     metric = spec.selection.metric
     values = np.empty((len(ratios), strengths.size, len(splits)))
     all_fits = []
     if combined is None:
         def combined(ids: list[int]) -> Summary:
             return Summary.combine([atoms[i] for i in ids])
-    for j, (train_ids, test_ids) in enumerate(splits):
+
+    def one(split: tuple[list[int], list[int]]) -> tuple[list[Fit], list[np.ndarray]]:
+        train_ids, test_ids = split
         train = combined(train_ids)
-        fits = [fit(train, spec.penalty.kind, strengths, r) for r in ratios]
-        all_fits.append(fits)
+        with watch_convergence() as seen:  # this thread's own (a pool thread does not see the caller's)
+            fits = [fit(train, spec.penalty.kind, strengths, r) for r in ratios]
         test = combined(test_ids)
-        for r_i, f in enumerate(fits):
+        out = []
+        for f in fits:
             if metric == "mae":
-                values[r_i, :, j] = mae_rows(test_ids, f) if mae_rows else np.nan
+                out.append(mae_rows(test_ids, f) if mae_rows else np.full(strengths.size, np.nan))
             else:
-                sse = test.sse(f.residual_operator())
-                values[r_i, :, j] = metric_value(metric, test.n, sse=sse, sst=test.total_ss())
+                out.append(metric_value(metric, test.n, sse=test.sse(f.residual_operator()), sst=test.total_ss()))
+        return fits, out, seen
+
+    for j, (fits, out, seen) in enumerate(ordered_map(one, splits, max(1, min(threads, len(splits))))):
+        report_convergence(seen)
+        all_fits.append(fits)
+        for r_i, v in enumerate(out):
+            values[r_i, :, j] = v
         if tick is not None:  # a long job's progress inside one basis setting: the share of splits done
             tick((j + 1) / len(splits))
     return values, all_fits
@@ -213,23 +225,31 @@ def table_rows(s_idx: int, setting: BasisSetting, strengths: np.ndarray, ratios:
     §7.10); ``df``; and ``split_values``, the metric per split. ``extra`` may carry per-candidate columns
     (``gcv``) and, for the loo scheme, its own ``_std`` and ``_se`` (then ``split_values`` is None).
     """
-    rows = []
     extra = extra or {}
     n_splits = values.shape[2]
+    # per-candidate figures as whole arrays (the same reductions over each candidate's contiguous splits)
+    values = np.ascontiguousarray(values, dtype=float)
+    mean = np.mean(values, axis=2).tolist()
+    std = np.std(values, axis=2).tolist()
+    se = (np.std(values, axis=2, ddof=1) / math.sqrt(n_splits)).tolist() if n_splits > 1 else None
+    split_values = values.tolist()
+    dfs = np.asarray(df, dtype=float).tolist()
+    public = {key: np.asarray(arr, dtype=float).tolist() for key, arr in extra.items() if not key.startswith("_")}
+    loo = ({"std": np.asarray(extra["_std"], dtype=float).tolist(), "se": np.asarray(extra["_se"], dtype=float).tolist()}
+           if "_std" in extra else None)
+    basis = setting.describe()
+    rows = []
     for r_i, ratio in enumerate(ratios):
-        for l_i, lam in enumerate(strengths):
-            v = values[r_i, l_i]
-            se = float(np.std(v, ddof=1) / math.sqrt(n_splits)) if n_splits > 1 else float("nan")
-            row = {"basis": setting.describe(), "strength": float(lam), "l1_ratio": ratio,
-                   "mean": float(np.mean(v)), "std": float(np.std(v)), "se": se,
-                   "df": float(df[r_i, l_i]), "split_values": [float(x) for x in v]}
-            if "_std" in extra:
-                row["std"] = float(extra["_std"][r_i, l_i])
-                row["se"] = float(extra["_se"][r_i, l_i])
+        for l_i, lam in enumerate(strengths.tolist()):
+            row = {"basis": dict(basis), "strength": lam, "l1_ratio": ratio,
+                   "mean": mean[r_i][l_i], "std": std[r_i][l_i], "se": se[r_i][l_i] if se is not None else math.nan,
+                   "df": dfs[r_i][l_i], "split_values": split_values[r_i][l_i]}
+            if loo is not None:
+                row["std"] = loo["std"][r_i][l_i]
+                row["se"] = loo["se"][r_i][l_i]
                 row["split_values"] = None
-            for key, arr in extra.items():
-                if not key.startswith("_"):
-                    row[key] = float(arr[r_i, l_i])
+            for key, arr in public.items():
+                row[key] = arr[r_i][l_i]
             row["_setting"] = s_idx
             rows.append(row)
     return rows

@@ -41,6 +41,16 @@ def watch_convergence():
         _UNCONVERGED.reset(token)
 
 
+def report_convergence(seen: dict[tuple[float, float], float]) -> None:
+    """Add fits collected by a ``watch_convergence`` of another thread (whose context does not reach the
+    caller's) to the caller's active one, if any; the largest violation per key is kept, so the order of
+    the reports does not matter."""
+    into = _UNCONVERGED.get()
+    if into is not None:
+        for key, v in seen.items():
+            into[key] = max(into.get(key, 0.0), v)
+
+
 def convergence_warnings(seen: dict[tuple[float, float], float]) -> list[str]:
     """One warning naming the strengths (per l1 ratio) whose sparse fits did not converge."""
     if not seen:

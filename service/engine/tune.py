@@ -28,14 +28,18 @@ from .result import (TuneResult, build_model, check_numeric_text, check_spread, 
                      NestedSplits)
 from .solvers import Fit, convergence_warnings, fit, leverage_triangle, row_leverages, watch_convergence
 from .spec import TuneSpec, parse_spec
-from .summaries import Summary
+from .summaries import CHUNK_ROWS, Summary
 from .advice import data_warnings
-from . import continued
+from . import continued, orthobasis
 from .table import as_columns, categorical_column, key_column, numeric_column
 
 ONE_HOT_AS_LEVEL_SUMS = True  # the first categorical column enters the summaries as level sums (``Summary.of_grouped``)
 LEVERAGE_ONE = 1e-10  # a row with hᵢᵢ ≥ 1 − this has leverage 1: its leave-one-out error needs a refit
 MAX_LOO_REFIT_FLOPS = 2e10
+BATCH_SCORING_FLOPS = 3e9  # a nested group's small algebra up to which it is scored all at once (``_score_nested``)
+FOLD_PATHS_KEEP_BYTES = 64 << 20  # the scoring's L2 fold fits kept for the refit, over every setting
+GRAM_MIN_ROWS = 10_000  # rows from which a nested polynomial group's atoms are summarized by Gram matrices
+GRAM_SAMPLE_ROWS = 50_000  # rows (evenly spaced) its well-conditioned basis is made from (``orthobasis.build``)
 
 
 @dataclass(frozen=True)
@@ -491,21 +495,50 @@ def _design(setting: BasisSetting, Xs: np.ndarray, cat_block: np.ndarray) -> np.
     return Phi
 
 
+def _max_leverage(Phi: np.ndarray, rows: np.ndarray | None, mean: np.ndarray, T: np.ndarray, n: float) -> float:
+    """The largest training leverage (``row_leverages``) over the rows ``rows`` of ``Phi`` (None: all), in row
+    blocks on every usable core, each block a column-major copy (``Phi`` is left as it is)."""
+    total = Phi.shape[0] if rows is None else rows.size
+    threads = usable_cores()
+    step = max(1, min(CHUNK_ROWS, -(-total // threads)))
+
+    def block(lo: int) -> float:
+        pick = slice(lo, min(total, lo + step)) if rows is None else rows[lo:lo + step]
+        return float(row_leverages(np.asfortranarray(Phi[pick]), mean, T, n).max())
+
+    return max(ordered_map(block, range(0, total, step), threads), default=float("nan"))
+
+
 def _model(prep: Prepared, spec: TuneSpec, scaler: InputScaler, setting: BasisSetting, full_summary: Summary,
            strengths: np.ndarray, strength: float, ratio: float | None, Phi: np.ndarray,
            fold_fits: list[Fit] | None, oof_abs: np.ndarray, oof_fold: np.ndarray) -> tuple[FittedModel, Fit]:
     """The model refit on all rows (``result.build_model``), with its training leverages from ``Phi``."""
     full, l_idx, F = refit_all_rows(full_summary, spec, strengths, strength, ratio)
     kept = slice(None) if prep.w is None else prep.w > 0  # zero-weight rows are not training data
-    lev = row_leverages(np.asfortranarray(Phi[kept]), full.mean, leverage_triangle(F, full.scale), full.n)  # a copy
+    max_leverage = _max_leverage(Phi, None if prep.w is None else np.flatnonzero(kept), full.mean,
+                                 leverage_triangle(F, full.scale), full.n)
     finite = np.isfinite(oof_abs)
     if prep.w is not None:
         finite &= prep.w > 0  # intervals from the out-of-fold residuals of rows that weigh something
     X = prep.X[kept]
     ranges = {f: [float(X[:, j].min()), float(X[:, j].max())] for j, f in enumerate(prep.features)}
     model = build_model(spec, prep.features, scaler, setting, prep.categories, full, l_idx, ratio, F, ranges,
-                        float(lev.max()), thin_residuals(oof_abs[finite], oof_fold[finite]), fold_fits)
+                        max_leverage, thin_residuals(oof_abs[finite], oof_fold[finite]), fold_fits)
     return model, full
+
+
+def _without_svd(f: Fit) -> Fit:
+    """An L2 fit over the strength grid without its singular vectors (what a refit's fold fit needs)."""
+    return Fit(f.strengths, f.beta, f.intercept, f.mean, f.scale, f.y_mean, f.n)
+
+
+def _at(f: Fit, l_idx: int, cols: np.ndarray | None = None) -> Fit:
+    """The fit at one strength of a fit over the grid (its coefficients are that row's, unchanged), its
+    columns taken in the order ``cols`` when given."""
+    s = slice(l_idx, l_idx + 1)
+    if cols is None:
+        return Fit(f.strengths[s], f.beta[s], f.intercept[s], f.mean, f.scale, f.y_mean, f.n)
+    return Fit(f.strengths[s], f.beta[s][:, cols], f.intercept[s], f.mean[cols], f.scale[cols], f.y_mean, f.n)
 
 
 class _SharedSearch:
@@ -527,12 +560,17 @@ class _SharedSearch:
         nested = [s for s in settings if s.kind in ("linear", "polynomial")]
         d = prep.X.shape[1]
         self._nested_top = max(nested, key=lambda s: s.n_terms(d)) if nested else None
-        self._nested: tuple[np.ndarray, list[Summary]] | None = None
+        self._nested: tuple[np.ndarray | None, list[Summary]] | None = None
         self.kept: dict[int, list[Summary]] = {}  # RBF settings' atom summaries (kept for continued training)
         self.keep_bytes: int | None = None  # keep them up to this many stored bytes (None: keep none)
         self.kept_bytes = 0  # stored bytes of the summary groups seen so far
         self._merged: NestedSplits | None = None
         self.warnings: list[str] = []
+        # per setting, the L2 fits of the interval splits over the whole strength grid, without their SVDs
+        # (the refit takes its fold fits from them instead of factoring the folds again), within a bound
+        self._fold_paths: dict[int, list[Fit]] = {}
+        self._fold_paths_bytes = 0
+        self._scored: dict[int, tuple[np.ndarray, np.ndarray, list[Fit]]] | None = None  # ``_score_nested``
 
     tick: Callable[[float], None] | None = None  # progress inside one setting (fraction done), long jobs only
 
@@ -593,6 +631,59 @@ class _SharedSearch:
             return [first] + [Summary.of(_gather(D, idx), y[idx], on_block=block, threads=threads, weights=prep.rows_w(idx),
                                          precondition=pre) for idx in atoms[1:]]
 
+    def _gram_summaries(self) -> list[Summary] | None:
+        """The nested group's atom summaries each from one Gram matrix of a well-conditioned basis with the
+        same span (``orthobasis``; the streamed engine's way, see there), or None for the exact way
+        (``_summaries``): only for a polynomial group of degree 2 or more without one-hot columns, from
+        ``GRAM_MIN_ROWS`` rows, and only when every atom's Gram matrix passes ``OrthoBasis.r_factor``'s
+        guard. The atoms run on every usable core, each on its own thread, so the result does not depend on
+        the thread count."""
+        top, prep = self._nested_top, self.prep
+        n = self.Xs.shape[0]
+        if (top.kind != "polynomial" or (top.degree or 0) < 2 or prep.categories.width or n < GRAM_MIN_ROWS
+                or not self.plan.atoms):
+            return None
+        # the basis from every row (or evenly spaced ones past GRAM_SAMPLE_ROWS): the folds' own guards
+        # decide, so the sample's κ is not checked apart (it would cost one more Gram pass)
+        sample = self.Xs if n <= GRAM_SAMPLE_ROWS else self.Xs[np.linspace(0, n - 1, GRAM_SAMPLE_ROWS).astype(np.int64)]
+        basis = orthobasis.build(top.powers, sample, check=False)
+        if basis is None:
+            return None
+        y, w, tick = prep.y, prep.w, self.tick
+        root = None if w is None else np.sqrt(w)
+        atoms = [np.sort(idx) for idx in self.plan.atoms]  # a summary does not depend on its rows' order
+        total, seen = max(1, sum(idx.size for idx in atoms)), 0
+        threads = usable_cores()
+
+        def designs():  # in this thread, as ordered_map takes them: the expansion is many small numpy calls,
+            # which threads would only contend for the GIL over; the Gram matrices run on the threads meanwhile
+            for a, idx in enumerate(atoms):
+                for lo in range(0, idx.size, CHUNK_ROWS):
+                    rows = idx[lo:lo + CHUNK_ROWS]
+                    A = basis.design(self.Xs[rows], y[rows])
+                    if root is not None:
+                        A *= root[rows, None]
+                    yield a, A
+
+        grams = [np.zeros((basis.width, basis.width)) for _ in atoms]
+        left = [-(-idx.size // CHUNK_ROWS) for idx in atoms]  # chunks of each atom still to come
+        factors: list[np.ndarray | None] = [None] * len(atoms)
+        with single_blas():
+            for a, G, n_rows in ordered_map(lambda job: (job[0], job[1].T @ job[1], job[1].shape[0]), designs(),
+                                            threads):
+                grams[a] += G  # each atom's chunks in row order, whatever the thread count
+                left[a] -= 1
+                if not left[a]:  # in this thread while the others make Gram matrices: its eigenvalues hold the GIL
+                    factors[a] = basis.r_factor(grams[a])
+                    if factors[a] is None:
+                        return None  # not accurate enough: every atom the exact way
+                if tick is not None:
+                    seen += n_rows
+                    tick(0.5 * seen / total)
+        if any(R is None for R in factors):
+            return None  # an atom without rows: every atom the exact way
+        return [Summary(R, idx.size if w is None else float(np.sum(w[idx]))) for R, idx in zip(factors, atoms)]
+
     def _group_codes(self, D: np.ndarray) -> np.ndarray | None:
         """(n,) level of every row in the first categorical column, read from the nested design's leading
         one-hot columns, or None (no categorical column, or a row with no level: a fixed basis's unseen
@@ -614,19 +705,23 @@ class _SharedSearch:
         self._nested_top.expand_into(self.Xs, D[:, q:])
         return D
 
-    def _atoms(self, setting: BasisSetting) -> tuple[np.ndarray, list[Summary]]:
-        """(design in the summaries' column order, summaries of each atom) for one setting."""
+    def _atoms(self, setting: BasisSetting) -> tuple[np.ndarray | None, list[Summary]]:
+        """(design in the summaries' column order, summaries of each atom) for one setting. The nested
+        group's design is None when nothing needs it: summaries by Gram matrices (made chunk by chunk) and a
+        metric other than MAE (the refit expands the chosen setting alone)."""
         y = self.prep.y
         if setting.kind in ("linear", "polynomial"):
+            mae = self.spec.selection.metric == "mae"
             if self._nested is None:
-                D = self._nested_design()
-                self._nested = (D, self._summaries(D, y, nested=True))
+                atoms = self._gram_summaries()
+                D = self._nested_design() if atoms is None or mae else None
+                self._nested = (D, atoms if atoms is not None else self._summaries(D, y, nested=True))
                 self._merged = NestedSplits(self._nested[1])
             D, atoms = self._nested
-            if D is None:  # asked again after the design was freed (the refit): summaries only
+            if D is None and mae:  # asked again after the design was freed: summaries only
                 D = self._nested_design()
             k = 1 + self.prep.categories.width + setting.n_terms(self.prep.X.shape[1])
-            return D[:, :k - 1], [a.leading(k) for a in atoms]
+            return None if D is None else D[:, :k - 1], [a.leading(k) for a in atoms]
         D = _design(setting, self.Xs, self.prep.cat_block)
         return D, self._summaries(D, y)
 
@@ -638,7 +733,85 @@ class _SharedSearch:
         k = atoms[0].R.shape[0] - 1
         return lambda ids: self._merged.of(ids, k)
 
+    def _mae_rows(self, D: np.ndarray):
+        """``mae_rows`` for ``score_splits`` over the design D, or None when the metric is not MAE."""
+        if self.spec.selection.metric != "mae":
+            return None
+        y = self.prep.y
+
+        def mae_rows(test_ids: list[int], f: Fit) -> np.ndarray:
+            rows = np.concatenate([self.plan.atoms[i] for i in test_ids])
+            err = np.abs(y[rows, None] - f.intercept[None, :] - D[rows] @ f.weights.T)
+            if self.prep.w is None:
+                return metric_value("mae", rows.size, sae=err.sum(axis=0))
+            w = self.prep.w[rows]
+            return metric_value("mae", float(w.sum()), sae=w @ err)
+        return mae_rows
+
+    def _keep_paths(self, s_idx: int, paths: list[Fit]) -> None:
+        """Keep the interval splits' L2 fits of setting ``s_idx`` for the refit, within the bound."""
+        size = sum(f.beta.nbytes for f in paths)
+        if self._fold_paths_bytes + size <= FOLD_PATHS_KEEP_BYTES:
+            self._fold_paths[s_idx] = paths
+            self._fold_paths_bytes += size
+
+    def _batched(self, setting: BasisSetting) -> bool:
+        """Whether the nested group is scored all at once (``_score_nested``): L2, and little small algebra
+        (``BATCH_SCORING_FLOPS``), so that the group's progress moving only at its first setting is not seen."""
+        if setting.kind not in ("linear", "polynomial") or self.spec.penalty.kind != "l2":
+            return False
+        d, q = self.prep.X.shape[1], self.prep.categories.width
+        widths = [1 + q + s.n_terms(d) for s in self.settings if s.kind in ("linear", "polynomial")]
+        flops = self.n_splits * sum(float(m) ** 3 + self.strengths.size * float(m) ** 2 for m in widths)
+        return flops <= BATCH_SCORING_FLOPS
+
+    def _score_nested(self) -> dict[int, tuple[np.ndarray, np.ndarray, list[Fit]]]:
+        """Every nested setting's CV figures, complexity on all rows and interval fits at once: each atom set
+        merged once, then every (setting, split) fit and every setting's fit on all rows as one list of
+        independent tasks on every usable core, the widest first, so the cores finish together instead of
+        waiting for each other at every setting (a setting's few splits rarely share out evenly)."""
+        members = [i for i, s in enumerate(self.settings) if s.kind in ("linear", "polynomial")]
+        plan, threads = self.plan, usable_cores()
+        parts = {}
+        for i in members:
+            D, atoms = self._atoms(self.settings[i])
+            parts[i] = (atoms, self._combined(self.settings[i], atoms), self._mae_rows(D))
+        width = {i: parts[i][0][0].R.shape[0] for i in members}
+        sets = list(dict.fromkeys([tuple(ids) for split in plan.splits for ids in split] + [tuple(plan.refit_atoms)]))
+        top = max(width.values())
+        list(ordered_map(lambda ids: self._merged.of(list(ids), top - 1), sets, threads))  # each set merged once
+        tasks = sorted([(i, j) for i in members for j in range(-1, len(plan.splits))], key=lambda t: -width[t[0]])
+        tick = self.tick
+
+        def run(task: tuple[int, int]):
+            i, j = task
+            atoms, combined, mae_rows = parts[i]
+            if j < 0:
+                return setting_df(combined(plan.refit_atoms), self.spec, self.strengths, self.ratios)
+            values, fits = score_splits(atoms, [plan.splits[j]], self.spec, self.strengths, self.ratios, mae_rows,
+                                        combined=combined)
+            return values, _without_svd(fits[0][0])  # the singular vectors are not kept (their size)
+
+        done: dict[tuple[int, int], Any] = {}
+        for k, (task, out) in enumerate(zip(tasks, ordered_map(run, tasks, threads))):
+            done[task] = out
+            if tick is not None:
+                tick(0.5 + 0.5 * (k + 1) / len(tasks))
+        out = {}
+        for i in members:
+            values = np.concatenate([done[(i, j)][0] for j in range(len(plan.splits))], axis=2)
+            out[i] = (values, done[(i, -1)], [done[(i, j)][1] for j in plan.interval_splits])
+        return out
+
     def evaluate(self, s_idx: int, setting: BasisSetting):
+        if self._batched(setting):
+            if self._scored is None:
+                self._scored = self._score_nested()
+            values, df, paths = self._scored.pop(s_idx)
+            self._keep_paths(s_idx, paths)
+            self._free_nested_design(s_idx)
+            yield values, df, None
+            return
         D, atoms = self._atoms(setting)
         if setting.kind == "rbf" and self.keep_bytes is not None:  # kept for continued training, within the bound
             self.kept_bytes += continued.packed_bytes(atoms[0].R.shape[0], len(atoms))
@@ -647,25 +820,22 @@ class _SharedSearch:
             else:  # above the bound: none will be stored, so none is held
                 self.kept.clear()
         combined = self._combined(setting, atoms)
-        y = self.prep.y
-        mae_rows = None
-        if self.spec.selection.metric == "mae":
-            def mae_rows(test_ids: list[int], f: Fit) -> np.ndarray:
-                rows = np.concatenate([self.plan.atoms[i] for i in test_ids])
-                err = np.abs(y[rows, None] - f.intercept[None, :] - D[rows] @ f.weights.T)
-                if self.prep.w is None:
-                    return metric_value("mae", rows.size, sae=err.sum(axis=0))
-                w = self.prep.w[rows]
-                return metric_value("mae", float(w.sum()), sae=w @ err)
         tick = self.tick
-        values, _ = score_splits(atoms, self.plan.splits, self.spec, self.strengths, self.ratios, mae_rows,
-                                 tick=None if tick is None else (lambda f: tick(0.5 + 0.5 * f)), combined=combined)
+        values, fits = score_splits(atoms, self.plan.splits, self.spec, self.strengths, self.ratios, self._mae_rows(D),
+                                    tick=None if tick is None else (lambda f: tick(0.5 + 0.5 * f)), combined=combined,
+                                    threads=usable_cores())
+        if self.spec.penalty.kind == "l2":
+            self._keep_paths(s_idx, [_without_svd(fits[j][0]) for j in self.plan.interval_splits])
         df = setting_df(combined(self.plan.refit_atoms), self.spec, self.strengths, self.ratios)
+        self._free_nested_design(s_idx)
+        yield values, df, None
+
+    def _free_nested_design(self, s_idx: int) -> None:
+        """Free the nested design after setting ``s_idx`` when only RBF settings follow it."""
         later = self.settings[s_idx + 1:]
         if self._nested is not None and later and all(s.kind == "rbf" for s in later):
             self._nested = (None, self._nested[1])  # free the largest design once no nested setting is left
             # (with none left at all, the refit takes the chosen setting's columns from it, then frees it)
-        yield values, df, None
 
     def refit(self, s_idx, setting, strength, ratio, strengths, scaler):
         plan = self.plan
@@ -700,11 +870,18 @@ class _SharedSearch:
         n = y.size
         oof_pred = np.full(n, np.nan)
         oof_fold = np.full(n, -1, dtype=np.int64)
-        fold_fits = []
-        for j in plan.interval_splits:
-            train_ids, test_ids = plan.splits[j]
-            f = fit(combined(train_ids), self.spec.penalty.kind, np.array([strength]), ratio)
-            fold_fits.append(f)
+        paths = self._fold_paths.get(s_idx)
+        if paths is not None:  # the scoring's own fits at the chosen strength
+            l_idx = int(np.flatnonzero(strengths == strength)[0])
+            q = self.prep.categories.width
+            cols = None
+            if nested and q:  # scored as [one-hot, Φ], the model's order is [Φ, one-hot]
+                p = setting.n_terms(self.prep.X.shape[1])
+                cols = np.array([*range(q, q + p), *range(q)])
+            fold_fits = [_at(f, l_idx, cols) for f in paths]
+        else:
+            fold_fits = [fit(combined(plan.splits[j][0]), self.spec.penalty.kind, np.array([strength]), ratio)
+                         for j in plan.interval_splits]
         if fold_fits:  # every fold's predictions of every row in one product, each row keeping its own fold's
             P = Phi @ np.vstack([f.weights[0] for f in fold_fits]).T
             for k, j in enumerate(plan.interval_splits):

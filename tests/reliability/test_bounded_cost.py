@@ -377,15 +377,18 @@ def test_progress_moves_inside_a_long_basis_setting(monkeypatch, rk):
     rows = _wide_rows(60_000, 12)
     spec = {"target": "y", "features": WIDE_FEATURES[:3], "bases": [{"kind": "polynomial", "degrees": [2]}],
             "penalty": {"kind": "l2", "strengths": [1.0]}, "cv": {"folds": 3, "seed": 1}}
-    seen: list[tuple[int, int]] = []
-    result = tune_module.tune(rows, spec, progress=lambda done, total: seen.append((done, total)))
     # one basis setting, 3 splits: 300 sub-units; each fold's 20,000 rows are summarized in two row blocks
-    # (16,384 + 3,616) and each split is fitted, so progress moves 9 times before the setting ends
-    assert seen[-1] == (300, 300)
-    inside = [d for d, _ in seen[:-1]]
-    assert inside == sorted(inside) and len(set(inside)) == 9 and max(inside) < 300
-    # the numbers are those of the same job without progress reports
-    assert result.cv_table == tune_module.tune(rows, spec).cv_table
+    # (16,384 + 3,616), the exact way or by Gram matrices; then the short scoring (one list of tasks) moves
+    # after each split's fit and after the fit on all rows: 10 moves before the setting ends
+    for gram_min_rows, moves in ((10 ** 9, 10), (tune_module.GRAM_MIN_ROWS, 10)):
+        monkeypatch.setattr(tune_module, "GRAM_MIN_ROWS", gram_min_rows)
+        seen: list[tuple[int, int]] = []
+        result = tune_module.tune(rows, spec, progress=lambda done, total: seen.append((done, total)))
+        assert seen[-1] == (300, 300)
+        inside = [d for d, _ in seen[:-1]]
+        assert inside == sorted(inside) and len(set(inside)) == moves and max(inside) < 300
+        # the numbers are those of the same job without progress reports
+        assert result.cv_table == tune_module.tune(rows, spec).cv_table
 
 
 # ---------------------------------------------------------------------------------------------------

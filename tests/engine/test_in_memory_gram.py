@@ -1,0 +1,163 @@
+"""In-memory training of a nested polynomial group from one Gram matrix per atom (``tune._gram_summaries``,
+the well-conditioned basis of ``service.engine.orthobasis``), and the refit's fold fits taken from the scoring.
+
+The CV figures and the fold models are checked against scikit-learn (an independent implementation): the
+pipeline PolynomialFeatures → StandardScaler → Ridge fitted on each fold's training rows of the inputs
+standardized on all rows, as ``benchmarks/bench_tuning.py`` compares with GridSearchCV. The cases the Gram
+matrices must refuse (a target the basis fits exactly) are checked the same way, and weighted rows against
+the exact way of the same engine (itself checked against scikit-learn's weighted Ridge in test_weights.py).
+"""
+
+from __future__ import annotations
+
+import sys
+
+import numpy as np
+import pytest
+from sklearn.linear_model import Ridge
+from sklearn.model_selection import KFold
+from sklearn.pipeline import make_pipeline
+from sklearn.preprocessing import PolynomialFeatures, StandardScaler
+
+from service.engine import tune
+from service.engine.continued import continue_tune, fixed_basis
+
+import service.engine.tune  # noqa: F401  (the module, not the function the package exports)
+
+T = sys.modules["service.engine.tune"]
+N = 12_000  # above tune.GRAM_MIN_ROWS
+STRENGTHS = [1e-3, 0.1, 10.0]
+
+
+def rows(n: int, seed: int, exact: bool = False) -> dict[str, np.ndarray]:
+    # synthetic test data (not a demo): three inputs, two of them correlated, a smooth response
+    rng = np.random.default_rng(seed)
+    x1 = rng.normal(0.0, 1.0, n)
+    x2 = 0.8 * x1 + 0.6 * rng.normal(0.0, 1.0, n)
+    x3 = rng.uniform(-2.0, 2.0, n)
+    y = 1.5 + np.sin(x1) + 0.3 * x2 * x3 - 0.2 * x3 ** 3
+    if exact:  # a cubic the basis holds exactly: [1, Ψ, y] is singular, the Gram matrices must be refused
+        y = 1.5 + x1 - 0.5 * x2 * x3 + 0.25 * x3 ** 3
+    else:
+        y = y + rng.normal(0.0, 0.2, n)
+    return {"x1": x1, "x2": x2, "x3": x3, "y": y}
+
+
+SPEC = {"target": "y", "bases": [{"kind": "polynomial", "degrees": [1, 2, 3, 4]}],
+        "penalty": {"strengths": STRENGTHS}, "cv": {"folds": 5, "seed": 3}, "selection": {"rule": "best"}}
+
+
+@pytest.fixture
+def gram_calls(monkeypatch):
+    """What ``_gram_summaries`` returned in each training: True (Gram matrices), False (the exact way)."""
+    seen: list[bool] = []
+    real = T._SharedSearch._gram_summaries
+
+    def spy(self):
+        out = real(self)
+        seen.append(out is not None)
+        return out
+
+    monkeypatch.setattr(T._SharedSearch, "_gram_summaries", spy)
+    return seen
+
+
+def sklearn_reference(d: dict[str, np.ndarray], degree: int, lam: float, seed: int = 3):
+    """Per fold of KFold(5, shuffle, seed): the RMSE on the held-out rows and the fold model's predictions on
+    every row, by scikit-learn's pipeline on the inputs standardized on all rows (population std)."""
+    X = np.column_stack([d["x1"], d["x2"], d["x3"]])
+    Xs = (X - X.mean(0)) / X.std(0)
+    y = d["y"]
+    rmse, preds = [], []
+    for tr, te in KFold(5, shuffle=True, random_state=seed).split(Xs):
+        pipe = make_pipeline(PolynomialFeatures(degree, include_bias=False), StandardScaler(), Ridge(alpha=lam))
+        pipe.fit(Xs[tr], y[tr])
+        rmse.append(np.sqrt(np.mean((y[te] - pipe.predict(Xs[te])) ** 2)))
+        preds.append(pipe.predict(Xs))
+    return np.array(rmse), np.array(preds)
+
+
+def fold_predictions(res, d: dict[str, np.ndarray]) -> np.ndarray:
+    Phi = res.model.design(d)[0]
+    return res.model.fold_intercepts[:, None] + res.model.fold_weights @ Phi.T
+
+
+def test_gram_summaries_match_scikit_learn_fold_by_fold(gram_calls):
+    d = rows(N, 1)
+    res = tune(d, SPEC)
+    assert gram_calls == [True]
+    by_key = {(r["basis"]["degree"], r["strength"]): r for r in res.cv_table}
+    assert len(by_key) == 4 * len(STRENGTHS)
+    for degree in (2, 4):  # scikit-learn reference: PolynomialFeatures → StandardScaler → Ridge per fold
+        for lam in STRENGTHS:
+            want, _ = sklearn_reference(d, degree, lam)
+            np.testing.assert_allclose(by_key[(degree, lam)]["split_values"], want, rtol=1e-9)
+    # the refit's fold models (taken from the scoring's fits): each fold's scikit-learn model, every row
+    degree, lam = res.chosen["basis"]["degree"], res.chosen["penalty"]["strength"]
+    _, want = sklearn_reference(d, degree, lam)
+    got = fold_predictions(res, d)
+    np.testing.assert_allclose(got, want, rtol=0, atol=1e-9 * np.abs(want).max())
+
+
+def test_an_exactly_fitted_target_takes_the_exact_way_with_the_same_figures(gram_calls):
+    d = rows(N, 2, exact=True)
+    res = tune(d, {**SPEC, "bases": [{"kind": "polynomial", "degrees": [3]}]})
+    assert gram_calls == [False]  # a fold's [1, Ψ, y] is singular: OrthoBasis.r_factor refuses it
+    # the exact way, checked against scikit-learn (relative to the target's scale: the errors are tiny)
+    for lam in (0.1, 10.0):
+        want, _ = sklearn_reference(d, 3, lam)
+        got = next(r["split_values"] for r in res.cv_table if r["strength"] == lam)
+        np.testing.assert_allclose(got, want, rtol=1e-7)
+
+
+def test_weighted_rows_by_gram_matrices_equal_the_exact_way(gram_calls, monkeypatch):
+    d = rows(N, 4)
+    d["w"] = np.random.default_rng(5).uniform(0.2, 3.0, N)
+    d["w"][:40] = 0.0  # zero-weight rows keep their fold and count for nothing
+    spec = {**SPEC, "weight": "w"}
+    by_gram = tune(d, spec)
+    monkeypatch.setattr(T, "GRAM_MIN_ROWS", 10 * N)
+    exact = tune(d, spec)
+    assert gram_calls == [True, False]
+    a = np.array([r["split_values"] for r in by_gram.cv_table])
+    b = np.array([r["split_values"] for r in exact.cv_table])
+    np.testing.assert_allclose(a, b, rtol=1e-9)
+    assert by_gram.chosen["index"] == exact.chosen["index"]
+    np.testing.assert_allclose(by_gram.model.beta, exact.model.beta, rtol=0, atol=1e-9 * np.abs(exact.model.beta).max())
+    np.testing.assert_allclose(fold_predictions(by_gram, d), fold_predictions(exact, d), rtol=1e-9)
+    assert by_gram.model.max_leverage == pytest.approx(exact.model.max_leverage, rel=1e-9)
+
+
+def test_a_continuation_of_a_gram_trained_version_equals_training_on_every_row(gram_calls):
+    A, B = rows(N, 6), rows(3_000, 7)
+    spec = {**SPEC, "cv": {"folds": 5, "assignment": "hash"}}  # hash folds: a new row gets the fold it would have had
+    parent = tune(A, spec)
+    body, arrays = parent.to_artifact()
+    cont = continue_tune(body, arrays, B)
+    AB = {k: np.concatenate([A[k], B[k]]) for k in A}
+    twin = tune(AB, spec, basis=fixed_basis(body, arrays))
+    assert gram_calls == [True, True]
+    a = np.array([r["split_values"] for r in cont.cv_table])
+    b = np.array([r["split_values"] for r in twin.cv_table])
+    np.testing.assert_allclose(a, b, rtol=1e-9)
+    np.testing.assert_allclose(cont.model.beta, twin.model.beta, rtol=0, atol=1e-9 * np.abs(twin.model.beta).max())
+
+
+def test_fold_fits_from_the_scoring_equal_fits_made_again(monkeypatch):
+    """With a categorical column the nested group is scored with its one-hot columns first and the model
+    keeps them last: the scoring's fits are reordered, and equal the fold fits factored again."""
+    rng = np.random.default_rng(8)
+    d = rows(900, 8)
+    d["station"] = rng.choice(["north", "south", "east"], 900).astype(object)
+    d["y"] = d["y"] + (d["station"] == "south") * 0.8
+    spec = {**SPEC, "categorical": ["station"],
+            "bases": [{"kind": "polynomial", "degrees": [1, 2, 3]}, {"kind": "rbf", "centers": 20, "widths": [1.0]}]}
+    for basis in ([{"kind": "polynomial", "degrees": [1, 2, 3]}], [{"kind": "rbf", "centers": 20, "widths": [1.0]}]):
+        kept = tune(d, {**spec, "bases": basis})
+        monkeypatch.setattr(T, "FOLD_PATHS_KEEP_BYTES", 0)
+        again = tune(d, {**spec, "bases": basis})
+        monkeypatch.undo()
+        assert kept.chosen["index"] == again.chosen["index"]
+        np.testing.assert_allclose(kept.model.fold_weights, again.model.fold_weights, rtol=0,
+                                   atol=1e-10 * np.abs(again.model.fold_weights).max())
+        np.testing.assert_allclose(kept.model.fold_intercepts, again.model.fold_intercepts, rtol=1e-10)
