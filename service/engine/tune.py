@@ -30,7 +30,7 @@ from .solvers import Fit, convergence_warnings, fit, leverage_triangle, row_leve
 from .spec import TuneSpec, parse_spec
 from .summaries import CHUNK_ROWS, Summary
 from .advice import data_warnings
-from . import continued, orthobasis
+from . import blas3, continued, orthobasis
 from .table import as_columns, categorical_column, key_column, numeric_column
 
 ONE_HOT_AS_LEVEL_SUMS = True  # the first categorical column enters the summaries as level sums (``Summary.of_grouped``)
@@ -485,8 +485,9 @@ def _gather(D: np.ndarray, rows: np.ndarray, start: int = 0) -> np.ndarray:
 
 
 def _design(setting: BasisSetting, Xs: np.ndarray, cat_block: np.ndarray) -> np.ndarray:
-    """[Φ, one-hot]: with one-hot columns, built column-major in place (no stacked copy)."""
-    if not cat_block.shape[1]:
+    """[Φ, one-hot]: a polynomial basis or one with one-hot columns built column-major in place (no stacked
+    copy; ``BasisSetting.expand``'s row-major fill would be several times slower on many rows)."""
+    if not cat_block.shape[1] and setting.kind != "polynomial":
         return setting.expand(Xs)
     p = setting.n_terms(Xs.shape[1])
     Phi = np.empty((Xs.shape[0], p + cat_block.shape[1]), order="F")
@@ -883,7 +884,9 @@ class _SharedSearch:
             fold_fits = [fit(combined(plan.splits[j][0]), self.spec.penalty.kind, np.array([strength]), ratio)
                          for j in plan.interval_splits]
         if fold_fits:  # every fold's predictions of every row in one product, each row keeping its own fold's
-            P = Phi @ np.vstack([f.weights[0] for f in fold_fits]).T
+            W = np.vstack([f.weights[0] for f in fold_fits]).T
+            # a tall column-major design by a few columns: dgemm itself (``blas3.matmul``), not numpy's slower path
+            P = blas3.matmul(Phi, np.asfortranarray(W)) if Phi.flags.f_contiguous else Phi @ W
             for k, j in enumerate(plan.interval_splits):
                 rows = np.concatenate([plan.atoms[i] for i in plan.splits[j][1]])
                 oof_pred[rows] = fold_fits[k].intercept[0] + P[rows, k]
