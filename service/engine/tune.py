@@ -10,6 +10,7 @@ when the metric is MAE, the per-row errors that a sum of squares cannot give.
 from __future__ import annotations
 
 import math
+import threading
 from contextlib import nullcontext
 from dataclasses import dataclass
 from typing import Any, Callable
@@ -511,13 +512,19 @@ def _max_leverage(Phi: np.ndarray, rows: np.ndarray | None, mean: np.ndarray, T:
 
 
 def _model(prep: Prepared, spec: TuneSpec, scaler: InputScaler, setting: BasisSetting, full_summary: Summary,
-           strengths: np.ndarray, strength: float, ratio: float | None, Phi: np.ndarray,
-           fold_fits: list[Fit] | None, oof_abs: np.ndarray, oof_fold: np.ndarray) -> tuple[FittedModel, Fit]:
-    """The model refit on all rows (``result.build_model``), with its training leverages from ``Phi``."""
-    full, l_idx, F = refit_all_rows(full_summary, spec, strengths, strength, ratio)
+           strengths: np.ndarray, strength: float, ratio: float | None, Phi: np.ndarray | None,
+           fold_fits: list[Fit] | None, oof_abs: np.ndarray, oof_fold: np.ndarray,
+           refit: tuple[Fit, int, np.ndarray, float] | None = None) -> tuple[FittedModel, Fit]:
+    """The model refit on all rows (``result.build_model``), with its training leverages from ``Phi``; or,
+    with ``refit`` (the fit on all rows, its strength's index, F and the largest leverage, computed by a
+    pass that never held ``Phi`` whole: ``_SharedSearch._refit_rows``), from those."""
     kept = slice(None) if prep.w is None else prep.w > 0  # zero-weight rows are not training data
-    max_leverage = _max_leverage(Phi, None if prep.w is None else np.flatnonzero(kept), full.mean,
-                                 leverage_triangle(F, full.scale), full.n)
+    if refit is None:
+        full, l_idx, F = refit_all_rows(full_summary, spec, strengths, strength, ratio)
+        max_leverage = _max_leverage(Phi, None if prep.w is None else np.flatnonzero(kept), full.mean,
+                                     leverage_triangle(F, full.scale), full.n)
+    else:
+        full, l_idx, F, max_leverage = refit
     finite = np.isfinite(oof_abs)
     if prep.w is not None:
         finite &= prep.w > 0  # intervals from the out-of-fold residuals of rows that weigh something
@@ -842,7 +849,12 @@ class _SharedSearch:
         plan = self.plan
         y = self.prep.y
         nested = setting.kind in ("linear", "polynomial")
-        if nested and self._nested[0] is not None and not self.prep.categories.width:
+        # without the nested design (summaries by Gram matrices), the chosen setting's rows are expanded a
+        # chunk at a time for the predictions and leverages (``_refit_rows``), never whole
+        chunked = nested and self._nested[0] is None and not self.prep.categories.width
+        if chunked:
+            Phi = None
+        elif nested and self._nested[0] is not None and not self.prep.categories.width:
             # the chosen setting's columns are the leading block of the nested design (column-major, so a
             # view); ``_model`` overwrites them, and the design is not used after this refit
             Phi = self._nested[0][:, :setting.n_terms(self.prep.X.shape[1])]
@@ -883,17 +895,48 @@ class _SharedSearch:
         else:
             fold_fits = [fit(combined(plan.splits[j][0]), self.spec.penalty.kind, np.array([strength]), ratio)
                          for j in plan.interval_splits]
-        if fold_fits:  # every fold's predictions of every row in one product, each row keeping its own fold's
-            W = np.vstack([f.weights[0] for f in fold_fits]).T
-            # a tall column-major design by a few columns: dgemm itself (``blas3.matmul``), not numpy's slower path
-            P = blas3.matmul(Phi, np.asfortranarray(W)) if Phi.flags.f_contiguous else Phi @ W
+        known = None
+        W = np.asfortranarray(np.vstack([f.weights[0] for f in fold_fits]).T) if fold_fits else None
+        if chunked:
+            full, l_idx, F = refit_all_rows(full_summary, self.spec, strengths, strength, ratio)
+            P, top = self._refit_rows(setting, W, full.mean, leverage_triangle(F, full.scale), full.n)
+            known = (full, l_idx, F, top)
+        elif fold_fits:  # a tall column-major design by a few columns: dgemm itself, not numpy's slower path
+            P = blas3.matmul(Phi, W) if Phi.flags.f_contiguous else Phi @ W
+        if fold_fits:  # every fold's predictions of every row, each row keeping its own fold's
             for k, j in enumerate(plan.interval_splits):
                 rows = np.concatenate([plan.atoms[i] for i in plan.splits[j][1]])
                 oof_pred[rows] = fold_fits[k].intercept[0] + P[rows, k]
                 oof_fold[rows] = k
         model, full = _model(self.prep, self.spec, scaler, setting, full_summary, strengths, strength, ratio, Phi,
-                             fold_fits, np.abs(y - oof_pred), oof_fold)
+                             fold_fits, np.abs(y - oof_pred), oof_fold, refit=known)
         return model, full, oof_pred
+
+    def _refit_rows(self, setting: BasisSetting, W: np.ndarray | None, mean: np.ndarray, T: np.ndarray, n: float
+                    ) -> tuple[np.ndarray | None, float]:
+        """(every row's prediction by every interval split's fold fit, rows × K (None without ``W``, p × K); the
+        largest training leverage, ``row_leverages`` with ``mean``, ``T``, ``n``, over the rows that weigh
+        something) from the nested setting's columns expanded ``CHUNK_ROWS`` rows at a time into a buffer of
+        each thread's own (fresh pages for every chunk would cost their first-touch faults), on every core."""
+        Xs, w = self.Xs, self.prep.w
+        rows, p = Xs.shape[0], setting.n_terms(Xs.shape[1])
+        local = threading.local()
+
+        def block(lo: int) -> tuple[np.ndarray | None, float]:
+            hi = min(rows, lo + CHUNK_ROWS)
+            buf = getattr(local, "buf", None)
+            if buf is None:
+                buf = local.buf = np.empty((min(rows, CHUNK_ROWS), p), order="F")
+            B = buf[:hi - lo]  # the leading rows of a column-major buffer: a column-major view
+            setting.expand_into(Xs[lo:hi], B)
+            P = None if W is None else blas3.matmul(B, W)
+            D = B if w is None else np.asfortranarray(B[w[lo:hi] > 0])
+            lev = row_leverages(D if D.flags.f_contiguous else np.asfortranarray(D), mean, T, n)  # overwrites D
+            return P, float(lev.max()) if lev.size else -math.inf
+
+        out = list(ordered_map(block, range(0, rows, CHUNK_ROWS), usable_cores()))
+        P = None if W is None else np.vstack([b[0] for b in out])
+        return P, max(b[1] for b in out)
 
 
 class _PerFoldSearch(_SharedSearch):

@@ -97,6 +97,14 @@ def test_gram_summaries_match_scikit_learn_fold_by_fold(gram_calls):
     _, want = sklearn_reference(d, degree, lam)
     got = fold_predictions(res, d)
     np.testing.assert_allclose(got, want, rtol=0, atol=1e-9 * np.abs(want).max())
+    # the largest training leverage (made chunk by chunk, the design never whole): the diagonal of the ridge
+    # hat matrix 11ᵀ/n + Z (ZᵀZ + λI)⁻¹ Zᵀ of the standardized design, the intercept unpenalized (from the
+    # ridge solution, Hastie, Tibshirani & Friedman, ESL 2nd ed. §3.4.1, eq. 3.44; the number from memory),
+    # computed here directly
+    Phi = res.model.design(d)[0]
+    Z = (Phi - Phi.mean(0)) / Phi.std(0)
+    h = 1.0 / N + np.einsum("ij,ij->i", Z @ np.linalg.inv(Z.T @ Z + lam * np.eye(Z.shape[1])), Z)
+    assert res.model.max_leverage == pytest.approx(h.max(), rel=1e-9)
 
 
 def test_an_exactly_fitted_target_takes_the_exact_way_with_the_same_figures(gram_calls):
