@@ -171,7 +171,7 @@ def score_splits(atoms: list[Summary], splits: list[tuple[list[int], list[int]]]
         def combined(ids: list[int]) -> Summary:
             return Summary.combine([atoms[i] for i in ids])
 
-    def one(split: tuple[list[int], list[int]]) -> tuple[list[Fit], list[np.ndarray]]:
+    def one(split: tuple[list[int], list[int]]) -> tuple[list[Fit], list[np.ndarray], dict]:
         train_ids, test_ids = split
         train = combined(train_ids)
         with watch_convergence() as seen:  # this thread's own (a pool thread does not see the caller's)

@@ -644,8 +644,9 @@ class _SharedSearch:
         same span (``orthobasis``; the streamed engine's way, see there), or None for the exact way
         (``_summaries``): only for a polynomial group of degree 2 or more without one-hot columns, from
         ``GRAM_MIN_ROWS`` rows, and only when every atom's Gram matrix passes ``OrthoBasis.r_factor``'s
-        guard. The atoms run on every usable core, each on its own thread, so the result does not depend on
-        the thread count."""
+        guard. This thread expands each atom's rows ``CHUNK_ROWS`` at a time while the other threads make the
+        chunks' Gram matrices, added up per atom in row order, so the result does not depend on the thread
+        count."""
         top, prep = self._nested_top, self.prep
         n = self.Xs.shape[0]
         if (top.kind != "polynomial" or (top.degree or 0) < 2 or prep.categories.width or n < GRAM_MIN_ROWS
