@@ -36,8 +36,8 @@ whose relative accuracy in any direction v, ``‖R_Ψ v‖ = ‖[1, Ψ, y] v‖ 
 condition number of ``[1, Ψ, y]`` with its columns scaled to unit norm. ``r_factor`` computes κ (from the
 eigenvalues of the m × m Gram matrix, to about 1e-8 relative at the limit) and refuses the Gram (returns None)
 when κ exceeds ``ORTHO_MAX_COND`` (1e3: |δ| up to about 1e-10 in the weakest direction only): the caller then
-summarizes those rows the exact way (``summaries.absorb``). The target's column is part of κ: a target that the basis fits almost exactly
-(R² → 1) makes ``[1, Ψ, y]`` ill conditioned and takes the exact way. ``build`` refuses up front (None) when
+summarizes those rows the exact way (``summaries.absorb``). The target's column is part of κ: a target that
+the basis fits almost exactly (R² → 1) makes ``[1, Ψ, y]`` ill conditioned and takes the exact way. ``build`` refuses up front (None) when
 the sample's own κ([1, Ψ]) exceeds half the limit, when the inputs are collinear on the sample, or when an
 input has too few distinct values for the degree (its orthogonal polynomials stop before D).
 """
@@ -111,23 +111,25 @@ class OrthoBasis:
                 np.multiply(out[:, parent], U[:, u], out=out[:, col])
         return out
 
-    def design(self, Xs: np.ndarray, y: np.ndarray) -> np.ndarray:
-        """``[1, Ψ, y]`` of some rows, column-major (n × m)."""
-        A = np.empty((Xs.shape[0], self.width), order="F")
+    def design(self, Xs: np.ndarray, y: np.ndarray | None, root_w: np.ndarray | None = None) -> np.ndarray:
+        """``[1, Ψ, y]`` of some rows, column-major (n × m), or ``[1, Ψ]`` when ``y`` is None; each row scaled
+        by ``root_w`` (n,) when given (the square roots of the row weights, as ``Summary.of`` scales them)."""
+        A = np.empty((Xs.shape[0], self.width - (y is None)), order="F")
         A[:, 0] = 1.0
-        self.expand_into(Xs, A[:, 1:-1])
-        A[:, -1] = y
+        self.expand_into(Xs, A[:, 1:self.width - 1])
+        if y is not None:
+            A[:, -1] = y
+        if root_w is not None:
+            A *= root_w[:, None]
         return A
 
-    def gram(self, Xs: np.ndarray, y: np.ndarray, root_w: np.ndarray | None = None) -> np.ndarray:
-        """(m × m) Gram matrix of ``[1, Ψ, y]`` over the rows ``Xs`` (n × d, standardized), ``y`` (n,), each row
-        scaled by ``root_w`` (n,) when given (the square roots of the row weights, as ``Summary.of``), made
-        ``CHUNK_ROWS`` rows at a time so the design is never whole in memory."""
-        G = np.zeros((self.width, self.width))
+    def gram(self, Xs: np.ndarray, y: np.ndarray | None) -> np.ndarray:
+        """Gram matrix of ``[1, Ψ, y]`` (or of ``[1, Ψ]`` when ``y`` is None) over the rows ``Xs`` (n × d,
+        standardized), made ``CHUNK_ROWS`` rows at a time so the design is never whole in memory."""
+        m = self.width - (y is None)
+        G = np.zeros((m, m))
         for lo in range(0, Xs.shape[0], CHUNK_ROWS):
-            A = self.design(Xs[lo:lo + CHUNK_ROWS], y[lo:lo + CHUNK_ROWS])
-            if root_w is not None:
-                A *= root_w[lo:lo + CHUNK_ROWS, None]
+            A = self.design(Xs[lo:lo + CHUNK_ROWS], None if y is None else y[lo:lo + CHUNK_ROWS])
             G += A.T @ A  # numpy calls the symmetric rank-k update (syrk) for this form, without the GIL
         return G
 
@@ -233,12 +235,9 @@ def build(powers: np.ndarray, sample: np.ndarray, *, check: bool = True) -> Orth
         def lookup(rows: np.ndarray) -> np.ndarray:
             return np.array([index[np.ascontiguousarray(r).tobytes()] for r in rows], dtype=np.int64)
 
-    # shift[k, i]: the row of exponent i plus one unit of input k (−1 past degree D)
-    total = allp.sum(axis=1)
-    shift = np.full((d, m0), -1, dtype=np.int64)
-    low = np.flatnonzero(total < D)  # the rows a factor can raise
-    for k in range(d):
-        shift[k, low] = lookup(allp[low] + np.eye(d, dtype=np.int64)[k])
+    # raised[k][r]: the row of exponent low[r] plus one unit of input k, for the rows below degree D
+    low = np.flatnonzero(allp.sum(axis=1) < D)
+    raised = [lookup(allp[low] + np.eye(d, dtype=np.int64)[k]) for k in range(d)]
     # parents first (by degree), for each column of the basis: its last input j with a nonzero exponent,
     # - the z-coefficients of its x-monomial: x^α = x^(α − e_j) · Σ_k W⁻¹[k, j] z_k;
     # - its step in Ψ's expansion: ψ_α = ψ_(α with α_j = 0) · p_{j,α_j}(z_j)
@@ -252,7 +251,7 @@ def build(powers: np.ndarray, sample: np.ndarray, *, check: bool = True) -> Orth
     for level in range(1, D + 1):  # a level's parents are all in the level before: one step per level
         cols = np.flatnonzero(degree == level)
         for k in range(d):  # in input order, as the sums of one column: the same bits as column by column
-            Zc[shift[k, low][:, None], 1 + cols] += W_inv[k, last[cols]][None, :] * Zc[low][:, less[cols]]
+            Zc[raised[k][:, None], 1 + cols] += W_inv[k, last[cols]][None, :] * Zc[low][:, less[cols]]
     order = sorted(range(p), key=lambda i: int(degree[i]))
     steps = [(i, int(without[i]) - 1, int(last[i]) * (D + 1) + int(powers[i, last[i]])) for i in order]
     # Ψ-coefficients of every z-monomial: z^β = Π_j Σ_l C_j[l, β_j] p_{j,l}
@@ -267,13 +266,7 @@ def build(powers: np.ndarray, sample: np.ndarray, *, check: bool = True) -> Orth
     if not check:
         return basis
     # the sample's own conditioning, without the target: refuse early what the Gram would refuse anyway
-    # (its Gram matrix made CHUNK_ROWS rows at a time, so the sample's design is never whole in memory)
-    G = np.zeros((m0, m0))
-    for lo in range(0, sample.shape[0], CHUNK_ROWS):
-        S = np.empty((min(CHUNK_ROWS, sample.shape[0] - lo), m0), order="F")
-        S[:, 0] = 1.0
-        basis.expand_into(sample[lo:lo + CHUNK_ROWS], S[:, 1:])
-        G += S.T @ S
+    G = basis.gram(sample, None)
     s = 1.0 / np.sqrt(np.diag(G))
     Rs, info = _lapack.dpotrf(G * np.outer(s, s), lower=0, clean=1)  # κ ≤ 500 here: a Gram is accurate enough
     if info != 0:

@@ -669,10 +669,7 @@ class _SharedSearch:
             for a, idx in enumerate(atoms):
                 for lo in range(0, idx.size, CHUNK_ROWS):
                     rows = idx[lo:lo + CHUNK_ROWS]
-                    A = basis.design(self.Xs[rows], y[rows])
-                    if root is not None:
-                        A *= root[rows, None]
-                    yield a, A
+                    yield a, basis.design(self.Xs[rows], y[rows], None if root is None else root[rows])
 
         grams = [np.zeros((basis.width, basis.width)) for _ in atoms]
         left = [-(-idx.size // CHUNK_ROWS) for idx in atoms]  # chunks of each atom still to come
