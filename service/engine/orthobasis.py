@@ -327,10 +327,13 @@ class LeverageScreen:
         return LeverageScreen(basis, np.asfortranarray(V[:, :K] if fw is None else V), mu[:K].copy(),
                               float(mu[K]), float(mu[0]), 1.0 / n, float(floor))
 
-    def rows(self, Xs: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    def rows(self, Xs: np.ndarray, buf: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
         """(indices of the rows of ``Xs`` (standardized inputs) whose bound reaches ``floor``, the predictions
-        of the models ``fw`` given to ``of`` (rows × folds; no columns without them))."""
-        U = np.empty((Xs.shape[0], self.basis.width - 1), order="F")
+        of the models ``fw`` given to ``of`` (rows × folds; no columns without them)). ``buf``: a column-major
+        array of at least that many rows and ``basis.width - 1`` columns to expand into, reused from call to
+        call (fresh pages for every block of rows would cost their first-touch faults); it is overwritten."""
+        U = (np.empty((Xs.shape[0], self.basis.width - 1), order="F") if buf is None
+             else buf[:Xs.shape[0], :self.basis.width - 1])
         U[:, 0] = 1.0
         self.basis.expand_into(Xs, U[:, 1:])
         # one product for the directions and the predictions; numpy's ``U @ V`` is slower here (``blas3.matmul``)

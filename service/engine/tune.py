@@ -41,6 +41,8 @@ BATCH_SCORING_FLOPS = 3e9  # a nested group's small algebra up to which it is sc
 FOLD_PATHS_KEEP_BYTES = 64 << 20  # the scoring's L2 fold fits kept for the refit, over every setting
 GRAM_MIN_ROWS = 10_000  # rows from which a nested polynomial group's atoms are summarized by Gram matrices
 GRAM_SAMPLE_ROWS = 50_000  # rows (evenly spaced) its well-conditioned basis is made from (``orthobasis.build``)
+SCREEN_MIN_ROWS = 100_000  # rows from which the refit screens rows for the largest leverage (``_leverage_screen``)
+SCREEN_SAMPLE_ROWS = 16_384  # evenly spaced training rows whose exact leverages are the screen's floor
 
 
 @dataclass(frozen=True)
@@ -569,6 +571,7 @@ class _SharedSearch:
         d = prep.X.shape[1]
         self._nested_top = max(nested, key=lambda s: s.n_terms(d)) if nested else None
         self._nested: tuple[np.ndarray | None, list[Summary]] | None = None
+        self._gram_basis: orthobasis.OrthoBasis | None = None  # the nested group's basis, summaries by Gram matrices
         self.kept: dict[int, list[Summary]] = {}  # RBF settings' atom summaries (kept for continued training)
         self.keep_bytes: int | None = None  # keep them up to this many stored bytes (None: keep none)
         self.kept_bytes = 0  # stored bytes of the summary groups seen so far
@@ -688,6 +691,7 @@ class _SharedSearch:
                     tick(0.5 * seen / total)
         if any(R is None for R in factors):
             return None  # an atom without rows: every atom the exact way
+        self._gram_basis = basis
         return [Summary(R, idx.size if w is None else float(np.sum(w[idx]))) for R, idx in zip(factors, atoms)]
 
     def _group_codes(self, D: np.ndarray) -> np.ndarray | None:
@@ -895,46 +899,102 @@ class _SharedSearch:
                          for j in plan.interval_splits]
         known = None
         W = np.asfortranarray(np.vstack([f.weights[0] for f in fold_fits]).T) if fold_fits else None
+        for k, j in enumerate(plan.interval_splits):  # the interval split whose fold holds each row
+            oof_fold[np.concatenate([plan.atoms[i] for i in plan.splits[j][1]])] = k
         if chunked:
             full, l_idx, F = refit_all_rows(full_summary, self.spec, strengths, strength, ratio)
-            P, top = self._refit_rows(setting, W, full.mean, leverage_triangle(F, full.scale), full.n)
+            fi = np.array([f.intercept[0] for f in fold_fits])
+            pred, top = self._refit_rows(setting, W, fi, oof_fold, full.mean, leverage_triangle(F, full.scale), full.n)
+            if pred is not None:
+                oof_pred = pred
             known = (full, l_idx, F, top)
         elif fold_fits:  # a tall column-major design by a few columns: dgemm itself, not numpy's slower path
             P = blas3.matmul(Phi, W) if Phi.flags.f_contiguous else Phi @ W
-        if fold_fits:  # every fold's predictions of every row, each row keeping its own fold's
-            for k, j in enumerate(plan.interval_splits):
-                rows = np.concatenate([plan.atoms[i] for i in plan.splits[j][1]])
-                oof_pred[rows] = fold_fits[k].intercept[0] + P[rows, k]
-                oof_fold[rows] = k
+            has = np.flatnonzero(oof_fold >= 0)  # every fold's predictions of every row, each row keeping its own fold's
+            oof_pred[has] = np.array([f.intercept[0] for f in fold_fits])[oof_fold[has]] + P[has, oof_fold[has]]
         model, full = _model(self.prep, self.spec, scaler, setting, full_summary, strengths, strength, ratio, Phi,
                              fold_fits, np.abs(y - oof_pred), oof_fold, refit=known)
         return model, full, oof_pred
 
-    def _refit_rows(self, setting: BasisSetting, W: np.ndarray | None, mean: np.ndarray, T: np.ndarray, n: float
-                    ) -> tuple[np.ndarray | None, float]:
-        """(every row's prediction by every interval split's fold fit, rows × K (None without ``W``, p × K); the
-        largest training leverage, ``row_leverages`` with ``mean``, ``T``, ``n``, over the rows that weigh
-        something) from the nested setting's columns expanded ``CHUNK_ROWS`` rows at a time into a buffer of
-        each thread's own (fresh pages for every chunk would cost their first-touch faults), on every core."""
+    def _refit_rows(self, setting: BasisSetting, W: np.ndarray | None, fi: np.ndarray, fold_of: np.ndarray,
+                    mean: np.ndarray, T: np.ndarray, n: float) -> tuple[np.ndarray | None, float]:
+        """(every row's out-of-fold prediction, by the fold fit of the interval split whose fold holds it: column
+        k of ``W`` (p × K) plus ``fi[k]`` for ``fold_of`` = k, NaN for -1 (None without ``W``); the largest
+        training leverage, ``row_leverages`` with ``mean``, ``T``, ``n``, over the rows that weigh something),
+        from the chosen setting's columns expanded ``CHUNK_ROWS`` rows at a time into a buffer of each thread's
+        own (fresh pages for every chunk would cost their first-touch faults), on every core. With a leverage
+        screen (``_leverage_screen``), the predictions come from the screen's basis and only the rows the
+        screen keeps are expanded and given their exact leverage."""
         Xs, w = self.Xs, self.prep.w
         rows, p = Xs.shape[0], setting.n_terms(Xs.shape[1])
+        screen = self._leverage_screen(setting, mean, T, n, None if W is None else W.T)
         local = threading.local()
+        pred = None if W is None else np.full(rows, np.nan)
 
-        def block(lo: int) -> tuple[np.ndarray | None, float]:
+        def block(lo: int) -> float:
             hi = min(rows, lo + CHUNK_ROWS)
             buf = getattr(local, "buf", None)
             if buf is None:
                 buf = local.buf = np.empty((min(rows, CHUNK_ROWS), p), order="F")
-            B = buf[:hi - lo]  # the leading rows of a column-major buffer: a column-major view
-            setting.expand_into(Xs[lo:hi], B)
-            P = None if W is None else blas3.matmul(B, W)
-            D = B if w is None else np.asfortranarray(B[w[lo:hi] > 0])
+            f = fold_of[lo:hi]
+            if screen is None:
+                B = buf[:hi - lo]  # the leading rows of a column-major buffer: a column-major view
+                setting.expand_into(Xs[lo:hi], B)
+                P = None if W is None else blas3.matmul(B, W)
+                D = B if w is None else np.asfortranarray(B[w[lo:hi] > 0])
+                screen_floor = -math.inf
+            else:  # the predictions from the screen's basis; only the rows it keeps expanded
+                ubuf = getattr(local, "ubuf", None)
+                if ubuf is None:
+                    ubuf = local.ubuf = np.empty((min(rows, CHUNK_ROWS), screen.basis.width - 1), order="F")
+                keep, P = screen.rows(Xs[lo:hi], ubuf)
+                if w is not None:
+                    keep = keep[w[lo + keep] > 0]
+                if keep.size > orthobasis.SCREEN_MAX_SHARE * (hi - lo):  # too many kept: every row is cheaper
+                    keep = np.arange(hi - lo) if w is None else np.flatnonzero(w[lo:hi] > 0)
+                D = buf[:keep.size]
+                setting.expand_into(Xs[lo:hi][keep], D)
+                screen_floor = screen.floor
+            if pred is not None:
+                has = np.flatnonzero(f >= 0)
+                pred[lo + has] = fi[f[has]] + P[has, f[has]]
             lev = row_leverages(D if D.flags.f_contiguous else np.asfortranarray(D), mean, T, n)  # overwrites D
-            return P, float(lev.max()) if lev.size else -math.inf
+            return max(screen_floor, float(lev.max()) if lev.size else -math.inf)
 
-        out = list(ordered_map(block, range(0, rows, CHUNK_ROWS), usable_cores()))
-        P = None if W is None else np.vstack([b[0] for b in out])
-        return P, max(b[1] for b in out)
+        top = max(ordered_map(block, range(0, rows, CHUNK_ROWS), usable_cores()))
+        return pred, top
+
+    def _leverage_screen(self, setting: BasisSetting, mean: np.ndarray, T: np.ndarray, n: float,
+                         fw: np.ndarray | None) -> orthobasis.LeverageScreen | None:
+        """The refit's leverage screen (``orthobasis.LeverageScreen``, as the streamed engine's last pass) for a
+        polynomial setting of degree 2 or more on ``SCREEN_MIN_ROWS`` rows or more, or None (every row's exact
+        leverage). Its floor is the largest exact leverage over ``SCREEN_SAMPLE_ROWS`` evenly spaced training
+        rows (a lower bound of the largest over all); its basis is the nested group's own when the setting is
+        the group's widest, else one made from ``GRAM_SAMPLE_ROWS`` rows. ``fw`` (K × p): the fold fits whose
+        predictions the screen's product also gives."""
+        Xs, w = self.Xs, self.prep.w
+        if setting.kind != "polynomial" or (setting.degree or 0) < 2 or Xs.shape[0] < SCREEN_MIN_ROWS:
+            return None
+        top = self._nested_top
+        basis = self._gram_basis if (setting.kind, setting.degree) == (top.kind, top.degree) else None
+        if basis is None:
+            basis = orthobasis.build(setting.powers, _evenly(Xs, np.arange(Xs.shape[0]), GRAM_SAMPLE_ROWS))
+            if basis is None:
+                return None
+        sample = _evenly(Xs, np.arange(Xs.shape[0]) if w is None else np.flatnonzero(w > 0), SCREEN_SAMPLE_ROWS)
+        if not sample.shape[0]:
+            return None
+        D = np.empty((sample.shape[0], setting.n_terms(Xs.shape[1])), order="F")
+        setting.expand_into(sample, D)
+        floor = float(row_leverages(D, mean, T, n).max())
+        return orthobasis.LeverageScreen.of(basis, mean, T, n, floor, fw)
+
+
+def _evenly(Xs: np.ndarray, rows: np.ndarray, k: int) -> np.ndarray:
+    """The rows ``rows`` of Xs, or k of them evenly spaced when there are more, in row order."""
+    if rows.size > k:
+        rows = rows[np.linspace(0, rows.size - 1, k).astype(np.int64)]
+    return Xs[rows]
 
 
 class _PerFoldSearch(_SharedSearch):

@@ -169,3 +169,64 @@ def test_fold_fits_from_the_scoring_equal_fits_made_again(monkeypatch):
         np.testing.assert_allclose(kept.model.fold_weights, again.model.fold_weights, rtol=0,
                                    atol=1e-10 * np.abs(again.model.fold_weights).max())
         np.testing.assert_allclose(kept.model.fold_intercepts, again.model.fold_intercepts, rtol=1e-10)
+
+
+@pytest.mark.parametrize("degrees, chosen", [([1, 2, 3, 4], 3), ([2, 5], 5)])
+def test_the_refit_leverage_screen_gives_every_rows_prediction_and_the_largest_leverage(monkeypatch, degrees, chosen):
+    """From ``SCREEN_MIN_ROWS`` rows the refit predicts through the summaries' basis and gives the exact leverage
+    only to the rows whose bound reaches the floor (``tune._leverage_screen``): a chosen degree below the
+    group's widest (a basis made for it) and the widest itself (the summaries' own basis)."""
+    from service.engine import orthobasis
+
+    monkeypatch.setattr(T, "SCREEN_MIN_ROWS", 1_000)
+    monkeypatch.setattr(T, "SCREEN_SAMPLE_ROWS", 500)
+    seen = [0, 0]  # rows kept by the screen, rows screened
+    real = orthobasis.LeverageScreen.rows
+
+    def spy(self, Xs, buf=None):
+        keep, P = real(self, Xs, buf)
+        seen[0] += keep.size
+        seen[1] += Xs.shape[0]
+        return keep, P
+
+    monkeypatch.setattr(orthobasis.LeverageScreen, "rows", spy)
+    d = rows(N, 9)
+    res = tune(d, {**SPEC, "bases": [{"kind": "polynomial", "degrees": degrees}]})
+    assert res.chosen["basis"]["degree"] == chosen
+    assert seen[1] == N and 0 < seen[0] < 0.05 * N  # every row screened, few given their exact leverage
+    # each row's out-of-fold prediction: the scikit-learn fold model that did not see it (Ridge pipeline)
+    lam = res.chosen["penalty"]["strength"]
+    _, preds = sklearn_reference(d, chosen, lam)
+    want = np.empty(N)
+    for k, (_, te) in enumerate(KFold(5, shuffle=True, random_state=3).split(np.empty((N, 1)))):
+        want[te] = preds[k][te]
+    np.testing.assert_allclose(res.oof_predictions, want, rtol=0, atol=1e-9 * np.abs(want).max())
+    # the largest training leverage: the ridge hat matrix's diagonal (ESL eq. 3.44, as above), computed directly
+    Phi = res.model.design(d)[0]
+    Z = (Phi - Phi.mean(0)) / Phi.std(0)
+    h = 1.0 / N + np.einsum("ij,ij->i", Z @ np.linalg.inv(Z.T @ Z + lam * np.eye(Z.shape[1])), Z)
+    assert res.model.max_leverage == pytest.approx(h.max(), rel=1e-9)
+    # and the largest of every row's exact leverage (the screen off), to rounding
+    monkeypatch.setattr(T, "SCREEN_MIN_ROWS", 10 * N)
+    every = tune(d, {**SPEC, "bases": [{"kind": "polynomial", "degrees": degrees}]})
+    assert res.model.max_leverage == pytest.approx(every.model.max_leverage, rel=1e-13)
+
+
+def test_the_leverage_screen_leaves_out_rows_that_weigh_nothing(monkeypatch):
+    """A zero-weight row far outside the others would hold the largest leverage if it counted: the screen keeps
+    it (its bound is high) and must still leave it out, giving the largest over the rows that weigh something,
+    as every row's exact leverage does (the screen off)."""
+    monkeypatch.setattr(T, "SCREEN_MIN_ROWS", 1_000)
+    monkeypatch.setattr(T, "SCREEN_SAMPLE_ROWS", 500)
+    d = rows(N, 10)
+    d["w"] = np.random.default_rng(11).uniform(0.5, 2.0, N)
+    d["x3"][7], d["w"][7] = 9.0, 0.0  # far outside the others' range (uniform on [-2, 2]), weighing nothing
+    spec = {**SPEC, "weight": "w", "bases": [{"kind": "polynomial", "degrees": [3]}]}
+    screened = tune(d, spec)
+    monkeypatch.setattr(T, "SCREEN_MIN_ROWS", 10 * N)
+    every = tune(d, spec)
+    assert screened.model.max_leverage == pytest.approx(every.model.max_leverage, rel=1e-13)
+    np.testing.assert_allclose(screened.oof_predictions, every.oof_predictions, rtol=1e-11)
+    # the outlier's own leverage under the model (what counting it would have given) is far above
+    lev = screened.model.predict_detail({k: v[7:8] for k, v in d.items() if k not in ("y", "w")})
+    assert float(np.asarray(lev["leverage"])[0]) > 2 * screened.model.max_leverage
