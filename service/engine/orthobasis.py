@@ -111,10 +111,14 @@ class OrthoBasis:
                 np.multiply(out[:, parent], U[:, u], out=out[:, col])
         return out
 
-    def design(self, Xs: np.ndarray, y: np.ndarray | None, root_w: np.ndarray | None = None) -> np.ndarray:
+    def design(self, Xs: np.ndarray, y: np.ndarray | None, root_w: np.ndarray | None = None,
+               buf: np.ndarray | None = None) -> np.ndarray:
         """``[1, Ψ, y]`` of some rows, column-major (n × m), or ``[1, Ψ]`` when ``y`` is None; each row scaled
-        by ``root_w`` (n,) when given (the square roots of the row weights, as ``Summary.of`` scales them)."""
-        A = np.empty((Xs.shape[0], self.width - (y is None)), order="F")
+        by ``root_w`` (n,) when given (the square roots of the row weights, as ``Summary.of`` scales them).
+        ``buf``: a column-major array of at least n rows and m columns to build it in (its leading block is
+        returned), reused from call to call so that no fresh pages are touched."""
+        A = (np.empty((Xs.shape[0], self.width - (y is None)), order="F") if buf is None
+             else buf[:Xs.shape[0], :self.width - (y is None)])
         A[:, 0] = 1.0
         self.expand_into(Xs, A[:, 1:self.width - 1])
         if y is not None:

@@ -230,3 +230,20 @@ def test_the_leverage_screen_leaves_out_rows_that_weigh_nothing(monkeypatch):
     # the outlier's own leverage under the model (what counting it would have given) is far above
     lev = screened.model.predict_detail({k: v[7:8] for k, v in d.items() if k not in ("y", "w")})
     assert float(np.asarray(lev["leverage"])[0]) > 2 * screened.model.max_leverage
+
+
+def test_both_ways_of_expanding_give_the_same_bits(monkeypatch, gram_calls):
+    """``_gram_summaries`` expands the rows in the calling thread (short jobs) or in each pool thread into its
+    own buffer (from ``GRAM_THREADS_EXPAND_FROM`` rows): the chunks' Gram matrices are added in row order either
+    way, so the summaries, the CV figures and the model are the same bits (weighted rows here, √w scaling)."""
+    d = rows(N, 12)
+    d["w"] = np.random.default_rng(13).uniform(0.2, 3.0, N)
+    spec = {**SPEC, "weight": "w"}
+    monkeypatch.setattr(T, "CHUNK_ROWS", 1_000)  # several chunks per atom, added up in row order
+    monkeypatch.setattr(T, "GRAM_THREADS_EXPAND_FROM", 0)
+    on_threads = tune(d, spec)
+    monkeypatch.setattr(T, "GRAM_THREADS_EXPAND_FROM", 10 * N)
+    here = tune(d, spec)
+    assert gram_calls == [True, True]
+    assert np.array_equal([r["split_values"] for r in on_threads.cv_table], [r["split_values"] for r in here.cv_table])
+    assert np.array_equal(on_threads.model.beta, here.model.beta)
