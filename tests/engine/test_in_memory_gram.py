@@ -180,13 +180,16 @@ def test_the_refit_leverage_screen_gives_every_rows_prediction_and_the_largest_l
 
     monkeypatch.setattr(T, "SCREEN_MIN_ROWS", 1_000)
     monkeypatch.setattr(T, "SCREEN_SAMPLE_ROWS", 500)
+    monkeypatch.setattr(T, "CHUNK_ROWS", 600)  # many chunks, some where the screen keeps no row
     seen = [0, 0]  # rows kept by the screen, rows screened
+    empty = [0]  # chunks where it kept none
     real = orthobasis.LeverageScreen.rows
 
     def spy(self, Xs, buf=None):
         keep, P = real(self, Xs, buf)
         seen[0] += keep.size
         seen[1] += Xs.shape[0]
+        empty[0] += keep.size == 0
         return keep, P
 
     monkeypatch.setattr(orthobasis.LeverageScreen, "rows", spy)
@@ -194,6 +197,7 @@ def test_the_refit_leverage_screen_gives_every_rows_prediction_and_the_largest_l
     res = tune(d, {**SPEC, "bases": [{"kind": "polynomial", "degrees": degrees}]})
     assert res.chosen["basis"]["degree"] == chosen
     assert seen[1] == N and 0 < seen[0] < 0.05 * N  # every row screened, few given their exact leverage
+    assert empty[0] > 0
     # each row's out-of-fold prediction: the scikit-learn fold model that did not see it (Ridge pipeline)
     lam = res.chosen["penalty"]["strength"]
     _, preds = sklearn_reference(d, chosen, lam)
