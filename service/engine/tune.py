@@ -661,7 +661,7 @@ class _SharedSearch:
             return None
         # the basis from every row (or evenly spaced ones past GRAM_SAMPLE_ROWS): the folds' own guards
         # decide, so the sample's κ is not checked apart (it would cost one more Gram pass)
-        sample = self.Xs if n <= GRAM_SAMPLE_ROWS else self.Xs[np.linspace(0, n - 1, GRAM_SAMPLE_ROWS).astype(np.int64)]
+        sample = _evenly(self.Xs, GRAM_SAMPLE_ROWS)
         basis = orthobasis.build(top.powers, sample, check=False)
         if basis is None:
             return None
@@ -995,10 +995,10 @@ class _SharedSearch:
         top = self._nested_top
         basis = self._gram_basis if (setting.kind, setting.degree) == (top.kind, top.degree) else None
         if basis is None:
-            basis = orthobasis.build(setting.powers, _evenly(Xs, np.arange(Xs.shape[0]), GRAM_SAMPLE_ROWS))
+            basis = orthobasis.build(setting.powers, _evenly(Xs, GRAM_SAMPLE_ROWS))
             if basis is None:
                 return None
-        sample = _evenly(Xs, np.arange(Xs.shape[0]) if w is None else np.flatnonzero(w > 0), SCREEN_SAMPLE_ROWS)
+        sample = _evenly(Xs, SCREEN_SAMPLE_ROWS, None if w is None else np.flatnonzero(w > 0))
         if not sample.shape[0]:
             return None
         D = np.empty((sample.shape[0], setting.n_terms(Xs.shape[1])), order="F")
@@ -1007,11 +1007,13 @@ class _SharedSearch:
         return orthobasis.LeverageScreen.of(basis, mean, T, n, floor, fw)
 
 
-def _evenly(Xs: np.ndarray, rows: np.ndarray, k: int) -> np.ndarray:
-    """The rows ``rows`` of Xs, or k of them evenly spaced when there are more, in row order."""
-    if rows.size > k:
-        rows = rows[np.linspace(0, rows.size - 1, k).astype(np.int64)]
-    return Xs[rows]
+def _evenly(Xs: np.ndarray, k: int, rows: np.ndarray | None = None) -> np.ndarray:
+    """The rows ``rows`` of Xs (None: every row), or k of them evenly spaced when there are more, in row order."""
+    n = Xs.shape[0] if rows is None else rows.size
+    if n <= k:
+        return Xs if rows is None else Xs[rows]
+    pick = np.linspace(0, n - 1, k).astype(np.int64)
+    return Xs[pick if rows is None else rows[pick]]
 
 
 class _PerFoldSearch(_SharedSearch):
