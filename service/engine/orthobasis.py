@@ -336,10 +336,7 @@ class LeverageScreen:
         of the models ``fw`` given to ``of`` (rows × folds; no columns without them)). ``buf``: a column-major
         array of at least that many rows and ``basis.width - 1`` columns to expand into, reused from call to
         call (fresh pages for every block of rows would cost their first-touch faults); it is overwritten."""
-        U = (np.empty((Xs.shape[0], self.basis.width - 1), order="F") if buf is None
-             else buf[:Xs.shape[0], :self.basis.width - 1])
-        U[:, 0] = 1.0
-        self.basis.expand_into(Xs, U[:, 1:])
+        U = self.basis.design(Xs, None, buf=buf)  # [1, Ψ]
         # one product for the directions and the predictions; numpy's ``U @ V`` is slower here (``blas3.matmul``)
         CP = blas3.matmul(U, self.V)
         K = self.mu.size

@@ -916,11 +916,11 @@ class _SharedSearch:
                          for j in plan.interval_splits]
         known = None
         W = np.asfortranarray(np.vstack([f.weights[0] for f in fold_fits]).T) if fold_fits else None
+        fi = np.array([f.intercept[0] for f in fold_fits])  # the fold fits' intercepts
         for k, j in enumerate(plan.interval_splits):  # the interval split whose fold holds each row
             oof_fold[np.concatenate([plan.atoms[i] for i in plan.splits[j][1]])] = k
         if chunked:
             full, l_idx, F = refit_all_rows(full_summary, self.spec, strengths, strength, ratio)
-            fi = np.array([f.intercept[0] for f in fold_fits])
             pred, top = self._refit_rows(setting, W, fi, oof_fold, full.mean, leverage_triangle(F, full.scale), full.n)
             if pred is not None:
                 oof_pred = pred
@@ -928,7 +928,7 @@ class _SharedSearch:
         elif fold_fits:  # a tall column-major design by a few columns: dgemm itself, not numpy's slower path
             P = blas3.matmul(Phi, W) if Phi.flags.f_contiguous else Phi @ W
             has = np.flatnonzero(oof_fold >= 0)  # every fold's predictions of every row, each row keeping its own fold's
-            oof_pred[has] = np.array([f.intercept[0] for f in fold_fits])[oof_fold[has]] + P[has, oof_fold[has]]
+            oof_pred[has] = fi[oof_fold[has]] + P[has, oof_fold[has]]
         model, full = _model(self.prep, self.spec, scaler, setting, full_summary, strengths, strength, ratio, Phi,
                              fold_fits, np.abs(y - oof_pred), oof_fold, refit=known)
         return model, full, oof_pred
